@@ -1,0 +1,883 @@
+//! Spike-count distributions per (unit, stimulus): the four families, their probability tables,
+//! the derivatives of their probability generating functions (the count term of the likelihood,
+//! DESIGN.md), and maximum-likelihood fitting with per-cell family choice by held-out likelihood.
+//!
+//! Owns: the numbers. Must not: touch files, clocks or threads. Every table built here is the one
+//! the engine and the JSON export use, so both see the same probabilities.
+
+use crate::special::{ln_factorial, ln_factorial_table, log_sum_exp};
+use serde::{Deserialize, Serialize};
+use statrs::function::gamma::ln_gamma;
+
+/// Probability mass left out of every count table (the interchange promise).
+pub const TAIL_MASS: f64 = 1e-12;
+/// Longest count table a model may hold; a cell needing more is a fitting error, not a silent cut.
+pub const MAX_TABLE_LEN: usize = 20_000;
+/// Weight, in pseudo-trials, of the parametric shape mixed into the smoothed empirical family.
+pub const EMPIRICAL_SMOOTHING_TRIALS: f64 = 1.0;
+
+/// The count families a cell may use.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Serialize, Deserialize, PartialOrd, Ord)]
+#[serde(rename_all = "snake_case")]
+pub enum CountFamily {
+    /// Poisson(mean): Fano factor 1.
+    Poisson,
+    /// Negative binomial (mean, shape r): over-dispersed, variance mean + mean²/r.
+    NegativeBinomial,
+    /// Conway–Maxwell–Poisson (λ, ν): under- or over-dispersed.
+    ComPoisson,
+    /// Training histogram smoothed towards a fitted negative binomial, so no count has probability 0.
+    Empirical,
+}
+
+impl CountFamily {
+    /// All families, simplest first (the order used to break near-ties in selection).
+    pub const ALL: [CountFamily; 4] = [
+        CountFamily::Poisson,
+        CountFamily::NegativeBinomial,
+        CountFamily::ComPoisson,
+        CountFamily::Empirical,
+    ];
+
+    /// Name used in files and on the command line.
+    pub fn name(self) -> &'static str {
+        match self {
+            CountFamily::Poisson => "poisson",
+            CountFamily::NegativeBinomial => "negative_binomial",
+            CountFamily::ComPoisson => "com_poisson",
+            CountFamily::Empirical => "empirical",
+        }
+    }
+
+    /// Parses a family name (also accepts the short forms `nb` and `com`).
+    pub fn parse(s: &str) -> Option<Self> {
+        match s.trim().to_ascii_lowercase().as_str() {
+            "poisson" => Some(CountFamily::Poisson),
+            "negative_binomial" | "negative-binomial" | "nb" => Some(CountFamily::NegativeBinomial),
+            "com_poisson" | "com-poisson" | "com" => Some(CountFamily::ComPoisson),
+            "empirical" => Some(CountFamily::Empirical),
+            _ => None,
+        }
+    }
+}
+
+/// Parameters of a fitted count distribution.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "family", rename_all = "snake_case")]
+pub enum CountParams {
+    /// Poisson with this mean.
+    Poisson {
+        /// Mean count in the window.
+        mean: f64,
+    },
+    /// Negative binomial with this mean and shape (variance mean + mean²/shape).
+    NegativeBinomial {
+        /// Mean count in the window.
+        mean: f64,
+        /// Shape r (> 0).
+        shape: f64,
+    },
+    /// Conway–Maxwell–Poisson, P(n) ∝ λⁿ/(n!)^ν.
+    ComPoisson {
+        /// Rate-like parameter λ (> 0).
+        lambda: f64,
+        /// Dispersion ν (> 0; < 1 over-, > 1 under-dispersed).
+        nu: f64,
+    },
+    /// A probability table P(0), P(1), … (mass left out below [`TAIL_MASS`]).
+    Empirical {
+        /// The table.
+        pmf: Vec<f64>,
+    },
+}
+
+impl CountParams {
+    /// The family of these parameters.
+    pub fn family(&self) -> CountFamily {
+        match self {
+            CountParams::Poisson { .. } => CountFamily::Poisson,
+            CountParams::NegativeBinomial { .. } => CountFamily::NegativeBinomial,
+            CountParams::ComPoisson { .. } => CountFamily::ComPoisson,
+            CountParams::Empirical { .. } => CountFamily::Empirical,
+        }
+    }
+}
+
+/// Why a count distribution could not be built.
+#[derive(Debug, thiserror::Error, PartialEq)]
+pub enum CountError {
+    /// A parameter is out of its domain.
+    #[error("count distribution parameter out of range: {0}")]
+    BadParameter(String),
+    /// The table would be longer than [`MAX_TABLE_LEN`].
+    #[error("count distribution needs more than {MAX_TABLE_LEN} table entries (mean too large?)")]
+    TableTooLong,
+}
+
+/// A count distribution ready for the likelihood: parameters plus its probability table.
+#[derive(Clone, Debug)]
+pub struct CountDist {
+    params: CountParams,
+    pmf: Vec<f64>,
+    ln_pmf: Vec<f64>,
+    ln_fact: Vec<f64>,
+    /// ln of the geometric ratio used past the end of the table (empirical and COM only).
+    tail_ln_ratio: f64,
+    mean: f64,
+    variance: f64,
+    // Closed-form constants.
+    ln_mean: f64,
+    nb_p: f64,
+    nb_ln_p: f64,
+    nb_ln_1mp: f64,
+    nb_ln_gamma_r: f64,
+}
+
+fn check_pos(name: &str, v: f64) -> Result<(), CountError> {
+    if v.is_finite() && v > 0.0 {
+        Ok(())
+    } else {
+        Err(CountError::BadParameter(format!(
+            "{name} = {v} must be finite and > 0"
+        )))
+    }
+}
+
+/// Builds a table from a log-pmf generator, stopping once past `mode_hint` with the remaining
+/// mass below [`TAIL_MASS`]. `ln_norm` is subtracted from every term.
+fn table_from(ln_term: impl Fn(u32) -> f64, mode_hint: f64) -> Result<Vec<f64>, CountError> {
+    let mut pmf = Vec::new();
+    let mut cum = 0.0f64;
+    for n in 0..MAX_TABLE_LEN as u32 {
+        let p = ln_term(n).exp();
+        pmf.push(p);
+        cum += p;
+        if (n as f64) > mode_hint && 1.0 - cum < TAIL_MASS {
+            return Ok(pmf);
+        }
+    }
+    Err(CountError::TableTooLong)
+}
+
+/// ln Z and the table of ln terms for COM-Poisson, summed until terms are negligible.
+fn com_log_terms(lambda: f64, nu: f64) -> Result<(f64, usize), CountError> {
+    let ll = lambda.ln();
+    let mode = lambda.powf(1.0 / nu);
+    let mut terms = Vec::new();
+    let mut best = f64::NEG_INFINITY;
+    for n in 0..(4 * MAX_TABLE_LEN) as u32 {
+        let t = n as f64 * ll - nu * ln_factorial(n);
+        best = best.max(t);
+        terms.push(t);
+        if (n as f64) > mode && t < best - 45.0 {
+            return Ok((log_sum_exp(&terms), terms.len()));
+        }
+    }
+    Err(CountError::TableTooLong)
+}
+
+impl CountDist {
+    /// Builds the distribution and its table, validating the parameters.
+    pub fn new(params: CountParams) -> Result<Self, CountError> {
+        let (pmf, mean_hint) = match &params {
+            CountParams::Poisson { mean } => {
+                check_pos("mean", *mean)?;
+                let lm = mean.ln();
+                (
+                    table_from(|n| n as f64 * lm - mean - ln_factorial(n), *mean)?,
+                    *mean,
+                )
+            }
+            CountParams::NegativeBinomial { mean, shape } => {
+                check_pos("mean", *mean)?;
+                check_pos("shape", *shape)?;
+                let (r, m) = (*shape, *mean);
+                let p = r / (r + m);
+                let (lp, l1p, lgr) = (p.ln(), (m / (r + m)).ln(), ln_gamma(r));
+                (
+                    table_from(
+                        |n| {
+                            ln_gamma(r + n as f64) - lgr - ln_factorial(n) + r * lp + n as f64 * l1p
+                        },
+                        m,
+                    )?,
+                    m,
+                )
+            }
+            CountParams::ComPoisson { lambda, nu } => {
+                check_pos("lambda", *lambda)?;
+                check_pos("nu", *nu)?;
+                let (lz, _) = com_log_terms(*lambda, *nu)?;
+                let ll = lambda.ln();
+                let mode = lambda.powf(1.0 / nu);
+                (
+                    table_from(|n| n as f64 * ll - nu * ln_factorial(n) - lz, mode)?,
+                    mode,
+                )
+            }
+            CountParams::Empirical { pmf } => {
+                if pmf.is_empty() {
+                    return Err(CountError::BadParameter("empty count table".into()));
+                }
+                if pmf.len() > MAX_TABLE_LEN {
+                    return Err(CountError::TableTooLong);
+                }
+                if let Some((n, p)) = pmf
+                    .iter()
+                    .enumerate()
+                    .find(|(_, p)| !(p.is_finite() && **p > 0.0))
+                {
+                    return Err(CountError::BadParameter(format!(
+                        "count table entry P({n}) = {p} must be finite and > 0"
+                    )));
+                }
+                let s: f64 = pmf.iter().sum();
+                if (s - 1.0).abs() > 1e-6 {
+                    return Err(CountError::BadParameter(format!(
+                        "count table sums to {s}, not 1"
+                    )));
+                }
+                (pmf.clone(), 0.0)
+            }
+        };
+        let _ = mean_hint;
+        let ln_pmf: Vec<f64> = pmf.iter().map(|p| p.ln()).collect();
+        let mean: f64 = pmf.iter().enumerate().map(|(n, p)| n as f64 * p).sum();
+        let m2: f64 = pmf
+            .iter()
+            .enumerate()
+            .map(|(n, p)| (n * n) as f64 * p)
+            .sum();
+        let variance = (m2 - mean * mean).max(0.0);
+        let nlen = pmf.len();
+        let tail_ln_ratio = if nlen >= 2 {
+            (ln_pmf[nlen - 1] - ln_pmf[nlen - 2]).min((0.95f64).ln())
+        } else {
+            (0.5f64).ln()
+        };
+        let mut d = CountDist {
+            ln_fact: ln_factorial_table(nlen + 1),
+            params,
+            pmf,
+            ln_pmf,
+            tail_ln_ratio,
+            mean,
+            variance,
+            ln_mean: 0.0,
+            nb_p: 0.0,
+            nb_ln_p: 0.0,
+            nb_ln_1mp: 0.0,
+            nb_ln_gamma_r: 0.0,
+        };
+        match d.params {
+            CountParams::Poisson { mean } => {
+                d.ln_mean = mean.ln();
+                d.mean = mean;
+                d.variance = mean;
+            }
+            CountParams::NegativeBinomial { mean, shape } => {
+                let p = shape / (shape + mean);
+                d.nb_p = p;
+                d.nb_ln_p = p.ln();
+                d.nb_ln_1mp = (mean / (shape + mean)).ln();
+                d.nb_ln_gamma_r = ln_gamma(shape);
+                d.mean = mean;
+                d.variance = mean + mean * mean / shape;
+            }
+            _ => {}
+        }
+        Ok(d)
+    }
+
+    /// The parameters.
+    pub fn params(&self) -> &CountParams {
+        &self.params
+    }
+    /// The family.
+    pub fn family(&self) -> CountFamily {
+        self.params.family()
+    }
+    /// P(0), P(1), …: the table the engine uses (mass left out below [`TAIL_MASS`]).
+    pub fn pmf(&self) -> &[f64] {
+        &self.pmf
+    }
+    /// Mean of the distribution.
+    pub fn mean(&self) -> f64 {
+        self.mean
+    }
+    /// Variance of the distribution.
+    pub fn variance(&self) -> f64 {
+        self.variance
+    }
+
+    /// ln P(n), including the geometric tail past the table for table-based families.
+    pub fn ln_pmf(&self, n: u32) -> f64 {
+        match self.params {
+            CountParams::Poisson { mean } => n as f64 * self.ln_mean - mean - ln_factorial(n),
+            CountParams::NegativeBinomial { shape, .. } => {
+                ln_gamma(shape + n as f64) - self.nb_ln_gamma_r - ln_factorial(n)
+                    + shape * self.nb_ln_p
+                    + n as f64 * self.nb_ln_1mp
+            }
+            _ => {
+                let n = n as usize;
+                if n < self.ln_pmf.len() {
+                    self.ln_pmf[n]
+                } else {
+                    let last = self.ln_pmf.len() - 1;
+                    self.ln_pmf[last] + (n - last) as f64 * self.tail_ln_ratio
+                }
+            }
+        }
+    }
+
+    /// `ln Φ^(k)(z)`, the log of the k-th derivative of the probability generating function at
+    /// `z ∈ [0, 1]` (DESIGN.md): Poisson and negative binomial in closed form, the others by the
+    /// finite sum `Σ_{n≥k} P(n)·n!/(n−k)!·z^(n−k)` evaluated by Horner's rule.
+    pub fn ln_gf_deriv(&self, k: u32, z: f64) -> f64 {
+        match self.params {
+            CountParams::Poisson { mean } => k as f64 * self.ln_mean - mean * (1.0 - z),
+            CountParams::NegativeBinomial { shape, .. } => {
+                let kf = k as f64;
+                self.nb_ln_gf_const(k) - (shape + kf) * (1.0 - (1.0 - self.nb_p) * z).ln()
+            }
+            _ => self.ln_gf_deriv_table(k, z),
+        }
+    }
+
+    /// Negative binomial: the part of `ln Φ^(k)` that does not depend on z,
+    /// `r ln p + k ln(1−p) + ln Γ(r+k) − ln Γ(r)`.
+    pub fn nb_ln_gf_const(&self, k: u32) -> f64 {
+        match self.params {
+            CountParams::NegativeBinomial { shape, .. } => {
+                let kf = k as f64;
+                shape * self.nb_ln_p + kf * self.nb_ln_1mp + ln_gamma(shape + kf)
+                    - self.nb_ln_gamma_r
+            }
+            _ => f64::NAN,
+        }
+    }
+
+    /// Negative binomial `1 − p` (0 for other families).
+    pub fn nb_one_minus_p(&self) -> f64 {
+        match self.params {
+            CountParams::NegativeBinomial { .. } => 1.0 - self.nb_p,
+            _ => 0.0,
+        }
+    }
+
+    fn ln_gf_deriv_table(&self, k: u32, z: f64) -> f64 {
+        let nlen = self.pmf.len();
+        let ku = k as usize;
+        let ln_k_fact = if ku < self.ln_fact.len() {
+            self.ln_fact[ku]
+        } else {
+            ln_factorial(k)
+        };
+        if ku >= nlen {
+            // Past the table every n ≥ k lies in the geometric tail P(n) = P(N)ρ^(n−N):
+            // Σ_{n≥k} P(N)ρ^(n−N) n!/(n−k)! z^(n−k) = P(N) ρ^(k−N) k! / (1 − ρz)^(k+1).
+            let last = nlen - 1;
+            let lr = self.tail_ln_ratio;
+            return self.ln_pmf[last] + (ku - last) as f64 * lr + ln_k_fact
+                - (k as f64 + 1.0) * (1.0 - lr.exp() * z).ln();
+        }
+        // Horner on Σ_j P(k+j)·C(k+j, j)·z^j, innermost term first.
+        let mut acc = self.pmf[nlen - 1];
+        let mut n = nlen - 1;
+        while n > ku {
+            // acc ← P(n−1) + z·n/(n−k)·acc
+            acc = self.pmf[n - 1] + z * (n as f64) / ((n - ku) as f64) * acc;
+            n -= 1;
+        }
+        ln_k_fact + acc.ln()
+    }
+}
+
+// ---------------------------------------------------------------------------------------------
+// Fitting
+// ---------------------------------------------------------------------------------------------
+
+/// Count histogram: (value, multiplicity), for likelihoods that only depend on distinct values.
+fn histogram(counts: &[u32]) -> Vec<(u32, u32)> {
+    let mut v: Vec<u32> = counts.to_vec();
+    v.sort_unstable();
+    let mut h: Vec<(u32, u32)> = Vec::new();
+    for x in v {
+        match h.last_mut() {
+            Some((val, m)) if *val == x => *m += 1,
+            _ => h.push((x, 1)),
+        }
+    }
+    h
+}
+
+fn sample_mean(counts: &[u32]) -> f64 {
+    counts.iter().map(|&c| c as f64).sum::<f64>() / counts.len().max(1) as f64
+}
+
+/// Smallest mean a fit may return: half a spike spread over all training trials, so a cell that
+/// never fired still assigns a finite probability to a spike.
+fn mean_floor(n_trials: usize) -> f64 {
+    0.5 / (n_trials.max(1) as f64)
+}
+
+/// Poisson maximum likelihood (the sample mean, floored).
+pub fn fit_poisson(counts: &[u32]) -> CountParams {
+    CountParams::Poisson {
+        mean: sample_mean(counts).max(mean_floor(counts.len())),
+    }
+}
+
+/// Negative binomial maximum likelihood: the mean is the sample mean; the shape maximises the
+/// profile likelihood (golden-section search on ln r over [1e-2, 1e4]). Data with variance at or
+/// below the mean drive r to the upper bound, where the family is Poisson in all but name.
+pub fn fit_negative_binomial(counts: &[u32]) -> CountParams {
+    let m = sample_mean(counts).max(mean_floor(counts.len()));
+    let h = histogram(counts);
+    let t = counts.len() as f64;
+    let ll = |r: f64| -> f64 {
+        let lp = (r / (r + m)).ln();
+        let l1p = (m / (r + m)).ln();
+        let lgr = ln_gamma(r);
+        h.iter()
+            .map(|&(n, c)| c as f64 * (ln_gamma(r + n as f64) - lgr + n as f64 * l1p))
+            .sum::<f64>()
+            + t * r * lp
+    };
+    let (mut a, mut b) = ((1e-2f64).ln(), (1e4f64).ln());
+    let g = (5f64.sqrt() - 1.0) / 2.0;
+    let mut x1 = b - g * (b - a);
+    let mut x2 = a + g * (b - a);
+    let (mut f1, mut f2) = (ll(x1.exp()), ll(x2.exp()));
+    for _ in 0..80 {
+        if f1 < f2 {
+            a = x1;
+            x1 = x2;
+            f1 = f2;
+            x2 = a + g * (b - a);
+            f2 = ll(x2.exp());
+        } else {
+            b = x2;
+            x2 = x1;
+            f2 = f1;
+            x1 = b - g * (b - a);
+            f1 = ll(x1.exp());
+        }
+    }
+    CountParams::NegativeBinomial {
+        mean: m,
+        shape: ((a + b) / 2.0).exp(),
+    }
+}
+
+/// Moments of n and ln n! under COM-Poisson(λ, ν): (ln Z, E n, E ln n!, Var n, Cov, Var ln n!).
+fn com_moments(lambda: f64, nu: f64) -> Option<[f64; 6]> {
+    let (lz, len) = com_log_terms(lambda, nu).ok()?;
+    let ll = lambda.ln();
+    let mut s = [0.0f64; 5];
+    for n in 0..len as u32 {
+        let lf = ln_factorial(n);
+        let p = (n as f64 * ll - nu * lf - lz).exp();
+        let x = n as f64;
+        s[0] += p * x;
+        s[1] += p * lf;
+        s[2] += p * x * x;
+        s[3] += p * x * lf;
+        s[4] += p * lf * lf;
+    }
+    Some([
+        lz,
+        s[0],
+        s[1],
+        s[2] - s[0] * s[0],
+        s[3] - s[0] * s[1],
+        s[4] - s[1] * s[1],
+    ])
+}
+
+/// Conway–Maxwell–Poisson maximum likelihood by Newton's method in (ln λ, ν), an exponential
+/// family with sufficient statistics (n, ln n!), so the log-likelihood is concave there.
+/// ν is kept in [0.05, 30]. Returns `None` when every count is zero (no information on ν).
+pub fn fit_com_poisson(counts: &[u32]) -> Option<CountParams> {
+    if counts.iter().all(|&c| c == 0) || counts.is_empty() {
+        return None;
+    }
+    let t = counts.len() as f64;
+    let ybar = sample_mean(counts);
+    let lbar = counts.iter().map(|&c| ln_factorial(c)).sum::<f64>() / t;
+    let ll = |th: f64, nu: f64| -> Option<f64> {
+        let (lz, _) = com_log_terms(th.exp(), nu).ok()?;
+        Some(th * ybar - nu * lbar - lz)
+    };
+    let (mut th, mut nu) = (ybar.max(1e-3).ln(), 1.0f64);
+    let mut cur = ll(th, nu)?;
+    for _ in 0..100 {
+        let [_, en, el, vn, cnl, vl] = com_moments(th.exp(), nu)?;
+        let g = [ybar - en, el - lbar];
+        // Hessian of ℓ in (θ, ν): [[−Var n, Cov], [Cov, −Var ln n!]].
+        let (h11, h12, h22) = (-vn, cnl, -vl);
+        let det = h11 * h22 - h12 * h12;
+        let (mut d1, mut d2) = if det.abs() > 1e-14 && det > 0.0 {
+            (
+                -(h22 * g[0] - h12 * g[1]) / det,
+                -(-h12 * g[0] + h11 * g[1]) / det,
+            )
+        } else {
+            (g[0] * 0.1, g[1] * 0.1)
+        };
+        let mut step_ok = false;
+        for _ in 0..40 {
+            let (nth, nnu) = (th + d1, (nu + d2).clamp(0.05, 30.0));
+            if let Some(v) = ll(nth, nnu) {
+                if v >= cur - 1e-12 {
+                    let gain = v - cur;
+                    th = nth;
+                    nu = nnu;
+                    cur = v;
+                    step_ok = gain > 1e-11;
+                    break;
+                }
+            }
+            d1 *= 0.5;
+            d2 *= 0.5;
+        }
+        if !step_ok || (g[0].abs() < 1e-10 && g[1].abs() < 1e-10) {
+            break;
+        }
+    }
+    Some(CountParams::ComPoisson {
+        lambda: th.exp(),
+        nu,
+    })
+}
+
+/// Smoothed empirical: `P(n) = (c_n + a·P_nb(n)) / (T + a)` with `a` =
+/// [`EMPIRICAL_SMOOTHING_TRIALS`] and `P_nb` the negative binomial fit to the same counts, so the
+/// histogram keeps its shape and no count, seen or not, gets probability 0.
+pub fn fit_empirical(counts: &[u32]) -> Result<CountParams, CountError> {
+    let base = CountDist::new(fit_negative_binomial(counts))?;
+    let a = EMPIRICAL_SMOOTHING_TRIALS;
+    let t = counts.len() as f64;
+    let max_obs = counts.iter().copied().max().unwrap_or(0) as usize;
+    let len = base.pmf().len().max(max_obs + 1);
+    if len > MAX_TABLE_LEN {
+        return Err(CountError::TableTooLong);
+    }
+    let mut pmf = vec![0.0; len];
+    for &c in counts {
+        pmf[c as usize] += 1.0;
+    }
+    for (n, p) in pmf.iter_mut().enumerate() {
+        *p = (*p + a * base.ln_pmf(n as u32).exp()) / (t + a);
+    }
+    Ok(CountParams::Empirical { pmf })
+}
+
+/// Fits one family to the counts.
+pub fn fit_family(family: CountFamily, counts: &[u32]) -> Option<CountParams> {
+    match family {
+        CountFamily::Poisson => Some(fit_poisson(counts)),
+        CountFamily::NegativeBinomial => Some(fit_negative_binomial(counts)),
+        CountFamily::ComPoisson => fit_com_poisson(counts),
+        CountFamily::Empirical => fit_empirical(counts).ok(),
+    }
+}
+
+/// The outcome of choosing a family for one cell.
+#[derive(Clone, Debug)]
+pub struct FamilyChoice {
+    /// The chosen, refitted on all trials.
+    pub params: CountParams,
+    /// Held-out log-likelihood per trial for each family tried (`None` where the fit failed).
+    pub held_out: Vec<(CountFamily, Option<f64>)>,
+}
+
+/// Held-out log-likelihood margin (nats, summed over trials) a more complex family must win by.
+pub const SELECTION_MARGIN_NATS: f64 = 0.5;
+
+/// Chooses a family among `candidates` by k-fold held-out log-likelihood over trials
+/// (k = min(5, trials); trial i is in fold i mod k), refits the winner on all counts.
+/// Near-ties (within [`SELECTION_MARGIN_NATS`]) go to the simpler family.
+pub fn choose_family(counts: &[u32], candidates: &[CountFamily]) -> FamilyChoice {
+    let t = counts.len();
+    let mut cands: Vec<CountFamily> = candidates.to_vec();
+    cands.sort();
+    cands.dedup();
+    if cands.is_empty() {
+        cands.push(CountFamily::Poisson);
+    }
+    let k = t.clamp(1, 5);
+    let mut held_out = Vec::new();
+    let mut best: Option<(CountFamily, f64)> = None;
+    for &fam in &cands {
+        let score = if t < 2 || cands.len() == 1 {
+            Some(0.0)
+        } else {
+            let mut total = 0.0;
+            let mut ok = true;
+            for fold in 0..k {
+                let train: Vec<u32> = counts
+                    .iter()
+                    .enumerate()
+                    .filter(|(i, _)| i % k != fold)
+                    .map(|(_, c)| *c)
+                    .collect();
+                match fit_family(fam, &train).and_then(|p| CountDist::new(p).ok()) {
+                    Some(d) => {
+                        total += counts
+                            .iter()
+                            .enumerate()
+                            .filter(|(i, _)| i % k == fold)
+                            .map(|(_, &c)| d.ln_pmf(c))
+                            .sum::<f64>();
+                    }
+                    None => {
+                        ok = false;
+                        break;
+                    }
+                }
+            }
+            ok.then_some(total)
+        };
+        held_out.push((fam, score.map(|s| s / t.max(1) as f64)));
+        if let Some(s) = score {
+            if best.is_none_or(|(_, b)| s > b + SELECTION_MARGIN_NATS) {
+                best = Some((fam, s));
+            }
+        }
+    }
+    let fam = best.map(|b| b.0).unwrap_or(CountFamily::Poisson);
+    let params = fit_family(fam, counts).unwrap_or_else(|| fit_poisson(counts));
+    FamilyChoice { params, held_out }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use statrs::distribution::{Discrete, NegativeBinomial, Poisson};
+
+    fn close(a: f64, b: f64, rel: f64) -> bool {
+        (a - b).abs() <= rel * b.abs().max(1e-300)
+    }
+
+    #[test]
+    fn poisson_pmf_matches_scipy_and_statrs() {
+        // SciPy 1.17.1 poisson.pmf(n, 3.5), n = 0..4 (shared/REFERENCE-VALUES.md).
+        let want = [
+            0.0301973834,
+            0.105690842,
+            0.184958973,
+            0.215785469,
+            0.188812285,
+        ];
+        let d = CountDist::new(CountParams::Poisson { mean: 3.5 }).unwrap();
+        let sr = Poisson::new(3.5).unwrap();
+        for (n, w) in want.iter().enumerate() {
+            assert!(close(d.pmf()[n], *w, 1e-8), "n={n}");
+            assert!(close(d.pmf()[n], sr.pmf(n as u64), 1e-12));
+        }
+        let left: f64 = 1.0 - d.pmf().iter().sum::<f64>();
+        assert!(left < TAIL_MASS, "mass left out {left}");
+    }
+
+    #[test]
+    fn negative_binomial_pmf_matches_scipy_and_statrs() {
+        // SciPy 1.17.1 nbinom.pmf(n, 2, 2/7) (r = 2, mean 5), n = 0..3; variance 17.5.
+        let want = [0.0816326531, 0.116618076, 0.124947938, 0.118998037];
+        let d = CountDist::new(CountParams::NegativeBinomial {
+            mean: 5.0,
+            shape: 2.0,
+        })
+        .unwrap();
+        // statrs parameterises by (r, p) with p the success probability r/(r+mean).
+        let sr = NegativeBinomial::new(2.0, 2.0 / 7.0).unwrap();
+        for (n, w) in want.iter().enumerate() {
+            assert!(close(d.pmf()[n], *w, 1e-8), "n={n}");
+            assert!(close(d.pmf()[n], sr.pmf(n as u64), 1e-10));
+        }
+        assert!(close(d.variance(), 17.5, 1e-12));
+        assert!(
+            close(d.variance() / d.mean(), 3.5, 1e-12),
+            "Fano factor 3.5"
+        );
+    }
+
+    #[test]
+    fn com_poisson_pmf_and_moments_match_direct_summation() {
+        // COM-Poisson λ=2, ν=1.5 by direct summation (REFERENCE-VALUES.md; Shmueli et al. 2005).
+        let d = CountDist::new(CountParams::ComPoisson {
+            lambda: 2.0,
+            nu: 1.5,
+        })
+        .unwrap();
+        let want = [0.195210504, 0.390421009, 0.276069343, 0.10625914];
+        for (n, w) in want.iter().enumerate() {
+            assert!(close(d.pmf()[n], *w, 1e-7), "n={n} got {}", d.pmf()[n]);
+        }
+        assert!(close(d.mean(), 1.39577919, 1e-7));
+        assert!(close(d.variance(), 1.07380622, 1e-7));
+        // λ=2, ν=0.5: over-dispersed.
+        let o = CountDist::new(CountParams::ComPoisson {
+            lambda: 2.0,
+            nu: 0.5,
+        })
+        .unwrap();
+        assert!(close(o.mean(), 4.55442393, 1e-7));
+        assert!(close(o.variance(), 7.92158416, 1e-7));
+    }
+
+    /// Direct sum A_k(s) = Σ_{n≥k} P(n) n!/(n−k)! s^(n−k) in log space, far past any table.
+    fn direct_gf(d: &CountDist, k: u32, s: f64) -> f64 {
+        let terms: Vec<f64> = (k..4000)
+            .map(|n| d.ln_pmf(n) + ln_factorial(n) - ln_factorial(n - k) + (n - k) as f64 * s.ln())
+            .collect();
+        log_sum_exp(&terms)
+    }
+
+    #[test]
+    fn generating_function_derivatives_match_reference_values() {
+        // Poisson(5), s = 0.7: k=2 → 5.578254004, k=0 → 0.2231301601 (SciPy direct sum; equals
+        // μ^k e^(−μF), the inhomogeneous Poisson likelihood).
+        let p = CountDist::new(CountParams::Poisson { mean: 5.0 }).unwrap();
+        assert!(close(p.ln_gf_deriv(2, 0.7).exp(), 5.578254004, 1e-9));
+        assert!(close(p.ln_gf_deriv(0, 0.7).exp(), 0.2231301601, 1e-9));
+        // Negative binomial closed form (Johnson, Kemp & Kotz 2005, Ch. 5 PGF), REFERENCE-VALUES.md.
+        for (r, m, f, k, want) in [
+            (2.0, 5.0, 0.3, 2, 3.998334027),
+            (2.0, 5.0, 0.3, 0, 0.3265306122),
+            (0.5, 8.0, 0.6, 3, 1.980572258),
+            (10.0, 4.0, 0.25, 5, 588.9182304),
+        ] {
+            let d = CountDist::new(CountParams::NegativeBinomial { mean: m, shape: r }).unwrap();
+            let got = d.ln_gf_deriv(k, 1.0 - f).exp();
+            assert!(close(got, want, 1e-8), "r={r} m={m} k={k}: {got} vs {want}");
+            // Closed form equals the direct sum.
+            assert!((d.ln_gf_deriv(k, 1.0 - f) - direct_gf(&d, k, 1.0 - f)).abs() < 1e-9);
+        }
+        // COM-Poisson λ=5, ν=2, s=0.7 (direct sum; derived): A0..A3.
+        let c = CountDist::new(CountParams::ComPoisson {
+            lambda: 5.0,
+            nu: 2.0,
+        })
+        .unwrap();
+        for (k, want) in [
+            (0, 0.5308009516),
+            (1, 1.209800074),
+            (2, 2.063149548),
+            (3, 2.746716107),
+        ] {
+            let got = c.ln_gf_deriv(k, 0.7).exp();
+            assert!(close(got, want, 1e-8), "k={k}: {got} vs {want}");
+        }
+    }
+
+    #[test]
+    fn end_of_window_is_k_factorial_times_pmf() {
+        // Φ^(k)(0) = k!·P(k) (DESIGN.md).
+        let c = CountDist::new(CountParams::ComPoisson {
+            lambda: 3.0,
+            nu: 0.7,
+        })
+        .unwrap();
+        for k in 0..12 {
+            let want = ln_factorial(k) + c.ln_pmf(k);
+            assert!((c.ln_gf_deriv(k, 0.0) - want).abs() < 1e-12);
+        }
+    }
+
+    #[test]
+    fn negative_binomial_fit_recovers_parameters() {
+        // Deterministic sample: the NB(r=3, mean=6) quantiles at evenly spaced probabilities.
+        let d = CountDist::new(CountParams::NegativeBinomial {
+            mean: 6.0,
+            shape: 3.0,
+        })
+        .unwrap();
+        let mut counts = Vec::new();
+        for i in 0..2000 {
+            let u = (i as f64 + 0.5) / 2000.0;
+            let mut c = 0.0;
+            let mut n = 0;
+            for (j, p) in d.pmf().iter().enumerate() {
+                c += p;
+                n = j;
+                if c >= u {
+                    break;
+                }
+            }
+            counts.push(n as u32);
+        }
+        match fit_negative_binomial(&counts) {
+            CountParams::NegativeBinomial { mean, shape } => {
+                assert!((mean - 6.0).abs() < 0.05, "mean {mean}");
+                assert!((shape - 3.0).abs() < 0.3, "shape {shape}");
+            }
+            _ => unreachable!(),
+        }
+        let ch = choose_family(&counts, &CountFamily::ALL);
+        assert_ne!(
+            ch.params.family(),
+            CountFamily::Poisson,
+            "over-dispersed data"
+        );
+    }
+
+    #[test]
+    fn com_fit_recovers_under_dispersion() {
+        let d = CountDist::new(CountParams::ComPoisson {
+            lambda: 20.0,
+            nu: 2.0,
+        })
+        .unwrap();
+        let mut counts = Vec::new();
+        for i in 0..3000 {
+            let u = (i as f64 + 0.5) / 3000.0;
+            let mut c = 0.0;
+            let mut n = 0;
+            for (j, p) in d.pmf().iter().enumerate() {
+                c += p;
+                n = j;
+                if c >= u {
+                    break;
+                }
+            }
+            counts.push(n as u32);
+        }
+        match fit_com_poisson(&counts).unwrap() {
+            CountParams::ComPoisson { lambda, nu } => {
+                assert!((nu - 2.0).abs() < 0.25, "nu {nu}");
+                assert!((lambda.ln() - 20f64.ln()).abs() < 0.5, "lambda {lambda}");
+            }
+            _ => unreachable!(),
+        }
+        let ch = choose_family(&counts, &CountFamily::ALL);
+        assert!(
+            matches!(
+                ch.params.family(),
+                CountFamily::ComPoisson | CountFamily::Empirical
+            ),
+            "under-dispersed data chose {:?}",
+            ch.params.family()
+        );
+    }
+
+    #[test]
+    fn empirical_never_zero_and_sums_to_one() {
+        let counts = [0u32, 3, 3, 4, 9];
+        let p = fit_empirical(&counts).unwrap();
+        let d = CountDist::new(p).unwrap();
+        assert!(d.pmf().iter().all(|&p| p > 0.0));
+        assert!((d.pmf().iter().sum::<f64>() - 1.0).abs() < 1e-11);
+        assert!(d.ln_pmf(500).is_finite());
+        assert!(d.ln_gf_deriv(500, 0.5).is_finite());
+    }
+
+    #[test]
+    fn all_zero_counts_still_fit() {
+        let z = [0u32; 10];
+        let ch = choose_family(&z, &CountFamily::ALL);
+        let d = CountDist::new(ch.params).unwrap();
+        assert!(d.ln_pmf(1).is_finite());
+    }
+}

@@ -1,0 +1,224 @@
+//! A recorded dataset in ticks: trials (id, onset tick, presented stimulus) and spikes
+//! (unit, tick), plus the one rule that puts a spike into a bin — shared with the daemon — and
+//! the chronological event stream that offline decoding, replay and tests feed to the engine.
+//!
+//! Must not: parse files (the CLI reads CSV and session files into this type).
+
+/// One trial.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Trial {
+    /// Trial id (unique within the dataset).
+    pub id: u64,
+    /// Onset tick.
+    pub onset: i64,
+    /// Presented stimulus name, if known.
+    pub stimulus: Option<String>,
+}
+
+/// Trials and spikes on one clock.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Dataset {
+    /// Ticks per second.
+    pub tick_rate_hz: f64,
+    /// Trials, sorted by onset.
+    pub trials: Vec<Trial>,
+    /// Spikes (tick, unit), sorted.
+    pub spikes: Vec<(i64, u32)>,
+    /// Every unit id seen in the spike table, plus any declared without spikes, sorted.
+    pub units: Vec<u32>,
+}
+
+/// The bin of `tick` in a trial with `onset`, or None outside [onset, onset + n_bins·bin_ticks).
+#[inline]
+pub fn bin_of(tick: i64, onset: i64, bin_ticks: i64, n_bins: usize) -> Option<usize> {
+    if tick < onset {
+        return None;
+    }
+    let b = (tick - onset) / bin_ticks;
+    (b < n_bins as i64).then_some(b as usize)
+}
+
+/// Converts seconds to ticks, the one place this happens (on reading).
+#[inline]
+pub fn seconds_to_ticks(t: f64, tick_rate_hz: f64) -> i64 {
+    (t * tick_rate_hz).round() as i64
+}
+
+/// Per-unit, per-trial window contents (see [`Dataset::windows`]).
+#[derive(Clone, Debug, Default)]
+pub struct UnitWindows {
+    /// counts[u][trial]
+    pub counts: Vec<Vec<u32>>,
+    /// times[u][trial]: spike times in bins from onset.
+    pub times: Vec<Vec<Vec<f64>>>,
+}
+
+/// One input to the engine, in the order a live session would deliver it.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Event {
+    /// A trial opens.
+    Open {
+        /// Trial id.
+        trial: u64,
+        /// Onset tick.
+        onset: i64,
+        /// Presented stimulus name.
+        stimulus: Option<String>,
+    },
+    /// A batch of spikes (tick, unit), all after the previous watermark, then the new watermark.
+    Batch {
+        /// Spikes.
+        spikes: Vec<(i64, u32)>,
+        /// Everything up to and including this tick has been sent.
+        watermark: i64,
+    },
+}
+
+impl Dataset {
+    /// Stimulus names in order of first appearance.
+    pub fn stimulus_names(&self) -> Vec<String> {
+        let mut v: Vec<String> = Vec::new();
+        for t in &self.trials {
+            if let Some(s) = &t.stimulus {
+                if !v.contains(s) {
+                    v.push(s.clone());
+                }
+            }
+        }
+        v
+    }
+
+    /// The last tick any trial window or spike touches, given the window length in ticks.
+    pub fn end_tick(&self, window_ticks: i64) -> i64 {
+        let t = self
+            .trials
+            .iter()
+            .map(|t| t.onset + window_ticks)
+            .max()
+            .unwrap_or(0);
+        let s = self.spikes.last().map(|x| x.0 + 1).unwrap_or(0);
+        t.max(s)
+    }
+
+    /// The session as an acquisition system would deliver it: batches of `batch_ticks` ticks
+    /// (e.g. 1 ms), each trial opened in the batch that contains its onset, before that batch.
+    pub fn events(&self, batch_ticks: i64, window_ticks: i64) -> Vec<Event> {
+        let batch_ticks = batch_ticks.max(1);
+        let mut out = Vec::new();
+        let start = self
+            .trials
+            .first()
+            .map(|t| t.onset)
+            .unwrap_or(0)
+            .min(self.spikes.first().map(|s| s.0).unwrap_or(0));
+        let end = self.end_tick(window_ticks);
+        let mut trials = self.trials.iter().peekable();
+        let mut si = 0;
+        let mut wm = start - 1;
+        while wm < end {
+            let next = wm + batch_ticks;
+            while let Some(t) = trials.peek() {
+                if t.onset <= next {
+                    out.push(Event::Open {
+                        trial: t.id,
+                        onset: t.onset,
+                        stimulus: t.stimulus.clone(),
+                    });
+                    trials.next();
+                } else {
+                    break;
+                }
+            }
+            let from = si;
+            while si < self.spikes.len() && self.spikes[si].0 <= next {
+                si += 1;
+            }
+            out.push(Event::Batch {
+                spikes: self.spikes[from..si].to_vec(),
+                watermark: next,
+            });
+            wm = next;
+        }
+        out
+    }
+
+    /// For every unit in `units` (index order) and every trial: the window's spike count and
+    /// spike times in bin units from onset. One pass over the trial windows.
+    pub fn windows(&self, units: &[u32], bin_ticks: i64, n_bins: usize) -> UnitWindows {
+        let index: std::collections::HashMap<u32, usize> =
+            units.iter().enumerate().map(|(i, &u)| (u, i)).collect();
+        let nt = self.trials.len();
+        let mut counts = vec![vec![0u32; nt]; units.len()];
+        let mut times = vec![vec![Vec::new(); nt]; units.len()];
+        let window = bin_ticks * n_bins as i64;
+        for (i, t) in self.trials.iter().enumerate() {
+            let a = self.spikes.partition_point(|s| s.0 < t.onset);
+            let b = self.spikes.partition_point(|s| s.0 < t.onset + window);
+            for &(tick, unit) in &self.spikes[a..b] {
+                if let Some(&u) = index.get(&unit) {
+                    counts[u][i] += 1;
+                    times[u][i].push((tick - t.onset) as f64 / bin_ticks as f64);
+                }
+            }
+        }
+        UnitWindows { counts, times }
+    }
+
+    /// Spikes that fall in no trial window.
+    pub fn spikes_outside_windows(&self, window_ticks: i64) -> usize {
+        // Trials are sorted by onset; sweep with the latest window end seen.
+        let mut n = 0;
+        let mut ti = 0;
+        let mut covered_until = i64::MIN; // exclusive end of the union of windows started so far
+        let mut onsets: Vec<i64> = self.trials.iter().map(|t| t.onset).collect();
+        onsets.sort_unstable();
+        for &(tick, _) in &self.spikes {
+            while ti < onsets.len() && onsets[ti] <= tick {
+                covered_until = covered_until.max(onsets[ti] + window_ticks);
+                ti += 1;
+            }
+            if tick >= covered_until {
+                n += 1;
+            }
+        }
+        n
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn bin_rule_is_half_open() {
+        assert_eq!(bin_of(100, 100, 10, 5), Some(0));
+        assert_eq!(bin_of(109, 100, 10, 5), Some(0));
+        assert_eq!(bin_of(110, 100, 10, 5), Some(1));
+        assert_eq!(bin_of(149, 100, 10, 5), Some(4));
+        assert_eq!(bin_of(150, 100, 10, 5), None);
+        assert_eq!(bin_of(99, 100, 10, 5), None);
+    }
+
+    #[test]
+    fn outside_window_count() {
+        let d = Dataset {
+            tick_rate_hz: 1000.0,
+            trials: vec![
+                Trial {
+                    id: 1,
+                    onset: 10,
+                    stimulus: None,
+                },
+                Trial {
+                    id: 2,
+                    onset: 15,
+                    stimulus: None,
+                },
+            ],
+            spikes: vec![(5, 1), (10, 1), (24, 1), (25, 1), (40, 1)],
+            units: vec![1],
+        };
+        // Windows [10, 20) ∪ [15, 25): 5, 25 and 40 fall outside.
+        assert_eq!(d.spikes_outside_windows(10), 3);
+    }
+}

@@ -1,0 +1,1014 @@
+//! The decoding engine: a pure state machine. Input: trial opened at an onset tick, spike
+//! (unit, tick), advance to a watermark tick, label, cancel. Output, through an [`EngineSink`]:
+//! a posterior frame for each completed bin, a decision when the policy fires, the trial's end,
+//! and per-unit summaries once the presented stimulus is known.
+//!
+//! Must not: read clocks, touch sockets or files, spawn threads, or allocate per bin once a trial
+//! is open (trial states are pooled; spike buffers keep their capacity). The daemon, offline
+//! decoding, validation and replay all drive this one type, so equal inputs give equal outputs.
+
+use crate::model::{CellKernel, Model};
+use crate::special::{entropy_bits, softmax_in_place};
+use crate::tally::UnitTally;
+use serde::{Deserialize, Serialize};
+use std::collections::{HashSet, VecDeque};
+use std::sync::Arc;
+
+/// Which likelihood turns spikes into a posterior.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize, Default, Hash)]
+#[serde(rename_all = "kebab-case")]
+pub enum Decoder {
+    /// Count-conditioned order statistics through the count distribution's generating function.
+    #[default]
+    OrderStats,
+    /// Inhomogeneous Poisson process with rate mean·q(b)/Δ.
+    InhomogeneousPoisson,
+    /// The window's spike count alone, evaluated at the end of the window.
+    CountOnly,
+}
+
+impl Decoder {
+    /// All decoders.
+    pub const ALL: [Decoder; 3] = [
+        Decoder::OrderStats,
+        Decoder::InhomogeneousPoisson,
+        Decoder::CountOnly,
+    ];
+    /// Name used on the command line and in files.
+    pub fn name(self) -> &'static str {
+        match self {
+            Decoder::OrderStats => "order-stats",
+            Decoder::InhomogeneousPoisson => "inhomogeneous-poisson",
+            Decoder::CountOnly => "count-only",
+        }
+    }
+    /// Parses a decoder name.
+    pub fn parse(s: &str) -> Option<Self> {
+        match s.trim().to_ascii_lowercase().as_str() {
+            "order-stats" | "order_stats" | "orderstats" => Some(Decoder::OrderStats),
+            "inhomogeneous-poisson" | "inhomogeneous_poisson" | "poisson" => {
+                Some(Decoder::InhomogeneousPoisson)
+            }
+            "count-only" | "count_only" | "count" => Some(Decoder::CountOnly),
+            _ => None,
+        }
+    }
+}
+
+/// When a trial's decision fires.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+pub struct DecisionPolicy {
+    /// Fire at the first bin whose top posterior reaches this (in (0, 1]).
+    pub threshold: f64,
+    /// ... but not before this much time after onset, in seconds.
+    pub min_time_s: f64,
+}
+
+impl Default for DecisionPolicy {
+    fn default() -> Self {
+        DecisionPolicy {
+            threshold: 0.9,
+            min_time_s: 0.02,
+        }
+    }
+}
+
+/// Engine settings; validated by [`Engine::new`] and the setters.
+#[derive(Clone, Debug, PartialEq)]
+pub struct EngineConfig {
+    /// Acquisition clock ticks per second (declared once per session).
+    pub tick_rate_hz: f64,
+    /// The decoder.
+    pub decoder: Decoder,
+    /// Decision policy.
+    pub policy: DecisionPolicy,
+    /// Prior override (None: the model's prior).
+    pub prior: Option<Vec<f64>>,
+    /// How far behind the watermark an onset may arrive and still be decoded, seconds.
+    pub history_s: f64,
+}
+
+impl EngineConfig {
+    /// Defaults for a clock of `tick_rate_hz`.
+    pub fn new(tick_rate_hz: f64) -> Self {
+        EngineConfig {
+            tick_rate_hz,
+            decoder: Decoder::default(),
+            policy: DecisionPolicy::default(),
+            prior: None,
+            history_s: 2.0,
+        }
+    }
+}
+
+/// Why the engine refused an input. Every one is also counted in [`Counters`].
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum EngineError {
+    /// Configuration that cannot work.
+    #[error("engine configuration: {0}")]
+    Config(String),
+    /// Spike at or before the watermark.
+    #[error("spike of unit {unit} at tick {tick} is at or behind the watermark {watermark}")]
+    LateSpike {
+        /// Unit id.
+        unit: u32,
+        /// Tick.
+        tick: i64,
+        /// Watermark.
+        watermark: i64,
+    },
+    /// Spike of a unit the model does not have.
+    #[error("unit {0} is not in the model")]
+    UnknownUnit(u32),
+    /// A watermark earlier than the current one.
+    #[error("watermark went backwards from {from} to {to}")]
+    WatermarkBackwards {
+        /// Current.
+        from: i64,
+        /// Offered.
+        to: i64,
+    },
+    /// A trial id already open or recently ended.
+    #[error("trial {0} was already opened")]
+    DuplicateTrial(u64),
+    /// Onset too far behind the watermark for the retained spike history.
+    #[error("trial {trial} onset tick {onset} is more than the history allowance behind the watermark {watermark}")]
+    StaleOnset {
+        /// Trial id.
+        trial: u64,
+        /// Onset tick.
+        onset: i64,
+        /// Watermark.
+        watermark: i64,
+    },
+    /// Label or cancel for a trial the engine does not hold.
+    #[error("trial {0} is not open")]
+    UnknownTrial(u64),
+    /// Stimulus index outside the model.
+    #[error("stimulus index {0} is not in the model")]
+    UnknownStimulus(u32),
+}
+
+/// Running counts of everything the engine saw or refused.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct Counters {
+    /// Spikes accepted.
+    pub spikes: u64,
+    /// Spikes refused as late.
+    pub late_spikes: u64,
+    /// Spikes of units not in the model.
+    pub unknown_unit_spikes: u64,
+    /// Watermarks that went backwards.
+    pub watermark_backwards: u64,
+    /// Duplicate trial ids.
+    pub duplicate_trials: u64,
+    /// Onsets too far in the past.
+    pub stale_onsets: u64,
+    /// Labels or cancels for trials not held.
+    pub unknown_trials: u64,
+    /// Stimulus indices outside the model.
+    pub unknown_stimuli: u64,
+    /// Trials opened.
+    pub trials_opened: u64,
+    /// Trials that ran to the end of their window.
+    pub trials_completed: u64,
+    /// Trials cancelled.
+    pub trials_cancelled: u64,
+    /// Posterior frames produced.
+    pub frames: u64,
+    /// Decisions produced.
+    pub decisions: u64,
+    /// Completed trials whose label never came before they were evicted.
+    pub labels_missing: u64,
+}
+
+/// Why a decision fired.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum DecisionReason {
+    /// The top posterior reached the threshold after the minimum time.
+    Threshold,
+    /// The window ended: maximum a posteriori.
+    WindowEnd,
+}
+
+impl DecisionReason {
+    /// Name used in files.
+    pub fn name(self) -> &'static str {
+        match self {
+            DecisionReason::Threshold => "threshold",
+            DecisionReason::WindowEnd => "window-end",
+        }
+    }
+}
+
+/// One trial's decision.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Decision {
+    /// Trial id.
+    pub trial: u64,
+    /// Decided stimulus index.
+    pub stimulus: u32,
+    /// Its posterior.
+    pub posterior: f64,
+    /// Bin in which it fired.
+    pub bin: u32,
+    /// Why.
+    pub reason: DecisionReason,
+    /// Presented stimulus, if known at the time.
+    pub presented: Option<u32>,
+}
+
+/// A posterior frame for one completed bin of one trial.
+#[derive(Debug)]
+pub struct Frame<'a> {
+    /// Trial id.
+    pub trial: u64,
+    /// Bin index (0-based).
+    pub bin: u32,
+    /// Tick at which the bin ended (last tick inside it).
+    pub bin_end_tick: i64,
+    /// Posterior over stimuli.
+    pub posterior: &'a [f64],
+    /// Top stimulus.
+    pub top: u32,
+    /// Its posterior.
+    pub top_posterior: f64,
+    /// Entropy of the posterior in bits.
+    pub entropy_bits: f64,
+    /// Spikes of model units in the trial so far.
+    pub spikes: u32,
+}
+
+/// How a trial ended.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub enum TrialOutcome {
+    /// Ran to the end of its window.
+    Completed,
+    /// Cancelled by task control.
+    Cancelled,
+    /// Cancelled because the engine is stopping.
+    Shutdown,
+}
+
+/// The end of a trial.
+#[derive(Debug)]
+pub struct TrialEnd<'a> {
+    /// Trial id.
+    pub trial: u64,
+    /// Onset tick.
+    pub onset: i64,
+    /// Presented stimulus if known.
+    pub presented: Option<u32>,
+    /// How it ended.
+    pub outcome: TrialOutcome,
+    /// The decision (None if cancelled before one fired).
+    pub decision: Option<Decision>,
+    /// Spikes of model units in the window.
+    pub spikes: u32,
+    /// Last posterior (at the last completed bin).
+    pub posterior: &'a [f64],
+    /// Bins completed.
+    pub bins: u32,
+}
+
+/// Per-unit single-unit decoding of one labelled, completed trial, with running figures.
+#[derive(Debug)]
+pub struct UnitSummaries<'a> {
+    /// Trial id.
+    pub trial: u64,
+    /// Presented stimulus.
+    pub presented: u32,
+    /// Unit ids.
+    pub units: &'a [u32],
+    /// Each unit's end-of-window single-unit posterior for the presented stimulus.
+    pub presented_posterior: &'a [f64],
+    /// Each unit's maximum a posteriori stimulus.
+    pub decoded: &'a [u32],
+    /// Running single-unit accuracy over labelled trials so far.
+    pub accuracy: &'a [f64],
+    /// Running plug-in mutual information (bits) between presented and decoded stimulus.
+    pub info_bits: &'a [f64],
+    /// Labelled trials so far.
+    pub n_trials: u64,
+}
+
+/// Receives the engine's outputs. Borrowed data is valid only during the call.
+pub trait EngineSink {
+    /// A posterior frame.
+    fn frame(&mut self, _frame: &Frame<'_>) {}
+    /// A decision (exactly one per trial that is not cancelled first).
+    fn decision(&mut self, _decision: &Decision) {}
+    /// A trial ended.
+    fn trial_end(&mut self, _end: &TrialEnd<'_>) {}
+    /// Per-unit summaries for a labelled, completed trial.
+    fn unit_summaries(&mut self, _s: &UnitSummaries<'_>) {}
+}
+
+/// A sink that ignores everything.
+pub struct NullSink;
+impl EngineSink for NullSink {}
+
+struct TrialState {
+    id: u64,
+    onset: i64,
+    presented: Option<u32>,
+    model: Arc<Model>,
+    decoder: Decoder,
+    threshold: f64,
+    min_bin: u32,
+    ln_prior: Vec<f64>,
+    bin_ticks: i64,
+    next_bin: u32,
+    cursor: u64,
+    k: Vec<u32>,
+    total_spikes: u32,
+    /// Per (u, s): the count-dependent constant of the count term.
+    cconst: Vec<f64>,
+    /// Per (u, s): Σ ln q over the unit's spikes; at the end, the unit's full log-likelihood.
+    unit_ll: Vec<f64>,
+    pop_spike: Vec<f64>,
+    post: Vec<f64>,
+    decision: Option<Decision>,
+}
+
+impl TrialState {
+    fn blank(model: Arc<Model>) -> Self {
+        let (nu, ns) = (model.n_units(), model.n_stimuli());
+        TrialState {
+            id: 0,
+            onset: 0,
+            presented: None,
+            decoder: Decoder::OrderStats,
+            threshold: 1.0,
+            min_bin: 0,
+            ln_prior: vec![0.0; ns],
+            bin_ticks: 1,
+            next_bin: 0,
+            cursor: 0,
+            k: vec![0; nu],
+            total_spikes: 0,
+            cconst: vec![0.0; nu * ns],
+            unit_ll: vec![0.0; nu * ns],
+            pop_spike: vec![0.0; ns],
+            post: vec![0.0; ns],
+            decision: None,
+            model,
+        }
+    }
+
+    fn reset_counts(&mut self) {
+        let m = self.model.clone();
+        let ns = m.n_stimuli();
+        self.k.iter_mut().for_each(|x| *x = 0);
+        self.total_spikes = 0;
+        self.unit_ll.iter_mut().for_each(|x| *x = 0.0);
+        self.pop_spike.iter_mut().for_each(|x| *x = 0.0);
+        self.decision = None;
+        for u in 0..m.n_units() {
+            for s in 0..ns {
+                self.cconst[u * ns + s] = count_const(&m, self.decoder, u, s, 0);
+            }
+        }
+    }
+}
+
+/// The k-dependent constant of a cell's count term, so the per-bin work is one table read and an
+/// add or a multiply-add for the closed-form families.
+#[inline]
+fn count_const(m: &Model, dec: Decoder, u: usize, s: usize, k: u32) -> f64 {
+    let i = u * m.n_stimuli() + s;
+    match dec {
+        Decoder::InhomogeneousPoisson => k as f64 * m.ln_means[i] - m.means[i],
+        Decoder::CountOnly => 0.0,
+        Decoder::OrderStats => match m.kernels[i] {
+            CellKernel::Poisson { mean, ln_mean } => k as f64 * ln_mean - mean,
+            CellKernel::NegBin { .. } => m.dists[i].nb_ln_gf_const(k),
+            CellKernel::Table => 0.0,
+        },
+    }
+}
+
+/// The unit's full count term at bin b: `ln Φ^(k)(S(b))` (or its Poisson form).
+#[inline]
+fn count_term(m: &Model, dec: Decoder, u: usize, s: usize, b: usize, k: u32, cconst: f64) -> f64 {
+    let ns = m.n_stimuli();
+    let i = u * ns + s;
+    let t = (u * m.n_bins() + b) * ns + s;
+    match dec {
+        Decoder::InhomogeneousPoisson => cconst + m.means[i] * m.surv[t],
+        Decoder::CountOnly => m.dists[i].ln_pmf(k),
+        Decoder::OrderStats => match m.kernels[i] {
+            CellKernel::Poisson { mean, .. } => cconst + mean * m.surv[t],
+            CellKernel::NegBin { shape } => cconst - (shape + k as f64) * m.nb_g[t],
+            CellKernel::Table => m.dists[i].ln_gf_deriv(k, m.surv[t]),
+        },
+    }
+}
+
+/// The decoding engine. See the module documentation.
+pub struct Engine {
+    model: Arc<Model>,
+    config: EngineConfig,
+    bin_ticks: i64,
+    min_bin: u32,
+    history_ticks: i64,
+    ln_prior: Vec<f64>,
+    watermark: i64,
+    /// Spikes at or before the watermark, sorted by (tick, unit), kept for open trials and for
+    /// onsets that arrive up to `history_ticks` late.
+    spikes: VecDeque<(i64, u32)>,
+    spikes_base: u64,
+    /// Spikes after the watermark, unsorted until the next advance.
+    pending: Vec<(i64, u32)>,
+    trials: Vec<TrialState>,
+    parked: VecDeque<TrialState>,
+    pool: Vec<TrialState>,
+    recent_ids: VecDeque<u64>,
+    recent_set: HashSet<u64>,
+    counters: Counters,
+    tally: UnitTally,
+    // Per-unit summary buffers.
+    us_post: Vec<f64>,
+    us_decoded: Vec<u32>,
+    us_acc: Vec<f64>,
+    us_info: Vec<f64>,
+    scratch_s: Vec<f64>,
+}
+
+const RECENT_IDS: usize = 4096;
+const PARKED_MAX: usize = 64;
+
+fn bin_ticks_for(model: &Model, tick_rate_hz: f64) -> Result<i64, EngineError> {
+    if !(tick_rate_hz.is_finite() && tick_rate_hz > 0.0) {
+        return Err(EngineError::Config(format!(
+            "tick rate {tick_rate_hz} Hz must be > 0"
+        )));
+    }
+    let exact = model.bin_width_s() * tick_rate_hz;
+    let bt = exact.round();
+    if bt < 1.0 || (bt - exact).abs() > 1e-6 * exact.max(1.0) {
+        return Err(EngineError::Config(format!(
+            "bin width {} s is not a whole number of ticks at {tick_rate_hz} Hz",
+            model.bin_width_s()
+        )));
+    }
+    Ok(bt as i64)
+}
+
+impl Engine {
+    /// A new engine for `model` with `config`.
+    pub fn new(model: Arc<Model>, config: EngineConfig) -> Result<Self, EngineError> {
+        let bin_ticks = bin_ticks_for(&model, config.tick_rate_hz)?;
+        let mut e = Engine {
+            tally: UnitTally::new(model.units(), model.n_stimuli()),
+            ln_prior: model.ln_prior().to_vec(),
+            min_bin: 0,
+            history_ticks: 0,
+            bin_ticks,
+            model,
+            config: config.clone(),
+            watermark: i64::MIN,
+            spikes: VecDeque::with_capacity(1 << 14),
+            spikes_base: 0,
+            pending: Vec::with_capacity(1 << 14),
+            trials: Vec::with_capacity(16),
+            parked: VecDeque::with_capacity(PARKED_MAX),
+            pool: Vec::new(),
+            recent_ids: VecDeque::with_capacity(RECENT_IDS),
+            recent_set: HashSet::with_capacity(RECENT_IDS),
+            counters: Counters::default(),
+            us_post: Vec::new(),
+            us_decoded: Vec::new(),
+            us_acc: Vec::new(),
+            us_info: Vec::new(),
+            scratch_s: Vec::new(),
+        };
+        e.apply_config(config)?;
+        Ok(e)
+    }
+
+    fn apply_config(&mut self, c: EngineConfig) -> Result<(), EngineError> {
+        let p = &c.policy;
+        if !(p.threshold > 0.0 && p.threshold <= 1.0) {
+            return Err(EngineError::Config(format!(
+                "threshold {} must be in (0, 1]",
+                p.threshold
+            )));
+        }
+        if !(p.min_time_s.is_finite() && p.min_time_s >= 0.0) {
+            return Err(EngineError::Config(format!(
+                "minimum time {} s must be ≥ 0",
+                p.min_time_s
+            )));
+        }
+        if !(c.history_s.is_finite() && c.history_s >= 0.0 && c.history_s <= 3600.0) {
+            return Err(EngineError::Config(format!(
+                "history {} s must be in [0, 3600]",
+                c.history_s
+            )));
+        }
+        let ns = self.model.n_stimuli();
+        self.ln_prior = match &c.prior {
+            None => self.model.ln_prior().to_vec(),
+            Some(p) => {
+                if p.len() != ns || p.iter().any(|x| !(x.is_finite() && *x > 0.0)) {
+                    return Err(EngineError::Config(format!(
+                        "prior must have {ns} finite positive entries (got {})",
+                        p.len()
+                    )));
+                }
+                let s: f64 = p.iter().sum();
+                p.iter().map(|x| (x / s).ln()).collect()
+            }
+        };
+        // A bin b may decide once (b + 1)·Δ ≥ minimum time.
+        let bw = self.model.bin_width_s();
+        self.min_bin = ((p.min_time_s / bw - 1e-9).ceil() as i64 - 1).max(0) as u32;
+        self.history_ticks = (c.history_s * c.tick_rate_hz).round() as i64;
+        self.config = c;
+        Ok(())
+    }
+
+    /// Current configuration.
+    pub fn config(&self) -> &EngineConfig {
+        &self.config
+    }
+    /// Changes decoder, policy or prior; applies to trials opened from now on.
+    pub fn set_config(&mut self, c: EngineConfig) -> Result<(), EngineError> {
+        if c.tick_rate_hz != self.config.tick_rate_hz {
+            bin_ticks_for(&self.model, c.tick_rate_hz)?;
+        }
+        let old = self.config.clone();
+        let r = self.apply_config(c.clone());
+        if r.is_err() {
+            let _ = self.apply_config(old);
+        } else {
+            self.bin_ticks = bin_ticks_for(&self.model, c.tick_rate_hz)?;
+        }
+        r
+    }
+    /// The model new trials open with.
+    pub fn model(&self) -> &Arc<Model> {
+        &self.model
+    }
+    /// Replaces the model for trials opened from now on; open trials finish on their own model.
+    /// A prior override that no longer fits the stimuli is dropped.
+    pub fn set_model(&mut self, model: Arc<Model>) -> Result<(), EngineError> {
+        let bt = bin_ticks_for(&model, self.config.tick_rate_hz)?;
+        let same_shape =
+            model.units() == self.model.units() && model.stimuli() == self.model.stimuli();
+        if !same_shape {
+            self.tally = UnitTally::new(model.units(), model.n_stimuli());
+        }
+        let mut c = self.config.clone();
+        if c.prior
+            .as_ref()
+            .is_some_and(|p| p.len() != model.n_stimuli())
+        {
+            c.prior = None;
+        }
+        self.model = model;
+        self.bin_ticks = bt;
+        self.pool.clear();
+        self.apply_config(c)
+    }
+    /// Ticks per bin.
+    pub fn bin_ticks(&self) -> i64 {
+        self.bin_ticks
+    }
+    /// Current watermark (i64::MIN before the first).
+    pub fn watermark(&self) -> i64 {
+        self.watermark
+    }
+    /// Counters so far.
+    pub fn counters(&self) -> &Counters {
+        &self.counters
+    }
+    /// Open trial ids, in opening order.
+    pub fn open_trials(&self) -> impl Iterator<Item = u64> + '_ {
+        self.trials.iter().map(|t| t.id)
+    }
+    /// Spikes held (history plus pending): bounded by rate × (history + window).
+    pub fn buffered_spikes(&self) -> usize {
+        self.spikes.len() + self.pending.len()
+    }
+    /// The running per-unit tally.
+    pub fn tally(&self) -> &UnitTally {
+        &self.tally
+    }
+
+    /// Opens a trial at `onset` (ticks), optionally with the presented stimulus index.
+    /// Bins already complete (onset behind the watermark) are decoded at once.
+    pub fn open_trial(
+        &mut self,
+        id: u64,
+        onset: i64,
+        presented: Option<u32>,
+        sink: &mut dyn EngineSink,
+    ) -> Result<(), EngineError> {
+        if self.recent_set.contains(&id) || self.trials.iter().any(|t| t.id == id) {
+            self.counters.duplicate_trials += 1;
+            return Err(EngineError::DuplicateTrial(id));
+        }
+        if self.watermark != i64::MIN && onset < self.watermark.saturating_sub(self.history_ticks) {
+            self.counters.stale_onsets += 1;
+            return Err(EngineError::StaleOnset {
+                trial: id,
+                onset,
+                watermark: self.watermark,
+            });
+        }
+        if let Some(p) = presented {
+            if p as usize >= self.model.n_stimuli() {
+                self.counters.unknown_stimuli += 1;
+                return Err(EngineError::UnknownStimulus(p));
+            }
+        }
+        let mut st = match self.pool.pop() {
+            Some(st) if Arc::ptr_eq(&st.model, &self.model) => st,
+            _ => TrialState::blank(self.model.clone()),
+        };
+        st.id = id;
+        st.onset = onset;
+        st.presented = presented;
+        st.decoder = self.config.decoder;
+        st.threshold = self.config.policy.threshold;
+        st.min_bin = self.min_bin;
+        st.ln_prior.clone_from(&self.ln_prior);
+        st.bin_ticks = self.bin_ticks;
+        st.next_bin = 0;
+        st.cursor = self.spikes_base + self.spikes.partition_point(|x| x.0 < onset) as u64;
+        st.reset_counts();
+        self.counters.trials_opened += 1;
+        self.remember_id(id);
+        self.trials.push(st);
+        if self.watermark != i64::MIN {
+            self.run_trials(sink);
+        }
+        Ok(())
+    }
+
+    fn remember_id(&mut self, id: u64) {
+        if self.recent_ids.len() == RECENT_IDS {
+            if let Some(old) = self.recent_ids.pop_front() {
+                self.recent_set.remove(&old);
+            }
+        }
+        self.recent_ids.push_back(id);
+        self.recent_set.insert(id);
+    }
+
+    /// Accepts one spike. Late spikes and unknown units are counted and refused.
+    pub fn spike(&mut self, unit: u32, tick: i64) -> Result<(), EngineError> {
+        if tick <= self.watermark {
+            self.counters.late_spikes += 1;
+            return Err(EngineError::LateSpike {
+                unit,
+                tick,
+                watermark: self.watermark,
+            });
+        }
+        if self.model.unit_index(unit).is_none()
+            && !self
+                .trials
+                .iter()
+                .any(|t| t.model.unit_index(unit).is_some())
+        {
+            self.counters.unknown_unit_spikes += 1;
+            return Err(EngineError::UnknownUnit(unit));
+        }
+        self.counters.spikes += 1;
+        self.pending.push((tick, unit));
+        Ok(())
+    }
+
+    /// Sets the presented stimulus of a trial that is open or completed and waiting for its label.
+    pub fn label(
+        &mut self,
+        id: u64,
+        stimulus: u32,
+        sink: &mut dyn EngineSink,
+    ) -> Result<(), EngineError> {
+        if let Some(t) = self.trials.iter_mut().find(|t| t.id == id) {
+            if stimulus as usize >= t.model.n_stimuli() {
+                self.counters.unknown_stimuli += 1;
+                return Err(EngineError::UnknownStimulus(stimulus));
+            }
+            t.presented = Some(stimulus);
+            return Ok(());
+        }
+        if let Some(pos) = self.parked.iter().position(|t| t.id == id) {
+            if let Some(mut t) = self.parked.remove(pos) {
+                if stimulus as usize >= t.model.n_stimuli() {
+                    self.counters.unknown_stimuli += 1;
+                    self.parked.insert(pos, t);
+                    return Err(EngineError::UnknownStimulus(stimulus));
+                }
+                t.presented = Some(stimulus);
+                self.summarise_units(&t, sink);
+                self.recycle(t);
+            }
+            return Ok(());
+        }
+        self.counters.unknown_trials += 1;
+        Err(EngineError::UnknownTrial(id))
+    }
+
+    /// Cancels an open trial; it ends with [`TrialOutcome::Cancelled`] and no per-unit summary.
+    pub fn cancel(&mut self, id: u64, sink: &mut dyn EngineSink) -> Result<(), EngineError> {
+        match self.trials.iter().position(|t| t.id == id) {
+            Some(i) => {
+                let t = self.trials.remove(i);
+                self.counters.trials_cancelled += 1;
+                emit_end(&t, TrialOutcome::Cancelled, sink);
+                self.recycle(t);
+                Ok(())
+            }
+            None => {
+                self.counters.unknown_trials += 1;
+                Err(EngineError::UnknownTrial(id))
+            }
+        }
+    }
+
+    /// Ends every open trial with [`TrialOutcome::Shutdown`].
+    pub fn shutdown(&mut self, sink: &mut dyn EngineSink) {
+        while !self.trials.is_empty() {
+            let t = self.trials.remove(0);
+            self.counters.trials_cancelled += 1;
+            emit_end(&t, TrialOutcome::Shutdown, sink);
+            self.recycle(t);
+        }
+    }
+
+    /// Advances the watermark: every spike up to and including `watermark` has been given.
+    /// Emits a frame for each bin this completes, in trial-opening order.
+    pub fn advance(
+        &mut self,
+        watermark: i64,
+        sink: &mut dyn EngineSink,
+    ) -> Result<(), EngineError> {
+        if watermark < self.watermark {
+            self.counters.watermark_backwards += 1;
+            return Err(EngineError::WatermarkBackwards {
+                from: self.watermark,
+                to: watermark,
+            });
+        }
+        self.pending.sort_unstable();
+        let cut = self.pending.partition_point(|x| x.0 <= watermark);
+        self.spikes.extend(self.pending.drain(..cut));
+        self.watermark = watermark;
+        self.run_trials(sink);
+        // Keep what open trials still need and the history allowance for late onsets.
+        let keep_from = self.watermark.saturating_sub(self.history_ticks);
+        let min_cursor = self
+            .trials
+            .iter()
+            .map(|t| t.cursor)
+            .min()
+            .unwrap_or(u64::MAX);
+        while let Some(&(tick, _)) = self.spikes.front() {
+            if tick < keep_from && self.spikes_base < min_cursor {
+                self.spikes.pop_front();
+                self.spikes_base += 1;
+            } else {
+                break;
+            }
+        }
+        Ok(())
+    }
+
+    fn run_trials(&mut self, sink: &mut dyn EngineSink) {
+        let mut i = 0;
+        while i < self.trials.len() {
+            let done = {
+                let t = &mut self.trials[i];
+                run_bins(
+                    t,
+                    &self.spikes,
+                    self.spikes_base,
+                    self.watermark,
+                    &mut self.counters,
+                    sink,
+                )
+            };
+            if done {
+                let t = self.trials.remove(i);
+                self.counters.trials_completed += 1;
+                emit_end(&t, TrialOutcome::Completed, sink);
+                if t.presented.is_some() {
+                    self.summarise_units(&t, sink);
+                    self.recycle(t);
+                } else {
+                    if self.parked.len() == PARKED_MAX {
+                        if let Some(old) = self.parked.pop_front() {
+                            self.counters.labels_missing += 1;
+                            self.recycle(old);
+                        }
+                    }
+                    self.parked.push_back(t);
+                }
+            } else {
+                i += 1;
+            }
+        }
+    }
+
+    fn recycle(&mut self, t: TrialState) {
+        if Arc::ptr_eq(&t.model, &self.model) && self.pool.len() < 64 {
+            self.pool.push(t);
+        }
+    }
+
+    fn summarise_units(&mut self, t: &TrialState, sink: &mut dyn EngineSink) {
+        let Some(presented) = t.presented else { return };
+        let m = &t.model;
+        let (nu, ns) = (m.n_units(), m.n_stimuli());
+        self.us_post.resize(nu, 0.0);
+        self.us_decoded.resize(nu, 0);
+        self.us_acc.resize(nu, 0.0);
+        self.us_info.resize(nu, 0.0);
+        self.scratch_s.resize(ns, 0.0);
+        let same = m.units() == self.tally.units() && ns == self.tally.n_stimuli();
+        for u in 0..nu {
+            for s in 0..ns {
+                self.scratch_s[s] = t.ln_prior[s] + t.unit_ll[u * ns + s];
+            }
+            softmax_in_place(&mut self.scratch_s);
+            let (best, _) = argmax(&self.scratch_s);
+            self.us_post[u] = self.scratch_s[presented as usize];
+            self.us_decoded[u] = best;
+            if same {
+                self.tally.record(u, presented, best);
+            }
+        }
+        if !same {
+            return;
+        }
+        self.tally.end_trial();
+        for u in 0..nu {
+            self.us_acc[u] = self.tally.accuracy(u);
+            self.us_info[u] = self.tally.info_bits(u);
+        }
+        sink.unit_summaries(&UnitSummaries {
+            trial: t.id,
+            presented,
+            units: m.units(),
+            presented_posterior: &self.us_post,
+            decoded: &self.us_decoded,
+            accuracy: &self.us_acc,
+            info_bits: &self.us_info,
+            n_trials: self.tally.n_trials(),
+        });
+    }
+}
+
+#[inline]
+fn argmax(p: &[f64]) -> (u32, f64) {
+    let mut best = (0u32, f64::NEG_INFINITY);
+    for (i, &x) in p.iter().enumerate() {
+        if x > best.1 {
+            best = (i as u32, x);
+        }
+    }
+    best
+}
+
+fn emit_end(t: &TrialState, outcome: TrialOutcome, sink: &mut dyn EngineSink) {
+    sink.trial_end(&TrialEnd {
+        trial: t.id,
+        onset: t.onset,
+        presented: t.presented,
+        outcome,
+        decision: t.decision,
+        spikes: t.total_spikes,
+        posterior: &t.post,
+        bins: t.next_bin,
+    });
+}
+
+/// Decodes every bin of `t` the watermark has completed. Returns true when the window is done.
+fn run_bins(
+    t: &mut TrialState,
+    spikes: &VecDeque<(i64, u32)>,
+    base: u64,
+    watermark: i64,
+    counters: &mut Counters,
+    sink: &mut dyn EngineSink,
+) -> bool {
+    let m = t.model.clone();
+    let (nu, ns, nb) = (m.n_units(), m.n_stimuli(), m.n_bins());
+    while (t.next_bin as usize) < nb {
+        let b = t.next_bin as usize;
+        let bin_end = t.onset + (b as i64 + 1) * t.bin_ticks; // exclusive
+        if watermark < bin_end - 1 {
+            return false;
+        }
+        // Spikes of this bin.
+        loop {
+            let pos = (t.cursor - base) as usize;
+            let Some(&(tick, unit)) = spikes.get(pos) else {
+                break;
+            };
+            if tick >= bin_end {
+                break;
+            }
+            t.cursor += 1;
+            let Some(u) = m.unit_index(unit) else {
+                continue;
+            };
+            t.k[u] += 1;
+            t.total_spikes += 1;
+            let row = (u * nb + b) * ns;
+            let k = t.k[u];
+            for s in 0..ns {
+                let lq = m.ln_q[row + s];
+                t.unit_ll[u * ns + s] += lq;
+                t.pop_spike[s] += lq;
+                t.cconst[u * ns + s] = count_const(&m, t.decoder, u, s, k);
+            }
+        }
+        // Posterior at the end of bin b.
+        let last = b + 1 == nb;
+        match t.decoder {
+            Decoder::CountOnly => {
+                for s in 0..ns {
+                    t.post[s] = t.ln_prior[s];
+                }
+                if last {
+                    for u in 0..nu {
+                        for s in 0..ns {
+                            t.post[s] += m.dists[u * ns + s].ln_pmf(t.k[u]);
+                        }
+                    }
+                }
+            }
+            dec => {
+                for s in 0..ns {
+                    t.post[s] = t.ln_prior[s] + t.pop_spike[s];
+                }
+                for u in 0..nu {
+                    let k = t.k[u];
+                    let cc = &t.cconst[u * ns..(u + 1) * ns];
+                    for s in 0..ns {
+                        t.post[s] += count_term(&m, dec, u, s, b, k, cc[s]);
+                    }
+                }
+            }
+        }
+        if last {
+            // Each unit's full-window log-likelihood, kept for the per-unit summaries.
+            for u in 0..nu {
+                let k = t.k[u];
+                for s in 0..ns {
+                    let i = u * ns + s;
+                    t.unit_ll[i] = match t.decoder {
+                        Decoder::CountOnly => m.dists[i].ln_pmf(k),
+                        dec => t.unit_ll[i] + count_term(&m, dec, u, s, b, k, t.cconst[i]),
+                    };
+                }
+            }
+        }
+        softmax_in_place(&mut t.post);
+        let (top, top_p) = argmax(&t.post);
+        counters.frames += 1;
+        sink.frame(&Frame {
+            trial: t.id,
+            bin: b as u32,
+            bin_end_tick: bin_end - 1,
+            posterior: &t.post,
+            top,
+            top_posterior: top_p,
+            entropy_bits: entropy_bits(&t.post),
+            spikes: t.total_spikes,
+        });
+        if t.decision.is_none() {
+            let reason =
+                if t.decoder != Decoder::CountOnly && b as u32 >= t.min_bin && top_p >= t.threshold
+                {
+                    Some(DecisionReason::Threshold)
+                } else if last {
+                    Some(DecisionReason::WindowEnd)
+                } else {
+                    None
+                };
+            if let Some(reason) = reason {
+                let d = Decision {
+                    trial: t.id,
+                    stimulus: top,
+                    posterior: top_p,
+                    bin: b as u32,
+                    reason,
+                    presented: t.presented,
+                };
+                t.decision = Some(d);
+                counters.decisions += 1;
+                sink.decision(&d);
+            }
+        }
+        t.next_bin += 1;
+    }
+    true
+}

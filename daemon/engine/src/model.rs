@@ -1,0 +1,292 @@
+//! The immutable decoding model: stimuli, units, prior, and one cell per (unit, stimulus) holding
+//! its count distribution and its floored spike density q(b). Built and validated once; the
+//! per-bin tables the engine reads are precomputed here so the hot path only indexes.
+//!
+//! Must not: change after construction (hot reload builds a new `Model`), or do I/O.
+
+use crate::count::{CountDist, CountError, CountFamily, CountParams};
+use serde::{Deserialize, Serialize};
+use std::collections::HashMap;
+
+/// Per-cell fit summary carried in the model file for reports (not used by the likelihood).
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct CellSummary {
+    /// Training trials of this stimulus.
+    pub n_trials: u32,
+    /// Sample mean of the window count.
+    pub mean_count: f64,
+    /// Sample variance of the window count (n − 1 denominator; 0 with fewer than 2 trials).
+    pub var_count: f64,
+    /// Kernel bandwidth in seconds (NaN when the cell had no spikes).
+    pub bandwidth_s: f64,
+    /// Held-out log-likelihood per trial of each family tried (NaN where the fit failed).
+    pub held_out: Vec<(CountFamily, f64)>,
+}
+
+/// One (unit, stimulus) cell as stored in a model file.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct CellSpec {
+    /// Count distribution parameters.
+    pub count: CountParams,
+    /// q(0..B): probability that one spike falls in each bin; positive, sums to 1.
+    pub timing: Vec<f64>,
+    /// Fit summary.
+    pub summary: CellSummary,
+}
+
+/// Everything a model file holds: enough to rebuild the exact [`Model`].
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct ModelSpec {
+    /// Bin width in seconds.
+    pub bin_width_s: f64,
+    /// Number of bins B in the window (window = B · bin width).
+    pub n_bins: u32,
+    /// Stimulus names, in index order.
+    pub stimuli: Vec<String>,
+    /// Unit ids, in index order.
+    pub units: Vec<u32>,
+    /// Prior over stimuli (sums to 1).
+    pub prior: Vec<f64>,
+    /// Cells, unit-major: cell (u, s) is at `u · S + s`.
+    pub cells: Vec<CellSpec>,
+}
+
+/// Why a model could not be built.
+#[derive(Debug, thiserror::Error)]
+pub enum ModelError {
+    /// Shapes or values that do not fit together.
+    #[error("invalid model: {0}")]
+    Invalid(String),
+    /// A cell's count distribution is invalid.
+    #[error("invalid model: cell (unit {unit}, stimulus {stimulus}): {source}")]
+    Count {
+        /// Unit id.
+        unit: u32,
+        /// Stimulus name.
+        stimulus: String,
+        /// The cause.
+        source: CountError,
+    },
+}
+
+/// How the engine evaluates a cell's count term: closed forms where the family has one.
+#[derive(Clone, Copy, Debug)]
+pub(crate) enum CellKernel {
+    Poisson { mean: f64, ln_mean: f64 },
+    NegBin { shape: f64 },
+    Table,
+}
+
+/// A validated, immutable model with the engine's precomputed tables.
+#[derive(Debug)]
+pub struct Model {
+    spec: ModelSpec,
+    n_units: usize,
+    n_stim: usize,
+    n_bins: usize,
+    pub(crate) dists: Vec<CountDist>,
+    pub(crate) kernels: Vec<CellKernel>,
+    /// Count-distribution mean per cell (the inhomogeneous Poisson decoder's expected count).
+    pub(crate) means: Vec<f64>,
+    pub(crate) ln_means: Vec<f64>,
+    /// ln q, laid out [u][b][s] so a bin's terms for one unit are contiguous.
+    pub(crate) ln_q: Vec<f64>,
+    /// S(b) = Σ_{b' > b} q(b'), laid out [u][b][s].
+    pub(crate) surv: Vec<f64>,
+    /// Negative binomial: ln(1 − (1−p)·S(b)), laid out [u][b][s]; 0 for other families.
+    pub(crate) nb_g: Vec<f64>,
+    pub(crate) ln_prior: Vec<f64>,
+    unit_index: HashMap<u32, u32>,
+}
+
+impl Model {
+    /// Validates a spec and precomputes the tables.
+    pub fn new(spec: ModelSpec) -> Result<Self, ModelError> {
+        let inv = |m: String| Err(ModelError::Invalid(m));
+        let (nu, ns, nb) = (spec.units.len(), spec.stimuli.len(), spec.n_bins as usize);
+        if !(spec.bin_width_s.is_finite() && spec.bin_width_s > 0.0) {
+            return inv(format!("bin width {} s must be > 0", spec.bin_width_s));
+        }
+        if nb == 0 || nb > 1_000_000 {
+            return inv(format!("window of {nb} bins is out of range (1..=1000000)"));
+        }
+        if nu == 0 || ns < 2 {
+            return inv(format!(
+                "need at least one unit and two stimuli (have {nu} units, {ns} stimuli)"
+            ));
+        }
+        if spec.prior.len() != ns {
+            return inv(format!(
+                "prior has {} entries for {ns} stimuli",
+                spec.prior.len()
+            ));
+        }
+        if spec.prior.iter().any(|p| !(p.is_finite() && *p > 0.0)) {
+            return inv("prior entries must be finite and > 0".into());
+        }
+        if spec.cells.len() != nu * ns {
+            return inv(format!(
+                "{} cells for {nu} units × {ns} stimuli",
+                spec.cells.len()
+            ));
+        }
+        let mut unit_index = HashMap::with_capacity(nu);
+        for (i, &u) in spec.units.iter().enumerate() {
+            if unit_index.insert(u, i as u32).is_some() {
+                return inv(format!("unit {u} is listed twice"));
+            }
+        }
+        let mut seen = std::collections::HashSet::new();
+        for s in &spec.stimuli {
+            if !seen.insert(s) {
+                return inv(format!("stimulus {s:?} is listed twice"));
+            }
+        }
+        let psum: f64 = spec.prior.iter().sum();
+        let ln_prior: Vec<f64> = spec.prior.iter().map(|p| (p / psum).ln()).collect();
+
+        let mut dists = Vec::with_capacity(nu * ns);
+        let mut kernels = Vec::with_capacity(nu * ns);
+        let mut ln_q = vec![0.0; nu * nb * ns];
+        let mut surv = vec![0.0; nu * nb * ns];
+        let mut nb_g = vec![0.0; nu * nb * ns];
+        for u in 0..nu {
+            for s in 0..ns {
+                let cell = &spec.cells[u * ns + s];
+                let d = CountDist::new(cell.count.clone()).map_err(|e| ModelError::Count {
+                    unit: spec.units[u],
+                    stimulus: spec.stimuli[s].clone(),
+                    source: e,
+                })?;
+                if cell.timing.len() != nb {
+                    return inv(format!(
+                        "cell (unit {}, stimulus {}) has {} timing bins, window has {nb}",
+                        spec.units[u],
+                        spec.stimuli[s],
+                        cell.timing.len()
+                    ));
+                }
+                if cell.timing.iter().any(|q| !(q.is_finite() && *q > 0.0)) {
+                    return inv(format!(
+                        "cell (unit {}, stimulus {}): timing probabilities must be finite and > 0",
+                        spec.units[u], spec.stimuli[s]
+                    ));
+                }
+                let qs: f64 = cell.timing.iter().sum();
+                if (qs - 1.0).abs() > 1e-6 {
+                    return inv(format!(
+                        "cell (unit {}, stimulus {}): timing sums to {qs}, not 1",
+                        spec.units[u], spec.stimuli[s]
+                    ));
+                }
+                // Survival from the right so S(B−1) is exactly 0.
+                let mut right = 0.0;
+                let one_minus_p = d.nb_one_minus_p();
+                for b in (0..nb).rev() {
+                    let i = (u * nb + b) * ns + s;
+                    ln_q[i] = (cell.timing[b] / qs).ln();
+                    surv[i] = right;
+                    nb_g[i] = (1.0 - one_minus_p * right).ln();
+                    right += cell.timing[b] / qs;
+                }
+                kernels.push(match d.params() {
+                    CountParams::Poisson { mean } => CellKernel::Poisson {
+                        mean: *mean,
+                        ln_mean: mean.ln(),
+                    },
+                    CountParams::NegativeBinomial { shape, .. } => {
+                        CellKernel::NegBin { shape: *shape }
+                    }
+                    _ => CellKernel::Table,
+                });
+                dists.push(d);
+            }
+        }
+        let means: Vec<f64> = dists.iter().map(|d| d.mean().max(1e-12)).collect();
+        let ln_means = means.iter().map(|m| m.ln()).collect();
+        Ok(Model {
+            n_units: nu,
+            n_stim: ns,
+            n_bins: nb,
+            spec,
+            dists,
+            kernels,
+            means,
+            ln_means,
+            ln_q,
+            surv,
+            nb_g,
+            ln_prior,
+            unit_index,
+        })
+    }
+
+    /// The spec this model was built from.
+    pub fn spec(&self) -> &ModelSpec {
+        &self.spec
+    }
+    /// Number of units.
+    pub fn n_units(&self) -> usize {
+        self.n_units
+    }
+    /// Number of stimuli.
+    pub fn n_stimuli(&self) -> usize {
+        self.n_stim
+    }
+    /// Number of bins in the window.
+    pub fn n_bins(&self) -> usize {
+        self.n_bins
+    }
+    /// Bin width in seconds.
+    pub fn bin_width_s(&self) -> f64 {
+        self.spec.bin_width_s
+    }
+    /// Stimulus names.
+    pub fn stimuli(&self) -> &[String] {
+        &self.spec.stimuli
+    }
+    /// Unit ids.
+    pub fn units(&self) -> &[u32] {
+        &self.spec.units
+    }
+    /// Index of a unit id, if the model knows it.
+    #[inline]
+    pub fn unit_index(&self, unit: u32) -> Option<usize> {
+        self.unit_index.get(&unit).map(|&i| i as usize)
+    }
+    /// Index of a stimulus name.
+    pub fn stimulus_index(&self, name: &str) -> Option<usize> {
+        self.spec.stimuli.iter().position(|s| s == name)
+    }
+    /// The count distribution of cell (u, s) (indices).
+    pub fn count(&self, u: usize, s: usize) -> &CountDist {
+        &self.dists[u * self.n_stim + s]
+    }
+    /// q(b) of cell (u, s) as stored (sums to 1).
+    pub fn timing(&self, u: usize, s: usize) -> &[f64] {
+        &self.spec.cells[u * self.n_stim + s].timing
+    }
+    /// ln prior (normalised).
+    pub fn ln_prior(&self) -> &[f64] {
+        &self.ln_prior
+    }
+    /// S(b) of cell (u, s): probability mass of the bins after b.
+    pub fn survival(&self, u: usize, s: usize, b: usize) -> f64 {
+        self.surv[(u * self.n_bins + b) * self.n_stim + s]
+    }
+}
+
+/// Sample mean and variance (n − 1) of counts.
+pub fn mean_var(counts: &[u32]) -> (f64, f64) {
+    let n = counts.len() as f64;
+    if counts.is_empty() {
+        return (0.0, 0.0);
+    }
+    let m = counts.iter().map(|&c| c as f64).sum::<f64>() / n;
+    let v = if counts.len() > 1 {
+        counts.iter().map(|&c| (c as f64 - m).powi(2)).sum::<f64>() / (n - 1.0)
+    } else {
+        0.0
+    };
+    (m, v)
+}
