@@ -1,1 +1,18 @@
-//! placeholder
+//! # auspex (client library)
+//!
+//! The command-line client's jobs as a library so tests can drive them: reading tables,
+//! fitting with progress, offline decoding, export, and the demo. `main.rs` is thin glue.
+#![deny(missing_docs)]
+
+pub mod commands;
+pub mod export;
+pub mod fitting;
+pub mod offline;
+pub mod tables;
+
+/// Where the bundled demo data lives (the repository's `demo-data/`).
+pub fn demo_dir() -> std::path::PathBuf {
+    std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("..")
+        .join("demo-data")
+}

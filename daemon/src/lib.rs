@@ -1,1 +1,8 @@
-//! placeholder
+//! # auspexd
+//!
+//! The Auspex service: ingest of spike batches and trial events over ZeroMQ, the engine on its
+//! own OS thread, publishing of posteriors, decisions, per-unit reports and health, control,
+//! and the session recorder. The binary is thin glue over this library.
+#![deny(missing_docs)]
+
+pub mod model_file;

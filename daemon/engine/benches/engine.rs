@@ -1,1 +1,141 @@
-fn main() {}
+//! Per-bin engine update at several sizes, for each count family and decoder.
+//! One iteration decodes a whole 250-bin trial (open + 250 bins); criterion's throughput is in
+//! bins, so "elem/s" is bins per second and real time is 1000 bins/s at 1 ms bins.
+//! Run: `cargo bench -p auspex-engine --bench engine` (set AUSPEX_BENCH_LARGE=1 for 4096×64).
+
+use auspex_engine::count::CountParams;
+use auspex_engine::engine::{Decoder, Engine, EngineConfig, NullSink};
+use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
+use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
+use std::sync::Arc;
+
+const BINS: usize = 250;
+const MEAN_COUNT: f64 = 32.0; // counts reach about 64 in the upper tail
+
+fn model(nu: usize, ns: usize, family: &str) -> Arc<Model> {
+    let mut cells = Vec::with_capacity(nu * ns);
+    for u in 0..nu {
+        for s in 0..ns {
+            let mean = MEAN_COUNT * (0.75 + 0.5 * (((u * 7 + s * 3) % 11) as f64 / 10.0));
+            let count = match family {
+                "poisson" => CountParams::Poisson { mean },
+                "negative_binomial" => CountParams::NegativeBinomial { mean, shape: 8.0 },
+                "com_poisson" => CountParams::ComPoisson {
+                    lambda: mean.powf(0.8),
+                    nu: 0.8,
+                },
+                _ => {
+                    let d = auspex_engine::CountDist::new(CountParams::NegativeBinomial {
+                        mean,
+                        shape: 8.0,
+                    })
+                    .unwrap();
+                    CountParams::Empirical {
+                        pmf: d.pmf().to_vec(),
+                    }
+                }
+            };
+            let centre = 20.0 + ((u + s) % 9) as f64 * 15.0;
+            let q: Vec<f64> = (0..BINS)
+                .map(|b| 0.2 + (-((b as f64 - centre) / 12.0).powi(2)).exp())
+                .collect();
+            let z: f64 = q.iter().sum();
+            cells.push(CellSpec {
+                count,
+                timing: q.iter().map(|x| x / z).collect(),
+                summary: CellSummary::default(),
+            });
+        }
+    }
+    Arc::new(
+        Model::new(ModelSpec {
+            bin_width_s: 0.001,
+            n_bins: BINS as u32,
+            stimuli: (0..ns).map(|s| format!("s{s}")).collect(),
+            units: (0..nu as u32).collect(),
+            prior: vec![1.0; ns],
+            cells,
+        })
+        .unwrap(),
+    )
+}
+
+/// Spikes of one trial: each unit fires MEAN_COUNT spikes spread over the window.
+fn trial_spikes(nu: usize) -> Vec<Vec<(u32, i64)>> {
+    let mut per_bin = vec![Vec::new(); BINS];
+    let mut x = 12345u64;
+    for u in 0..nu {
+        for _ in 0..MEAN_COUNT as usize {
+            x = x
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            let b = (x >> 33) as usize % BINS;
+            per_bin[b].push((u as u32, b as i64));
+        }
+    }
+    per_bin
+}
+
+fn bench(c: &mut Criterion) {
+    let mut sizes = vec![(64, 8), (256, 32), (1024, 64)];
+    if std::env::var("AUSPEX_BENCH_LARGE").is_ok() {
+        sizes.push((4096, 64));
+    }
+    let mut g = c.benchmark_group("trial_250_bins");
+    g.sample_size(10);
+    g.throughput(Throughput::Elements(BINS as u64));
+    for &(nu, ns) in &sizes {
+        let spikes = trial_spikes(nu);
+        for family in ["poisson", "negative_binomial", "com_poisson", "empirical"] {
+            let m = model(nu, ns, family);
+            let decoders: &[Decoder] = if family == "poisson" {
+                &Decoder::ALL
+            } else {
+                &[Decoder::OrderStats]
+            };
+            for &dec in decoders {
+                let mut cfg = EngineConfig::new(1000.0);
+                cfg.decoder = dec;
+                let mut e = Engine::new(m.clone(), cfg).unwrap();
+                let mut trial = 0u64;
+                let mut onset = 0i64;
+                g.bench_function(
+                    BenchmarkId::new(format!("{family}/{}", dec.name()), format!("{nu}x{ns}")),
+                    |b| {
+                        b.iter(|| {
+                            trial += 1;
+                            e.open_trial(trial, onset, Some(0), &mut NullSink).unwrap();
+                            for (bin, sp) in spikes.iter().enumerate() {
+                                for &(u, t) in sp {
+                                    e.spike(u, onset + t).unwrap();
+                                }
+                                e.advance(onset + bin as i64, &mut NullSink).unwrap();
+                            }
+                            onset += BINS as i64;
+                        })
+                    },
+                );
+            }
+        }
+    }
+    g.finish();
+    // Opening a trial alone (the per-trial reset of the scratch state).
+    let mut g = c.benchmark_group("open_trial");
+    for &(nu, ns) in &sizes {
+        let m = model(nu, ns, "negative_binomial");
+        let mut e = Engine::new(m, EngineConfig::new(1000.0)).unwrap();
+        let mut trial = 0u64;
+        g.bench_function(format!("{nu}x{ns}"), |b| {
+            b.iter(|| {
+                trial += 1;
+                e.open_trial(trial, trial as i64 * 1000, None, &mut NullSink)
+                    .unwrap();
+                e.cancel(trial, &mut NullSink).unwrap();
+            })
+        });
+    }
+    g.finish();
+}
+
+criterion_group!(benches, bench);
+criterion_main!(benches);

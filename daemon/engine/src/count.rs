@@ -144,16 +144,36 @@ fn check_pos(name: &str, v: f64) -> Result<(), CountError> {
 }
 
 /// Builds a table from a log-pmf generator, stopping once past `mode_hint` with the remaining
-/// mass below [`TAIL_MASS`]. `ln_norm` is subtracted from every term.
-fn table_from(ln_term: impl Fn(u32) -> f64, mode_hint: f64) -> Result<Vec<f64>, CountError> {
-    let mut pmf = Vec::new();
+/// mass below [`TAIL_MASS`]: either the running sum says so, or the geometric bound
+/// `P(n)·ρ/(1−ρ)` does, with ρ the larger of the last ratio P(n)/P(n−1) and `ratio_limit`
+/// (the ratio's limit for families whose ratio rises towards it). The bound keeps rounding in
+/// the running sum from stretching the table.
+fn table_from(
+    mut ln_term: impl FnMut(u32) -> f64,
+    mode_hint: f64,
+    ratio_limit: f64,
+) -> Result<Vec<f64>, CountError> {
+    let mut pmf: Vec<f64> = Vec::new();
     let mut cum = 0.0f64;
     for n in 0..MAX_TABLE_LEN as u32 {
         let p = ln_term(n).exp();
         pmf.push(p);
         cum += p;
-        if (n as f64) > mode_hint && 1.0 - cum < TAIL_MASS {
-            return Ok(pmf);
+        if (n as f64) > mode_hint {
+            let prev = pmf[n as usize - 1];
+            let rho = if prev > 0.0 {
+                (p / prev).max(ratio_limit)
+            } else {
+                ratio_limit
+            };
+            let bound = if rho < 1.0 {
+                p * rho / (1.0 - rho)
+            } else {
+                f64::INFINITY
+            };
+            if 1.0 - cum < TAIL_MASS || bound < TAIL_MASS * 0.5 {
+                return Ok(pmf);
+            }
         }
     }
     Err(CountError::TableTooLong)
@@ -184,7 +204,7 @@ impl CountDist {
                 check_pos("mean", *mean)?;
                 let lm = mean.ln();
                 (
-                    table_from(|n| n as f64 * lm - mean - ln_factorial(n), *mean)?,
+                    table_from(|n| n as f64 * lm - mean - ln_factorial(n), *mean, 0.0)?,
                     *mean,
                 )
             }
@@ -193,16 +213,24 @@ impl CountDist {
                 check_pos("shape", *shape)?;
                 let (r, m) = (*shape, *mean);
                 let p = r / (r + m);
-                let (lp, l1p, lgr) = (p.ln(), (m / (r + m)).ln(), ln_gamma(r));
-                (
-                    table_from(
-                        |n| {
-                            ln_gamma(r + n as f64) - lgr - ln_factorial(n) + r * lp + n as f64 * l1p
-                        },
-                        m,
-                    )?,
+                let (lp, l1p) = (p.ln(), (m / (r + m)).ln());
+                // ln P(n) by the recurrence P(n+1) = P(n)·(r+n)/(n+1)·(1−p): no cancellation
+                // between large ln Γ values when r is large.
+                let mut ln_terms = vec![r * lp];
+                let t = table_from(
+                    |n| {
+                        let n = n as usize;
+                        while ln_terms.len() <= n {
+                            let j = ln_terms.len() - 1;
+                            let next = ln_terms[j] + ((r + j as f64) / (j as f64 + 1.0)).ln() + l1p;
+                            ln_terms.push(next);
+                        }
+                        ln_terms[n]
+                    },
                     m,
-                )
+                    m / (r + m),
+                );
+                (t?, m)
             }
             CountParams::ComPoisson { lambda, nu } => {
                 check_pos("lambda", *lambda)?;
@@ -211,7 +239,7 @@ impl CountDist {
                 let ll = lambda.ln();
                 let mode = lambda.powf(1.0 / nu);
                 (
-                    table_from(|n| n as f64 * ll - nu * ln_factorial(n) - lz, mode)?,
+                    table_from(|n| n as f64 * ll - nu * ln_factorial(n) - lz, mode, 0.0)?,
                     mode,
                 )
             }
@@ -354,6 +382,14 @@ impl CountDist {
                 shape * self.nb_ln_p + kf * self.nb_ln_1mp + ln_gamma(shape + kf)
                     - self.nb_ln_gamma_r
             }
+            _ => f64::NAN,
+        }
+    }
+
+    /// Negative binomial `ln(1 − p)` (NaN for other families).
+    pub fn nb_ln_one_minus_p(&self) -> f64 {
+        match self.params {
+            CountParams::NegativeBinomial { .. } => self.nb_ln_1mp,
             _ => f64::NAN,
         }
     }
@@ -648,7 +684,10 @@ pub fn choose_family(counts: &[u32], candidates: &[CountFamily]) -> FamilyChoice
         }
     }
     let fam = best.map(|b| b.0).unwrap_or(CountFamily::Poisson);
-    let params = fit_family(fam, counts).unwrap_or_else(|| fit_poisson(counts));
+    // The refit on all trials must also give a usable table; fall back to Poisson otherwise.
+    let params = fit_family(fam, counts)
+        .filter(|p| CountDist::new(p.clone()).is_ok())
+        .unwrap_or_else(|| fit_poisson(counts));
     FamilyChoice { params, held_out }
 }
 

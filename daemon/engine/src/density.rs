@@ -123,52 +123,60 @@ pub fn choose_bandwidth(times: &[f64], n_trials: usize, n_bins: usize) -> f64 {
     ((a + b) / 2.0).exp()
 }
 
+/// Kernel masses of a Gaussian of standard deviation `w` (bins) per sub-bin start position:
+/// `kern[j][d + reach]` is the mass a spike at quarter-bin `j` of bin 0 puts in bin `d`.
+struct KernelTable {
+    reach: i64,
+    width: usize,
+    kern: Vec<f64>,
+}
+
+impl KernelTable {
+    fn new(w: f64, n_bins: usize) -> Self {
+        let reach = ((7.0 * w).ceil() as i64 + 2).min(3 * n_bins as i64);
+        let width = (2 * reach + 1) as usize;
+        let mut kern = vec![0.0f64; SUB * width];
+        for j in 0..SUB {
+            let pos = (j as f64 + 0.5) / SUB as f64;
+            for (x, d) in (-reach..=reach).enumerate() {
+                let a = (d as f64 - pos) / w;
+                let b = (d as f64 + 1.0 - pos) / w;
+                kern[j * width + x] = norm_cdf(b) - norm_cdf(a);
+            }
+        }
+        KernelTable { reach, width, kern }
+    }
+
+    /// Adds `weight` × the kernel mass of a spike at `t` (bins), and of its mirror images at −t
+    /// and 2T − t, into `out` (one entry per bin).
+    fn add_spike(&self, t: f64, weight: f64, out: &mut [f64]) {
+        let nb = out.len() as i64;
+        let m = nb * SUB as i64;
+        let i = ((t * SUB as f64).floor() as i64).clamp(0, m - 1);
+        for e in [i, -1 - i, 2 * m - 1 - i] {
+            let bin = e.div_euclid(SUB as i64);
+            let j = e.rem_euclid(SUB as i64) as usize;
+            let lo = (bin - self.reach).max(0);
+            let hi = (bin + self.reach).min(nb - 1);
+            for b in lo..=hi {
+                out[b as usize] +=
+                    weight * self.kern[j * self.width + (b - bin + self.reach) as usize];
+            }
+        }
+    }
+}
+
 /// Per-bin probabilities of a Gaussian kernel density estimate with bandwidth `w` (bins),
 /// reflected at 0 and at the window end so no mass leaks out of the window; spikes are placed at
 /// quarter-bin centres. Returns probabilities summing to 1 (uniform if there are no spikes).
 pub fn kde_bin_probabilities(times: &[f64], n_bins: usize, w: f64) -> Vec<f64> {
-    let mut q = vec![0.0f64; n_bins];
     if times.is_empty() || n_bins == 0 {
         return vec![1.0 / n_bins.max(1) as f64; n_bins];
     }
-    let m = (n_bins * SUB) as i64;
-    // Histogram over sub-bins covering [−T, 2T): originals plus their mirror images.
-    let mut h: Vec<(i64, f64)> = Vec::new();
-    {
-        let mut base = vec![0.0f64; m as usize];
-        for &t in times {
-            let i = ((t * SUB as f64).floor() as i64).clamp(0, m - 1);
-            base[i as usize] += 1.0;
-        }
-        for (i, &c) in base.iter().enumerate() {
-            if c > 0.0 {
-                let i = i as i64;
-                h.push((i, c));
-                h.push((-1 - i, c));
-                h.push((2 * m - 1 - i, c));
-            }
-        }
-    }
-    // Kernel mass from a spike at sub-bin position j of bin 0 into bin d, for |d| ≤ reach.
-    let reach = ((7.0 * w).ceil() as i64 + 2).min(3 * n_bins as i64);
-    let width = (2 * reach + 1) as usize;
-    let mut kern = vec![0.0f64; SUB * width];
-    for j in 0..SUB {
-        let pos = (j as f64 + 0.5) / SUB as f64;
-        for (x, d) in (-reach..=reach).enumerate() {
-            let a = (d as f64 - pos) / w;
-            let b = (d as f64 + 1.0 - pos) / w;
-            kern[j * width + x] = norm_cdf(b) - norm_cdf(a);
-        }
-    }
-    for &(e, c) in &h {
-        let bin = e.div_euclid(SUB as i64);
-        let j = e.rem_euclid(SUB as i64) as usize;
-        let lo = (bin - reach).max(0);
-        let hi = (bin + reach).min(n_bins as i64 - 1);
-        for b in lo..=hi {
-            q[b as usize] += c * kern[j * width + (b - bin + reach) as usize];
-        }
+    let k = KernelTable::new(w, n_bins);
+    let mut q = vec![0.0f64; n_bins];
+    for &t in times {
+        k.add_spike(t, 1.0, &mut q);
     }
     let s: f64 = q.iter().sum();
     if s > 0.0 {
@@ -179,12 +187,106 @@ pub fn kde_bin_probabilities(times: &[f64], n_bins: usize, w: f64) -> Vec<f64> {
     q
 }
 
+/// Leave-one-trial-out log-likelihood of the spike times under the floored, binned kernel
+/// estimate with bandwidth `w`: each trial's spikes are scored against the estimate built from
+/// every other trial, exactly as the decoder will use an estimate on unseen trials.
+pub fn loto_log_likelihood(trials: &[Vec<f64>], n_bins: usize, w: f64) -> f64 {
+    let k = KernelTable::new(w, n_bins);
+    let total: usize = trials.iter().map(|t| t.len()).sum();
+    let mut all = vec![0.0f64; n_bins];
+    for t in trials.iter().flatten() {
+        k.add_spike(*t, 1.0, &mut all);
+    }
+    let mut own = vec![0.0f64; n_bins];
+    let mut ll = 0.0;
+    let bf = n_bins as f64;
+    for tr in trials {
+        if tr.is_empty() {
+            continue;
+        }
+        let rest = (total - tr.len()) as f64;
+        own.iter_mut().for_each(|x| *x = 0.0);
+        for &t in tr {
+            k.add_spike(t, 1.0, &mut own);
+        }
+        for &t in tr {
+            let b = (t.floor() as usize).min(n_bins - 1);
+            let q = if rest > 0.0 {
+                ((all[b] - own[b]).max(0.0)) / rest
+            } else {
+                1.0 / bf
+            };
+            ll += ((1.0 - TIMING_FLOOR) * q + TIMING_FLOOR / bf).ln();
+        }
+    }
+    ll
+}
+
+/// Bandwidth (bins) maximising the leave-one-trial-out likelihood over the same log grid as
+/// [`choose_bandwidth`], refined by golden-section search.
+pub fn choose_bandwidth_loto(trials: &[Vec<f64>], n_bins: usize) -> f64 {
+    let lo = 0.5f64;
+    let hi = (n_bins as f64 / 2.0).max(lo * 2.0);
+    let n_trials_with = trials.iter().filter(|t| !t.is_empty()).count();
+    if n_trials_with < 2 {
+        return hi;
+    }
+    let f = |w: f64| -loto_log_likelihood(trials, n_bins, w);
+    let grid: Vec<f64> = (0..24)
+        .map(|i| (lo.ln() + (hi.ln() - lo.ln()) * i as f64 / 23.0).exp())
+        .collect();
+    let costs: Vec<f64> = grid.iter().map(|&w| f(w)).collect();
+    let best = costs
+        .iter()
+        .enumerate()
+        .min_by(|a, b| a.1.total_cmp(b.1))
+        .map(|(i, _)| i)
+        .unwrap_or(0);
+    let (mut a, mut b) = (
+        grid[best.saturating_sub(1)].ln(),
+        grid[(best + 1).min(23)].ln(),
+    );
+    let g = (5f64.sqrt() - 1.0) / 2.0;
+    for _ in 0..20 {
+        let x1 = b - g * (b - a);
+        let x2 = a + g * (b - a);
+        if f(x1.exp()) < f(x2.exp()) {
+            b = x2;
+        } else {
+            a = x1;
+        }
+    }
+    ((a + b) / 2.0).exp()
+}
+
 /// Mixes in [`TIMING_FLOOR`] of the uniform density: `q ← (1−ε)·q + ε/B`. Keeps Σq = 1.
 pub fn floor_timing(q: &mut [f64]) {
     let b = q.len() as f64;
     let s: f64 = q.iter().sum();
     for x in q.iter_mut() {
         *x = (1.0 - TIMING_FLOOR) * (*x / s) + TIMING_FLOOR / b;
+    }
+}
+
+/// How the kernel bandwidth is chosen.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Default, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum BandwidthRule {
+    /// Leave-one-trial-out likelihood (default: what the decoder will meet on unseen trials).
+    #[default]
+    LeaveOneTrialOut,
+    /// Shimazaki–Shinomoto (2010) kernel cost (integrated squared error of the rate).
+    KernelCost,
+}
+
+impl BandwidthRule {
+    /// Parses `loto` / `kernel-cost`.
+    pub fn parse(s: &str) -> Option<Self> {
+        match s {
+            "loto" | "leave-one-trial-out" => Some(BandwidthRule::LeaveOneTrialOut),
+            "kernel-cost" | "ss" => Some(BandwidthRule::KernelCost),
+            _ => None,
+        }
     }
 }
 
@@ -197,16 +299,20 @@ pub struct TimingFit {
     pub bandwidth_bins: f64,
 }
 
-/// Fits the timing of one cell from spike times in bin units pooled over `n_trials` trials.
-pub fn fit_timing(times: &[f64], n_trials: usize, n_bins: usize) -> TimingFit {
-    if times.is_empty() {
+/// Fits the timing of one cell from spike times in bin units, one list per training trial.
+pub fn fit_timing(trials: &[Vec<f64>], n_bins: usize, rule: BandwidthRule) -> TimingFit {
+    let pooled: Vec<f64> = trials.iter().flatten().copied().collect();
+    if pooled.is_empty() {
         return TimingFit {
             q: vec![1.0 / n_bins as f64; n_bins],
             bandwidth_bins: f64::NAN,
         };
     }
-    let w = choose_bandwidth(times, n_trials, n_bins);
-    let mut q = kde_bin_probabilities(times, n_bins, w);
+    let w = match rule {
+        BandwidthRule::KernelCost => choose_bandwidth(&pooled, trials.len(), n_bins),
+        BandwidthRule::LeaveOneTrialOut => choose_bandwidth_loto(trials, n_bins),
+    };
+    let mut q = kde_bin_probabilities(&pooled, n_bins, w);
     floor_timing(&mut q);
     TimingFit {
         q,
@@ -271,9 +377,11 @@ mod tests {
 
     #[test]
     fn floored_timing_is_positive_everywhere() {
-        let f = fit_timing(&[10.2, 10.4, 11.0, 12.5], 2, 200);
-        assert!(f.q.iter().all(|&x| x > 0.0));
-        assert!((f.q.iter().sum::<f64>() - 1.0).abs() < 1e-12);
-        assert!(f.q[11] > 50.0 * f.q[150]);
+        for rule in [BandwidthRule::KernelCost, BandwidthRule::LeaveOneTrialOut] {
+            let f = fit_timing(&[vec![10.2, 10.4], vec![11.0, 12.5]], 200, rule);
+            assert!(f.q.iter().all(|&x| x > 0.0));
+            assert!((f.q.iter().sum::<f64>() - 1.0).abs() < 1e-12);
+            assert!(f.q[11] > 20.0 * f.q[150], "{rule:?}");
+        }
     }
 }

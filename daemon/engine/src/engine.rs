@@ -389,6 +389,21 @@ fn count_const(m: &Model, dec: Decoder, u: usize, s: usize, k: u32) -> f64 {
     }
 }
 
+/// The constant after the unit's count rose from `k − 1` to `k`, updated incrementally where a
+/// family allows it (negative binomial: `+ ln(1−p) + ln(r + k − 1)`, no ln Γ per spike).
+#[inline]
+fn next_count_const(m: &Model, dec: Decoder, u: usize, s: usize, k: u32, prev: f64) -> f64 {
+    let i = u * m.n_stimuli() + s;
+    match (dec, m.kernels[i]) {
+        (Decoder::InhomogeneousPoisson, _) => prev + m.ln_means[i],
+        (Decoder::OrderStats, CellKernel::Poisson { ln_mean, .. }) => prev + ln_mean,
+        (Decoder::OrderStats, CellKernel::NegBin { shape }) => {
+            prev + m.dists[i].nb_ln_one_minus_p() + (shape + (k - 1) as f64).ln()
+        }
+        _ => count_const(m, dec, u, s, k),
+    }
+}
+
 /// The unit's full count term at bin b: `ln Φ^(k)(S(b))` (or its Poisson form).
 #[inline]
 fn count_term(m: &Model, dec: Decoder, u: usize, s: usize, b: usize, k: u32, cconst: f64) -> f64 {
@@ -927,7 +942,8 @@ fn run_bins(
                 let lq = m.ln_q[row + s];
                 t.unit_ll[u * ns + s] += lq;
                 t.pop_spike[s] += lq;
-                t.cconst[u * ns + s] = count_const(&m, t.decoder, u, s, k);
+                let i = u * ns + s;
+                t.cconst[i] = next_count_const(&m, t.decoder, u, s, k, t.cconst[i]);
             }
         }
         // Posterior at the end of bin b.

@@ -7,7 +7,7 @@
 
 use crate::count::{choose_family, CountFamily};
 use crate::data::Dataset;
-use crate::density::fit_timing;
+use crate::density::{fit_timing, BandwidthRule};
 use crate::model::{mean_var, CellSpec, CellSummary, ModelSpec};
 
 /// How to fit.
@@ -21,6 +21,8 @@ pub struct FitOptions {
     pub families: Vec<CountFamily>,
     /// Prior: equal (false) or the training frequencies of the stimuli (true).
     pub prior_from_frequencies: bool,
+    /// Kernel bandwidth rule.
+    pub bandwidth: BandwidthRule,
 }
 
 impl Default for FitOptions {
@@ -30,6 +32,7 @@ impl Default for FitOptions {
             window_s: 0.25,
             families: CountFamily::ALL.to_vec(),
             prior_from_frequencies: false,
+            bandwidth: BandwidthRule::default(),
         }
     }
 }
@@ -50,8 +53,8 @@ pub enum FitError {
 pub struct CellInput {
     /// Window count per training trial of this stimulus.
     pub counts: Vec<u32>,
-    /// All spike times (bins from onset) pooled over those trials.
-    pub times: Vec<f64>,
+    /// Spike times (bins from onset), one list per training trial.
+    pub times: Vec<Vec<f64>>,
 }
 
 /// Everything needed to fit, gathered from a dataset.
@@ -73,6 +76,8 @@ pub struct FitPlan {
     pub cells: Vec<CellInput>,
     /// Families allowed.
     pub families: Vec<CountFamily>,
+    /// Bandwidth rule.
+    pub bandwidth: BandwidthRule,
     /// Prior.
     pub prior: Vec<f64>,
     /// Units with no spike inside any labelled trial window.
@@ -151,7 +156,7 @@ pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
             let Some(s) = stim_of[i] else { continue };
             let c = &mut cells[u * ns + s];
             c.counts.push(w.counts[u][i]);
-            c.times.extend_from_slice(&w.times[u][i]);
+            c.times.push(w.times[u][i].clone());
             any |= w.counts[u][i] > 0;
         }
         if !any {
@@ -178,6 +183,7 @@ pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
         trials_per_stimulus: per,
         cells,
         families: opts.families.clone(),
+        bandwidth: opts.bandwidth,
         prior,
         silent_units: silent,
         unlabelled_trials: data.trials.len() - labelled.len(),
@@ -190,9 +196,10 @@ pub fn fit_cell(
     n_bins: usize,
     bin_width_s: f64,
     families: &[CountFamily],
+    rule: BandwidthRule,
 ) -> CellSpec {
     let choice = choose_family(&input.counts, families);
-    let timing = fit_timing(&input.times, input.counts.len(), n_bins);
+    let timing = fit_timing(&input.times, n_bins, rule);
     let (mean, var) = mean_var(&input.counts);
     CellSpec {
         count: choice.params,
@@ -229,7 +236,15 @@ impl FitPlan {
         let cells = self
             .cells
             .iter()
-            .map(|c| fit_cell(c, self.n_bins, self.bin_width_s, &self.families))
+            .map(|c| {
+                fit_cell(
+                    c,
+                    self.n_bins,
+                    self.bin_width_s,
+                    &self.families,
+                    self.bandwidth,
+                )
+            })
             .collect();
         self.assemble(cells)
     }

@@ -1,0 +1,268 @@
+//! The command implementations behind `auspex <command>`.
+
+use crate::fitting::{fit_dataset, parse_families, summary_table};
+use crate::offline::{run_dataset, score, write_decisions, CsvSink};
+use crate::tables::{read_dataset, report_for, write_dataset};
+use anyhow::{bail, Context};
+use auspex_engine::engine::{DecisionPolicy, Decoder, EngineConfig};
+use auspex_engine::fit::FitOptions;
+use auspex_engine::simulate::{simulate, Scenario, SimOptions};
+use auspex_engine::Model;
+use auspexd::model_file::{load_model, save_model};
+use std::io::IsTerminal;
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+/// Reads a scenario file (TOML).
+pub fn read_scenario(path: &Path) -> anyhow::Result<Scenario> {
+    let text = std::fs::read_to_string(path)
+        .with_context(|| format!("{}: cannot read scenario", path.display()))?;
+    toml::from_str(&text).map_err(|e| anyhow::anyhow!("{}: {}", path.display(), e))
+}
+
+/// `simulate`: from a scenario, or from a model with explicit settings.
+pub fn simulate_cmd(
+    scenario: Option<&Path>,
+    model: Option<&Path>,
+    out_dir: &Path,
+    trials: Option<u32>,
+    seed: Option<u64>,
+    tick_rate: f64,
+    true_model_out: Option<&Path>,
+) -> anyhow::Result<()> {
+    let (model, mut opts) = match (scenario, model) {
+        (Some(s), None) => {
+            let sc = read_scenario(s)?;
+            let spec = sc
+                .true_model()
+                .map_err(|e| anyhow::anyhow!("{}: {e}", s.display()))?;
+            if let Some(p) = true_model_out {
+                save_model(p, &spec, &format!("true model of scenario {}", s.display()))?;
+                eprintln!("true model written to {}", p.display());
+            }
+            (Model::new(spec)?, sc.sim_options())
+        }
+        (None, Some(m)) => {
+            if true_model_out.is_some() {
+                bail!("--write-true-model needs --scenario (the model given is already the truth)");
+            }
+            let (_, model) = load_model(m)?;
+            (
+                model,
+                SimOptions {
+                    trials_per_stimulus: 20,
+                    gap_s: (0.2, 0.4),
+                    spontaneous_hz: 2.0,
+                    tick_rate_hz: tick_rate,
+                    seed: 1,
+                },
+            )
+        }
+        _ => bail!("give exactly one of --scenario or --model"),
+    };
+    if let Some(t) = trials {
+        opts.trials_per_stimulus = t;
+    }
+    if let Some(s) = seed {
+        opts.seed = s;
+    }
+    let data = simulate(&model, &opts);
+    std::fs::create_dir_all(out_dir)
+        .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;
+    let (sp, tr) = (out_dir.join("spikes.csv"), out_dir.join("trials.csv"));
+    write_dataset(&data, &sp, &tr).with_context(|| format!("writing {}", out_dir.display()))?;
+    eprintln!(
+        "wrote {} spikes to {} and {} trials to {} (seed {})",
+        data.spikes.len(),
+        sp.display(),
+        data.trials.len(),
+        tr.display(),
+        opts.seed
+    );
+    Ok(())
+}
+
+/// `fit`.
+#[allow(clippy::too_many_arguments)]
+pub fn fit_cmd(
+    spikes: &Path,
+    trials: &Path,
+    out: &Path,
+    window_ms: f64,
+    bin_ms: f64,
+    families: &str,
+    prior_from_frequencies: bool,
+    tick_rate: f64,
+    quiet: bool,
+) -> anyhow::Result<Model> {
+    let opts = FitOptions {
+        bin_width_s: bin_ms / 1000.0,
+        window_s: window_ms / 1000.0,
+        families: parse_families(families)?,
+        prior_from_frequencies,
+        bandwidth: Default::default(),
+    };
+    let (data, report) = read_dataset(spikes, trials, tick_rate, opts.window_s)?;
+    eprintln!("{report}");
+    let t0 = std::time::Instant::now();
+    let (spec, plan) = fit_dataset(&data, &opts, std::io::stderr().is_terminal() && !quiet)?;
+    if !quiet {
+        print!("{}", summary_table(&spec));
+    }
+    eprintln!(
+        "fitted {} units × {} stimuli ({} cells, {} bins of {} ms) in {:.1} s; {} trials without a label were not used",
+        spec.units.len(),
+        spec.stimuli.len(),
+        spec.cells.len(),
+        spec.n_bins,
+        bin_ms,
+        t0.elapsed().as_secs_f64(),
+        plan.unlabelled_trials
+    );
+    let model = Model::new(spec.clone())?;
+    save_model(
+        out,
+        &spec,
+        &format!("{} + {}", spikes.display(), trials.display()),
+    )?;
+    eprintln!("model written to {}", out.display());
+    Ok(model)
+}
+
+/// Decoding settings from the command line.
+#[derive(Clone, Debug)]
+pub struct DecodeArgs {
+    /// Decoder.
+    pub decoder: Decoder,
+    /// Threshold.
+    pub threshold: f64,
+    /// Minimum time, ms.
+    pub min_time_ms: f64,
+    /// Prior override.
+    pub prior: Option<Vec<f64>>,
+}
+
+impl DecodeArgs {
+    /// Engine config for a clock.
+    pub fn config(&self, tick_rate: f64) -> EngineConfig {
+        let mut c = EngineConfig::new(tick_rate);
+        c.decoder = self.decoder;
+        c.policy = DecisionPolicy {
+            threshold: self.threshold,
+            min_time_s: self.min_time_ms / 1000.0,
+        };
+        c.prior = self.prior.clone();
+        c
+    }
+}
+
+/// `decode`: returns the accuracy.
+pub fn decode_cmd(
+    model_path: &Path,
+    spikes: &Path,
+    trials: &Path,
+    out_dir: &Path,
+    args: &DecodeArgs,
+    tick_rate: f64,
+) -> anyhow::Result<f64> {
+    let (_, model) = load_model(model_path)?;
+    let model = Arc::new(model);
+    let window_s = model.bin_width_s() * model.n_bins() as f64;
+    let (data, report) = read_dataset(spikes, trials, tick_rate, window_s)?;
+    eprintln!("{report}");
+    std::fs::create_dir_all(out_dir)
+        .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;
+    let post_path = out_dir.join("posteriors.csv");
+    let f = std::fs::File::create(&post_path)
+        .with_context(|| format!("{}: cannot create", post_path.display()))?;
+    let mut sink = CsvSink::new(
+        model.stimuli(),
+        &data,
+        Some(std::io::BufWriter::with_capacity(1 << 20, f)),
+    );
+    let counters = run_dataset(model.clone(), &data, args.config(tick_rate), &mut sink)?;
+    let rows = sink
+        .finish()
+        .with_context(|| format!("writing {}", post_path.display()))?;
+    let dec_path = out_dir.join("decisions.csv");
+    write_decisions(&dec_path, model.stimuli(), &rows)
+        .with_context(|| format!("writing {}", dec_path.display()))?;
+    let sc = score(model.stimuli(), &rows);
+    if counters.unknown_unit_spikes > 0 {
+        eprintln!(
+            "note: {} spikes came from units the model does not have and were not used",
+            counters.unknown_unit_spikes
+        );
+    }
+    println!(
+        "{}: {} trials decided, accuracy {:.1}% of {} labelled ({} correct), mean decision at {:.1} ms, {:.0}% before the window end",
+        args.decoder.name(),
+        rows.len(),
+        100.0 * sc.accuracy(),
+        sc.labelled,
+        sc.correct,
+        (sc.mean_bin + 1.0) * model.bin_width_s() * 1000.0,
+        100.0 * sc.early_share
+    );
+    eprintln!("wrote {} and {}", post_path.display(), dec_path.display());
+    Ok(sc.accuracy())
+}
+
+/// `export`.
+pub fn export_cmd(model_path: &Path, out: Option<&Path>) -> anyhow::Result<()> {
+    let (_, model) = load_model(model_path)?;
+    let j = crate::export::model_json(&model);
+    match out {
+        Some(p) => {
+            std::fs::write(p, j).with_context(|| format!("{}: cannot write", p.display()))?;
+            eprintln!("wrote {}", p.display());
+        }
+        None => println!("{j}"),
+    }
+    Ok(())
+}
+
+/// `inspect`: the per-cell summary of a model file.
+pub fn inspect_cmd(model_path: &Path) -> anyhow::Result<()> {
+    let (spec, model) = load_model(model_path)?;
+    println!(
+        "{}: {} units × {} stimuli, window {} ms in {} bins of {} ms; stimuli: {}",
+        model_path.display(),
+        model.n_units(),
+        model.n_stimuli(),
+        model.n_bins() as f64 * model.bin_width_s() * 1000.0,
+        model.n_bins(),
+        model.bin_width_s() * 1000.0,
+        model.stimuli().join(", ")
+    );
+    print!("{}", summary_table(&spec));
+    Ok(())
+}
+
+/// `demo`: the offline path on the bundled demo data.
+pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
+    let demo = crate::demo_dir();
+    let (sp, tr) = (demo.join("spikes.csv"), demo.join("trials.csv"));
+    if !sp.exists() || !tr.exists() {
+        bail!("{}: the demo data is missing; regenerate it with `auspex simulate --scenario {}/scenario.toml --out-dir {}`", demo.display(), demo.display(), demo.display());
+    }
+    std::fs::create_dir_all(out_dir)
+        .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;
+    let model_path = out_dir.join("demo.apxm");
+    eprintln!("── 1/3 fitting the demo model ──");
+    fit_cmd(&sp, &tr, &model_path, 250.0, 1.0, "all", false, 1e6, quiet)?;
+    eprintln!("── 2/3 decoding every trial with each decoder ──");
+    for dec in Decoder::ALL {
+        let args = DecodeArgs {
+            decoder: dec,
+            threshold: 0.9,
+            min_time_ms: 20.0,
+            prior: None,
+        };
+        decode_cmd(&model_path, &sp, &tr, &out_dir.join(dec.name()), &args, 1e6)?;
+    }
+    eprintln!("── 3/3 exporting the model as JSON ──");
+    export_cmd(&model_path, Some(&out_dir.join("demo-model.json")))?;
+    let _ = report_for;
+    Ok(model_path)
+}

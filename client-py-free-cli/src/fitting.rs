@@ -1,0 +1,160 @@
+//! The `fit` job: plan the cells, fit them on every core with a progress bar, and summarise.
+
+use auspex_engine::count::CountFamily;
+use auspex_engine::data::Dataset;
+use auspex_engine::fit::{fit_cell, plan, FitOptions, FitPlan};
+use auspex_engine::model::{CellSpec, ModelSpec};
+use indicatif::{ProgressBar, ProgressStyle};
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+/// Fits every cell of `plan` in parallel; `progress` shows a bar on a terminal.
+pub fn fit_cells(plan: &FitPlan, progress: bool) -> Vec<CellSpec> {
+    let n = plan.cells.len();
+    let bar = if progress {
+        ProgressBar::new(n as u64)
+    } else {
+        ProgressBar::hidden()
+    };
+    bar.set_style(
+        ProgressStyle::with_template("fitting {bar:40.cyan/blue} {pos}/{len} cells ({eta} left)")
+            .expect("static template")
+            .progress_chars("█▉▊▋▌▍▎▏ "),
+    );
+    let next = AtomicUsize::new(0);
+    let threads = std::thread::available_parallelism()
+        .map(|n| n.get())
+        .unwrap_or(1)
+        .min(n.max(1));
+    let mut out: Vec<Option<CellSpec>> = vec![None; n];
+    let results: Vec<Vec<(usize, CellSpec)>> = std::thread::scope(|s| {
+        let handles: Vec<_> = (0..threads)
+            .map(|_| {
+                s.spawn(|| {
+                    let mut mine = Vec::new();
+                    loop {
+                        let i = next.fetch_add(1, Ordering::Relaxed);
+                        if i >= n {
+                            break;
+                        }
+                        mine.push((
+                            i,
+                            fit_cell(
+                                &plan.cells[i],
+                                plan.n_bins,
+                                plan.bin_width_s,
+                                &plan.families,
+                                plan.bandwidth,
+                            ),
+                        ));
+                        bar.inc(1);
+                    }
+                    mine
+                })
+            })
+            .collect();
+        handles
+            .into_iter()
+            .map(|h| h.join().expect("fit worker panicked"))
+            .collect()
+    });
+    bar.finish_and_clear();
+    for (i, c) in results.into_iter().flatten() {
+        out[i] = Some(c);
+    }
+    out.into_iter()
+        .map(|c| c.expect("every cell fitted"))
+        .collect()
+}
+
+/// Plans and fits a dataset.
+pub fn fit_dataset(
+    data: &Dataset,
+    opts: &FitOptions,
+    progress: bool,
+) -> anyhow::Result<(ModelSpec, FitPlan)> {
+    let plan = plan(data, opts)?;
+    let cells = fit_cells(&plan, progress);
+    Ok((plan.assemble(cells), plan))
+}
+
+/// Parses a comma-separated family list (`all` for every family).
+pub fn parse_families(s: &str) -> anyhow::Result<Vec<CountFamily>> {
+    if s.trim() == "all" {
+        return Ok(CountFamily::ALL.to_vec());
+    }
+    s.split(',')
+        .map(|f| {
+            CountFamily::parse(f).ok_or_else(|| {
+                anyhow::anyhow!("unknown count family `{f}`: use poisson, negative_binomial (nb), com_poisson (com), empirical or all")
+            })
+        })
+        .collect()
+}
+
+/// The per-cell summary table printed after a fit.
+pub fn summary_table(spec: &ModelSpec) -> String {
+    use std::fmt::Write;
+    let ns = spec.stimuli.len();
+    let mut s = String::new();
+    let _ = writeln!(
+        s,
+        "{:>6}  {:<12} {:<18} {:>7} {:>6} {:>9}  {}",
+        "unit", "stimulus", "count family", "mean", "Fano", "bw (ms)", "held-out ln L/trial"
+    );
+    let mut fam_counts = std::collections::BTreeMap::new();
+    for (i, c) in spec.cells.iter().enumerate() {
+        let (u, st) = (spec.units[i / ns], &spec.stimuli[i % ns]);
+        let sm = &c.summary;
+        let fano = if sm.mean_count > 0.0 {
+            sm.var_count / sm.mean_count
+        } else {
+            f64::NAN
+        };
+        *fam_counts.entry(c.count.family().name()).or_insert(0) += 1;
+        let scores: Vec<String> = sm
+            .held_out
+            .iter()
+            .map(|(f, v)| {
+                format!(
+                    "{}={}",
+                    short(*f),
+                    if v.is_finite() {
+                        format!("{v:.2}")
+                    } else {
+                        "–".into()
+                    }
+                )
+            })
+            .collect();
+        let _ = writeln!(
+            s,
+            "{:>6}  {:<12} {:<18} {:>7.2} {:>6.2} {:>9}  {}",
+            u,
+            st,
+            c.count.family().name(),
+            sm.mean_count,
+            fano,
+            if sm.bandwidth_s.is_finite() {
+                format!("{:.1}", sm.bandwidth_s * 1000.0)
+            } else {
+                "–".into()
+            },
+            scores.join(" ")
+        );
+    }
+    let fams: Vec<String> = fam_counts
+        .iter()
+        .map(|(k, v)| format!("{k}: {v}"))
+        .collect();
+    let _ = writeln!(s, "families chosen — {}", fams.join(", "));
+    s
+}
+
+fn short(f: CountFamily) -> &'static str {
+    match f {
+        CountFamily::Poisson => "P",
+        CountFamily::NegativeBinomial => "NB",
+        CountFamily::ComPoisson => "CMP",
+        CountFamily::Empirical => "E",
+    }
+}

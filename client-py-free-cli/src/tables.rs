@@ -1,0 +1,364 @@
+//! Reading the CSV spike and trial tables into a [`Dataset`], with errors that name the file,
+//! the line and what is wrong. Seconds become integer ticks here, once.
+//!
+//! Accepted: a header line naming the columns (any order, extra columns ignored), then one row
+//! per line; blank lines and lines starting with `#` are skipped; fields may be double-quoted.
+
+use auspex_engine::data::{seconds_to_ticks, Dataset, Trial};
+use std::collections::HashMap;
+use std::path::Path;
+
+/// A table problem, already formatted as `file:line: what is wrong`.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct TableError(pub String);
+
+fn split_fields(line: &str) -> Vec<String> {
+    let mut out = Vec::new();
+    let mut cur = String::new();
+    let mut quoted = false;
+    let mut chars = line.chars().peekable();
+    while let Some(c) = chars.next() {
+        match c {
+            '"' if quoted && chars.peek() == Some(&'"') => {
+                cur.push('"');
+                chars.next();
+            }
+            '"' => quoted = !quoted,
+            ',' if !quoted => out.push(std::mem::take(&mut cur)),
+            _ => cur.push(c),
+        }
+    }
+    out.push(cur);
+    out.into_iter().map(|s| s.trim().to_string()).collect()
+}
+
+struct Table {
+    path: String,
+    rows: Vec<(usize, Vec<String>)>,
+    cols: HashMap<String, usize>,
+}
+
+fn read_table(path: &Path, required: &[&str]) -> Result<Table, TableError> {
+    let p = path.display().to_string();
+    let text =
+        std::fs::read_to_string(path).map_err(|e| TableError(format!("{p}: cannot read: {e}")))?;
+    let mut lines = text.lines().enumerate().filter(|(_, l)| {
+        let t = l.trim();
+        !t.is_empty() && !t.starts_with('#')
+    });
+    let (hline, header) = lines.next().ok_or_else(|| {
+        TableError(format!(
+            "{p}: the file is empty; expected a header line with {}",
+            required.join(",")
+        ))
+    })?;
+    let names = split_fields(header.trim_start_matches('\u{feff}'));
+    let cols: HashMap<String, usize> = names
+        .iter()
+        .enumerate()
+        .map(|(i, n)| (n.to_ascii_lowercase(), i))
+        .collect();
+    for r in required {
+        if !cols.contains_key(*r) {
+            return Err(TableError(format!(
+                "{p}:{}: missing column `{r}` (the header has: {}); expected columns {}",
+                hline + 1,
+                names.join(", "),
+                required.join(",")
+            )));
+        }
+    }
+    let mut rows = Vec::new();
+    for (i, l) in lines {
+        let f = split_fields(l);
+        if f.len() < names.len() {
+            return Err(TableError(format!(
+                "{p}:{}: expected {} fields like the header, found {}",
+                i + 1,
+                names.len(),
+                f.len()
+            )));
+        }
+        rows.push((i + 1, f));
+    }
+    Ok(Table {
+        path: p,
+        rows,
+        cols,
+    })
+}
+
+impl Table {
+    fn get<'a>(&self, row: &'a [String], col: &str) -> &'a str {
+        &row[self.cols[col]]
+    }
+    fn seconds(&self, line: usize, row: &[String], col: &str) -> Result<f64, TableError> {
+        let v = self.get(row, col);
+        let x: f64 = v.parse().map_err(|_| {
+            TableError(format!(
+                "{}:{line}: column `{col}`: `{v}` is not a number (seconds expected)",
+                self.path
+            ))
+        })?;
+        if !x.is_finite() {
+            return Err(TableError(format!(
+                "{}:{line}: column `{col}`: `{v}` is not a finite number",
+                self.path
+            )));
+        }
+        if x < 0.0 {
+            return Err(TableError(format!(
+                "{}:{line}: column `{col}`: {v} is negative; times are seconds from the start of the recording",
+                self.path
+            )));
+        }
+        Ok(x)
+    }
+    fn id(&self, line: usize, row: &[String], col: &str, what: &str) -> Result<u64, TableError> {
+        let v = self.get(row, col);
+        v.parse::<u64>().map_err(|_| {
+            TableError(format!(
+                "{}:{line}: column `{col}`: `{v}` is not a valid {what} (a non-negative integer)",
+                self.path
+            ))
+        })
+    }
+}
+
+/// What reading found besides the data: nothing is dropped without being reported.
+#[derive(Debug, Default, Clone)]
+pub struct ReadReport {
+    /// Spike rows read.
+    pub spikes: usize,
+    /// Trial rows read.
+    pub trials: usize,
+    /// Spikes inside no trial window (of the given window length).
+    pub spikes_outside_windows: usize,
+    /// Units with no spikes at all in any trial window.
+    pub units_without_window_spikes: Vec<u32>,
+    /// Trials with no stimulus label.
+    pub unlabelled_trials: usize,
+}
+
+impl std::fmt::Display for ReadReport {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "read {} spikes and {} trials; {} spikes fell in no trial window; {} units had no spikes in any window",
+            self.spikes,
+            self.trials,
+            self.spikes_outside_windows,
+            self.units_without_window_spikes.len()
+        )?;
+        if !self.units_without_window_spikes.is_empty() {
+            let list: Vec<String> = self
+                .units_without_window_spikes
+                .iter()
+                .take(20)
+                .map(|u| u.to_string())
+                .collect();
+            write!(
+                f,
+                " ({}{})",
+                list.join(", "),
+                if self.units_without_window_spikes.len() > 20 {
+                    ", …"
+                } else {
+                    ""
+                }
+            )?;
+        }
+        if self.unlabelled_trials > 0 {
+            write!(
+                f,
+                "; {} trials have no stimulus label",
+                self.unlabelled_trials
+            )?;
+        }
+        Ok(())
+    }
+}
+
+/// Reads `spikes` (`unit,time_s`) and `trials` (`trial,onset_s,stimulus`) at `tick_rate_hz`.
+/// `window_s` is used only to report spikes outside every window.
+pub fn read_dataset(
+    spikes: &Path,
+    trials: &Path,
+    tick_rate_hz: f64,
+    window_s: f64,
+) -> Result<(Dataset, ReadReport), TableError> {
+    if !(tick_rate_hz.is_finite() && tick_rate_hz >= 1.0) {
+        return Err(TableError(format!(
+            "tick rate {tick_rate_hz} must be at least 1 tick per second"
+        )));
+    }
+    let st = read_table(spikes, &["unit", "time_s"])?;
+    let mut sp = Vec::with_capacity(st.rows.len());
+    let mut units = std::collections::BTreeSet::new();
+    for (line, row) in &st.rows {
+        let unit = st.id(*line, row, "unit", "unit id")?;
+        let unit = u32::try_from(unit).map_err(|_| {
+            TableError(format!(
+                "{}:{line}: unit id {unit} is larger than {}",
+                st.path,
+                u32::MAX
+            ))
+        })?;
+        let t = st.seconds(*line, row, "time_s")?;
+        units.insert(unit);
+        sp.push((seconds_to_ticks(t, tick_rate_hz), unit));
+    }
+    sp.sort_unstable();
+    let tt = read_table(trials, &["trial", "onset_s", "stimulus"])?;
+    let mut tr = Vec::with_capacity(tt.rows.len());
+    let mut seen: HashMap<u64, usize> = HashMap::new();
+    for (line, row) in &tt.rows {
+        let id = tt.id(*line, row, "trial", "trial id")?;
+        if let Some(prev) = seen.insert(id, *line) {
+            return Err(TableError(format!(
+                "{}:{line}: trial {id} is already defined on line {prev}",
+                tt.path
+            )));
+        }
+        let onset = tt.seconds(*line, row, "onset_s")?;
+        let s = tt.get(row, "stimulus");
+        tr.push(Trial {
+            id,
+            onset: seconds_to_ticks(onset, tick_rate_hz),
+            stimulus: (!s.is_empty()).then(|| s.to_string()),
+        });
+    }
+    tr.sort_by_key(|t| (t.onset, t.id));
+    let data = Dataset {
+        tick_rate_hz,
+        trials: tr,
+        spikes: sp,
+        units: units.into_iter().collect(),
+    };
+    let report = report_for(&data, window_s);
+    Ok((data, report))
+}
+
+/// The read report of a dataset for a window length.
+pub fn report_for(data: &Dataset, window_s: f64) -> ReadReport {
+    let window_ticks = seconds_to_ticks(window_s, data.tick_rate_hz).max(1);
+    let mut in_window: std::collections::HashSet<u32> = std::collections::HashSet::new();
+    for t in &data.trials {
+        let a = data.spikes.partition_point(|s| s.0 < t.onset);
+        let b = data
+            .spikes
+            .partition_point(|s| s.0 < t.onset + window_ticks);
+        for s in &data.spikes[a..b] {
+            in_window.insert(s.1);
+        }
+    }
+    ReadReport {
+        spikes: data.spikes.len(),
+        trials: data.trials.len(),
+        spikes_outside_windows: data.spikes_outside_windows(window_ticks),
+        units_without_window_spikes: data
+            .units
+            .iter()
+            .copied()
+            .filter(|u| !in_window.contains(u))
+            .collect(),
+        unlabelled_trials: data.trials.iter().filter(|t| t.stimulus.is_none()).count(),
+    }
+}
+
+/// Writes a dataset as the two CSV tables (times in seconds, full precision of the tick).
+pub fn write_dataset(data: &Dataset, spikes: &Path, trials: &Path) -> std::io::Result<()> {
+    use std::io::Write;
+    let digits = (data.tick_rate_hz.log10().ceil().max(0.0)) as usize;
+    let mut w = std::io::BufWriter::new(std::fs::File::create(spikes)?);
+    writeln!(w, "unit,time_s")?;
+    for &(tick, unit) in &data.spikes {
+        writeln!(w, "{unit},{:.*}", digits, tick as f64 / data.tick_rate_hz)?;
+    }
+    w.flush()?;
+    let mut w = std::io::BufWriter::new(std::fs::File::create(trials)?);
+    writeln!(w, "trial,onset_s,stimulus")?;
+    for t in &data.trials {
+        writeln!(
+            w,
+            "{},{:.*},{}",
+            t.id,
+            digits,
+            t.onset as f64 / data.tick_rate_hz,
+            t.stimulus.as_deref().unwrap_or("")
+        )?;
+    }
+    w.flush()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn write(dir: &Path, name: &str, body: &str) -> std::path::PathBuf {
+        let p = dir.join(name);
+        std::fs::write(&p, body).unwrap();
+        p
+    }
+
+    fn err(spikes: &str, trials: &str) -> String {
+        let d = tempfile::tempdir().unwrap();
+        let s = write(d.path(), "s.csv", spikes);
+        let t = write(d.path(), "t.csv", trials);
+        read_dataset(&s, &t, 1e6, 0.25).unwrap_err().to_string()
+    }
+
+    const GOOD_T: &str = "trial,onset_s,stimulus\n1,0.5,N\n2,1.5,S\n";
+    const GOOD_S: &str = "unit,time_s\n3,0.51\n3,0.6\n4,1.6\n";
+
+    #[test]
+    fn reads_good_tables_and_reports() {
+        let d = tempfile::tempdir().unwrap();
+        let s = write(
+            d.path(),
+            "s.csv",
+            "# comment\nunit,time_s,extra\n3,0.51,x\n\n3,3.0,y\n9,0.1,z\n",
+        );
+        let t = write(d.path(), "t.csv", "stimulus,trial,onset_s\n\"N\",1,0.5\n");
+        let (data, rep) = read_dataset(&s, &t, 1e6, 0.25).unwrap();
+        assert_eq!(data.spikes.len(), 3);
+        assert_eq!(data.trials[0].onset, 500_000);
+        assert_eq!(rep.spikes_outside_windows, 2);
+        assert_eq!(rep.units_without_window_spikes, vec![9]);
+    }
+
+    #[test]
+    fn bad_rows_name_file_line_and_problem() {
+        assert!(err("unit,time_s\n3,abc\n", GOOD_T)
+            .ends_with("s.csv:2: column `time_s`: `abc` is not a number (seconds expected)"));
+        assert!(err("unit,time_s\n3,NaN\n", GOOD_T)
+            .contains("s.csv:2: column `time_s`: `NaN` is not a finite number"));
+        assert!(err("unit,time_s\n3,inf\n", GOOD_T).contains("s.csv:2"));
+        assert!(err("unit,time_s\n3,0.1\n3,-0.2\n", GOOD_T)
+            .contains("s.csv:3: column `time_s`: -0.2 is negative"));
+        assert!(err("unit,time\n3,0.1\n", GOOD_T).contains("s.csv:1: missing column `time_s`"));
+        assert!(err("unit,time_s\nx7,0.1\n", GOOD_T)
+            .contains("s.csv:2: column `unit`: `x7` is not a valid unit id"));
+        assert!(err("unit,time_s\n3\n", GOOD_T).contains("s.csv:2: expected 2 fields"));
+        assert!(err(GOOD_S, "trial,onset_s,stimulus\n1,0.5,N\n1,0.9,S\n")
+            .contains("t.csv:3: trial 1 is already defined on line 2"));
+        assert!(err(GOOD_S, "trial,onset,stimulus\n").contains("t.csv:1: missing column `onset_s`"));
+        assert!(err(GOOD_S, "").contains("t.csv: the file is empty"));
+        assert!(
+            err(GOOD_S, "trial,onset_s,stimulus\n-1,0.5,N\n").contains("t.csv:2: column `trial`")
+        );
+    }
+
+    #[test]
+    fn missing_file_is_named() {
+        let e = read_dataset(
+            Path::new("/nonexistent/s.csv"),
+            Path::new("/nonexistent/t.csv"),
+            1e6,
+            0.25,
+        )
+        .unwrap_err();
+        assert!(e.to_string().starts_with("/nonexistent/s.csv: cannot read"));
+    }
+}

@@ -1,0 +1,203 @@
+//! Model files on disk: conversion between the engine's `ModelSpec` and the `ModelFile` schema,
+//! and loading/saving with errors that name the file.
+
+use auspex_engine::count::{CountFamily, CountParams};
+use auspex_engine::model::{CellSpec, CellSummary, ModelSpec};
+use auspex_proto::v1;
+use std::path::Path;
+
+/// Why a model file could not be used.
+#[derive(Debug, thiserror::Error)]
+pub enum ModelLoadError {
+    /// Reading or writing failed.
+    #[error("{path}: {source}")]
+    Io {
+        /// The file.
+        path: String,
+        /// The cause.
+        source: std::io::Error,
+    },
+    /// Bytes are not a model file.
+    #[error("{path}: {source}")]
+    Format {
+        /// The file.
+        path: String,
+        /// The cause.
+        source: auspex_proto::ModelFileError,
+    },
+    /// The contents do not make a valid model.
+    #[error("{path}: {msg}")]
+    Invalid {
+        /// The file.
+        path: String,
+        /// What is wrong.
+        msg: String,
+    },
+}
+
+fn family_to_proto(f: CountFamily) -> v1::CountFamily {
+    match f {
+        CountFamily::Poisson => v1::CountFamily::Poisson,
+        CountFamily::NegativeBinomial => v1::CountFamily::NegativeBinomial,
+        CountFamily::ComPoisson => v1::CountFamily::ComPoisson,
+        CountFamily::Empirical => v1::CountFamily::Empirical,
+    }
+}
+
+fn family_from_proto(f: i32) -> Option<CountFamily> {
+    match v1::CountFamily::try_from(f).ok()? {
+        v1::CountFamily::Poisson => Some(CountFamily::Poisson),
+        v1::CountFamily::NegativeBinomial => Some(CountFamily::NegativeBinomial),
+        v1::CountFamily::ComPoisson => Some(CountFamily::ComPoisson),
+        v1::CountFamily::Empirical => Some(CountFamily::Empirical),
+        v1::CountFamily::Unspecified => None,
+    }
+}
+
+/// Spec → file message.
+pub fn spec_to_proto(spec: &ModelSpec, training_data: &str) -> v1::ModelFile {
+    v1::ModelFile {
+        format_version: auspex_proto::MODEL_FORMAT_VERSION,
+        bin_width_s: spec.bin_width_s,
+        n_bins: spec.n_bins,
+        stimuli: spec.stimuli.clone(),
+        units: spec.units.clone(),
+        prior: spec.prior.clone(),
+        created_by: format!("auspex {}", env!("CARGO_PKG_VERSION")),
+        training_data: training_data.into(),
+        cells: spec
+            .cells
+            .iter()
+            .map(|c| {
+                let mut cell = v1::Cell {
+                    family: family_to_proto(c.count.family()) as i32,
+                    timing: c.timing.clone(),
+                    summary: Some(v1::CellFitSummary {
+                        n_trials: c.summary.n_trials,
+                        mean_count: c.summary.mean_count,
+                        var_count: c.summary.var_count,
+                        bandwidth_s: c.summary.bandwidth_s,
+                        held_out: c
+                            .summary
+                            .held_out
+                            .iter()
+                            .map(|(f, s)| v1::FamilyScore {
+                                family: family_to_proto(*f) as i32,
+                                log_lik_per_trial: *s,
+                            })
+                            .collect(),
+                    }),
+                    ..Default::default()
+                };
+                match &c.count {
+                    CountParams::Poisson { mean } => cell.mean = *mean,
+                    CountParams::NegativeBinomial { mean, shape } => {
+                        cell.mean = *mean;
+                        cell.shape = *shape;
+                    }
+                    CountParams::ComPoisson { lambda, nu } => {
+                        cell.lambda = *lambda;
+                        cell.nu = *nu;
+                    }
+                    CountParams::Empirical { pmf } => cell.count_table = pmf.clone(),
+                }
+                cell
+            })
+            .collect(),
+    }
+}
+
+/// File message → spec (shape checks happen when the engine builds the `Model`).
+pub fn spec_from_proto(m: &v1::ModelFile) -> Result<ModelSpec, String> {
+    let ns = m.stimuli.len().max(1);
+    let cells = m
+        .cells
+        .iter()
+        .enumerate()
+        .map(|(i, c)| {
+            let fam = family_from_proto(c.family).ok_or_else(|| {
+                format!(
+                    "cell {i} (unit index {}, stimulus index {}): unknown count family {}",
+                    i / ns,
+                    i % ns,
+                    c.family
+                )
+            })?;
+            let count = match fam {
+                CountFamily::Poisson => CountParams::Poisson { mean: c.mean },
+                CountFamily::NegativeBinomial => CountParams::NegativeBinomial {
+                    mean: c.mean,
+                    shape: c.shape,
+                },
+                CountFamily::ComPoisson => CountParams::ComPoisson {
+                    lambda: c.lambda,
+                    nu: c.nu,
+                },
+                CountFamily::Empirical => CountParams::Empirical {
+                    pmf: c.count_table.clone(),
+                },
+            };
+            let s = c.summary.clone().unwrap_or_default();
+            Ok(CellSpec {
+                count,
+                timing: c.timing.clone(),
+                summary: CellSummary {
+                    n_trials: s.n_trials,
+                    mean_count: s.mean_count,
+                    var_count: s.var_count,
+                    bandwidth_s: s.bandwidth_s,
+                    held_out: s
+                        .held_out
+                        .iter()
+                        .filter_map(|h| {
+                            family_from_proto(h.family).map(|f| (f, h.log_lik_per_trial))
+                        })
+                        .collect(),
+                },
+            })
+        })
+        .collect::<Result<Vec<_>, String>>()?;
+    Ok(ModelSpec {
+        bin_width_s: m.bin_width_s,
+        n_bins: m.n_bins,
+        stimuli: m.stimuli.clone(),
+        units: m.units.clone(),
+        prior: m.prior.clone(),
+        cells,
+    })
+}
+
+/// Writes a model file.
+pub fn save_model(
+    path: &Path,
+    spec: &ModelSpec,
+    training_data: &str,
+) -> Result<(), ModelLoadError> {
+    let bytes = auspex_proto::encode_model_file(&spec_to_proto(spec, training_data));
+    std::fs::write(path, bytes).map_err(|e| ModelLoadError::Io {
+        path: path.display().to_string(),
+        source: e,
+    })
+}
+
+/// Reads and validates a model file, returning the spec and the built model.
+pub fn load_model(path: &Path) -> Result<(ModelSpec, auspex_engine::Model), ModelLoadError> {
+    let p = path.display().to_string();
+    let bytes = std::fs::read(path).map_err(|e| ModelLoadError::Io {
+        path: p.clone(),
+        source: e,
+    })?;
+    let m = auspex_proto::decode_model_file(&bytes).map_err(|e| ModelLoadError::Format {
+        path: p.clone(),
+        source: e,
+    })?;
+    let spec = spec_from_proto(&m).map_err(|msg| ModelLoadError::Invalid {
+        path: p.clone(),
+        msg,
+    })?;
+    let model = auspex_engine::Model::new(spec.clone()).map_err(|e| ModelLoadError::Invalid {
+        path: p,
+        msg: e.to_string(),
+    })?;
+    Ok((spec, model))
+}
