@@ -9,6 +9,7 @@ pub mod export;
 pub mod fitting;
 pub mod offline;
 pub mod tables;
+pub mod wire;
 
 /// Where the bundled demo data lives (the repository's `demo-data/`).
 pub fn demo_dir() -> std::path::PathBuf {

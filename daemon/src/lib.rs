@@ -5,4 +5,11 @@
 //! and the session recorder. The binary is thin glue over this library.
 #![deny(missing_docs)]
 
+pub mod config;
+pub mod control;
+pub mod engine_thread;
+pub mod ingest;
 pub mod model_file;
+pub mod publish;
+pub mod recorder;
+pub mod service;

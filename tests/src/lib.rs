@@ -1,1 +1,1 @@
-//! placeholder
+//! End-to-end tests live in tests/; this library is intentionally empty.

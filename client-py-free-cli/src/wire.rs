@@ -1,0 +1,155 @@
+//! Building the inbound message stream a sender would produce, from a dataset or a recorded
+//! session, and reading recorded sessions back into datasets.
+
+use auspex_engine::data::{Dataset, Event, Trial};
+use auspex_proto::v1::{self, inbound::Body};
+use prost::Message;
+
+/// The messages of a dataset as one sender would send them: SessionStart, then per batch the
+/// onsets it contains and a SpikeBatch with its watermark, then EndOfStream. Sequence numbers
+/// count from 1. `batch_ticks` is the acquisition's batch length (1 ms is typical).
+pub fn dataset_messages(
+    data: &Dataset,
+    sender: &str,
+    batch_ticks: i64,
+    window_ticks: i64,
+) -> Vec<v1::Inbound> {
+    let mut out = Vec::new();
+    let mut seq = 0u64;
+    let mut push = |body: Body| {
+        seq += 1;
+        out.push(v1::Inbound {
+            sender: sender.into(),
+            seq,
+            body: Some(body),
+        });
+    };
+    push(Body::SessionStart(v1::SessionStart {
+        tick_rate_hz: data.tick_rate_hz,
+        units: data.units.clone(),
+        session_name: sender.into(),
+    }));
+    for ev in data.events(batch_ticks, window_ticks) {
+        match ev {
+            Event::Open {
+                trial,
+                onset,
+                stimulus,
+            } => push(Body::Onset(v1::TrialOnset {
+                trial,
+                onset_tick: onset,
+                stimulus: stimulus.unwrap_or_default(),
+            })),
+            Event::Batch { spikes, watermark } => {
+                if spikes.is_empty() {
+                    push(Body::Heartbeat(v1::Heartbeat {
+                        complete_through: watermark,
+                    }));
+                } else {
+                    push(Body::Spikes(v1::SpikeBatch {
+                        units: spikes.iter().map(|s| s.1).collect(),
+                        ticks: spikes.iter().map(|s| s.0).collect(),
+                        complete_through: watermark,
+                    }))
+                }
+            }
+        }
+    }
+    push(Body::EndOfStream(v1::EndOfStream {}));
+    out
+}
+
+/// The watermark a message promises, if any (for pacing replays).
+pub fn watermark_of(m: &v1::Inbound) -> Option<i64> {
+    match &m.body {
+        Some(Body::Spikes(b)) => Some(b.complete_through),
+        Some(Body::Heartbeat(h)) => Some(h.complete_through),
+        _ => None,
+    }
+}
+
+/// A recorded session read back: the raw messages in order and the dataset they describe.
+pub struct RecordedSession {
+    /// Every recorded message's bytes, in arrival order.
+    pub raw: Vec<Vec<u8>>,
+    /// Messages that decoded (index into `raw`, message).
+    pub messages: Vec<(usize, v1::Inbound)>,
+    /// Spikes, trials and clock as a dataset (labels applied to their trials).
+    pub dataset: Dataset,
+    /// Records that were not valid Inbound messages.
+    pub undecodable: usize,
+    /// Bytes of a torn last record, if the recording was cut short.
+    pub torn_tail_bytes: usize,
+}
+
+/// Reads a session recording (`.apxs`).
+pub fn read_recording(path: &std::path::Path) -> anyhow::Result<RecordedSession> {
+    let bytes =
+        std::fs::read(path).map_err(|e| anyhow::anyhow!("{}: cannot read: {e}", path.display()))?;
+    let contents = auspex_proto::session::read_session(&bytes)
+        .map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))?;
+    if let Some(p) = &contents.tail_problem {
+        eprintln!(
+            "note: {}: the last record is torn ({p}); every complete record before it was read",
+            path.display()
+        );
+    }
+    let mut raw = Vec::new();
+    let mut messages = Vec::new();
+    let mut undecodable = 0;
+    let mut data = Dataset::default();
+    let mut labels = std::collections::HashMap::new();
+    let mut units = std::collections::BTreeSet::new();
+    for r in contents.records {
+        let i = raw.len();
+        match v1::Inbound::decode(r.message.as_slice()) {
+            Ok(m) => {
+                match &m.body {
+                    Some(Body::SessionStart(s)) => {
+                        data.tick_rate_hz = s.tick_rate_hz;
+                        units.extend(s.units.iter().copied());
+                    }
+                    Some(Body::Spikes(b)) => {
+                        for (&u, &t) in b.units.iter().zip(&b.ticks) {
+                            data.spikes.push((t, u));
+                            units.insert(u);
+                        }
+                    }
+                    Some(Body::Onset(o)) => data.trials.push(Trial {
+                        id: o.trial,
+                        onset: o.onset_tick,
+                        stimulus: (!o.stimulus.is_empty()).then(|| o.stimulus.clone()),
+                    }),
+                    Some(Body::Label(l)) => {
+                        labels.insert(l.trial, l.stimulus.clone());
+                    }
+                    _ => {}
+                }
+                messages.push((i, m));
+            }
+            Err(_) => undecodable += 1,
+        }
+        raw.push(r.message);
+    }
+    for t in data.trials.iter_mut() {
+        if t.stimulus.is_none() {
+            t.stimulus = labels.get(&t.id).cloned();
+        }
+    }
+    if data.tick_rate_hz <= 0.0 {
+        anyhow::bail!(
+            "{}: the recording has no SessionStart, so its clock rate is unknown",
+            path.display()
+        );
+    }
+    data.spikes.sort_unstable();
+    data.trials.sort_by_key(|t| (t.onset, t.id));
+    data.units = units.into_iter().collect();
+    Ok(RecordedSession {
+        raw,
+        messages,
+        dataset: data,
+        undecodable,
+        torn_tail_bytes: contents.torn_tail_bytes,
+    })
+}

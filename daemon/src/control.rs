@@ -1,0 +1,86 @@
+//! Control: a bound REP socket. Each request is decoded here, model files are loaded here (off
+//! the engine thread), and everything else is answered by the engine thread through a oneshot
+//! reply with a timeout, so a stuck engine gives an error reply rather than a hung client.
+
+use crate::engine_thread::EngineInput;
+use crate::ingest::forward;
+use auspex_proto::v1::{control_request::Body, ControlReply, ControlRequest};
+use bytes::Bytes;
+use crossbeam_channel::Sender;
+use prost::Message;
+use std::sync::Arc;
+use std::time::Duration;
+use tokio::sync::{oneshot, watch};
+use zeromq::{Socket, SocketRecv, SocketSend, ZmqMessage};
+
+/// How long the engine thread may take to answer.
+pub const ENGINE_REPLY_TIMEOUT: Duration = Duration::from_secs(3);
+
+fn error_reply(msg: impl Into<String>) -> ControlReply {
+    ControlReply {
+        ok: false,
+        error: msg.into(),
+        body: None,
+    }
+}
+
+async fn handle(bytes: &[u8], tx: &Sender<EngineInput>) -> ControlReply {
+    let req = match ControlRequest::decode(bytes) {
+        Ok(r) => r,
+        Err(e) => return error_reply(format!("request is not a ControlRequest: {e}")),
+    };
+    let (rtx, rrx) = oneshot::channel();
+    let item = match req.body {
+        None => return error_reply("empty request"),
+        Some(Body::Reload(r)) => {
+            let path = std::path::PathBuf::from(&r.path);
+            let loaded =
+                tokio::task::spawn_blocking(move || crate::model_file::load_model(&path)).await;
+            match loaded {
+                Ok(Ok((_, model))) => EngineInput::Reload {
+                    model: Arc::new(model),
+                    path: r.path,
+                    reply: rtx,
+                },
+                Ok(Err(e)) => return error_reply(e.to_string()),
+                Err(e) => return error_reply(format!("loading failed: {e}")),
+            }
+        }
+        Some(body) => EngineInput::Control { body, reply: rtx },
+    };
+    if !forward(tx, item).await {
+        return error_reply("engine stopped");
+    }
+    match tokio::time::timeout(ENGINE_REPLY_TIMEOUT, rrx).await {
+        Ok(Ok(r)) => r,
+        Ok(Err(_)) => error_reply("engine stopped before replying"),
+        Err(_) => error_reply("engine did not reply in time"),
+    }
+}
+
+/// Serves control requests until shutdown.
+pub async fn run_control(
+    mut sock: zeromq::RepSocket,
+    tx: Sender<EngineInput>,
+    mut stop: watch::Receiver<bool>,
+) {
+    loop {
+        tokio::select! {
+            _ = stop.changed() => break,
+            r = sock.recv() => match r {
+                Ok(m) => {
+                    let bytes = crate::ingest::payload(m);
+                    let reply = handle(&bytes, &tx).await;
+                    if let Err(e) = sock.send(ZmqMessage::from(Bytes::from(reply.encode_to_vec()))).await {
+                        tracing::warn!(error = %e, "control reply failed");
+                    }
+                }
+                Err(e) => {
+                    tracing::warn!(error = %e, "control receive failed");
+                    tokio::time::sleep(Duration::from_millis(10)).await;
+                }
+            }
+        }
+    }
+    let _ = sock.close().await;
+}

@@ -1,0 +1,108 @@
+//! The session recorder: every inbound message, with its receive time, appended in arrival
+//! order to a session file on its own thread, flushed at least every 100 ms and at each trial
+//! end. Disk latency never reaches the engine; nothing is dropped (the channel blocks when full).
+
+use auspex_proto::session::SessionWriter;
+use auspex_proto::v1::SessionRecord;
+use crossbeam_channel::{Receiver, RecvTimeoutError, Sender};
+use std::fs::File;
+use std::io::BufWriter;
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
+
+/// What the recorder thread is told.
+pub enum RecorderMsg {
+    /// A message to append.
+    Record(SessionRecord),
+    /// Flush now (a trial ended).
+    Flush,
+}
+
+/// Handle to the recorder thread.
+pub struct Recorder {
+    tx: Sender<RecorderMsg>,
+    join: std::thread::JoinHandle<u64>,
+    /// The file being written.
+    pub path: PathBuf,
+}
+
+/// The file to record into: `path` itself, or a timestamped file inside it if it is a directory.
+pub fn resolve_path(path: &Path, now_unix_s: u64) -> PathBuf {
+    if path.is_dir() {
+        path.join(format!("session-{now_unix_s}.apxs"))
+    } else {
+        path.to_path_buf()
+    }
+}
+
+impl Recorder {
+    /// Creates the file and starts the thread. Write errors after start are counted (returned
+    /// at the end) and logged, never fatal.
+    pub fn start(path: PathBuf, model_path: &str, now_ns: i64) -> std::io::Result<Self> {
+        let f = File::create(&path)?;
+        let mut w = SessionWriter::new(
+            BufWriter::with_capacity(1 << 20, f),
+            concat!("auspexd ", env!("CARGO_PKG_VERSION")),
+            model_path,
+            now_ns,
+        )?;
+        w.flush()?;
+        let (tx, rx) = crossbeam_channel::bounded(1 << 16);
+        let p = path.clone();
+        let join = std::thread::Builder::new()
+            .name("auspex-recorder".into())
+            .spawn(move || run(w, rx, &p))?;
+        Ok(Recorder { tx, join, path })
+    }
+    /// A sender for the engine thread.
+    pub fn sender(&self) -> Sender<RecorderMsg> {
+        self.tx.clone()
+    }
+    /// Stops after writing everything queued; returns the number of write errors.
+    pub fn finish(self) -> u64 {
+        drop(self.tx);
+        self.join.join().unwrap_or(1)
+    }
+}
+
+fn run(mut w: SessionWriter<BufWriter<File>>, rx: Receiver<RecorderMsg>, path: &Path) -> u64 {
+    let mut errors = 0u64;
+    let mut last = Instant::now();
+    let mut dirty = false;
+    let period = Duration::from_millis(100);
+    loop {
+        let msg = rx.recv_timeout(
+            period
+                .saturating_sub(last.elapsed())
+                .max(Duration::from_millis(1)),
+        );
+        let mut flush = false;
+        match msg {
+            Ok(RecorderMsg::Record(r)) => {
+                if let Err(e) = w.append(&r) {
+                    errors += 1;
+                    tracing::error!(file = %path.display(), error = %e, "session recording: write failed");
+                }
+                dirty = true;
+            }
+            Ok(RecorderMsg::Flush) => flush = true,
+            Err(RecvTimeoutError::Timeout) => {}
+            Err(RecvTimeoutError::Disconnected) => break,
+        }
+        if dirty && (flush || last.elapsed() >= period) {
+            if let Err(e) = w.flush() {
+                errors += 1;
+                tracing::error!(file = %path.display(), error = %e, "session recording: flush failed");
+            }
+            dirty = false;
+            last = Instant::now();
+        } else if !dirty {
+            last = Instant::now();
+        }
+    }
+    if let Err(e) = w.flush() {
+        errors += 1;
+        tracing::error!(file = %path.display(), error = %e, "session recording: final flush failed");
+    }
+    errors
+}

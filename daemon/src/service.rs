@@ -1,0 +1,250 @@
+//! Wiring: binds every socket, starts the engine thread, the recorder, the publisher, ingest
+//! and control tasks, and stops them in order. `run(config, shutdown)` takes its shutdown
+//! trigger as an argument so tests can drive it; `start` returns the bound endpoints (useful
+//! with port 0) and a handle to stop.
+
+use crate::config::{DaemonConfig, IngestPattern};
+use crate::engine_thread::{EngineInput, EngineThread, EngineThreadSetup};
+use crate::publish::{bind_pub, run_publisher, PublishStats, Publisher};
+use crate::recorder::{resolve_path, Recorder};
+use anyhow::Context;
+use auspex_engine::engine::EngineConfig;
+use std::future::Future;
+use std::sync::Arc;
+use tokio::sync::watch;
+use tokio::task::JoinHandle;
+use zeromq::Socket;
+
+/// Endpoints as bound (ports resolved).
+#[derive(Clone, Debug)]
+pub struct BoundEndpoints {
+    /// Main ingest.
+    pub ingest: String,
+    /// Task ingest.
+    pub task_ingest: Option<String>,
+    /// Publish.
+    pub publish: String,
+    /// Control.
+    pub control: String,
+    /// Recording file.
+    pub recording: Option<std::path::PathBuf>,
+}
+
+/// A running daemon.
+pub struct Running {
+    /// Where it listens.
+    pub endpoints: BoundEndpoints,
+    stop_tx: watch::Sender<bool>,
+    engine_tx: crossbeam_channel::Sender<EngineInput>,
+    tasks: Vec<JoinHandle<()>>,
+    publisher: JoinHandle<()>,
+    engine: std::thread::JoinHandle<()>,
+    recorder: Option<Recorder>,
+}
+
+/// What a stopped daemon reports.
+#[derive(Debug)]
+pub struct StopSummary {
+    /// Recording write errors.
+    pub recorder_errors: u64,
+}
+
+fn fix_endpoint(ep: String) -> String {
+    // zeromq prints bound TCP endpoints as tcp://IP:PORT already; keep as is.
+    ep
+}
+
+/// Binds and starts everything.
+pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
+    let (spec, model) = crate::model_file::load_model(&cfg.model)?;
+    let _ = spec;
+    let model = Arc::new(model);
+    let (engine_tx, engine_rx) = crossbeam_channel::bounded(cfg.engine_queue);
+    let (pub_tx, pub_rx) = tokio::sync::mpsc::channel(cfg.publish_queue);
+    let stats = Arc::new(PublishStats::default());
+    let (stop_tx, stop_rx) = watch::channel(false);
+
+    let (pub_sock, publish_ep) = bind_pub(&cfg.publish)
+        .await
+        .with_context(|| format!("cannot bind publish endpoint {}", cfg.publish))?;
+    let mut tasks = Vec::new();
+    let ingest_ep = match cfg.ingest_pattern {
+        IngestPattern::Pull => {
+            let mut s = zeromq::PullSocket::new();
+            let ep = s
+                .bind(&cfg.ingest)
+                .await
+                .with_context(|| format!("cannot bind ingest endpoint {}", cfg.ingest))?;
+            tasks.push(tokio::spawn(crate::ingest::run_ingest(
+                s,
+                0,
+                engine_tx.clone(),
+                stop_rx.clone(),
+            )));
+            ep.to_string()
+        }
+        IngestPattern::Sub => {
+            let mut s = zeromq::SubSocket::new();
+            let ep = s
+                .bind(&cfg.ingest)
+                .await
+                .with_context(|| format!("cannot bind ingest endpoint {}", cfg.ingest))?;
+            s.subscribe("")
+                .await
+                .context("subscribing the ingest socket")?;
+            tasks.push(tokio::spawn(crate::ingest::run_ingest(
+                s,
+                0,
+                engine_tx.clone(),
+                stop_rx.clone(),
+            )));
+            ep.to_string()
+        }
+    };
+    let task_ep = match &cfg.task_ingest {
+        Some(t) => {
+            let mut s = zeromq::PullSocket::new();
+            let ep = s
+                .bind(t)
+                .await
+                .with_context(|| format!("cannot bind task ingest endpoint {t}"))?;
+            tasks.push(tokio::spawn(crate::ingest::run_ingest(
+                s,
+                1,
+                engine_tx.clone(),
+                stop_rx.clone(),
+            )));
+            Some(ep.to_string())
+        }
+        None => None,
+    };
+    let mut rep = zeromq::RepSocket::new();
+    let control_ep = rep
+        .bind(&cfg.control)
+        .await
+        .with_context(|| format!("cannot bind control endpoint {}", cfg.control))?;
+    tasks.push(tokio::spawn(crate::control::run_control(
+        rep,
+        engine_tx.clone(),
+        stop_rx.clone(),
+    )));
+
+    let recorder = match &cfg.record {
+        Some(p) => {
+            let now_s = std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .map(|d| d.as_secs())
+                .unwrap_or(0);
+            let path = resolve_path(p, now_s);
+            Some(
+                Recorder::start(
+                    path.clone(),
+                    &cfg.model.display().to_string(),
+                    crate::ingest::now_ns(),
+                )
+                .with_context(|| {
+                    format!("{}: cannot create the session recording", path.display())
+                })?,
+            )
+        }
+        None => None,
+    };
+    let mut ec = EngineConfig::new(cfg.tick_rate_hz.unwrap_or(1e6));
+    ec.decoder = cfg.decoder;
+    ec.policy = cfg.policy;
+    let setup = EngineThreadSetup {
+        model: model.clone(),
+        model_path: cfg.model.display().to_string(),
+        config: ec,
+        tick_rate: cfg.tick_rate_hz,
+        publisher: Publisher::new(pub_tx, stats.clone()),
+        recorder: recorder.as_ref().map(|r| r.sender()),
+        recording_path: recorder
+            .as_ref()
+            .map(|r| r.path.display().to_string())
+            .unwrap_or_default(),
+        max_message_bytes: cfg.max_message_bytes,
+        seed: cfg.seed,
+        health_period: cfg.health_period,
+    };
+    let et = EngineThread::new(setup, engine_rx.clone())
+        .map_err(|e| anyhow::anyhow!("{}: {e}", cfg.model.display()))?;
+    let engine = std::thread::Builder::new()
+        .name("auspex-engine".into())
+        .spawn(move || et.run(engine_rx))?;
+    let publisher = tokio::spawn(run_publisher(pub_sock, pub_rx, stats));
+    let endpoints = BoundEndpoints {
+        ingest: fix_endpoint(ingest_ep),
+        task_ingest: task_ep.map(fix_endpoint),
+        publish: fix_endpoint(publish_ep),
+        control: fix_endpoint(control_ep.to_string()),
+        recording: recorder.as_ref().map(|r| r.path.clone()),
+    };
+    tracing::info!(ingest = %endpoints.ingest, task_ingest = ?endpoints.task_ingest, publish = %endpoints.publish, control = %endpoints.control,
+        recording = ?endpoints.recording, model = %cfg.model.display(), "auspexd listening");
+    Ok(Running {
+        endpoints,
+        stop_tx,
+        engine_tx,
+        tasks,
+        publisher,
+        engine,
+        recorder,
+    })
+}
+
+impl Running {
+    /// Stops ingest and control, lets the engine finish what arrived, ends open trials,
+    /// publishes the last messages and flushes the recording.
+    pub async fn stop(self) -> StopSummary {
+        let _ = self.stop_tx.send(true);
+        for t in self.tasks {
+            let _ = t.await;
+        }
+        let _ = self.engine_tx.send(EngineInput::Shutdown);
+        drop(self.engine_tx);
+        let _ = tokio::task::spawn_blocking(move || self.engine.join()).await;
+        let _ = self.publisher.await;
+        let recorder_errors = match self.recorder {
+            Some(r) => tokio::task::spawn_blocking(move || r.finish())
+                .await
+                .unwrap_or(1),
+            None => 0,
+        };
+        StopSummary { recorder_errors }
+    }
+}
+
+/// Runs until `shutdown` completes.
+pub async fn run(
+    cfg: DaemonConfig,
+    shutdown: impl Future<Output = ()>,
+) -> anyhow::Result<StopSummary> {
+    let r = start(cfg).await?;
+    shutdown.await;
+    tracing::info!("stopping: finishing open trials and flushing the recording");
+    Ok(r.stop().await)
+}
+
+/// Resolves on SIGINT or SIGTERM.
+pub async fn signals() {
+    #[cfg(unix)]
+    {
+        use tokio::signal::unix::{signal, SignalKind};
+        match signal(SignalKind::terminate()) {
+            Ok(mut term) => {
+                tokio::select! {
+                    _ = tokio::signal::ctrl_c() => {}
+                    _ = term.recv() => {}
+                }
+            }
+            Err(_) => {
+                let _ = tokio::signal::ctrl_c().await;
+            }
+        }
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = tokio::signal::ctrl_c().await;
+    }
+}
