@@ -249,7 +249,7 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
     std::fs::create_dir_all(out_dir)
         .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;
     let model_path = out_dir.join("demo.apxm");
-    eprintln!("── 1/3 fitting the demo model ──");
+    eprintln!("── 1/3 fitting the demo model (on {}) ──", demo.display());
     fit_cmd(&sp, &tr, &model_path, 250.0, 1.0, "all", false, 1e6, quiet)?;
     eprintln!("── 2/3 decoding every trial with each decoder ──");
     for dec in Decoder::ALL {

@@ -7,7 +7,10 @@
 pub mod commands;
 pub mod export;
 pub mod fitting;
+pub mod live;
+pub mod monitor;
 pub mod offline;
+pub mod session;
 pub mod tables;
 pub mod wire;
 

@@ -1,8 +1,12 @@
 //! `auspex`: the command-line client. Thin glue over the `auspex` library.
 
 use auspex::commands::{self, DecodeArgs};
+use auspex::live::Pace;
+use auspex::session::View;
 use auspex_engine::engine::Decoder;
+use auspex_proto::v1;
 use clap::{Parser, Subcommand};
+use std::io::IsTerminal;
 use std::path::PathBuf;
 
 #[derive(Parser)]
@@ -138,7 +142,7 @@ enum Cmd {
         #[arg(long)]
         model: PathBuf,
     },
-    /// Run the bundled demo end to end
+    /// Run the bundled demo end to end: fit, start the daemon, replay the session live, monitor
     Demo {
         /// Output directory
         #[arg(long, default_value = "auspex-demo-out")]
@@ -146,7 +150,113 @@ enum Cmd {
         /// Fewer tables on screen
         #[arg(long)]
         quiet: bool,
+        /// Replay speed (times real time)
+        #[arg(long, default_value_t = 1.0)]
+        speed: f64,
+        /// Replay as fast as the daemon accepts
+        #[arg(long)]
+        fast: bool,
+        /// Plain text lines instead of the full-screen monitor
+        #[arg(long)]
+        plain: bool,
+        /// Only the offline part (fit, decode, export)
+        #[arg(long)]
+        offline_only: bool,
     },
+    /// Run the daemon (same flags as `auspexd`)
+    Daemon {
+        #[command(flatten)]
+        args: auspexd::cli::DaemonArgs,
+    },
+    /// Send a recorded session or CSV tables to a running daemon through its ingest socket
+    Replay {
+        /// Session recording (.apxs)
+        #[arg(long, conflicts_with_all = ["spikes", "trials"])]
+        session: Option<PathBuf>,
+        /// Spike table (with --trials)
+        #[arg(long, requires = "trials")]
+        spikes: Option<PathBuf>,
+        /// Trial table (with --spikes)
+        #[arg(long, requires = "spikes")]
+        trials: Option<PathBuf>,
+        /// Daemon ingest endpoint
+        #[arg(long, default_value = auspexd::config::defaults::INGEST)]
+        to: String,
+        /// Daemon control endpoint (for the acknowledgement)
+        #[arg(long, default_value = auspexd::config::defaults::CONTROL)]
+        control: String,
+        /// Times real time
+        #[arg(long, default_value_t = 1.0)]
+        speed: f64,
+        /// As fast as the daemon accepts
+        #[arg(long)]
+        fast: bool,
+        /// Sender name
+        #[arg(long, default_value = "auspex-replay")]
+        sender: String,
+    },
+    /// Show a daemon's state, model and counters
+    Status {
+        /// Daemon control endpoint
+        #[arg(long, default_value = auspexd::config::defaults::CONTROL)]
+        control: String,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
+    },
+    /// Change a running daemon's settings, reload its model, or ask for the next stimulus
+    Steer {
+        /// Daemon control endpoint
+        #[arg(long, default_value = auspexd::config::defaults::CONTROL)]
+        control: String,
+        #[command(subcommand)]
+        what: Steer,
+    },
+    /// Watch a daemon live (full screen on a terminal, plain lines otherwise)
+    Monitor {
+        /// Daemon publish endpoint
+        #[arg(long, default_value = auspexd::config::defaults::PUBLISH)]
+        from: String,
+        /// Daemon control endpoint
+        #[arg(long, default_value = auspexd::config::defaults::CONTROL)]
+        control: String,
+        /// Plain text lines
+        #[arg(long, conflicts_with = "json")]
+        plain: bool,
+        /// JSON lines
+        #[arg(long)]
+        json: bool,
+    },
+}
+
+#[derive(Subcommand)]
+enum Steer {
+    /// Decision threshold and minimum time (apply to trials that open from now on)
+    Policy {
+        #[arg(long)]
+        threshold: f64,
+        #[arg(long)]
+        min_time_ms: f64,
+    },
+    /// Prior over stimuli, comma-separated in model order; "model" restores the model's
+    Prior { prior: String },
+    /// order-stats, inhomogeneous-poisson or count-only
+    Decoder { decoder: String },
+    /// Load a model file; open trials finish on the old one
+    Reload { model: PathBuf },
+    /// Ask which stimulus to present next
+    Next {
+        /// balanced-blocks or least-certain
+        #[arg(long, default_value = "balanced-blocks")]
+        policy: String,
+    },
+}
+
+fn runtime() -> anyhow::Result<tokio::runtime::Runtime> {
+    Ok(tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()?)
 }
 
 fn main() {
@@ -213,7 +323,97 @@ fn main() {
         }
         Cmd::Export { model, out } => commands::export_cmd(&model, out.as_deref()),
         Cmd::Inspect { model } => commands::inspect_cmd(&model),
-        Cmd::Demo { out_dir, quiet } => commands::demo_offline(&out_dir, quiet).map(|_| ()),
+        Cmd::Demo { out_dir, quiet, speed, fast, plain, offline_only } => commands::demo_offline(&out_dir, quiet).and_then(|model| {
+            if offline_only {
+                return Ok(());
+            }
+            eprintln!("── live: starting the daemon and replaying the demo session {} ──", if fast { "as fast as it goes".to_string() } else { format!("at {speed}× real time") });
+            let pace = if fast { Pace::Max } else { Pace::Speed(speed) };
+            let view = if plain { View::Lines } else { View::auto() };
+            runtime()?.block_on(auspex::session::live_demo(&model, &out_dir, pace, view))
+        }),
+        Cmd::Daemon { args } => std::process::exit(auspexd::cli::run_cli(args)),
+        Cmd::Replay { session, spikes, trials, to, control, speed, fast, sender } => runtime().and_then(|rt| {
+            rt.block_on(async {
+                let (msgs, rate) = match (session, spikes, trials) {
+                    (Some(p), _, _) => {
+                        let rec = auspex::wire::read_recording(&p)?;
+                        let mut msgs: Vec<v1::Inbound> = rec.messages.into_iter().map(|(_, m)| m).collect();
+                        // One sender name and fresh numbering, so the daemon can acknowledge the end.
+                        msgs.retain(|m| !matches!(m.body, Some(v1::inbound::Body::EndOfStream(_))));
+                        msgs.push(v1::Inbound { body: Some(v1::inbound::Body::EndOfStream(v1::EndOfStream {})), ..Default::default() });
+                        for (i, m) in msgs.iter_mut().enumerate() {
+                            m.sender = sender.clone();
+                            m.seq = i as u64 + 1;
+                        }
+                        (msgs, rec.dataset.tick_rate_hz)
+                    }
+                    (None, Some(sp), Some(tr)) => {
+                        let st = auspex::live::status(&control).await?;
+                        let (data, report) = auspex::tables::read_dataset(&sp, &tr, 1e6, st.bin_width_s * st.n_bins as f64)?;
+                        eprintln!("{report}");
+                        let bt = (st.bin_width_s * 1e6).round() as i64;
+                        (auspex::wire::dataset_messages(&data, &sender, bt, bt * st.n_bins as i64), 1e6)
+                    }
+                    _ => anyhow::bail!("give --session FILE, or --spikes and --trials"),
+                };
+                let pace = if fast { Pace::Max } else { Pace::Speed(speed) };
+                let took = auspex::live::replay(&to, &control, &msgs, &sender, rate, pace, std::io::stderr().is_terminal()).await?;
+                eprintln!("sent {} messages in {:.2} s; the daemon acknowledged the last one", msgs.len(), took.as_secs_f64());
+                Ok(())
+            })
+        }),
+        Cmd::Status { control, json } => runtime().and_then(|rt| rt.block_on(async {
+            let s = auspex::live::status(&control).await?;
+            if json {
+                println!("{}", serde_json::json!({"version": s.version, "model": s.model_path, "stimuli": s.stimuli, "units": s.units.len(),
+                    "decoder": s.decoder, "threshold": s.threshold, "min_time_s": s.min_time_s, "prior": s.prior, "tick_rate_hz": s.tick_rate_hz,
+                    "open_trials": s.open_trials, "recording": s.recording_path,
+                    "senders": s.senders.iter().map(|x| serde_json::json!({"sender": x.sender, "last_seq": x.last_seq, "gaps": x.gaps, "ended": x.ended})).collect::<Vec<_>>()}));
+            } else {
+                println!("auspexd {} · model {} ({} units × {} stimuli: {})", s.version, s.model_path, s.units.len(), s.stimuli.len(), s.stimuli.join(", "));
+                println!("decoder {} · threshold {} after {} ms · prior [{}]", s.decoder, s.threshold, s.min_time_s * 1000.0, s.prior.iter().map(|p| format!("{p:.3}")).collect::<Vec<_>>().join(", "));
+                println!("clock {} ticks/s · open trials {:?} · recording {}", s.tick_rate_hz, s.open_trials, if s.recording_path.is_empty() { "off" } else { &s.recording_path });
+                for x in &s.senders {
+                    println!("sender {:?}: {} messages, last #{}, {} gaps{}", x.sender, x.messages, x.last_seq, x.gaps, if x.ended { ", ended" } else { "" });
+                }
+                let st = auspex::monitor::MonitorState::new(vec![], 0.001);
+                let mut st = st;
+                if let Some(h) = s.health.clone() {
+                    st.apply("health", &v1::Outbound { seq: 1, body: Some(v1::outbound::Body::Health(h.clone())) });
+                    println!("{}", st.health_line());
+                    println!("trials completed {} · decisions {} · duplicate trials {} · stale onsets {} · unknown trials {} · unknown stimuli {} · oversized {} · model mismatches {}",
+                        h.trials_completed, h.decisions, h.duplicate_trials, h.stale_onsets, h.unknown_trials, h.unknown_stimuli, h.oversized_batches, h.model_mismatches);
+                }
+            }
+            Ok(())
+        })),
+        Cmd::Steer { control, what } => runtime().and_then(|rt| rt.block_on(async {
+            use v1::control_request::Body as B;
+            let body = match what {
+                Steer::Policy { threshold, min_time_ms } => B::SetPolicy(v1::SetPolicy { threshold, min_time_s: min_time_ms / 1000.0 }),
+                Steer::Prior { prior } => B::SetPrior(v1::SetPrior { prior: if prior == "model" { vec![] } else { parse_prior(&prior).map_err(|e| anyhow::anyhow!(e))? } }),
+                Steer::Decoder { decoder } => B::SetDecoder(v1::SetDecoder { decoder }),
+                Steer::Reload { model } => B::Reload(v1::ReloadModel { path: std::fs::canonicalize(&model).unwrap_or(model).display().to_string() }),
+                Steer::Next { policy } => B::NextStimulus(v1::NextStimulus { policy }),
+            };
+            let r = auspex::live::control(&control, body, std::time::Duration::from_secs(5)).await?;
+            match r.body {
+                Some(v1::control_reply::Body::Next(n)) => println!("{}", n.stimulus),
+                Some(v1::control_reply::Body::Status(s)) => println!("ok: decoder {}, threshold {}, minimum {} ms, model {}", s.decoder, s.threshold, s.min_time_s * 1000.0, s.model_path),
+                None => println!("ok"),
+            }
+            Ok(())
+        })),
+        Cmd::Monitor { from, control, plain, json } => runtime().and_then(|rt| rt.block_on(async {
+            let view = if json { View::Json } else if plain { View::Lines } else { View::auto() };
+            let (tx, rx) = tokio::sync::watch::channel(false);
+            tokio::spawn(async move {
+                let _ = tokio::signal::ctrl_c().await;
+                let _ = tx.send(true);
+            });
+            auspex::session::monitor(&from, &control, view, rx).await.map(|_| ())
+        })),
     };
     if let Err(e) = r {
         eprintln!("auspex: error: {e:#}");

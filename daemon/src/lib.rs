@@ -5,6 +5,7 @@
 //! and the session recorder. The binary is thin glue over this library.
 #![deny(missing_docs)]
 
+pub mod cli;
 pub mod config;
 pub mod control;
 pub mod engine_thread;

@@ -1,0 +1,134 @@
+//! Talking to a running daemon: control requests (REQ), replay of a dataset or recorded session
+//! through the same ZeroMQ path acquisition uses (PUSH), paced by the recorded ticks.
+//! The pure-Rust ZeroMQ crate has no linger, so a replay ends with an end-of-stream marker and
+//! waits until the daemon's status acknowledges the last sequence number.
+
+use anyhow::{bail, Context};
+use auspex_proto::v1::{self, control_reply, control_request};
+use bytes::Bytes;
+use indicatif::{ProgressBar, ProgressStyle};
+use prost::Message;
+use std::time::{Duration, Instant};
+use zeromq::{Socket, SocketRecv, SocketSend, ZmqMessage};
+
+/// Default endpoints of a local daemon.
+pub use auspexd::config::defaults;
+
+/// One control request and its reply, with a timeout.
+pub async fn control(
+    endpoint: &str,
+    body: control_request::Body,
+    timeout: Duration,
+) -> anyhow::Result<v1::ControlReply> {
+    let mut s = zeromq::ReqSocket::new();
+    tokio::time::timeout(timeout, s.connect(endpoint))
+        .await
+        .map_err(|_| anyhow::anyhow!("no daemon answered at {endpoint} (is auspexd running?)"))?
+        .with_context(|| format!("cannot connect to {endpoint}"))?;
+    s.send(ZmqMessage::from(Bytes::from(
+        v1::ControlRequest { body: Some(body) }.encode_to_vec(),
+    )))
+    .await?;
+    let m = tokio::time::timeout(timeout, s.recv())
+        .await
+        .map_err(|_| {
+            anyhow::anyhow!("the daemon at {endpoint} did not reply within {timeout:?}")
+        })??;
+    let bytes = m.into_vec().pop().unwrap_or_default();
+    let r = v1::ControlReply::decode(bytes.as_ref()).context("the reply is not a ControlReply")?;
+    if !r.ok {
+        bail!("the daemon refused: {}", r.error);
+    }
+    Ok(r)
+}
+
+/// The daemon's status.
+pub async fn status(endpoint: &str) -> anyhow::Result<v1::Status> {
+    match control(
+        endpoint,
+        control_request::Body::Status(v1::StatusQuery {}),
+        Duration::from_secs(3),
+    )
+    .await?
+    .body
+    {
+        Some(control_reply::Body::Status(s)) => Ok(s),
+        _ => bail!("the daemon's reply held no status"),
+    }
+}
+
+/// Replay pacing.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Pace {
+    /// Follow the recorded ticks at this many times real time.
+    Speed(f64),
+    /// As fast as the daemon accepts.
+    Max,
+}
+
+/// Sends encoded inbound messages to `ingest`, paced by their watermarks, then waits for the
+/// daemon (via `control`) to acknowledge the last sequence number of `sender`.
+pub async fn replay(
+    ingest: &str,
+    control_ep: &str,
+    messages: &[v1::Inbound],
+    sender: &str,
+    tick_rate_hz: f64,
+    pace: Pace,
+    progress: bool,
+) -> anyhow::Result<Duration> {
+    let mut push = zeromq::PushSocket::new();
+    tokio::time::timeout(Duration::from_secs(5), push.connect(ingest))
+        .await
+        .map_err(|_| anyhow::anyhow!("no daemon is listening at {ingest}"))?
+        .with_context(|| format!("cannot connect to {ingest}"))?;
+    let bar = if progress {
+        ProgressBar::new(messages.len() as u64)
+    } else {
+        ProgressBar::hidden()
+    };
+    bar.set_style(
+        ProgressStyle::with_template("replaying {bar:40.green/blue} {pos}/{len} messages {msg}")
+            .expect("static template"),
+    );
+    let t0 = Instant::now();
+    let first_wm = messages.iter().find_map(crate::wire::watermark_of);
+    let mut last_seq = 0;
+    for (i, m) in messages.iter().enumerate() {
+        if let (Pace::Speed(x), Some(w0), Some(w)) = (pace, first_wm, crate::wire::watermark_of(m))
+        {
+            let due = Duration::from_secs_f64(((w - w0) as f64 / tick_rate_hz / x).max(0.0));
+            let now = t0.elapsed();
+            if due > now {
+                tokio::time::sleep(due - now).await;
+            }
+        }
+        push.send(ZmqMessage::from(Bytes::from(m.encode_to_vec())))
+            .await
+            .context("sending to the daemon")?;
+        last_seq = m.seq;
+        if i % 256 == 0 {
+            bar.set_position(i as u64);
+        }
+    }
+    bar.set_message("waiting for the daemon to take everything");
+    bar.set_position(messages.len() as u64);
+    let deadline = Instant::now() + Duration::from_secs(60);
+    loop {
+        let st = status(control_ep).await?;
+        if st
+            .senders
+            .iter()
+            .any(|s| s.sender == sender && s.last_seq >= last_seq && s.ended)
+        {
+            break;
+        }
+        if Instant::now() > deadline {
+            bail!("the daemon did not acknowledge message {last_seq} of sender {sender:?} within 60 s");
+        }
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+    bar.finish_and_clear();
+    drop(push);
+    Ok(t0.elapsed())
+}

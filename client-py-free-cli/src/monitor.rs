@@ -1,0 +1,661 @@
+//! The live monitor: a state built from the daemon's published messages, drawn with ratatui
+//! (posterior bars of the open trial, recent decisions marked right or wrong, a sortable
+//! per-unit table with per-stimulus detail, a health line), or printed as plain lines or JSON
+//! lines when standard output is not a terminal.
+
+use auspex_proto::v1::{self, outbound};
+use ratatui::layout::{Constraint, Direction, Layout, Rect};
+use ratatui::style::{Color, Modifier, Style};
+use ratatui::text::{Line, Span};
+use ratatui::widgets::{Block, Borders, Cell, Paragraph, Row, Table};
+use ratatui::Frame;
+use std::collections::{BTreeMap, VecDeque};
+
+/// How the unit table is ordered.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum UnitSort {
+    /// Most information first.
+    Info,
+    /// Highest accuracy first.
+    Accuracy,
+    /// By unit id.
+    Id,
+}
+
+#[derive(Clone, Debug, Default)]
+struct UnitState {
+    accuracy: f64,
+    info_bits: f64,
+    /// Per presented stimulus: (trials, Σ posterior of the presented stimulus, times decoded right).
+    per_stim: Vec<(u64, f64, u64)>,
+}
+
+/// One line of the recent-decisions list.
+#[derive(Clone, Debug)]
+pub struct RecentDecision {
+    /// Trial.
+    pub trial: u64,
+    /// Decided stimulus.
+    pub stimulus: String,
+    /// Its posterior.
+    pub posterior: f64,
+    /// Time after onset, ms.
+    pub at_ms: f64,
+    /// Presented stimulus, when known.
+    pub presented: Option<String>,
+}
+
+/// Everything the monitor shows.
+pub struct MonitorState {
+    stimuli: Vec<String>,
+    bin_ms: f64,
+    trial: Option<(u64, u32, Vec<f64>)>,
+    trial_decision: Option<(u64, String, f64, f64)>,
+    recent: VecDeque<RecentDecision>,
+    units: BTreeMap<u32, UnitState>,
+    health: Option<v1::Health>,
+    /// Unit ordering.
+    pub sort: UnitSort,
+    /// Frozen display.
+    pub paused: bool,
+    /// Selected row of the unit table.
+    pub selected: usize,
+    decided: u64,
+    correct: u64,
+    /// Messages lost between daemon and monitor (per-topic sequence gaps).
+    pub missed: u64,
+    last_seq: [u64; 5],
+}
+
+impl MonitorState {
+    /// A monitor for these stimuli and bin width.
+    pub fn new(stimuli: Vec<String>, bin_width_s: f64) -> Self {
+        MonitorState {
+            stimuli,
+            bin_ms: bin_width_s * 1000.0,
+            trial: None,
+            trial_decision: None,
+            recent: VecDeque::new(),
+            units: BTreeMap::new(),
+            health: None,
+            sort: UnitSort::Info,
+            paused: false,
+            selected: 0,
+            decided: 0,
+            correct: 0,
+            missed: 0,
+            last_seq: [0; 5],
+        }
+    }
+
+    fn name(&self, i: u32) -> String {
+        self.stimuli
+            .get(i as usize)
+            .cloned()
+            .unwrap_or_else(|| format!("#{i}"))
+    }
+
+    /// Applies one published message.
+    pub fn apply(&mut self, topic: &str, m: &v1::Outbound) {
+        if let Some(i) = auspex_proto::topic::ALL.iter().position(|t| *t == topic) {
+            if self.last_seq[i] != 0 && m.seq > self.last_seq[i] + 1 {
+                self.missed += m.seq - self.last_seq[i] - 1;
+            }
+            self.last_seq[i] = m.seq;
+        }
+        match &m.body {
+            Some(outbound::Body::Posterior(p)) => {
+                if self.trial.as_ref().map(|t| t.0) != Some(p.trial) {
+                    self.trial_decision = None;
+                }
+                self.trial = Some((p.trial, p.bin, p.posterior.clone()));
+            }
+            Some(outbound::Body::Decision(d)) => {
+                let at_ms = (d.bin as f64 + 1.0) * self.bin_ms;
+                if self.trial.as_ref().is_none_or(|t| t.0 == d.trial) {
+                    self.trial_decision =
+                        Some((d.trial, d.stimulus_name.clone(), d.posterior, at_ms));
+                }
+                self.recent.push_front(RecentDecision {
+                    trial: d.trial,
+                    stimulus: d.stimulus_name.clone(),
+                    posterior: d.posterior,
+                    at_ms,
+                    presented: (!d.presented.is_empty()).then(|| d.presented.clone()),
+                });
+                self.recent.truncate(200);
+                if !d.presented.is_empty() {
+                    self.decided += 1;
+                    self.correct += (d.presented == d.stimulus_name) as u64;
+                }
+            }
+            Some(outbound::Body::Trial(t)) => {
+                if !t.presented.is_empty() {
+                    if let Some(r) = self.recent.iter_mut().find(|r| r.trial == t.trial) {
+                        if r.presented.is_none() {
+                            r.presented = Some(t.presented.clone());
+                            self.decided += 1;
+                            self.correct += (t.presented == r.stimulus) as u64;
+                        }
+                    }
+                }
+            }
+            Some(outbound::Body::Units(u)) => {
+                let p = self.stimuli.iter().position(|s| *s == u.presented);
+                let ns = self.stimuli.len();
+                for l in &u.units {
+                    let st = self.units.entry(l.unit).or_default();
+                    st.accuracy = l.accuracy;
+                    st.info_bits = l.info_bits;
+                    if st.per_stim.len() != ns {
+                        st.per_stim = vec![(0, 0.0, 0); ns];
+                    }
+                    if let Some(p) = p {
+                        let e = &mut st.per_stim[p];
+                        e.0 += 1;
+                        e.1 += l.presented_posterior;
+                        e.2 += (l.decoded as usize == p) as u64;
+                    }
+                }
+            }
+            Some(outbound::Body::Health(h)) => self.health = Some(h.clone()),
+            None => {}
+        }
+    }
+
+    /// Units in display order: (id, accuracy, info).
+    pub fn unit_rows(&self) -> Vec<(u32, f64, f64)> {
+        let mut v: Vec<(u32, f64, f64)> = self
+            .units
+            .iter()
+            .map(|(k, s)| (*k, s.accuracy, s.info_bits))
+            .collect();
+        match self.sort {
+            UnitSort::Info => v.sort_by(|a, b| b.2.total_cmp(&a.2).then(a.0.cmp(&b.0))),
+            UnitSort::Accuracy => v.sort_by(|a, b| b.1.total_cmp(&a.1).then(a.0.cmp(&b.0))),
+            UnitSort::Id => {}
+        }
+        v
+    }
+
+    /// Cycles the unit ordering.
+    pub fn next_sort(&mut self) {
+        self.sort = match self.sort {
+            UnitSort::Info => UnitSort::Accuracy,
+            UnitSort::Accuracy => UnitSort::Id,
+            UnitSort::Id => UnitSort::Info,
+        };
+    }
+
+    /// Moves the unit selection.
+    pub fn select(&mut self, delta: i64) {
+        let n = self.units.len() as i64;
+        if n > 0 {
+            self.selected = (self.selected as i64 + delta).rem_euclid(n) as usize;
+        }
+    }
+
+    /// The health line text.
+    pub fn health_line(&self) -> String {
+        match &self.health {
+            None => "health: waiting for the daemon's first report".into(),
+            Some(h) => format!(
+                "spikes {:.0}/s  frames {:.0}/s  late {}  unknown-unit {}  malformed {}  gaps {}  dropped {}  backlog {}  update p50 {:.0} µs p99 {:.0} µs",
+                h.spikes_per_s,
+                h.frames_per_s,
+                h.late_spikes,
+                h.unknown_unit_spikes,
+                h.malformed_messages,
+                h.sequence_gaps,
+                h.dropped_posterior + h.dropped_other,
+                h.engine_backlog,
+                h.update_p50_us,
+                h.update_p99_us
+            ),
+        }
+    }
+
+    /// Draws the whole screen.
+    pub fn draw(&self, f: &mut Frame) {
+        let area = f.area();
+        let rows = Layout::default()
+            .direction(Direction::Vertical)
+            .constraints([
+                Constraint::Length(1),
+                Constraint::Min(8),
+                Constraint::Min(8),
+                Constraint::Length(2),
+            ])
+            .split(area);
+        let acc = if self.decided > 0 {
+            format!(
+                "{:.0}% right of {}",
+                100.0 * self.correct as f64 / self.decided as f64,
+                self.decided
+            )
+        } else {
+            "no labelled decisions yet".into()
+        };
+        let title = Line::from(vec![
+            Span::styled(
+                " AUSPEX ",
+                Style::default()
+                    .fg(Color::Black)
+                    .bg(Color::Yellow)
+                    .add_modifier(Modifier::BOLD),
+            ),
+            Span::raw(format!("  decisions: {acc}")),
+            Span::styled(
+                if self.paused { "   ‖ PAUSED" } else { "" },
+                Style::default().fg(Color::Red),
+            ),
+            Span::raw(if self.missed > 0 {
+                format!("   {} messages missed", self.missed)
+            } else {
+                String::new()
+            }),
+        ]);
+        f.render_widget(Paragraph::new(title), rows[0]);
+        let top = Layout::default()
+            .direction(Direction::Horizontal)
+            .constraints([Constraint::Percentage(55), Constraint::Percentage(45)])
+            .split(rows[1]);
+        self.draw_posterior(f, top[0]);
+        self.draw_recent(f, top[1]);
+        let bottom = Layout::default()
+            .direction(Direction::Horizontal)
+            .constraints([Constraint::Percentage(55), Constraint::Percentage(45)])
+            .split(rows[2]);
+        self.draw_units(f, bottom[0]);
+        self.draw_unit_detail(f, bottom[1]);
+        let foot = vec![
+            Line::from(Span::styled(
+                self.health_line(),
+                Style::default().fg(Color::Gray),
+            )),
+            Line::from(Span::styled(
+                "q quit · p pause · s sort units · ↑/↓ select unit",
+                Style::default().fg(Color::DarkGray),
+            )),
+        ];
+        f.render_widget(Paragraph::new(foot), rows[3]);
+    }
+
+    fn draw_posterior(&self, f: &mut Frame, area: Rect) {
+        let (title, lines) = match &self.trial {
+            None => (
+                "posterior".to_string(),
+                vec![Line::from("waiting for a trial…")],
+            ),
+            Some((trial, bin, post)) => {
+                let t = format!(
+                    "trial {trial} · {:.0} ms after onset",
+                    (*bin as f64 + 1.0) * self.bin_ms
+                );
+                let width = area.width.saturating_sub(20) as f64;
+                let dec = self.trial_decision.as_ref().filter(|d| d.0 == *trial);
+                let mut lines: Vec<Line> = post
+                    .iter()
+                    .enumerate()
+                    .map(|(i, p)| {
+                        let n = (p * width).round() as usize;
+                        let chosen = dec.is_some_and(|d| d.1 == self.name(i as u32));
+                        let color = if chosen { Color::Green } else { Color::Cyan };
+                        Line::from(vec![
+                            Span::raw(format!("{:>6} ", self.name(i as u32))),
+                            Span::styled("█".repeat(n), Style::default().fg(color)),
+                            Span::raw(format!(" {:.2}", p)),
+                        ])
+                    })
+                    .collect();
+                if let Some(d) = dec {
+                    lines.push(Line::from(Span::styled(
+                        format!("decided {} (p = {:.2}) at {:.0} ms", d.1, d.2, d.3),
+                        Style::default()
+                            .fg(Color::Green)
+                            .add_modifier(Modifier::BOLD),
+                    )));
+                }
+                (t, lines)
+            }
+        };
+        f.render_widget(
+            Paragraph::new(lines).block(Block::default().borders(Borders::ALL).title(title)),
+            area,
+        );
+    }
+
+    fn draw_recent(&self, f: &mut Frame, area: Rect) {
+        let lines: Vec<Line> = self
+            .recent
+            .iter()
+            .take(area.height.saturating_sub(2) as usize)
+            .map(|r| {
+                let (mark, color) = match &r.presented {
+                    Some(p) if *p == r.stimulus => ("✓".to_string(), Color::Green),
+                    Some(p) => (format!("✗ was {p}"), Color::Red),
+                    None => ("·".to_string(), Color::Gray),
+                };
+                Line::from(vec![
+                    Span::raw(format!(
+                        "#{:<5} {:>6} {:.2} {:>4.0} ms ",
+                        r.trial, r.stimulus, r.posterior, r.at_ms
+                    )),
+                    Span::styled(mark, Style::default().fg(color)),
+                ])
+            })
+            .collect();
+        f.render_widget(
+            Paragraph::new(lines).block(
+                Block::default()
+                    .borders(Borders::ALL)
+                    .title("recent decisions"),
+            ),
+            area,
+        );
+    }
+
+    fn draw_units(&self, f: &mut Frame, area: Rect) {
+        let rows_v = self.unit_rows();
+        let max_info = rows_v.iter().map(|r| r.2).fold(1e-9, f64::max);
+        let rows: Vec<Row> = rows_v
+            .iter()
+            .enumerate()
+            .map(|(i, (u, a, info))| {
+                let bar = "▮".repeat(((info / max_info) * 10.0).round() as usize);
+                let style = if i == self.selected {
+                    Style::default().add_modifier(Modifier::REVERSED)
+                } else {
+                    Style::default()
+                };
+                Row::new(vec![
+                    Cell::from(u.to_string()),
+                    Cell::from(format!("{:.0}%", a * 100.0)),
+                    Cell::from(format!("{info:.3}")),
+                    Cell::from(bar),
+                ])
+                .style(style)
+            })
+            .collect();
+        let sort = match self.sort {
+            UnitSort::Info => "information",
+            UnitSort::Accuracy => "accuracy",
+            UnitSort::Id => "unit id",
+        };
+        let t = Table::new(
+            rows,
+            [
+                Constraint::Length(7),
+                Constraint::Length(6),
+                Constraint::Length(7),
+                Constraint::Min(10),
+            ],
+        )
+        .header(
+            Row::new(vec!["unit", "acc", "bits", ""])
+                .style(Style::default().add_modifier(Modifier::BOLD)),
+        )
+        .block(
+            Block::default()
+                .borders(Borders::ALL)
+                .title(format!("units by {sort} (single-unit, end of window)")),
+        );
+        f.render_widget(t, area);
+    }
+
+    fn draw_unit_detail(&self, f: &mut Frame, area: Rect) {
+        let rows_v = self.unit_rows();
+        let Some((unit, _, _)) = rows_v.get(self.selected) else {
+            f.render_widget(
+                Paragraph::new("no per-unit reports yet")
+                    .block(Block::default().borders(Borders::ALL).title("unit detail")),
+                area,
+            );
+            return;
+        };
+        let st = &self.units[unit];
+        let lines: Vec<Line> = st
+            .per_stim
+            .iter()
+            .enumerate()
+            .map(|(i, (n, sp, right))| {
+                if *n == 0 {
+                    Line::from(format!("{:>6}  –", self.name(i as u32)))
+                } else {
+                    let mean = sp / *n as f64;
+                    Line::from(vec![
+                        Span::raw(format!("{:>6} ", self.name(i as u32))),
+                        Span::styled(
+                            "█".repeat((mean * 12.0).round() as usize),
+                            Style::default().fg(Color::Magenta),
+                        ),
+                        Span::raw(format!(" p̄={mean:.2} right {right}/{n}")),
+                    ])
+                }
+            })
+            .collect();
+        f.render_widget(
+            Paragraph::new(lines).block(
+                Block::default()
+                    .borders(Borders::ALL)
+                    .title(format!("unit {unit}: posterior of the presented stimulus")),
+            ),
+            area,
+        );
+    }
+}
+
+/// A plain text line for a message, or None for messages plain mode does not print.
+pub fn plain_line(state: &MonitorState, topic: &str, m: &v1::Outbound) -> Option<String> {
+    match &m.body {
+        Some(outbound::Body::Decision(d)) => {
+            let mark = if d.presented.is_empty() {
+                String::new()
+            } else if d.presented == d.stimulus_name {
+                " right".into()
+            } else {
+                format!(" wrong (was {})", d.presented)
+            };
+            let reason = if d.reason == v1::DecisionReason::Threshold as i32 {
+                "threshold"
+            } else {
+                "window-end"
+            };
+            Some(format!(
+                "decision trial={} stimulus={} posterior={:.3} at_ms={:.0} reason={reason}{mark}",
+                d.trial,
+                d.stimulus_name,
+                d.posterior,
+                (d.bin as f64 + 1.0) * state.bin_ms
+            ))
+        }
+        Some(outbound::Body::Trial(t)) => Some(format!(
+            "trial-end trial={} spikes={} bins={} presented={}",
+            t.trial,
+            t.spikes,
+            t.bins,
+            if t.presented.is_empty() {
+                "?"
+            } else {
+                &t.presented
+            }
+        )),
+        Some(outbound::Body::Health(_)) if topic == auspex_proto::topic::HEALTH => {
+            Some(format!("health {}", state.health_line()))
+        }
+        _ => None,
+    }
+}
+
+/// A JSON object for a message (one line in JSON-lines mode).
+pub fn json_line(topic: &str, m: &v1::Outbound) -> String {
+    use serde_json::json;
+    let body = match &m.body {
+        Some(outbound::Body::Posterior(p)) => {
+            json!({"trial": p.trial, "bin": p.bin, "bin_end_tick": p.bin_end_tick, "posterior": p.posterior, "top": p.top, "top_posterior": p.top_posterior, "entropy_bits": p.entropy_bits, "spikes": p.spikes})
+        }
+        Some(outbound::Body::Decision(d)) => {
+            json!({"trial": d.trial, "stimulus": d.stimulus_name, "posterior": d.posterior, "bin": d.bin, "reason": d.reason, "presented": d.presented})
+        }
+        Some(outbound::Body::Trial(t)) => {
+            json!({"trial": t.trial, "outcome": t.outcome, "spikes": t.spikes, "bins": t.bins, "presented": t.presented})
+        }
+        Some(outbound::Body::Units(u)) => {
+            json!({"trial": u.trial, "presented": u.presented, "labelled_trials": u.labelled_trials,
+            "units": u.units.iter().map(|l| json!({"unit": l.unit, "presented_posterior": l.presented_posterior, "decoded": l.decoded, "accuracy": l.accuracy, "info_bits": l.info_bits})).collect::<Vec<_>>()})
+        }
+        Some(outbound::Body::Health(h)) => {
+            json!({"spikes_per_s": h.spikes_per_s, "frames_per_s": h.frames_per_s, "late_spikes": h.late_spikes, "malformed": h.malformed_messages, "sequence_gaps": h.sequence_gaps, "dropped_posterior": h.dropped_posterior, "update_p50_us": h.update_p50_us, "update_p99_us": h.update_p99_us})
+        }
+        None => json!(null),
+    };
+    json!({"topic": topic, "seq": m.seq, "body": body}).to_string()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ratatui::backend::TestBackend;
+    use ratatui::Terminal;
+
+    fn stream() -> Vec<(&'static str, v1::Outbound)> {
+        let mut v = Vec::new();
+        let mut seq = 0;
+        let mut add = |t: &'static str, b: outbound::Body| {
+            seq += 1;
+            v.push((t, v1::Outbound { seq, body: Some(b) }));
+        };
+        for bin in 0..30 {
+            let a = 0.5 + bin as f64 / 60.0;
+            add(
+                "posterior",
+                outbound::Body::Posterior(v1::PosteriorFrame {
+                    trial: 7,
+                    bin,
+                    posterior: vec![a, 1.0 - a],
+                    top: 0,
+                    top_posterior: a,
+                    ..Default::default()
+                }),
+            );
+        }
+        add(
+            "decision",
+            outbound::Body::Decision(v1::DecisionEvent {
+                trial: 7,
+                stimulus: 0,
+                stimulus_name: "N".into(),
+                posterior: 0.98,
+                bin: 29,
+                reason: 1,
+                presented: "N".into(),
+                bin_end_tick: 0,
+            }),
+        );
+        add(
+            "decision",
+            outbound::Body::Decision(v1::DecisionEvent {
+                trial: 6,
+                stimulus: 1,
+                stimulus_name: "S".into(),
+                posterior: 0.91,
+                bin: 40,
+                reason: 1,
+                presented: "N".into(),
+                bin_end_tick: 0,
+            }),
+        );
+        add(
+            "units",
+            outbound::Body::Units(v1::UnitReport {
+                trial: 7,
+                presented: "N".into(),
+                labelled_trials: 5,
+                units: vec![
+                    v1::UnitLine {
+                        unit: 101,
+                        presented_posterior: 0.9,
+                        decoded: 0,
+                        accuracy: 0.8,
+                        info_bits: 0.5,
+                    },
+                    v1::UnitLine {
+                        unit: 102,
+                        presented_posterior: 0.4,
+                        decoded: 1,
+                        accuracy: 0.4,
+                        info_bits: 0.05,
+                    },
+                ],
+            }),
+        );
+        add(
+            "health",
+            outbound::Body::Health(v1::Health {
+                spikes_per_s: 320.0,
+                frames_per_s: 1000.0,
+                update_p50_us: 12.0,
+                update_p99_us: 40.0,
+                ..Default::default()
+            }),
+        );
+        v
+    }
+
+    fn render(state: &MonitorState) -> String {
+        let mut term = Terminal::new(TestBackend::new(110, 30)).unwrap();
+        term.draw(|f| state.draw(f)).unwrap();
+        let buf = term.backend().buffer().clone();
+        let mut s = String::new();
+        for y in 0..buf.area.height {
+            for x in 0..buf.area.width {
+                s.push_str(buf[(x, y)].symbol());
+            }
+            s.push('\n');
+        }
+        s
+    }
+
+    #[test]
+    fn renders_posterior_decisions_units_and_health() {
+        let mut st = MonitorState::new(vec!["N".into(), "S".into()], 0.001);
+        for (t, m) in stream() {
+            st.apply(t, &m);
+        }
+        let screen = render(&st);
+        assert!(screen.contains("trial 7 · 30 ms after onset"), "{screen}");
+        assert!(screen.contains("decided N (p = 0.98) at 30 ms"), "{screen}");
+        assert!(screen.contains("N 0.98   30 ms ✓"), "{screen}");
+        assert!(screen.contains("✗ was N"), "{screen}");
+        assert!(screen.contains("units by information"), "{screen}");
+        assert!(screen.contains("spikes 320/s"), "{screen}");
+        assert!(screen.contains("decisions: 50% right of 2"), "{screen}");
+        // Best unit first, selected, with its per-stimulus detail.
+        let i101 = screen.find("101").unwrap();
+        let i102 = screen.find("102").unwrap();
+        assert!(i101 < i102);
+        assert!(
+            screen.contains("unit 101: posterior of the presented stimulus"),
+            "{screen}"
+        );
+        st.next_sort();
+        st.next_sort();
+        assert_eq!(st.unit_rows()[0].0, 101);
+        st.select(1);
+        assert!(render(&st).contains("unit 102: posterior"));
+    }
+
+    #[test]
+    fn plain_and_json_lines() {
+        let st = MonitorState::new(vec!["N".into(), "S".into()], 0.001);
+        let s = stream();
+        let d = &s[30];
+        assert_eq!(
+            plain_line(&st, d.0, &d.1).unwrap(),
+            "decision trial=7 stimulus=N posterior=0.980 at_ms=30 reason=threshold right"
+        );
+        let j: serde_json::Value = serde_json::from_str(&json_line(d.0, &d.1)).unwrap();
+        assert_eq!(j["topic"], "decision");
+        assert_eq!(j["body"]["stimulus"], "N");
+    }
+}

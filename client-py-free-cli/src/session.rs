@@ -1,0 +1,264 @@
+//! Live sessions from the command line: monitor, replay, and the live demo that starts the
+//! daemon as a child process on free loopback ports, replays the demo session into it while the
+//! monitor shows it, and checks the live decisions against offline decoding.
+
+use crate::live::{replay, status, Pace};
+use crate::monitor::{json_line, plain_line, MonitorState};
+use anyhow::{bail, Context};
+use auspex_proto::v1;
+use prost::Message;
+use std::io::{IsTerminal, Write};
+use std::time::Duration;
+use tokio::sync::watch;
+use zeromq::{Socket, SocketRecv};
+
+/// How the monitor shows things.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum View {
+    /// Full-screen terminal view.
+    Screen,
+    /// Plain text lines.
+    Lines,
+    /// JSON lines.
+    Json,
+}
+
+impl View {
+    /// Screen on a terminal, plain lines otherwise.
+    pub fn auto() -> Self {
+        if std::io::stdout().is_terminal() {
+            View::Screen
+        } else {
+            View::Lines
+        }
+    }
+}
+
+/// Decisions seen by a monitor: (trial, stimulus index, posterior bits, bin).
+pub type SeenDecisions = Vec<(u64, u32, u64, u32)>;
+
+/// Subscribes to `publish` and shows the stream until `stop` turns true (or `q` on screen).
+pub async fn monitor(
+    publish: &str,
+    control_ep: &str,
+    view: View,
+    mut stop: watch::Receiver<bool>,
+) -> anyhow::Result<SeenDecisions> {
+    let st = status(control_ep)
+        .await
+        .with_context(|| format!("asking the daemon at {control_ep} for its model"))?;
+    let mut state = MonitorState::new(st.stimuli.clone(), st.bin_width_s);
+    let mut sub = zeromq::SubSocket::new();
+    sub.connect(publish)
+        .await
+        .with_context(|| format!("cannot connect to {publish}"))?;
+    sub.subscribe("").await?;
+    let mut seen = Vec::new();
+    let mut term = if view == View::Screen {
+        crossterm::terminal::enable_raw_mode()?;
+        crossterm::execute!(std::io::stdout(), crossterm::terminal::EnterAlternateScreen)?;
+        Some(ratatui::Terminal::new(
+            ratatui::backend::CrosstermBackend::new(std::io::stdout()),
+        )?)
+    } else {
+        None
+    };
+    let mut tick = tokio::time::interval(Duration::from_millis(50));
+    let out = std::io::stdout();
+    let result: anyhow::Result<()> = async {
+        loop {
+            tokio::select! {
+                _ = stop.changed() => if *stop.borrow() { break },
+                _ = tick.tick() => {
+                    if let Some(t) = term.as_mut() {
+                        while crossterm::event::poll(Duration::ZERO)? {
+                            if let crossterm::event::Event::Key(k) = crossterm::event::read()? {
+                                use crossterm::event::KeyCode::*;
+                                match k.code {
+                                    Char('q') | Esc => return Ok(()),
+                                    Char('c') if k.modifiers.contains(crossterm::event::KeyModifiers::CONTROL) => return Ok(()),
+                                    Char('p') => state.paused = !state.paused,
+                                    Char('s') => state.next_sort(),
+                                    Up | Char('k') => state.select(-1),
+                                    Down | Char('j') => state.select(1),
+                                    _ => {}
+                                }
+                            }
+                        }
+                        t.draw(|f| state.draw(f))?;
+                    }
+                }
+                m = sub.recv() => {
+                    let m = m?;
+                    let parts = m.into_vec();
+                    if parts.len() != 2 { continue; }
+                    let topic = String::from_utf8_lossy(&parts[0]).to_string();
+                    let Ok(msg) = v1::Outbound::decode(parts[1].as_ref()) else { continue };
+                    if let Some(v1::outbound::Body::Decision(d)) = &msg.body {
+                        seen.push((d.trial, d.stimulus, d.posterior.to_bits(), d.bin));
+                    }
+                    if !state.paused || term.is_none() {
+                        state.apply(&topic, &msg);
+                    }
+                    match view {
+                        View::Lines => if let Some(l) = plain_line(&state, &topic, &msg) { let _ = writeln!(out.lock(), "{l}"); },
+                        View::Json => { let _ = writeln!(out.lock(), "{}", json_line(&topic, &msg)); },
+                        View::Screen => {}
+                    }
+                }
+            }
+        }
+        Ok(())
+    }
+    .await;
+    if term.is_some() {
+        let _ = crossterm::terminal::disable_raw_mode();
+        let _ = crossterm::execute!(std::io::stdout(), crossterm::terminal::LeaveAlternateScreen);
+    }
+    result?;
+    Ok(seen)
+}
+
+fn free_port() -> anyhow::Result<u16> {
+    Ok(std::net::TcpListener::bind(("127.0.0.1", 0))?
+        .local_addr()?
+        .port())
+}
+
+/// The live demo. Returns when the replay is done and the daemon has stopped.
+pub async fn live_demo(
+    model_path: &std::path::Path,
+    out_dir: &std::path::Path,
+    pace: Pace,
+    view: View,
+) -> anyhow::Result<()> {
+    let demo = crate::demo_dir();
+    let (data, _) = crate::tables::read_dataset(
+        &demo.join("spikes.csv"),
+        &demo.join("trials.csv"),
+        1e6,
+        0.25,
+    )?;
+    let ports = [free_port()?, free_port()?, free_port()?];
+    let ep = |p: u16| format!("tcp://127.0.0.1:{p}");
+    let (ingest, publish, control_ep) = (ep(ports[0]), ep(ports[1]), ep(ports[2]));
+    let recording = out_dir.join("demo-session.apxs");
+    let exe = std::env::current_exe().context("finding the auspex executable")?;
+    let log = std::fs::File::create(out_dir.join("daemon.log"))?;
+    let mut child = std::process::Command::new(exe)
+        .args(["daemon", "--model"])
+        .arg(model_path)
+        .args([
+            "--ingest",
+            &ingest,
+            "--publish",
+            &publish,
+            "--control",
+            &control_ep,
+            "--task-ingest",
+            "",
+            "--record",
+        ])
+        .arg(&recording)
+        .stdout(std::process::Stdio::null())
+        .stderr(log)
+        .spawn()
+        .context("starting the daemon")?;
+    let pid = child.id() as i32;
+    let outcome = async {
+        // Wait for the daemon to answer.
+        let mut up = false;
+        for _ in 0..100 {
+            if status(&control_ep).await.is_ok() {
+                up = true;
+                break;
+            }
+            if let Ok(Some(s)) = child.try_wait() {
+                bail!("the daemon exited at start ({s}); see {}", out_dir.join("daemon.log").display());
+            }
+            tokio::time::sleep(Duration::from_millis(100)).await;
+        }
+        if !up {
+            bail!("the daemon did not answer on {control_ep}; see {}", out_dir.join("daemon.log").display());
+        }
+        let (stop_tx, stop_rx) = watch::channel(false);
+        let (p2, c2) = (publish.clone(), control_ep.clone());
+        let mon = tokio::spawn(async move { monitor(&p2, &c2, view, stop_rx).await });
+        tokio::time::sleep(Duration::from_millis(300)).await;
+        let bt = 1000; // 1 ms batches at 1 µs ticks
+        let msgs = crate::wire::dataset_messages(&data, "demo-replay", bt, 250 * bt);
+        let progress = view != View::Screen && std::io::stderr().is_terminal();
+        let took = tokio::select! {
+            r = replay(&ingest, &control_ep, &msgs, "demo-replay", data.tick_rate_hz, pace, progress) => r?,
+            _ = tokio::signal::ctrl_c() => { let _ = stop_tx.send(true); bail!("interrupted") }
+            r = async { loop { tokio::time::sleep(Duration::from_millis(100)).await; if mon.is_finished() { break; } } } => { let _ = r; bail!("monitor closed") }
+        };
+        tokio::time::sleep(Duration::from_millis(500)).await;
+        let st = status(&control_ep).await?;
+        let _ = stop_tx.send(true);
+        let seen = mon.await.context("monitor task")??;
+        Ok((took, st, seen, msgs.len()))
+    }
+    .await;
+    // Clean stop: SIGTERM, then wait.
+    unsafe {
+        libc::kill(pid, libc::SIGTERM);
+    }
+    let _ = tokio::task::spawn_blocking(move || child.wait()).await;
+    let (took, st, seen, n) = outcome?;
+    let h = st.health.unwrap_or_default();
+    eprintln!(
+        "replayed {n} messages in {:.1} s; the daemon decoded {} trials ({} frames, {} decisions), late {}, malformed {}, dropped frames {}",
+        took.as_secs_f64(),
+        h.trials_completed,
+        h.frames_out,
+        h.decisions,
+        h.late_spikes,
+        h.malformed_messages,
+        h.dropped_posterior
+    );
+    // The same session decoded offline must give the same decisions.
+    let (_, model) = auspexd::model_file::load_model(model_path)?;
+    let model = std::sync::Arc::new(model);
+    let mut sink = crate::offline::CsvSink::new(model.stimuli(), &data, None::<std::io::Sink>);
+    crate::offline::run_dataset(
+        model.clone(),
+        &data,
+        auspex_engine::EngineConfig::new(1e6),
+        &mut sink,
+    )?;
+    let mut offline: SeenDecisions = sink
+        .decisions
+        .iter()
+        .map(|r| {
+            (
+                r.decision.trial,
+                r.decision.stimulus,
+                r.decision.posterior.to_bits(),
+                r.decision.bin,
+            )
+        })
+        .collect();
+    let mut live = seen;
+    offline.sort();
+    live.sort();
+    if live == offline {
+        eprintln!(
+            "live decisions are identical to offline decoding of the same session ({} trials)",
+            live.len()
+        );
+    } else {
+        eprintln!(
+            "warning: live decisions ({}) differ from offline decoding ({}); see {}",
+            live.len(),
+            offline.len(),
+            out_dir.join("daemon.log").display()
+        );
+    }
+    eprintln!(
+        "session recorded to {} (replay it with `auspex replay --session {}`)",
+        recording.display(),
+        recording.display()
+    );
+    Ok(())
+}

@@ -1,0 +1,150 @@
+//! The daemon's command line, shared by the `auspexd` binary and `auspex daemon`: flags and an
+//! optional TOML file merged into a validated config, logging set up, then `service::run`.
+
+use crate::config::{validate, FileConfig, IngestPattern};
+use std::path::PathBuf;
+
+/// The daemon's command-line flags (shared by `auspexd` and `auspex daemon`).
+#[derive(clap::Args, Debug, Clone, Default)]
+pub struct DaemonArgs {
+    /// TOML configuration file (flags override it)
+    #[arg(long)]
+    pub config: Option<PathBuf>,
+    /// Model file from `auspex fit`
+    #[arg(long)]
+    pub model: Option<PathBuf>,
+    /// Main ingest endpoint (acquisition connects here) [default: tcp://127.0.0.1:7710]
+    #[arg(long)]
+    pub ingest: Option<String>,
+    /// Socket pattern of the main ingest: pull (senders PUSH) or sub (senders PUB)
+    #[arg(long, value_parser = ["pull", "sub"])]
+    pub ingest_pattern: Option<String>,
+    /// Task-control ingest endpoint; "" disables [default: tcp://127.0.0.1:7711]
+    #[arg(long)]
+    pub task_ingest: Option<String>,
+    /// Publish endpoint (monitors and closed-loop control subscribe here) [default: tcp://127.0.0.1:7712]
+    #[arg(long)]
+    pub publish: Option<String>,
+    /// Control endpoint (REQ/REP) [default: tcp://127.0.0.1:7713]
+    #[arg(long)]
+    pub control: Option<String>,
+    /// Record every inbound message to this file (or a timestamped file in this directory)
+    #[arg(long)]
+    pub record: Option<PathBuf>,
+    /// Allow binding endpoints that are not on loopback (traffic is unencrypted)
+    #[arg(long)]
+    pub allow_remote: bool,
+    /// Clock ticks per second, if known before the session starts
+    #[arg(long)]
+    pub tick_rate: Option<f64>,
+    /// order-stats, inhomogeneous-poisson or count-only
+    #[arg(long)]
+    pub decoder: Option<String>,
+    /// Decision threshold on the top posterior
+    #[arg(long)]
+    pub threshold: Option<f64>,
+    /// Minimum time after onset before a threshold decision, ms
+    #[arg(long)]
+    pub min_time_ms: Option<f64>,
+    /// Log JSON lines instead of text
+    #[arg(long)]
+    pub log_json: bool,
+}
+
+/// Runs the daemon from flags; returns the process exit code.
+pub fn run_cli(a: DaemonArgs) -> i32 {
+    let mut f: FileConfig = match &a.config {
+        Some(p) => match std::fs::read_to_string(p)
+            .map_err(|e| e.to_string())
+            .and_then(|t| toml::from_str(&t).map_err(|e| e.to_string()))
+        {
+            Ok(f) => f,
+            Err(e) => {
+                eprintln!("auspexd: error: {}: {e}", p.display());
+                return 2;
+            }
+        },
+        None => FileConfig::default(),
+    };
+    macro_rules! over {
+        ($($field:ident),*) => { $( if a.$field.is_some() { f.$field = a.$field.clone(); } )* };
+    }
+    over!(
+        model,
+        ingest,
+        task_ingest,
+        publish,
+        control,
+        record,
+        decoder,
+        threshold
+    );
+    if a.tick_rate.is_some() {
+        f.tick_rate_hz = a.tick_rate;
+    }
+    if a.min_time_ms.is_some() {
+        f.min_time_ms = a.min_time_ms;
+    }
+    if let Some(p) = &a.ingest_pattern {
+        f.ingest_pattern = Some(if p == "sub" {
+            IngestPattern::Sub
+        } else {
+            IngestPattern::Pull
+        });
+    }
+    if a.allow_remote {
+        f.allow_remote = Some(true);
+    }
+    let json = a.log_json || f.log_json.unwrap_or(false);
+    let filter =
+        tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into());
+    if json {
+        tracing_subscriber::fmt()
+            .with_env_filter(filter)
+            .json()
+            .with_writer(std::io::stderr)
+            .init();
+    } else {
+        tracing_subscriber::fmt()
+            .with_env_filter(filter)
+            .with_writer(std::io::stderr)
+            .init();
+    }
+    let mut warnings = Vec::new();
+    let cfg = match validate(f, &mut warnings) {
+        Ok(c) => c,
+        Err(e) => {
+            eprintln!("auspexd: error: {e}");
+            return 2;
+        }
+    };
+    for w in warnings {
+        tracing::warn!("{w}");
+    }
+    let rt = match tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+    {
+        Ok(rt) => rt,
+        Err(e) => {
+            eprintln!("auspexd: error: cannot start the runtime: {e}");
+            return 1;
+        }
+    };
+    match rt.block_on(crate::service::run(cfg, crate::service::signals())) {
+        Ok(s) => {
+            if s.recorder_errors > 0 {
+                eprintln!(
+                    "auspexd: {} recording write errors (see log)",
+                    s.recorder_errors
+                );
+            }
+        }
+        Err(e) => {
+            eprintln!("auspexd: error: {e:#}");
+            return 1;
+        }
+    }
+    0
+}
