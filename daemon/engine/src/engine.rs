@@ -287,7 +287,7 @@ pub struct UnitSummaries<'a> {
     pub decoded: &'a [u32],
     /// Running single-unit accuracy over labelled trials so far.
     pub accuracy: &'a [f64],
-    /// Running plug-in mutual information (bits) between presented and decoded stimulus.
+    /// Running bias-corrected mutual information (bits) between presented and decoded stimulus.
     pub info_bits: &'a [f64],
     /// Labelled trials so far.
     pub n_trials: u64,

@@ -2,7 +2,7 @@
 //! (presented × decoded at the window end), from which accuracy and mutual information follow.
 //! Sized once per model; recording a trial never allocates.
 
-use crate::stats::mutual_info_bits;
+use crate::stats::{mutual_info_bias_bits, mutual_info_bits};
 
 /// Per-unit confusion matrices.
 #[derive(Clone, Debug)]
@@ -62,8 +62,11 @@ impl UnitTally {
         let s = self.n_stim;
         &self.conf[u * s * s..(u + 1) * s * s]
     }
-    /// Plug-in mutual information (bits) of unit index `u`'s confusion matrix.
+    /// Mutual information (bits) of unit index `u`'s confusion matrix, with the
+    /// Panzeri–Treves / Miller–Madow first-order bias subtracted (floored at 0): the plug-in
+    /// estimate alone is strongly inflated over the few trials of a live session.
     pub fn info_bits(&self, u: usize) -> f64 {
-        mutual_info_bits(self.confusion(u), self.n_stim)
+        let c = self.confusion(u);
+        (mutual_info_bits(c, self.n_stim) - mutual_info_bias_bits(c, self.n_stim)).max(0.0)
     }
 }
