@@ -12,11 +12,21 @@ fn demo_runs_end_to_end_in_plain_mode() {
     let stdout = String::from_utf8_lossy(&out.stdout);
     let stderr = String::from_utf8_lossy(&out.stderr);
     assert!(out.status.success(), "demo failed:\n{stderr}");
-    assert!(stdout.contains("decision trial=1 "), "plain decision lines: {stdout}");
+    assert!(
+        stdout.contains("decision trial=1 "),
+        "plain decision lines: {stdout}"
+    );
     assert!(stderr.contains("the daemon decoded 320 trials"), "{stderr}");
-    assert!(stderr.contains("live decisions are identical to offline decoding"), "{stderr}");
+    assert!(
+        stderr.contains("live decisions are identical to offline decoding"),
+        "{stderr}"
+    );
     assert!(dir.path().join("demo-session.apxs").exists());
-    assert!(dir.path().join("order-stats").join("posteriors.csv").exists());
+    assert!(dir
+        .path()
+        .join("order-stats")
+        .join("posteriors.csv")
+        .exists());
     // The recording replays to the same offline frames (replay determinism).
     let rec = auspex::wire::read_recording(&dir.path().join("demo-session.apxs")).unwrap();
     assert_eq!(rec.torn_tail_bytes, 0);
