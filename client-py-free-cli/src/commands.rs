@@ -2,7 +2,7 @@
 
 use crate::fitting::{fit_dataset, parse_families, summary_table};
 use crate::offline::{run_dataset, score, write_decisions, CsvSink};
-use crate::tables::{read_dataset, report_for, write_dataset};
+use crate::tables::{read_dataset, write_dataset};
 use anyhow::{bail, Context};
 use auspex_engine::engine::{DecisionPolicy, Decoder, EngineConfig};
 use auspex_engine::fit::FitOptions;
@@ -263,6 +263,5 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
     }
     eprintln!("── 3/3 exporting the model as JSON ──");
     export_cmd(&model_path, Some(&out_dir.join("demo-model.json")))?;
-    let _ = report_for;
     Ok(model_path)
 }

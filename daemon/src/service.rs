@@ -49,15 +49,9 @@ pub struct StopSummary {
     pub recorder_errors: u64,
 }
 
-fn fix_endpoint(ep: String) -> String {
-    // zeromq prints bound TCP endpoints as tcp://IP:PORT already; keep as is.
-    ep
-}
-
 /// Binds and starts everything.
 pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
-    let (spec, model) = crate::model_file::load_model(&cfg.model)?;
-    let _ = spec;
+    let (_, model) = crate::model_file::load_model(&cfg.model)?;
     let model = Arc::new(model);
     let (engine_tx, engine_rx) = crossbeam_channel::bounded(cfg.engine_queue);
     let (pub_tx, pub_rx) = tokio::sync::mpsc::channel(cfg.publish_queue);
@@ -174,10 +168,10 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         .spawn(move || et.run(engine_rx))?;
     let publisher = tokio::spawn(run_publisher(pub_sock, pub_rx, stats));
     let endpoints = BoundEndpoints {
-        ingest: fix_endpoint(ingest_ep),
-        task_ingest: task_ep.map(fix_endpoint),
-        publish: fix_endpoint(publish_ep),
-        control: fix_endpoint(control_ep.to_string()),
+        ingest: ingest_ep,
+        task_ingest: task_ep,
+        publish: publish_ep,
+        control: control_ep.to_string(),
         recording: recorder.as_ref().map(|r| r.path.clone()),
     };
     tracing::info!(ingest = %endpoints.ingest, task_ingest = ?endpoints.task_ingest, publish = %endpoints.publish, control = %endpoints.control,

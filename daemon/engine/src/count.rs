@@ -199,7 +199,7 @@ fn com_log_terms(lambda: f64, nu: f64) -> Result<(f64, usize), CountError> {
 impl CountDist {
     /// Builds the distribution and its table, validating the parameters.
     pub fn new(params: CountParams) -> Result<Self, CountError> {
-        let (pmf, mean_hint) = match &params {
+        let (pmf, _mode) = match &params {
             CountParams::Poisson { mean } => {
                 check_pos("mean", *mean)?;
                 let lm = mean.ln();
@@ -268,7 +268,6 @@ impl CountDist {
                 (pmf.clone(), 0.0)
             }
         };
-        let _ = mean_hint;
         let ln_pmf: Vec<f64> = pmf.iter().map(|p| p.ln()).collect();
         let mean: f64 = pmf.iter().enumerate().map(|(n, p)| n as f64 * p).sum();
         let m2: f64 = pmf
