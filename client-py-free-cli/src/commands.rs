@@ -2,7 +2,7 @@
 
 use crate::fitting::{fit_dataset, parse_families, summary_table};
 use crate::offline::{run_dataset, score, write_decisions, CsvSink};
-use crate::tables::{read_dataset, write_dataset};
+use crate::tables::{write_dataset, Source};
 use anyhow::{bail, Context};
 use auspex_engine::engine::{DecisionPolicy, Decoder, EngineConfig};
 use auspex_engine::fit::FitOptions;
@@ -85,14 +85,12 @@ pub fn simulate_cmd(
 /// `fit`.
 #[allow(clippy::too_many_arguments)]
 pub fn fit_cmd(
-    spikes: &Path,
-    trials: &Path,
+    source: &Source,
     out: &Path,
     window_ms: f64,
     bin_ms: f64,
     families: &str,
     prior_from_frequencies: bool,
-    tick_rate: f64,
     quiet: bool,
 ) -> anyhow::Result<Model> {
     let opts = FitOptions {
@@ -102,7 +100,7 @@ pub fn fit_cmd(
         prior_from_frequencies,
         bandwidth: Default::default(),
     };
-    let (data, report) = read_dataset(spikes, trials, tick_rate, opts.window_s)?;
+    let (data, report) = source.load(opts.window_s)?;
     eprintln!("{report}");
     let t0 = std::time::Instant::now();
     let (spec, plan) = fit_dataset(&data, &opts, std::io::stderr().is_terminal() && !quiet)?;
@@ -120,11 +118,7 @@ pub fn fit_cmd(
         plan.unlabelled_trials
     );
     let model = Model::new(spec.clone())?;
-    save_model(
-        out,
-        &spec,
-        &format!("{} + {}", spikes.display(), trials.display()),
-    )?;
+    save_model(out, &spec, &source.describe())?;
     eprintln!("model written to {}", out.display());
     Ok(model)
 }
@@ -159,16 +153,14 @@ impl DecodeArgs {
 /// `decode`: returns the accuracy.
 pub fn decode_cmd(
     model_path: &Path,
-    spikes: &Path,
-    trials: &Path,
+    source: &Source,
     out_dir: &Path,
     args: &DecodeArgs,
-    tick_rate: f64,
 ) -> anyhow::Result<f64> {
     let (_, model) = load_model(model_path)?;
     let model = Arc::new(model);
     let window_s = model.bin_width_s() * model.n_bins() as f64;
-    let (data, report) = read_dataset(spikes, trials, tick_rate, window_s)?;
+    let (data, report) = source.load(window_s)?;
     eprintln!("{report}");
     std::fs::create_dir_all(out_dir)
         .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;
@@ -180,7 +172,12 @@ pub fn decode_cmd(
         &data,
         Some(std::io::BufWriter::with_capacity(1 << 20, f)),
     );
-    let counters = run_dataset(model.clone(), &data, args.config(tick_rate), &mut sink)?;
+    let counters = run_dataset(
+        model.clone(),
+        &data,
+        args.config(data.tick_rate_hz),
+        &mut sink,
+    )?;
     let rows = sink
         .finish()
         .with_context(|| format!("writing {}", post_path.display()))?;
@@ -250,7 +247,8 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
         .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;
     let model_path = out_dir.join("demo.apxm");
     eprintln!("── 1/3 fitting the demo model (on {}) ──", demo.display());
-    fit_cmd(&sp, &tr, &model_path, 250.0, 1.0, "all", false, 1e6, quiet)?;
+    let source = Source::tables(&sp, &tr);
+    fit_cmd(&source, &model_path, 250.0, 1.0, "all", false, quiet)?;
     eprintln!("── 2/3 decoding every trial with each decoder ──");
     for dec in Decoder::ALL {
         let args = DecodeArgs {
@@ -259,7 +257,7 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
             min_time_ms: 20.0,
             prior: None,
         };
-        decode_cmd(&model_path, &sp, &tr, &out_dir.join(dec.name()), &args, 1e6)?;
+        decode_cmd(&model_path, &source, &out_dir.join(dec.name()), &args)?;
     }
     eprintln!("── 3/3 exporting the model as JSON ──");
     export_cmd(&model_path, Some(&out_dir.join("demo-model.json")))?;

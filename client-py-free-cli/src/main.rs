@@ -3,6 +3,7 @@
 use auspex::commands::{self, DecodeArgs};
 use auspex::live::Pace;
 use auspex::session::View;
+use auspex::tables::Source;
 use auspex_engine::engine::Decoder;
 use auspex_proto::v1;
 use clap::{Parser, Subcommand};
@@ -39,14 +40,32 @@ fn parse_prior(s: &str) -> Result<Vec<f64>, String> {
 #[derive(clap::Args, Clone)]
 struct Tables {
     /// Spike table: CSV with columns unit,time_s
-    #[arg(long)]
-    spikes: PathBuf,
+    #[arg(long, requires = "trials", required_unless_present = "session")]
+    spikes: Option<PathBuf>,
     /// Trial table: CSV with columns trial,onset_s,stimulus
-    #[arg(long)]
-    trials: PathBuf,
-    /// Acquisition clock ticks per second (times are rounded to ticks on reading)
+    #[arg(long, requires = "spikes", required_unless_present = "session")]
+    trials: Option<PathBuf>,
+    /// A session recorded by the daemon (.apxs) instead of the two tables
+    #[arg(long, conflicts_with_all = ["spikes", "trials", "tick_rate"])]
+    session: Option<PathBuf>,
+    /// Acquisition clock ticks per second for the tables (times are rounded to ticks on reading)
     #[arg(long, default_value_t = 1e6)]
     tick_rate: f64,
+}
+
+impl Tables {
+    fn source(&self) -> Source {
+        match (&self.session, &self.spikes, &self.trials) {
+            (Some(p), _, _) => Source::Session(p.clone()),
+            (None, Some(s), Some(t)) => Source::Tables {
+                spikes: s.clone(),
+                trials: t.clone(),
+                tick_rate_hz: self.tick_rate,
+            },
+            // clap enforces one of the two forms.
+            _ => unreachable!("clap requires --session or --spikes with --trials"),
+        }
+    }
 }
 
 #[derive(clap::Args, Clone)]
@@ -288,14 +307,12 @@ fn main() {
             prior_from_frequencies,
             quiet,
         } => commands::fit_cmd(
-            &tables.spikes,
-            &tables.trials,
+            &tables.source(),
             &out,
             window_ms,
             bin_ms,
             &families,
             prior_from_frequencies,
-            tables.tick_rate,
             quiet,
         )
         .map(|_| ()),
@@ -311,14 +328,7 @@ fn main() {
                 min_time_ms: opts.min_time_ms,
                 prior: opts.prior,
             };
-            commands::decode_cmd(
-                &model,
-                &tables.spikes,
-                &tables.trials,
-                &out_dir,
-                &args,
-                tables.tick_rate,
-            )
+            commands::decode_cmd(&model, &tables.source(), &out_dir, &args)
             .map(|_| ())
         }
         Cmd::Export { model, out } => commands::export_cmd(&model, out.as_deref()),

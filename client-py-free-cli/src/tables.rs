@@ -240,6 +240,66 @@ pub fn read_dataset(
     Ok((data, report))
 }
 
+/// Where a dataset comes from: the two CSV tables, or a session recorded by the daemon.
+#[derive(Clone, Debug)]
+pub enum Source {
+    /// `spikes.csv` + `trials.csv` at a clock rate.
+    Tables {
+        /// Spike table.
+        spikes: std::path::PathBuf,
+        /// Trial table.
+        trials: std::path::PathBuf,
+        /// Ticks per second used to round times.
+        tick_rate_hz: f64,
+    },
+    /// A session recording (`.apxs`); labels sent after onsets are applied to their trials.
+    Session(std::path::PathBuf),
+}
+
+impl Source {
+    /// The CSV tables at the default clock (1 MHz).
+    pub fn tables(spikes: &Path, trials: &Path) -> Self {
+        Source::Tables {
+            spikes: spikes.to_path_buf(),
+            trials: trials.to_path_buf(),
+            tick_rate_hz: 1e6,
+        }
+    }
+
+    /// Reads the data; `window_s` is used only for the report.
+    pub fn load(&self, window_s: f64) -> anyhow::Result<(Dataset, ReadReport)> {
+        match self {
+            Source::Tables {
+                spikes,
+                trials,
+                tick_rate_hz,
+            } => Ok(read_dataset(spikes, trials, *tick_rate_hz, window_s)?),
+            Source::Session(p) => {
+                let rec = crate::wire::read_recording(p)?;
+                if rec.undecodable > 0 {
+                    eprintln!(
+                        "note: {}: {} recorded messages were not valid Auspex messages and were skipped (the daemon counted them as malformed when they arrived)",
+                        p.display(),
+                        rec.undecodable
+                    );
+                }
+                let report = report_for(&rec.dataset, window_s);
+                Ok((rec.dataset, report))
+            }
+        }
+    }
+
+    /// A short description for provenance fields.
+    pub fn describe(&self) -> String {
+        match self {
+            Source::Tables { spikes, trials, .. } => {
+                format!("{} + {}", spikes.display(), trials.display())
+            }
+            Source::Session(p) => format!("session {}", p.display()),
+        }
+    }
+}
+
 /// The read report of a dataset for a window length.
 pub fn report_for(data: &Dataset, window_s: f64) -> ReadReport {
     let window_ticks = seconds_to_ticks(window_s, data.tick_rate_hz).max(1);

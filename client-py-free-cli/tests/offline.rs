@@ -3,6 +3,7 @@
 //! tables, and against decoding with the true model.
 
 use auspex::commands::{decode_cmd, export_cmd, fit_cmd, simulate_cmd, DecodeArgs};
+use auspex::tables::Source;
 use auspex_engine::engine::Decoder;
 use std::collections::HashMap;
 use std::path::Path;
@@ -83,14 +84,12 @@ fn posteriors_agree_with_an_independent_implementation_of_the_json_export() {
     .unwrap();
     let t = d.join("train");
     fit_cmd(
-        &t.join("spikes.csv"),
-        &t.join("trials.csv"),
+        &Source::tables(&t.join("spikes.csv"), &t.join("trials.csv")),
         &d.join("m.apxm"),
         200.0,
         1.0,
         "all",
         false,
-        1e6,
         true,
     )
     .unwrap();
@@ -104,11 +103,9 @@ fn posteriors_agree_with_an_independent_implementation_of_the_json_export() {
     let te = d.join("test");
     decode_cmd(
         &d.join("m.apxm"),
-        &te.join("spikes.csv"),
-        &te.join("trials.csv"),
+        &Source::tables(&te.join("spikes.csv"), &te.join("trials.csv")),
         &d.join("out"),
         &args,
-        1e6,
     )
     .unwrap();
 
@@ -249,14 +246,12 @@ fn fitted_model_decodes_like_the_true_model_and_timing_beats_count_only() {
     .unwrap();
     let (t, te) = (d.join("train"), d.join("test"));
     fit_cmd(
-        &t.join("spikes.csv"),
-        &t.join("trials.csv"),
+        &Source::tables(&t.join("spikes.csv"), &t.join("trials.csv")),
         &d.join("fit.apxm"),
         250.0,
         1.0,
         "all",
         false,
-        1e6,
         true,
     )
     .unwrap();
@@ -270,11 +265,9 @@ fn fitted_model_decodes_like_the_true_model_and_timing_beats_count_only() {
         };
         decode_cmd(
             &d.join(model),
-            &te.join("spikes.csv"),
-            &te.join("trials.csv"),
+            &Source::tables(&te.join("spikes.csv"), &te.join("trials.csv")),
             &d.join("o"),
             &args,
-            1e6,
         )
         .unwrap()
     };
@@ -311,14 +304,12 @@ fn fitted_parameters_recover_the_scenario() {
     )
     .unwrap();
     fit_cmd(
-        &d.join("spikes.csv"),
-        &d.join("trials.csv"),
+        &Source::tables(&d.join("spikes.csv"), &d.join("trials.csv")),
         &d.join("fit.apxm"),
         200.0,
         1.0,
         "poisson,nb,com",
         false,
-        1e6,
         true,
     )
     .unwrap();

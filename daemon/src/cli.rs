@@ -25,7 +25,7 @@ pub struct DaemonArgs {
     /// Publish endpoint (monitors and closed-loop control subscribe here) [default: tcp://127.0.0.1:7712]
     #[arg(long)]
     pub publish: Option<String>,
-    /// Control endpoint (REQ/REP) [default: tcp://127.0.0.1:7713]
+    /// Control endpoint (clients connect a REQ socket) [default: tcp://127.0.0.1:7713]
     #[arg(long)]
     pub control: Option<String>,
     /// Record every inbound message to this file (or a timestamped file in this directory)

@@ -1,4 +1,4 @@
-//! Control: a bound REP socket. Each request is decoded here, model files are loaded here (off
+//! Control: a bound ROUTER socket answering REQ clients. Each request is decoded here, model files are loaded here (off
 //! the engine thread), and everything else is answered by the engine thread through a oneshot
 //! reply with a timeout, so a stuck engine gives an error reply rather than a hung client.
 
@@ -58,9 +58,11 @@ async fn handle(bytes: &[u8], tx: &Sender<EngineInput>) -> ControlReply {
     }
 }
 
-/// Serves control requests until shutdown.
+/// Serves control requests until shutdown. The socket is a ROUTER speaking the REQ/REP
+/// envelope (identity, empty delimiter, body), so any REQ client works unchanged; zeromq 0.7's
+/// REP socket was seen to stop receiving for good after a few hundred short-lived REQ peers.
 pub async fn run_control(
-    mut sock: zeromq::RepSocket,
+    mut sock: zeromq::RouterSocket,
     tx: Sender<EngineInput>,
     mut stop: watch::Receiver<bool>,
 ) {
@@ -69,9 +71,19 @@ pub async fn run_control(
             _ = stop.changed() => break,
             r = sock.recv() => match r {
                 Ok(m) => {
-                    let bytes = crate::ingest::payload(m);
+                    // Envelope: identity, then (for REQ peers) an empty delimiter, then the body.
+                    let mut frames = m.into_vec();
+                    let bytes = frames.pop().unwrap_or_default();
+                    if frames.is_empty() {
+                        continue;
+                    }
                     let reply = handle(&bytes, &tx).await;
-                    if let Err(e) = sock.send(ZmqMessage::from(Bytes::from(reply.encode_to_vec()))).await {
+                    let mut out = ZmqMessage::from(frames.remove(0));
+                    for f in frames {
+                        out.push_back(f);
+                    }
+                    out.push_back(Bytes::from(reply.encode_to_vec()));
+                    if let Err(e) = sock.send(out).await {
                         tracing::warn!(error = %e, "control reply failed");
                     }
                 }

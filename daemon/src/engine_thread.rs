@@ -305,7 +305,12 @@ pub struct EngineThread {
     rates: (f64, f64),
     health_period: Duration,
     backlog: Receiver<EngineInput>,
+    /// Trial messages that arrived before SessionStart, applied when it does.
+    held: Vec<inbound::Body>,
 }
+
+/// Trial messages held while waiting for SessionStart; more are counted as malformed.
+const MAX_HELD_BEFORE_SESSION: usize = 4096;
 
 /// Settings for [`EngineThread::new`].
 pub struct EngineThreadSetup {
@@ -358,6 +363,7 @@ impl EngineThread {
             rates: (0.0, 0.0),
             health_period: s.health_period,
             backlog: rx,
+            held: Vec::new(),
         };
         if let Some(r) = t.tick_rate {
             t.config.tick_rate_hz = r;
@@ -496,12 +502,30 @@ impl EngineThread {
             }
             return;
         }
+        if self.engine.is_none() {
+            // Task programs may announce trials before acquisition has declared the clock:
+            // hold their messages (bounded) and apply them when the session starts.
+            let task_kind = matches!(
+                body,
+                inbound::Body::Onset(_) | inbound::Body::Label(_) | inbound::Body::Cancel(_)
+            );
+            if task_kind && self.held.len() < MAX_HELD_BEFORE_SESSION {
+                self.held.push(body);
+            } else {
+                self.counters.before_session += 1;
+                self.warn("no-session", || {
+                    "spikes or watermark before SessionStart declared the clock; ignored".into()
+                });
+            }
+            return;
+        }
+        self.apply(body);
+    }
+
+    /// Applies a decoded message to the running engine.
+    fn apply(&mut self, body: inbound::Body) {
         let stimuli = self.model.stimuli().to_vec();
         let Some(engine) = self.engine.as_mut() else {
-            self.counters.before_session += 1;
-            self.warn("no-session", || {
-                "message before SessionStart declared the clock; ignored".into()
-            });
             return;
         };
         let mut sink = PubSink {
@@ -636,7 +660,10 @@ impl EngineThread {
                     self.engine = Some(e);
                     self.config = c;
                     self.tick_rate = Some(ss.tick_rate_hz);
-                    tracing::info!(tick_rate_hz = ss.tick_rate_hz, units = ss.units.len(), name = %ss.session_name, "session started");
+                    tracing::info!(tick_rate_hz = ss.tick_rate_hz, units = ss.units.len(), name = %ss.session_name, held = self.held.len(), "session started");
+                    for body in std::mem::take(&mut self.held) {
+                        self.apply(body);
+                    }
                 }
                 Err(e) => {
                     self.counters.malformed += 1;

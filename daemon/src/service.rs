@@ -112,7 +112,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         }
         None => None,
     };
-    let mut rep = zeromq::RepSocket::new();
+    let mut rep = zeromq::RouterSocket::new();
     let control_ep = rep
         .bind(&cfg.control)
         .await

@@ -15,6 +15,13 @@ use std::sync::mpsc;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
+/// The tests here each run a daemon, a libzmq peer and a flat-out sender; on a two-core CI
+/// machine running them side by side starves some of them for seconds. One at a time.
+fn serial() -> std::sync::MutexGuard<'static, ()> {
+    static LOCK: std::sync::Mutex<()> = std::sync::Mutex::new(());
+    LOCK.lock().unwrap_or_else(|e| e.into_inner())
+}
+
 fn scenario() -> Scenario {
     let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();
     let mut s: Scenario = toml::from_str(&text).unwrap();
@@ -166,10 +173,34 @@ fn wait_for(mut cond: impl FnMut() -> bool, what: &str) {
     }
 }
 
-fn stream_and_compare(ipc: bool) {
+/// How the peer connects: transport, ingest pattern, and whether trial onsets and labels come
+/// from a separate task-control program on the task endpoint.
+#[derive(Clone, Copy)]
+struct Peer {
+    ipc: bool,
+    sub_ingest: bool,
+    split_task: bool,
+}
+
+/// Renumbers messages for one sender.
+fn as_sender(msgs: Vec<v1::Inbound>, name: &str) -> Vec<v1::Inbound> {
+    msgs.into_iter()
+        .enumerate()
+        .map(|(i, mut m)| {
+            m.sender = name.into();
+            m.seq = i as u64 + 1;
+            m
+        })
+        .collect()
+}
+
+fn stream_and_compare(peer: Peer) {
     let f = fixture(3);
     let ipc_dir = tempfile::tempdir().unwrap();
-    let cfg = config(&f, ipc.then(|| ipc_dir.path()));
+    let mut cfg = config(&f, peer.ipc.then(|| ipc_dir.path()));
+    if peer.sub_ingest {
+        cfg.ingest_pattern = auspexd::config::IngestPattern::Sub;
+    }
     let rt = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
         .enable_all()
@@ -179,17 +210,91 @@ fn stream_and_compare(ipc: bool) {
     let ep = running.endpoints.clone();
     let ctx = zmq::Context::new();
     let (stop_sub, sub) = subscriber(&ctx, &ep.publish);
-    std::thread::sleep(Duration::from_millis(300)); // let the subscription reach the publisher
 
-    let push = ctx.socket(zmq::PUSH).unwrap();
-    push.set_sndhwm(0).unwrap();
-    push.connect(&ep.ingest).unwrap();
+    let acq = ctx
+        .socket(if peer.sub_ingest { zmq::PUB } else { zmq::PUSH })
+        .unwrap();
+    acq.set_sndhwm(0).unwrap();
+    acq.connect(&ep.ingest).unwrap();
+    let task = ctx.socket(zmq::PUSH).unwrap();
+    task.set_sndhwm(0).unwrap();
+    task.connect(ep.task_ingest.as_deref().unwrap()).unwrap();
+    // Let the subscriptions (ours and, for SUB ingest, the daemon's) reach the publishers.
+    std::thread::sleep(Duration::from_millis(300));
     let bt = (f.model.bin_width_s() * f.data.tick_rate_hz).round() as i64;
     let msgs = dataset_messages(&f.data, "libzmq-acq", bt, bt * f.model.n_bins() as i64);
-    for m in &msgs {
-        push.send(m.encode_to_vec(), 0).unwrap();
-    }
-    let n = msgs.len() as u64;
+    let n = if peer.split_task {
+        // Acquisition sends spikes and watermarks; the task program sends each onset without
+        // its stimulus and then the label. Both are sent in time order from this thread.
+        let mut acq_msgs = Vec::new();
+        let mut task_msgs = Vec::new();
+        let mut order = Vec::new();
+        for m in msgs {
+            match &m.body {
+                Some(v1::inbound::Body::Onset(o)) => {
+                    let mut o2 = o.clone();
+                    let label = v1::TrialLabel {
+                        trial: o.trial,
+                        stimulus: std::mem::take(&mut o2.stimulus),
+                    };
+                    task_msgs.push(v1::Inbound {
+                        body: Some(v1::inbound::Body::Onset(o2)),
+                        ..Default::default()
+                    });
+                    task_msgs.push(v1::Inbound {
+                        body: Some(v1::inbound::Body::Label(label)),
+                        ..Default::default()
+                    });
+                    order.extend([true, true]);
+                }
+                _ => {
+                    acq_msgs.push(m);
+                    order.push(false);
+                }
+            }
+        }
+        let (acq_msgs, task_msgs) = (
+            as_sender(acq_msgs, "libzmq-acq"),
+            as_sender(task_msgs, "libzmq-task"),
+        );
+        let (mut a, mut t) = (acq_msgs.iter(), task_msgs.iter());
+        for is_task in order {
+            if is_task {
+                let m = t.next().unwrap();
+                task.send(m.encode_to_vec(), 0).unwrap();
+                // Sending flat out, the acquisition stream would run seconds of session time
+                // ahead of the task program's socket; on a rig both run in real time. Wait for
+                // each task message so the onset arrives within the engine's spike history.
+                wait_for(
+                    || {
+                        status(&ctx, &ep.control)
+                            .senders
+                            .iter()
+                            .any(|s| s.sender == "libzmq-task" && s.last_seq == m.seq)
+                    },
+                    "a task message",
+                );
+            } else {
+                acq.send(a.next().unwrap().encode_to_vec(), 0).unwrap();
+            }
+        }
+        let nt = task_msgs.len() as u64;
+        wait_for(
+            || {
+                status(&ctx, &ep.control)
+                    .senders
+                    .iter()
+                    .any(|s| s.sender == "libzmq-task" && s.last_seq == nt)
+            },
+            "the task program's messages",
+        );
+        acq_msgs.len() as u64
+    } else {
+        for m in &msgs {
+            acq.send(m.encode_to_vec(), 0).unwrap();
+        }
+        msgs.len() as u64
+    };
     wait_for(
         || {
             status(&ctx, &ep.control)
@@ -203,7 +308,19 @@ fn stream_and_compare(ipc: bool) {
     std::thread::sleep(Duration::from_millis(300));
     let st = status(&ctx, &ep.control);
     let h = st.health.unwrap();
-    assert_eq!(h.trials_completed as usize, n_trials);
+    if h.trials_completed as usize != n_trials {
+        let rec = auspex::wire::read_recording(&f.record).unwrap();
+        for (i, r) in rec.raw.iter().enumerate() {
+            match v1::Inbound::decode(r.as_slice()) {
+                Ok(m) if !matches!(m.body, Some(v1::inbound::Body::Heartbeat(_))) => {
+                    eprintln!("{i}: {m:?}")
+                }
+                Ok(_) => {}
+                Err(e) => eprintln!("{i}: undecodable {e}: {r:?}"),
+            }
+        }
+    }
+    assert_eq!(h.trials_completed as usize, n_trials, "{h:?}");
     assert_eq!(h.sequence_gaps, 0);
     assert_eq!(h.malformed_messages, 0);
     stop_sub.send(()).unwrap();
@@ -238,10 +355,12 @@ fn stream_and_compare(ipc: bool) {
     let mut b = offline.0.clone();
     a.sort_by_key(|x| (x.0, x.1));
     b.sort_by_key(|x| (x.0, x.1));
-    assert!(
-        a == b,
-        "live frames must equal offline decoding bit for bit"
-    );
+    if let Some(i) = (0..a.len()).find(|&i| a[i] != b[i]) {
+        panic!(
+            "live frames must equal offline decoding bit for bit; first difference at {i}: live {:?} vs offline {:?}",
+            a[i], b[i]
+        );
+    }
     let decisions = got.iter().filter(|(t, _)| t == "decision").count();
     assert_eq!(decisions, n_trials, "one decision per trial");
     assert!(
@@ -252,7 +371,8 @@ fn stream_and_compare(ipc: bool) {
 
     // The recording holds every message, and replays to the same frames.
     let rec = auspex::wire::read_recording(&f.record).unwrap();
-    assert_eq!(rec.raw.len(), msgs.len());
+    let recorded_expected = n as usize + if peer.split_task { 2 * n_trials } else { 0 };
+    assert_eq!(rec.raw.len(), recorded_expected);
     assert_eq!(rec.torn_tail_bytes, 0);
     let mut replay = Collect::default();
     run_dataset(
@@ -269,16 +389,47 @@ fn stream_and_compare(ipc: bool) {
 
 #[test]
 fn libzmq_sender_over_tcp_gets_frames_identical_to_offline_decode() {
-    stream_and_compare(false);
+    let _serial = serial();
+    stream_and_compare(Peer {
+        ipc: false,
+        sub_ingest: false,
+        split_task: false,
+    });
+}
+
+#[test]
+fn libzmq_pub_sender_into_sub_ingest_gets_identical_frames() {
+    let _serial = serial();
+    stream_and_compare(Peer {
+        ipc: false,
+        sub_ingest: true,
+        split_task: false,
+    });
+}
+
+#[test]
+fn onsets_and_labels_from_a_separate_task_program_give_identical_frames() {
+    let _serial = serial();
+    stream_and_compare(Peer {
+        ipc: true,
+        sub_ingest: false,
+        split_task: true,
+    });
 }
 
 #[test]
 fn libzmq_sender_over_ipc_gets_frames_identical_to_offline_decode() {
-    stream_and_compare(true);
+    let _serial = serial();
+    stream_and_compare(Peer {
+        ipc: true,
+        sub_ingest: false,
+        split_task: false,
+    });
 }
 
 #[test]
 fn bad_input_is_counted_and_never_stops_the_daemon() {
+    let _serial = serial();
     let f = fixture(1);
     let cfg = config(&f, None);
     let rt = tokio::runtime::Builder::new_multi_thread()
@@ -472,5 +623,259 @@ fn bad_input_is_counted_and_never_stops_the_daemon() {
         || status(&ctx, &ep.control).health.unwrap().trials_completed >= 2,
         "trials to complete after bad input",
     );
+    rt.block_on(running.stop());
+}
+
+fn runtime() -> tokio::runtime::Runtime {
+    tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .unwrap()
+}
+
+fn frames_of(got: &[(String, v1::Outbound)]) -> Vec<(u64, u32, Vec<f64>)> {
+    let mut v: Vec<_> = got
+        .iter()
+        .filter_map(|(t, m)| match &m.body {
+            Some(outbound::Body::Posterior(p)) if t == "posterior" => {
+                Some((p.trial, p.bin, p.posterior.clone()))
+            }
+            _ => None,
+        })
+        .collect();
+    v.sort_by_key(|x| (x.0, x.1));
+    v
+}
+
+fn offline_frames(
+    model: Arc<Model>,
+    data: &Dataset,
+    keep: impl Fn(u64) -> bool,
+) -> Vec<(u64, u32, Vec<f64>)> {
+    let mut d = data.clone();
+    d.trials.retain(|t| keep(t.id));
+    let mut c = Collect::default();
+    run_dataset(model, &d, EngineConfig::new(d.tick_rate_hz), &mut c).unwrap();
+    c.0.sort_by_key(|x| (x.0, x.1));
+    c.0
+}
+
+#[test]
+fn hot_reload_through_control_applies_at_the_trial_boundary() {
+    let _serial = serial();
+    let f = fixture(2);
+    // A second model, fitted on other trials, so its posteriors differ from the first's.
+    let sc = scenario();
+    let truth = Model::new(sc.true_model().unwrap()).unwrap();
+    let train = simulate(
+        &truth,
+        &SimOptions {
+            trials_per_stimulus: 6,
+            seed: 777,
+            ..sc.sim_options()
+        },
+    );
+    let spec_b = plan(
+        &train,
+        &FitOptions {
+            window_s: sc.window_ms / 1000.0,
+            ..FitOptions::default()
+        },
+    )
+    .unwrap()
+    .fit_all();
+    let path_b = f.model_path.with_file_name("b.apxm");
+    auspexd::model_file::save_model(&path_b, &spec_b, "e2e b").unwrap();
+    let model_b = Arc::new(Model::new(spec_b).unwrap());
+
+    let rt = runtime();
+    let running = rt
+        .block_on(auspexd::service::start(config(&f, None)))
+        .unwrap();
+    let ep = running.endpoints.clone();
+    let ctx = zmq::Context::new();
+    let (stop_sub, sub) = subscriber(&ctx, &ep.publish);
+    std::thread::sleep(Duration::from_millis(300));
+    let push = ctx.socket(zmq::PUSH).unwrap();
+    push.set_sndhwm(0).unwrap();
+    push.connect(&ep.ingest).unwrap();
+    let bt = (f.model.bin_width_s() * f.data.tick_rate_hz).round() as i64;
+    let window = bt * f.model.n_bins() as i64;
+    let msgs = dataset_messages(&f.data, "reloader", bt, window);
+    let first = &f.data.trials[0];
+    // Halfway through the first trial's window (the next onset is at least a window later).
+    let mid = msgs
+        .iter()
+        .position(|m| auspex::wire::watermark_of(m).is_some_and(|w| w >= first.onset + window / 2))
+        .unwrap();
+    for m in &msgs[..=mid] {
+        push.send(m.encode_to_vec(), 0).unwrap();
+    }
+    wait_for(
+        || {
+            status(&ctx, &ep.control)
+                .senders
+                .iter()
+                .any(|s| s.sender == "reloader" && s.last_seq == msgs[mid].seq)
+        },
+        "the first half of trial 1",
+    );
+    assert_eq!(status(&ctx, &ep.control).open_trials, vec![first.id]);
+    let r = control(
+        &ctx,
+        &ep.control,
+        control_request::Body::Reload(v1::ReloadModel {
+            path: path_b.display().to_string(),
+        }),
+    );
+    assert!(r.ok, "reload refused: {}", r.error);
+    // A model file that does not load is refused with its path named, and changes nothing.
+    let bad = control(
+        &ctx,
+        &ep.control,
+        control_request::Body::Reload(v1::ReloadModel {
+            path: "/nonexistent/x.apxm".into(),
+        }),
+    );
+    assert!(
+        !bad.ok && bad.error.contains("/nonexistent/x.apxm"),
+        "{}",
+        bad.error
+    );
+    for m in &msgs[mid + 1..] {
+        push.send(m.encode_to_vec(), 0).unwrap();
+    }
+    let n = msgs.len() as u64;
+    wait_for(
+        || {
+            status(&ctx, &ep.control)
+                .senders
+                .iter()
+                .any(|s| s.sender == "reloader" && s.last_seq == n && s.ended)
+        },
+        "the rest of the session",
+    );
+    std::thread::sleep(Duration::from_millis(300));
+    assert_eq!(
+        status(&ctx, &ep.control).model_path,
+        path_b.display().to_string()
+    );
+    stop_sub.send(()).unwrap();
+    let live = frames_of(&sub.join().unwrap());
+    rt.block_on(running.stop());
+
+    let id1 = first.id;
+    let mut expect = offline_frames(f.model.clone(), &f.data, |t| t == id1);
+    expect.extend(offline_frames(model_b.clone(), &f.data, |t| t != id1));
+    expect.sort_by_key(|x| (x.0, x.1));
+    assert_eq!(live.len(), expect.len());
+    assert!(
+        live == expect,
+        "trial 1 finishes on the old model, every later trial uses the new one"
+    );
+    // And the two models really differ on trial 1, so the check above can fail.
+    assert!(
+        offline_frames(model_b, &f.data, |t| t == id1)
+            != offline_frames(f.model.clone(), &f.data, |t| t == id1)
+    );
+}
+
+#[test]
+fn decisions_arrive_while_a_subscriber_is_stalled() {
+    let _serial = serial();
+    // Enough trials that the stalled subscriber's queues overflow many times over
+    // (about 150 000 posterior frames).
+    let f = fixture(150);
+    let rt = runtime();
+    let running = rt
+        .block_on(auspexd::service::start(config(&f, None)))
+        .unwrap();
+    let ep = running.endpoints.clone();
+    let ctx = zmq::Context::new();
+    // The stalled subscriber: everything, tiny queue, never reads.
+    let stalled = ctx.socket(zmq::SUB).unwrap();
+    stalled.set_rcvhwm(1).unwrap();
+    stalled.set_rcvbuf(4096).unwrap();
+    stalled.connect(&ep.publish).unwrap();
+    stalled.set_subscribe(b"").unwrap();
+    // The closed-loop controller: decisions only.
+    let ctl = ctx.socket(zmq::SUB).unwrap();
+    ctl.set_rcvhwm(0).unwrap();
+    ctl.connect(&ep.publish).unwrap();
+    ctl.set_subscribe(auspex_proto::topic::DECISION.as_bytes())
+        .unwrap();
+    ctl.set_rcvtimeo(100).unwrap();
+    std::thread::sleep(Duration::from_millis(300));
+
+    let push = ctx.socket(zmq::PUSH).unwrap();
+    push.set_sndhwm(0).unwrap();
+    push.connect(&ep.ingest).unwrap();
+    let bt = (f.model.bin_width_s() * f.data.tick_rate_hz).round() as i64;
+    let msgs = dataset_messages(&f.data, "fast-acq", bt, bt * f.model.n_bins() as i64);
+    let n_trials = f.data.trials.len();
+    let sender = std::thread::spawn(move || {
+        for m in &msgs {
+            push.send(m.encode_to_vec(), 0).unwrap();
+        }
+        push
+    });
+    let mut decisions = Vec::new();
+    let t0 = Instant::now();
+    while decisions.len() < n_trials && t0.elapsed() < Duration::from_secs(60) {
+        if let Ok(parts) = ctl.recv_multipart(0) {
+            assert_eq!(parts[0], auspex_proto::topic::DECISION.as_bytes());
+            decisions.push(v1::Outbound::decode(parts[1].as_slice()).unwrap());
+        }
+    }
+    let _push = sender.join().unwrap();
+    let h = status(&ctx, &ep.control).health.unwrap();
+    rt.block_on(running.stop());
+    assert_eq!(
+        decisions.len(),
+        n_trials,
+        "every decision reached the controller"
+    );
+    let seqs: Vec<u64> = decisions.iter().map(|d| d.seq).collect();
+    assert_eq!(
+        seqs,
+        (1..=n_trials as u64).collect::<Vec<_>>(),
+        "decision sequence numbers without a gap"
+    );
+    assert!(
+        h.frames_out as usize > 100_000,
+        "the stalled subscriber had plenty to choke on"
+    );
+    drop(stalled);
+}
+
+#[test]
+fn control_answers_a_thousand_short_lived_clients_while_ingest_is_busy() {
+    // Regression: with zeromq 0.7's REP socket, control stopped answering for good after a few
+    // hundred one-shot REQ clients under ingest load; the daemon now serves control on ROUTER.
+    let _serial = serial();
+    let f = fixture(60);
+    let rt = runtime();
+    let running = rt
+        .block_on(auspexd::service::start(config(&f, None)))
+        .unwrap();
+    let ep = running.endpoints.clone();
+    let ctx = zmq::Context::new();
+    let bt = (f.model.bin_width_s() * f.data.tick_rate_hz).round() as i64;
+    let msgs = dataset_messages(&f.data, "busy", bt, bt * f.model.n_bins() as i64);
+    let (c2, ingest) = (ctx.clone(), ep.ingest.clone());
+    let sender = std::thread::spawn(move || {
+        let p = c2.socket(zmq::PUSH).unwrap();
+        p.connect(&ingest).unwrap();
+        for m in &msgs {
+            p.send(m.encode_to_vec(), 0).unwrap();
+            std::thread::sleep(Duration::from_micros(20));
+        }
+    });
+    for _ in 0..1000 {
+        let s = status(&ctx, &ep.control);
+        assert_eq!(s.stimuli, f.model.stimuli());
+    }
+    sender.join().unwrap();
     rt.block_on(running.stop());
 }

@@ -931,6 +931,11 @@ fn run_bins(
                 break;
             }
             t.cursor += 1;
+            // A trial opened before its onset (the onset announced ahead of the watermark)
+            // has a cursor placed before the spikes that arrived in between: not its spikes.
+            if tick < t.onset {
+                continue;
+            }
             let Some(u) = m.unit_index(unit) else {
                 continue;
             };

@@ -69,18 +69,34 @@ fn model_strategy() -> impl Strategy<Value = Arc<Model>> {
 }
 
 fn run(m: &Arc<Model>, dec: Decoder, spikes: &[(u32, i64)], step: i64) -> Frames {
+    run_announced(m, dec, spikes, step, -1)
+}
+
+/// Trial 2 (onset tick 5) is announced once the watermark reaches `announce`: before its onset
+/// (ahead of the data) or after it (late, within the spike history).
+fn run_announced(
+    m: &Arc<Model>,
+    dec: Decoder,
+    spikes: &[(u32, i64)],
+    step: i64,
+    announce: i64,
+) -> Frames {
     let mut cfg = EngineConfig::new(1000.0);
     cfg.decoder = dec;
     let mut e = Engine::new(m.clone(), cfg).unwrap();
     let mut out = Frames::default();
     e.open_trial(1, 0, None, &mut out).unwrap();
-    e.open_trial(2, 5, None, &mut out).unwrap();
     let end = 5 + m.n_bins() as i64;
     let mut sp: Vec<(u32, i64)> = spikes.to_vec();
     sp.sort_by_key(|s| s.1);
     let mut i = 0;
     let mut wm = -1;
+    let mut announced = false;
     while wm < end {
+        if !announced && wm >= announce {
+            e.open_trial(2, 5, None, &mut out).unwrap();
+            announced = true;
+        }
         let next = (wm + step).min(end);
         while i < sp.len() && sp[i].1 <= next {
             let _ = e.spike(sp[i].0 % m.n_units() as u32, sp[i].1);
@@ -88,6 +104,9 @@ fn run(m: &Arc<Model>, dec: Decoder, spikes: &[(u32, i64)], step: i64) -> Frames
         }
         e.advance(next, &mut out).unwrap();
         wm = next;
+    }
+    if !announced {
+        e.open_trial(2, 5, None, &mut out).unwrap();
     }
     out
 }
@@ -114,5 +133,22 @@ proptest! {
         let mut a = a.0; let mut b = b.0;
         a.sort_by_key(|x| (x.0, x.1)); b.sort_by_key(|x| (x.0, x.1));
         prop_assert_eq!(a, b);
+    }
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 64, .. ProptestConfig::default() })]
+
+    /// A task program may announce an onset ahead of the acquisition stream or a little after
+    /// it: the trial's frames must not depend on when the announcement arrived.
+    #[test]
+    fn announcing_an_onset_early_or_late_does_not_change_frames(m in model_strategy(), spikes in proptest::collection::vec((0u32..4, 0i64..40), 0..60), step in 1i64..9, announce in -1i64..45) {
+        for dec in Decoder::ALL {
+            let mut a = run(&m, dec, &spikes, step).0;
+            let mut b = run_announced(&m, dec, &spikes, step, announce).0;
+            a.sort_by_key(|x| (x.0, x.1));
+            b.sort_by_key(|x| (x.0, x.1));
+            prop_assert_eq!(a, b);
+        }
     }
 }

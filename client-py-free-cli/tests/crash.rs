@@ -1,0 +1,206 @@
+//! kill -9 during recording: the daemon runs as a child process (`auspex daemon`), a sender
+//! streams a session into it, and the process is killed without warning mid-stream. The
+//! recording must hold every message that was flushed, in order, byte for byte; a torn last
+//! record is reported and skipped, never fatal; and the recording is then usable as input to
+//! `fit` and `decode --session`.
+
+use auspex::live::status;
+use auspex::tables::Source;
+use auspex::wire::{dataset_messages, read_recording};
+use auspex_engine::fit::{plan, FitOptions};
+use auspex_engine::simulate::{simulate, Scenario, SimOptions};
+use auspex_engine::Model;
+use auspex_proto::v1;
+use prost::Message;
+use std::time::{Duration, Instant};
+use zeromq::{Socket, SocketSend};
+
+fn free_port() -> u16 {
+    std::net::TcpListener::bind(("127.0.0.1", 0))
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port()
+}
+
+fn small_scenario() -> Scenario {
+    let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();
+    let mut s: Scenario = toml::from_str(&text).unwrap();
+    s.units.truncate(6);
+    s.stimuli.truncate(3);
+    s
+}
+
+async fn wait_seq(control: &str, n: u64) {
+    let t0 = Instant::now();
+    loop {
+        if let Ok(s) = status(control).await {
+            if s.senders
+                .iter()
+                .any(|x| x.sender == "crash" && x.last_seq >= n)
+            {
+                return;
+            }
+        }
+        assert!(
+            t0.elapsed() < Duration::from_secs(30),
+            "daemon never took message {n}"
+        );
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+}
+
+#[test]
+fn kill_9_during_recording_loses_only_the_unflushed_tail() {
+    let dir = tempfile::tempdir().unwrap();
+    let sc = small_scenario();
+    let truth = Model::new(sc.true_model().unwrap()).unwrap();
+    let train = simulate(
+        &truth,
+        &SimOptions {
+            trials_per_stimulus: 8,
+            ..sc.sim_options()
+        },
+    );
+    let opts = FitOptions {
+        window_s: sc.window_ms / 1000.0,
+        ..FitOptions::default()
+    };
+    let spec = plan(&train, &opts).unwrap().fit_all();
+    let model_path = dir.path().join("m.apxm");
+    auspexd::model_file::save_model(&model_path, &spec, "crash test").unwrap();
+    let data = simulate(
+        &truth,
+        &SimOptions {
+            trials_per_stimulus: 30,
+            seed: 4242,
+            ..sc.sim_options()
+        },
+    );
+    let msgs = dataset_messages(&data, "crash", 1000, 250_000);
+    let half = msgs.len() / 2;
+
+    let ep = |p: u16| format!("tcp://127.0.0.1:{p}");
+    let (ingest, publish, control) = (ep(free_port()), ep(free_port()), ep(free_port()));
+    let recording = dir.path().join("s.apxs");
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_auspex"))
+        .args(["daemon", "--model"])
+        .arg(&model_path)
+        .args([
+            "--ingest",
+            &ingest,
+            "--publish",
+            &publish,
+            "--control",
+            &control,
+            "--task-ingest",
+            "",
+            "--record",
+        ])
+        .arg(&recording)
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap();
+
+    let rt = tokio::runtime::Runtime::new().unwrap();
+    let sent_before_kill = rt.block_on(async {
+        let t0 = Instant::now();
+        while status(&control).await.is_err() {
+            assert!(
+                t0.elapsed() < Duration::from_secs(20),
+                "daemon did not start"
+            );
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+        let mut push = zeromq::PushSocket::new();
+        push.connect(&ingest).await.unwrap();
+        for m in &msgs[..half] {
+            push.send(m.encode_to_vec().into()).await.unwrap();
+        }
+        wait_seq(&control, half as u64).await;
+        // Longer than the recorder's 100 ms flush period: the first half is on disk now.
+        tokio::time::sleep(Duration::from_millis(400)).await;
+        // Keep streaming and kill the process in the middle of it.
+        let mut sent = half;
+        for m in &msgs[half..half + (msgs.len() - half) / 2] {
+            push.send(m.encode_to_vec().into()).await.unwrap();
+            sent += 1;
+        }
+        tokio::time::sleep(Duration::from_millis(30)).await;
+        child.kill().unwrap(); // SIGKILL on Unix: no chance to flush
+        child.wait().unwrap();
+        sent
+    });
+
+    let rec = read_recording(&recording).expect("a killed daemon's recording must be readable");
+    assert_eq!(rec.undecodable, 0);
+    let n = rec.raw.len();
+    assert!(
+        n >= half,
+        "every message acknowledged and flushed before the kill is on disk: {n} < {half}"
+    );
+    assert!(n <= sent_before_kill);
+    for (i, raw) in rec.raw.iter().enumerate() {
+        assert_eq!(
+            raw,
+            &msgs[i].encode_to_vec(),
+            "record {i} is the {i}-th message sent, byte for byte"
+        );
+    }
+
+    // Cut the file inside its last record, as a crash mid-write would: the reader reports the
+    // torn tail and keeps every complete record before it.
+    let bytes = std::fs::read(&recording).unwrap();
+    let torn = dir.path().join("torn.apxs");
+    std::fs::write(&torn, &bytes[..bytes.len() - 3]).unwrap();
+    let t = read_recording(&torn).unwrap();
+    assert_eq!(t.raw.len(), n - 1);
+    assert!(t.torn_tail_bytes > 0);
+
+    // The recording is input for decode and fit, through the command line.
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_auspex"))
+        .args(["decode", "--model"])
+        .arg(&model_path)
+        .arg("--session")
+        .arg(&torn)
+        .arg("--out-dir")
+        .arg(dir.path().join("dec"))
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(out.status.success(), "decode --session failed: {stderr}");
+    assert!(stderr.contains("the last record is torn"), "{stderr}");
+    let decisions = std::fs::read_to_string(dir.path().join("dec/decisions.csv")).unwrap();
+    let expect = t
+        .messages
+        .iter()
+        .filter(|(_, m)| matches!(m.body, Some(v1::inbound::Body::Onset(_))))
+        .count();
+    assert_eq!(
+        decisions.lines().count() - 1,
+        expect,
+        "one decision per recorded onset"
+    );
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_auspex"))
+        .args(["fit", "--quiet", "--window-ms", "250", "--session"])
+        .arg(&recording)
+        .arg("--out")
+        .arg(dir.path().join("refit.apxm"))
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "fit --session failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let (_, refit) = auspexd::model_file::load_model(&dir.path().join("refit.apxm")).unwrap();
+    assert_eq!(refit.units(), truth.units());
+
+    // The library path agrees: Source::Session reads the same trials.
+    let (d, _) = Source::Session(recording.clone()).load(0.25).unwrap();
+    assert!(d.trials.len() >= expect);
+    for (a, b) in d.trials.iter().zip(&data.trials) {
+        assert_eq!((a.id, a.onset, &a.stimulus), (b.id, b.onset, &b.stimulus));
+    }
+}
