@@ -263,3 +263,70 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
     export_cmd(&model_path, Some(&out_dir.join("demo-model.json")))?;
     Ok(model_path)
 }
+
+/// Settings of `validate` from the command line.
+#[derive(Clone, Debug)]
+pub struct ValidateArgs {
+    /// Window, ms.
+    pub window_ms: f64,
+    /// Bin, ms.
+    pub bin_ms: f64,
+    /// Count families.
+    pub families: String,
+    /// Folds.
+    pub folds: usize,
+    /// Shuffles.
+    pub shuffles: usize,
+    /// Seed.
+    pub seed: u64,
+    /// Headline threshold.
+    pub threshold: f64,
+    /// Minimum decision time, ms.
+    pub min_time_ms: f64,
+}
+
+/// `validate`: writes `report.html` and `validation.json` to `out_dir`, prints the summary.
+pub fn validate_cmd(
+    source: &Source,
+    out_dir: &Path,
+    a: &ValidateArgs,
+    quiet: bool,
+) -> anyhow::Result<crate::validate::Validation> {
+    if a.shuffles < 1 {
+        bail!("--shuffles must be at least 1 (200 or more for a p-value worth quoting)");
+    }
+    let opts = crate::validate::ValidateOptions {
+        folds: a.folds,
+        shuffles: a.shuffles,
+        seed: a.seed,
+        fit: FitOptions {
+            bin_width_s: a.bin_ms / 1000.0,
+            window_s: a.window_ms / 1000.0,
+            families: parse_families(&a.families)?,
+            prior_from_frequencies: false,
+            bandwidth: Default::default(),
+        },
+        threshold: a.threshold,
+        min_time_ms: a.min_time_ms,
+        progress: std::io::stderr().is_terminal() && !quiet,
+    };
+    let (data, report) = source.load(opts.fit.window_s)?;
+    eprintln!("{report}");
+    let (v, extras) = crate::validate::validate(&data, &source.describe(), &opts)?;
+    std::fs::create_dir_all(out_dir)
+        .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;
+    let html_path = out_dir.join("report.html");
+    std::fs::write(&html_path, crate::report::html(&v, &extras))
+        .with_context(|| format!("{}: cannot write", html_path.display()))?;
+    let json_path = out_dir.join("validation.json");
+    std::fs::write(&json_path, serde_json::to_string_pretty(&v)?)
+        .with_context(|| format!("{}: cannot write", json_path.display()))?;
+    print!("{}", crate::validate::summary_table(&v));
+    eprintln!(
+        "validated in {:.1} s; wrote {} (open it in a browser) and {}",
+        v.seconds,
+        html_path.display(),
+        json_path.display()
+    );
+    Ok(v)
+}

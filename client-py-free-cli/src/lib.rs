@@ -10,8 +10,10 @@ pub mod fitting;
 pub mod live;
 pub mod monitor;
 pub mod offline;
+pub mod report;
 pub mod session;
 pub mod tables;
+pub mod validate;
 pub mod wire;
 
 /// Where the bundled demo data lives (the repository's `demo-data/`).

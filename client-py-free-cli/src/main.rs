@@ -146,6 +146,41 @@ enum Cmd {
         #[arg(long, default_value = ".")]
         out_dir: PathBuf,
     },
+    /// Cross-validate decoding and write an HTML report, a JSON summary and a terminal table
+    Validate {
+        #[command(flatten)]
+        tables: Tables,
+        /// Output directory for report.html and validation.json
+        #[arg(long, default_value = "auspex-validation")]
+        out_dir: PathBuf,
+        /// Window after onset, ms
+        #[arg(long, default_value_t = 250.0)]
+        window_ms: f64,
+        /// Bin width, ms
+        #[arg(long, default_value_t = 1.0)]
+        bin_ms: f64,
+        /// Count families to choose among (as for fit)
+        #[arg(long, default_value = "all")]
+        families: String,
+        /// Cross-validation folds (stratified by stimulus)
+        #[arg(long, default_value_t = 5)]
+        folds: usize,
+        /// Label shuffles for the information null
+        #[arg(long, default_value_t = 200)]
+        shuffles: usize,
+        /// Seed for folds, shuffles and the rescaling randomisation
+        #[arg(long, default_value_t = 1)]
+        seed: u64,
+        /// Threshold for the headline decision figures
+        #[arg(long, default_value_t = 0.9)]
+        threshold: f64,
+        /// Minimum time before a threshold decision, ms
+        #[arg(long, default_value_t = 20.0)]
+        min_time_ms: f64,
+        /// No progress bar
+        #[arg(long)]
+        quiet: bool,
+    },
     /// Write a model as interchange JSON (the numbers the engine uses)
     Export {
         /// Model file
@@ -331,6 +366,34 @@ fn main() {
             commands::decode_cmd(&model, &tables.source(), &out_dir, &args)
             .map(|_| ())
         }
+        Cmd::Validate {
+            tables,
+            out_dir,
+            window_ms,
+            bin_ms,
+            families,
+            folds,
+            shuffles,
+            seed,
+            threshold,
+            min_time_ms,
+            quiet,
+        } => commands::validate_cmd(
+            &tables.source(),
+            &out_dir,
+            &commands::ValidateArgs {
+                window_ms,
+                bin_ms,
+                families,
+                folds,
+                shuffles,
+                seed,
+                threshold,
+                min_time_ms,
+            },
+            quiet,
+        )
+        .map(|_| ()),
         Cmd::Export { model, out } => commands::export_cmd(&model, out.as_deref()),
         Cmd::Inspect { model } => commands::inspect_cmd(&model),
         Cmd::Demo { out_dir, quiet, speed, fast, plain, offline_only } => commands::demo_offline(&out_dir, quiet).and_then(|model| {

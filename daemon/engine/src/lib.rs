@@ -20,6 +20,7 @@ pub mod simulate;
 pub mod special;
 pub mod stats;
 pub mod tally;
+pub mod validation;
 
 pub use count::{CountDist, CountFamily, CountParams};
 pub use data::{Dataset, Trial};

@@ -1,0 +1,865 @@
+//! The validation report: one self-contained HTML page with inline SVG (no scripts, no network),
+//! drawn from a [`Validation`] and its [`Extras`]. Small hand-written SVG primitives keep the
+//! page light and identical on every machine.
+
+use crate::validate::{Extras, Validation};
+use auspex_engine::stats::ks_critical;
+use std::fmt::Write;
+
+const PALETTE: [&str; 10] = [
+    "#1f77b4", "#d62728", "#2ca02c", "#9467bd", "#ff7f0e", "#17becf", "#8c564b", "#e377c2",
+    "#7f7f7f", "#bcbd22",
+];
+const DECODER_COLOURS: [&str; 3] = ["#1f4e9c", "#2ca02c", "#d62728"];
+
+fn colour(i: usize) -> &'static str {
+    PALETTE[i % PALETTE.len()]
+}
+
+fn esc(s: &str) -> String {
+    s.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
+        .replace('"', "&quot;")
+}
+
+/// A plotting area with data ranges mapped to pixels.
+struct Plot {
+    w: f64,
+    h: f64,
+    left: f64,
+    right: f64,
+    top: f64,
+    bottom: f64,
+    x: (f64, f64),
+    y: (f64, f64),
+    svg: String,
+}
+
+fn nice_ticks(lo: f64, hi: f64, n: usize) -> Vec<f64> {
+    let span = (hi - lo).abs().max(1e-12);
+    let raw = span / n.max(1) as f64;
+    let mag = 10f64.powf(raw.log10().floor());
+    let step = [1.0, 2.0, 2.5, 5.0, 10.0]
+        .iter()
+        .map(|m| m * mag)
+        .find(|s| span / s <= n as f64)
+        .unwrap_or(10.0 * mag);
+    let mut v = Vec::new();
+    let mut t = (lo / step).ceil() * step;
+    while t <= hi + 1e-9 * span {
+        v.push(if t.abs() < 1e-12 { 0.0 } else { t });
+        t += step;
+    }
+    v
+}
+
+fn fmt_tick(t: f64) -> String {
+    if t.fract().abs() < 1e-9 {
+        format!("{t:.0}")
+    } else if (t * 10.0).fract().abs() < 1e-9 {
+        format!("{t:.1}")
+    } else {
+        format!("{t:.2}")
+    }
+}
+
+impl Plot {
+    fn new(w: f64, h: f64, x: (f64, f64), y: (f64, f64)) -> Self {
+        Plot {
+            w,
+            h,
+            left: 46.0,
+            right: 10.0,
+            top: 22.0,
+            bottom: 34.0,
+            x,
+            y,
+            svg: String::new(),
+        }
+    }
+    fn sx(&self, x: f64) -> f64 {
+        self.left
+            + (x - self.x.0) / (self.x.1 - self.x.0).max(1e-12) * (self.w - self.left - self.right)
+    }
+    fn sy(&self, y: f64) -> f64 {
+        self.h
+            - self.bottom
+            - (y - self.y.0) / (self.y.1 - self.y.0).max(1e-12) * (self.h - self.top - self.bottom)
+    }
+    fn axes(&mut self, title: &str, xlabel: &str, ylabel: &str) {
+        let (x0, x1, y0, y1) = (
+            self.sx(self.x.0),
+            self.sx(self.x.1),
+            self.sy(self.y.0),
+            self.sy(self.y.1),
+        );
+        let _ = write!(
+            self.svg,
+            r##"<rect x="{x0:.1}" y="{y1:.1}" width="{:.1}" height="{:.1}" fill="#fbfbfd" stroke="#999" stroke-width="0.6"/>"##,
+            x1 - x0,
+            y0 - y1
+        );
+        for t in nice_ticks(self.x.0, self.x.1, 6) {
+            let px = self.sx(t);
+            let _ = write!(
+                self.svg,
+                r##"<line x1="{px:.1}" y1="{y0:.1}" x2="{px:.1}" y2="{:.1}" stroke="#999"/><text x="{px:.1}" y="{:.1}" class="tk" text-anchor="middle">{}</text>"##,
+                y0 + 4.0,
+                y0 + 14.0,
+                fmt_tick(t)
+            );
+        }
+        for t in nice_ticks(self.y.0, self.y.1, 5) {
+            let py = self.sy(t);
+            let _ = write!(
+                self.svg,
+                r##"<line x1="{:.1}" y1="{py:.1}" x2="{x0:.1}" y2="{py:.1}" stroke="#999"/><line x1="{x0:.1}" y1="{py:.1}" x2="{x1:.1}" y2="{py:.1}" stroke="#eee"/><text x="{:.1}" y="{:.1}" class="tk" text-anchor="end">{}</text>"##,
+                x0 - 4.0,
+                x0 - 6.0,
+                py + 3.5,
+                fmt_tick(t)
+            );
+        }
+        let _ = write!(
+            self.svg,
+            r##"<text x="{:.1}" y="14" class="tt">{}</text><text x="{:.1}" y="{:.1}" class="lb" text-anchor="middle">{}</text><text x="11" y="{:.1}" class="lb" text-anchor="middle" transform="rotate(-90 11 {:.1})">{}</text>"##,
+            x0,
+            esc(title),
+            (x0 + x1) / 2.0,
+            self.h - 4.0,
+            esc(xlabel),
+            (y0 + y1) / 2.0,
+            (y0 + y1) / 2.0,
+            esc(ylabel)
+        );
+    }
+    fn line(&mut self, pts: &[(f64, f64)], col: &str, width: f64, dash: bool) {
+        if pts.is_empty() {
+            return;
+        }
+        let d: Vec<String> = pts
+            .iter()
+            .map(|(x, y)| format!("{:.1},{:.1}", self.sx(*x), self.sy(*y)))
+            .collect();
+        let _ = write!(
+            self.svg,
+            r##"<polyline fill="none" stroke="{col}" stroke-width="{width}"{} points="{}"/>"##,
+            if dash {
+                r#" stroke-dasharray="4 3""#
+            } else {
+                ""
+            },
+            d.join(" ")
+        );
+    }
+    fn band(&mut self, xs: &[f64], lo: &[f64], hi: &[f64], col: &str) {
+        let mut d: Vec<String> = xs
+            .iter()
+            .zip(hi)
+            .map(|(x, y)| format!("{:.1},{:.1}", self.sx(*x), self.sy(*y)))
+            .collect();
+        d.extend(
+            xs.iter()
+                .zip(lo)
+                .rev()
+                .map(|(x, y)| format!("{:.1},{:.1}", self.sx(*x), self.sy(*y))),
+        );
+        let _ = write!(
+            self.svg,
+            r##"<polygon fill="{col}" fill-opacity="0.15" stroke="none" points="{}"/>"##,
+            d.join(" ")
+        );
+    }
+    fn bars(&mut self, edges: &[f64], heights: &[f64], col: &str, opacity: f64) {
+        for (i, h) in heights.iter().enumerate() {
+            let (x0, x1) = (self.sx(edges[i]), self.sx(edges[i + 1]));
+            let (y0, y1) = (self.sy(0.0f64.max(self.y.0)), self.sy(*h));
+            let _ = write!(
+                self.svg,
+                r##"<rect x="{x0:.1}" y="{y1:.1}" width="{:.1}" height="{:.1}" fill="{col}" fill-opacity="{opacity}"/>"##,
+                (x1 - x0 - 0.5).max(0.5),
+                (y0 - y1).max(0.0)
+            );
+        }
+    }
+    fn dot(&mut self, x: f64, y: f64, r: f64, col: &str, title: &str) {
+        let _ = write!(
+            self.svg,
+            r##"<circle cx="{:.1}" cy="{:.1}" r="{r}" fill="{col}"><title>{}</title></circle>"##,
+            self.sx(x),
+            self.sy(y),
+            esc(title)
+        );
+    }
+    fn text(&mut self, x: f64, y: f64, s: &str, col: &str) {
+        let _ = write!(
+            self.svg,
+            r##"<text x="{:.1}" y="{:.1}" class="tk" fill="{col}">{}</text>"##,
+            self.sx(x),
+            self.sy(y),
+            esc(s)
+        );
+    }
+    fn legend(&mut self, items: &[(String, &str)]) {
+        let mut y = self.top + 12.0;
+        let x = self.w - self.right - 150.0;
+        for (label, col) in items {
+            let _ = write!(
+                self.svg,
+                r##"<line x1="{x:.1}" y1="{:.1}" x2="{:.1}" y2="{:.1}" stroke="{col}" stroke-width="2.5"/><text x="{:.1}" y="{:.1}" class="tk">{}</text>"##,
+                y - 3.5,
+                x + 16.0,
+                y - 3.5,
+                x + 20.0,
+                y,
+                esc(label)
+            );
+            y += 13.0;
+        }
+    }
+    fn finish(self) -> String {
+        format!(
+            r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" viewBox="0 0 {w} {h}">{}</svg>"#,
+            self.svg,
+            w = self.w,
+            h = self.h
+        )
+    }
+}
+
+fn heatmap(title: &str, conf: &[Vec<u64>], names: &[String]) -> String {
+    let n = names.len();
+    let cell = (300.0 / n as f64).clamp(12.0, 36.0);
+    let (left, top) = (60.0, 40.0);
+    let size = cell * n as f64;
+    let (w, h) = (left + size + 20.0, top + size + 40.0);
+    let mut s = format!(
+        r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}"><text x="{left}" y="14" class="tt">{}</text>"#,
+        esc(title)
+    );
+    for (i, row) in conf.iter().enumerate() {
+        let tot: u64 = row.iter().sum::<u64>().max(1);
+        for (j, &c) in row.iter().enumerate() {
+            let p = c as f64 / tot as f64;
+            let shade = (255.0 * (1.0 - p)).round() as u8;
+            let fill = if i == j {
+                format!("rgb({shade},{shade},255)")
+            } else {
+                format!("rgb(255,{shade},{shade})")
+            };
+            let _ = write!(
+                s,
+                r##"<rect x="{:.1}" y="{:.1}" width="{cell:.1}" height="{cell:.1}" fill="{fill}" stroke="#fff"><title>presented {} → decoded {}: {c} of {tot} ({:.0}%)</title></rect>"##,
+                left + j as f64 * cell,
+                top + i as f64 * cell,
+                esc(&names[i]),
+                esc(&names[j]),
+                100.0 * p
+            );
+            if cell >= 22.0 && c > 0 {
+                let _ = write!(
+                    s,
+                    r##"<text x="{:.1}" y="{:.1}" class="tk" text-anchor="middle">{c}</text>"##,
+                    left + (j as f64 + 0.5) * cell,
+                    top + (i as f64 + 0.6) * cell
+                );
+            }
+        }
+        let _ = write!(
+            s,
+            r##"<text x="{:.1}" y="{:.1}" class="tk" text-anchor="end">{}</text>"##,
+            left - 4.0,
+            top + (i as f64 + 0.65) * cell,
+            esc(&names[i])
+        );
+        let _ = write!(
+            s,
+            r##"<text x="{:.1}" y="{:.1}" class="tk" text-anchor="middle">{}</text>"##,
+            left + (i as f64 + 0.5) * cell,
+            top - 4.0,
+            esc(&names[i])
+        );
+    }
+    let _ = write!(
+        s,
+        r##"<text x="{:.1}" y="{:.1}" class="lb" text-anchor="middle">rows: presented · columns: decoded</text></svg>"##,
+        left + size / 2.0,
+        top + size + 18.0
+    );
+    s
+}
+
+fn histogram(values: &[f64], lo: f64, hi: f64, n: usize) -> (Vec<f64>, Vec<f64>) {
+    let edges: Vec<f64> = (0..=n)
+        .map(|i| lo + (hi - lo) * i as f64 / n as f64)
+        .collect();
+    let mut h = vec![0.0; n];
+    for &v in values {
+        let i = (((v - lo) / (hi - lo)) * n as f64).floor();
+        if i >= 0.0 {
+            h[(i as usize).min(n - 1)] += 1.0;
+        }
+    }
+    (edges, h)
+}
+
+fn accuracy_plot(v: &Validation) -> String {
+    let mut p = Plot::new(620.0, 320.0, (0.0, v.window_ms), (0.0, 1.0));
+    p.axes(
+        "Accuracy against time since onset (held-out trials, 95% Clopper–Pearson bands)",
+        "ms after onset",
+        "accuracy",
+    );
+    for (d, dr) in v.decoders.iter().enumerate() {
+        let xs: Vec<f64> = dr.curve.iter().map(|c| c.t_ms).collect();
+        let lo: Vec<f64> = dr.curve.iter().map(|c| c.lo).collect();
+        let hi: Vec<f64> = dr.curve.iter().map(|c| c.hi).collect();
+        p.band(&xs, &lo, &hi, DECODER_COLOURS[d % 3]);
+        let pts: Vec<(f64, f64)> = dr.curve.iter().map(|c| (c.t_ms, c.accuracy)).collect();
+        p.line(&pts, DECODER_COLOURS[d % 3], 2.0, false);
+        if let Some(t) = dr.earliest_reliable_ms {
+            let y = dr.curve[((t / v.bin_ms) as usize)
+                .saturating_sub(1)
+                .min(dr.curve.len() - 1)]
+            .accuracy;
+            p.dot(
+                t,
+                y,
+                4.0,
+                DECODER_COLOURS[d % 3],
+                &format!("{}: reliably above chance from {t:.0} ms", dr.decoder),
+            );
+        }
+    }
+    p.line(
+        &[(0.0, v.chance), (v.window_ms, v.chance)],
+        "#555",
+        1.2,
+        true,
+    );
+    p.text(v.window_ms * 0.01, v.chance + 0.02, "chance", "#555");
+    let items: Vec<(String, &str)> = v
+        .decoders
+        .iter()
+        .enumerate()
+        .map(|(d, dr)| (dr.decoder.clone(), DECODER_COLOURS[d % 3]))
+        .collect();
+    p.legend(&items);
+    p.finish()
+}
+
+fn tradeoff_plot(v: &Validation) -> String {
+    let mut p = Plot::new(420.0, 320.0, (0.0, v.window_ms), (0.0, 1.0));
+    p.axes(
+        "Decisions: accuracy against mean decision time",
+        "mean decision time (ms)",
+        "decision accuracy",
+    );
+    for (d, dr) in v.decoders.iter().enumerate() {
+        let pts: Vec<(f64, f64)> = dr
+            .tradeoff
+            .iter()
+            .map(|t| (t.mean_time_ms, t.accuracy))
+            .collect();
+        p.line(&pts, DECODER_COLOURS[d % 3], 1.5, false);
+        for t in &dr.tradeoff {
+            p.dot(
+                t.mean_time_ms,
+                t.accuracy,
+                3.0,
+                DECODER_COLOURS[d % 3],
+                &format!(
+                    "{} θ={}: {:.1}% [{:.1}, {:.1}] at {:.1} ms mean, {:.0}% before the window end",
+                    dr.decoder,
+                    t.threshold,
+                    100.0 * t.accuracy,
+                    100.0 * t.lo,
+                    100.0 * t.hi,
+                    t.mean_time_ms,
+                    100.0 * t.early_share
+                ),
+            );
+        }
+    }
+    p.line(
+        &[(0.0, v.chance), (v.window_ms, v.chance)],
+        "#555",
+        1.2,
+        true,
+    );
+    let items: Vec<(String, &str)> = v
+        .decoders
+        .iter()
+        .enumerate()
+        .map(|(d, dr)| (dr.decoder.clone(), DECODER_COLOURS[d % 3]))
+        .collect();
+    p.legend(&items);
+    p.finish()
+}
+
+fn decision_time_plot(v: &Validation) -> String {
+    let d = &v.decoders[0];
+    let (edges, h) = histogram(&d.decision_times_ms, 0.0, v.window_ms, 50);
+    let top = h.iter().cloned().fold(1.0, f64::max);
+    let mut p = Plot::new(420.0, 320.0, (0.0, v.window_ms), (0.0, top * 1.1));
+    p.axes(
+        &format!("Decision times, {} at θ = {}", d.decoder, v.threshold),
+        "ms after onset",
+        "trials",
+    );
+    p.bars(&edges, &h, DECODER_COLOURS[0], 0.7);
+    p.finish()
+}
+
+fn null_plot(title: &str, null: &[f64], observed: f64) -> String {
+    let hi = null.iter().cloned().fold(observed, f64::max) * 1.1 + 1e-3;
+    let (edges, h) = histogram(null, 0.0, hi, 30);
+    let top = h.iter().cloned().fold(1.0, f64::max);
+    let mut p = Plot::new(420.0, 260.0, (0.0, hi), (0.0, top * 1.15));
+    p.axes(title, "bits (bias-corrected)", "shuffles");
+    p.bars(&edges, &h, "#888", 0.7);
+    p.line(
+        &[(observed, 0.0), (observed, top * 1.1)],
+        "#d62728",
+        2.0,
+        false,
+    );
+    p.text(
+        observed,
+        top * 1.05,
+        &format!(" observed {observed:.3}"),
+        "#d62728",
+    );
+    p.finish()
+}
+
+fn units_plot(v: &Validation) -> String {
+    let n = v.units_ranked.len();
+    let top = v
+        .units_ranked
+        .iter()
+        .map(|u| u.info.bits.max(u.info.null_95))
+        .fold(0.05, f64::max)
+        * 1.1;
+    let mut p = Plot::new(
+        (60.0 + 18.0 * n as f64).max(420.0),
+        280.0,
+        (0.0, n as f64),
+        (0.0, top),
+    );
+    p.axes(
+        "Units ranked by single-unit information (red tick: shuffle-null 95th percentile)",
+        "unit (rank order)",
+        "bits",
+    );
+    for (i, u) in v.units_ranked.iter().enumerate() {
+        let col = if u.info.p_value < 0.05 {
+            "#1f4e9c"
+        } else {
+            "#aaa"
+        };
+        p.bars(&[i as f64 + 0.1, i as f64 + 0.9], &[u.info.bits], col, 0.85);
+        p.line(
+            &[
+                (i as f64 + 0.1, u.info.null_95),
+                (i as f64 + 0.9, u.info.null_95),
+            ],
+            "#d62728",
+            2.0,
+            false,
+        );
+        p.text(i as f64 + 0.15, -top * 0.06, &u.unit.to_string(), "#333");
+        p.dot(
+            i as f64 + 0.5,
+            u.info.bits,
+            0.1,
+            col,
+            &format!(
+                "unit {}: {:.3} bits, p = {:.3}, accuracy {:.1}%",
+                u.unit,
+                u.info.bits,
+                u.info.p_value,
+                100.0 * u.accuracy
+            ),
+        );
+    }
+    p.finish()
+}
+
+fn trajectories_plot(v: &Validation, x: &Extras) -> String {
+    // One example trial per stimulus (the first few stimuli), order-statistics decoder.
+    let ns = v.stimuli.len();
+    let mut out = String::new();
+    for s in 0..ns.min(4) {
+        let Some(i) = x.labels.iter().position(|&l| l == s) else {
+            continue;
+        };
+        let tr = &x.trajectories[0][i];
+        let nb = tr.len() / ns;
+        let mut p = Plot::new(300.0, 200.0, (0.0, v.window_ms), (0.0, 1.0));
+        p.axes(
+            &format!("trial {} · presented {}", x.data.trials[i].id, v.stimuli[s]),
+            "ms",
+            "posterior",
+        );
+        for k in 0..ns {
+            let pts: Vec<(f64, f64)> = (0..nb)
+                .map(|b| ((b + 1) as f64 * v.bin_ms, tr[b * ns + k] as f64))
+                .collect();
+            p.line(&pts, colour(k), if k == s { 2.5 } else { 1.0 }, k != s);
+        }
+        p.line(
+            &[(0.0, v.threshold), (v.window_ms, v.threshold)],
+            "#555",
+            0.8,
+            true,
+        );
+        out += &p.finish();
+    }
+    out
+}
+
+fn unit_section(v: &Validation, x: &Extras, ur: &crate::validate::UnitReport) -> String {
+    let m = &x.full_model;
+    let Some(u) = m.unit_index(ur.unit) else {
+        return String::new();
+    };
+    let ns = v.stimuli.len();
+    let nb = m.n_bins();
+    let bw = v.bin_ms;
+    let bin_ticks = (bw / 1000.0 * x.data.tick_rate_hz).round() as i64;
+    let w = x.data.windows(&[ur.unit], bin_ticks, nb);
+    let mut s = String::new();
+    let _ = write!(s, "<details><summary>unit {} — {:.3} bits (p = {:.3}), single-unit accuracy {:.1}%{}</summary><div class=row>",
+        ur.unit, ur.info.bits, ur.info.p_value, 100.0 * ur.accuracy,
+        if ur.cells.iter().any(|c| !c.ks_pass) { " · <b class=warn>goodness of fit flagged</b>" } else { "" });
+    // Raster: up to 12 trials per stimulus, grouped by stimulus.
+    let per = 12usize;
+    let rows = ns * per;
+    let mut p = Plot::new(
+        330.0,
+        60.0 + 2.6 * rows as f64,
+        (0.0, v.window_ms),
+        (0.0, rows as f64),
+    );
+    p.axes(
+        "raster (12 trials per stimulus)",
+        "ms after onset",
+        "trials",
+    );
+    for st in 0..ns {
+        let trials: Vec<usize> = (0..x.labels.len())
+            .filter(|&i| x.labels[i] == st)
+            .take(per)
+            .collect();
+        for (r, &i) in trials.iter().enumerate() {
+            let y = (rows - st * per - r) as f64 - 0.5;
+            for t in &w.times[0][i] {
+                let (px, py) = (p.sx(t * bw), p.sy(y));
+                let _ = write!(
+                    p.svg,
+                    r##"<line x1="{px:.1}" y1="{:.1}" x2="{px:.1}" y2="{:.1}" stroke="{}" stroke-width="1"/>"##,
+                    py - 1.1,
+                    py + 1.1,
+                    colour(st)
+                );
+            }
+        }
+    }
+    s += &p.finish();
+    // PSTH vs fitted density, per stimulus, in spikes/s.
+    let nbins_psth = (nb / 5).max(1);
+    let mut peak: f64 = 1.0;
+    let mut psth = Vec::new();
+    for st in 0..ns {
+        let trials: Vec<usize> = (0..x.labels.len()).filter(|&i| x.labels[i] == st).collect();
+        let times: Vec<f64> = trials
+            .iter()
+            .flat_map(|&i| w.times[0][i].iter().map(|t| t * bw))
+            .collect();
+        let (edges, mut h) = histogram(&times, 0.0, v.window_ms, nbins_psth);
+        let width_s = v.window_ms / nbins_psth as f64 / 1000.0;
+        h.iter_mut()
+            .for_each(|c| *c /= trials.len().max(1) as f64 * width_s);
+        let mean = m.count(u, st).mean();
+        let fit: Vec<(f64, f64)> = m
+            .timing(u, st)
+            .iter()
+            .enumerate()
+            .map(|(b, q)| ((b as f64 + 0.5) * bw, mean * q / (bw / 1000.0)))
+            .collect();
+        peak = peak
+            .max(h.iter().cloned().fold(0.0, f64::max))
+            .max(fit.iter().map(|f| f.1).fold(0.0, f64::max));
+        psth.push((edges, h, fit));
+    }
+    let mut p = Plot::new(330.0, 250.0, (0.0, v.window_ms), (0.0, peak * 1.05));
+    p.axes(
+        "PSTH (bars) and fitted spike density (lines)",
+        "ms after onset",
+        "spikes/s",
+    );
+    for (st, (edges, h, fit)) in psth.iter().enumerate() {
+        p.bars(edges, h, colour(st), 0.18);
+        p.line(fit, colour(st), 1.6, false);
+    }
+    let items: Vec<(String, &str)> = v
+        .stimuli
+        .iter()
+        .enumerate()
+        .map(|(i, n)| (n.clone(), colour(i)))
+        .collect();
+    p.legend(&items[..items.len().min(10)]);
+    s += &p.finish();
+    // Count histograms with the fitted distributions.
+    let maxc = (0..x.labels.len())
+        .map(|i| w.counts[0][i])
+        .max()
+        .unwrap_or(0)
+        .max(3) as usize
+        + 1;
+    let mut p = Plot::new(330.0, 250.0, (0.0, maxc as f64), (0.0, 1.0));
+    let mut top: f64 = 0.05;
+    let mut lines = Vec::new();
+    for st in 0..ns {
+        let trials: Vec<usize> = (0..x.labels.len()).filter(|&i| x.labels[i] == st).collect();
+        let mut h = vec![0.0; maxc];
+        for &i in &trials {
+            h[(w.counts[0][i] as usize).min(maxc - 1)] += 1.0 / trials.len().max(1) as f64;
+        }
+        let pmf: Vec<(f64, f64)> = (0..maxc)
+            .map(|n| (n as f64 + 0.5, m.count(u, st).ln_pmf(n as u32).exp()))
+            .collect();
+        top = top
+            .max(h.iter().cloned().fold(0.0, f64::max))
+            .max(pmf.iter().map(|x| x.1).fold(0.0, f64::max));
+        lines.push((h, pmf));
+    }
+    p.y = (0.0, top * 1.05);
+    p.axes(
+        "window counts (bars) and fitted distributions (lines)",
+        "spikes in the window",
+        "share of trials",
+    );
+    let edges: Vec<f64> = (0..=maxc).map(|n| n as f64).collect();
+    for (st, (h, pmf)) in lines.iter().enumerate() {
+        p.bars(&edges, h, colour(st), 0.15);
+        p.line(pmf, colour(st), 1.5, false);
+    }
+    s += &p.finish();
+    // KS plot: empirical CDF of rescaled intervals against the uniform, with the 95% band.
+    let mut p = Plot::new(330.0, 250.0, (0.0, 1.0), (0.0, 1.0));
+    p.axes(
+        "time-rescaling KS plot (held out)",
+        "model quantile",
+        "empirical CDF",
+    );
+    let nmin = ur
+        .cells
+        .iter()
+        .map(|c| c.ks_n)
+        .filter(|&n| n > 0)
+        .min()
+        .unwrap_or(0);
+    if nmin > 0 {
+        let c = ks_critical(nmin, 0.05);
+        p.line(&[(0.0, c), (1.0 - c, 1.0)], "#888", 1.0, true);
+        p.line(&[(c, 0.0), (1.0, 1.0 - c)], "#888", 1.0, true);
+    }
+    p.line(&[(0.0, 0.0), (1.0, 1.0)], "#444", 0.8, false);
+    for st in 0..ns {
+        let mut z = x.rescaled[u * ns + st].clone();
+        if z.is_empty() {
+            continue;
+        }
+        z.sort_by(|a, b| a.total_cmp(b));
+        let n = z.len() as f64;
+        let step = (z.len() / 200).max(1);
+        let pts: Vec<(f64, f64)> = z
+            .iter()
+            .enumerate()
+            .step_by(step)
+            .map(|(i, &q)| (q, (i as f64 + 0.5) / n))
+            .collect();
+        p.line(&pts, colour(st), 1.3, false);
+    }
+    s += &p.finish();
+    s += "</div><table><tr><th>stimulus</th><th>trials</th><th>mean count</th><th>variance</th><th>Fano [95%]</th><th>family</th><th>KS D</th><th>95% critical</th><th>intervals</th><th>fit</th></tr>";
+    for c in &ur.cells {
+        let fano = c
+            .fano
+            .map(|(f, lo, hi)| format!("{f:.2} [{lo:.2}, {hi:.2}]"))
+            .unwrap_or_else(|| "—".into());
+        let _ = write!(s, "<tr><td>{}</td><td>{}</td><td>{:.2}</td><td>{:.2}</td><td>{fano}</td><td>{}</td><td>{:.3}</td><td>{:.3}</td><td>{}</td><td>{}</td></tr>",
+            esc(&c.stimulus), c.n_trials, c.mean, c.variance, esc(&c.family), c.ks_d, c.ks_critical, c.ks_n,
+            if c.ks_n < 5 { "untested" } else if c.ks_pass { "ok" } else { "<b class=warn>outside band</b>" });
+    }
+    s += "</table></details>";
+    s
+}
+
+/// The whole page.
+pub fn html(v: &Validation, x: &Extras) -> String {
+    let mut s = String::new();
+    let _ = write!(
+        s,
+        r#"<!DOCTYPE html>
+<html lang="en"><head><meta charset="utf-8"><title>Auspex validation — {src}</title>
+<style>
+body{{font-family:system-ui,-apple-system,"Segoe UI",sans-serif;margin:24px auto;max-width:1400px;color:#222;padding:0 16px}}
+h1{{font-size:22px;margin-bottom:4px}} h2{{font-size:17px;margin-top:28px;border-bottom:1px solid #ddd;padding-bottom:4px}}
+.sub{{color:#666;font-size:13px}} .row{{display:flex;flex-wrap:wrap;gap:14px;align-items:flex-start}}
+table{{border-collapse:collapse;font-size:13px;margin:8px 0}} td,th{{border:1px solid #ddd;padding:3px 7px;text-align:right}} th{{background:#f3f4f8}}
+td:first-child,th:first-child{{text-align:left}} .warn{{color:#b00}} .ok{{color:#060}}
+svg{{background:#fff}} .tk{{font-size:10px;fill:#333}} .lb{{font-size:11px;fill:#333}} .tt{{font-size:12px;font-weight:600;fill:#222}}
+details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10px}} summary{{cursor:pointer;font-size:14px}}
+.big{{font-size:28px;font-weight:600}} .card{{border:1px solid #e3e3e8;border-radius:8px;padding:10px 16px;min-width:190px}}
+</style></head><body>
+<h1>Auspex validation report</h1>
+<div class=sub>{src} · {trials} labelled trials · {nu} units × {ns} stimuli · window {win} ms in {bin} ms bins · {folds}-fold cross-validation stratified by stimulus (same folds for every decoder, models refitted on each training fold) · {sh} label shuffles · seed {seed} · {secs:.1} s</div>
+"#,
+        src = esc(&v.source),
+        trials = v.trials,
+        nu = v.units.len(),
+        ns = v.stimuli.len(),
+        win = v.window_ms,
+        bin = v.bin_ms,
+        folds = v.folds,
+        sh = v.shuffles,
+        seed = v.seed,
+        secs = v.seconds
+    );
+
+    // Headline cards.
+    let os = &v.decoders[0];
+    let co = v
+        .decoders
+        .iter()
+        .find(|d| d.decoder == "count-only")
+        .unwrap_or(os);
+    let i = &v.information;
+    let _ = write!(
+        s,
+        r#"<div class=row style="margin-top:14px">
+<div class=card><div class=sub>accuracy at window end ({})</div><div class=big>{:.1}%</div><div class=sub>95% CI {:.1}–{:.1}% · chance {:.1}% · count-only {:.1}%</div></div>
+<div class=card><div class=sub>reliably above chance from</div><div class=big>{}</div><div class=sub>lower 95% bound above chance for {} consecutive bins</div></div>
+<div class=card><div class=sub>decisions at θ = {} (after {} ms)</div><div class=big>{:.1}%</div><div class=sub>mean {:.1} ms, median {:.1} ms; {:.0}% before the window end</div></div>
+<div class=card><div class=sub>information (presented ↔ decoded)</div><div class=big>{:.2} bits</div><div class=sub>of {:.2} possible · shuffle p = {:.4} · null 95% {:.3}</div></div>
+<div class=card><div class=sub>goodness of fit (time rescaling)</div><div class=big>{} / {}</div><div class=sub>cells outside the 95% KS band</div></div>
+</div>"#,
+        os.decoder,
+        100.0 * os.accuracy_end.accuracy,
+        100.0 * os.accuracy_end.lo,
+        100.0 * os.accuracy_end.hi,
+        100.0 * v.chance,
+        100.0 * co.accuracy_end.accuracy,
+        os.earliest_reliable_ms
+            .map(|t| format!("{t:.0} ms"))
+            .unwrap_or_else(|| "never".into()),
+        crate::validate::RELIABLE_RUN_BINS,
+        v.threshold,
+        v.min_time_ms,
+        100.0 * os.decision.accuracy,
+        os.decision.mean_time_ms,
+        os.decision.median_time_ms,
+        100.0 * os.decision.early_share,
+        i.bits,
+        (v.stimuli.len() as f64).log2(),
+        i.p_value,
+        i.null_95,
+        v.goodness_of_fit.cells_failed,
+        v.goodness_of_fit.cells_tested
+    );
+
+    s += "<h2>How well and how early</h2><div class=row>";
+    s += &accuracy_plot(v);
+    s += &tradeoff_plot(v);
+    s += "</div><table><tr><th>decoder</th><th>window-end accuracy [95%]</th><th>reliable from</th><th>decision accuracy at θ</th><th>mean / median decision time</th><th>information (bits)</th></tr>";
+    for d in &v.decoders {
+        let _ = write!(s, "<tr><td>{}</td><td>{:.1}% [{:.1}, {:.1}]</td><td>{}</td><td>{:.1}% [{:.1}, {:.1}]</td><td>{:.1} / {:.1} ms</td><td>{:.3}</td></tr>",
+            d.decoder, 100.0 * d.accuracy_end.accuracy, 100.0 * d.accuracy_end.lo, 100.0 * d.accuracy_end.hi,
+            d.earliest_reliable_ms.map(|t| format!("{t:.0} ms")).unwrap_or_else(|| "never".into()),
+            100.0 * d.decision.accuracy, 100.0 * d.decision.lo, 100.0 * d.decision.hi, d.decision.mean_time_ms, d.decision.median_time_ms, d.info_bits);
+    }
+    s += "</table><h2>Decisions</h2><div class=row>";
+    s += &decision_time_plot(v);
+    s += "</div><table><tr><th>threshold</th>";
+    for d in &v.decoders {
+        let _ = write!(s, "<th>{} accuracy</th><th>mean time</th>", d.decoder);
+    }
+    s += "</tr>";
+    for (k, th) in crate::validate::THRESHOLDS.iter().enumerate() {
+        let _ = write!(s, "<tr><td>{th}</td>");
+        for d in &v.decoders {
+            let t = &d.tradeoff[k];
+            let _ = write!(
+                s,
+                "<td>{:.1}% [{:.1}, {:.1}]</td><td>{:.1} ms</td>",
+                100.0 * t.accuracy,
+                100.0 * t.lo,
+                100.0 * t.hi,
+                t.mean_time_ms
+            );
+        }
+        s += "</tr>";
+    }
+    s += "</table><div class=row>";
+    s += &heatmap(
+        &format!("{} at the decision (θ = {})", os.decoder, v.threshold),
+        &os.confusion_decision,
+        &v.stimuli,
+    );
+    s += &heatmap(
+        &format!("{} at the window end", os.decoder),
+        &os.confusion_end,
+        &v.stimuli,
+    );
+    s += &heatmap(
+        &format!("{} at the window end", co.decoder),
+        &co.confusion_end,
+        &v.stimuli,
+    );
+    s += "</div><h2>Example posterior trajectories (order statistics; bold: presented stimulus; dashed: threshold)</h2><div class=row>";
+    s += &trajectories_plot(v, x);
+    s += "</div><h2>How much: information and its shuffle null</h2>";
+    let _ = write!(s, "<p class=sub>Mutual information between presented and window-end decoded stimulus: plug-in {:.3} bits minus the Panzeri–Treves bias {:.3} bits = {:.3} bits. Null: labels permuted within each training fold only (held-out labels untouched), cells refitted on the shuffled labels with the family and bandwidth chosen on the real fold, held-out trials decoded at the window end; p = (1 + #null ≥ observed) / (1 + shuffles).</p><div class=row>",
+        i.plugin_bits, i.bias_bits, i.bits);
+    s += &null_plot(
+        "population information: shuffle null (grey) and observed (red)",
+        &i.null_bits,
+        i.bits,
+    );
+    s += &units_plot(v);
+    s += "</div><h2>Units</h2><p class=sub>Ranked by single-unit information (window-end decoding of held-out trials with that unit alone). Open a unit for its raster, PSTH with the fitted density, count distributions, KS plot and per-stimulus table.</p>";
+    s += "<table><tr><th>rank</th><th>unit</th><th>accuracy</th><th>information (bits)</th><th>null 95%</th><th>p</th><th>families</th><th>fit flags</th></tr>";
+    for (r, u) in v.units_ranked.iter().enumerate() {
+        let mut fams: Vec<&str> = u.cells.iter().map(|c| c.family.as_str()).collect();
+        fams.sort();
+        fams.dedup();
+        let flags = u.cells.iter().filter(|c| !c.ks_pass).count();
+        let _ = write!(s, "<tr><td>{}</td><td>{}</td><td>{:.1}%</td><td>{:.3}</td><td>{:.3}</td><td class={}>{:.3}</td><td>{}</td><td>{}</td></tr>",
+            r + 1, u.unit, 100.0 * u.accuracy, u.info.bits, u.info.null_95, if u.info.p_value < 0.05 { "ok" } else { "warn" }, u.info.p_value, fams.join(", "),
+            if flags == 0 { "—".to_string() } else { format!("<b class=warn>{flags}</b>") });
+    }
+    s += "</table>";
+    for u in &v.units_ranked {
+        s += &unit_section(v, x, u);
+    }
+    s += "<h2>Goodness of fit</h2>";
+    let _ = write!(s, "<p class=sub>Discrete-time time-rescaling (Haslinger, Pipa &amp; Brown 2010) on held-out trials, each under the model of its presented stimulus: per bin, the model's probability of a spike given the spikes so far; bins holding spikes are events, their randomised rescaled intervals should be Uniform(0, 1). Cells whose KS statistic exceeds the exact 95% critical value are flagged: {} of {} tested.</p>",
+        v.goodness_of_fit.cells_failed, v.goodness_of_fit.cells_tested);
+    if !v.goodness_of_fit.failed.is_empty() {
+        s += "<p>";
+        s += &v
+            .goodness_of_fit
+            .failed
+            .iter()
+            .map(|(u, st)| format!("unit {u} / {}", esc(st)))
+            .collect::<Vec<_>>()
+            .join(" · ");
+        s += "</p>";
+    }
+    s += "<p class=sub>Generated by auspex validate. Figures are for the data named above; they say how this model decodes held-out trials of this session, not how it will do on another day.</p></body></html>\n";
+    s
+}

@@ -1,0 +1,883 @@
+//! `validate`: cross-validated accuracy against time for every decoder, decisions across
+//! thresholds, mutual information with a label-shuffle null, per-unit accuracy and information,
+//! count variability, and the time-rescaling goodness of fit — the numbers behind the HTML
+//! report (`report.rs`) and the JSON summary. Every decoding here runs the same engine as the
+//! daemon; the shuffle null uses the engine's window-end likelihood in closed form.
+
+use crate::offline::run_dataset;
+use auspex_engine::data::Dataset;
+use auspex_engine::engine::{Decoder, EngineConfig, EngineSink, Frame};
+use auspex_engine::fit::{plan, CellInput, FitOptions, FitPlan};
+use auspex_engine::model::{CellSpec, Model};
+use auspex_engine::stats::{
+    clopper_pearson, ks_critical, ks_uniform, mutual_info_bias_bits, mutual_info_bits,
+};
+use auspex_engine::validation::{
+    add_window_end_log_likelihood, argmax, decide, earliest_reliable, fano_interval, refit_cell,
+    rescaled_intervals, stratified_folds,
+};
+use auspex_engine::CountFamily;
+use indicatif::{ProgressBar, ProgressStyle};
+use rand::seq::SliceRandom;
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use serde::Serialize;
+use std::collections::HashMap;
+use std::sync::Arc;
+
+/// Settings of a validation run.
+#[derive(Clone, Debug)]
+pub struct ValidateOptions {
+    /// Cross-validation folds.
+    pub folds: usize,
+    /// Label shuffles for the information null.
+    pub shuffles: usize,
+    /// Seed for folds, shuffles and the time-rescaling randomisation.
+    pub seed: u64,
+    /// Fitting settings (window, bin, families, bandwidth rule).
+    pub fit: FitOptions,
+    /// Decision threshold for the headline decision figures.
+    pub threshold: f64,
+    /// Minimum time before a threshold decision, ms.
+    pub min_time_ms: f64,
+    /// Show a progress bar.
+    pub progress: bool,
+}
+
+impl Default for ValidateOptions {
+    fn default() -> Self {
+        ValidateOptions {
+            folds: 5,
+            shuffles: 200,
+            seed: 1,
+            fit: FitOptions::default(),
+            threshold: 0.9,
+            min_time_ms: 20.0,
+            progress: false,
+        }
+    }
+}
+
+/// Thresholds of the decision trade-off.
+pub const THRESHOLDS: [f64; 8] = [0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 0.99, 0.999];
+/// Consecutive bins the lower 95% bound must stay above chance for "reliably above chance".
+pub const RELIABLE_RUN_BINS: usize = 10;
+
+/// Accuracy at one time.
+#[derive(Clone, Debug, Serialize)]
+pub struct CurvePoint {
+    /// End of the bin, ms after onset.
+    pub t_ms: f64,
+    /// Share of held-out trials whose maximum a posteriori stimulus was the presented one.
+    pub accuracy: f64,
+    /// Clopper–Pearson 95% interval.
+    pub lo: f64,
+    /// Upper bound.
+    pub hi: f64,
+}
+
+/// One threshold of the trade-off.
+#[derive(Clone, Debug, Serialize)]
+pub struct TradeoffPoint {
+    /// Threshold on the top posterior.
+    pub threshold: f64,
+    /// Decision accuracy.
+    pub accuracy: f64,
+    /// Clopper–Pearson 95% interval.
+    pub lo: f64,
+    /// Upper bound.
+    pub hi: f64,
+    /// Mean decision time, ms after onset (end of the deciding bin).
+    pub mean_time_ms: f64,
+    /// Median decision time, ms.
+    pub median_time_ms: f64,
+    /// Share decided by the threshold before the window end.
+    pub early_share: f64,
+}
+
+/// One decoder's cross-validated figures.
+#[derive(Clone, Debug, Serialize)]
+pub struct DecoderReport {
+    /// Decoder name.
+    pub decoder: String,
+    /// Accuracy at the window end.
+    pub accuracy_end: CurvePoint,
+    /// Accuracy every bin.
+    pub curve: Vec<CurvePoint>,
+    /// Earliest time (ms) from which the lower 95% bound stays above chance for
+    /// [`RELIABLE_RUN_BINS`] bins.
+    pub earliest_reliable_ms: Option<f64>,
+    /// Decision trade-off.
+    pub tradeoff: Vec<TradeoffPoint>,
+    /// At the headline threshold: decision accuracy and times.
+    pub decision: TradeoffPoint,
+    /// Decision times at the headline threshold, ms, one per trial.
+    pub decision_times_ms: Vec<f64>,
+    /// Confusion (presented row × decoded column) at the decision.
+    pub confusion_decision: Vec<Vec<u64>>,
+    /// Confusion at the window end.
+    pub confusion_end: Vec<Vec<u64>>,
+    /// Mutual information between presented and window-end decoded stimulus, bias-corrected.
+    pub info_bits: f64,
+}
+
+/// Information with its null.
+#[derive(Clone, Debug, Serialize)]
+pub struct InfoReport {
+    /// Plug-in information, bits.
+    pub plugin_bits: f64,
+    /// Panzeri–Treves bias, bits.
+    pub bias_bits: f64,
+    /// Bias-corrected information, bits.
+    pub bits: f64,
+    /// Shuffle null (bias-corrected bits), one per shuffle.
+    pub null_bits: Vec<f64>,
+    /// 95th percentile of the null.
+    pub null_95: f64,
+    /// (1 + #{null ≥ observed}) / (1 + shuffles).
+    pub p_value: f64,
+}
+
+/// One unit × stimulus cell.
+#[derive(Clone, Debug, Serialize)]
+pub struct CellReport {
+    /// Stimulus.
+    pub stimulus: String,
+    /// Trials.
+    pub n_trials: usize,
+    /// Mean window count.
+    pub mean: f64,
+    /// Variance.
+    pub variance: f64,
+    /// Fano factor with its 95% interval (None when the mean is 0).
+    pub fano: Option<(f64, f64, f64)>,
+    /// Count family chosen on all trials.
+    pub family: String,
+    /// Time-rescaling KS statistic on held-out trials.
+    pub ks_d: f64,
+    /// Its 95% critical value (exact, for the number of intervals).
+    pub ks_critical: f64,
+    /// Rescaled intervals tested.
+    pub ks_n: usize,
+    /// D within the 95% band (cells with fewer than 5 intervals count as passing, untested).
+    pub ks_pass: bool,
+}
+
+/// One unit.
+#[derive(Clone, Debug, Serialize)]
+pub struct UnitReport {
+    /// Unit id.
+    pub unit: u32,
+    /// Single-unit window-end accuracy (held out).
+    pub accuracy: f64,
+    /// Its information, bias-corrected bits, with the shuffle null.
+    pub info: InfoReport,
+    /// Cells.
+    pub cells: Vec<CellReport>,
+}
+
+/// Goodness-of-fit summary.
+#[derive(Clone, Debug, Serialize)]
+pub struct FitReport {
+    /// Cells with at least 5 rescaled intervals.
+    pub cells_tested: usize,
+    /// Cells outside the 95% band.
+    pub cells_failed: usize,
+    /// (unit, stimulus) of each failed cell.
+    pub failed: Vec<(u32, String)>,
+}
+
+/// The whole validation.
+#[derive(Clone, Debug, Serialize)]
+pub struct Validation {
+    /// Where the data came from.
+    pub source: String,
+    /// Labelled trials used.
+    pub trials: usize,
+    /// Units.
+    pub units: Vec<u32>,
+    /// Stimuli.
+    pub stimuli: Vec<String>,
+    /// Bin width, ms.
+    pub bin_ms: f64,
+    /// Window, ms.
+    pub window_ms: f64,
+    /// Folds.
+    pub folds: usize,
+    /// Shuffles.
+    pub shuffles: usize,
+    /// Seed.
+    pub seed: u64,
+    /// Chance: the share of the most frequent stimulus.
+    pub chance: f64,
+    /// Headline threshold and minimum time.
+    pub threshold: f64,
+    /// Minimum decision time, ms.
+    pub min_time_ms: f64,
+    /// Per decoder.
+    pub decoders: Vec<DecoderReport>,
+    /// Population information (order statistics, window end) with the shuffle null.
+    pub information: InfoReport,
+    /// Per unit, ranked by information.
+    pub units_ranked: Vec<UnitReport>,
+    /// Goodness of fit.
+    pub goodness_of_fit: FitReport,
+    /// Seconds the run took.
+    pub seconds: f64,
+}
+
+/// What the pictures need besides the numbers.
+pub struct Extras {
+    /// The model fitted on all labelled trials (for densities and count distributions).
+    pub full_model: Arc<Model>,
+    /// The labelled dataset.
+    pub data: Dataset,
+    /// Stimulus index of each labelled trial.
+    pub labels: Vec<usize>,
+    /// Per decoder, per trial: the trajectory (n_bins × S posteriors).
+    pub trajectories: Vec<Vec<Vec<f32>>>,
+    /// Per cell (unit-major), the held-out rescaled intervals.
+    pub rescaled: Vec<Vec<f64>>,
+}
+
+struct TrajSink {
+    index: HashMap<u64, usize>,
+    ns: usize,
+    out: Vec<Vec<f32>>,
+}
+
+impl EngineSink for TrajSink {
+    fn frame(&mut self, f: &Frame<'_>) {
+        if let Some(&i) = self.index.get(&f.trial) {
+            let b = f.bin as usize;
+            for (s, p) in f.posterior.iter().enumerate() {
+                self.out[i][b * self.ns + s] = *p as f32;
+            }
+        }
+    }
+}
+
+/// Puts a plan's stimuli in `order` (folds may meet stimuli in a different first order).
+fn reorder(mut p: FitPlan, order: &[String]) -> anyhow::Result<FitPlan> {
+    let ns = order.len();
+    if p.stimuli.len() != ns {
+        anyhow::bail!(
+            "a training fold holds {} of the {} stimuli; use fewer folds",
+            p.stimuli.len(),
+            ns
+        );
+    }
+    let map: Vec<usize> = order
+        .iter()
+        .map(|s| p.stimuli.iter().position(|x| x == s).unwrap_or(0))
+        .collect();
+    let nu = p.units.len();
+    let mut cells = Vec::with_capacity(nu * ns);
+    for u in 0..nu {
+        for &m in &map {
+            cells.push(std::mem::take(&mut p.cells[u * ns + m]));
+        }
+    }
+    p.cells = cells;
+    p.trials_per_stimulus = map.iter().map(|&m| p.trials_per_stimulus[m]).collect();
+    p.prior = map.iter().map(|&m| p.prior[m]).collect();
+    p.stimuli = order.to_vec();
+    Ok(p)
+}
+
+fn subset(data: &Dataset, keep: &[usize], labels: Option<(&[usize], &[String])>) -> Dataset {
+    let mut d = Dataset {
+        tick_rate_hz: data.tick_rate_hz,
+        units: data.units.clone(),
+        spikes: data.spikes.clone(),
+        trials: keep.iter().map(|&i| data.trials[i].clone()).collect(),
+    };
+    if let Some((lab, names)) = labels {
+        for (t, &i) in d.trials.iter_mut().zip(keep) {
+            t.stimulus = Some(names[lab[i]].clone());
+        }
+    }
+    d
+}
+
+fn info(conf: &[u64], ns: usize) -> (f64, f64, f64) {
+    let plug = mutual_info_bits(conf, ns);
+    let bias = mutual_info_bias_bits(conf, ns);
+    (plug, bias, (plug - bias).max(0.0))
+}
+
+fn info_report(conf: &[u64], ns: usize, mut null: Vec<f64>) -> InfoReport {
+    let (plugin_bits, bias_bits, bits) = info(conf, ns);
+    let ge = null.iter().filter(|&&x| x >= bits).count();
+    let p_value = (1 + ge) as f64 / (1 + null.len()) as f64;
+    let mut sorted = null.clone();
+    sorted.sort_by(|a, b| a.total_cmp(b));
+    let null_95 = if sorted.is_empty() {
+        f64::NAN
+    } else {
+        sorted[((sorted.len() as f64 * 0.95).ceil() as usize).clamp(1, sorted.len()) - 1]
+    };
+    null.shrink_to_fit();
+    InfoReport {
+        plugin_bits,
+        bias_bits,
+        bits,
+        null_bits: null,
+        null_95,
+        p_value,
+    }
+}
+
+fn nested(conf: &[u64], ns: usize) -> Vec<Vec<u64>> {
+    conf.chunks(ns).map(|r| r.to_vec()).collect()
+}
+
+/// Per-fold state kept for the shuffle null.
+struct Fold {
+    train: Vec<usize>,
+    test: Vec<usize>,
+    /// Per cell: family and bandwidth (bins) chosen on the real training labels.
+    choice: Vec<(CountFamily, f64)>,
+}
+
+/// Window-end decoding of `test` trials with `model`, population and per unit, into confusion
+/// matrices (population: `pop`, per unit: `units[u]`).
+fn window_end_confusions(
+    model: &Model,
+    bins: &[Vec<Vec<u32>>],
+    labels: &[usize],
+    test: &[usize],
+    pop: &mut [u64],
+    units: &mut [Vec<u64>],
+) {
+    let (nu, ns) = (model.n_units(), model.n_stimuli());
+    let mut total = vec![0.0f64; ns];
+    let mut one = vec![0.0f64; ns];
+    for &i in test {
+        total.copy_from_slice(model.ln_prior());
+        for u in 0..nu {
+            one.iter_mut().for_each(|x| *x = 0.0);
+            add_window_end_log_likelihood(model, u, &bins[u][i], &mut one);
+            for s in 0..ns {
+                total[s] += one[s];
+            }
+            units[u][labels[i] * ns + argmax(&one)] += 1;
+        }
+        pop[labels[i] * ns + argmax(&total)] += 1;
+    }
+}
+
+/// Runs the validation. `source` names the data for the report.
+pub fn validate(
+    data: &Dataset,
+    source: &str,
+    opts: &ValidateOptions,
+) -> anyhow::Result<(Validation, Extras)> {
+    let t0 = std::time::Instant::now();
+    let labelled: Vec<usize> = (0..data.trials.len())
+        .filter(|&i| data.trials[i].stimulus.is_some())
+        .collect();
+    let data = subset(data, &labelled, None);
+    let full_plan = plan(&data, &opts.fit)?;
+    let stimuli = full_plan.stimuli.clone();
+    let (ns, nu, nb) = (stimuli.len(), data.units.len(), full_plan.n_bins);
+    let labels: Vec<usize> = data
+        .trials
+        .iter()
+        .map(|t| {
+            stimuli
+                .iter()
+                .position(|s| Some(s) == t.stimulus.as_ref())
+                .unwrap_or(0)
+        })
+        .collect();
+    let nt = labels.len();
+    let min_per = (0..ns)
+        .map(|s| labels.iter().filter(|&&l| l == s).count())
+        .min()
+        .unwrap_or(0);
+    let k = opts.folds.clamp(2, min_per.max(2));
+    if min_per < 2 {
+        anyhow::bail!("every stimulus needs at least 2 labelled trials for cross-validation");
+    }
+    let fold_of = stratified_folds(&labels, ns, k, opts.seed);
+    let bw_ms = opts.fit.bin_width_s * 1000.0;
+    let min_bin = ((opts.min_time_ms / bw_ms - 1e-9).ceil() as i64 - 1).max(0) as usize;
+
+    let bar = if opts.progress {
+        ProgressBar::new((k + opts.shuffles + 1) as u64)
+    } else {
+        ProgressBar::hidden()
+    };
+    bar.set_style(
+        ProgressStyle::with_template(
+            "validating {bar:40.cyan/blue} {pos}/{len} {msg} ({eta} left)",
+        )
+        .expect("static template")
+        .progress_chars("█▉▊▋▌▍▎▏ "),
+    );
+
+    // Per unit, per trial: spike bins in the window.
+    let w = data.windows(&data.units, full_plan.bin_ticks, nb);
+    let bins: Vec<Vec<Vec<u32>>> = w
+        .times
+        .iter()
+        .map(|per| {
+            per.iter()
+                .map(|ts| {
+                    ts.iter()
+                        .map(|t| (*t as usize).min(nb - 1) as u32)
+                        .collect()
+                })
+                .collect()
+        })
+        .collect();
+
+    // Cross-validated decoding with every decoder, and the per-fold choices.
+    bar.set_message("fitting and decoding folds");
+    let mut traj: Vec<Vec<Vec<f32>>> = vec![vec![Vec::new(); nt]; Decoder::ALL.len()];
+    let mut rescaled: Vec<Vec<f64>> = vec![Vec::new(); nu * ns];
+    // Rescaled time since each cell's last spike, chained across its held-out trials.
+    let mut carry = vec![0.0f64; nu * ns];
+    let mut unit_conf = vec![vec![0u64; ns * ns]; nu];
+    let mut pop_conf_closed = vec![0u64; ns * ns];
+    let mut folds = Vec::with_capacity(k);
+    let mut rng = ChaCha8Rng::seed_from_u64(opts.seed ^ 0x5eed);
+    for f in 0..k {
+        let train: Vec<usize> = (0..nt).filter(|&i| fold_of[i] != f).collect();
+        let test: Vec<usize> = (0..nt).filter(|&i| fold_of[i] == f).collect();
+        let p = reorder(plan(&subset(&data, &train, None), &opts.fit)?, &stimuli)?;
+        let cells = crate::fitting::fit_cells(&p, false);
+        let choice = cells
+            .iter()
+            .map(|c| {
+                (
+                    c.count.family(),
+                    c.summary.bandwidth_s / opts.fit.bin_width_s,
+                )
+            })
+            .collect();
+        let model = Arc::new(Model::new(p.assemble(cells))?);
+        let test_data = subset(&data, &test, None);
+        for (d, dec) in Decoder::ALL.iter().enumerate() {
+            let mut sink = TrajSink {
+                index: test_data
+                    .trials
+                    .iter()
+                    .enumerate()
+                    .map(|(j, t)| (t.id, j))
+                    .collect(),
+                ns,
+                out: vec![vec![0f32; nb * ns]; test.len()],
+            };
+            let mut cfg = EngineConfig::new(data.tick_rate_hz);
+            cfg.decoder = *dec;
+            run_dataset(model.clone(), &test_data, cfg, &mut sink)?;
+            for (j, &i) in test.iter().enumerate() {
+                traj[d][i] = std::mem::take(&mut sink.out[j]);
+            }
+        }
+        window_end_confusions(
+            &model,
+            &bins,
+            &labels,
+            &test,
+            &mut pop_conf_closed,
+            &mut unit_conf,
+        );
+        // Time rescaling on the held-out trials, each under its presented stimulus.
+        let mut counts = vec![0u32; nb];
+        for &i in &test {
+            let s = labels[i];
+            for u in 0..nu {
+                counts.iter_mut().for_each(|c| *c = 0);
+                for &b in &bins[u][i] {
+                    counts[b as usize] += 1;
+                }
+                rescaled_intervals(
+                    model.count(u, s),
+                    |b| model.survival(u, s, b),
+                    &counts,
+                    &mut carry[u * ns + s],
+                    || rng.gen::<f64>(),
+                    &mut rescaled[u * ns + s],
+                );
+            }
+        }
+        folds.push(Fold {
+            train,
+            test,
+            choice,
+        });
+        bar.inc(1);
+    }
+
+    // Label-shuffle null: labels permuted within each training fold only, cells refitted
+    // (family and bandwidth held at the real fold's choices), held-out trials decoded at the
+    // window end with their true labels.
+    bar.set_message("label-shuffle null");
+    let nulls = shuffle_null(&data, &bins, &labels, &stimuli, &folds, opts, nb, &bar)?;
+    let (pop_null, unit_null) = nulls;
+
+    // Accuracy curves and decisions per decoder.
+    let chance = (0..ns)
+        .map(|s| labels.iter().filter(|&&l| l == s).count())
+        .max()
+        .unwrap_or(0) as f64
+        / nt as f64;
+    let t_of = |b: usize| (b + 1) as f64 * bw_ms;
+    let mut decoders = Vec::new();
+    for (d, dec) in Decoder::ALL.iter().enumerate() {
+        let mut correct = vec![0u64; nb];
+        for (i, tr) in traj[d].iter().enumerate() {
+            for (b, c) in correct.iter_mut().enumerate() {
+                if argmax(&tr[b * ns..(b + 1) * ns]) == labels[i] {
+                    *c += 1;
+                }
+            }
+        }
+        let curve: Vec<CurvePoint> = correct
+            .iter()
+            .enumerate()
+            .map(|(b, &c)| {
+                let (lo, hi) = clopper_pearson(c, nt as u64, 0.05);
+                CurvePoint {
+                    t_ms: t_of(b),
+                    accuracy: c as f64 / nt as f64,
+                    lo,
+                    hi,
+                }
+            })
+            .collect();
+        let lower: Vec<f64> = curve.iter().map(|c| c.lo).collect();
+        let earliest = earliest_reliable(&lower, chance, RELIABLE_RUN_BINS).map(t_of);
+        let thresholds_apply = *dec != Decoder::CountOnly;
+        let point = |th: f64| {
+            let mut times = Vec::with_capacity(nt);
+            let mut conf = vec![0u64; ns * ns];
+            let mut early = 0usize;
+            for (i, tr) in traj[d].iter().enumerate() {
+                let (s, b, by) = decide(tr, ns, th, min_bin, thresholds_apply);
+                conf[labels[i] * ns + s] += 1;
+                times.push(t_of(b));
+                early += by as usize;
+            }
+            let ok: u64 = (0..ns).map(|s| conf[s * ns + s]).sum();
+            let (lo, hi) = clopper_pearson(ok, nt as u64, 0.05);
+            let mut sorted = times.clone();
+            sorted.sort_by(|a, b| a.total_cmp(b));
+            (
+                TradeoffPoint {
+                    threshold: th,
+                    accuracy: ok as f64 / nt as f64,
+                    lo,
+                    hi,
+                    mean_time_ms: times.iter().sum::<f64>() / nt as f64,
+                    median_time_ms: sorted[nt / 2],
+                    early_share: early as f64 / nt as f64,
+                },
+                times,
+                conf,
+            )
+        };
+        let tradeoff = THRESHOLDS.iter().map(|&th| point(th).0).collect();
+        let (decision, decision_times_ms, conf_dec) = point(opts.threshold);
+        let mut conf_end = vec![0u64; ns * ns];
+        for (i, tr) in traj[d].iter().enumerate() {
+            conf_end[labels[i] * ns + argmax(&tr[(nb - 1) * ns..])] += 1;
+        }
+        decoders.push(DecoderReport {
+            decoder: dec.name().to_string(),
+            accuracy_end: curve[nb - 1].clone(),
+            curve,
+            earliest_reliable_ms: earliest,
+            tradeoff,
+            decision,
+            decision_times_ms,
+            confusion_decision: nested(&conf_dec, ns),
+            info_bits: info(&conf_end, ns).2,
+            confusion_end: nested(&conf_end, ns),
+        });
+    }
+    // The observed population figure is the engine's own window-end confusion (order stats);
+    // the closed form used by the null must agree with it.
+    let engine_conf: Vec<u64> = decoders[0].confusion_end.concat();
+    let information = info_report(&engine_conf, ns, pop_null);
+    if engine_conf != pop_conf_closed {
+        tracing::warn!("closed-form window-end decoding differs from the engine's");
+    }
+
+    // Units: accuracy, information and its null; cells: count variability, family, fit.
+    let full_cells = crate::fitting::fit_cells(&full_plan, false);
+    let full_model = Arc::new(Model::new(full_plan.assemble(full_cells))?);
+    let mut units_ranked = Vec::with_capacity(nu);
+    let mut failed = Vec::new();
+    let mut tested = 0;
+    for u in 0..nu {
+        let conf = &unit_conf[u];
+        let ok: u64 = (0..ns).map(|s| conf[s * ns + s]).sum();
+        let cells = (0..ns)
+            .map(|s| {
+                let counts: Vec<u32> = (0..nt)
+                    .filter(|&i| labels[i] == s)
+                    .map(|i| bins[u][i].len() as u32)
+                    .collect();
+                let (mean, variance) = auspex_engine::model::mean_var(&counts);
+                let mut z = rescaled[u * ns + s].clone();
+                let n = z.len();
+                let d = if n > 0 { ks_uniform(&mut z) } else { 0.0 };
+                let crit = if n > 0 { ks_critical(n, 0.05) } else { 1.0 };
+                let pass = n < 5 || d <= crit;
+                if n >= 5 {
+                    tested += 1;
+                    if !pass {
+                        failed.push((data.units[u], stimuli[s].clone()));
+                    }
+                }
+                CellReport {
+                    stimulus: stimuli[s].clone(),
+                    n_trials: counts.len(),
+                    mean,
+                    variance,
+                    fano: fano_interval(&counts, 0.05),
+                    family: full_model.count(u, s).family().name().to_string(),
+                    ks_d: d,
+                    ks_critical: crit,
+                    ks_n: n,
+                    ks_pass: pass,
+                }
+            })
+            .collect();
+        units_ranked.push(UnitReport {
+            unit: data.units[u],
+            accuracy: ok as f64 / nt as f64,
+            info: info_report(conf, ns, unit_null[u].clone()),
+            cells,
+        });
+    }
+    units_ranked.sort_by(|a, b| b.info.bits.total_cmp(&a.info.bits));
+    bar.inc(1);
+    bar.finish_and_clear();
+
+    let v = Validation {
+        source: source.to_string(),
+        trials: nt,
+        units: data.units.clone(),
+        stimuli: stimuli.clone(),
+        bin_ms: bw_ms,
+        window_ms: nb as f64 * bw_ms,
+        folds: k,
+        shuffles: opts.shuffles,
+        seed: opts.seed,
+        chance,
+        threshold: opts.threshold,
+        min_time_ms: opts.min_time_ms,
+        decoders,
+        information,
+        units_ranked,
+        goodness_of_fit: FitReport {
+            cells_tested: tested,
+            cells_failed: failed.len(),
+            failed,
+        },
+        seconds: t0.elapsed().as_secs_f64(),
+    };
+    Ok((
+        v,
+        Extras {
+            full_model,
+            data,
+            labels,
+            trajectories: traj,
+            rescaled,
+        },
+    ))
+}
+
+type Nulls = (Vec<f64>, Vec<Vec<f64>>);
+
+#[allow(clippy::too_many_arguments)]
+fn shuffle_null(
+    data: &Dataset,
+    bins: &[Vec<Vec<u32>>],
+    labels: &[usize],
+    stimuli: &[String],
+    folds: &[Fold],
+    opts: &ValidateOptions,
+    nb: usize,
+    bar: &ProgressBar,
+) -> anyhow::Result<Nulls> {
+    let (nu, ns) = (data.units.len(), stimuli.len());
+    // Per unit, per trial: window count and spike times (bins) as the fit sees them.
+    let bin_ticks = (opts.fit.bin_width_s * data.tick_rate_hz).round() as i64;
+    let w = data.windows(&data.units, bin_ticks, nb);
+    let prior = vec![1.0 / ns as f64; ns];
+    let one = |r: usize| -> anyhow::Result<(f64, Vec<f64>)> {
+        let mut rng =
+            ChaCha8Rng::seed_from_u64(opts.seed.wrapping_mul(7919).wrapping_add(r as u64));
+        let mut pop = vec![0u64; ns * ns];
+        let mut units = vec![vec![0u64; ns * ns]; nu];
+        for f in folds {
+            let mut shuffled: Vec<usize> = f.train.iter().map(|&i| labels[i]).collect();
+            shuffled.shuffle(&mut rng);
+            let mut cells = Vec::with_capacity(nu * ns);
+            for u in 0..nu {
+                for s in 0..ns {
+                    let mut input = CellInput::default();
+                    for (j, &i) in f.train.iter().enumerate() {
+                        if shuffled[j] == s {
+                            input.counts.push(w.counts[u][i]);
+                            input.times.push(w.times[u][i].clone());
+                        }
+                    }
+                    let (fam, bw) = f.choice[u * ns + s];
+                    cells.push(refit_cell(&input, nb, opts.fit.bin_width_s, fam, bw));
+                }
+            }
+            let model = Model::new(auspex_engine::ModelSpec {
+                bin_width_s: opts.fit.bin_width_s,
+                n_bins: nb as u32,
+                stimuli: stimuli.to_vec(),
+                units: data.units.clone(),
+                prior: prior.clone(),
+                cells: cells.into_iter().collect::<Vec<CellSpec>>(),
+            })?;
+            window_end_confusions(&model, bins, labels, &f.test, &mut pop, &mut units);
+        }
+        Ok((
+            info(&pop, ns).2,
+            units.iter().map(|c| info(c, ns).2).collect(),
+        ))
+    };
+    let threads = std::thread::available_parallelism()
+        .map(|n| n.get())
+        .unwrap_or(1)
+        .min(opts.shuffles.max(1));
+    let next = std::sync::atomic::AtomicUsize::new(0);
+    let results: Vec<anyhow::Result<Vec<(usize, (f64, Vec<f64>))>>> = std::thread::scope(|sc| {
+        let hs: Vec<_> = (0..threads)
+            .map(|_| {
+                sc.spawn(|| {
+                    let mut mine = Vec::new();
+                    loop {
+                        let r = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                        if r >= opts.shuffles {
+                            break;
+                        }
+                        mine.push((r, one(r)?));
+                        bar.inc(1);
+                    }
+                    Ok(mine)
+                })
+            })
+            .collect();
+        hs.into_iter()
+            .map(|h| {
+                h.join()
+                    .unwrap_or_else(|_| Err(anyhow::anyhow!("a shuffle worker panicked")))
+            })
+            .collect()
+    });
+    let mut all = Vec::with_capacity(opts.shuffles);
+    for r in results {
+        all.extend(r?);
+    }
+    all.sort_by_key(|x| x.0);
+    let pop: Vec<f64> = all.iter().map(|x| x.1 .0).collect();
+    let units: Vec<Vec<f64>> = (0..nu)
+        .map(|u| all.iter().map(|x| x.1 .1[u]).collect())
+        .collect();
+    Ok((pop, units))
+}
+
+/// The terminal summary.
+pub fn summary_table(v: &Validation) -> String {
+    use std::fmt::Write;
+    let mut s = String::new();
+    let _ = writeln!(
+        s,
+        "{} labelled trials, {} units × {} stimuli, {}-fold cross-validation, chance {:.1}%",
+        v.trials,
+        v.units.len(),
+        v.stimuli.len(),
+        v.folds,
+        100.0 * v.chance
+    );
+    let _ = writeln!(
+        s,
+        "{:<22} {:>16} {:>12} {:>22} {:>10}",
+        "decoder", "window end", "reliable at", "decision (θ, mean ms)", "info bits"
+    );
+    for d in &v.decoders {
+        let _ = writeln!(
+            s,
+            "{:<22} {:>5.1}% [{:>4.1},{:>5.1}] {:>12} {:>9.1}% at {:>5.1} ms {:>10.3}",
+            d.decoder,
+            100.0 * d.accuracy_end.accuracy,
+            100.0 * d.accuracy_end.lo,
+            100.0 * d.accuracy_end.hi,
+            d.earliest_reliable_ms
+                .map(|t| format!("{t:.0} ms"))
+                .unwrap_or_else(|| "never".into()),
+            100.0 * d.decision.accuracy,
+            d.decision.mean_time_ms,
+            d.info_bits
+        );
+    }
+    let i = &v.information;
+    let _ = writeln!(
+        s,
+        "information (order statistics, window end): {:.3} bits (plug-in {:.3} − bias {:.3}); shuffle null 95% {:.3} bits, p = {:.4} ({} shuffles)",
+        i.bits, i.plugin_bits, i.bias_bits, i.null_95, i.p_value, v.shuffles
+    );
+    let _ = writeln!(
+        s,
+        "{:>6} {:>9} {:>10} {:>8}  best stimulus",
+        "unit", "accuracy", "info bits", "p"
+    );
+    for u in v.units_ranked.iter().take(10) {
+        let best = u
+            .cells
+            .iter()
+            .max_by(|a, b| a.mean.total_cmp(&b.mean))
+            .map(|c| c.stimulus.as_str())
+            .unwrap_or("");
+        let _ = writeln!(
+            s,
+            "{:>6} {:>8.1}% {:>10.3} {:>8.4}  {}",
+            u.unit,
+            100.0 * u.accuracy,
+            u.info.bits,
+            u.info.p_value,
+            best
+        );
+    }
+    if v.units_ranked.len() > 10 {
+        let _ = writeln!(
+            s,
+            "… {} more units in the report",
+            v.units_ranked.len() - 10
+        );
+    }
+    let g = &v.goodness_of_fit;
+    let _ = writeln!(
+        s,
+        "time-rescaling goodness of fit: {} of {} cells outside the 95% KS band{}",
+        g.cells_failed,
+        g.cells_tested,
+        if g.failed.is_empty() {
+            String::new()
+        } else {
+            format!(
+                ": {}",
+                g.failed
+                    .iter()
+                    .take(8)
+                    .map(|(u, s)| format!("{u}/{s}"))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ) + if g.failed.len() > 8 { ", …" } else { "" }
+        }
+    );
+    s
+}
