@@ -246,10 +246,10 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
     std::fs::create_dir_all(out_dir)
         .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;
     let model_path = out_dir.join("demo.apxm");
-    eprintln!("── 1/3 fitting the demo model (on {}) ──", demo.display());
+    eprintln!("── 1/4 fitting the demo model (on {}) ──", demo.display());
     let source = Source::tables(&sp, &tr);
     fit_cmd(&source, &model_path, 250.0, 1.0, "all", false, quiet)?;
-    eprintln!("── 2/3 decoding every trial with each decoder ──");
+    eprintln!("── 2/4 decoding every trial with each decoder ──");
     for dec in Decoder::ALL {
         let args = DecodeArgs {
             decoder: dec,
@@ -259,8 +259,24 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
         };
         decode_cmd(&model_path, &source, &out_dir.join(dec.name()), &args)?;
     }
-    eprintln!("── 3/3 exporting the model as JSON ──");
+    eprintln!("── 3/4 exporting the model as JSON ──");
     export_cmd(&model_path, Some(&out_dir.join("demo-model.json")))?;
+    eprintln!("── 4/4 cross-validating: accuracy against time, decisions, information, fit ──");
+    validate_cmd(
+        &source,
+        &out_dir.join("validation"),
+        &ValidateArgs {
+            window_ms: 250.0,
+            bin_ms: 1.0,
+            families: "all".into(),
+            folds: 5,
+            shuffles: 200,
+            seed: 1,
+            threshold: 0.9,
+            min_time_ms: 20.0,
+        },
+        quiet,
+    )?;
     Ok(model_path)
 }
 

@@ -34,6 +34,7 @@ struct Plot {
     x: (f64, f64),
     y: (f64, f64),
     svg: String,
+    xticks: bool,
 }
 
 fn nice_ticks(lo: f64, hi: f64, n: usize) -> Vec<f64> {
@@ -76,6 +77,7 @@ impl Plot {
             x,
             y,
             svg: String::new(),
+            xticks: true,
         }
     }
     fn sx(&self, x: f64) -> f64 {
@@ -100,7 +102,7 @@ impl Plot {
             x1 - x0,
             y0 - y1
         );
-        for t in nice_ticks(self.x.0, self.x.1, 6) {
+        for t in nice_ticks(self.x.0, self.x.1, 6).into_iter().filter(|_| self.xticks) {
             let px = self.sx(t);
             let _ = write!(
                 self.svg,
@@ -469,7 +471,8 @@ fn units_plot(v: &Validation) -> String {
             2.0,
             false,
         );
-        p.text(i as f64 + 0.15, -top * 0.06, &u.unit.to_string(), "#333");
+        let (lx, ly) = (p.sx(i as f64 + 0.5), p.sy(0.0) + 12.0);
+        let _ = write!(p.svg, r##"<text x="{lx:.1}" y="{ly:.1}" class="tk" text-anchor="end" transform="rotate(-60 {lx:.1} {ly:.1})">{}</text>"##, u.unit);
         p.dot(
             i as f64 + 0.5,
             u.info.bits,

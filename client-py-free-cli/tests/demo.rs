@@ -31,4 +31,15 @@ fn demo_runs_end_to_end_in_plain_mode() {
     let rec = auspex::wire::read_recording(&dir.path().join("demo-session.apxs")).unwrap();
     assert_eq!(rec.torn_tail_bytes, 0);
     assert_eq!(rec.dataset.trials.len(), 320);
+    // The validation step wrote its report and summary; timing beats count-only on the demo,
+    // where opposite directions share their counts.
+    assert!(dir.path().join("validation/report.html").exists());
+    let v: serde_json::Value = serde_json::from_str(
+        &std::fs::read_to_string(dir.path().join("validation/validation.json")).unwrap(),
+    )
+    .unwrap();
+    let acc = |i: usize| v["decoders"][i]["accuracy_end"]["accuracy"].as_f64().unwrap();
+    assert_eq!(v["decoders"][2]["decoder"], "count-only");
+    assert!(acc(0) > 0.9 && acc(2) < 0.7, "{} vs {}", acc(0), acc(2));
+    assert!(v["information"]["p_value"].as_f64().unwrap() < 0.01);
 }
