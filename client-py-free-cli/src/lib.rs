@@ -4,6 +4,7 @@
 //! fitting with progress, offline decoding, export, and the demo. `main.rs` is thin glue.
 #![deny(missing_docs)]
 
+pub mod bench;
 pub mod commands;
 pub mod export;
 pub mod fitting;

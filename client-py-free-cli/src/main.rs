@@ -181,6 +181,22 @@ enum Cmd {
         #[arg(long)]
         quiet: bool,
     },
+    /// Self-test this machine: how many units × stimuli it decodes in real time with 10×
+    /// headroom, and the batch → posterior latency over loopback (under a minute)
+    Bench {
+        /// Seconds of 1 kHz batches for each latency run
+        #[arg(long, default_value_t = 10.0)]
+        seconds: f64,
+        /// Units for the latency runs
+        #[arg(long, default_value_t = 256)]
+        units: usize,
+        /// Stimuli for the latency runs
+        #[arg(long, default_value_t = 32)]
+        stimuli: usize,
+        /// Also print the figures as JSON
+        #[arg(long)]
+        json: bool,
+    },
     /// Write a model as interchange JSON (the numbers the engine uses)
     Export {
         /// Model file
@@ -394,6 +410,18 @@ fn main() {
             quiet,
         )
         .map(|_| ()),
+        Cmd::Bench { seconds, units, stimuli, json } => runtime().and_then(|rt| {
+            rt.block_on(async {
+                if !(seconds > 0.0 && units > 0 && stimuli > 1) {
+                    anyhow::bail!("--seconds must be > 0, --units ≥ 1 and --stimuli ≥ 2");
+                }
+                let (points, lats) = auspex::bench::run(seconds, (units, stimuli)).await?;
+                if json {
+                    println!("{}", serde_json::json!({"engine": points, "latency": lats}));
+                }
+                Ok(())
+            })
+        }),
         Cmd::Export { model, out } => commands::export_cmd(&model, out.as_deref()),
         Cmd::Inspect { model } => commands::inspect_cmd(&model),
         Cmd::Demo { out_dir, quiet, speed, fast, plain, offline_only } => commands::demo_offline(&out_dir, quiet).and_then(|model| {

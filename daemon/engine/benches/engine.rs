@@ -1,6 +1,8 @@
 //! Per-bin engine update at several sizes, for each count family and decoder.
 //! One iteration decodes a whole 250-bin trial (open + 250 bins); criterion's throughput is in
 //! bins, so "elem/s" is bins per second and real time is 1000 bins/s at 1 ms bins.
+//! Each decoder runs on the summed path (the default) and on the per-cell reference path, so
+//! the before/after of the per-model sums is measured in one run.
 //! Run: `cargo bench -p auspex-engine --bench engine` (set AUSPEX_BENCH_LARGE=1 for 4096×64).
 
 use auspex_engine::count::CountParams;
@@ -83,24 +85,41 @@ fn bench(c: &mut Criterion) {
     }
     let mut g = c.benchmark_group("trial_250_bins");
     g.sample_size(10);
+    g.warm_up_time(std::time::Duration::from_secs(1));
+    g.measurement_time(std::time::Duration::from_secs(3));
     g.throughput(Throughput::Elements(BINS as u64));
     for &(nu, ns) in &sizes {
         let spikes = trial_spikes(nu);
         for family in ["poisson", "negative_binomial", "com_poisson", "empirical"] {
+            let table = family == "com_poisson" || family == "empirical";
+            if table && nu > 1024 {
+                continue; // tens of seconds per trial at 4096×64; measured up to 1024×64
+            }
             let m = model(nu, ns, family);
             let decoders: &[Decoder] = if family == "poisson" {
                 &Decoder::ALL
             } else {
                 &[Decoder::OrderStats]
             };
-            for &dec in decoders {
+            for (&dec, reference) in decoders
+                .iter()
+                .flat_map(|d| [(d, false), (d, true)])
+                .filter(|(d, _)| **d != Decoder::CountOnly)
+                // Table families do the same per-cell work on both paths.
+                .filter(|(_, r)| !(table && *r))
+            {
                 let mut cfg = EngineConfig::new(1000.0);
                 cfg.decoder = dec;
+                cfg.per_cell_reference = reference;
+                let path = if reference { "per-cell" } else { "summed" };
                 let mut e = Engine::new(m.clone(), cfg).unwrap();
                 let mut trial = 0u64;
                 let mut onset = 0i64;
                 g.bench_function(
-                    BenchmarkId::new(format!("{family}/{}", dec.name()), format!("{nu}x{ns}")),
+                    BenchmarkId::new(
+                        format!("{family}/{}/{path}", dec.name()),
+                        format!("{nu}x{ns}"),
+                    ),
                     |b| {
                         b.iter(|| {
                             trial += 1;

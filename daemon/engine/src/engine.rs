@@ -86,6 +86,10 @@ pub struct EngineConfig {
     pub prior: Option<Vec<f64>>,
     /// How far behind the watermark an onset may arrive and still be decoded, seconds.
     pub history_s: f64,
+    /// Evaluate every cell's count term every bin (the straightforward reference path) instead
+    /// of the per-model sums plus spiking units. Same mathematics, different summation order;
+    /// kept for benchmarks and cross-checks.
+    pub per_cell_reference: bool,
 }
 
 impl EngineConfig {
@@ -97,6 +101,7 @@ impl EngineConfig {
             policy: DecisionPolicy::default(),
             prior: None,
             history_s: 2.0,
+            per_cell_reference: false,
         }
     }
 }
@@ -325,6 +330,11 @@ struct TrialState {
     total_spikes: u32,
     /// Per (u, s): the count-dependent constant of the count term.
     cconst: Vec<f64>,
+    /// Per s: Σ_u cconst, kept in step with `cconst`.
+    cc_sum: Vec<f64>,
+    /// Units with at least one spike in the trial so far.
+    active: Vec<u32>,
+    reference: bool,
     /// Per (u, s): Σ ln q over the unit's spikes; at the end, the unit's full log-likelihood.
     unit_ll: Vec<f64>,
     pop_spike: Vec<f64>,
@@ -349,6 +359,9 @@ impl TrialState {
             k: vec![0; nu],
             total_spikes: 0,
             cconst: vec![0.0; nu * ns],
+            cc_sum: vec![0.0; ns],
+            active: Vec::with_capacity(nu),
+            reference: false,
             unit_ll: vec![0.0; nu * ns],
             pop_spike: vec![0.0; ns],
             post: vec![0.0; ns],
@@ -365,9 +378,13 @@ impl TrialState {
         self.unit_ll.iter_mut().for_each(|x| *x = 0.0);
         self.pop_spike.iter_mut().for_each(|x| *x = 0.0);
         self.decision = None;
+        self.active.clear();
+        self.cc_sum.iter_mut().for_each(|x| *x = 0.0);
         for u in 0..m.n_units() {
             for s in 0..ns {
-                self.cconst[u * ns + s] = count_const(&m, self.decoder, u, s, 0);
+                let c = count_const(&m, self.decoder, u, s, 0);
+                self.cconst[u * ns + s] = c;
+                self.cc_sum[s] += c;
             }
         }
     }
@@ -415,7 +432,9 @@ fn count_term(m: &Model, dec: Decoder, u: usize, s: usize, b: usize, k: u32, cco
         Decoder::CountOnly => m.dists[i].ln_pmf(k),
         Decoder::OrderStats => match m.kernels[i] {
             CellKernel::Poisson { mean, .. } => cconst + mean * m.surv[t],
-            CellKernel::NegBin { shape } => cconst - (shape + k as f64) * m.nb_g[t],
+            CellKernel::NegBin { shape } => {
+                cconst - (shape + k as f64) * m.nb_g[(b * m.n_units() + u) * ns + s]
+            }
             CellKernel::Table => m.dists[i].ln_gf_deriv(k, m.surv[t]),
         },
     }
@@ -648,6 +667,7 @@ impl Engine {
         st.onset = onset;
         st.presented = presented;
         st.decoder = self.config.decoder;
+        st.reference = self.config.per_cell_reference;
         st.threshold = self.config.policy.threshold;
         st.min_bin = self.min_bin;
         st.ln_prior.clone_from(&self.ln_prior);
@@ -940,6 +960,9 @@ fn run_bins(
                 continue;
             };
             t.k[u] += 1;
+            if t.k[u] == 1 {
+                t.active.push(u as u32);
+            }
             t.total_spikes += 1;
             let row = (u * nb + b) * ns;
             let k = t.k[u];
@@ -948,7 +971,9 @@ fn run_bins(
                 t.unit_ll[u * ns + s] += lq;
                 t.pop_spike[s] += lq;
                 let i = u * ns + s;
-                t.cconst[i] = next_count_const(&m, t.decoder, u, s, k, t.cconst[i]);
+                let old = t.cconst[i];
+                t.cconst[i] = next_count_const(&m, t.decoder, u, s, k, old);
+                t.cc_sum[s] += t.cconst[i] - old;
             }
         }
         // Posterior at the end of bin b.
@@ -966,7 +991,7 @@ fn run_bins(
                     }
                 }
             }
-            dec => {
+            dec if t.reference => {
                 for s in 0..ns {
                     t.post[s] = t.ln_prior[s] + t.pop_spike[s];
                 }
@@ -975,6 +1000,48 @@ fn run_bins(
                     let cc = &t.cconst[u * ns..(u + 1) * ns];
                     for s in 0..ns {
                         t.post[s] += count_term(&m, dec, u, s, b, k, cc[s]);
+                    }
+                }
+            }
+            Decoder::InhomogeneousPoisson => {
+                let sums = &m.rate_sum[b * ns..(b + 1) * ns];
+                for s in 0..ns {
+                    t.post[s] = t.ln_prior[s] + t.pop_spike[s] + t.cc_sum[s] + sums[s];
+                }
+            }
+            Decoder::OrderStats => {
+                let sums = &m.order_stats_sum[b * ns..(b + 1) * ns];
+                for s in 0..ns {
+                    t.post[s] = t.ln_prior[s] + t.pop_spike[s] + t.cc_sum[s] + sums[s];
+                }
+                // Negative binomial cells of units that have spiked: the k-dependent part.
+                for &u in &t.active {
+                    let u = u as usize;
+                    if !m.unit_has_negbin[u] {
+                        continue;
+                    }
+                    let k = t.k[u] as f64;
+                    let row = (b * nu + u) * ns;
+                    let g = &m.nb_g[row..row + ns];
+                    if m.unit_all_negbin[u] {
+                        for (p, g) in t.post.iter_mut().zip(g) {
+                            *p -= k * g;
+                        }
+                    } else {
+                        for s in 0..ns {
+                            if let CellKernel::NegBin { .. } = m.kernels[u * ns + s] {
+                                t.post[s] -= k * g[s];
+                            }
+                        }
+                    }
+                }
+                // Table families: the finite sum, for their cells only.
+                for &u in &m.table_units {
+                    let row = (u * nb + b) * ns;
+                    for s in 0..ns {
+                        if let CellKernel::Table = m.kernels[u * ns + s] {
+                            t.post[s] += m.dists[u * ns + s].ln_gf_deriv(t.k[u], m.surv[row + s]);
+                        }
                     }
                 }
             }

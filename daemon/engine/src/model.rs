@@ -93,10 +93,23 @@ pub struct Model {
     pub(crate) ln_q: Vec<f64>,
     /// S(b) = Σ_{b' > b} q(b'), laid out [u][b][s].
     pub(crate) surv: Vec<f64>,
-    /// Negative binomial: ln(1 − (1−p)·S(b)), laid out [u][b][s]; 0 for other families.
+    /// Negative binomial: ln(1 − (1−p)·S(b)), laid out [b][u][s] (the summed path reads one
+    /// bin's rows for every spiking unit, so they sit together); 0 for other families.
     pub(crate) nb_g: Vec<f64>,
     pub(crate) ln_prior: Vec<f64>,
     unit_index: HashMap<u32, u32>,
+    /// Σ_u of the count-independent part of every closed-form cell's count term, per [b][s]:
+    /// `μ·S(b)` for Poisson cells, `−r·ln(1 − (1−p)·S(b))` for negative binomial cells. With it
+    /// a bin costs O(S) plus the units that have spiked (and any table-family units).
+    pub(crate) order_stats_sum: Vec<f64>,
+    /// Σ_u μ_us·S_us(b) per [b][s]: the inhomogeneous Poisson decoder's whole silence term.
+    pub(crate) rate_sum: Vec<f64>,
+    /// Units with at least one negative binomial cell.
+    pub(crate) unit_has_negbin: Vec<bool>,
+    /// Units whose cells are all negative binomial (a branch-free, vectorisable loop).
+    pub(crate) unit_all_negbin: Vec<bool>,
+    /// Units with at least one table-family cell (COM-Poisson, empirical).
+    pub(crate) table_units: Vec<usize>,
 }
 
 impl Model {
@@ -186,7 +199,7 @@ impl Model {
                     let i = (u * nb + b) * ns + s;
                     ln_q[i] = (cell.timing[b] / qs).ln();
                     surv[i] = right;
-                    nb_g[i] = (1.0 - one_minus_p * right).ln();
+                    nb_g[(b * nu + u) * ns + s] = (1.0 - one_minus_p * right).ln();
                     right += cell.timing[b] / qs;
                 }
                 kernels.push(match d.params() {
@@ -204,6 +217,37 @@ impl Model {
         }
         let means: Vec<f64> = dists.iter().map(|d| d.mean().max(1e-12)).collect();
         let ln_means = means.iter().map(|m| m.ln()).collect();
+        let mut order_stats_sum = vec![0.0; nb * ns];
+        let mut rate_sum = vec![0.0; nb * ns];
+        let mut unit_has_negbin = vec![false; nu];
+        let mut unit_all_negbin = vec![true; nu];
+        let mut table_units = Vec::new();
+        for u in 0..nu {
+            let mut has_table = false;
+            for s in 0..ns {
+                let i = u * ns + s;
+                for b in 0..nb {
+                    let t = (u * nb + b) * ns + s;
+                    rate_sum[b * ns + s] += means[i] * surv[t];
+                    order_stats_sum[b * ns + s] += match kernels[i] {
+                        CellKernel::Poisson { mean, .. } => mean * surv[t],
+                        CellKernel::NegBin { shape } => -shape * nb_g[(b * nu + u) * ns + s],
+                        CellKernel::Table => 0.0,
+                    };
+                }
+                match kernels[i] {
+                    CellKernel::NegBin { .. } => unit_has_negbin[u] = true,
+                    CellKernel::Table => has_table = true,
+                    CellKernel::Poisson { .. } => {}
+                }
+                if !matches!(kernels[i], CellKernel::NegBin { .. }) {
+                    unit_all_negbin[u] = false;
+                }
+            }
+            if has_table {
+                table_units.push(u);
+            }
+        }
         Ok(Model {
             n_units: nu,
             n_stim: ns,
@@ -218,6 +262,11 @@ impl Model {
             nb_g,
             ln_prior,
             unit_index,
+            order_stats_sum,
+            rate_sum,
+            unit_has_negbin,
+            unit_all_negbin,
+            table_units,
         })
     }
 

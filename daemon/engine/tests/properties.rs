@@ -81,8 +81,20 @@ fn run_announced(
     step: i64,
     announce: i64,
 ) -> Frames {
+    run_with(m, dec, spikes, step, announce, false)
+}
+
+fn run_with(
+    m: &Arc<Model>,
+    dec: Decoder,
+    spikes: &[(u32, i64)],
+    step: i64,
+    announce: i64,
+    reference: bool,
+) -> Frames {
     let mut cfg = EngineConfig::new(1000.0);
     cfg.decoder = dec;
+    cfg.per_cell_reference = reference;
     let mut e = Engine::new(m.clone(), cfg).unwrap();
     let mut out = Frames::default();
     e.open_trial(1, 0, None, &mut out).unwrap();
@@ -149,6 +161,27 @@ proptest! {
             a.sort_by_key(|x| (x.0, x.1));
             b.sort_by_key(|x| (x.0, x.1));
             prop_assert_eq!(a, b);
+        }
+    }
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 64, .. ProptestConfig::default() })]
+
+    /// The per-model sums (O(S) per bin plus spiking units) give the per-cell reference's
+    /// posteriors up to summation order.
+    #[test]
+    fn summed_path_matches_the_per_cell_reference(m in model_strategy(), spikes in proptest::collection::vec((0u32..4, 0i64..40), 0..60)) {
+        for dec in Decoder::ALL {
+            let a = run_with(&m, dec, &spikes, 3, -1, false).0;
+            let b = run_with(&m, dec, &spikes, 3, -1, true).0;
+            prop_assert_eq!(a.len(), b.len());
+            for (x, y) in a.iter().zip(&b) {
+                prop_assert_eq!((x.0, x.1), (y.0, y.1));
+                for (p, q) in x.2.iter().zip(&y.2) {
+                    prop_assert!((p - q).abs() < 1e-9, "{} vs {}", p, q);
+                }
+            }
         }
     }
 }

@@ -1,0 +1,329 @@
+//! `bench`: a short self-test of the user's machine. It decodes synthetic trials at growing
+//! sizes to find how many units × stimuli this machine decodes in real time with 10× headroom,
+//! then runs a daemon on loopback and measures spike-batch → posterior-frame latency at 1 kHz
+//! batches. The figures are for this machine as it is loaded right now.
+
+use auspex_engine::count::CountParams;
+use auspex_engine::engine::{Engine, EngineConfig, NullSink};
+use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
+use auspex_proto::v1::{self, inbound::Body};
+use bytes::Bytes;
+use prost::Message;
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+use zeromq::{Socket, SocketRecv, SocketSend, ZmqMessage};
+
+/// Window bins of the synthetic models (250 ms at 1 ms).
+const BINS: usize = 250;
+/// Mean spikes per unit per window: 4 in 250 ms, i.e. 16 spikes/s.
+const MEAN_COUNT: f64 = 4.0;
+
+/// A synthetic model: negative binomial counts (the family real units most often need) and a
+/// response bump at a unit- and stimulus-dependent latency.
+pub fn synthetic_model(nu: usize, ns: usize) -> Arc<Model> {
+    let mut cells = Vec::with_capacity(nu * ns);
+    for u in 0..nu {
+        for s in 0..ns {
+            let mean = MEAN_COUNT * (0.6 + 0.8 * (((u * 7 + s * 3) % 11) as f64 / 10.0));
+            let centre = 20.0 + ((u + 2 * s) % 9) as f64 * 20.0;
+            let q: Vec<f64> = (0..BINS)
+                .map(|b| 0.3 + (-((b as f64 - centre) / 15.0).powi(2)).exp())
+                .collect();
+            let z: f64 = q.iter().sum();
+            cells.push(CellSpec {
+                count: CountParams::NegativeBinomial { mean, shape: 6.0 },
+                timing: q.iter().map(|x| x / z).collect(),
+                summary: CellSummary::default(),
+            });
+        }
+    }
+    Arc::new(
+        Model::new(ModelSpec {
+            bin_width_s: 0.001,
+            n_bins: BINS as u32,
+            stimuli: (0..ns).map(|s| format!("s{s}")).collect(),
+            units: (0..nu as u32).collect(),
+            prior: vec![1.0; ns],
+            cells,
+        })
+        .expect("synthetic model is valid"),
+    )
+}
+
+/// Spike bins of one trial: every unit fires about `MEAN_COUNT` spikes (deterministic LCG).
+fn trial_spikes(nu: usize, seed: u64) -> Vec<Vec<u32>> {
+    let mut per_bin = vec![Vec::new(); BINS];
+    let mut x = seed.wrapping_mul(2862933555777941757).wrapping_add(3037000493);
+    for u in 0..nu {
+        for _ in 0..MEAN_COUNT as usize {
+            x = x
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            per_bin[(x >> 33) as usize % BINS].push(u as u32);
+        }
+    }
+    per_bin
+}
+
+/// Engine cost at one size.
+#[derive(Clone, Debug, serde::Serialize)]
+pub struct EnginePoint {
+    /// Units.
+    pub units: usize,
+    /// Stimuli.
+    pub stimuli: usize,
+    /// Median time per 1 ms bin, µs (over trials).
+    pub us_per_bin: f64,
+    /// Real time / time per bin.
+    pub headroom: f64,
+}
+
+/// Times whole trials at one size for about `budget`; median µs per bin.
+pub fn engine_point(nu: usize, ns: usize, budget: Duration) -> EnginePoint {
+    let m = synthetic_model(nu, ns);
+    let mut e = Engine::new(m, EngineConfig::new(1000.0)).expect("engine");
+    let spikes: Vec<Vec<Vec<u32>>> = (0..4).map(|i| trial_spikes(nu, i)).collect();
+    let mut per_bin = Vec::new();
+    let t_all = Instant::now();
+    let mut trial = 0u64;
+    while (t_all.elapsed() < budget || per_bin.len() < 3) && per_bin.len() < 200 {
+        trial += 1;
+        let onset = trial as i64 * 1000;
+        let sp = &spikes[trial as usize % spikes.len()];
+        let t0 = Instant::now();
+        let _ = e.open_trial(trial, onset, Some(0), &mut NullSink);
+        for (b, units) in sp.iter().enumerate() {
+            for &u in units {
+                let _ = e.spike(u, onset + b as i64);
+            }
+            let _ = e.advance(onset + b as i64, &mut NullSink);
+        }
+        per_bin.push(t0.elapsed().as_secs_f64() * 1e6 / BINS as f64);
+    }
+    per_bin.sort_by(|a, b| a.total_cmp(b));
+    let us = per_bin[per_bin.len() / 2];
+    EnginePoint {
+        units: nu,
+        stimuli: ns,
+        us_per_bin: us,
+        headroom: 1000.0 / us,
+    }
+}
+
+/// Latency percentiles, µs.
+#[derive(Clone, Debug, serde::Serialize)]
+pub struct Latency {
+    /// Transport.
+    pub transport: String,
+    /// Frames measured.
+    pub frames: usize,
+    /// Median.
+    pub p50_us: f64,
+    /// 99th percentile.
+    pub p99_us: f64,
+    /// 99.9th percentile.
+    pub p999_us: f64,
+    /// Worst.
+    pub max_us: f64,
+    /// Batches sent.
+    pub batches: usize,
+}
+
+fn pct(sorted: &[f64], p: f64) -> f64 {
+    if sorted.is_empty() {
+        return f64::NAN;
+    }
+    sorted[((sorted.len() as f64 * p).ceil() as usize).clamp(1, sorted.len()) - 1]
+}
+
+/// Runs a daemon in this process on loopback (`tcp` or `ipc`), streams `seconds` of 1 kHz
+/// spike batches for `nu` units at about 16 spikes/s each, trials back to back (250 ms window,
+/// 50 ms gap), and measures the time from handing each batch to the sending socket to receiving
+/// the posterior frame of the bin it completes.
+pub async fn latency(
+    nu: usize,
+    ns: usize,
+    seconds: f64,
+    transport: &str,
+    dir: &std::path::Path,
+) -> anyhow::Result<Latency> {
+    let model_path = dir.join(format!("bench-{nu}x{ns}.apxm"));
+    auspexd::model_file::save_model(&model_path, synthetic_model(nu, ns).spec(), "auspex bench")?;
+    let ep = |name: &str| match transport {
+        "ipc" => format!("ipc://{}/{name}.sock", dir.display()),
+        _ => "tcp://127.0.0.1:0".to_string(),
+    };
+    let fc = auspexd::config::FileConfig {
+        model: Some(model_path),
+        ingest: Some(ep("ingest")),
+        task_ingest: Some(String::new()),
+        publish: Some(ep("publish")),
+        control: Some(ep("control")),
+        tick_rate_hz: Some(1e6),
+        ..Default::default()
+    };
+    let cfg = auspexd::config::validate(fc, &mut Vec::new()).map_err(|e| anyhow::anyhow!(e))?;
+    let running = auspexd::service::start(cfg).await?;
+    let eps = running.endpoints.clone();
+    let mut sub = zeromq::SubSocket::new();
+    sub.connect(&eps.publish).await?;
+    sub.subscribe(auspex_proto::topic::POSTERIOR).await?;
+    let mut push = zeromq::PushSocket::new();
+    push.connect(&eps.ingest).await?;
+    tokio::time::sleep(Duration::from_millis(300)).await;
+
+    let n_batches = (seconds * 1000.0).round() as usize;
+    let sent: Arc<std::sync::Mutex<Vec<Option<Instant>>>> =
+        Arc::new(std::sync::Mutex::new(vec![None; n_batches + 1]));
+    let recv_sent = sent.clone();
+    let receiver = tokio::spawn(async move {
+        let mut lat = Vec::new();
+        loop {
+            let m = match tokio::time::timeout(Duration::from_secs(2), sub.recv()).await {
+                Ok(Ok(m)) => m,
+                _ => break,
+            };
+            let now = Instant::now();
+            let Some(payload) = m.into_vec().pop() else { continue };
+            let Ok(out) = v1::Outbound::decode(payload.as_ref()) else { continue };
+            if let Some(v1::outbound::Body::Posterior(p)) = out.body {
+                // Bin ends and batch watermarks are both at k·1000 − 1 ticks.
+                let i = ((p.bin_end_tick + 1) / 1000) as usize;
+                if let Some(Some(t)) = recv_sent.lock().ok().and_then(|v| v.get(i).copied()) {
+                    lat.push(now.duration_since(t).as_secs_f64() * 1e6);
+                }
+            }
+        }
+        lat
+    });
+
+    let mut seq = 0u64;
+    let mut send = |body: Body| {
+        seq += 1;
+        v1::Inbound {
+            sender: "bench".into(),
+            seq,
+            body: Some(body),
+        }
+        .encode_to_vec()
+    };
+    let start_msg = send(Body::SessionStart(v1::SessionStart {
+        tick_rate_hz: 1e6,
+        units: (0..nu as u32).collect(),
+        session_name: "bench".into(),
+    }));
+    push.send(ZmqMessage::from(Bytes::from(start_msg))).await?;
+    let mut x = 0x9e3779b97f4a7c15u64;
+    let per_ms = MEAN_COUNT / BINS as f64 * nu as f64;
+    let t0 = tokio::time::Instant::now();
+    let mut trial = 0u64;
+    for i in 1..=n_batches {
+        let ms = i as i64; // this batch covers ticks [(i−1)·1000, i·1000)
+        if (ms - 1) % 300 == 0 {
+            trial += 1;
+            let b = send(Body::Onset(v1::TrialOnset {
+                trial,
+                onset_tick: (ms - 1) * 1000,
+                stimulus: "s0".into(),
+            }));
+            push.send(ZmqMessage::from(Bytes::from(b))).await?;
+        }
+        // Poisson-ish number of spikes this ms (about `per_ms`).
+        let mut units = Vec::new();
+        let mut ticks = Vec::new();
+        let mut budget = per_ms;
+        while budget > 0.0 {
+            x = x
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            let r = (x >> 11) as f64 / (1u64 << 53) as f64;
+            if r < budget.min(1.0) {
+                units.push(((x >> 20) % nu as u64) as u32);
+                ticks.push((ms - 1) * 1000 + ((x >> 40) % 1000) as i64);
+            }
+            budget -= 1.0;
+        }
+        ticks.sort_unstable();
+        let body = send(Body::Spikes(v1::SpikeBatch {
+            units,
+            ticks,
+            complete_through: ms * 1000 - 1,
+        }));
+        tokio::time::sleep_until(t0 + Duration::from_micros(i as u64 * 1000)).await;
+        if let Ok(mut v) = sent.lock() {
+            v[i] = Some(Instant::now());
+        }
+        push.send(ZmqMessage::from(Bytes::from(body))).await?;
+    }
+    let mut lat = receiver.await?;
+    running.stop().await;
+    lat.sort_by(|a, b| a.total_cmp(b));
+    Ok(Latency {
+        transport: transport.to_string(),
+        frames: lat.len(),
+        p50_us: pct(&lat, 0.5),
+        p99_us: pct(&lat, 0.99),
+        p999_us: pct(&lat, 0.999),
+        max_us: lat.last().copied().unwrap_or(f64::NAN),
+        batches: n_batches,
+    })
+}
+
+/// The size ladder the self-test climbs.
+pub const LADDER: [(usize, usize); 7] = [
+    (64, 8),
+    (128, 16),
+    (256, 32),
+    (512, 32),
+    (1024, 64),
+    (2048, 64),
+    (4096, 64),
+];
+
+/// Runs the self-test and prints the answer. Returns the engine points and latencies.
+pub async fn run(
+    latency_seconds: f64,
+    latency_size: (usize, usize),
+) -> anyhow::Result<(Vec<EnginePoint>, Vec<Latency>)> {
+    let t0 = Instant::now();
+    eprintln!("auspex bench: engine per-bin cost (order statistics, negative binomial counts, ~16 spikes/s per unit)");
+    println!("{:>6} × {:<4} {:>12} {:>10}", "units", "stim", "µs per bin", "headroom");
+    let mut points = Vec::new();
+    for &(nu, ns) in &LADDER {
+        let p = tokio::task::spawn_blocking(move || engine_point(nu, ns, Duration::from_millis(600)))
+            .await?;
+        println!(
+            "{:>6} × {:<4} {:>12.1} {:>9.1}×",
+            p.units, p.stimuli, p.us_per_bin, p.headroom
+        );
+        let stop = p.headroom < 2.0;
+        points.push(p);
+        if stop {
+            break;
+        }
+    }
+    let best = points.iter().filter(|p| p.headroom >= 10.0).last();
+    match best {
+        Some(b) => println!(
+            "→ this machine decodes {} units × {} stimuli in real time with ≥ 10× headroom ({:.1} µs per 1 ms bin)",
+            b.units, b.stimuli, b.us_per_bin
+        ),
+        None => println!("→ even {} × {} does not reach 10× headroom here", LADDER[0].0, LADDER[0].1),
+    }
+    let dir = tempfile::tempdir()?;
+    let mut lats = Vec::new();
+    for transport in ["tcp", "ipc"] {
+        eprintln!(
+            "latency over {transport} loopback: {} units × {} stimuli, 1 kHz batches for {latency_seconds} s …",
+            latency_size.0, latency_size.1
+        );
+        let l = latency(latency_size.0, latency_size.1, latency_seconds, transport, dir.path()).await?;
+        println!(
+            "batch → posterior frame over {}: p50 {:.0} µs, p99 {:.0} µs, p99.9 {:.0} µs, worst {:.0} µs ({} frames)",
+            l.transport, l.p50_us, l.p99_us, l.p999_us, l.max_us, l.frames
+        );
+        lats.push(l);
+    }
+    eprintln!("bench finished in {:.1} s", t0.elapsed().as_secs_f64());
+    Ok((points, lats))
+}
