@@ -53,7 +53,9 @@ pub fn synthetic_model(nu: usize, ns: usize) -> Arc<Model> {
 /// Spike bins of one trial: every unit fires about `MEAN_COUNT` spikes (deterministic LCG).
 fn trial_spikes(nu: usize, seed: u64) -> Vec<Vec<u32>> {
     let mut per_bin = vec![Vec::new(); BINS];
-    let mut x = seed.wrapping_mul(2862933555777941757).wrapping_add(3037000493);
+    let mut x = seed
+        .wrapping_mul(2862933555777941757)
+        .wrapping_add(3037000493);
     for u in 0..nu {
         for _ in 0..MEAN_COUNT as usize {
             x = x
@@ -136,6 +138,88 @@ fn pct(sorted: &[f64], p: f64) -> f64 {
     sorted[((sorted.len() as f64 * p).ceil() as usize).clamp(1, sorted.len()) - 1]
 }
 
+/// The inbound messages of a latency run, encoded: SessionStart, then per 1 ms batch `i`
+/// (1-based) possibly a trial onset (trials back to back: 250 ms window, 50 ms gap) and the
+/// spike batch with watermark `i·1000 − 1`, marked `Some(i)` so the sender can time it. About
+/// 16 spikes/s per unit, deterministic.
+pub fn latency_messages(nu: usize, n_batches: usize) -> Vec<(Option<usize>, Vec<u8>)> {
+    let mut out = Vec::with_capacity(n_batches + n_batches / 300 + 2);
+    let mut seq = 0u64;
+    let mut enc = |body: Body| {
+        seq += 1;
+        v1::Inbound {
+            sender: "bench".into(),
+            seq,
+            body: Some(body),
+        }
+        .encode_to_vec()
+    };
+    out.push((
+        None,
+        enc(Body::SessionStart(v1::SessionStart {
+            tick_rate_hz: 1e6,
+            units: (0..nu as u32).collect(),
+            session_name: "bench".into(),
+        })),
+    ));
+    let mut x = 0x9e3779b97f4a7c15u64;
+    let per_ms = MEAN_COUNT / BINS as f64 * nu as f64;
+    let mut trial = 0u64;
+    for i in 1..=n_batches {
+        let ms = i as i64; // this batch covers ticks [(i−1)·1000, i·1000)
+        if (ms - 1) % 300 == 0 {
+            trial += 1;
+            out.push((
+                None,
+                enc(Body::Onset(v1::TrialOnset {
+                    trial,
+                    onset_tick: (ms - 1) * 1000,
+                    stimulus: "s0".into(),
+                })),
+            ));
+        }
+        let mut spikes = Vec::new();
+        let mut budget = per_ms;
+        while budget > 0.0 {
+            x = x
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            let r = (x >> 11) as f64 / (1u64 << 53) as f64;
+            if r < budget.min(1.0) {
+                spikes.push((
+                    (ms - 1) * 1000 + ((x >> 40) % 1000) as i64,
+                    ((x >> 20) % nu as u64) as u32,
+                ));
+            }
+            budget -= 1.0;
+        }
+        spikes.sort_unstable();
+        out.push((
+            Some(i),
+            enc(Body::Spikes(v1::SpikeBatch {
+                units: spikes.iter().map(|s| s.1).collect(),
+                ticks: spikes.iter().map(|s| s.0).collect(),
+                complete_through: ms * 1000 - 1,
+            })),
+        ));
+    }
+    out
+}
+
+/// Latency percentiles from per-frame latencies (µs).
+pub fn summarise(transport: &str, mut lat: Vec<f64>, batches: usize) -> Latency {
+    lat.sort_by(|a, b| a.total_cmp(b));
+    Latency {
+        transport: transport.to_string(),
+        frames: lat.len(),
+        p50_us: pct(&lat, 0.5),
+        p99_us: pct(&lat, 0.99),
+        p999_us: pct(&lat, 0.999),
+        max_us: lat.last().copied().unwrap_or(f64::NAN),
+        batches,
+    }
+}
+
 /// Runs a daemon in this process on loopback (`tcp` or `ipc`), streams `seconds` of 1 kHz
 /// spike batches for `nu` units at about 16 spikes/s each, trials back to back (250 ms window,
 /// 50 ms gap), and measures the time from handing each batch to the sending socket to receiving
@@ -184,8 +268,12 @@ pub async fn latency(
                 _ => break,
             };
             let now = Instant::now();
-            let Some(payload) = m.into_vec().pop() else { continue };
-            let Ok(out) = v1::Outbound::decode(payload.as_ref()) else { continue };
+            let Some(payload) = m.into_vec().pop() else {
+                continue;
+            };
+            let Ok(out) = v1::Outbound::decode(payload.as_ref()) else {
+                continue;
+            };
             if let Some(v1::outbound::Body::Posterior(p)) = out.body {
                 // Bin ends and batch watermarks are both at k·1000 − 1 ticks.
                 let i = ((p.bin_end_tick + 1) / 1000) as usize;
@@ -197,76 +285,19 @@ pub async fn latency(
         lat
     });
 
-    let mut seq = 0u64;
-    let mut send = |body: Body| {
-        seq += 1;
-        v1::Inbound {
-            sender: "bench".into(),
-            seq,
-            body: Some(body),
-        }
-        .encode_to_vec()
-    };
-    let start_msg = send(Body::SessionStart(v1::SessionStart {
-        tick_rate_hz: 1e6,
-        units: (0..nu as u32).collect(),
-        session_name: "bench".into(),
-    }));
-    push.send(ZmqMessage::from(Bytes::from(start_msg))).await?;
-    let mut x = 0x9e3779b97f4a7c15u64;
-    let per_ms = MEAN_COUNT / BINS as f64 * nu as f64;
     let t0 = tokio::time::Instant::now();
-    let mut trial = 0u64;
-    for i in 1..=n_batches {
-        let ms = i as i64; // this batch covers ticks [(i−1)·1000, i·1000)
-        if (ms - 1) % 300 == 0 {
-            trial += 1;
-            let b = send(Body::Onset(v1::TrialOnset {
-                trial,
-                onset_tick: (ms - 1) * 1000,
-                stimulus: "s0".into(),
-            }));
-            push.send(ZmqMessage::from(Bytes::from(b))).await?;
-        }
-        // Poisson-ish number of spikes this ms (about `per_ms`).
-        let mut units = Vec::new();
-        let mut ticks = Vec::new();
-        let mut budget = per_ms;
-        while budget > 0.0 {
-            x = x
-                .wrapping_mul(6364136223846793005)
-                .wrapping_add(1442695040888963407);
-            let r = (x >> 11) as f64 / (1u64 << 53) as f64;
-            if r < budget.min(1.0) {
-                units.push(((x >> 20) % nu as u64) as u32);
-                ticks.push((ms - 1) * 1000 + ((x >> 40) % 1000) as i64);
+    for (batch, bytes) in latency_messages(nu, n_batches) {
+        if let Some(i) = batch {
+            tokio::time::sleep_until(t0 + Duration::from_micros(i as u64 * 1000)).await;
+            if let Ok(mut v) = sent.lock() {
+                v[i] = Some(Instant::now());
             }
-            budget -= 1.0;
         }
-        ticks.sort_unstable();
-        let body = send(Body::Spikes(v1::SpikeBatch {
-            units,
-            ticks,
-            complete_through: ms * 1000 - 1,
-        }));
-        tokio::time::sleep_until(t0 + Duration::from_micros(i as u64 * 1000)).await;
-        if let Ok(mut v) = sent.lock() {
-            v[i] = Some(Instant::now());
-        }
-        push.send(ZmqMessage::from(Bytes::from(body))).await?;
+        push.send(ZmqMessage::from(Bytes::from(bytes))).await?;
     }
-    let mut lat = receiver.await?;
+    let lat = receiver.await?;
     running.stop().await;
-    lat.sort_by(|a, b| a.total_cmp(b));
-    Ok(Latency {
-        transport: transport.to_string(),
-        frames: lat.len(),
-        p50_us: pct(&lat, 0.5),
-        p99_us: pct(&lat, 0.99),
-        p999_us: pct(&lat, 0.999),
-        max_us: lat.last().copied().unwrap_or(f64::NAN),
-        batches: n_batches,
-    })
+    Ok(summarise(transport, lat, n_batches))
 }
 
 /// The size ladder the self-test climbs.
@@ -287,11 +318,15 @@ pub async fn run(
 ) -> anyhow::Result<(Vec<EnginePoint>, Vec<Latency>)> {
     let t0 = Instant::now();
     eprintln!("auspex bench: engine per-bin cost (order statistics, negative binomial counts, ~16 spikes/s per unit)");
-    println!("{:>6} × {:<4} {:>12} {:>10}", "units", "stim", "µs per bin", "headroom");
+    println!(
+        "{:>6} × {:<4} {:>12} {:>10}",
+        "units", "stim", "µs per bin", "headroom"
+    );
     let mut points = Vec::new();
     for &(nu, ns) in &LADDER {
-        let p = tokio::task::spawn_blocking(move || engine_point(nu, ns, Duration::from_millis(600)))
-            .await?;
+        let p =
+            tokio::task::spawn_blocking(move || engine_point(nu, ns, Duration::from_millis(600)))
+                .await?;
         println!(
             "{:>6} × {:<4} {:>12.1} {:>9.1}×",
             p.units, p.stimuli, p.us_per_bin, p.headroom
@@ -317,7 +352,14 @@ pub async fn run(
             "latency over {transport} loopback: {} units × {} stimuli, 1 kHz batches for {latency_seconds} s …",
             latency_size.0, latency_size.1
         );
-        let l = latency(latency_size.0, latency_size.1, latency_seconds, transport, dir.path()).await?;
+        let l = latency(
+            latency_size.0,
+            latency_size.1,
+            latency_seconds,
+            transport,
+            dir.path(),
+        )
+        .await?;
         println!(
             "batch → posterior frame over {}: p50 {:.0} µs, p99 {:.0} µs, p99.9 {:.0} µs, worst {:.0} µs ({} frames)",
             l.transport, l.p50_us, l.p99_us, l.p999_us, l.max_us, l.frames

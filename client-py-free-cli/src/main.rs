@@ -431,7 +431,9 @@ fn main() {
             eprintln!("── live: starting the daemon and replaying the demo session {} ──", if fast { "as fast as it goes".to_string() } else { format!("at {speed}× real time") });
             let pace = if fast { Pace::Max } else { Pace::Speed(speed) };
             let view = if plain { View::Lines } else { View::auto() };
-            runtime()?.block_on(auspex::session::live_demo(&model, &out_dir, pace, view))
+            runtime()?.block_on(auspex::session::live_demo(&model, &out_dir, pace, view))?;
+            eprintln!("validation report: {} (open it in a browser)", out_dir.join("validation").join("report.html").display());
+            Ok(())
         }),
         Cmd::Daemon { args } => std::process::exit(auspexd::cli::run_cli(args)),
         Cmd::Replay { session, spikes, trials, to, control, speed, fast, sender } => runtime().and_then(|rt| {

@@ -102,7 +102,10 @@ impl Plot {
             x1 - x0,
             y0 - y1
         );
-        for t in nice_ticks(self.x.0, self.x.1, 6).into_iter().filter(|_| self.xticks) {
+        for t in nice_ticks(self.x.0, self.x.1, 6)
+            .into_iter()
+            .filter(|_| self.xticks)
+        {
             let px = self.sx(t);
             let _ = write!(
                 self.svg,
@@ -472,7 +475,11 @@ fn units_plot(v: &Validation) -> String {
             false,
         );
         let (lx, ly) = (p.sx(i as f64 + 0.5), p.sy(0.0) + 12.0);
-        let _ = write!(p.svg, r##"<text x="{lx:.1}" y="{ly:.1}" class="tk" text-anchor="end" transform="rotate(-60 {lx:.1} {ly:.1})">{}</text>"##, u.unit);
+        let _ = write!(
+            p.svg,
+            r##"<text x="{lx:.1}" y="{ly:.1}" class="tk" text-anchor="end" transform="rotate(-60 {lx:.1} {ly:.1})">{}</text>"##,
+            u.unit
+        );
         p.dot(
             i as f64 + 0.5,
             u.info.bits,

@@ -38,7 +38,11 @@ fn demo_runs_end_to_end_in_plain_mode() {
         &std::fs::read_to_string(dir.path().join("validation/validation.json")).unwrap(),
     )
     .unwrap();
-    let acc = |i: usize| v["decoders"][i]["accuracy_end"]["accuracy"].as_f64().unwrap();
+    let acc = |i: usize| {
+        v["decoders"][i]["accuracy_end"]["accuracy"]
+            .as_f64()
+            .unwrap()
+    };
     assert_eq!(v["decoders"][2]["decoder"], "count-only");
     assert!(acc(0) > 0.9 && acc(2) < 0.7, "{} vs {}", acc(0), acc(2));
     assert!(v["information"]["p_value"].as_f64().unwrap() < 0.01);

@@ -54,7 +54,11 @@ fn timing_beats_count_only_and_information_is_significant() {
     // Opposite directions share their counts: count-only is near 50% on four stimuli, timing
     // separates them. Intervals must not overlap.
     assert!(os.lo > co.hi, "order-stats {os:?} vs count-only {co:?}");
-    assert!(v.information.p_value <= 1.0 / 201.0 + 1e-12, "{:?}", v.information.p_value);
+    assert!(
+        v.information.p_value <= 1.0 / 201.0 + 1e-12,
+        "{:?}",
+        v.information.p_value
+    );
     assert!(v.information.bits > v.information.null_95);
     // Per-unit figures exist for every unit, ranked.
     assert_eq!(v.units_ranked.len(), 10);
@@ -65,7 +69,10 @@ fn timing_beats_count_only_and_information_is_significant() {
     // Every curve has a point per bin and intervals around the estimate.
     for d in &v.decoders {
         assert_eq!(d.curve.len(), 250);
-        assert!(d.curve.iter().all(|c| c.lo <= c.accuracy && c.accuracy <= c.hi));
+        assert!(d
+            .curve
+            .iter()
+            .all(|c| c.lo <= c.accuracy && c.accuracy <= c.hi));
     }
     // JSON round trip holds the same figures.
     let j: serde_json::Value = serde_json::from_str(&serde_json::to_string(&v).unwrap()).unwrap();
@@ -215,7 +222,10 @@ fn report_is_well_formed_and_renders_in_headless_chromium() {
             "--window-size=1400,1800",
         ])
         .arg(format!("--screenshot={}", shot.display()))
-        .arg(format!("file://{}", dir.path().join("report.html").display()))
+        .arg(format!(
+            "file://{}",
+            dir.path().join("report.html").display()
+        ))
         .output()
         .unwrap();
     assert!(

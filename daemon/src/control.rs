@@ -34,8 +34,11 @@ async fn handle(bytes: &[u8], tx: &Sender<EngineInput>) -> ControlReply {
         None => return error_reply("empty request"),
         Some(Body::Reload(r)) => {
             let path = std::path::PathBuf::from(&r.path);
-            let loaded =
-                tokio::task::spawn_blocking(move || crate::model_file::load_model(&path)).await;
+            let loaded = tokio::task::spawn_blocking(move || {
+                // Build the model's lookup tables here, off the engine thread.
+                crate::model_file::load_model(&path).inspect(|(_, m)| m.prepare())
+            })
+            .await;
             match loaded {
                 Ok(Ok((_, model))) => EngineInput::Reload {
                     model: Arc::new(model),

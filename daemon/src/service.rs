@@ -52,6 +52,7 @@ pub struct StopSummary {
 /// Binds and starts everything.
 pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
     let (_, model) = crate::model_file::load_model(&cfg.model)?;
+    model.prepare();
     let model = Arc::new(model);
     let (engine_tx, engine_rx) = crossbeam_channel::bounded(cfg.engine_queue);
     let (pub_tx, pub_rx) = tokio::sync::mpsc::channel(cfg.publish_queue);

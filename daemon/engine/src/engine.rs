@@ -494,6 +494,7 @@ impl Engine {
     /// A new engine for `model` with `config`.
     pub fn new(model: Arc<Model>, config: EngineConfig) -> Result<Self, EngineError> {
         let bin_ticks = bin_ticks_for(&model, config.tick_rate_hz)?;
+        model.prepare();
         let mut e = Engine {
             tally: UnitTally::new(model.units(), model.n_stimuli()),
             ln_prior: model.ln_prior().to_vec(),
@@ -590,6 +591,7 @@ impl Engine {
     /// A prior override that no longer fits the stimuli is dropped.
     pub fn set_model(&mut self, model: Arc<Model>) -> Result<(), EngineError> {
         let bt = bin_ticks_for(&model, self.config.tick_rate_hz)?;
+        model.prepare();
         let same_shape =
             model.units() == self.model.units() && model.stimuli() == self.model.stimuli();
         if !same_shape {
@@ -1037,10 +1039,9 @@ fn run_bins(
                 }
                 // Table families: the finite sum, for their cells only.
                 for &u in &m.table_units {
-                    let row = (u * nb + b) * ns;
                     for s in 0..ns {
                         if let CellKernel::Table = m.kernels[u * ns + s] {
-                            t.post[s] += m.dists[u * ns + s].ln_gf_deriv(t.k[u], m.surv[row + s]);
+                            t.post[s] += m.table_term(u * ns + s, u, s, b, t.k[u]);
                         }
                     }
                 }

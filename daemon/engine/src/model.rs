@@ -110,6 +110,20 @@ pub struct Model {
     pub(crate) unit_all_negbin: Vec<bool>,
     /// Units with at least one table-family cell (COM-Poisson, empirical).
     pub(crate) table_units: Vec<usize>,
+    /// Precomputed `ln Φ^(k)(S(b))` of table-family cells, built once per model on first use by
+    /// an engine when it fits in [`TABLE_LOOKUP_BUDGET_BYTES`] (see [`Model::prepare`]).
+    table_lookup: std::sync::OnceLock<TableLookup>,
+}
+
+/// Memory a model may spend on precomputed generating-function values of table-family cells.
+pub const TABLE_LOOKUP_BUDGET_BYTES: usize = 512 << 20;
+
+/// Per table-family cell: where its `[b][k]` block starts and how many counts it covers.
+#[derive(Debug, Default)]
+pub(crate) struct TableLookup {
+    /// Per cell (unit-major): (offset, number of counts k = 0..n) or None (not tabulated).
+    pub(crate) cells: Vec<Option<(usize, usize)>>,
+    pub(crate) values: Vec<f64>,
 }
 
 impl Model {
@@ -267,6 +281,7 @@ impl Model {
             unit_has_negbin,
             unit_all_negbin,
             table_units,
+            table_lookup: std::sync::OnceLock::new(),
         })
     }
 
@@ -319,6 +334,60 @@ impl Model {
     pub fn ln_prior(&self) -> &[f64] {
         &self.ln_prior
     }
+    /// Builds the per-model lookup of `ln Φ^(k)(S(b))` for COM-Poisson and empirical cells
+    /// (counts up to the end of each cell's table, every bin), if it fits the memory budget.
+    /// Engines call this when they take a model, so the first bin does not pay for it; models
+    /// that are never decoded bin by bin (validation's shuffle refits) never build it.
+    pub fn prepare(&self) {
+        self.table_lookup.get_or_init(|| {
+            let (nu, ns, nb) = (self.n_units, self.n_stim, self.n_bins);
+            let mut cells = vec![None; nu * ns];
+            let mut need = 0usize;
+            for (i, c) in cells.iter_mut().enumerate() {
+                if let CellKernel::Table = self.kernels[i] {
+                    let kn = self.dists[i].pmf().len();
+                    *c = Some((need, kn));
+                    need += kn * nb;
+                }
+            }
+            if need == 0 || need * 8 > TABLE_LOOKUP_BUDGET_BYTES {
+                return TableLookup {
+                    cells: vec![None; nu * ns],
+                    values: Vec::new(),
+                };
+            }
+            let mut values = vec![0.0; need];
+            for u in 0..nu {
+                for s in 0..ns {
+                    let i = u * ns + s;
+                    if let Some((off, kn)) = cells[i] {
+                        for b in 0..nb {
+                            let z = self.surv[(u * nb + b) * ns + s];
+                            for k in 0..kn {
+                                values[off + b * kn + k] = self.dists[i].ln_gf_deriv(k as u32, z);
+                            }
+                        }
+                    }
+                }
+            }
+            TableLookup { cells, values }
+        });
+    }
+
+    /// `ln Φ^(k)(S(b))` of a table-family cell: from the lookup when built and k is covered,
+    /// else by the finite sum.
+    #[inline]
+    pub(crate) fn table_term(&self, i: usize, u: usize, s: usize, b: usize, k: u32) -> f64 {
+        if let Some(t) = self.table_lookup.get() {
+            if let Some((off, kn)) = t.cells[i] {
+                if (k as usize) < kn {
+                    return t.values[off + b * kn + k as usize];
+                }
+            }
+        }
+        self.dists[i].ln_gf_deriv(k, self.surv[(u * self.n_bins + b) * self.n_stim + s])
+    }
+
     /// S(b) of cell (u, s): probability mass of the bins after b.
     pub fn survival(&self, u: usize, s: usize, b: usize) -> f64 {
         self.surv[(u * self.n_bins + b) * self.n_stim + s]
