@@ -138,6 +138,35 @@ fn bench(c: &mut Criterion) {
         }
     }
     g.finish();
+    // The floor: only reading what a negative binomial bin needs once every unit has spiked —
+    // one row of S values per unit from a [bin][unit][stimulus] table as large as the model's —
+    // with one multiply-add each. The summed path's NB time is compared with this.
+    let mut g = c.benchmark_group("read_floor_250_bins");
+    g.sample_size(10);
+    g.warm_up_time(std::time::Duration::from_secs(1));
+    g.measurement_time(std::time::Duration::from_secs(3));
+    g.throughput(Throughput::Elements(BINS as u64));
+    for &(nu, ns) in &sizes {
+        let table: Vec<f64> = (0..nu * BINS * ns)
+            .map(|i| (i % 97) as f64 * 1e-3)
+            .collect();
+        let k: Vec<f64> = (0..nu).map(|u| (u % 7) as f64).collect();
+        let mut post = vec![0.0f64; ns];
+        g.bench_function(format!("{nu}x{ns}"), |b| {
+            b.iter(|| {
+                for bin in 0..BINS {
+                    for u in 0..nu {
+                        let row = &table[(bin * nu + u) * ns..(bin * nu + u + 1) * ns];
+                        for (p, x) in post.iter_mut().zip(row) {
+                            *p -= k[u] * x;
+                        }
+                    }
+                }
+                criterion::black_box(&post);
+            })
+        });
+    }
+    g.finish();
     // Opening a trial alone (the per-trial reset of the scratch state).
     let mut g = c.benchmark_group("open_trial");
     for &(nu, ns) in &sizes {

@@ -968,14 +968,40 @@ fn run_bins(
             t.total_spikes += 1;
             let row = (u * nb + b) * ns;
             let k = t.k[u];
-            for s in 0..ns {
-                let lq = m.ln_q[row + s];
-                t.unit_ll[u * ns + s] += lq;
-                t.pop_spike[s] += lq;
-                let i = u * ns + s;
-                let old = t.cconst[i];
-                t.cconst[i] = next_count_const(&m, t.decoder, u, s, k, old);
-                t.cc_sum[s] += t.cconst[i] - old;
+            let lq = &m.ln_q[row..row + ns];
+            let cells = u * ns..(u + 1) * ns;
+            for ((ll, ps), q) in t.unit_ll[cells.clone()]
+                .iter_mut()
+                .zip(&mut t.pop_spike)
+                .zip(lq)
+            {
+                *ll += q;
+                *ps += q;
+            }
+            // The count constant rises by a per-cell constant for Poisson cells and for the
+            // inhomogeneous Poisson decoder: one branch-free pass over the unit's row.
+            let inc = match t.decoder {
+                Decoder::InhomogeneousPoisson => Some(&m.ln_means[cells.clone()]),
+                Decoder::OrderStats if m.unit_all_poisson[u] => {
+                    Some(&m.poisson_ln_mean[cells.clone()])
+                }
+                _ => None,
+            };
+            match inc {
+                Some(inc) => {
+                    for ((c, sum), d) in t.cconst[cells].iter_mut().zip(&mut t.cc_sum).zip(inc) {
+                        *c += d;
+                        *sum += d;
+                    }
+                }
+                None => {
+                    for s in 0..ns {
+                        let i = u * ns + s;
+                        let old = t.cconst[i];
+                        t.cconst[i] = next_count_const(&m, t.decoder, u, s, k, old);
+                        t.cc_sum[s] += t.cconst[i] - old;
+                    }
+                }
             }
         }
         // Posterior at the end of bin b.

@@ -108,6 +108,10 @@ pub struct Model {
     pub(crate) unit_has_negbin: Vec<bool>,
     /// Units whose cells are all negative binomial (a branch-free, vectorisable loop).
     pub(crate) unit_all_negbin: Vec<bool>,
+    /// Units whose cells are all Poisson.
+    pub(crate) unit_all_poisson: Vec<bool>,
+    /// ln μ of Poisson cells (0 elsewhere): what a spike adds to their count constant.
+    pub(crate) poisson_ln_mean: Vec<f64>,
     /// Units with at least one table-family cell (COM-Poisson, empirical).
     pub(crate) table_units: Vec<usize>,
     /// Precomputed `ln Φ^(k)(S(b))` of table-family cells, built once per model on first use by
@@ -235,6 +239,8 @@ impl Model {
         let mut rate_sum = vec![0.0; nb * ns];
         let mut unit_has_negbin = vec![false; nu];
         let mut unit_all_negbin = vec![true; nu];
+        let mut unit_all_poisson = vec![true; nu];
+        let mut poisson_ln_mean = vec![0.0; nu * ns];
         let mut table_units = Vec::new();
         for u in 0..nu {
             let mut has_table = false;
@@ -256,6 +262,10 @@ impl Model {
                 }
                 if !matches!(kernels[i], CellKernel::NegBin { .. }) {
                     unit_all_negbin[u] = false;
+                }
+                match kernels[i] {
+                    CellKernel::Poisson { ln_mean, .. } => poisson_ln_mean[i] = ln_mean,
+                    _ => unit_all_poisson[u] = false,
                 }
             }
             if has_table {
@@ -280,6 +290,8 @@ impl Model {
             rate_sum,
             unit_has_negbin,
             unit_all_negbin,
+            unit_all_poisson,
+            poisson_ln_mean,
             table_units,
             table_lookup: std::sync::OnceLock::new(),
         })
