@@ -370,23 +370,49 @@ impl TrialState {
         }
     }
 
-    fn reset_counts(&mut self) {
-        let m = self.model.clone();
-        let ns = m.n_stimuli();
+    /// Clears the counts; `start` holds every cell's count constant at k = 0 and their sum.
+    fn reset_counts(&mut self, start: &CountStart) {
         self.k.iter_mut().for_each(|x| *x = 0);
         self.total_spikes = 0;
         self.unit_ll.iter_mut().for_each(|x| *x = 0.0);
         self.pop_spike.iter_mut().for_each(|x| *x = 0.0);
         self.decision = None;
         self.active.clear();
-        self.cc_sum.iter_mut().for_each(|x| *x = 0.0);
-        for u in 0..m.n_units() {
-            for s in 0..ns {
-                let c = count_const(&m, self.decoder, u, s, 0);
-                self.cconst[u * ns + s] = c;
-                self.cc_sum[s] += c;
+        self.cconst.copy_from_slice(&start.cconst);
+        self.cc_sum.copy_from_slice(&start.sum);
+    }
+}
+
+/// Every cell's count constant at k = 0 for one (model, decoder), and their per-stimulus sums:
+/// computed once, copied at each trial opening (a memory copy instead of S·U special-function
+/// evaluations).
+#[derive(Default)]
+struct CountStart {
+    /// The model is held (not just its address) so a freed model's address cannot alias.
+    key: Option<(Arc<Model>, Decoder)>,
+    cconst: Vec<f64>,
+    sum: Vec<f64>,
+}
+
+impl CountStart {
+    fn ensure(&mut self, m: &Arc<Model>, dec: Decoder) {
+        if let Some((km, kd)) = &self.key {
+            if Arc::ptr_eq(km, m) && *kd == dec {
+                return;
             }
         }
+        let (nu, ns) = (m.n_units(), m.n_stimuli());
+        self.cconst.clear();
+        self.sum.clear();
+        self.sum.resize(ns, 0.0);
+        for u in 0..nu {
+            for s in 0..ns {
+                let c = count_const(m, dec, u, s, 0);
+                self.cconst.push(c);
+                self.sum[s] += c;
+            }
+        }
+        self.key = Some((m.clone(), dec));
     }
 }
 
@@ -415,7 +441,10 @@ fn next_count_const(m: &Model, dec: Decoder, u: usize, s: usize, k: u32, prev: f
         (Decoder::InhomogeneousPoisson, _) => prev + m.ln_means[i],
         (Decoder::OrderStats, CellKernel::Poisson { ln_mean, .. }) => prev + ln_mean,
         (Decoder::OrderStats, CellKernel::NegBin { shape }) => {
-            prev + m.dists[i].nb_ln_one_minus_p() + (shape + (k - 1) as f64).ln()
+            prev + match m.nb_step_row(u, k) {
+                Some(row) => row[s],
+                None => m.nb_step_direct(i, shape, k),
+            }
         }
         _ => count_const(m, dec, u, s, k),
     }
@@ -462,6 +491,7 @@ pub struct Engine {
     recent_set: HashSet<u64>,
     counters: Counters,
     tally: UnitTally,
+    count_start: CountStart,
     // Per-unit summary buffers.
     us_post: Vec<f64>,
     us_decoded: Vec<u32>,
@@ -497,6 +527,7 @@ impl Engine {
         model.prepare();
         let mut e = Engine {
             tally: UnitTally::new(model.units(), model.n_stimuli()),
+            count_start: CountStart::default(),
             ln_prior: model.ln_prior().to_vec(),
             min_bin: 0,
             history_ticks: 0,
@@ -676,7 +707,8 @@ impl Engine {
         st.bin_ticks = self.bin_ticks;
         st.next_bin = 0;
         st.cursor = self.spikes_base + self.spikes.partition_point(|x| x.0 < onset) as u64;
-        st.reset_counts();
+        self.count_start.ensure(&self.model, st.decoder);
+        st.reset_counts(&self.count_start);
         self.counters.trials_opened += 1;
         self.remember_id(id);
         self.trials.push(st);
@@ -985,6 +1017,7 @@ fn run_bins(
                 Decoder::OrderStats if m.unit_all_poisson[u] => {
                     Some(&m.poisson_ln_mean[cells.clone()])
                 }
+                Decoder::OrderStats if m.unit_all_negbin[u] => m.nb_step_row(u, k),
                 _ => None,
             };
             match inc {

@@ -117,6 +117,10 @@ pub struct Model {
     /// Precomputed `ln Φ^(k)(S(b))` of table-family cells, built once per model on first use by
     /// an engine when it fits in [`TABLE_LOOKUP_BUDGET_BYTES`] (see [`Model::prepare`]).
     table_lookup: std::sync::OnceLock<TableLookup>,
+    /// What a spike adds to a negative binomial cell's count constant when the unit's count
+    /// reaches k, `ln(1−p) + ln(r + k − 1)`, laid out [u][k][s] for k < `nb_steps_k` (0 for
+    /// other families), so a spike costs one contiguous pass instead of S logarithms.
+    nb_steps: std::sync::OnceLock<(Vec<f64>, usize)>,
 }
 
 /// Memory a model may spend on precomputed generating-function values of table-family cells.
@@ -294,6 +298,7 @@ impl Model {
             poisson_ln_mean,
             table_units,
             table_lookup: std::sync::OnceLock::new(),
+            nb_steps: std::sync::OnceLock::new(),
         })
     }
 
@@ -351,6 +356,30 @@ impl Model {
     /// Engines call this when they take a model, so the first bin does not pay for it; models
     /// that are never decoded bin by bin (validation's shuffle refits) never build it.
     pub fn prepare(&self) {
+        self.nb_steps.get_or_init(|| {
+            let (nu, ns) = (self.n_units, self.n_stim);
+            let kmax = (0..nu * ns)
+                .filter(|&i| matches!(self.kernels[i], CellKernel::NegBin { .. }))
+                .map(|i| self.dists[i].pmf().len())
+                .max()
+                .unwrap_or(0)
+                .min(512);
+            if kmax == 0 || nu * kmax * ns * 8 > TABLE_LOOKUP_BUDGET_BYTES / 2 {
+                return (Vec::new(), 0);
+            }
+            let mut v = vec![0.0; nu * kmax * ns];
+            for u in 0..nu {
+                for s in 0..ns {
+                    if let CellKernel::NegBin { shape } = self.kernels[u * ns + s] {
+                        for k in 1..kmax {
+                            v[(u * kmax + k) * ns + s] =
+                                self.nb_step_direct(u * ns + s, shape, k as u32);
+                        }
+                    }
+                }
+            }
+            (v, kmax)
+        });
         self.table_lookup.get_or_init(|| {
             let (nu, ns, nb) = (self.n_units, self.n_stim, self.n_bins);
             let mut cells = vec![None; nu * ns];
@@ -384,6 +413,20 @@ impl Model {
             }
             TableLookup { cells, values }
         });
+    }
+
+    /// The negative binomial step `ln(1−p) + ln(r + k − 1)` computed directly.
+    #[inline]
+    pub(crate) fn nb_step_direct(&self, i: usize, shape: f64, k: u32) -> f64 {
+        self.dists[i].nb_ln_one_minus_p() + (shape + (k - 1) as f64).ln()
+    }
+
+    /// Unit u's row of negative binomial steps for count k (length S), when tabulated.
+    #[inline]
+    pub(crate) fn nb_step_row(&self, u: usize, k: u32) -> Option<&[f64]> {
+        let (v, kmax) = self.nb_steps.get()?;
+        let k = k as usize;
+        (k < *kmax).then(|| &v[(u * kmax + k) * self.n_stim..(u * kmax + k + 1) * self.n_stim])
     }
 
     /// `ln Φ^(k)(S(b))` of a table-family cell: from the lookup when built and k is covered,
