@@ -1,9 +1,9 @@
 #!/usr/bin/env bash
 # Fit time and peak memory at 256 units × 32 stimuli × 50 trials per stimulus (the issue's
 # size): writes a scenario (Poisson, negative binomial and COM-Poisson units in turn),
-# simulates, then fits with every family allowed. Usage: bench-scripts/fit-256x32.sh.
+# simulates, then fits with every family allowed. Usage: tests/bench/fit-256x32.sh.
 set -euo pipefail
-cd "$(dirname "$0")/.."
+cd "$(dirname "$0")/../.."
 BIN=target/release/auspex
 W=$(mktemp -d)
 trap 'rm -rf "$W"' EXIT

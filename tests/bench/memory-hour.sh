@@ -2,11 +2,11 @@
 # Memory over a long session: replays one hour of simulated recording (the demo scenario with
 # 750 trials per stimulus, 6000 trials) into a daemon as fast as it accepts, sampling the
 # daemon's resident memory every 0.2 s. Prints RSS after one minute of session time and at the
-# end. Usage: bench-scripts/memory-hour.sh [SPEED] (after `cargo build --release`); SPEED is
+# end. Usage: tests/bench/memory-hour.sh [SPEED] (after `cargo build --release`); SPEED is
 # the replay's times-real-time (default 60, an hour in a minute; `fast` for as fast as it goes,
 # where the inbound queue's high-water mark, not the session length, sets the memory).
 set -euo pipefail
-cd "$(dirname "$0")/.."
+cd "$(dirname "$0")/../.."
 BIN=target/release/auspex
 W=$(mktemp -d)
 trap 'kill $DPID 2>/dev/null || true; rm -rf "$W"' EXIT

@@ -2,9 +2,9 @@
 # Replay throughput at 64 units × 16 stimuli: writes a scenario (one third each Poisson,
 # negative binomial and COM-Poisson units), simulates 20 trials per stimulus, fits, starts a
 # daemon on loopback and replays the session with `--fast` (ending with the daemon's
-# acknowledgement of the last message). Usage: bench-scripts/replay-64x16.sh after a release build.
+# acknowledgement of the last message). Usage: tests/bench/replay-64x16.sh after a release build.
 set -euo pipefail
-cd "$(dirname "$0")/.."
+cd "$(dirname "$0")/../.."
 BIN=target/release/auspex
 W=$(mktemp -d)
 trap 'kill $DPID 2>/dev/null || true; rm -rf "$W"' EXIT
