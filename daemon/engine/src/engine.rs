@@ -1076,12 +1076,14 @@ fn run_bins(
                     t.post[s] = t.ln_prior[s] + t.pop_spike[s] + t.cc_sum[s] + sums[s];
                 }
                 // Negative binomial cells of units that have spiked: the k-dependent part.
-                for &u in &t.active {
-                    let u = u as usize;
-                    if !m.unit_has_negbin[u] {
-                        continue;
+                // Once most units have spiked, walk them in order so this bin's rows of `g`
+                // stream from memory; before that, only the spiking ones.
+                let mut nb_term = |u: usize| {
+                    let k = t.k[u];
+                    if k == 0 || !m.unit_has_negbin[u] {
+                        return;
                     }
-                    let k = t.k[u] as f64;
+                    let k = k as f64;
                     let row = (b * nu + u) * ns;
                     let g = &m.nb_g[row..row + ns];
                     if m.unit_all_negbin[u] {
@@ -1095,6 +1097,11 @@ fn run_bins(
                             }
                         }
                     }
+                };
+                if 2 * t.active.len() > nu {
+                    (0..nu).for_each(&mut nb_term);
+                } else {
+                    t.active.iter().for_each(|&u| nb_term(u as usize));
                 }
                 // Table families: the finite sum, for their cells only.
                 for &u in &m.table_units {
