@@ -11,6 +11,8 @@ const PALETTE: [&str; 10] = [
     "#7f7f7f", "#bcbd22",
 ];
 const DECODER_COLOURS: [&str; 3] = ["#1f4e9c", "#2ca02c", "#d62728"];
+/// Units drawn in full (raster, PSTH, counts, KS plot), most informative first.
+pub const UNIT_DETAIL_MAX: usize = 64;
 
 fn colour(i: usize) -> &'static str {
     PALETTE[i % PALETTE.len()]
@@ -853,8 +855,20 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
             if flags == 0 { "—".to_string() } else { format!("<b class=warn>{flags}</b>") });
     }
     s += "</table>";
-    for u in &v.units_ranked {
-        s += &unit_section(v, x, u);
+    // Pictures for the most informative units and every unit whose fit is flagged; a page with
+    // thousands of units' plots would not open. The table above and the JSON hold every unit.
+    let mut shown = 0usize;
+    let mut left_out = 0usize;
+    for (r, u) in v.units_ranked.iter().enumerate() {
+        if r < UNIT_DETAIL_MAX || u.cells.iter().any(|c| !c.ks_pass) {
+            s += &unit_section(v, x, u);
+            shown += 1;
+        } else {
+            left_out += 1;
+        }
+    }
+    if left_out > 0 {
+        let _ = write!(s, "<p class=sub>Pictures for the {UNIT_DETAIL_MAX} most informative units and every unit with a flagged fit ({shown} shown); the other {left_out} units are in the table above and in validation.json.</p>");
     }
     s += "<h2>Goodness of fit</h2>";
     let _ = write!(s, "<p class=sub>Discrete-time time-rescaling (Haslinger, Pipa &amp; Brown 2010) on held-out trials, each under the model of its presented stimulus: per bin, the model's probability of a spike given the spikes so far; bins holding spikes are events, their randomised rescaled intervals should be Uniform(0, 1). Cells whose KS statistic exceeds the exact 95% critical value are flagged: {} of {} tested.</p>",
