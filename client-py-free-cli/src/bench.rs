@@ -220,17 +220,15 @@ pub fn summarise(transport: &str, mut lat: Vec<f64>, batches: usize) -> Latency 
     }
 }
 
-/// Runs a daemon in this process on loopback (`tcp` or `ipc`), streams `seconds` of 1 kHz
-/// spike batches for `nu` units at about 16 spikes/s each, trials back to back (250 ms window,
-/// 50 ms gap), and measures the time from handing each batch to the sending socket to receiving
-/// the posterior frame of the bin it completes.
-pub async fn latency(
+/// Starts a daemon in this process on loopback (`tcp` on free ports, or `ipc` sockets in
+/// `dir`) with the synthetic model of `nu` units × `ns` stimuli, a 1 MHz clock and no task
+/// endpoint: the set-up of every latency run, whichever library the peer uses.
+pub async fn start_daemon(
     nu: usize,
     ns: usize,
-    seconds: f64,
     transport: &str,
     dir: &std::path::Path,
-) -> anyhow::Result<Latency> {
+) -> anyhow::Result<auspexd::service::Running> {
     let model_path = dir.join(format!("bench-{nu}x{ns}.apxm"));
     auspexd::model_file::save_model(&model_path, synthetic_model(nu, ns).spec(), "auspex bench")?;
     let ep = |name: &str| match transport {
@@ -247,7 +245,21 @@ pub async fn latency(
         ..Default::default()
     };
     let cfg = auspexd::config::validate(fc, &mut Vec::new()).map_err(|e| anyhow::anyhow!(e))?;
-    let running = auspexd::service::start(cfg).await?;
+    auspexd::service::start(cfg).await
+}
+
+/// Runs a daemon in this process on loopback (`tcp` or `ipc`), streams `seconds` of 1 kHz
+/// spike batches for `nu` units at about 16 spikes/s each, trials back to back (250 ms window,
+/// 50 ms gap), and measures the time from handing each batch to the sending socket to receiving
+/// the posterior frame of the bin it completes.
+pub async fn latency(
+    nu: usize,
+    ns: usize,
+    seconds: f64,
+    transport: &str,
+    dir: &std::path::Path,
+) -> anyhow::Result<Latency> {
+    let running = start_daemon(nu, ns, transport, dir).await?;
     let eps = running.endpoints.clone();
     let mut sub = zeromq::SubSocket::new();
     sub.connect(&eps.publish).await?;

@@ -311,6 +311,15 @@ fn histogram(values: &[f64], lo: f64, hi: f64, n: usize) -> (Vec<f64>, Vec<f64>)
     (edges, h)
 }
 
+/// Legend entries: each decoder in its colour.
+fn decoder_legend(v: &Validation) -> Vec<(String, &'static str)> {
+    v.decoders
+        .iter()
+        .enumerate()
+        .map(|(d, dr)| (dr.decoder.clone(), DECODER_COLOURS[d % 3]))
+        .collect()
+}
+
 fn accuracy_plot(v: &Validation) -> String {
     let mut p = Plot::new(620.0, 320.0, (0.0, v.window_ms), (0.0, 1.0));
     p.axes(
@@ -346,13 +355,7 @@ fn accuracy_plot(v: &Validation) -> String {
         true,
     );
     p.text(v.window_ms * 0.01, v.chance + 0.02, "chance", "#555");
-    let items: Vec<(String, &str)> = v
-        .decoders
-        .iter()
-        .enumerate()
-        .map(|(d, dr)| (dr.decoder.clone(), DECODER_COLOURS[d % 3]))
-        .collect();
-    p.legend(&items);
+    p.legend(&decoder_legend(v));
     p.finish()
 }
 
@@ -395,13 +398,7 @@ fn tradeoff_plot(v: &Validation) -> String {
         1.2,
         true,
     );
-    let items: Vec<(String, &str)> = v
-        .decoders
-        .iter()
-        .enumerate()
-        .map(|(d, dr)| (dr.decoder.clone(), DECODER_COLOURS[d % 3]))
-        .collect();
-    p.legend(&items);
+    p.legend(&decoder_legend(v));
     p.finish()
 }
 

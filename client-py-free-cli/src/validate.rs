@@ -519,7 +519,7 @@ pub fn validate(
     // (family and bandwidth held at the real fold's choices), held-out trials decoded at the
     // window end with their true labels.
     bar.set_message("label-shuffle null");
-    let nulls = shuffle_null(&data, &bins, &labels, &stimuli, &folds, opts, nb, &bar)?;
+    let nulls = shuffle_null(&data, &w, &bins, &labels, &stimuli, &folds, opts, nb, &bar)?;
     let (pop_null, unit_null) = nulls;
 
     // Accuracy curves and decisions per decoder.
@@ -704,6 +704,7 @@ type Nulls = (Vec<f64>, Vec<Vec<f64>>);
 #[allow(clippy::too_many_arguments)]
 fn shuffle_null(
     data: &Dataset,
+    w: &auspex_engine::data::UnitWindows,
     bins: &[Vec<Vec<u32>>],
     labels: &[usize],
     stimuli: &[String],
@@ -713,9 +714,6 @@ fn shuffle_null(
     bar: &ProgressBar,
 ) -> anyhow::Result<Nulls> {
     let (nu, ns) = (data.units.len(), stimuli.len());
-    // Per unit, per trial: window count and spike times (bins) as the fit sees them.
-    let bin_ticks = (opts.fit.bin_width_s * data.tick_rate_hz).round() as i64;
-    let w = data.windows(&data.units, bin_ticks, nb);
     let prior = vec![1.0 / ns as f64; ns];
     let one = |r: usize| -> anyhow::Result<(f64, Vec<f64>)> {
         let mut rng =

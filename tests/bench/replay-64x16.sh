@@ -8,34 +8,7 @@ cd "$(dirname "$0")/../.."
 BIN=target/release/auspex
 W=$(mktemp -d)
 trap 'kill $DPID 2>/dev/null || true; rm -rf "$W"' EXIT
-{
-  echo 'description = "replay benchmark, 64 units x 16 stimuli"'
-  printf 'stimuli = ['
-  for s in $(seq 0 15); do printf '["d%d", %d.0]%s' $s $((s * 360 / 16)) "$([ $s -lt 15 ] && echo ', ')"; done
-  echo ']'
-  echo 'bin_width_ms = 1.0'
-  echo 'window_ms = 250.0'
-  echo 'trials_per_stimulus = 20'
-  echo 'gap_ms = [250.0, 450.0]'
-  echo 'spontaneous_hz = 3.0'
-  echo 'tick_rate_hz = 1000000.0'
-  echo 'seed = 64016'
-  fams=(poisson negative_binomial com_poisson)
-  fanos=(1.0 1.4 0.6)
-  for u in $(seq 0 63); do
-    f=$((u % 3))
-    echo "[[units]]"
-    echo "id = $((1000 + u))"
-    echo "preferred_deg = $((u * 360 / 64)).0"
-    echo "baseline_count = 0.8"
-    echo "peak_count = 4.0"
-    echo "count_family = \"${fams[$f]}\""
-    echo "fano = ${fanos[$f]}"
-    echo "early_ms = $((20 + u % 15)).0"
-    echo "late_ms = $((60 + u % 30)).0"
-    echo "width_ms = 10.0"
-  done
-} > "$W/scenario.toml"
+tests/bench/scenario.sh 64 16 20 64016 > "$W/scenario.toml"
 $BIN simulate --scenario "$W/scenario.toml" --out-dir "$W/d" >/dev/null
 $BIN fit --spikes "$W/d/spikes.csv" --trials "$W/d/trials.csv" -o "$W/m.apxm" --quiet 2>/dev/null
 P=$((20000 + RANDOM % 20000))

@@ -13,31 +13,11 @@ fn main() -> anyhow::Result<()> {
     let ns: usize = args.get(3).map(|s| s.parse()).transpose()?.unwrap_or(32);
     let transport = args.get(4).cloned().unwrap_or_else(|| "tcp".into());
     let dir = tempfile::tempdir()?;
-    let model_path = dir.path().join("m.apxm");
-    auspexd::model_file::save_model(
-        &model_path,
-        auspex::bench::synthetic_model(nu, ns).spec(),
-        "latency",
-    )?;
-    let ep = |name: &str| match transport.as_str() {
-        "ipc" => format!("ipc://{}/{name}.sock", dir.path().display()),
-        _ => "tcp://127.0.0.1:0".to_string(),
-    };
-    let fc = auspexd::config::FileConfig {
-        model: Some(model_path),
-        ingest: Some(ep("ingest")),
-        task_ingest: Some(String::new()),
-        publish: Some(ep("publish")),
-        control: Some(ep("control")),
-        tick_rate_hz: Some(1e6),
-        ..Default::default()
-    };
-    let cfg = auspexd::config::validate(fc, &mut Vec::new()).map_err(|e| anyhow::anyhow!(e))?;
     let rt = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
         .enable_all()
         .build()?;
-    let running = rt.block_on(auspexd::service::start(cfg))?;
+    let running = rt.block_on(auspex::bench::start_daemon(nu, ns, &transport, dir.path()))?;
     let eps = running.endpoints.clone();
     let ctx = zmq::Context::new();
     let sub = ctx.socket(zmq::SUB)?;
