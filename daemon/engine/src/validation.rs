@@ -120,7 +120,8 @@ pub fn decide(
 /// `Φ^(k)(S(b)) / Φ^(k)(S(b−1))`, so `q_b = −ln P(no spike) = ln Φ^(k)(S(b−1)) − ln Φ^(k)(S(b))`.
 /// For each event bin t_i: `τ_i = Σ_{t_{i−1} < j < t_i} q_j + δ_i` with
 /// `δ_i = −ln(1 − r_i (1 − e^{−q_{t_i}}))`, `r_i ~ U(0,1)`, and `ξ_i = 1 − e^{−τ_i}`, which is
-/// Uniform(0,1) when the model is right.
+/// Uniform(0,1) when the model is right. (The δ_i correction is written from memory of the
+/// paper; `calibration` below checks the result is uniform on data drawn from the model.)
 ///
 /// Trials are short (a few spikes each), so dropping each trial's censored last interval would
 /// bias the sample toward short intervals. Instead the trials are chained: `carry` holds the
