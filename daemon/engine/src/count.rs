@@ -417,6 +417,10 @@ impl CountDist {
             return self.ln_pmf[last] + (ku - last) as f64 * lr + ln_k_fact
                 - (k as f64 + 1.0) * (1.0 - lr.exp() * z).ln();
         }
+        if z == 0.0 {
+            // The end of the window: Φ^(k)(0) = k!·P(k), what Horner's rule below gives too.
+            return ln_k_fact + self.ln_pmf[ku];
+        }
         // Horner on Σ_j P(k+j)·C(k+j, j)·z^j, innermost term first.
         let mut acc = self.pmf[nlen - 1];
         let mut n = nlen - 1;

@@ -9,6 +9,7 @@
 
 use crate::model::{CellKernel, Model};
 use crate::special::{entropy_bits, softmax_in_place};
+use crate::table::{ProductAcc, NO_SLOT};
 use crate::tally::UnitTally;
 use serde::{Deserialize, Serialize};
 use std::collections::{HashSet, VecDeque};
@@ -339,6 +340,8 @@ struct TrialState {
     unit_ll: Vec<f64>,
     pop_spike: Vec<f64>,
     post: Vec<f64>,
+    /// Table-family corrections of the current bin, as a product (see `table.rs`).
+    table_acc: ProductAcc,
     decision: Option<Decision>,
 }
 
@@ -365,6 +368,7 @@ impl TrialState {
             unit_ll: vec![0.0; nu * ns],
             pop_spike: vec![0.0; ns],
             post: vec![0.0; ns],
+            table_acc: ProductAcc::new(ns),
             decision: None,
             model,
         }
@@ -958,6 +962,41 @@ fn emit_end(t: &TrialState, outcome: TrialOutcome, sink: &mut dyn EngineSink) {
     });
 }
 
+/// How many spikes ahead of the one being applied the engine asks for table rows.
+const PREFETCH_AHEAD: usize = 6;
+
+/// Hints the cache to load the rows a spike of unit `u` in bin `b` will read or update.
+#[inline]
+fn prefetch_rows(m: &Model, t: &TrialState, u: usize, b: usize) {
+    let ns = m.n_stimuli();
+    let row = (u * m.n_bins() + b) * ns;
+    prefetch(&m.ln_q[row..row + ns]);
+    prefetch(&t.unit_ll[u * ns..(u + 1) * ns]);
+    if t.decoder == Decoder::OrderStats && m.unit_all_negbin[u] {
+        prefetch(&t.cconst[u * ns..(u + 1) * ns]);
+        if let Some(r) = m.nb_step_row(u, t.k[u] + 1) {
+            prefetch(r);
+        }
+    }
+}
+
+/// Prefetches every cache line of `xs` (no effect on targets without a prefetch hint).
+#[inline(always)]
+fn prefetch(xs: &[f64]) {
+    #[cfg(target_arch = "x86_64")]
+    for line in xs.chunks(8) {
+        // SAFETY: a prefetch hint never faults and does not change memory; the address is a
+        // valid element of `xs`.
+        unsafe {
+            std::arch::x86_64::_mm_prefetch::<{ std::arch::x86_64::_MM_HINT_T0 }>(
+                line.as_ptr() as *const i8
+            )
+        };
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    let _ = xs;
+}
+
 /// Decodes every bin of `t` the watermark has completed. Returns true when the window is done.
 fn run_bins(
     t: &mut TrialState,
@@ -985,6 +1024,15 @@ fn run_bins(
                 break;
             }
             t.cursor += 1;
+            // The rows a spike a few places ahead will touch are scattered over tables far
+            // larger than the caches: ask for them now so their loads overlap this spike's work.
+            if let Some(&(ahead_tick, ahead_unit)) = spikes.get(pos + PREFETCH_AHEAD) {
+                if ahead_tick < bin_end && ahead_tick >= t.onset {
+                    if let Some(ua) = m.unit_index(ahead_unit) {
+                        prefetch_rows(&m, t, ua, b);
+                    }
+                }
+            }
             // A trial opened before its onset (the onset announced ahead of the watermark)
             // has a cursor placed before the spikes that arrived in between: not its spikes.
             if tick < t.onset {
@@ -1103,13 +1151,25 @@ fn run_bins(
                 } else {
                     t.active.iter().for_each(|&u| nb_term(u as usize));
                 }
-                // Table families: the finite sum, for their cells only.
-                for &u in &m.table_units {
-                    for s in 0..ns {
-                        if let CellKernel::Table = m.kernels[u * ns + s] {
-                            t.post[s] += m.table_term(u * ns + s, u, s, b, t.k[u]);
-                        }
+                // Table families: silent units through the per-model sums, units that have
+                // spiked through their correction.
+                let tp = m.table_prep();
+                if !tp.units.is_empty() {
+                    for (p, s0) in t.post.iter_mut().zip(&tp.sum0[b * ns..(b + 1) * ns]) {
+                        *p += s0;
                     }
+                    let mut add = |u: usize| {
+                        let k = t.k[u];
+                        if k > 0 && tp.slot[u] != NO_SLOT {
+                            tp.add_unit(&m, u, b, k, &mut t.post, &mut t.table_acc);
+                        }
+                    };
+                    if t.active.len() < tp.units.len() {
+                        t.active.iter().for_each(|&u| add(u as usize));
+                    } else {
+                        tp.units.iter().for_each(|&u| add(u));
+                    }
+                    t.table_acc.flush_into(&mut t.post);
                 }
             }
         }

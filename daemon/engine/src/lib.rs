@@ -19,6 +19,7 @@ pub mod model;
 pub mod simulate;
 pub mod special;
 pub mod stats;
+mod table;
 pub mod tally;
 pub mod validation;
 

@@ -5,6 +5,7 @@
 //! Must not: change after construction (hot reload builds a new `Model`), or do I/O.
 
 use crate::count::{CountDist, CountError, CountFamily, CountParams};
+use crate::table::TablePrep;
 use serde::{Deserialize, Serialize};
 use std::collections::HashMap;
 
@@ -112,11 +113,9 @@ pub struct Model {
     pub(crate) unit_all_poisson: Vec<bool>,
     /// ln μ of Poisson cells (0 elsewhere): what a spike adds to their count constant.
     pub(crate) poisson_ln_mean: Vec<f64>,
-    /// Units with at least one table-family cell (COM-Poisson, empirical).
-    pub(crate) table_units: Vec<usize>,
-    /// Precomputed `ln Φ^(k)(S(b))` of table-family cells, built once per model on first use by
-    /// an engine when it fits in [`TABLE_LOOKUP_BUDGET_BYTES`] (see [`Model::prepare`]).
-    table_lookup: std::sync::OnceLock<TableLookup>,
+    /// Table-family (COM-Poisson, empirical) precomputation, built once per model on first use
+    /// by an engine (see [`Model::prepare`] and `table.rs`).
+    table: std::sync::OnceLock<TablePrep>,
     /// What a spike adds to a negative binomial cell's count constant when the unit's count
     /// reaches k, `ln(1−p) + ln(r + k − 1)`, laid out [u][k][s] for k < `nb_steps_k` (0 for
     /// other families), so a spike costs one contiguous pass instead of S logarithms.
@@ -125,14 +124,6 @@ pub struct Model {
 
 /// Memory a model may spend on precomputed generating-function values of table-family cells.
 pub const TABLE_LOOKUP_BUDGET_BYTES: usize = 512 << 20;
-
-/// Per table-family cell: where its `[b][k]` block starts and how many counts it covers.
-#[derive(Debug, Default)]
-pub(crate) struct TableLookup {
-    /// Per cell (unit-major): (offset, number of counts k = 0..n) or None (not tabulated).
-    pub(crate) cells: Vec<Option<(usize, usize)>>,
-    pub(crate) values: Vec<f64>,
-}
 
 impl Model {
     /// Validates a spec and precomputes the tables.
@@ -245,9 +236,7 @@ impl Model {
         let mut unit_all_negbin = vec![true; nu];
         let mut unit_all_poisson = vec![true; nu];
         let mut poisson_ln_mean = vec![0.0; nu * ns];
-        let mut table_units = Vec::new();
         for u in 0..nu {
-            let mut has_table = false;
             for s in 0..ns {
                 let i = u * ns + s;
                 for b in 0..nb {
@@ -261,8 +250,7 @@ impl Model {
                 }
                 match kernels[i] {
                     CellKernel::NegBin { .. } => unit_has_negbin[u] = true,
-                    CellKernel::Table => has_table = true,
-                    CellKernel::Poisson { .. } => {}
+                    CellKernel::Table | CellKernel::Poisson { .. } => {}
                 }
                 if !matches!(kernels[i], CellKernel::NegBin { .. }) {
                     unit_all_negbin[u] = false;
@@ -271,9 +259,6 @@ impl Model {
                     CellKernel::Poisson { ln_mean, .. } => poisson_ln_mean[i] = ln_mean,
                     _ => unit_all_poisson[u] = false,
                 }
-            }
-            if has_table {
-                table_units.push(u);
             }
         }
         Ok(Model {
@@ -296,8 +281,7 @@ impl Model {
             unit_all_negbin,
             unit_all_poisson,
             poisson_ln_mean,
-            table_units,
-            table_lookup: std::sync::OnceLock::new(),
+            table: std::sync::OnceLock::new(),
             nb_steps: std::sync::OnceLock::new(),
         })
     }
@@ -351,8 +335,9 @@ impl Model {
     pub fn ln_prior(&self) -> &[f64] {
         &self.ln_prior
     }
-    /// Builds the per-model lookup of `ln Φ^(k)(S(b))` for COM-Poisson and empirical cells
-    /// (counts up to the end of each cell's table, every bin), if it fits the memory budget.
+    /// Builds the per-bin precomputation the summed path reads: negative binomial spike steps,
+    /// and for COM-Poisson and empirical cells their silence sums, the product form's tables and
+    /// (if it fits [`TABLE_LOOKUP_BUDGET_BYTES`]) a lookup of `ln Φ^(k)(S(b))`.
     /// Engines call this when they take a model, so the first bin does not pay for it; models
     /// that are never decoded bin by bin (validation's shuffle refits) never build it.
     pub fn prepare(&self) {
@@ -380,39 +365,27 @@ impl Model {
             }
             (v, kmax)
         });
-        self.table_lookup.get_or_init(|| {
-            let (nu, ns, nb) = (self.n_units, self.n_stim, self.n_bins);
-            let mut cells = vec![None; nu * ns];
-            let mut need = 0usize;
-            for (i, c) in cells.iter_mut().enumerate() {
-                if let CellKernel::Table = self.kernels[i] {
-                    let kn = self.dists[i].pmf().len();
-                    *c = Some((need, kn));
-                    need += kn * nb;
-                }
-            }
-            if need == 0 || need * 8 > TABLE_LOOKUP_BUDGET_BYTES {
-                return TableLookup {
-                    cells: vec![None; nu * ns],
-                    values: Vec::new(),
-                };
-            }
-            let mut values = vec![0.0; need];
-            for u in 0..nu {
-                for s in 0..ns {
-                    let i = u * ns + s;
-                    if let Some((off, kn)) = cells[i] {
-                        for b in 0..nb {
-                            let z = self.surv[(u * nb + b) * ns + s];
-                            for k in 0..kn {
-                                values[off + b * kn + k] = self.dists[i].ln_gf_deriv(k as u32, z);
-                            }
-                        }
-                    }
-                }
-            }
-            TableLookup { cells, values }
-        });
+        self.table
+            .get_or_init(|| TablePrep::build(self, TABLE_LOOKUP_BUDGET_BYTES));
+    }
+
+    /// [`Model::prepare`] with a different memory budget for the table-family lookup (0: never
+    /// build it, always evaluate exactly). Has no effect once the model is prepared.
+    pub fn prepare_with_lookup_budget(&self, bytes: usize) {
+        self.table.get_or_init(|| TablePrep::build(self, bytes));
+        self.prepare();
+    }
+
+    /// Bytes of precomputed table-family terms (0 before [`Model::prepare`]).
+    pub fn table_bytes(&self) -> usize {
+        self.table.get().map_or(0, |t| t.bytes())
+    }
+
+    /// The table-family precomputation (built on first use).
+    #[inline]
+    pub(crate) fn table_prep(&self) -> &TablePrep {
+        self.table
+            .get_or_init(|| TablePrep::build(self, TABLE_LOOKUP_BUDGET_BYTES))
     }
 
     /// The negative binomial step `ln(1−p) + ln(r + k − 1)` computed directly.
@@ -427,20 +400,6 @@ impl Model {
         let (v, kmax) = self.nb_steps.get()?;
         let k = k as usize;
         (k < *kmax).then(|| &v[(u * kmax + k) * self.n_stim..(u * kmax + k + 1) * self.n_stim])
-    }
-
-    /// `ln Φ^(k)(S(b))` of a table-family cell: from the lookup when built and k is covered,
-    /// else by the finite sum.
-    #[inline]
-    pub(crate) fn table_term(&self, i: usize, u: usize, s: usize, b: usize, k: u32) -> f64 {
-        if let Some(t) = self.table_lookup.get() {
-            if let Some((off, kn)) = t.cells[i] {
-                if (k as usize) < kn {
-                    return t.values[off + b * kn + k as usize];
-                }
-            }
-        }
-        self.dists[i].ln_gf_deriv(k, self.surv[(u * self.n_bins + b) * self.n_stim + s])
     }
 
     /// S(b) of cell (u, s): probability mass of the bins after b.

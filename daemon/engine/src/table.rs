@@ -1,0 +1,533 @@
+//! The count term of table-family cells (COM-Poisson, empirical), which have no closed form:
+//! `ln Φ^(k)(S(b)) = ln Σ_{n≥k} P(n)·n!/(n−k)!·S(b)^(n−k)`. Owns what is precomputed once per
+//! model for them and the per-bin work on the engine's summed path:
+//!
+//! * units that have not spiked (k = 0) cost nothing per bin: their `ln Φ^(0)(S(b))` is summed
+//!   over units per (bin, stimulus) once, like the closed-form families' silence terms;
+//! * a unit that has spiked adds `ln Φ^(k)(S(b)) − ln Φ^(0)(S(b))`: read from a per-model lookup
+//!   of `ln Φ^(k)(S(b))` when that fits its memory budget, otherwise evaluated exactly by Horner's
+//!   rule on `Σ_m W(k+m)·z^m/m!` with `W(n) = P(n)·n!` (scaled by a power of two per unit so
+//!   long tables stay in range, the scale carried exactly in the exponent), all stimuli side by side
+//!   (independent chains, so the loop is bound by arithmetic throughput, not by latency), and
+//!   multiplied into a per-stimulus product whose binary exponent is carried separately, so a
+//!   bin takes one logarithm per stimulus instead of one per cell.
+//!
+//! Must not: allocate per bin, or use fused multiply-add (results must not depend on the CPU:
+//! the AVX2 variant performs the same IEEE operations in the same order as the baseline one).
+
+use crate::model::{CellKernel, Model};
+use crate::special::ln_factorial_table;
+use std::f64::consts::LN_2;
+
+/// Longest count table evaluated by the product form. With `c = 2^j ≈ N/e` for a table of N
+/// entries, the scaled coefficients `W(n)/c^n` stay below about `P(n)·√(2πn)` (Stirling) and
+/// every partial Horner sum below `Φ^(n)(z)/c^n ≤ (N/c)^n = e^n`, finite for n ≤ 600.
+pub const FAST_MAX_COUNT: usize = 600;
+
+/// Ratios outside this range leave the product form for the logarithmic one, so the product
+/// (kept in [1, 2) between units) can never leave the normal floating-point range.
+const RATIO_MIN: f64 = 1e-280;
+const RATIO_MAX: f64 = 1e280;
+
+/// Per-model precomputation for table-family cells. Built by [`Model::prepare`].
+#[derive(Debug, Default)]
+pub(crate) struct TablePrep {
+    /// Per unit: its slot among units with a table-family cell, or `NO_SLOT`.
+    pub(crate) slot: Vec<u32>,
+    /// Slot → unit index.
+    pub(crate) units: Vec<usize>,
+    /// Σ over table-family cells of `ln Φ^(0)(S(b))`, per [b][s]; empty without table cells.
+    pub(crate) sum0: Vec<f64>,
+    /// `1/Φ^(0)(S(b))` per [b][slot][s] for table-family cells, 0 for the others.
+    inv0: Vec<f64>,
+    /// 1 for a slot's cells of other families (their ratio is taken as 1), 0 for table cells.
+    other: Vec<f64>,
+    /// 1 for a slot's table cells, 0 for the others (whose ratio carries no scale).
+    is_table: Vec<i64>,
+    /// `W(n)/2^(j·n)` with `W(n) = P(n)·n!` per slot, rows [n][s], zero past each cell's table.
+    w: Vec<f64>,
+    /// Per slot: (offset into `w`, rows, shortest table among its cells, j); rows = 0 when a
+    /// cell is longer than [`FAST_MAX_COUNT`] (that unit takes the per-cell logarithmic path).
+    w_rows: Vec<(usize, usize, usize, i64)>,
+    /// 1/m for m = 0..=FAST_MAX_COUNT (index 0 unused).
+    inv_int: Vec<f64>,
+    /// Precomputed `ln Φ^(k)(S(b))`, when within the budget.
+    lookup: Option<Lookup>,
+    avx2: bool,
+}
+
+/// Slot value of a unit without table-family cells.
+pub(crate) const NO_SLOT: u32 = u32::MAX;
+
+/// Per table-family cell: where its `[b][k]` block starts and how many counts it covers.
+#[derive(Debug)]
+struct Lookup {
+    cells: Vec<Option<(usize, usize)>>,
+    values: Vec<f64>,
+}
+
+/// Per-stimulus running product of ratios with its binary exponent kept apart; owned by a
+/// trial, emptied into the posterior once per bin.
+#[derive(Debug, Clone)]
+pub(crate) struct ProductAcc {
+    prod: Vec<f64>,
+    exp: Vec<i64>,
+    /// Horner results of one unit.
+    scratch: Vec<f64>,
+    used: bool,
+}
+
+impl ProductAcc {
+    pub(crate) fn new(ns: usize) -> Self {
+        ProductAcc {
+            prod: vec![1.0; ns],
+            exp: vec![0; ns],
+            scratch: vec![0.0; ns],
+            used: false,
+        }
+    }
+
+    /// Adds `ln Π` to `post` and starts a new product.
+    #[inline]
+    pub(crate) fn flush_into(&mut self, post: &mut [f64]) {
+        if !self.used {
+            return;
+        }
+        for ((p, x), e) in post.iter_mut().zip(&mut self.prod).zip(&mut self.exp) {
+            *p += x.ln() + *e as f64 * std::f64::consts::LN_2;
+            *x = 1.0;
+            *e = 0;
+        }
+        self.used = false;
+    }
+}
+
+impl TablePrep {
+    /// Builds the precomputation; `lookup_budget` bytes may go to the `ln Φ^(k)(S(b))` lookup.
+    pub(crate) fn build(m: &Model, lookup_budget: usize) -> Self {
+        let (nu, ns, nb) = (m.n_units(), m.n_stimuli(), m.n_bins());
+        let is_table = |i: usize| matches!(m.kernels[i], CellKernel::Table);
+        let mut slot = vec![NO_SLOT; nu];
+        let mut units = Vec::new();
+        for (u, sl) in slot.iter_mut().enumerate() {
+            if (0..ns).any(|s| is_table(u * ns + s)) {
+                *sl = units.len() as u32;
+                units.push(u);
+            }
+        }
+        let mut p = TablePrep {
+            slot,
+            inv_int: (0..=FAST_MAX_COUNT)
+                .map(|m| if m == 0 { 0.0 } else { 1.0 / m as f64 })
+                .collect(),
+            avx2: detect_avx2(),
+            ..TablePrep::default()
+        };
+        if units.is_empty() {
+            p.units = units;
+            return p;
+        }
+        let nt = units.len();
+        // W rows per slot.
+        for &u in &units {
+            let lens: Vec<usize> = (0..ns)
+                .filter(|&s| is_table(u * ns + s))
+                .map(|s| m.dists[u * ns + s].pmf().len())
+                .collect();
+            let (longest, shortest) = (
+                lens.iter().copied().max().unwrap_or(0),
+                lens.iter().copied().min().unwrap_or(0),
+            );
+            if longest > FAST_MAX_COUNT {
+                p.w_rows.push((p.w.len(), 0, shortest, 0));
+                continue;
+            }
+            let j = ((longest as f64 / std::f64::consts::E).log2().round() as i64).max(0);
+            let ln_fact = ln_factorial_table(longest);
+            let off = p.w.len();
+            p.w.resize(off + longest * ns, 0.0);
+            for s in (0..ns).filter(|&s| is_table(u * ns + s)) {
+                for (n, &pn) in m.dists[u * ns + s].pmf().iter().enumerate() {
+                    let ln_w = pn.ln() + ln_fact[n] - (j * n as i64) as f64 * LN_2;
+                    p.w[off + n * ns + s] = ln_w.exp();
+                }
+            }
+            p.w_rows.push((off, longest, shortest, j));
+        }
+        p.other = units
+            .iter()
+            .flat_map(|&u| (0..ns).map(move |s| (u, s)))
+            .map(|(u, s)| if is_table(u * ns + s) { 0.0 } else { 1.0 })
+            .collect();
+        p.is_table = p.other.iter().map(|&o| (o == 0.0) as i64).collect();
+        // Φ^(0)(S(b)) of every table cell: its reciprocal per [b][slot][s], its log summed.
+        p.sum0 = vec![0.0; nb * ns];
+        p.inv0 = vec![0.0; nb * nt * ns];
+        let mut vals = vec![0.0; ns];
+        for (sl, &u) in units.iter().enumerate() {
+            for b in 0..nb {
+                let z = &m.surv[(u * nb + b) * ns..(u * nb + b + 1) * ns];
+                let fast = p.w_rows[sl].1 > 0;
+                if fast {
+                    p.horner(sl, 0, z, &mut vals);
+                }
+                for s in (0..ns).filter(|&s| is_table(u * ns + s)) {
+                    let ln0 = if fast && vals[s] > 0.0 && vals[s].is_finite() {
+                        vals[s].ln()
+                    } else {
+                        m.dists[u * ns + s].ln_gf_deriv(0, z[s])
+                    };
+                    p.sum0[b * ns + s] += ln0;
+                    p.inv0[(b * nt + sl) * ns + s] = (-ln0).exp();
+                }
+            }
+        }
+        p.lookup = build_lookup(m, lookup_budget);
+        p.units = units;
+        p
+    }
+
+    /// Horner's rule for every stimulus of slot `sl` at count `k`:
+    /// `out[s] = Φ^(k)(z[s]) / 2^(j·k)` (0 for the slot's cells of other families).
+    /// Needs `k <` the slot's shortest table.
+    #[inline]
+    fn horner(&self, sl: usize, k: usize, z: &[f64], out: &mut [f64]) {
+        let (off, rows, _, j) = self.w_rows[sl];
+        let ns = z.len();
+        let w = &self.w[off..off + rows * ns];
+        let scale = (j as f64).exp2();
+        #[cfg(target_arch = "x86_64")]
+        if self.avx2 {
+            // SAFETY: `avx2` is set only when the running CPU reports the feature.
+            unsafe { horner_avx2(w, rows, k, z, scale, &self.inv_int, out) };
+            return;
+        }
+        horner_rows(w, rows, k, z, scale, &self.inv_int, out);
+    }
+
+    /// Adds unit `u`'s table-family correction at bin `b` with count `k > 0`:
+    /// `ln Φ^(k)(S(b)) − ln Φ^(0)(S(b))` for each of its table cells, into `post` directly or
+    /// into the trial's running product `acc`.
+    #[inline]
+    pub(crate) fn add_unit(
+        &self,
+        m: &Model,
+        u: usize,
+        b: usize,
+        k: u32,
+        post: &mut [f64],
+        acc: &mut ProductAcc,
+    ) {
+        let ns = post.len();
+        let nt = self.units.len();
+        let sl = self.slot[u] as usize;
+        let cells = u * ns..(u + 1) * ns;
+        if let Some(l) = &self.lookup {
+            let covered = |i: usize| match l.cells[i] {
+                Some((_, kn)) => (k as usize) < kn,
+                None => !matches!(m.kernels[i], CellKernel::Table),
+            };
+            if cells.clone().all(covered) {
+                for (s, p) in post.iter_mut().enumerate() {
+                    if let Some((off, kn)) = l.cells[u * ns + s] {
+                        let row = off + b * kn;
+                        *p += l.values[row + k as usize] - l.values[row];
+                    }
+                }
+                return;
+            }
+        }
+        let inv0 = &self.inv0[(b * nt + sl) * ns..(b * nt + sl + 1) * ns];
+        let z = &m.surv[(u * m.n_bins() + b) * ns..(u * m.n_bins() + b + 1) * ns];
+        let (_, rows, shortest, j) = self.w_rows[sl];
+        if rows > 0 && (k as usize) < shortest {
+            let other = &self.other[sl * ns..(sl + 1) * ns];
+            let is_table = &self.is_table[sl * ns..(sl + 1) * ns];
+            let jk = j * k as i64;
+            let v = &mut acc.scratch;
+            self.horner(sl, k as usize, z, v);
+            let mut ok = true;
+            for ((x, i0), o) in v.iter_mut().zip(inv0).zip(other) {
+                *x = *x * i0 + o;
+                ok &= *x > RATIO_MIN && *x < RATIO_MAX;
+            }
+            if ok {
+                for (((p, e), x), t) in acc
+                    .prod
+                    .iter_mut()
+                    .zip(&mut acc.exp)
+                    .zip(v.iter())
+                    .zip(is_table)
+                {
+                    let bits = (*p * x).to_bits();
+                    *e += ((bits >> 52) & 0x7ff) as i64 - 1023 + jk * t;
+                    *p = f64::from_bits((bits & 0x800F_FFFF_FFFF_FFFF) | 0x3FF0_0000_0000_0000);
+                }
+                acc.used = true;
+                return;
+            }
+        }
+        for (s, p) in post.iter_mut().enumerate() {
+            if let CellKernel::Table = m.kernels[u * ns + s] {
+                *p += m.dists[u * ns + s].ln_gf_deriv(k, z[s]) + inv0[s].ln();
+            }
+        }
+    }
+
+    /// Bytes held.
+    pub(crate) fn bytes(&self) -> usize {
+        8 * (self.sum0.len() + self.inv0.len() + 2 * self.other.len() + self.w.len())
+            + self.lookup.as_ref().map_or(0, |l| 8 * l.values.len())
+    }
+}
+
+fn build_lookup(m: &Model, budget: usize) -> Option<Lookup> {
+    let (nu, ns, nb) = (m.n_units(), m.n_stimuli(), m.n_bins());
+    let mut cells = vec![None; nu * ns];
+    let mut need = 0usize;
+    for (i, c) in cells.iter_mut().enumerate() {
+        if let CellKernel::Table = m.kernels[i] {
+            let kn = m.dists[i].pmf().len();
+            *c = Some((need, kn));
+            need += kn * nb;
+        }
+    }
+    if need == 0 || need.saturating_mul(8) > budget {
+        return None;
+    }
+    let mut values = vec![0.0; need];
+    for (i, c) in cells.iter().enumerate() {
+        if let Some((off, kn)) = *c {
+            let (u, s) = (i / ns, i % ns);
+            for b in 0..nb {
+                let z = m.surv[(u * nb + b) * ns + s];
+                for k in 0..kn {
+                    values[off + b * kn + k] = m.dists[i].ln_gf_deriv(k as u32, z);
+                }
+            }
+        }
+    }
+    Some(Lookup { cells, values })
+}
+
+fn detect_avx2() -> bool {
+    #[cfg(target_arch = "x86_64")]
+    {
+        std::arch::is_x86_feature_detected!("avx2")
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    {
+        false
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn horner_avx2(
+    w: &[f64],
+    rows: usize,
+    k: usize,
+    z: &[f64],
+    scale: f64,
+    inv: &[f64],
+    out: &mut [f64],
+) {
+    horner_rows(w, rows, k, z, scale, inv, out)
+}
+
+/// `out[s] = Σ_{n=k}^{rows−1} w[n][s] · (scale·z[s])^(n−k)/(n−k)!`, innermost term first:
+/// `acc ← w(n) + (scale·z·1/(n−k+1))·acc` (`scale` is a power of two: exact). Stimuli in
+/// blocks of 16, then 4, then 1, each block's accumulators independent so the steps overlap.
+#[inline(always)]
+fn horner_rows(
+    w: &[f64],
+    rows: usize,
+    k: usize,
+    z: &[f64],
+    scale: f64,
+    inv: &[f64],
+    out: &mut [f64],
+) {
+    let ns = z.len();
+    let mut c = 0;
+    while c + 16 <= ns {
+        horner_block::<16>(w, rows, k, ns, c, z, scale, inv, out);
+        c += 16;
+    }
+    while c + 4 <= ns {
+        horner_block::<4>(w, rows, k, ns, c, z, scale, inv, out);
+        c += 4;
+    }
+    while c < ns {
+        horner_block::<1>(w, rows, k, ns, c, z, scale, inv, out);
+        c += 1;
+    }
+}
+
+#[inline(always)]
+#[allow(clippy::too_many_arguments)]
+fn horner_block<const L: usize>(
+    w: &[f64],
+    rows: usize,
+    k: usize,
+    ns: usize,
+    c: usize,
+    z: &[f64],
+    scale: f64,
+    inv: &[f64],
+    out: &mut [f64],
+) {
+    let zc: [f64; L] = std::array::from_fn(|j| z[c + j] * scale);
+    let top = &w[(rows - 1) * ns + c..(rows - 1) * ns + c + L];
+    let mut acc: [f64; L] = std::array::from_fn(|j| top[j]);
+    for n in (k..rows - 1).rev() {
+        let f = inv[n - k + 1];
+        let row = &w[n * ns + c..n * ns + c + L];
+        for j in 0..L {
+            acc[j] = row[j] + (zc[j] * f) * acc[j];
+        }
+    }
+    out[c..c + L].copy_from_slice(&acc);
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::count::CountParams;
+    use crate::model::{CellSpec, CellSummary, ModelSpec};
+
+    /// 3 units × 37 stimuli (blocks of 16, 4 and 1), COM-Poisson and empirical cells mixed with
+    /// a Poisson and a negative binomial cell per unit.
+    fn model() -> Model {
+        let (nu, ns, nb) = (3, 37, 20);
+        let mut cells = Vec::new();
+        for u in 0..nu {
+            for s in 0..ns {
+                let count = match (u + s) % 9 {
+                    0 => CountParams::Poisson { mean: 3.0 },
+                    1 => CountParams::NegativeBinomial {
+                        mean: 4.0,
+                        shape: 2.0,
+                    },
+                    r if r % 2 == 0 => CountParams::ComPoisson {
+                        lambda: 1.0 + s as f64 * 0.7,
+                        nu: 0.6 + 0.1 * r as f64,
+                    },
+                    _ if u == 2 && s % 4 == 3 => {
+                        // Long tables (up to 400 counts): the power-of-two scaling at work.
+                        let d = crate::CountDist::new(CountParams::NegativeBinomial {
+                            mean: 40.0 + s as f64,
+                            shape: 6.0,
+                        })
+                        .unwrap();
+                        assert!(
+                            d.pmf().len() > 170 && d.pmf().len() <= FAST_MAX_COUNT,
+                            "{}",
+                            d.pmf().len()
+                        );
+                        CountParams::Empirical {
+                            pmf: d.pmf().to_vec(),
+                        }
+                    }
+                    _ => {
+                        let v: Vec<f64> = (0..(5 + s))
+                            .map(|n| 1.0 + ((n * 7 + u) % 5) as f64)
+                            .collect();
+                        let t: f64 = v.iter().sum();
+                        CountParams::Empirical {
+                            pmf: v.iter().map(|x| x / t).collect(),
+                        }
+                    }
+                };
+                let q: Vec<f64> = (0..nb).map(|b| 1.0 + ((b * 3 + s) % 7) as f64).collect();
+                let t: f64 = q.iter().sum();
+                cells.push(CellSpec {
+                    count,
+                    timing: q.iter().map(|x| x / t).collect(),
+                    summary: CellSummary::default(),
+                });
+            }
+        }
+        Model::new(ModelSpec {
+            bin_width_s: 0.001,
+            n_bins: nb as u32,
+            stimuli: (0..ns).map(|s| format!("s{s}")).collect(),
+            units: (0..nu as u32).collect(),
+            prior: vec![1.0; ns],
+            cells,
+        })
+        .unwrap()
+    }
+
+    /// The product form (Horner on W(n) = P(n)·n!, one logarithm per stimulus) against the
+    /// count distribution's own finite sum, cell by cell, for every bin and every count the
+    /// tables cover; both baseline and (where the CPU has it) AVX2 kernels.
+    #[test]
+    fn product_form_matches_the_finite_sum() {
+        let m = model();
+        let (nu, ns, nb) = (m.n_units(), m.n_stimuli(), m.n_bins());
+        for avx2 in [false, detect_avx2()] {
+            let mut p = TablePrep::build(&m, 0);
+            p.avx2 = avx2;
+            assert!(p.lookup.is_none());
+            for u in 0..nu {
+                let (_, rows, shortest, _) = p.w_rows[p.slot[u] as usize];
+                assert!(rows > 0);
+                for b in 0..nb {
+                    for k in 1..shortest as u32 + 3 {
+                        let mut post = vec![0.0; ns];
+                        let mut acc = ProductAcc::new(ns);
+                        p.add_unit(&m, u, b, k, &mut post, &mut acc);
+                        acc.flush_into(&mut post);
+                        for s in 0..ns {
+                            let i = u * ns + s;
+                            let want = match m.kernels[i] {
+                                CellKernel::Table => {
+                                    let z = m.survival(u, s, b);
+                                    m.dists[i].ln_gf_deriv(k, z) - m.dists[i].ln_gf_deriv(0, z)
+                                }
+                                _ => 0.0,
+                            };
+                            assert!(
+                                (post[s] - want).abs() <= 1e-10 * want.abs().max(1.0),
+                                "u {u} s {s} b {b} k {k}: {} vs {want}",
+                                post[s]
+                            );
+                        }
+                    }
+                }
+            }
+            // The k = 0 sums.
+            for b in 0..nb {
+                for s in 0..ns {
+                    let want: f64 = (0..nu)
+                        .filter(|&u| matches!(m.kernels[u * ns + s], CellKernel::Table))
+                        .map(|u| m.dists[u * ns + s].ln_gf_deriv(0, m.survival(u, s, b)))
+                        .sum();
+                    assert!((p.sum0[b * ns + s] - want).abs() < 1e-10 * want.abs().max(1.0));
+                }
+            }
+        }
+    }
+
+    /// With the lookup built, the correction comes from it and agrees with the product form.
+    #[test]
+    fn lookup_and_product_form_agree() {
+        let m = model();
+        let ns = m.n_stimuli();
+        let with = TablePrep::build(&m, 1 << 30);
+        let without = TablePrep::build(&m, 0);
+        assert!(with.lookup.is_some() && without.lookup.is_none());
+        for (u, b, k) in [(0, 0, 1), (1, 7, 3), (2, 19, 4), (2, 10, 2)] {
+            let (mut a, mut c) = (vec![0.0; ns], vec![0.0; ns]);
+            let mut acc = ProductAcc::new(ns);
+            with.add_unit(&m, u, b, k, &mut a, &mut acc);
+            acc.flush_into(&mut a);
+            without.add_unit(&m, u, b, k, &mut c, &mut acc);
+            acc.flush_into(&mut c);
+            for s in 0..ns {
+                assert!((a[s] - c[s]).abs() < 1e-10 * a[s].abs().max(1.0));
+            }
+        }
+    }
+}
