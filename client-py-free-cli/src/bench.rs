@@ -4,8 +4,9 @@
 //! batches. The figures are for this machine as it is loaded right now.
 
 use auspex_engine::count::CountParams;
-use auspex_engine::engine::{Engine, EngineConfig, NullSink};
+use auspex_engine::engine::{Decoder, Engine, EngineConfig, NullSink};
 use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
+use auspex_engine::simulate::{simulate, SimOptions};
 use auspex_proto::v1::{self, inbound::Body};
 use bytes::Bytes;
 use prost::Message;
@@ -109,6 +110,167 @@ pub fn engine_point(nu: usize, ns: usize, budget: Duration) -> EnginePoint {
         stimuli: ns,
         us_per_bin: us,
         headroom: 1000.0 / us,
+    }
+}
+
+/// The engine's cost on a user's own model, with trials drawn from that model.
+#[derive(Clone, Debug, serde::Serialize)]
+pub struct ModelPoint {
+    /// Units.
+    pub units: usize,
+    /// Stimuli.
+    pub stimuli: usize,
+    /// Bins per window.
+    pub bins: usize,
+    /// Decoder timed.
+    pub decoder: String,
+    /// Cells per count family, (family, cells).
+    pub families: Vec<(String, usize)>,
+    /// Seconds to prepare the model's per-bin tables (once per load or reload).
+    pub prepare_s: f64,
+    /// Bytes of precomputed COM-Poisson / empirical terms.
+    pub table_bytes: usize,
+    /// Mean spikes per second per unit inside the windows of the drawn trials.
+    pub spikes_per_s: f64,
+    /// Trials timed.
+    pub trials: usize,
+    /// Median time per bin over trials, µs.
+    pub us_per_bin: f64,
+    /// Slowest trial's time per bin, µs.
+    pub worst_us_per_bin: f64,
+    /// Bin width / median time per bin.
+    pub headroom: f64,
+}
+
+/// Times the engine on `model`: prepares it, draws trials from the model itself (every
+/// stimulus in turn, seeded), and decodes them bin by bin for about `budget`.
+pub fn model_point(model: Arc<Model>, decoder: Decoder, budget: Duration) -> ModelPoint {
+    let (nu, ns, nb) = (model.n_units(), model.n_stimuli(), model.n_bins());
+    let t_prep = Instant::now();
+    model.prepare();
+    let prepare_s = t_prep.elapsed().as_secs_f64();
+    let mut families = std::collections::BTreeMap::<&str, usize>::new();
+    for u in 0..nu {
+        for s in 0..ns {
+            *families
+                .entry(model.count(u, s).family().name())
+                .or_default() += 1;
+        }
+    }
+    // One tick per bin: the engine's cost does not depend on the clock.
+    let tick_rate = 1.0 / model.bin_width_s();
+    let data = simulate(
+        &model,
+        &SimOptions {
+            trials_per_stimulus: (64 / ns as u32).max(2),
+            gap_s: (0.0, 0.0),
+            spontaneous_hz: 0.0,
+            tick_rate_hz: tick_rate,
+            seed: 7,
+        },
+    );
+    let mut cfg = EngineConfig::new(tick_rate);
+    cfg.decoder = decoder;
+    let mut e = Engine::new(model.clone(), cfg).expect("engine on a loaded model");
+    let mut per_bin = Vec::new();
+    let mut in_window = 0usize;
+    let t_all = Instant::now();
+    let mut next_spike = 0usize;
+    for (i, trial) in data.trials.iter().enumerate() {
+        if (t_all.elapsed() >= budget && per_bin.len() >= 3) || per_bin.len() >= 200 {
+            break;
+        }
+        let end = trial.onset + nb as i64;
+        while next_spike < data.spikes.len() && data.spikes[next_spike].0 < trial.onset {
+            next_spike += 1;
+        }
+        let t0 = Instant::now();
+        let _ = e.open_trial(i as u64 + 1, trial.onset, None, &mut NullSink);
+        for b in 0..nb as i64 {
+            let bin_end = trial.onset + b + 1;
+            while next_spike < data.spikes.len() && data.spikes[next_spike].0 < bin_end.min(end) {
+                let (tick, unit) = data.spikes[next_spike];
+                let _ = e.spike(unit, tick);
+                in_window += 1;
+                next_spike += 1;
+            }
+            let _ = e.advance(bin_end - 1, &mut NullSink);
+        }
+        per_bin.push(t0.elapsed().as_secs_f64() * 1e6 / nb as f64);
+    }
+    let trials = per_bin.len();
+    let worst = per_bin.iter().copied().fold(0.0, f64::max);
+    per_bin.sort_by(|a, b| a.total_cmp(b));
+    let us = per_bin[per_bin.len() / 2];
+    ModelPoint {
+        units: nu,
+        stimuli: ns,
+        bins: nb,
+        decoder: decoder.name().to_string(),
+        families: families
+            .into_iter()
+            .map(|(f, n)| (f.to_string(), n))
+            .collect(),
+        prepare_s,
+        table_bytes: model.table_bytes(),
+        spikes_per_s: in_window as f64
+            / (trials.max(1) * nu) as f64
+            / (nb as f64 * model.bin_width_s()),
+        trials,
+        us_per_bin: us,
+        worst_us_per_bin: worst,
+        headroom: model.bin_width_s() * 1e6 / us,
+    }
+}
+
+/// Prints [`model_point`]'s answer for a user.
+pub fn print_model_point(path: &std::path::Path, p: &ModelPoint) {
+    let total: usize = p.families.iter().map(|f| f.1).sum();
+    let fams: Vec<String> = p
+        .families
+        .iter()
+        .map(|(f, n)| format!("{f} {:.0}%", 100.0 * *n as f64 / total.max(1) as f64))
+        .collect();
+    println!(
+        "model {}: {} units × {} stimuli, {} bins; cells: {}",
+        path.display(),
+        p.units,
+        p.stimuli,
+        p.bins,
+        fams.join(", ")
+    );
+    println!(
+        "  prepared in {:.2} s ({:.0} MB of COM-Poisson/empirical terms)",
+        p.prepare_s,
+        p.table_bytes as f64 / 1e6
+    );
+    println!(
+        "  {} trials drawn from the model itself ({:.1} spikes/s per unit in the window), decoder {}",
+        p.trials, p.spikes_per_s, p.decoder
+    );
+    let verdict = if p.headroom >= 10.0 {
+        "real time with ≥ 10× headroom"
+    } else if p.headroom >= 1.0 {
+        "real time, but below the 10× headroom a rig should keep"
+    } else {
+        "NOT real time on this machine"
+    };
+    println!(
+        "→ {:.1} µs per bin (median; slowest trial {:.1} µs) = {:.1}× real time: {verdict}",
+        p.us_per_bin, p.worst_us_per_bin, p.headroom
+    );
+    let table_cells: usize = p
+        .families
+        .iter()
+        .filter(|(f, _)| f == "com_poisson" || f == "empirical")
+        .map(|f| f.1)
+        .sum();
+    if p.headroom < 10.0 && table_cells > 0 {
+        println!(
+            "  {table_cells} COM-Poisson/empirical cells have no closed form: each costs about its count \
+             table's length per bin once its unit has spiked. Refitting with \
+             `auspex fit --families poisson,nb` gives closed-form cells only."
+        );
     }
 }
 
@@ -323,12 +485,58 @@ pub const LADDER: [(usize, usize); 7] = [
     (4096, 64),
 ];
 
-/// Runs the self-test and prints the answer. Returns the engine points and latencies.
-pub async fn run(
-    latency_seconds: f64,
-    latency_size: (usize, usize),
-) -> anyhow::Result<(Vec<EnginePoint>, Vec<Latency>)> {
+/// What `auspex bench` runs.
+#[derive(Clone, Debug)]
+pub struct Options {
+    /// Seconds of 1 kHz batches per latency run.
+    pub latency_seconds: f64,
+    /// Units × stimuli of the latency runs.
+    pub latency_size: (usize, usize),
+    /// A model file to time instead of the synthetic ladder.
+    pub model: Option<std::path::PathBuf>,
+    /// Decoder for the model's timing.
+    pub decoder: Decoder,
+    /// Run the latency measurements.
+    pub latency: bool,
+}
+
+/// Everything `auspex bench` measured.
+#[derive(Clone, Debug, Default, serde::Serialize)]
+pub struct Report {
+    /// The synthetic ladder (empty with a model).
+    pub engine: Vec<EnginePoint>,
+    /// The user's model.
+    pub model: Option<ModelPoint>,
+    /// Latency runs.
+    pub latency: Vec<Latency>,
+}
+
+/// Runs the self-test and prints the answer.
+pub async fn run(opts: &Options) -> anyhow::Result<Report> {
     let t0 = Instant::now();
+    let mut report = Report::default();
+    match &opts.model {
+        Some(path) => {
+            let (_, m) = auspexd::model_file::load_model(path)?;
+            eprintln!("auspex bench: timing {} …", path.display());
+            let dec = opts.decoder;
+            let p = tokio::task::spawn_blocking(move || {
+                model_point(Arc::new(m), dec, Duration::from_secs(5))
+            })
+            .await?;
+            print_model_point(path, &p);
+            report.model = Some(p);
+        }
+        None => report.engine = ladder().await?,
+    }
+    if opts.latency {
+        report.latency = latencies(opts.latency_seconds, opts.latency_size).await?;
+    }
+    eprintln!("bench finished in {:.1} s", t0.elapsed().as_secs_f64());
+    Ok(report)
+}
+
+async fn ladder() -> anyhow::Result<Vec<EnginePoint>> {
     eprintln!("auspex bench: engine per-bin cost (order statistics, negative binomial counts, ~16 spikes/s per unit)");
     println!(
         "{:>6} × {:<4} {:>12} {:>10}",
@@ -357,27 +565,23 @@ pub async fn run(
         ),
         None => println!("→ even {} × {} does not reach 10× headroom here", LADDER[0].0, LADDER[0].1),
     }
+    Ok(points)
+}
+
+async fn latencies(seconds: f64, size: (usize, usize)) -> anyhow::Result<Vec<Latency>> {
     let dir = tempfile::tempdir()?;
     let mut lats = Vec::new();
     for transport in ["tcp", "ipc"] {
         eprintln!(
-            "latency over {transport} loopback: {} units × {} stimuli, 1 kHz batches for {latency_seconds} s …",
-            latency_size.0, latency_size.1
+            "latency over {transport} loopback: {} units × {} stimuli, 1 kHz batches for {seconds} s …",
+            size.0, size.1
         );
-        let l = latency(
-            latency_size.0,
-            latency_size.1,
-            latency_seconds,
-            transport,
-            dir.path(),
-        )
-        .await?;
+        let l = latency(size.0, size.1, seconds, transport, dir.path()).await?;
         println!(
             "batch → posterior frame over {}: p50 {:.0} µs, p99 {:.0} µs, p99.9 {:.0} µs, worst {:.0} µs ({} frames)",
             l.transport, l.p50_us, l.p99_us, l.p999_us, l.max_us, l.frames
         );
         lats.push(l);
     }
-    eprintln!("bench finished in {:.1} s", t0.elapsed().as_secs_f64());
-    Ok((points, lats))
+    Ok(lats)
 }

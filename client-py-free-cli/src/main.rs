@@ -196,6 +196,15 @@ enum Cmd {
         /// Also print the figures as JSON
         #[arg(long)]
         json: bool,
+        /// Time this model file instead of the synthetic size ladder (trials drawn from it)
+        #[arg(long)]
+        model: Option<PathBuf>,
+        /// Decoder to time with --model
+        #[arg(long, default_value = "order-stats", value_parser = parse_decoder)]
+        decoder: Decoder,
+        /// Skip the latency runs
+        #[arg(long)]
+        no_latency: bool,
     },
     /// Write a model as interchange JSON (the numbers the engine uses)
     Export {
@@ -410,14 +419,21 @@ fn main() {
             quiet,
         )
         .map(|_| ()),
-        Cmd::Bench { seconds, units, stimuli, json } => runtime().and_then(|rt| {
+        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency } => runtime().and_then(|rt| {
             rt.block_on(async {
                 if !(seconds > 0.0 && units > 0 && stimuli > 1) {
                     anyhow::bail!("--seconds must be > 0, --units ≥ 1 and --stimuli ≥ 2");
                 }
-                let (points, lats) = auspex::bench::run(seconds, (units, stimuli)).await?;
+                let opts = auspex::bench::Options {
+                    latency_seconds: seconds,
+                    latency_size: (units, stimuli),
+                    model,
+                    decoder,
+                    latency: !no_latency,
+                };
+                let out = auspex::bench::run(&opts).await?;
                 if json {
-                    println!("{}", serde_json::json!({"engine": points, "latency": lats}));
+                    println!("{}", serde_json::to_string(&out)?);
                 }
                 Ok(())
             })
