@@ -130,6 +130,8 @@ pub struct ModelPoint {
     pub prepare_s: f64,
     /// Bytes of precomputed COM-Poisson / empirical terms.
     pub table_bytes: usize,
+    /// Counts up to which those terms are looked up rather than evaluated (None: no such cells).
+    pub table_lookup_counts: Option<usize>,
     /// Mean spikes per second per unit inside the windows of the drawn trials.
     pub spikes_per_s: f64,
     /// Trials timed.
@@ -213,6 +215,7 @@ pub fn model_point(model: Arc<Model>, decoder: Decoder, budget: Duration) -> Mod
             .collect(),
         prepare_s,
         table_bytes: model.table_bytes(),
+        table_lookup_counts: model.table_lookup_counts(),
         spikes_per_s: in_window as f64
             / (trials.max(1) * nu) as f64
             / (nb as f64 * model.bin_width_s()),
@@ -239,11 +242,14 @@ pub fn print_model_point(path: &std::path::Path, p: &ModelPoint) {
         p.bins,
         fams.join(", ")
     );
-    println!(
-        "  prepared in {:.2} s ({:.0} MB of COM-Poisson/empirical terms)",
-        p.prepare_s,
-        p.table_bytes as f64 / 1e6
-    );
+    match p.table_lookup_counts {
+        Some(k) => println!(
+            "  prepared in {:.2} s ({:.0} MB of COM-Poisson/empirical terms, looked up for counts ≤ {k})",
+            p.prepare_s,
+            p.table_bytes as f64 / 1e6
+        ),
+        None => println!("  prepared in {:.2} s", p.prepare_s),
+    }
     println!(
         "  {} trials drawn from the model itself ({:.1} spikes/s per unit in the window), decoder {}",
         p.trials, p.spikes_per_s, p.decoder

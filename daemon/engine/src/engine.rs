@@ -980,6 +980,26 @@ fn prefetch_rows(m: &Model, t: &TrialState, u: usize, b: usize) {
     }
 }
 
+/// How many units ahead the per-bin passes ask for a unit's rows.
+const UNIT_PREFETCH_AHEAD: usize = 16;
+
+/// Calls `f` on units `unit_at(0..n)` in order, calling `ahead` on the unit
+/// [`UNIT_PREFETCH_AHEAD`] places later first, so its rows are on their way when its turn comes.
+#[inline(always)]
+fn each_prefetching(
+    n: usize,
+    unit_at: impl Fn(usize) -> usize,
+    mut ahead: impl FnMut(usize),
+    mut f: impl FnMut(usize),
+) {
+    for i in 0..n {
+        if i + UNIT_PREFETCH_AHEAD < n {
+            ahead(unit_at(i + UNIT_PREFETCH_AHEAD));
+        }
+        f(unit_at(i));
+    }
+}
+
 /// Prefetches every cache line of `xs` (no effect on targets without a prefetch hint).
 #[inline(always)]
 fn prefetch(xs: &[f64]) {
@@ -1058,11 +1078,12 @@ fn run_bins(
                 *ll += q;
                 *ps += q;
             }
-            // The count constant rises by a per-cell constant for Poisson cells and for the
+            // The count constant rises by a per-cell constant for Poisson cells (ln μ; 0 for
+            // COM-Poisson/empirical cells, whose count term lives in `table.rs`) and for the
             // inhomogeneous Poisson decoder: one branch-free pass over the unit's row.
             let inc = match t.decoder {
                 Decoder::InhomogeneousPoisson => Some(&m.ln_means[cells.clone()]),
-                Decoder::OrderStats if m.unit_all_poisson[u] => {
+                Decoder::OrderStats if !m.unit_has_negbin[u] => {
                     Some(&m.poisson_ln_mean[cells.clone()])
                 }
                 Decoder::OrderStats if m.unit_all_negbin[u] => m.nb_step_row(u, k),
@@ -1149,7 +1170,18 @@ fn run_bins(
                 if 2 * t.active.len() > nu {
                     (0..nu).for_each(&mut nb_term);
                 } else {
-                    t.active.iter().for_each(|&u| nb_term(u as usize));
+                    let act = &t.active;
+                    let k = &t.k;
+                    each_prefetching(
+                        act.len(),
+                        |i| act[i] as usize,
+                        |u| {
+                            if k[u] > 0 && m.unit_has_negbin[u] {
+                                prefetch(&m.nb_g[(b * nu + u) * ns..(b * nu + u + 1) * ns]);
+                            }
+                        },
+                        nb_term,
+                    );
                 }
                 // Table families: silent units through the per-model sums, units that have
                 // spiked through their correction.
@@ -1158,16 +1190,22 @@ fn run_bins(
                     for (p, s0) in t.post.iter_mut().zip(&tp.sum0[b * ns..(b + 1) * ns]) {
                         *p += s0;
                     }
-                    let mut add = |u: usize| {
-                        let k = t.k[u];
-                        if k > 0 && tp.slot[u] != NO_SLOT {
-                            tp.add_unit(&m, u, b, k, &mut t.post, &mut t.table_acc);
+                    let (k, post, acc) = (&t.k, &mut t.post, &mut t.table_acc);
+                    let add = |u: usize| {
+                        if k[u] > 0 && tp.slot[u] != NO_SLOT {
+                            tp.add_unit(&m, u, b, k[u], post, acc);
+                        }
+                    };
+                    let ahead = |u: usize| {
+                        if k[u] > 0 && tp.slot[u] != NO_SLOT {
+                            prefetch(tp.row_for(u, b, k[u], ns));
                         }
                     };
                     if t.active.len() < tp.units.len() {
-                        t.active.iter().for_each(|&u| add(u as usize));
+                        let act = &t.active;
+                        each_prefetching(act.len(), |i| act[i] as usize, ahead, add);
                     } else {
-                        tp.units.iter().for_each(|&u| add(u));
+                        each_prefetching(tp.units.len(), |i| tp.units[i], ahead, add);
                     }
                     t.table_acc.flush_into(&mut t.post);
                 }

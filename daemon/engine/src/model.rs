@@ -109,8 +109,6 @@ pub struct Model {
     pub(crate) unit_has_negbin: Vec<bool>,
     /// Units whose cells are all negative binomial (a branch-free, vectorisable loop).
     pub(crate) unit_all_negbin: Vec<bool>,
-    /// Units whose cells are all Poisson.
-    pub(crate) unit_all_poisson: Vec<bool>,
     /// ln μ of Poisson cells (0 elsewhere): what a spike adds to their count constant.
     pub(crate) poisson_ln_mean: Vec<f64>,
     /// Table-family (COM-Poisson, empirical) precomputation, built once per model on first use
@@ -123,7 +121,7 @@ pub struct Model {
 }
 
 /// Memory a model may spend on precomputed generating-function values of table-family cells.
-pub const TABLE_LOOKUP_BUDGET_BYTES: usize = 512 << 20;
+pub const TABLE_LOOKUP_BUDGET_BYTES: usize = 1 << 30;
 
 impl Model {
     /// Validates a spec and precomputes the tables.
@@ -234,7 +232,6 @@ impl Model {
         let mut rate_sum = vec![0.0; nb * ns];
         let mut unit_has_negbin = vec![false; nu];
         let mut unit_all_negbin = vec![true; nu];
-        let mut unit_all_poisson = vec![true; nu];
         let mut poisson_ln_mean = vec![0.0; nu * ns];
         for u in 0..nu {
             for s in 0..ns {
@@ -255,9 +252,8 @@ impl Model {
                 if !matches!(kernels[i], CellKernel::NegBin { .. }) {
                     unit_all_negbin[u] = false;
                 }
-                match kernels[i] {
-                    CellKernel::Poisson { ln_mean, .. } => poisson_ln_mean[i] = ln_mean,
-                    _ => unit_all_poisson[u] = false,
+                if let CellKernel::Poisson { ln_mean, .. } = kernels[i] {
+                    poisson_ln_mean[i] = ln_mean;
                 }
             }
         }
@@ -279,7 +275,6 @@ impl Model {
             rate_sum,
             unit_has_negbin,
             unit_all_negbin,
-            unit_all_poisson,
             poisson_ln_mean,
             table: std::sync::OnceLock::new(),
             nb_steps: std::sync::OnceLock::new(),
@@ -379,6 +374,14 @@ impl Model {
     /// Bytes of precomputed table-family terms (0 before [`Model::prepare`]).
     pub fn table_bytes(&self) -> usize {
         self.table.get().map_or(0, |t| t.bytes())
+    }
+
+    /// The smallest count up to which every COM-Poisson/empirical unit's per-bin terms come from
+    /// the lookup (higher counts are evaluated in product form); None without such cells or
+    /// before [`Model::prepare`].
+    pub fn table_lookup_counts(&self) -> Option<usize> {
+        let t = self.table.get()?;
+        (!t.units.is_empty()).then(|| t.lookup_counts())
     }
 
     /// The table-family precomputation (built on first use).

@@ -4,8 +4,10 @@
 //!
 //! * units that have not spiked (k = 0) cost nothing per bin: their `ln Φ^(0)(S(b))` is summed
 //!   over units per (bin, stimulus) once, like the closed-form families' silence terms;
-//! * a unit that has spiked adds `ln Φ^(k)(S(b)) − ln Φ^(0)(S(b))`: read from a per-model lookup
-//!   of `ln Φ^(k)(S(b))` when that fits its memory budget, otherwise evaluated exactly by Horner's
+//! * a unit that has spiked adds `ln Φ^(k)(S(b)) − ln Φ^(0)(S(b))`: one contiguous row of a
+//!   per-model lookup `[unit][b][k][s]` for the counts k ≤ K the memory budget allows (all of
+//!   them for small models; the low counts, where realistic firing spends most of a window, for
+//!   large ones), otherwise evaluated exactly by Horner's
 //!   rule on `Σ_m W(k+m)·z^m/m!` with `W(n) = P(n)·n!` (scaled by a power of two per unit so
 //!   long tables stay in range, the scale carried exactly in the exponent), all stimuli side by side
 //!   (independent chains, so the loop is bound by arithmetic throughput, not by latency), and
@@ -51,18 +53,21 @@ pub(crate) struct TablePrep {
     w_rows: Vec<(usize, usize, usize, i64)>,
     /// 1/m for m = 0..=FAST_MAX_COUNT (index 0 unused).
     inv_int: Vec<f64>,
-    /// Precomputed `ln Φ^(k)(S(b))`, when within the budget.
-    lookup: Option<Lookup>,
+    /// Precomputed corrections `ln Φ^(k)(S(b)) − ln Φ^(0)(S(b))` for k = 1..=K per slot.
+    lookup: Lookup,
     avx2: bool,
 }
 
 /// Slot value of a unit without table-family cells.
 pub(crate) const NO_SLOT: u32 = u32::MAX;
 
-/// Per table-family cell: where its `[b][k]` block starts and how many counts it covers.
-#[derive(Debug)]
+/// Rows `[b][k − 1][slot][s]` for k = 1..=K, 0 for cells of other families: one bin's rows lie
+/// together, and within them the units at the same count, so a pass over the units in order
+/// reads a few forward streams (one per count) rather than one scattered row per unit.
+#[derive(Debug, Default)]
 struct Lookup {
-    cells: Vec<Option<(usize, usize)>>,
+    /// Counts covered (0: no lookup).
+    k: usize,
     values: Vec<f64>,
 }
 
@@ -182,8 +187,8 @@ impl TablePrep {
                 }
             }
         }
-        p.lookup = build_lookup(m, lookup_budget);
         p.units = units;
+        p.lookup = p.build_lookup(m, lookup_budget);
         p
     }
 
@@ -221,21 +226,12 @@ impl TablePrep {
         let ns = post.len();
         let nt = self.units.len();
         let sl = self.slot[u] as usize;
-        let cells = u * ns..(u + 1) * ns;
-        if let Some(l) = &self.lookup {
-            let covered = |i: usize| match l.cells[i] {
-                Some((_, kn)) => (k as usize) < kn,
-                None => !matches!(m.kernels[i], CellKernel::Table),
-            };
-            if cells.clone().all(covered) {
-                for (s, p) in post.iter_mut().enumerate() {
-                    if let Some((off, kn)) = l.cells[u * ns + s] {
-                        let row = off + b * kn;
-                        *p += l.values[row + k as usize] - l.values[row];
-                    }
-                }
-                return;
+        if (k as usize) <= self.lookup.k {
+            let row = self.lookup_row(b, k, sl, ns);
+            for (p, c) in post.iter_mut().zip(&self.lookup.values[row..row + ns]) {
+                *p += c;
             }
+            return;
         }
         let inv0 = &self.inv0[(b * nt + sl) * ns..(b * nt + sl + 1) * ns];
         let z = &m.surv[(u * m.n_bins() + b) * ns..(u * m.n_bins() + b + 1) * ns];
@@ -274,40 +270,83 @@ impl TablePrep {
         }
     }
 
+    /// The memory unit `u` (with a table slot) will read at bin `b` with count `k > 0`.
+    #[inline]
+    pub(crate) fn row_for(&self, u: usize, b: usize, k: u32, ns: usize) -> &[f64] {
+        let sl = self.slot[u] as usize;
+        if (k as usize) <= self.lookup.k {
+            let row = self.lookup_row(b, k, sl, ns);
+            &self.lookup.values[row..row + ns]
+        } else {
+            let nt = self.units.len();
+            &self.inv0[(b * nt + sl) * ns..(b * nt + sl + 1) * ns]
+        }
+    }
+
     /// Bytes held.
     pub(crate) fn bytes(&self) -> usize {
         8 * (self.sum0.len() + self.inv0.len() + 2 * self.other.len() + self.w.len())
-            + self.lookup.as_ref().map_or(0, |l| 8 * l.values.len())
+            + 8 * self.lookup.values.len()
     }
-}
 
-fn build_lookup(m: &Model, budget: usize) -> Option<Lookup> {
-    let (nu, ns, nb) = (m.n_units(), m.n_stimuli(), m.n_bins());
-    let mut cells = vec![None; nu * ns];
-    let mut need = 0usize;
-    for (i, c) in cells.iter_mut().enumerate() {
-        if let CellKernel::Table = m.kernels[i] {
-            let kn = m.dists[i].pmf().len();
-            *c = Some((need, kn));
-            need += kn * nb;
-        }
+    #[inline]
+    fn lookup_row(&self, b: usize, k: u32, sl: usize, ns: usize) -> usize {
+        let nt = self.units.len();
+        ((b * self.lookup.k + k as usize - 1) * nt + sl) * ns
     }
-    if need == 0 || need.saturating_mul(8) > budget {
-        return None;
+
+    /// Counts up to which the lookup holds every unit's terms (0: no lookup).
+    pub(crate) fn lookup_counts(&self) -> usize {
+        self.lookup.k
     }
-    let mut values = vec![0.0; need];
-    for (i, c) in cells.iter().enumerate() {
-        if let Some((off, kn)) = *c {
-            let (u, s) = (i / ns, i % ns);
+
+    /// The lookup: the largest count cap K (no more than the longest table) whose rows for every
+    /// unit with table-family cells fit `budget` bytes.
+    fn build_lookup(&self, m: &Model, budget: usize) -> Lookup {
+        let (ns, nb, nt) = (m.n_stimuli(), m.n_bins(), self.units.len());
+        let longest = self
+            .units
+            .iter()
+            .flat_map(|&u| (0..ns).map(move |s| u * ns + s))
+            .filter(|&i| matches!(m.kernels[i], CellKernel::Table))
+            .map(|i| m.dists[i].pmf().len())
+            .max()
+            .unwrap_or(0);
+        let per_count = (nt * nb * ns * 8).max(1);
+        let kk = longest.min(budget / per_count);
+        let mut l = Lookup {
+            k: kk,
+            values: vec![0.0; kk * nt * nb * ns],
+        };
+        let mut vals = vec![0.0; ns];
+        for (sl, &u) in self.units.iter().enumerate() {
+            let (_, rows, shortest, j) = self.w_rows[sl];
             for b in 0..nb {
-                let z = m.surv[(u * nb + b) * ns + s];
-                for k in 0..kn {
-                    values[off + b * kn + k] = m.dists[i].ln_gf_deriv(k as u32, z);
+                let z = &m.surv[(u * nb + b) * ns..(u * nb + b + 1) * ns];
+                let inv0 = &self.inv0[(b * nt + sl) * ns..(b * nt + sl + 1) * ns];
+                for k in 1..=kk {
+                    let fast = rows > 0 && k < shortest;
+                    if fast {
+                        self.horner(sl, k, z, &mut vals);
+                    }
+                    let row = ((b * kk + k - 1) * nt + sl) * ns;
+                    for s in 0..ns {
+                        let i = u * ns + s;
+                        if !matches!(m.kernels[i], CellKernel::Table) {
+                            continue;
+                        }
+                        let ln_k = if fast && vals[s] > 0.0 && vals[s].is_finite() {
+                            vals[s].ln() + (j * k as i64) as f64 * LN_2
+                        } else {
+                            m.dists[i].ln_gf_deriv(k as u32, z[s])
+                        };
+                        l.values[row + s] = ln_k + inv0[s].ln();
+                    }
                 }
             }
         }
+        l
     }
-    Some(Lookup { cells, values })
 }
 
 fn detect_avx2() -> bool {
@@ -469,7 +508,7 @@ mod tests {
         for avx2 in [false, detect_avx2()] {
             let mut p = TablePrep::build(&m, 0);
             p.avx2 = avx2;
-            assert!(p.lookup.is_none());
+            assert!(p.lookup.values.is_empty());
             for u in 0..nu {
                 let (_, rows, shortest, _) = p.w_rows[p.slot[u] as usize];
                 assert!(rows > 0);
@@ -517,16 +556,24 @@ mod tests {
         let ns = m.n_stimuli();
         let with = TablePrep::build(&m, 1 << 30);
         let without = TablePrep::build(&m, 0);
-        assert!(with.lookup.is_some() && without.lookup.is_none());
-        for (u, b, k) in [(0, 0, 1), (1, 7, 3), (2, 19, 4), (2, 10, 2)] {
+        assert!(with.lookup_counts() > 4);
+        assert!(without.lookup.values.is_empty());
+        // A budget for a few counts only: higher counts take the product form.
+        let part = TablePrep::build(&m, 3 * m.n_units() * m.n_bins() * ns * 8);
+        assert_eq!(part.lookup_counts(), 3);
+        for (u, b, k) in [(0, 0, 1), (1, 7, 3), (2, 19, 4), (2, 10, 2), (1, 3, 5)] {
             let (mut a, mut c) = (vec![0.0; ns], vec![0.0; ns]);
             let mut acc = ProductAcc::new(ns);
             with.add_unit(&m, u, b, k, &mut a, &mut acc);
             acc.flush_into(&mut a);
             without.add_unit(&m, u, b, k, &mut c, &mut acc);
             acc.flush_into(&mut c);
+            let mut d = vec![0.0; ns];
+            part.add_unit(&m, u, b, k, &mut d, &mut acc);
+            acc.flush_into(&mut d);
             for s in 0..ns {
                 assert!((a[s] - c[s]).abs() < 1e-10 * a[s].abs().max(1.0));
+                assert!((d[s] - c[s]).abs() < 1e-10 * c[s].abs().max(1.0));
             }
         }
     }
