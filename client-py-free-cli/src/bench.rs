@@ -146,10 +146,15 @@ pub struct ModelPoint {
 
 /// Times the engine on `model`: prepares it, draws trials from the model itself (every
 /// stimulus in turn, seeded), and decodes them bin by bin for about `budget`.
-pub fn model_point(model: Arc<Model>, decoder: Decoder, budget: Duration) -> ModelPoint {
+pub fn model_point(
+    model: Arc<Model>,
+    decoder: Decoder,
+    table_bytes: usize,
+    budget: Duration,
+) -> ModelPoint {
     let (nu, ns, nb) = (model.n_units(), model.n_stimuli(), model.n_bins());
     let t_prep = Instant::now();
-    model.prepare();
+    model.prepare_with_lookup_budget(table_bytes);
     let prepare_s = t_prep.elapsed().as_secs_f64();
     let mut families = std::collections::BTreeMap::<&str, usize>::new();
     for u in 0..nu {
@@ -273,9 +278,10 @@ pub fn print_model_point(path: &std::path::Path, p: &ModelPoint) {
         .sum();
     if p.headroom < 10.0 && table_cells > 0 {
         println!(
-            "  {table_cells} COM-Poisson/empirical cells have no closed form: each costs about its count \
-             table's length per bin once its unit has spiked. Refitting with \
-             `auspex fit --families poisson,nb` gives closed-form cells only."
+            "  {table_cells} COM-Poisson/empirical cells have no closed form: above the looked-up \
+             counts each costs about its count table's length per bin. More memory for the lookup \
+             (--table-memory-mb, here and on the daemon) or a refit with closed-form families only \
+             (`auspex fit --families poisson,nb`) brings the cost down."
         );
     }
 }
@@ -504,6 +510,8 @@ pub struct Options {
     pub decoder: Decoder,
     /// Run the latency measurements.
     pub latency: bool,
+    /// Memory for looked-up COM-Poisson/empirical terms, bytes (as the daemon's setting).
+    pub table_bytes: usize,
 }
 
 /// Everything `auspex bench` measured.
@@ -525,9 +533,9 @@ pub async fn run(opts: &Options) -> anyhow::Result<Report> {
         Some(path) => {
             let (_, m) = auspexd::model_file::load_model(path)?;
             eprintln!("auspex bench: timing {} …", path.display());
-            let dec = opts.decoder;
+            let (dec, tb) = (opts.decoder, opts.table_bytes);
             let p = tokio::task::spawn_blocking(move || {
-                model_point(Arc::new(m), dec, Duration::from_secs(5))
+                model_point(Arc::new(m), dec, tb, Duration::from_secs(5))
             })
             .await?;
             print_model_point(path, &p);

@@ -205,6 +205,9 @@ enum Cmd {
         /// Skip the latency runs
         #[arg(long)]
         no_latency: bool,
+        /// Memory for looked-up COM-Poisson/empirical terms with --model, MB (as the daemon's flag)
+        #[arg(long, default_value_t = (auspex_engine::model::TABLE_LOOKUP_BUDGET_BYTES >> 20) as u64)]
+        table_memory_mb: u64,
     },
     /// Write a model as interchange JSON (the numbers the engine uses)
     Export {
@@ -419,7 +422,7 @@ fn main() {
             quiet,
         )
         .map(|_| ()),
-        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency } => runtime().and_then(|rt| {
+        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, table_memory_mb } => runtime().and_then(|rt| {
             rt.block_on(async {
                 if !(seconds > 0.0 && units > 0 && stimuli > 1) {
                     anyhow::bail!("--seconds must be > 0, --units ≥ 1 and --stimuli ≥ 2");
@@ -430,6 +433,7 @@ fn main() {
                     model,
                     decoder,
                     latency: !no_latency,
+                    table_bytes: (table_memory_mb.min(1 << 20) as usize) << 20,
                 };
                 let out = auspex::bench::run(&opts).await?;
                 if json {

@@ -49,6 +49,9 @@ pub struct DaemonArgs {
     /// Log JSON lines instead of text
     #[arg(long)]
     pub log_json: bool,
+    /// Memory for looked-up COM-Poisson/empirical count terms, MB (more: fewer evaluated per bin) [default: 1024]
+    #[arg(long)]
+    pub table_memory_mb: Option<u64>,
 }
 
 /// Runs the daemon from flags; returns the process exit code.
@@ -79,6 +82,9 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
         decoder,
         threshold
     );
+    if a.table_memory_mb.is_some() {
+        f.table_memory_mb = a.table_memory_mb;
+    }
     if a.tick_rate.is_some() {
         f.tick_rate_hz = a.tick_rate;
     }

@@ -50,6 +50,8 @@ pub struct FileConfig {
     pub seed: Option<u64>,
     /// Log as JSON lines.
     pub log_json: Option<bool>,
+    /// Memory for looked-up COM-Poisson/empirical terms, MB.
+    pub table_memory_mb: Option<u64>,
 }
 
 /// The validated configuration.
@@ -85,6 +87,8 @@ pub struct DaemonConfig {
     pub publish_queue: usize,
     /// Health period.
     pub health_period: std::time::Duration,
+    /// Bytes a model may spend on looked-up COM-Poisson/empirical terms (at load and reload).
+    pub table_memory_bytes: usize,
 }
 
 /// Default endpoints: loopback only.
@@ -183,7 +187,16 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
             "max message size {max_message_bytes} bytes is too small (≥ 1024)"
         ));
     }
+    let table_mb = f
+        .table_memory_mb
+        .unwrap_or((auspex_engine::model::TABLE_LOOKUP_BUDGET_BYTES >> 20) as u64);
+    if table_mb > 1 << 20 {
+        return Err(format!(
+            "table memory {table_mb} MB is more than 1 TB; give MB, e.g. 2048"
+        ));
+    }
     Ok(DaemonConfig {
+        table_memory_bytes: (table_mb as usize) << 20,
         model,
         ingest,
         ingest_pattern: f.ingest_pattern.unwrap_or_default(),

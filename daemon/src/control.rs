@@ -24,7 +24,7 @@ fn error_reply(msg: impl Into<String>) -> ControlReply {
     }
 }
 
-async fn handle(bytes: &[u8], tx: &Sender<EngineInput>) -> ControlReply {
+async fn handle(bytes: &[u8], tx: &Sender<EngineInput>, table_bytes: usize) -> ControlReply {
     let req = match ControlRequest::decode(bytes) {
         Ok(r) => r,
         Err(e) => return error_reply(format!("request is not a ControlRequest: {e}")),
@@ -36,7 +36,8 @@ async fn handle(bytes: &[u8], tx: &Sender<EngineInput>) -> ControlReply {
             let path = std::path::PathBuf::from(&r.path);
             let loaded = tokio::task::spawn_blocking(move || {
                 // Build the model's lookup tables here, off the engine thread.
-                crate::model_file::load_model(&path).inspect(|(_, m)| m.prepare())
+                crate::model_file::load_model(&path)
+                    .inspect(|(_, m)| m.prepare_with_lookup_budget(table_bytes))
             })
             .await;
             match loaded {
@@ -68,6 +69,7 @@ pub async fn run_control(
     mut sock: zeromq::RouterSocket,
     tx: Sender<EngineInput>,
     mut stop: watch::Receiver<bool>,
+    table_bytes: usize,
 ) {
     loop {
         tokio::select! {
@@ -80,7 +82,7 @@ pub async fn run_control(
                     if frames.is_empty() {
                         continue;
                     }
-                    let reply = handle(&bytes, &tx).await;
+                    let reply = handle(&bytes, &tx, table_bytes).await;
                     let mut out = ZmqMessage::from(frames.remove(0));
                     for f in frames {
                         out.push_back(f);

@@ -52,7 +52,7 @@ pub struct StopSummary {
 /// Binds and starts everything.
 pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
     let (_, model) = crate::model_file::load_model(&cfg.model)?;
-    model.prepare();
+    model.prepare_with_lookup_budget(cfg.table_memory_bytes);
     let model = Arc::new(model);
     let (engine_tx, engine_rx) = crossbeam_channel::bounded(cfg.engine_queue);
     let (pub_tx, pub_rx) = tokio::sync::mpsc::channel(cfg.publish_queue);
@@ -122,6 +122,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         rep,
         engine_tx.clone(),
         stop_rx.clone(),
+        cfg.table_memory_bytes,
     )));
 
     let recorder = match &cfg.record {

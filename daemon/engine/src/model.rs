@@ -120,7 +120,8 @@ pub struct Model {
     nb_steps: std::sync::OnceLock<(Vec<f64>, usize)>,
 }
 
-/// Memory a model may spend on precomputed generating-function values of table-family cells.
+/// Memory a model spends by default on looked-up COM-Poisson/empirical count terms (the daemon's
+/// `--table-memory-mb` changes it): all counts for small models, the low counts for large ones.
 pub const TABLE_LOOKUP_BUDGET_BYTES: usize = 1 << 30;
 
 impl Model {
@@ -332,7 +333,8 @@ impl Model {
     }
     /// Builds the per-bin precomputation the summed path reads: negative binomial spike steps,
     /// and for COM-Poisson and empirical cells their silence sums, the product form's tables and
-    /// (if it fits [`TABLE_LOOKUP_BUDGET_BYTES`]) a lookup of `ln Φ^(k)(S(b))`.
+    /// a lookup of `ln Φ^(k)(S(b)) − ln Φ^(0)(S(b))` for the counts [`TABLE_LOOKUP_BUDGET_BYTES`]
+    /// covers.
     /// Engines call this when they take a model, so the first bin does not pay for it; models
     /// that are never decoded bin by bin (validation's shuffle refits) never build it.
     pub fn prepare(&self) {
