@@ -422,7 +422,8 @@ fn main() {
             quiet,
         )
         .map(|_| ()),
-        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, table_memory_mb } => runtime().and_then(|rt| {
+        // The daemon runs in this process on the runtime it has when deployed.
+        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, table_memory_mb } => auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
             rt.block_on(async {
                 if !(seconds > 0.0 && units > 0 && stimuli > 1) {
                     anyhow::bail!("--seconds must be > 0, --units ≥ 1 and --stimuli ≥ 2");

@@ -127,11 +127,7 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
     for w in warnings {
         tracing::warn!("{w}");
     }
-    let rt = match tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-    {
+    let rt = match crate::service::io_runtime() {
         Ok(rt) => rt,
         Err(e) => {
             eprintln!("auspexd: error: cannot start the runtime: {e}");

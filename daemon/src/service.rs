@@ -49,6 +49,19 @@ pub struct StopSummary {
     pub recorder_errors: u64,
 }
 
+/// The runtime the daemon's sockets run on: a single worker thread. The I/O tasks only move
+/// bytes (decoding and encoding happen on the engine thread), and with one worker a batch's
+/// path — ingest task, engine thread, publisher and the PUB socket's tasks — needs fewer
+/// cross-thread wake-ups: on the 2-core benchmark machine this halved the median spike-batch →
+/// posterior latency and cut its 99.9th percentile from ~1.5–2 ms to ~0.7 ms (`BENCHMARKS.md`).
+pub fn io_runtime() -> std::io::Result<tokio::runtime::Runtime> {
+    tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(1)
+        .thread_name("auspexd-io")
+        .enable_all()
+        .build()
+}
+
 /// Binds and starts everything.
 pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
     let (_, model) = crate::model_file::load_model(&cfg.model)?;

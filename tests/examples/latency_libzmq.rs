@@ -13,10 +13,7 @@ fn main() -> anyhow::Result<()> {
     let ns: usize = args.get(3).map(|s| s.parse()).transpose()?.unwrap_or(32);
     let transport = args.get(4).cloned().unwrap_or_else(|| "tcp".into());
     let dir = tempfile::tempdir()?;
-    let rt = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()?;
+    let rt = auspexd::service::io_runtime()?;
     let running = rt.block_on(auspex::bench::start_daemon(nu, ns, &transport, dir.path()))?;
     let eps = running.endpoints.clone();
     let ctx = zmq::Context::new();

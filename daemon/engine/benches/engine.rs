@@ -129,8 +129,6 @@ fn bench(c: &mut Criterion) {
                 .iter()
                 .flat_map(|d| [(d, false), (d, true)])
                 .filter(|(d, _)| **d != Decoder::CountOnly)
-                // Table families do the same per-cell work on both paths.
-                .filter(|(_, r)| !(table && *r))
             {
                 let mut cfg = EngineConfig::new(1000.0);
                 cfg.decoder = dec;
