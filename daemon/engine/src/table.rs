@@ -5,14 +5,14 @@
 //! * units that have not spiked (k = 0) cost nothing per bin: their `ln Φ^(0)(S(b))` is summed
 //!   over units per (bin, stimulus) once, like the closed-form families' silence terms;
 //! * a unit that has spiked adds `ln Φ^(k)(S(b)) − ln Φ^(0)(S(b))`: one contiguous row of a
-//!   per-model lookup `[unit][b][k][s]` for the counts k ≤ K the memory budget allows (all of
+//!   per-model lookup `[b][k][unit][s]` for the counts k ≤ K the memory budget allows (all of
 //!   them for small models; the low counts, where realistic firing spends most of a window, for
-//!   large ones), otherwise evaluated exactly by Horner's
-//!   rule on `Σ_m W(k+m)·z^m/m!` with `W(n) = P(n)·n!` (scaled by a power of two per unit so
-//!   long tables stay in range, the scale carried exactly in the exponent), all stimuli side by side
-//!   (independent chains, so the loop is bound by arithmetic throughput, not by latency), and
-//!   multiplied into a per-stimulus product whose binary exponent is carried separately, so a
-//!   bin takes one logarithm per stimulus instead of one per cell.
+//!   large ones), otherwise evaluated exactly by Horner's rule on `Σ_m W(k+m)·z^m/m!` with
+//!   `W(n) = P(n)·n!` (scaled by a power of two per unit so long tables stay in range, the scale
+//!   carried exactly in the exponent), all stimuli side by side (independent chains, so the
+//!   loop is bound by arithmetic throughput, not by latency), and multiplied into a
+//!   per-stimulus product whose binary exponent is carried separately, so a bin takes one
+//!   logarithm per stimulus instead of one per cell.
 //!
 //! Must not: allocate per bin, or use fused multiply-add (results must not depend on the CPU:
 //! the AVX2 variant performs the same IEEE operations in the same order as the baseline one).
