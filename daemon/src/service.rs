@@ -65,7 +65,17 @@ pub fn io_runtime() -> std::io::Result<tokio::runtime::Runtime> {
 /// Binds and starts everything.
 pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
     let (_, model) = crate::model_file::load_model(&cfg.model)?;
+    let t0 = std::time::Instant::now();
     model.prepare_with_lookup_budget(cfg.table_memory_bytes);
+    tracing::info!(
+        model = %cfg.model.display(),
+        units = model.n_units(),
+        stimuli = model.n_stimuli(),
+        prepare_s = t0.elapsed().as_secs_f64(),
+        table_mb = model.table_bytes() >> 20,
+        looked_up_counts = ?model.table_lookup_counts(),
+        "model prepared"
+    );
     let model = Arc::new(model);
     let (engine_tx, engine_rx) = crossbeam_channel::bounded(cfg.engine_queue);
     let (pub_tx, pub_rx) = tokio::sync::mpsc::channel(cfg.publish_queue);
