@@ -252,6 +252,20 @@ mod tests {
     }
 
     #[test]
+    fn table_memory_from_toml_default_and_bound() {
+        let mut w = Vec::new();
+        let f: FileConfig = toml::from_str("model = \"m\"\ntable_memory_mb = 256\n").unwrap();
+        assert_eq!(validate(f, &mut w).unwrap().table_memory_bytes, 256 << 20);
+        let f: FileConfig = toml::from_str("model = \"m\"\n").unwrap();
+        assert_eq!(
+            validate(f, &mut w).unwrap().table_memory_bytes,
+            auspex_engine::model::TABLE_LOOKUP_BUDGET_BYTES
+        );
+        let f: FileConfig = toml::from_str("model = \"m\"\ntable_memory_mb = 5000000\n").unwrap();
+        assert!(validate(f, &mut w).unwrap_err().contains("1 TB"));
+    }
+
+    #[test]
     fn bad_values_are_refused() {
         let base = FileConfig {
             model: Some("m".into()),
