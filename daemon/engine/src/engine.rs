@@ -1167,9 +1167,9 @@ fn run_bins(
                         }
                     }
                 };
-                if 2 * t.active.len() > nu {
+                if m.any_negbin && 2 * t.active.len() > nu {
                     (0..nu).for_each(&mut nb_term);
-                } else {
+                } else if m.any_negbin {
                     let act = &t.active;
                     let k = &t.k;
                     each_prefetching(

@@ -107,6 +107,8 @@ pub struct Model {
     pub(crate) rate_sum: Vec<f64>,
     /// Units with at least one negative binomial cell.
     pub(crate) unit_has_negbin: Vec<bool>,
+    /// Any negative binomial cell at all (else the per-bin negative binomial pass is skipped).
+    pub(crate) any_negbin: bool,
     /// Units whose cells are all negative binomial (a branch-free, vectorisable loop).
     pub(crate) unit_all_negbin: Vec<bool>,
     /// ln μ of Poisson cells (0 elsewhere): what a spike adds to their count constant.
@@ -274,6 +276,7 @@ impl Model {
             unit_index,
             order_stats_sum,
             rate_sum,
+            any_negbin: unit_has_negbin.iter().any(|&x| x),
             unit_has_negbin,
             unit_all_negbin,
             poisson_ln_mean,
