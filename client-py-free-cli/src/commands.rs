@@ -99,6 +99,7 @@ pub fn fit_cmd(
         families: parse_families(families)?,
         prior_from_frequencies,
         bandwidth: Default::default(),
+        shrinkage: Default::default(),
     };
     let (data, report) = source.load(opts.window_s)?;
     eprintln!("{report}");
@@ -321,6 +322,7 @@ pub fn validate_cmd(
             families: parse_families(&a.families)?,
             prior_from_frequencies: false,
             bandwidth: Default::default(),
+            shrinkage: Default::default(),
         },
         threshold: a.threshold,
         min_time_ms: a.min_time_ms,

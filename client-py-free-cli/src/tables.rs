@@ -235,6 +235,7 @@ pub fn read_dataset(
         trials: tr,
         spikes: sp,
         units: units.into_iter().collect(),
+        declared_from: Default::default(),
     };
     let report = report_for(&data, window_s);
     Ok((data, report))

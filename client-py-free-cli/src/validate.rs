@@ -294,6 +294,7 @@ fn subset(data: &Dataset, keep: &[usize], labels: Option<(&[usize], &[String])>)
         units: data.units.clone(),
         spikes: data.spikes.clone(),
         trials: keep.iter().map(|&i| data.trials[i].clone()).collect(),
+        declared_from: data.declared_from.clone(),
     };
     if let Some((lab, names)) = labels {
         for (t, &i) in d.trials.iter_mut().zip(keep) {
@@ -724,6 +725,7 @@ fn shuffle_null(
             let mut shuffled: Vec<usize> = f.train.iter().map(|&i| labels[i]).collect();
             shuffled.shuffle(&mut rng);
             let mut cells = Vec::with_capacity(nu * ns);
+            let mut inputs: Vec<CellInput> = Vec::with_capacity(nu * ns);
             for u in 0..nu {
                 for s in 0..ns {
                     let mut input = CellInput::default();
@@ -735,6 +737,12 @@ fn shuffle_null(
                     }
                     let (fam, bw) = f.choice[u * ns + s];
                     cells.push(refit_cell(&input, nb, opts.fit.bin_width_s, fam, bw));
+                    inputs.push(input);
+                }
+                // The null is fitted as the real folds are, shrinkage included.
+                if opts.fit.shrinkage == auspex_engine::fit::Shrinkage::EmpiricalBayes {
+                    let refs: Vec<&CellInput> = inputs[u * ns..(u + 1) * ns].iter().collect();
+                    auspex_engine::fit::shrink_unit(&refs, &mut cells[u * ns..(u + 1) * ns]);
                 }
             }
             let model = Model::new(auspex_engine::ModelSpec {

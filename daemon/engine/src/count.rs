@@ -623,6 +623,69 @@ pub fn fit_family(family: CountFamily, counts: &[u32]) -> Option<CountParams> {
     }
 }
 
+/// The same family moved to mean `target`, its shape kept: Poisson and negative binomial set the
+/// mean (the negative binomial keeps its shape r), COM-Poisson solves for the λ whose mean is
+/// `target` with ν kept (bisection on ln λ; the mean rises with λ), and a table is mixed with
+/// `pool` (weight `w`, the caller's shrinkage weight), which moves its mean the same way.
+/// Returns `None` when the moved parameters do not give a usable distribution.
+pub fn with_mean(params: &CountParams, target: f64, w: f64, pool: &[f64]) -> Option<CountParams> {
+    if !(target.is_finite() && target > 0.0) {
+        return None;
+    }
+    let moved = match params {
+        CountParams::Poisson { .. } => CountParams::Poisson { mean: target },
+        CountParams::NegativeBinomial { shape, .. } => CountParams::NegativeBinomial {
+            mean: target,
+            shape: *shape,
+        },
+        CountParams::ComPoisson { lambda, nu } => {
+            let mean_at = |ll: f64| com_moments(ll.exp(), *nu).map(|m| m[1]);
+            let (mut a, mut b) = (lambda.ln() - 1.0, lambda.ln() + 1.0);
+            // Widen until the target is bracketed (at most a few steps for a shrinkage move).
+            for _ in 0..60 {
+                match (mean_at(a), mean_at(b)) {
+                    (Some(ma), Some(mb)) if ma <= target && target <= mb => break,
+                    (Some(ma), Some(_)) if ma > target => a -= 2.0,
+                    (Some(_), Some(_)) => b += 2.0,
+                    _ => return None,
+                }
+            }
+            for _ in 0..80 {
+                let mid = 0.5 * (a + b);
+                if mean_at(mid)? < target {
+                    a = mid;
+                } else {
+                    b = mid;
+                }
+            }
+            CountParams::ComPoisson {
+                lambda: (0.5 * (a + b)).exp(),
+                nu: *nu,
+            }
+        }
+        CountParams::Empirical { pmf } => {
+            let len = pmf.len().max(pool.len());
+            let mut out = vec![0.0; len];
+            for (n, o) in out.iter_mut().enumerate() {
+                let p = pmf.get(n).copied().unwrap_or(0.0);
+                let q = pool.get(n).copied().unwrap_or(0.0);
+                *o = (1.0 - w) * p + w * q;
+            }
+            // Entries past one table's end come from the other alone: keep every entry > 0.
+            let floor = out.iter().copied().filter(|x| *x > 0.0).fold(1.0f64, f64::min);
+            for o in out.iter_mut() {
+                if *o <= 0.0 {
+                    *o = floor * 1e-3;
+                }
+            }
+            let s: f64 = out.iter().sum();
+            out.iter_mut().for_each(|x| *x /= s);
+            CountParams::Empirical { pmf: out }
+        }
+    };
+    CountDist::new(moved.clone()).ok().map(|_| moved)
+}
+
 /// The outcome of choosing a family for one cell.
 #[derive(Clone, Debug)]
 pub struct FamilyChoice {

@@ -26,6 +26,10 @@ pub struct Dataset {
     pub spikes: Vec<(i64, u32)>,
     /// Every unit id seen in the spike table, plus any declared without spikes, sorted.
     pub units: Vec<u32>,
+    /// Units declared part-way through the session (online sorting isolated them): unit → tick
+    /// from which it is recorded. Trials with an onset before that tick are not used to fit the
+    /// unit (its earlier spikes were never sent, so its silence there is no evidence).
+    pub declared_from: std::collections::BTreeMap<u32, i64>,
 }
 
 /// The bin of `tick` in a trial with `onset`, or None outside [onset, onset + n_bins·bin_ticks).
@@ -217,6 +221,7 @@ mod tests {
             ],
             spikes: vec![(5, 1), (10, 1), (24, 1), (25, 1), (40, 1)],
             units: vec![1],
+            declared_from: Default::default(),
         };
         // Windows [10, 20) ∪ [15, 25): 5, 25 and 40 fall outside.
         assert_eq!(d.spikes_outside_windows(10), 3);

@@ -5,8 +5,9 @@
 //! Cells are independent pure functions of their inputs, so callers may fit them in any order or
 //! in parallel (the CLI does, with a progress bar); the engine itself spawns no threads.
 
-use crate::count::{choose_family, CountFamily};
-use crate::data::Dataset;
+use crate::count::{choose_family, fit_negative_binomial, with_mean, CountDist, CountFamily};
+use crate::data::{Dataset, UnitWindows};
+use std::collections::BTreeMap;
 use crate::density::{fit_timing, BandwidthRule};
 use crate::model::{mean_var, CellSpec, CellSummary, ModelSpec};
 
@@ -23,7 +24,30 @@ pub struct FitOptions {
     pub prior_from_frequencies: bool,
     /// Kernel bandwidth rule.
     pub bandwidth: BandwidthRule,
+    /// Borrow strength from the unit's pooled data for cells with few trials (see [`shrink_unit`]).
+    pub shrinkage: Shrinkage,
 }
+
+/// How cells with few trials borrow strength from their unit's pooled-over-stimuli data.
+#[derive(Clone, Copy, Debug, PartialEq, Default)]
+pub enum Shrinkage {
+    /// Empirical Bayes: each cell's mean count moves toward the unit's pooled mean with weight
+    /// κ/(κ + n), κ estimated per unit from the spread of its cell means (method of moments),
+    /// and its spike density is mixed with the unit's pooled density with weight
+    /// [`DENSITY_PRIOR_TRIALS`]/(that + n). Both weights vanish as trials accumulate.
+    #[default]
+    EmpiricalBayes,
+    /// Every cell from its own trials alone.
+    Off,
+}
+
+/// Upper bound on κ, the prior's worth in trials (reached by units whose cell means do not
+/// differ beyond sampling noise: their cells are mostly pooled until 50 trials each).
+pub const KAPPA_MAX: f64 = 50.0;
+
+/// The pooled spike density's worth in trials when shrinking a cell's density (a chosen
+/// setting: two pseudo-trials, so a cell's own density dominates from a handful of trials on).
+pub const DENSITY_PRIOR_TRIALS: f64 = 2.0;
 
 impl Default for FitOptions {
     fn default() -> Self {
@@ -33,12 +57,13 @@ impl Default for FitOptions {
             families: CountFamily::ALL.to_vec(),
             prior_from_frequencies: false,
             bandwidth: BandwidthRule::default(),
+            shrinkage: Shrinkage::default(),
         }
     }
 }
 
 /// Why a fit cannot start.
-#[derive(Debug, thiserror::Error, PartialEq)]
+#[derive(Clone, Debug, thiserror::Error, PartialEq)]
 pub enum FitError {
     /// Options out of range.
     #[error("{0}")]
@@ -78,6 +103,8 @@ pub struct FitPlan {
     pub families: Vec<CountFamily>,
     /// Bandwidth rule.
     pub bandwidth: BandwidthRule,
+    /// Shrinkage applied by [`FitPlan::assemble`].
+    pub shrinkage: Shrinkage,
     /// Prior.
     pub prior: Vec<f64>,
     /// Units with no spike inside any labelled trial window.
@@ -121,18 +148,6 @@ pub fn window_bins(
 pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
     let (n_bins, bin_ticks) = window_bins(opts.bin_width_s, opts.window_s, data.tick_rate_hz)?;
     let stimuli = data.stimulus_names();
-    if stimuli.len() < 2 {
-        return Err(FitError::Data(format!(
-            "the trial table names {} stimulus; decoding needs at least two",
-            stimuli.len()
-        )));
-    }
-    if data.units.is_empty() {
-        return Err(FitError::Data("the spike table holds no units".into()));
-    }
-    let labelled: Vec<usize> = (0..data.trials.len())
-        .filter(|&i| data.trials[i].stimulus.is_some())
-        .collect();
     let stim_of: Vec<Option<usize>> = data
         .trials
         .iter()
@@ -142,18 +157,62 @@ pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
                 .and_then(|s| stimuli.iter().position(|x| x == s))
         })
         .collect();
+    let onsets: Vec<i64> = data.trials.iter().map(|t| t.onset).collect();
+    let w = data.windows(&data.units, bin_ticks, n_bins);
+    plan_from_windows(
+        opts,
+        (n_bins, bin_ticks),
+        stimuli,
+        data.units.clone(),
+        &stim_of,
+        &onsets,
+        &w,
+        &data.declared_from,
+    )
+}
+
+/// The planning shared by [`plan`] (a whole dataset) and the learner (the labelled trials of a
+/// running session): trial i has stimulus `stim_of[i]` (None: unlabelled, not used) and onset
+/// `onsets[i]`; `w` holds every unit's window of every trial.
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn plan_from_windows(
+    opts: &FitOptions,
+    (n_bins, bin_ticks): (usize, i64),
+    stimuli: Vec<String>,
+    units: Vec<u32>,
+    stim_of: &[Option<usize>],
+    onsets: &[i64],
+    w: &UnitWindows,
+    declared_from: &BTreeMap<u32, i64>,
+) -> Result<FitPlan, FitError> {
+    if stimuli.len() < 2 {
+        return Err(FitError::Data(format!(
+            "the trial table names {} stimulus; decoding needs at least two",
+            stimuli.len()
+        )));
+    }
+    if units.is_empty() {
+        return Err(FitError::Data("the spike table holds no units".into()));
+    }
+    if opts.families.is_empty() {
+        return Err(FitError::Options("no count family allowed".into()));
+    }
+    let labelled: Vec<usize> = (0..stim_of.len()).filter(|&i| stim_of[i].is_some()).collect();
     let mut per = vec![0u32; stimuli.len()];
     for s in stim_of.iter().flatten() {
         per[*s] += 1;
     }
-    let w = data.windows(&data.units, bin_ticks, n_bins);
     let ns = stimuli.len();
-    let mut cells = vec![CellInput::default(); data.units.len() * ns];
+    let mut cells = vec![CellInput::default(); units.len() * ns];
     let mut silent = Vec::new();
-    for (u, &unit) in data.units.iter().enumerate() {
+    for (u, &unit) in units.iter().enumerate() {
+        let from = declared_from.get(&unit).copied().unwrap_or(i64::MIN);
         let mut any = false;
         for &i in &labelled {
             let Some(s) = stim_of[i] else { continue };
+            if onsets[i] < from {
+                continue;
+            }
             let c = &mut cells[u * ns + s];
             c.counts.push(w.counts[u][i]);
             c.times.push(w.times[u][i].clone());
@@ -171,23 +230,108 @@ pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
     } else {
         vec![1.0 / ns as f64; ns]
     };
-    if opts.families.is_empty() {
-        return Err(FitError::Options("no count family allowed".into()));
-    }
     Ok(FitPlan {
         bin_width_s: opts.bin_width_s,
         n_bins,
         bin_ticks,
         stimuli,
-        units: data.units.clone(),
+        units,
         trials_per_stimulus: per,
         cells,
         families: opts.families.clone(),
         bandwidth: opts.bandwidth,
+        shrinkage: opts.shrinkage,
         prior,
         silent_units: silent,
-        unlabelled_trials: data.trials.len() - labelled.len(),
+        unlabelled_trials: stim_of.len() - labelled.len(),
     })
+}
+
+/// Empirical Bayes shrinkage of one unit's cells (`inputs[s]`, fitted as `cells[s]`) toward the
+/// unit's pooled-over-stimuli estimate.
+///
+/// Counts: the normal-means empirical Bayes rule (Efron & Morris 1975, "Data analysis using
+/// Stein's estimator and its generalizations", JASA 70:311–319): a cell with n trials keeps
+/// weight n/(n + κ) on its own fitted mean and gives κ/(n + κ) to the unit's pooled mean m, with
+/// κ = σ²/τ², σ² the pooled within-cell variance of the count and τ² the method-of-moments
+/// between-cell variance of the true means, `mean over cells of (x̄_s − m)² − σ²/n_s`, floored at
+/// 0 (κ then [`KAPPA_MAX`]). The family and its shape are kept ([`crate::count::with_mean`]).
+/// Spike density: the Dirichlet–multinomial posterior mean with the unit's pooled density as
+/// prior worth [`DENSITY_PRIOR_TRIALS`] trials, i.e. `(n·q_s + a·q_pool)/(n + a)`.
+/// Returns κ.
+pub fn shrink_unit(inputs: &[&CellInput], cells: &mut [CellSpec]) -> f64 {
+    let n: Vec<f64> = inputs.iter().map(|c| c.counts.len() as f64).collect();
+    let total: f64 = n.iter().sum();
+    if total == 0.0 || cells.is_empty() {
+        return 0.0;
+    }
+    let sum: f64 = inputs
+        .iter()
+        .flat_map(|c| c.counts.iter())
+        .map(|&x| x as f64)
+        .sum();
+    let m = sum / total;
+    let (mut ss_within, mut df) = (0.0, 0.0);
+    for c in inputs {
+        if c.counts.len() >= 2 {
+            let (_, v) = mean_var(&c.counts);
+            ss_within += v * (c.counts.len() as f64 - 1.0);
+            df += c.counts.len() as f64 - 1.0;
+        }
+    }
+    let sigma2 = if df > 0.0 { ss_within / df } else { m }.max(1e-9);
+    let seen: Vec<usize> = (0..inputs.len()).filter(|&s| n[s] > 0.0).collect();
+    let tau2 = if seen.len() >= 2 {
+        let k = seen.len() as f64;
+        let between = seen
+            .iter()
+            .map(|&s| {
+                let xbar = inputs[s].counts.iter().map(|&x| x as f64).sum::<f64>() / n[s];
+                (xbar - m).powi(2)
+            })
+            .sum::<f64>()
+            / k;
+        let noise = seen.iter().map(|&s| sigma2 / n[s]).sum::<f64>() / k;
+        (between - noise).max(0.0)
+    } else {
+        0.0
+    };
+    let kappa = if tau2 > 0.0 {
+        (sigma2 / tau2).min(KAPPA_MAX)
+    } else {
+        KAPPA_MAX
+    };
+    let all_counts: Vec<u32> = inputs.iter().flat_map(|c| c.counts.iter().copied()).collect();
+    let pool_pmf = CountDist::new(fit_negative_binomial(&all_counts))
+        .map(|d| d.pmf().to_vec())
+        .unwrap_or_default();
+    let nb = cells[0].timing.len();
+    let mut q_pool = vec![0.0; nb];
+    for (s, c) in cells.iter().enumerate() {
+        for (b, q) in c.timing.iter().enumerate() {
+            q_pool[b] += n[s] * q / total;
+        }
+    }
+    for (s, c) in cells.iter_mut().enumerate() {
+        let w = kappa / (kappa + n[s]);
+        if let Ok(d) = CountDist::new(c.count.clone()) {
+            let target = (1.0 - w) * d.mean() + w * m.max(1e-3);
+            if let Some(p) = with_mean(&c.count, target, w, &pool_pmf) {
+                c.count = p;
+            }
+        }
+        let a = DENSITY_PRIOR_TRIALS;
+        let mut q: Vec<f64> = c
+            .timing
+            .iter()
+            .zip(&q_pool)
+            .map(|(qs, qp)| (n[s] * qs + a * qp) / (n[s] + a))
+            .collect();
+        let z: f64 = q.iter().sum();
+        q.iter_mut().for_each(|x| *x /= z);
+        c.timing = q;
+    }
+    kappa
 }
 
 /// Fits one cell.
@@ -220,7 +364,14 @@ pub fn fit_cell(
 
 impl FitPlan {
     /// Assembles the fitted cells (unit-major, as in `self.cells`) into a model spec.
-    pub fn assemble(&self, cells: Vec<CellSpec>) -> ModelSpec {
+    pub fn assemble(&self, mut cells: Vec<CellSpec>) -> ModelSpec {
+        if self.shrinkage == Shrinkage::EmpiricalBayes {
+            let ns = self.stimuli.len();
+            for u in 0..self.units.len() {
+                let inputs: Vec<&CellInput> = self.cells[u * ns..(u + 1) * ns].iter().collect();
+                shrink_unit(&inputs, &mut cells[u * ns..(u + 1) * ns]);
+            }
+        }
         ModelSpec {
             bin_width_s: self.bin_width_s,
             n_bins: self.n_bins as u32,

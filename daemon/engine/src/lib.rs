@@ -15,6 +15,7 @@ pub mod data;
 pub mod density;
 pub mod engine;
 pub mod fit;
+pub mod learn;
 pub mod model;
 pub mod simulate;
 pub mod special;

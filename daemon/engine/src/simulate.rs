@@ -275,5 +275,6 @@ pub fn simulate(model: &Model, opts: &SimOptions) -> Dataset {
         trials,
         spikes,
         units,
+        declared_from: Default::default(),
     }
 }
