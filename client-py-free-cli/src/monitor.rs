@@ -64,7 +64,9 @@ pub struct MonitorState {
     correct: u64,
     /// Messages lost between daemon and monitor (per-topic sequence gaps).
     pub missed: u64,
-    last_seq: [u64; 5],
+    last_seq: [u64; 6],
+    /// Summaries of sessions that ended while the monitor ran.
+    pub sessions_ended: Vec<String>,
 }
 
 impl MonitorState {
@@ -84,7 +86,8 @@ impl MonitorState {
             decided: 0,
             correct: 0,
             missed: 0,
-            last_seq: [0; 5],
+            last_seq: [0; 6],
+            sessions_ended: Vec::new(),
         }
     }
 
@@ -129,7 +132,14 @@ impl MonitorState {
                     self.correct += (d.presented == d.stimulus_name) as u64;
                 }
             }
+            Some(outbound::Body::Session(s)) => {
+                self.sessions_ended.push(session_line(s));
+            }
             Some(outbound::Body::Trial(t)) => {
+                // A learned model may add stimuli as the session goes: follow the trial's.
+                if !t.stimuli.is_empty() && t.stimuli != self.stimuli {
+                    self.stimuli = t.stimuli.clone();
+                }
                 if !t.presented.is_empty() {
                     if let Some(r) = self.recent.iter_mut().find(|r| r.trial == t.trial) {
                         if r.presented.is_none() {
@@ -445,6 +455,34 @@ impl MonitorState {
     }
 }
 
+/// One line for a session summary (plain mode, status).
+pub fn session_line(s: &v1::SessionSummary) -> String {
+    let acc = if s.decisions_labelled > 0 {
+        format!(
+            "{:.1}% right of {} labelled",
+            100.0 * s.decisions_correct as f64 / s.decisions_labelled as f64,
+            s.decisions_labelled
+        )
+    } else {
+        "no labelled decisions".into()
+    };
+    format!(
+        "session-end {:?} ({}): {} trials completed, {} cancelled, {} decisions, {acc}, {} trials learned, {:.0} s{}",
+        s.session_name,
+        s.reason,
+        s.trials_completed,
+        s.trials_cancelled,
+        s.decisions,
+        s.trials_learned,
+        s.duration_s,
+        if s.recording_path.is_empty() {
+            String::new()
+        } else {
+            format!(", recorded in {}", s.recording_path)
+        }
+    )
+}
+
 /// A plain text line for a message, or None for messages plain mode does not print.
 pub fn plain_line(state: &MonitorState, topic: &str, m: &v1::Outbound) -> Option<String> {
     match &m.body {
@@ -483,6 +521,7 @@ pub fn plain_line(state: &MonitorState, topic: &str, m: &v1::Outbound) -> Option
         Some(outbound::Body::Health(_)) if topic == auspex_proto::topic::HEALTH => {
             Some(format!("health {}", state.health_line()))
         }
+        Some(outbound::Body::Session(s)) => Some(session_line(s)),
         _ => None,
     }
 }
@@ -506,6 +545,9 @@ pub fn json_line(topic: &str, m: &v1::Outbound) -> String {
         }
         Some(outbound::Body::Health(h)) => {
             json!({"spikes_per_s": h.spikes_per_s, "frames_per_s": h.frames_per_s, "late_spikes": h.late_spikes, "malformed": h.malformed_messages, "sequence_gaps": h.sequence_gaps, "dropped_posterior": h.dropped_posterior, "update_p50_us": h.update_p50_us, "update_p99_us": h.update_p99_us})
+        }
+        Some(outbound::Body::Session(s)) => {
+            json!({"session": s.session_name, "reason": s.reason, "trials_completed": s.trials_completed, "trials_cancelled": s.trials_cancelled, "decisions": s.decisions, "decisions_labelled": s.decisions_labelled, "decisions_correct": s.decisions_correct, "trials_learned": s.trials_learned, "recording": s.recording_path, "duration_s": s.duration_s})
         }
         None => json!(null),
     };

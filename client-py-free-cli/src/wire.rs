@@ -78,6 +78,9 @@ pub struct RecordedSession {
     pub dataset: Dataset,
     /// Records that were not valid Inbound messages.
     pub undecodable: usize,
+    /// Where a model learned during the recording took over (or the learner was reset):
+    /// (number of `messages` before it, the marker).
+    pub learned: Vec<(usize, v1::LearnedSwap)>,
     /// Bytes of a torn last record, if the recording was cut short.
     pub torn_tail_bytes: usize,
 }
@@ -100,7 +103,14 @@ pub fn read_recording(path: &std::path::Path) -> anyhow::Result<RecordedSession>
     let mut data = Dataset::default();
     let mut labels = std::collections::HashMap::new();
     let mut units = std::collections::BTreeSet::new();
+    let mut learned = Vec::new();
+    let mut at_start = std::collections::BTreeSet::new();
+    let mut cancelled = std::collections::HashSet::new();
     for r in contents.records {
+        if let Some(l) = r.learned {
+            learned.push((messages.len(), l));
+            continue;
+        }
         let i = raw.len();
         match v1::Inbound::decode(r.message.as_slice()) {
             Ok(m) => {
@@ -108,6 +118,7 @@ pub fn read_recording(path: &std::path::Path) -> anyhow::Result<RecordedSession>
                     Some(Body::SessionStart(s)) => {
                         data.tick_rate_hz = s.tick_rate_hz;
                         units.extend(s.units.iter().copied());
+                        at_start.extend(s.units.iter().copied());
                     }
                     Some(Body::Spikes(b)) => {
                         for (&u, &t) in b.units.iter().zip(&b.ticks) {
@@ -123,6 +134,19 @@ pub fn read_recording(path: &std::path::Path) -> anyhow::Result<RecordedSession>
                     Some(Body::Label(l)) => {
                         labels.insert(l.trial, l.stimulus.clone());
                     }
+                    Some(Body::Cancel(c)) => {
+                        cancelled.insert(c.trial);
+                    }
+                    Some(Body::UnitsAdded(a)) => {
+                        // The learner's rule: a unit not declared at the start learns from the
+                        // first declaration of it on.
+                        for &u in &a.units {
+                            units.insert(u);
+                            if !at_start.contains(&u) && !data.declared_from.contains_key(&u) {
+                                data.declared_from.insert(u, a.from_tick);
+                            }
+                        }
+                    }
                     _ => {}
                 }
                 messages.push((i, m));
@@ -134,6 +158,10 @@ pub fn read_recording(path: &std::path::Path) -> anyhow::Result<RecordedSession>
     for t in data.trials.iter_mut() {
         if t.stimulus.is_none() {
             t.stimulus = labels.get(&t.id).cloned();
+        }
+        // A cancelled trial is decoded but never fitted on (as the daemon's learner does).
+        if cancelled.contains(&t.id) {
+            t.stimulus = None;
         }
     }
     if data.tick_rate_hz <= 0.0 {
@@ -150,6 +178,7 @@ pub fn read_recording(path: &std::path::Path) -> anyhow::Result<RecordedSession>
         messages,
         dataset: data,
         undecodable,
+        learned,
         torn_tail_bytes: contents.torn_tail_bytes,
     })
 }

@@ -52,13 +52,48 @@ pub struct FileConfig {
     pub log_json: Option<bool>,
     /// Memory for looked-up COM-Poisson/empirical terms, MB.
     pub table_memory_mb: Option<u64>,
+    /// Learn from the session's labelled trials (default: on without a model, off with one).
+    pub learn: Option<bool>,
+    /// Start with learning frozen (trials are kept, no refits until resumed).
+    pub learn_frozen: Option<bool>,
+    /// Window after onset the learner fits, ms (without a model; with one, the model's).
+    pub learn_window_ms: Option<f64>,
+    /// Bin width the learner fits, ms (without a model; with one, the model's).
+    pub learn_bin_ms: Option<f64>,
+    /// Count families the learner may choose among (comma-separated, or "all").
+    pub learn_families: Option<String>,
+    /// Labelled trials of every stimulus a unit needs before it contributes.
+    pub learn_min_trials: Option<u32>,
+    /// Refit after this many new labelled trials.
+    pub refit_every_trials: Option<u32>,
+    /// ... or after this many seconds with at least one.
+    pub refit_every_s: Option<f64>,
+}
+
+/// Learning settings as validated (window and bin settled at start when a model is loaded).
+#[derive(Clone, Debug)]
+pub struct LearnConfig {
+    /// Start frozen.
+    pub frozen: bool,
+    /// Window, seconds (None: the loaded model's).
+    pub window_s: Option<f64>,
+    /// Bin width, seconds (None: the loaded model's).
+    pub bin_width_s: Option<f64>,
+    /// Families.
+    pub families: Vec<auspex_engine::CountFamily>,
+    /// Minimum labelled trials per stimulus.
+    pub min_trials: u32,
+    /// Refit cadence.
+    pub cadence: crate::learner::Cadence,
 }
 
 /// The validated configuration.
 #[derive(Clone, Debug)]
 pub struct DaemonConfig {
-    /// Model file.
-    pub model: PathBuf,
+    /// Model file (None: learn one during the session).
+    pub model: Option<PathBuf>,
+    /// Learning during the recording (None: off).
+    pub learn: Option<LearnConfig>,
     /// Main ingest endpoint.
     pub ingest: String,
     /// Ingest pattern.
@@ -121,9 +156,70 @@ pub fn is_local_endpoint(ep: &str) -> bool {
 
 /// Builds and checks the configuration. `warnings` receives what should be printed.
 pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfig, String> {
-    let model = f
-        .model
-        .ok_or("no model file: give --model PATH (fit one with `auspex fit`)")?;
+    let model = f.model;
+    let learn_on = f.learn.unwrap_or(model.is_none());
+    if model.is_none() && !learn_on {
+        return Err(
+            "no model and learning off: give --model PATH (fit one with `auspex fit`), or let the daemon learn (leave out --learn false)"
+                .into(),
+        );
+    }
+    let learn = if learn_on {
+        let with_model = model.is_some();
+        let ms = |name: &str, v: Option<f64>, default: f64| -> Result<Option<f64>, String> {
+            match (v, with_model) {
+                (Some(_), true) => Err(format!(
+                    "{name} is for learning without a model; with --model the learner uses the model's window and bins"
+                )),
+                (Some(x), false) if !(x.is_finite() && x > 0.0 && x <= 60_000.0) => {
+                    Err(format!("{name} {x} ms must be in (0, 60000]"))
+                }
+                (Some(x), false) => Ok(Some(x / 1000.0)),
+                (None, true) => Ok(None),
+                (None, false) => Ok(Some(default / 1000.0)),
+            }
+        };
+        let window_s = ms("learn window", f.learn_window_ms, 250.0)?;
+        let bin_width_s = ms("learn bin", f.learn_bin_ms, 1.0)?;
+        let families = match f.learn_families.as_deref().map(str::trim) {
+            None | Some("all") => auspex_engine::CountFamily::ALL.to_vec(),
+            Some(list) => list
+                .split(',')
+                .map(|x| {
+                    auspex_engine::CountFamily::parse(x).ok_or(format!(
+                        "unknown count family `{x}`: use poisson, negative_binomial (nb), com_poisson (com), empirical or all"
+                    ))
+                })
+                .collect::<Result<Vec<_>, _>>()?,
+        };
+        let min_trials = f.learn_min_trials.unwrap_or(3);
+        if !(1..=1000).contains(&min_trials) {
+            return Err(format!(
+                "learn minimum {min_trials} trials per stimulus must be in 1..=1000"
+            ));
+        }
+        let every_trials = f.refit_every_trials.unwrap_or(8);
+        if every_trials == 0 {
+            return Err("refit every 0 trials: give at least 1".into());
+        }
+        let every_s = f.refit_every_s.unwrap_or(30.0);
+        if !(every_s.is_finite() && every_s > 0.0 && every_s <= 86_400.0) {
+            return Err(format!("refit every {every_s} s must be in (0, 86400]"));
+        }
+        Some(LearnConfig {
+            frozen: f.learn_frozen.unwrap_or(false),
+            window_s,
+            bin_width_s,
+            families,
+            min_trials,
+            cadence: crate::learner::Cadence {
+                every_trials,
+                every: std::time::Duration::from_secs_f64(every_s),
+            },
+        })
+    } else {
+        None
+    };
     let allow_remote = f.allow_remote.unwrap_or(false);
     let ingest = f.ingest.unwrap_or_else(|| defaults::INGEST.into());
     let task_ingest = match f.task_ingest {
@@ -198,6 +294,7 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
     Ok(DaemonConfig {
         table_memory_bytes: (table_mb as usize) << 20,
         model,
+        learn,
         ingest,
         ingest_pattern: f.ingest_pattern.unwrap_or_default(),
         task_ingest,
@@ -296,13 +393,35 @@ mod tests {
             &mut w
         )
         .is_err());
+        // No model means learning; no model and no learning is refused.
+        let learning = validate(
+            FileConfig {
+                model: None,
+                ..base.clone()
+            },
+            &mut w,
+        )
+        .unwrap();
+        assert!(learning.learn.is_some() && learning.model.is_none());
         assert!(validate(
             FileConfig {
                 model: None,
-                ..base
+                learn: Some(false),
+                ..base.clone()
             },
             &mut w
         )
         .is_err());
+        // A model fixes the learner's window and bins.
+        assert!(validate(
+            FileConfig {
+                learn: Some(true),
+                learn_window_ms: Some(100.0),
+                ..base
+            },
+            &mut w
+        )
+        .unwrap_err()
+        .contains("model's window"));
     }
 }

@@ -15,11 +15,14 @@ use zeromq::{Socket, SocketRecv, SocketSend, ZmqMessage};
 
 /// How long the engine thread may take to answer.
 pub const ENGINE_REPLY_TIMEOUT: Duration = Duration::from_secs(3);
+/// How long a save of the learned model (a full fit) may take.
+pub const SAVE_REPLY_TIMEOUT: Duration = Duration::from_secs(600);
 
 fn error_reply(msg: impl Into<String>) -> ControlReply {
     ControlReply {
         ok: false,
         error: msg.into(),
+        note: String::new(),
         body: None,
     }
 }
@@ -49,6 +52,31 @@ async fn handle(bytes: &[u8], tx: &Sender<EngineInput>, table_bytes: usize) -> C
                 Ok(Err(e)) => return error_reply(e.to_string()),
                 Err(e) => return error_reply(format!("loading failed: {e}")),
             }
+        }
+        Some(Body::SaveLearned(sv)) => {
+            if sv.path.trim().is_empty() {
+                return error_reply("save needs a file path");
+            }
+            let (stx, srx) = oneshot::channel();
+            let item = EngineInput::SaveLearned {
+                path: sv.path.into(),
+                reply: stx,
+            };
+            if !forward(tx, item).await {
+                return error_reply("engine stopped");
+            }
+            // Saving fits on every trial learned so far: allow for a large model.
+            return match tokio::time::timeout(SAVE_REPLY_TIMEOUT, srx).await {
+                Ok(Ok(Ok(note))) => ControlReply {
+                    ok: true,
+                    error: String::new(),
+                    note,
+                    body: None,
+                },
+                Ok(Ok(Err(e))) => error_reply(e),
+                Ok(Err(_)) => error_reply("the learner stopped before saving"),
+                Err(_) => error_reply("saving took longer than 10 minutes; see the daemon log"),
+            };
         }
         Some(body) => EngineInput::Control { body, reply: rtx },
     };

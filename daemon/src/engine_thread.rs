@@ -1,22 +1,34 @@
 //! The engine thread: one OS thread that owns the engine. It takes inbound messages in arrival
 //! order from the bounded ingest channel, hands each to the recorder, decodes and checks it
-//! (sequence gaps, size, session), drives the engine, and turns the engine's outputs into
-//! published messages. Bad input is counted and logged with rate limiting, never fatal.
-//! It also answers control requests and publishes health once a second.
+//! (sequence numbers, size, session), drives the engine (through [`crate::stream`], the rule
+//! offline replay shares), and turns the engine's outputs into published messages. Bad input is
+//! counted and logged with rate limiting, never fatal. It also answers control requests,
+//! publishes health once a second, runs the session lifecycle (a new session name ends the
+//! current session: open trials closed, a summary published, the recording rotated), and, when
+//! learning, feeds labelled trial windows to the learner thread and swaps in what it learns at
+//! the trial boundary, recording where.
+//!
+//! Must not: block on the learner or the recorder's disk, fit models, or allocate per spike.
 
+use crate::learner::{Cadence, LearnMsg, Learned};
+use crate::next_stimulus::StimulusChooser;
 use crate::publish::Publisher;
+use crate::ratelog::RateLimitedLog;
 use crate::recorder::RecorderMsg;
+use crate::stream::{apply_body, remember_onset, TrialStimuli};
 use auspex_engine::engine::{
-    Decision, DecisionReason, Engine, EngineConfig, EngineError, EngineSink, Frame, TrialEnd,
-    TrialOutcome, UnitSummaries,
+    Counters, Decision, DecisionReason, Engine, EngineConfig, EngineError, EngineSink, Frame,
+    TrialEnd, TrialOutcome, UnitSummaries,
 };
+use auspex_engine::learn::{LearnOptions, TrialWindow, WindowCollector};
 use auspex_engine::Model;
 use auspex_proto::topic;
 use auspex_proto::v1::{self, control_request, inbound, outbound, ControlReply};
 use bytes::Bytes;
 use crossbeam_channel::{Receiver, RecvTimeoutError, Sender};
 use prost::Message;
-use std::collections::{BTreeMap, HashMap};
+use std::collections::{BTreeMap, VecDeque};
+use std::path::PathBuf;
 use std::sync::atomic::Ordering;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
@@ -33,7 +45,7 @@ pub enum EngineInput {
         /// Wall-clock receive time.
         received_ns: i64,
     },
-    /// A control request (other than reload).
+    /// A control request (other than reload and save).
     Control {
         /// The request.
         body: control_request::Body,
@@ -49,6 +61,22 @@ pub enum EngineInput {
         /// Where the reply goes.
         reply: oneshot::Sender<ControlReply>,
     },
+    /// Save the learned model (forwarded to the learner thread, which replies).
+    SaveLearned {
+        /// Model file path.
+        path: PathBuf,
+        /// The reply.
+        reply: oneshot::Sender<Result<String, String>>,
+    },
+    /// A model the learner thread fitted.
+    Learned(Learned),
+    /// Why the learner could not fit (yet).
+    LearnNote {
+        /// Session counter.
+        epoch: u64,
+        /// The reason.
+        text: String,
+    },
     /// Stop: end open trials, publish, flush.
     Shutdown,
 }
@@ -60,6 +88,7 @@ struct DaemonCounters {
     malformed: u64,
     oversized: u64,
     sequence_gaps: u64,
+    duplicate_messages: u64,
     model_mismatches: u64,
     unknown_stimuli: u64,
     before_session: u64,
@@ -73,110 +102,33 @@ struct SenderInfo {
     messages: u64,
 }
 
-/// Logs at most a few messages per kind per second, then says how many were suppressed.
-struct RateLimitedLog {
-    window_start: Instant,
-    counts: HashMap<&'static str, u32>,
-    suppressed: HashMap<&'static str, u64>,
+/// The running session's figures, for its summary.
+#[derive(Debug, Clone)]
+struct SessionTally {
+    name: String,
+    started: Instant,
+    completed: u64,
+    cancelled: u64,
+    decisions: u64,
+    labelled: u64,
+    correct: u64,
+    /// Decided trials that ended before their label: (trial, decided stimulus name).
+    awaiting_label: VecDeque<(u64, String)>,
+    recording: String,
 }
 
-impl RateLimitedLog {
-    fn new() -> Self {
-        RateLimitedLog {
-            window_start: Instant::now(),
-            counts: HashMap::new(),
-            suppressed: HashMap::new(),
-        }
-    }
-    fn allow(&mut self, kind: &'static str) -> bool {
-        if self.window_start.elapsed() >= Duration::from_secs(1) {
-            for (k, n) in self.suppressed.drain() {
-                if n > 0 {
-                    tracing::warn!(
-                        kind = k,
-                        suppressed = n,
-                        "further messages of this kind were not logged"
-                    );
-                }
-            }
-            self.counts.clear();
-            self.window_start = Instant::now();
-        }
-        let c = self.counts.entry(kind).or_insert(0);
-        *c += 1;
-        if *c <= 5 {
-            true
-        } else {
-            *self.suppressed.entry(kind).or_insert(0) += 1;
-            false
-        }
-    }
-}
-
-/// The next-stimulus policies.
-struct StimulusChooser {
-    rng: u64,
-    block: Vec<u32>,
-    decided: Vec<u64>,
-    correct: Vec<u64>,
-}
-
-impl StimulusChooser {
-    fn new(seed: u64, n: usize) -> Self {
-        StimulusChooser {
-            rng: seed ^ 0x9E37_79B9_7F4A_7C15,
-            block: Vec::new(),
-            decided: vec![0; n],
-            correct: vec![0; n],
-        }
-    }
-    fn next_u64(&mut self) -> u64 {
-        self.rng = self.rng.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.rng;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-    fn resize(&mut self, n: usize) {
-        if self.decided.len() != n {
-            self.decided = vec![0; n];
-            self.correct = vec![0; n];
-            self.block.clear();
-        }
-    }
-    fn balanced(&mut self, n: usize) -> u32 {
-        if self.block.is_empty() {
-            self.block = (0..n as u32).collect();
-            for i in (1..n).rev() {
-                let j = (self.next_u64() % (i as u64 + 1)) as usize;
-                self.block.swap(i, j);
-            }
-        }
-        self.block.pop().unwrap_or(0)
-    }
-    /// The stimulus with the lowest running decoding accuracy (untried first), exploring a
-    /// random one 10% of the time.
-    fn least_certain(&mut self, n: usize) -> u32 {
-        if self.next_u64() % 10 == 0 {
-            return (self.next_u64() % n as u64) as u32;
-        }
-        let acc = |i: usize| {
-            if self.decided[i] == 0 {
-                -1.0
-            } else {
-                self.correct[i] as f64 / self.decided[i] as f64
-            }
-        };
-        (0..n)
-            .min_by(|&a, &b| acc(a).total_cmp(&acc(b)))
-            .unwrap_or(0) as u32
-    }
-    fn record(&mut self, presented: u32, decided: u32) {
-        if let Some(d) = self.decided.get_mut(presented as usize) {
-            *d += 1;
-            if presented == decided {
-                self.correct[presented as usize] += 1;
-            }
+impl SessionTally {
+    fn new(name: &str, recording: String) -> Self {
+        SessionTally {
+            name: name.to_string(),
+            started: Instant::now(),
+            completed: 0,
+            cancelled: 0,
+            decisions: 0,
+            labelled: 0,
+            correct: 0,
+            awaiting_label: VecDeque::new(),
+            recording,
         }
     }
 }
@@ -185,13 +137,24 @@ impl StimulusChooser {
 struct PubSink<'a> {
     publisher: &'a mut Publisher,
     recorder: Option<&'a Sender<RecorderMsg>>,
-    stimuli: &'a [String],
+    names: &'a TrialStimuli,
+    current: &'a Arc<[String]>,
     chooser: &'a mut StimulusChooser,
+    tally: Option<&'a mut SessionTally>,
 }
 
 impl PubSink<'_> {
-    fn name(&self, i: u32) -> String {
-        self.stimuli.get(i as usize).cloned().unwrap_or_default()
+    fn names(&self, trial: u64) -> &[String] {
+        self.names
+            .get(trial)
+            .map(|a| &a[..])
+            .unwrap_or(&self.current[..])
+    }
+    fn name(&self, trial: u64, i: u32) -> String {
+        self.names(trial)
+            .get(i as usize)
+            .cloned()
+            .unwrap_or_default()
     }
 }
 
@@ -210,7 +173,10 @@ impl EngineSink for PubSink<'_> {
         self.publisher.publish(topic::POSTERIOR, body, false);
     }
     fn decision(&mut self, d: &Decision) {
-        let body = outbound::Body::Decision(decision_msg(d, self.stimuli));
+        if let Some(t) = self.tally.as_mut() {
+            t.decisions += 1;
+        }
+        let body = outbound::Body::Decision(decision_msg(d, self.names(d.trial)));
         self.publisher.publish(topic::DECISION, body, true);
     }
     fn trial_end(&mut self, e: &TrialEnd<'_>) {
@@ -219,18 +185,42 @@ impl EngineSink for PubSink<'_> {
                 self.chooser.record(p, d.stimulus);
             }
         }
+        let decided = e.decision.map(|d| self.name(e.trial, d.stimulus));
+        let presented = e.presented.map(|p| self.name(e.trial, p));
+        if let Some(t) = self.tally.as_mut() {
+            if e.outcome == TrialOutcome::Completed {
+                t.completed += 1;
+            } else {
+                t.cancelled += 1;
+            }
+            match (&decided, &presented) {
+                (Some(d), Some(p)) => {
+                    t.labelled += 1;
+                    t.correct += (d == p) as u64;
+                }
+                (Some(d), None) if e.outcome == TrialOutcome::Completed => {
+                    if t.awaiting_label.len() == 256 {
+                        t.awaiting_label.pop_front();
+                    }
+                    t.awaiting_label.push_back((e.trial, d.clone()));
+                }
+                _ => {}
+            }
+        }
         let body = outbound::Body::Trial(v1::TrialClosed {
             trial: e.trial,
             outcome: match e.outcome {
                 TrialOutcome::Completed => v1::TrialOutcome::Completed,
                 TrialOutcome::Cancelled => v1::TrialOutcome::Cancelled,
                 TrialOutcome::Shutdown => v1::TrialOutcome::Shutdown,
+                TrialOutcome::SessionEnded => v1::TrialOutcome::SessionEnded,
             } as i32,
             spikes: e.spikes,
             bins: e.bins,
-            presented: e.presented.map(|p| self.name(p)).unwrap_or_default(),
+            presented: presented.unwrap_or_default(),
             posterior: e.posterior.to_vec(),
             onset_tick: e.onset,
+            stimuli: self.names(e.trial).to_vec(),
         });
         // Trial ends must reach closed-loop control as surely as decisions.
         self.publisher.publish(topic::TRIAL, body, true);
@@ -239,6 +229,15 @@ impl EngineSink for PubSink<'_> {
         }
     }
     fn unit_summaries(&mut self, s: &UnitSummaries<'_>) {
+        let presented = self.name(s.trial, s.presented);
+        if let Some(t) = self.tally.as_mut() {
+            if let Some(i) = t.awaiting_label.iter().position(|(id, _)| *id == s.trial) {
+                if let Some((_, d)) = t.awaiting_label.remove(i) {
+                    t.labelled += 1;
+                    t.correct += (d == presented) as u64;
+                }
+            }
+        }
         let units = (0..s.units.len())
             .map(|i| v1::UnitLine {
                 unit: s.units[i],
@@ -250,7 +249,7 @@ impl EngineSink for PubSink<'_> {
             .collect();
         let body = outbound::Body::Units(v1::UnitReport {
             trial: s.trial,
-            presented: self.name(s.presented),
+            presented,
             labelled_trials: s.n_trials,
             units,
         });
@@ -258,7 +257,7 @@ impl EngineSink for PubSink<'_> {
     }
 }
 
-/// The published form of a decision.
+/// The published form of a decision, named in the order of the trial's model.
 pub fn decision_msg(d: &Decision, stimuli: &[String]) -> v1::DecisionEvent {
     v1::DecisionEvent {
         trial: d.trial,
@@ -281,19 +280,50 @@ pub fn decision_msg(d: &Decision, stimuli: &[String]) -> v1::DecisionEvent {
     }
 }
 
+/// Learning settings for the engine thread.
+#[derive(Clone, Debug)]
+pub struct LearnSetup {
+    /// What and how to fit.
+    pub options: LearnOptions,
+    /// When to refit.
+    pub cadence: Cadence,
+    /// Start with learning on (false: frozen until `steer learn resume`).
+    pub enabled: bool,
+}
+
+/// The engine thread's side of learning.
+struct LearnLink {
+    tx: Sender<LearnMsg>,
+    setup: LearnSetup,
+    enabled: bool,
+    trials_sent: u64,
+    model_trials: u64,
+    applied_at: Option<Instant>,
+    last_refit_s: f64,
+    refits: u32,
+    waiting_for: String,
+}
+
 /// Everything the engine thread owns.
 pub struct EngineThread {
-    model: Arc<Model>,
+    model: Option<Arc<Model>>,
     model_path: String,
+    base: Option<(Arc<Model>, String)>,
     config: EngineConfig,
+    fixed_tick_rate: Option<f64>,
     tick_rate: Option<f64>,
-    session_units: Option<Vec<u32>>,
     engine: Option<Engine>,
+    collector: Option<WindowCollector>,
+    names: TrialStimuli,
+    current: Arc<[String]>,
     publisher: Publisher,
     recorder: Option<Sender<RecorderMsg>>,
+    record_dir: Option<PathBuf>,
     recording_path: String,
     max_message_bytes: usize,
     counters: DaemonCounters,
+    /// Engine counters of ended sessions (health figures run over the daemon's life).
+    carried: Counters,
     senders: BTreeMap<String, SenderInfo>,
     log: RateLimitedLog,
     latencies_us: Vec<f64>,
@@ -307,15 +337,22 @@ pub struct EngineThread {
     backlog: Receiver<EngineInput>,
     /// Trial messages that arrived before SessionStart, applied when it does.
     held: Vec<inbound::Body>,
+    session: Option<SessionTally>,
+    ended: Vec<v1::SessionSummary>,
+    epoch: u64,
+    learn: Option<LearnLink>,
+    windows: Vec<TrialWindow>,
 }
 
 /// Trial messages held while waiting for SessionStart; more are counted as malformed.
 const MAX_HELD_BEFORE_SESSION: usize = 4096;
+/// Ended sessions kept for status.
+const ENDED_KEPT: usize = 64;
 
 /// Settings for [`EngineThread::new`].
 pub struct EngineThreadSetup {
-    /// The model.
-    pub model: Arc<Model>,
+    /// The model loaded at start (None: learn one).
+    pub model: Option<Arc<Model>>,
     /// Its path (for status).
     pub model_path: String,
     /// Decoder, policy.
@@ -328,30 +365,123 @@ pub struct EngineThreadSetup {
     pub recorder: Option<Sender<RecorderMsg>>,
     /// Recording path (for status).
     pub recording_path: String,
+    /// The directory sessions are recorded into, one file each (None: one file given by path).
+    pub record_dir: Option<PathBuf>,
     /// Largest message.
     pub max_message_bytes: usize,
     /// Next-stimulus seed.
     pub seed: u64,
     /// Health period.
     pub health_period: Duration,
+    /// Learning (None: off), and the learner thread's inbox.
+    pub learn: Option<(LearnSetup, Sender<LearnMsg>)>,
+}
+
+/// Adds one set of engine counters to another.
+fn add_counters(a: &mut Counters, b: &Counters) {
+    a.spikes += b.spikes;
+    a.late_spikes += b.late_spikes;
+    a.unknown_unit_spikes += b.unknown_unit_spikes;
+    a.watermark_backwards += b.watermark_backwards;
+    a.duplicate_trials += b.duplicate_trials;
+    a.stale_onsets += b.stale_onsets;
+    a.unknown_trials += b.unknown_trials;
+    a.unknown_stimuli += b.unknown_stimuli;
+    a.trials_opened += b.trials_opened;
+    a.trials_completed += b.trials_completed;
+    a.trials_cancelled += b.trials_cancelled;
+    a.frames += b.frames;
+    a.decisions += b.decisions;
+    a.labels_missing += b.labels_missing;
+}
+
+/// A file-name-safe form of a session name ("session" when empty).
+pub fn file_safe(name: &str) -> String {
+    let s: String = name
+        .chars()
+        .map(|c| {
+            if c.is_ascii_alphanumeric() || c == '-' || c == '_' || c == '.' {
+                c
+            } else {
+                '_'
+            }
+        })
+        .collect();
+    let s = s.trim_start_matches('.').to_string();
+    if s.is_empty() {
+        "session".into()
+    } else {
+        s
+    }
+}
+
+/// UTC date and time of a Unix time as `YYYYMMDDTHHMMSSZ` (civil-from-days conversion of the
+/// proleptic Gregorian calendar).
+pub fn utc_stamp(unix_s: u64) -> String {
+    let days = (unix_s / 86_400) as i64;
+    let secs = unix_s % 86_400;
+    let z = days + 719_468;
+    let era = z.div_euclid(146_097);
+    let doe = z - era * 146_097;
+    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
+    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
+    let mp = (5 * doy + 2) / 153;
+    let d = doy - (153 * mp + 2) / 5 + 1;
+    let m = if mp < 10 { mp + 3 } else { mp - 9 };
+    let y = yoe + era * 400 + (m <= 2) as i64;
+    format!(
+        "{y:04}{m:02}{d:02}T{:02}{:02}{:02}Z",
+        secs / 3600,
+        (secs / 60) % 60,
+        secs % 60
+    )
+}
+
+fn unix_now_s() -> u64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map(|d| d.as_secs())
+        .unwrap_or(0)
 }
 
 impl EngineThread {
     /// Sets up; `rx` is also read for the backlog figure.
     pub fn new(s: EngineThreadSetup, rx: Receiver<EngineInput>) -> Result<Self, EngineError> {
-        let n = s.model.n_stimuli();
+        let n = s.model.as_ref().map(|m| m.n_stimuli()).unwrap_or(0);
+        let stimuli: Vec<String> = s
+            .model
+            .as_ref()
+            .map(|m| m.stimuli().to_vec())
+            .unwrap_or_default();
+        let learn = s.learn.map(|(setup, tx)| LearnLink {
+            tx,
+            enabled: setup.enabled,
+            setup,
+            trials_sent: 0,
+            model_trials: 0,
+            applied_at: None,
+            last_refit_s: 0.0,
+            refits: 0,
+            waiting_for: "a session to start".into(),
+        });
         let mut t = EngineThread {
+            base: s.model.clone().map(|m| (m, s.model_path.clone())),
             model: s.model,
             model_path: s.model_path,
             config: s.config,
+            fixed_tick_rate: s.tick_rate,
             tick_rate: s.tick_rate,
-            session_units: None,
             engine: None,
+            collector: None,
+            names: TrialStimuli::default(),
+            current: stimuli.into(),
             publisher: s.publisher,
             recorder: s.recorder,
+            record_dir: s.record_dir,
             recording_path: s.recording_path,
             max_message_bytes: s.max_message_bytes,
             counters: DaemonCounters::default(),
+            carried: Counters::default(),
             senders: BTreeMap::new(),
             log: RateLimitedLog::new(),
             latencies_us: Vec::with_capacity(4096),
@@ -364,10 +494,15 @@ impl EngineThread {
             health_period: s.health_period,
             backlog: rx,
             held: Vec::new(),
+            session: None,
+            ended: Vec::new(),
+            epoch: 0,
+            learn,
+            windows: Vec::new(),
         };
-        if let Some(r) = t.tick_rate {
+        if let (Some(r), Some(m)) = (t.tick_rate, t.model.clone()) {
             t.config.tick_rate_hz = r;
-            t.engine = Some(Engine::new(t.model.clone(), t.config.clone())?);
+            t.engine = Some(Engine::new(m, t.config.clone())?);
         }
         Ok(t)
     }
@@ -397,6 +532,29 @@ impl EngineThread {
                     let r = self.reload(model, path);
                     let _ = reply.send(r);
                 }
+                Ok(EngineInput::SaveLearned { path, reply }) => match &self.learn {
+                    Some(l) => {
+                        if let Err(e) = l.tx.send(LearnMsg::Save { path, reply }) {
+                            if let LearnMsg::Save { reply, .. } = e.0 {
+                                let _ = reply.send(Err("the learner has stopped".into()));
+                            }
+                        }
+                    }
+                    None => {
+                        let _ = reply.send(Err(
+                            "learning is off: start auspexd without --model, or with --learn"
+                                .into(),
+                        ));
+                    }
+                },
+                Ok(EngineInput::Learned(l)) => self.learned(l),
+                Ok(EngineInput::LearnNote { epoch, text }) => {
+                    if let Some(l) = self.learn.as_mut() {
+                        if epoch == self.epoch {
+                            l.waiting_for = text;
+                        }
+                    }
+                }
                 Ok(EngineInput::Shutdown) | Err(RecvTimeoutError::Disconnected) => break,
                 Err(RecvTimeoutError::Timeout) => {}
             }
@@ -405,23 +563,19 @@ impl EngineThread {
             }
         }
         // Drain what already arrived, then end open trials.
-        while let Ok(EngineInput::Inbound {
-            endpoint,
-            bytes,
-            received_ns,
-        }) = rx.try_recv()
-        {
-            self.inbound(endpoint, bytes, received_ns);
+        while let Ok(input) = rx.try_recv() {
+            if let EngineInput::Inbound {
+                endpoint,
+                bytes,
+                received_ns,
+            } = input
+            {
+                self.inbound(endpoint, bytes, received_ns);
+            }
         }
-        let stimuli = self.model.stimuli().to_vec();
-        if let Some(e) = self.engine.as_mut() {
-            let mut sink = PubSink {
-                publisher: &mut self.publisher,
-                recorder: self.recorder.as_ref(),
-                stimuli: &stimuli,
-                chooser: &mut self.chooser,
-            };
-            e.shutdown(&mut sink);
+        self.close_trials(TrialOutcome::Shutdown);
+        if self.session.is_some() {
+            self.publish_summary("daemon stopping");
         }
         self.publish_health();
         if let Some(r) = &self.recorder {
@@ -446,12 +600,29 @@ impl EngineThread {
 
     fn inbound(&mut self, endpoint: u32, bytes: Bytes, received_ns: i64) {
         self.counters.messages_in += 1;
+        let msg = if bytes.len() > self.max_message_bytes {
+            None
+        } else {
+            v1::Inbound::decode(bytes.as_ref()).ok()
+        };
+        // A new session ends the current one before its first message is recorded, so each
+        // recording holds one session.
+        if let Some(v1::Inbound {
+            body: Some(inbound::Body::SessionStart(ss)),
+            ..
+        }) = &msg
+        {
+            if self.session.as_ref().is_some_and(|s| s.name != ss.session_name) {
+                self.end_session("new session");
+            }
+        }
         if let Some(r) = &self.recorder {
             let _ = r.send(RecorderMsg::Record(v1::SessionRecord {
                 received_unix_ns: received_ns,
                 endpoint,
                 message: bytes.to_vec(),
                 header: None,
+                learned: None,
             }));
         }
         if bytes.len() > self.max_message_bytes {
@@ -463,28 +634,50 @@ impl EngineThread {
             });
             return;
         }
-        let msg = match v1::Inbound::decode(bytes.as_ref()) {
-            Ok(m) => m,
-            Err(e) => {
+        let msg = match msg {
+            Some(m) => m,
+            None => {
                 self.counters.malformed += 1;
+                let e = v1::Inbound::decode(bytes.as_ref())
+                    .err()
+                    .map(|e| e.to_string())
+                    .unwrap_or_default();
                 self.warn("malformed", || {
                     format!("endpoint {endpoint}: not an Inbound message ({e})")
                 });
                 return;
             }
         };
+        let restart = matches!(msg.body, Some(inbound::Body::SessionStart(_)));
         let s = self.senders.entry(msg.sender.clone()).or_default();
         s.messages += 1;
-        if s.last_seq != 0 && msg.seq != s.last_seq + 1 {
-            s.gaps += 1;
-            self.counters.sequence_gaps += 1;
-            let (sender, last, seq) = (msg.sender.clone(), s.last_seq, msg.seq);
-            self.warn("sequence", || {
-                format!("sender {sender:?}: sequence jumped from {last} to {seq}")
-            });
+        if s.last_seq != 0 && msg.seq <= s.last_seq {
+            if restart || (s.ended && msg.seq == 1) {
+                // A sender that restarts announces itself (SessionStart, or seq 1 after its
+                // end of stream): its numbering starts afresh.
+                s.last_seq = msg.seq;
+                s.ended = false;
+            } else {
+                // Already seen: a retransmission. Applying it again would count spikes twice.
+                self.counters.duplicate_messages += 1;
+                let (sender, last, seq) = (msg.sender.clone(), s.last_seq, msg.seq);
+                self.warn("duplicate", || {
+                    format!("sender {sender:?}: message #{seq} is not after #{last}; dropped")
+                });
+                return;
+            }
+        } else {
+            if s.last_seq != 0 && msg.seq != s.last_seq + 1 {
+                s.gaps += 1;
+                self.counters.sequence_gaps += 1;
+                let (sender, last, seq) = (msg.sender.clone(), s.last_seq, msg.seq);
+                self.warn("sequence", || {
+                    format!("sender {sender:?}: sequence jumped from {last} to {seq}")
+                });
+            }
+            let s = self.senders.entry(msg.sender.clone()).or_default();
+            s.last_seq = msg.seq;
         }
-        let s = self.senders.entry(msg.sender.clone()).or_default();
-        s.last_seq = s.last_seq.max(msg.seq);
         let Some(body) = msg.body else {
             self.counters.malformed += 1;
             self.warn("malformed", || {
@@ -492,17 +685,27 @@ impl EngineThread {
             });
             return;
         };
-        if let inbound::Body::SessionStart(ss) = &body {
-            self.session_start(ss);
-            return;
-        }
-        if let inbound::Body::EndOfStream(_) = &body {
-            if let Some(s) = self.senders.get_mut(&msg.sender) {
-                s.ended = true;
+        match body {
+            inbound::Body::SessionStart(ss) => {
+                self.session_start(&ss);
+                return;
             }
-            return;
+            inbound::Body::EndOfStream(_) => {
+                if let Some(s) = self.senders.get_mut(&msg.sender) {
+                    s.ended = true;
+                }
+                if self.session.is_some() && self.senders.values().all(|s| s.ended) {
+                    self.end_session("every sender ended");
+                }
+                return;
+            }
+            inbound::Body::UnitsAdded(ua) => {
+                self.units_added(&ua);
+                return;
+            }
+            _ => {}
         }
-        if self.engine.is_none() {
+        if self.tick_rate.is_none() || self.session.is_none() && self.engine.is_none() {
             // Task programs may announce trials before acquisition has declared the clock:
             // hold their messages (bounded) and apply them when the session starts.
             let task_kind = matches!(
@@ -522,87 +725,44 @@ impl EngineThread {
         self.apply(body);
     }
 
-    /// Applies a decoded message to the running engine.
+    /// Applies a decoded message to the collector and the running engine.
     fn apply(&mut self, body: inbound::Body) {
-        let stimuli = self.model.stimuli().to_vec();
-        let Some(engine) = self.engine.as_mut() else {
-            return;
-        };
+        if self.engine.is_some() {
+            remember_onset(&mut self.names, &body, &self.current);
+        }
         let mut sink = PubSink {
             publisher: &mut self.publisher,
             recorder: self.recorder.as_ref(),
-            stimuli: &stimuli,
+            names: &self.names,
+            current: &self.current,
             chooser: &mut self.chooser,
+            tally: self.session.as_mut(),
         };
-        let mut errors: Vec<EngineError> = Vec::new();
-        match body {
-            inbound::Body::Spikes(b) => {
-                if b.units.len() != b.ticks.len() {
-                    self.counters.malformed += 1;
-                    let (a, t) = (b.units.len(), b.ticks.len());
-                    self.warn("malformed", || {
-                        format!("spike batch has {a} units but {t} ticks; ignored")
-                    });
-                    return;
-                }
-                for (&u, &t) in b.units.iter().zip(&b.ticks) {
-                    if let Err(e) = engine.spike(u, t) {
-                        if errors.len() < 3 {
-                            errors.push(e);
-                        }
-                    }
-                }
-                if let Err(e) = engine.advance(b.complete_through, &mut sink) {
-                    errors.push(e);
-                }
-            }
-            inbound::Body::Heartbeat(h) => {
-                if let Err(e) = engine.advance(h.complete_through, &mut sink) {
-                    errors.push(e);
-                }
-            }
-            inbound::Body::Onset(o) => {
-                let presented = if o.stimulus.is_empty() {
-                    None
-                } else {
-                    match engine.model().stimulus_index(&o.stimulus) {
-                        Some(i) => Some(i as u32),
-                        None => {
-                            self.counters.unknown_stimuli += 1;
-                            let (t, s) = (o.trial, o.stimulus.clone());
-                            if self.log.allow("stimulus") {
-                                tracing::warn!(trial = t, stimulus = %s, "onset names a stimulus the model does not have; decoding without it");
-                            }
-                            None
-                        }
-                    }
-                };
-                if let Err(e) = engine.open_trial(o.trial, o.onset_tick, presented, &mut sink) {
-                    errors.push(e);
-                }
-            }
-            inbound::Body::Label(l) => match engine.model().stimulus_index(&l.stimulus) {
-                Some(i) => {
-                    if let Err(e) = engine.label(l.trial, i as u32, &mut sink) {
-                        errors.push(e);
-                    }
-                }
-                None => {
-                    self.counters.unknown_stimuli += 1;
-                    let (t, s) = (l.trial, l.stimulus.clone());
-                    self.warn("stimulus", || {
-                        format!("label for trial {t} names unknown stimulus {s:?}")
-                    });
-                }
-            },
-            inbound::Body::Cancel(c) => {
-                if let Err(e) = engine.cancel(c.trial, &mut sink) {
-                    errors.push(e);
-                }
-            }
-            inbound::Body::SessionStart(_) | inbound::Body::EndOfStream(_) => {}
+        let applied = apply_body(
+            self.engine.as_mut(),
+            self.collector.as_mut(),
+            &self.names,
+            &self.current,
+            &body,
+            &mut sink,
+            &mut self.windows,
+        );
+        let learning = self.learn.is_some();
+        if let Some((a, t)) = applied.mismatched_batch {
+            self.counters.malformed += 1;
+            self.warn("malformed", || {
+                format!("spike batch has {a} units but {t} ticks; ignored")
+            });
         }
-        for e in errors {
+        if let Some((trial, name)) = applied.unknown_stimulus {
+            if !learning {
+                self.counters.unknown_stimuli += 1;
+                self.warn("stimulus", || {
+                    format!("trial {trial} names stimulus {name:?}, which the model does not have; decoding without it")
+                });
+            }
+        }
+        for e in applied.errors {
             let kind = match &e {
                 EngineError::LateSpike { .. } => "late-spike",
                 EngineError::UnknownUnit(_) => "unknown-unit",
@@ -615,62 +775,256 @@ impl EngineThread {
             };
             self.warn(kind, || e.to_string());
         }
+        self.send_windows();
+    }
+
+    /// Hands completed labelled windows to the learner (the collector only runs when learning).
+    fn send_windows(&mut self) {
+        if self.windows.is_empty() {
+            return;
+        }
+        match self.learn.as_mut() {
+            Some(l) => {
+                for w in self.windows.drain(..) {
+                    l.trials_sent += 1;
+                    let _ = l.tx.send(LearnMsg::Trial(w));
+                }
+            }
+            None => self.windows.clear(),
+        }
+    }
+
+    fn units_added(&mut self, ua: &v1::UnitsAdded) {
+        if self.session.is_none() {
+            self.counters.before_session += 1;
+            self.warn("no-session", || "UnitsAdded before SessionStart; ignored".into());
+            return;
+        }
+        tracing::info!(units = ?ua.units, from_tick = ua.from_tick, "units added to the session");
+        if let Some(l) = &self.learn {
+            let _ = l.tx.send(LearnMsg::Units {
+                units: ua.units.clone(),
+                from_tick: ua.from_tick,
+            });
+        }
     }
 
     fn session_start(&mut self, ss: &v1::SessionStart) {
-        if !(ss.tick_rate_hz.is_finite() && ss.tick_rate_hz >= 1.0) {
+        if !(ss.tick_rate_hz.is_finite() && ss.tick_rate_hz >= 1.0 && ss.tick_rate_hz <= 1e12) {
             self.counters.malformed += 1;
             let r = ss.tick_rate_hz;
             self.warn("session", || {
-                format!("SessionStart tick rate {r} is not usable")
+                format!("SessionStart tick rate {r} is not usable (1 to 1e12 ticks/s)")
             });
             return;
         }
-        if let Some(r) = self.tick_rate {
-            if r != ss.tick_rate_hz {
+        if self.session.is_some() {
+            // The same session announced again (another sender, or a repeat): harmless, but
+            // its clock must agree.
+            if self.tick_rate.is_some_and(|r| r != ss.tick_rate_hz) {
                 self.counters.malformed += 1;
-                let nr = ss.tick_rate_hz;
+                let (nr, r) = (ss.tick_rate_hz, self.tick_rate.unwrap_or(0.0));
                 self.warn("session", || {
                     format!(
                         "SessionStart declares {nr} ticks/s but the session runs at {r}; ignored"
                     )
                 });
+            }
+            return;
+        }
+        if let Some(r) = self.fixed_tick_rate {
+            if r != ss.tick_rate_hz {
+                self.counters.malformed += 1;
+                let nr = ss.tick_rate_hz;
+                self.warn("session", || {
+                    format!("SessionStart declares {nr} ticks/s but the daemon was started with --tick-rate {r}; ignored")
+                });
                 return;
             }
         }
-        let model_units: std::collections::HashSet<u32> =
-            self.model.units().iter().copied().collect();
-        let session: std::collections::HashSet<u32> = ss.units.iter().copied().collect();
-        let missing = model_units.difference(&session).count();
-        let extra = session.difference(&model_units).count();
-        if !ss.units.is_empty() && (missing > 0 || extra > 0) {
-            self.counters.model_mismatches += (missing + extra) as u64;
-            tracing::warn!(
-                model_units_not_in_session = missing,
-                session_units_not_in_model = extra,
-                "session and model units differ: spikes of unknown units are counted and ignored; missing units contribute silence"
-            );
+        if let Some(m) = &self.model {
+            let model_units: std::collections::HashSet<u32> = m.units().iter().copied().collect();
+            let session: std::collections::HashSet<u32> = ss.units.iter().copied().collect();
+            let missing = model_units.difference(&session).count();
+            let extra = session.difference(&model_units).count();
+            if !ss.units.is_empty() && (missing > 0 || extra > 0) && self.learn.is_none() {
+                self.counters.model_mismatches += (missing + extra) as u64;
+                tracing::warn!(
+                    model_units_not_in_session = missing,
+                    session_units_not_in_model = extra,
+                    "session and model units differ: spikes of unknown units are counted and ignored; missing units contribute silence"
+                );
+            }
         }
-        self.session_units = Some(ss.units.clone());
-        if self.engine.is_none() {
-            let mut c = self.config.clone();
-            c.tick_rate_hz = ss.tick_rate_hz;
-            match Engine::new(self.model.clone(), c.clone()) {
-                Ok(e) => {
-                    self.engine = Some(e);
-                    self.config = c;
-                    self.tick_rate = Some(ss.tick_rate_hz);
-                    tracing::info!(tick_rate_hz = ss.tick_rate_hz, units = ss.units.len(), name = %ss.session_name, held = self.held.len(), "session started");
-                    for body in std::mem::take(&mut self.held) {
-                        self.apply(body);
-                    }
-                }
+        self.epoch += 1;
+        self.tick_rate = Some(ss.tick_rate_hz);
+        self.config.tick_rate_hz = ss.tick_rate_hz;
+        // Name the recording after the session (the file of the first session was opened at
+        // start, before its name was known; later ones are opened at their session's start).
+        if let (Some(dir), Some(r)) = (&self.record_dir, &self.recorder) {
+            let path = dir.join(format!(
+                "{}-{}.apxs",
+                file_safe(&ss.session_name),
+                utc_stamp(unix_now_s())
+            ));
+            let _ = r.send(RecorderMsg::Rename(path.clone()));
+            self.recording_path = path.display().to_string();
+        }
+        self.session = Some(SessionTally::new(
+            &ss.session_name,
+            self.recording_path.clone(),
+        ));
+        if let Some(l) = self.learn.as_mut() {
+            let window_ticks =
+                (l.setup.options.fit.window_s * ss.tick_rate_hz).round() as i64;
+            let history = (self.config.history_s * ss.tick_rate_hz).round() as i64;
+            self.collector = Some(WindowCollector::new(window_ticks, history));
+            l.trials_sent = 0;
+            l.model_trials = 0;
+            l.applied_at = None;
+            l.waiting_for = "labelled trials".into();
+            let _ = l.tx.send(LearnMsg::Session {
+                epoch: self.epoch,
+                tick_rate_hz: ss.tick_rate_hz,
+                units: ss.units.clone(),
+                name: ss.session_name.clone(),
+            });
+            let _ = l.tx.send(LearnMsg::Enable(l.enabled));
+        }
+        if let Some(m) = self.model.clone() {
+            match Engine::new(m, self.config.clone()) {
+                Ok(e) => self.engine = Some(e),
                 Err(e) => {
                     self.counters.malformed += 1;
                     tracing::error!(error = %e, "cannot decode this session with the loaded model");
                 }
             }
         }
+        tracing::info!(tick_rate_hz = ss.tick_rate_hz, units = ss.units.len(), name = %ss.session_name, held = self.held.len(), learning = self.learn.is_some(), "session started");
+        for body in std::mem::take(&mut self.held) {
+            self.apply(body);
+        }
+    }
+
+    fn close_trials(&mut self, outcome: TrialOutcome) {
+        if let Some(e) = self.engine.as_mut() {
+            let mut sink = PubSink {
+                publisher: &mut self.publisher,
+                recorder: self.recorder.as_ref(),
+                names: &self.names,
+                current: &self.current,
+                chooser: &mut self.chooser,
+                tally: self.session.as_mut(),
+            };
+            e.close_all(outcome, &mut sink);
+        }
+    }
+
+    fn publish_summary(&mut self, reason: &str) {
+        let Some(t) = self.session.take() else {
+            return;
+        };
+        let learned = self.learn.as_ref().map(|l| l.trials_sent).unwrap_or(0);
+        let s = v1::SessionSummary {
+            session_name: t.name.clone(),
+            trials_completed: t.completed,
+            trials_cancelled: t.cancelled,
+            decisions: t.decisions,
+            decisions_labelled: t.labelled,
+            decisions_correct: t.correct,
+            recording_path: t.recording.clone(),
+            trials_learned: learned,
+            reason: reason.into(),
+            duration_s: t.started.elapsed().as_secs_f64(),
+        };
+        tracing::info!(session = %t.name, reason, completed = t.completed, decisions = t.decisions, labelled = t.labelled, correct = t.correct, "session ended");
+        self.publisher
+            .publish(topic::SESSION, outbound::Body::Session(s.clone()), true);
+        if self.ended.len() == ENDED_KEPT {
+            self.ended.remove(0);
+        }
+        self.ended.push(s);
+    }
+
+    /// Ends the current session: open trials closed, summary published, recording rotated,
+    /// sequence tracking and learning started afresh for the next.
+    fn end_session(&mut self, reason: &str) {
+        self.close_trials(TrialOutcome::SessionEnded);
+        self.publish_summary(reason);
+        if let Some(e) = self.engine.take() {
+            add_counters(&mut self.carried, e.counters());
+        }
+        self.senders.clear();
+        self.names.clear();
+        self.held.clear();
+        self.collector = None;
+        self.tick_rate = self.fixed_tick_rate;
+        if self.learn.is_some() {
+            // Learning starts from the loaded model (or none) in every session.
+            self.model = self.base.as_ref().map(|b| b.0.clone());
+            self.model_path = self.base.as_ref().map(|b| b.1.clone()).unwrap_or_default();
+            self.current = self
+                .model
+                .as_ref()
+                .map(|m| m.stimuli().to_vec())
+                .unwrap_or_default()
+                .into();
+        }
+        if let Some(r) = &self.recorder {
+            // The next session gets a file of its own; its name is settled at its start.
+            let next = match &self.record_dir {
+                Some(dir) => dir.join(format!("next-session-{}.apxs", utc_stamp(unix_now_s()))),
+                None => numbered_sibling(std::path::Path::new(&self.recording_path)),
+            };
+            let _ = r.send(RecorderMsg::Rotate(next.clone()));
+            self.recording_path = next.display().to_string();
+        }
+    }
+
+    fn learned(&mut self, l: Learned) {
+        let Some(link) = self.learn.as_mut() else {
+            return;
+        };
+        if l.epoch != self.epoch || self.session.is_none() {
+            return;
+        }
+        let r = match self.engine.as_mut() {
+            Some(e) => e.set_model(l.model.clone()),
+            None => Engine::new(l.model.clone(), self.config.clone()).map(|e| {
+                self.engine = Some(e);
+            }),
+        };
+        if let Err(e) = r {
+            link.waiting_for = format!("the learned model could not be used: {e}");
+            return;
+        }
+        link.model_trials = l.trials;
+        link.applied_at = Some(Instant::now());
+        link.last_refit_s = l.fit_s;
+        link.refits += 1;
+        link.waiting_for.clear();
+        if let Some(r) = &self.recorder {
+            let _ = r.send(RecorderMsg::Record(v1::SessionRecord {
+                received_unix_ns: crate::ingest::now_ns(),
+                endpoint: 0,
+                message: Vec::new(),
+                header: None,
+                learned: Some(v1::LearnedSwap {
+                    trials_learned: l.trials,
+                    units: l.model.n_units() as u32,
+                    stimuli: l.model.n_stimuli() as u32,
+                    reset: false,
+                }),
+            }));
+        }
+        tracing::info!(trials = l.trials, units = l.model.n_units(), stimuli = l.model.n_stimuli(), fit_s = l.fit_s, "learned model applies to trials that open from now on");
+        self.current = l.model.stimuli().to_vec().into();
+        self.chooser.resize(l.model.n_stimuli());
+        if let Some(e) = &self.engine {
+            self.config = e.config().clone();
+        }
+        self.model_path = format!("learned from {} labelled trials", l.trials);
+        self.model = Some(l.model);
     }
 
     fn reload(&mut self, model: Arc<Model>, path: String) -> ControlReply {
@@ -680,9 +1034,10 @@ impl EngineThread {
         };
         match r {
             Ok(()) => {
-                self.model = model;
+                self.current = model.stimuli().to_vec().into();
+                self.chooser.resize(model.n_stimuli());
+                self.model = Some(model);
                 self.model_path = path.clone();
-                self.chooser.resize(self.model.n_stimuli());
                 if let Some(e) = &self.engine {
                     self.config = e.config().clone();
                 }
@@ -690,12 +1045,14 @@ impl EngineThread {
                 ControlReply {
                     ok: true,
                     error: String::new(),
+                    note: String::new(),
                     body: Some(v1::control_reply::Body::Status(self.status())),
                 }
             }
             Err(e) => ControlReply {
                 ok: false,
                 error: format!("{path}: {e}"),
+                note: String::new(),
                 body: None,
             },
         }
@@ -704,13 +1061,66 @@ impl EngineThread {
     fn apply_config(&mut self, c: EngineConfig) -> Result<(), String> {
         if let Some(e) = self.engine.as_mut() {
             e.set_config(c.clone()).map_err(|e| e.to_string())?;
-        } else {
+        } else if let Some(m) = &self.model {
             // Validate against a throwaway engine at a nominal clock.
             let mut probe = c.clone();
-            probe.tick_rate_hz = 1.0 / self.model.bin_width_s();
-            Engine::new(self.model.clone(), probe).map_err(|e| e.to_string())?;
+            probe.tick_rate_hz = 1.0 / m.bin_width_s();
+            Engine::new(m.clone(), probe).map_err(|e| e.to_string())?;
+        } else {
+            let p = &c.policy;
+            if !(p.threshold > 0.0 && p.threshold <= 1.0) {
+                return Err(format!("threshold {} must be in (0, 1]", p.threshold));
+            }
+            if !(p.min_time_s.is_finite() && p.min_time_s >= 0.0) {
+                return Err(format!("minimum time {} s must be ≥ 0", p.min_time_s));
+            }
+            if c.prior.is_some() {
+                return Err("no model yet: a prior needs the model's stimuli".into());
+            }
         }
         self.config = c;
+        Ok(())
+    }
+
+    fn set_learning(&mut self, action: &str) -> Result<(), String> {
+        let Some(l) = self.learn.as_mut() else {
+            return Err(
+                "learning is off: start auspexd without --model, or with --learn".into(),
+            );
+        };
+        match action {
+            "freeze" => {
+                l.enabled = false;
+                let _ = l.tx.send(LearnMsg::Enable(false));
+            }
+            "resume" => {
+                l.enabled = true;
+                let _ = l.tx.send(LearnMsg::Enable(true));
+            }
+            "reset" => {
+                let _ = l.tx.send(LearnMsg::Reset);
+                if let Some(r) = &self.recorder {
+                    let _ = r.send(RecorderMsg::Record(v1::SessionRecord {
+                        received_unix_ns: crate::ingest::now_ns(),
+                        endpoint: 0,
+                        message: Vec::new(),
+                        header: None,
+                        learned: Some(v1::LearnedSwap {
+                            trials_learned: l.trials_sent,
+                            units: 0,
+                            stimuli: 0,
+                            reset: true,
+                        }),
+                    }));
+                }
+            }
+            other => {
+                return Err(format!(
+                    "unknown learning action `{other}`: use freeze, resume or reset"
+                ))
+            }
+        }
+        tracing::info!(action, "learning");
         Ok(())
     }
 
@@ -719,12 +1129,18 @@ impl EngineThread {
         let ok = |body| ControlReply {
             ok: true,
             error: String::new(),
+            note: String::new(),
             body,
         };
         let err = |e: String| ControlReply {
             ok: false,
             error: e,
+            note: String::new(),
             body: None,
+        };
+        let with_status = |this: &mut Self, r: Result<(), String>| match r {
+            Ok(()) => ok(Some(v1::control_reply::Body::Status(this.status()))),
+            Err(e) => err(e),
         };
         match body {
             B::Status(_) => ok(Some(v1::control_reply::Body::Status(self.status()))),
@@ -732,10 +1148,8 @@ impl EngineThread {
                 let mut c = self.config.clone();
                 c.policy.threshold = p.threshold;
                 c.policy.min_time_s = p.min_time_s;
-                match self.apply_config(c) {
-                    Ok(()) => ok(Some(v1::control_reply::Body::Status(self.status()))),
-                    Err(e) => err(e),
-                }
+                let r = self.apply_config(c);
+                with_status(self, r)
             }
             B::SetPrior(p) => {
                 let mut c = self.config.clone();
@@ -744,24 +1158,26 @@ impl EngineThread {
                 } else {
                     Some(p.prior)
                 };
-                match self.apply_config(c) {
-                    Ok(()) => ok(Some(v1::control_reply::Body::Status(self.status()))),
-                    Err(e) => err(e),
-                }
+                let r = self.apply_config(c);
+                with_status(self, r)
             }
             B::SetDecoder(d) => match auspex_engine::Decoder::parse(&d.decoder) {
                 Some(dec) => {
                     let mut c = self.config.clone();
                     c.decoder = dec;
-                    match self.apply_config(c) {
-                        Ok(()) => ok(Some(v1::control_reply::Body::Status(self.status()))),
-                        Err(e) => err(e),
-                    }
+                    let r = self.apply_config(c);
+                    with_status(self, r)
                 }
-                None => err(format!("unknown decoder `{}`", d.decoder)),
+                None => err(format!(
+                    "unknown decoder `{}`: use order-stats, inhomogeneous-poisson or count-only",
+                    d.decoder
+                )),
             },
             B::NextStimulus(n) => {
-                let ns = self.model.n_stimuli();
+                let ns = self.current.len();
+                if ns == 0 {
+                    return err("no model yet: nothing to choose among (learning waits for labelled trials)".into());
+                }
                 self.chooser.resize(ns);
                 let (idx, policy) = match n.policy.as_str() {
                     "" | "balanced-blocks" => (self.chooser.balanced(ns), "balanced-blocks"),
@@ -769,12 +1185,18 @@ impl EngineThread {
                     other => return err(format!("unknown next-stimulus policy `{other}`: use balanced-blocks or least-certain")),
                 };
                 ok(Some(v1::control_reply::Body::Next(v1::NextStimulusReply {
-                    stimulus: self.model.stimuli()[idx as usize].clone(),
+                    stimulus: self.current[idx as usize].clone(),
                     index: idx,
                     policy: policy.into(),
                 })))
             }
-            B::Reload(_) => err("reload is handled by the control task".into()),
+            B::SetLearning(a) => {
+                let r = self.set_learning(a.action.trim());
+                with_status(self, r)
+            }
+            B::Reload(_) | B::SaveLearned(_) => {
+                err("reload and save are handled by the control task".into())
+            }
         }
     }
 
@@ -788,18 +1210,17 @@ impl EngineThread {
     }
 
     fn health(&mut self) -> v1::Health {
-        let ec = self
-            .engine
-            .as_ref()
-            .map(|e| e.counters().clone())
-            .unwrap_or_default();
+        let mut ec = self.carried.clone();
+        if let Some(e) = self.engine.as_ref() {
+            add_counters(&mut ec, e.counters());
+        }
         let st = &self.publisher.stats;
         let now = Instant::now();
         let dt = now.duration_since(self.last_rates.0).as_secs_f64();
         if dt >= 0.5 {
             self.rates = (
-                (ec.spikes - self.last_rates.1) as f64 / dt,
-                (ec.frames - self.last_rates.2) as f64 / dt,
+                ec.spikes.saturating_sub(self.last_rates.1) as f64 / dt,
+                ec.frames.saturating_sub(self.last_rates.2) as f64 / dt,
             );
             self.last_rates = (now, ec.spikes, ec.frames);
         }
@@ -825,11 +1246,7 @@ impl EngineThread {
             engine_backlog: self.backlog.len() as u64,
             update_p50_us: self.percentile(0.5),
             update_p99_us: self.percentile(0.99),
-            watermark: self
-                .engine
-                .as_ref()
-                .map(|e| e.watermark())
-                .unwrap_or(i64::MIN),
+            watermark: self.engine.as_ref().map(|e| e.watermark()).unwrap_or(0),
             open_trials: self
                 .engine
                 .as_ref()
@@ -840,6 +1257,7 @@ impl EngineThread {
             model_mismatches: self.counters.model_mismatches,
             recorder_errors: 0,
             unlabelled_trials_dropped: ec.labels_missing,
+            duplicate_messages: self.counters.duplicate_messages,
         }
     }
 
@@ -851,18 +1269,37 @@ impl EngineThread {
     }
 
     fn status(&mut self) -> v1::Status {
-        let prior = match &self.config.prior {
-            Some(p) => {
+        let prior = match (&self.config.prior, &self.model) {
+            (Some(p), _) => {
                 let s: f64 = p.iter().sum();
                 p.iter().map(|x| x / s).collect()
             }
-            None => self.model.ln_prior().iter().map(|l| l.exp()).collect(),
+            (None, Some(m)) => m.ln_prior().iter().map(|l| l.exp()).collect(),
+            (None, None) => Vec::new(),
         };
+        let learning = self.learn.as_ref().map(|l| v1::LearningState {
+            enabled: l.enabled,
+            trials_learned: l.trials_sent,
+            model_trials: l.model_trials,
+            last_refit_age_s: l
+                .applied_at
+                .map(|t| t.elapsed().as_secs_f64())
+                .unwrap_or(-1.0),
+            last_refit_s: l.last_refit_s,
+            waiting_for: l.waiting_for.clone(),
+            refits: l.refits,
+            refit_every_trials: l.setup.cadence.every_trials,
+            refit_every_s: l.setup.cadence.every.as_secs_f64(),
+        });
         v1::Status {
             version: env!("CARGO_PKG_VERSION").into(),
             model_path: self.model_path.clone(),
-            stimuli: self.model.stimuli().to_vec(),
-            units: self.model.units().to_vec(),
+            stimuli: self.current.to_vec(),
+            units: self
+                .model
+                .as_ref()
+                .map(|m| m.units().to_vec())
+                .unwrap_or_default(),
             threshold: self.config.policy.threshold,
             min_time_s: self.config.policy.min_time_s,
             prior,
@@ -886,8 +1323,57 @@ impl EngineThread {
                 .as_ref()
                 .map(|e| e.open_trials().collect())
                 .unwrap_or_default(),
-            n_bins: self.model.n_bins() as u32,
-            bin_width_s: self.model.bin_width_s(),
+            n_bins: self.model.as_ref().map(|m| m.n_bins() as u32).unwrap_or(0),
+            bin_width_s: self.model.as_ref().map(|m| m.bin_width_s()).unwrap_or(0.0),
+            session_name: self
+                .session
+                .as_ref()
+                .map(|s| s.name.clone())
+                .unwrap_or_default(),
+            ended_sessions: self.ended.clone(),
+            learning,
         }
+    }
+}
+
+/// `name-2.ext`, `name-3.ext`, … beside `path`: the next free numbered file.
+fn numbered_sibling(path: &std::path::Path) -> PathBuf {
+    let stem = path
+        .file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "session".into());
+    let ext = path
+        .extension()
+        .map(|e| format!(".{}", e.to_string_lossy()))
+        .unwrap_or_default();
+    let base = stem
+        .rsplit_once('-')
+        .filter(|(_, n)| n.parse::<u32>().is_ok())
+        .map(|(b, _)| b.to_string())
+        .unwrap_or(stem);
+    (2..)
+        .map(|i| path.with_file_name(format!("{base}-{i}{ext}")))
+        .find(|p| !p.exists())
+        .unwrap_or_else(|| path.to_path_buf())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn utc_stamp_matches_known_dates() {
+        // 2000-03-01 00:00:00 UTC = 951868800; 2026-12-02 05:30:00 UTC = 1796189400
+        // (both computed with Python's datetime, a general-purpose reference).
+        assert_eq!(utc_stamp(0), "19700101T000000Z");
+        assert_eq!(utc_stamp(951_868_800), "20000301T000000Z");
+        assert_eq!(utc_stamp(1_796_189_400), "20261202T053000Z");
+    }
+
+    #[test]
+    fn session_names_become_safe_file_names() {
+        assert_eq!(file_safe("rat 7 / day 2"), "rat_7___day_2");
+        assert_eq!(file_safe(""), "session");
+        assert_eq!(file_safe("../x"), "_x");
     }
 }

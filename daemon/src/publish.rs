@@ -33,7 +33,7 @@ pub struct PublishStats {
 /// The engine thread's side: per-topic sequence numbers and the queue.
 pub struct Publisher {
     tx: mpsc::Sender<OutMsg>,
-    seq: [u64; 5],
+    seq: [u64; 6],
     /// Shared counters.
     pub stats: Arc<PublishStats>,
 }
@@ -43,7 +43,7 @@ impl Publisher {
     pub fn new(tx: mpsc::Sender<OutMsg>, stats: Arc<PublishStats>) -> Self {
         Publisher {
             tx,
-            seq: [0; 5],
+            seq: [0; 6],
             stats,
         }
     }

@@ -1,6 +1,8 @@
 //! The session recorder: every inbound message, with its receive time, appended in arrival
 //! order to a session file on its own thread, flushed at least every 100 ms and at each trial
 //! end. Disk latency never reaches the engine; nothing is dropped (the channel blocks when full).
+//! One file per session: the engine thread renames the file when the session's name is known and
+//! rotates to a new file when a new session starts.
 
 use auspex_proto::session::SessionWriter;
 use auspex_proto::v1::SessionRecord;
@@ -16,6 +18,10 @@ pub enum RecorderMsg {
     Record(SessionRecord),
     /// Flush now (a trial ended).
     Flush,
+    /// Give the file being written this name (the session's name became known).
+    Rename(PathBuf),
+    /// Close the file and continue in a new one at this path (a new session).
+    Rotate(PathBuf),
 }
 
 /// Handle to the recorder thread.
@@ -39,19 +45,13 @@ impl Recorder {
     /// Creates the file and starts the thread. Write errors after start are counted (returned
     /// at the end) and logged, never fatal.
     pub fn start(path: PathBuf, model_path: &str, now_ns: i64) -> std::io::Result<Self> {
-        let f = File::create(&path)?;
-        let mut w = SessionWriter::new(
-            BufWriter::with_capacity(1 << 20, f),
-            concat!("auspexd ", env!("CARGO_PKG_VERSION")),
-            model_path,
-            now_ns,
-        )?;
-        w.flush()?;
+        let w = open(&path, model_path, now_ns)?;
         let (tx, rx) = crossbeam_channel::bounded(1 << 16);
         let p = path.clone();
+        let mp = model_path.to_string();
         let join = std::thread::Builder::new()
             .name("auspex-recorder".into())
-            .spawn(move || run(w, rx, &p))?;
+            .spawn(move || run(w, rx, p, &mp))?;
         Ok(Recorder { tx, join, path })
     }
     /// A sender for the engine thread.
@@ -65,7 +65,24 @@ impl Recorder {
     }
 }
 
-fn run(mut w: SessionWriter<BufWriter<File>>, rx: Receiver<RecorderMsg>, path: &Path) -> u64 {
+fn open(path: &Path, model_path: &str, now_ns: i64) -> std::io::Result<SessionWriter<BufWriter<File>>> {
+    let f = File::create(path)?;
+    let mut w = SessionWriter::new(
+        BufWriter::with_capacity(1 << 20, f),
+        concat!("auspexd ", env!("CARGO_PKG_VERSION")),
+        model_path,
+        now_ns,
+    )?;
+    w.flush()?;
+    Ok(w)
+}
+
+fn run(
+    mut w: SessionWriter<BufWriter<File>>,
+    rx: Receiver<RecorderMsg>,
+    mut path: PathBuf,
+    model_path: &str,
+) -> u64 {
     let mut errors = 0u64;
     let mut last = Instant::now();
     let mut dirty = false;
@@ -86,6 +103,36 @@ fn run(mut w: SessionWriter<BufWriter<File>>, rx: Receiver<RecorderMsg>, path: &
                 dirty = true;
             }
             Ok(RecorderMsg::Flush) => flush = true,
+            Ok(RecorderMsg::Rename(to)) => match std::fs::rename(&path, &to) {
+                Ok(()) => {
+                    tracing::info!(file = %to.display(), "session recording");
+                    path = to;
+                }
+                Err(e) => {
+                    errors += 1;
+                    tracing::error!(from = %path.display(), to = %to.display(), error = %e, "session recording: cannot rename; recording continues under the old name");
+                }
+            },
+            Ok(RecorderMsg::Rotate(to)) => {
+                if let Err(e) = w.flush() {
+                    errors += 1;
+                    tracing::error!(file = %path.display(), error = %e, "session recording: flush failed");
+                }
+                match open(&to, model_path, crate::ingest::now_ns()) {
+                    Ok(nw) => {
+                        tracing::info!(closed = %path.display(), next = %to.display(), "session recording closed; the next session records to a new file");
+                        w = nw;
+                        path = to;
+                    }
+                    Err(e) => {
+                        errors += 1;
+                        tracing::error!(file = %to.display(), error = %e, "session recording: cannot create the next file; recording continues in the current one");
+                    }
+                }
+                dirty = false;
+                last = Instant::now();
+                continue;
+            }
             Err(RecvTimeoutError::Timeout) => {}
             Err(RecvTimeoutError::Disconnected) => break,
         }

@@ -4,7 +4,10 @@
 //! with port 0) and a handle to stop.
 
 use crate::config::{DaemonConfig, IngestPattern};
-use crate::engine_thread::{EngineInput, EngineThread, EngineThreadSetup};
+use crate::engine_thread::{EngineInput, EngineThread, EngineThreadSetup, LearnSetup};
+use crate::learner::LearnerThread;
+use auspex_engine::fit::FitOptions;
+use auspex_engine::learn::LearnOptions;
 use crate::publish::{bind_pub, run_publisher, PublishStats, Publisher};
 use crate::recorder::{resolve_path, Recorder};
 use anyhow::Context;
@@ -40,6 +43,7 @@ pub struct Running {
     publisher: JoinHandle<()>,
     engine: std::thread::JoinHandle<()>,
     recorder: Option<Recorder>,
+    learner: Option<LearnerThread>,
 }
 
 /// What a stopped daemon reports.
@@ -64,19 +68,29 @@ pub fn io_runtime() -> std::io::Result<tokio::runtime::Runtime> {
 
 /// Binds and starts everything.
 pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
-    let (_, model) = crate::model_file::load_model(&cfg.model)?;
-    let t0 = std::time::Instant::now();
-    model.prepare_with_lookup_budget(cfg.table_memory_bytes);
-    tracing::info!(
-        model = %cfg.model.display(),
-        units = model.n_units(),
-        stimuli = model.n_stimuli(),
-        prepare_s = t0.elapsed().as_secs_f64(),
-        table_mb = model.table_bytes() >> 20,
-        looked_up_counts = ?model.table_lookup_counts(),
-        "model prepared"
-    );
-    let model = Arc::new(model);
+    let model = match &cfg.model {
+        Some(path) => {
+            let (_, model) = crate::model_file::load_model(path)?;
+            let t0 = std::time::Instant::now();
+            model.prepare_with_lookup_budget(cfg.table_memory_bytes);
+            tracing::info!(
+                model = %path.display(),
+                units = model.n_units(),
+                stimuli = model.n_stimuli(),
+                prepare_s = t0.elapsed().as_secs_f64(),
+                table_mb = model.table_bytes() >> 20,
+                looked_up_counts = ?model.table_lookup_counts(),
+                "model prepared"
+            );
+            Some(Arc::new(model))
+        }
+        None => None,
+    };
+    let model_label = cfg
+        .model
+        .as_ref()
+        .map(|p| p.display().to_string())
+        .unwrap_or_default();
     let (engine_tx, engine_rx) = crossbeam_channel::bounded(cfg.engine_queue);
     let (pub_tx, pub_rx) = tokio::sync::mpsc::channel(cfg.publish_queue);
     let stats = Arc::new(PublishStats::default());
@@ -158,7 +172,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
             Some(
                 Recorder::start(
                     path.clone(),
-                    &cfg.model.display().to_string(),
+                    &model_label,
                     crate::ingest::now_ns(),
                 )
                 .with_context(|| {
@@ -171,9 +185,49 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
     let mut ec = EngineConfig::new(cfg.tick_rate_hz.unwrap_or(1e6));
     ec.decoder = cfg.decoder;
     ec.policy = cfg.policy;
+    let learner = match &cfg.learn {
+        Some(l) => {
+            let (window_s, bin_width_s) = match &model {
+                Some(m) => (
+                    m.bin_width_s() * m.n_bins() as f64,
+                    m.bin_width_s(),
+                ),
+                None => (l.window_s.unwrap_or(0.25), l.bin_width_s.unwrap_or(0.001)),
+            };
+            let options = LearnOptions {
+                fit: FitOptions {
+                    bin_width_s,
+                    window_s,
+                    families: l.families.clone(),
+                    ..FitOptions::default()
+                },
+                min_trials_per_stimulus: l.min_trials,
+                ..LearnOptions::default()
+            };
+            // Refuse now what could never fit (a window that is no whole number of bins).
+            auspex_engine::fit::window_bins(bin_width_s, window_s, 1.0 / bin_width_s)
+                .map_err(|e| anyhow::anyhow!("learning: {e}"))?;
+            let thread = LearnerThread::start(
+                options.clone(),
+                l.cadence,
+                cfg.table_memory_bytes,
+                engine_tx.clone(),
+            )?;
+            let setup = LearnSetup {
+                options,
+                cadence: l.cadence,
+                enabled: !l.frozen,
+            };
+            tracing::info!(window_s, bin_width_s, min_trials = l.min_trials, refit_every_trials = l.cadence.every_trials, refit_every_s = l.cadence.every.as_secs_f64(), frozen = l.frozen, "learning from labelled trials");
+            Some((thread, setup))
+        }
+        None => None,
+    };
     let setup = EngineThreadSetup {
         model: model.clone(),
-        model_path: cfg.model.display().to_string(),
+        model_path: model_label.clone(),
+        record_dir: cfg.record.as_ref().filter(|p| p.is_dir()).cloned(),
+        learn: learner.as_ref().map(|(t, s)| (s.clone(), t.sender())),
         config: ec,
         tick_rate: cfg.tick_rate_hz,
         publisher: Publisher::new(pub_tx, stats.clone()),
@@ -187,7 +241,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         health_period: cfg.health_period,
     };
     let et = EngineThread::new(setup, engine_rx.clone())
-        .map_err(|e| anyhow::anyhow!("{}: {e}", cfg.model.display()))?;
+        .map_err(|e| anyhow::anyhow!("{model_label}: {e}"))?;
     let engine = std::thread::Builder::new()
         .name("auspex-engine".into())
         .spawn(move || et.run(engine_rx))?;
@@ -200,7 +254,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         recording: recorder.as_ref().map(|r| r.path.clone()),
     };
     tracing::info!(ingest = %endpoints.ingest, task_ingest = ?endpoints.task_ingest, publish = %endpoints.publish, control = %endpoints.control,
-        recording = ?endpoints.recording, model = %cfg.model.display(), "auspexd listening");
+        recording = ?endpoints.recording, model = %model_label, learning = cfg.learn.is_some(), "auspexd listening");
     Ok(Running {
         endpoints,
         stop_tx,
@@ -209,6 +263,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         publisher,
         engine,
         recorder,
+        learner: learner.map(|l| l.0),
     })
 }
 
@@ -223,6 +278,9 @@ impl Running {
         let _ = self.engine_tx.send(EngineInput::Shutdown);
         drop(self.engine_tx);
         let _ = tokio::task::spawn_blocking(move || self.engine.join()).await;
+        if let Some(l) = self.learner {
+            let _ = tokio::task::spawn_blocking(move || l.finish()).await;
+        }
         let _ = self.publisher.await;
         let recorder_errors = match self.recorder {
             Some(r) => tokio::task::spawn_blocking(move || r.finish())

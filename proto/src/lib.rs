@@ -33,8 +33,10 @@ pub mod topic {
     pub const TRIAL: &str = "trial";
     /// Health, once a second.
     pub const HEALTH: &str = "health";
+    /// Session summaries, when a session ends.
+    pub const SESSION: &str = "session";
     /// All topics.
-    pub const ALL: [&str; 5] = [POSTERIOR, DECISION, UNITS, TRIAL, HEALTH];
+    pub const ALL: [&str; 6] = [POSTERIOR, DECISION, UNITS, TRIAL, HEALTH, SESSION];
 }
 
 /// Why bytes are not a valid model file.

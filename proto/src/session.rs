@@ -46,6 +46,7 @@ impl<W: Write> SessionWriter<W> {
                 created_by: created_by.into(),
                 model_path: model_path.into(),
             }),
+            learned: None,
         })?;
         Ok(s)
     }
@@ -181,6 +182,7 @@ mod tests {
             endpoint: 0,
             message: vec![i; i as usize],
             header: None,
+            learned: None,
         }
     }
 

@@ -255,6 +255,8 @@ pub enum TrialOutcome {
     Cancelled,
     /// Cancelled because the engine is stopping.
     Shutdown,
+    /// Cancelled because its session ended (a new one started, or every sender ended).
+    SessionEnded,
 }
 
 /// The end of a trial.
@@ -807,10 +809,15 @@ impl Engine {
 
     /// Ends every open trial with [`TrialOutcome::Shutdown`].
     pub fn shutdown(&mut self, sink: &mut dyn EngineSink) {
+        self.close_all(TrialOutcome::Shutdown, sink);
+    }
+
+    /// Ends every open trial with `outcome` (never `Completed`: they did not run their window).
+    pub fn close_all(&mut self, outcome: TrialOutcome, sink: &mut dyn EngineSink) {
         while !self.trials.is_empty() {
             let t = self.trials.remove(0);
             self.counters.trials_cancelled += 1;
-            emit_end(&t, TrialOutcome::Shutdown, sink);
+            emit_end(&t, outcome, sink);
             self.recycle(t);
         }
     }

@@ -244,6 +244,7 @@ pub struct Learner {
     n_bins: usize,
     bin_ticks: i64,
     units: BTreeSet<u32>,
+    at_start: BTreeSet<u32>,
     declared_from: BTreeMap<u32, i64>,
     trials: VecDeque<TrialWindow>,
     per_stimulus: HashMap<String, usize>,
@@ -261,6 +262,7 @@ impl Learner {
             n_bins,
             bin_ticks,
             units: BTreeSet::new(),
+            at_start: BTreeSet::new(),
             declared_from: BTreeMap::new(),
             trials: VecDeque::new(),
             per_stimulus: HashMap::new(),
@@ -280,14 +282,18 @@ impl Learner {
 
     /// Units the session declared at its start (or that spiked): learned from every trial.
     pub fn add_units(&mut self, units: impl IntoIterator<Item = u32>) {
-        self.units.extend(units);
+        for u in units {
+            self.units.insert(u);
+            self.at_start.insert(u);
+        }
     }
 
     /// Units declared part-way through: learned from trials with onset at or after `from_tick`.
-    /// A unit already known keeps its earlier start.
+    /// A unit declared at the start, or declared before, keeps its earlier start.
     pub fn declare_units_from(&mut self, units: &[u32], from_tick: i64) {
         for &u in units {
-            if self.units.insert(u) {
+            self.units.insert(u);
+            if !self.at_start.contains(&u) && !self.declared_from.contains_key(&u) {
                 self.declared_from.insert(u, from_tick);
             }
         }

@@ -1,0 +1,256 @@
+//! The learner thread: owns the session's [`Learner`] (the labelled trials' windows), refits on
+//! a cadence with the very code `auspex fit` runs (plan, family choice, bandwidth, shrinkage),
+//! builds and prepares the model, and hands it to the engine thread, which swaps it in at the
+//! next trial boundary and records where it did. Saving the learned model fits on everything
+//! learned so far.
+//!
+//! Must not: run on the engine thread or the I/O runtime (a refit takes from milliseconds to
+//! seconds), or touch the engine: models travel as messages.
+
+use crate::engine_thread::EngineInput;
+use auspex_engine::fit::fit_cell;
+use auspex_engine::learn::{LearnOptions, Learner, TrialWindow};
+use auspex_engine::{Model, ModelSpec};
+use crossbeam_channel::{Receiver, RecvTimeoutError, Sender};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+use tokio::sync::oneshot;
+
+/// When the learner refits.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Cadence {
+    /// After this many new labelled trials.
+    pub every_trials: u32,
+    /// Or after this long with at least one new labelled trial.
+    pub every: Duration,
+}
+
+impl Default for Cadence {
+    fn default() -> Self {
+        Cadence {
+            every_trials: 8,
+            every: Duration::from_secs(30),
+        }
+    }
+}
+
+/// What the engine thread tells the learner thread, in stream order.
+pub enum LearnMsg {
+    /// A session started: forget everything, learn at this clock.
+    Session {
+        /// Session counter (models of older sessions are discarded on arrival).
+        epoch: u64,
+        /// Ticks per second.
+        tick_rate_hz: f64,
+        /// Units declared at the start.
+        units: Vec<u32>,
+        /// Session name (for saved files).
+        name: String,
+    },
+    /// Units added part-way.
+    Units {
+        /// Units.
+        units: Vec<u32>,
+        /// Learned from trials with onset at or after this tick.
+        from_tick: i64,
+    },
+    /// A labelled, completed, uncancelled trial.
+    Trial(TrialWindow),
+    /// Freeze (false) or resume (true) refitting; trials keep being taken.
+    Enable(bool),
+    /// Forget every trial taken so far.
+    Reset,
+    /// Fit on everything so far and save it.
+    Save {
+        /// Model file path.
+        path: std::path::PathBuf,
+        /// The reply.
+        reply: oneshot::Sender<Result<String, String>>,
+    },
+}
+
+/// A learned model, ready to swap in.
+pub struct Learned {
+    /// Session counter it belongs to.
+    pub epoch: u64,
+    /// The prepared model.
+    pub model: Arc<Model>,
+    /// Labelled trials it was fitted on (the learner's count, the recording's marker).
+    pub trials: u64,
+    /// Wall time the fit and preparation took.
+    pub fit_s: f64,
+}
+
+/// Handle to the learner thread.
+pub struct LearnerThread {
+    tx: Sender<LearnMsg>,
+    join: std::thread::JoinHandle<()>,
+}
+
+impl LearnerThread {
+    /// Starts the thread; learned models and notes go to `engine`.
+    pub fn start(
+        opts: LearnOptions,
+        cadence: Cadence,
+        table_bytes: usize,
+        engine: Sender<EngineInput>,
+    ) -> std::io::Result<Self> {
+        // Unbounded: the engine thread must never wait on the learner; what it sends is bounded
+        // by the labelled trials of the session.
+        let (tx, rx) = crossbeam_channel::unbounded();
+        let join = std::thread::Builder::new()
+            .name("auspex-learner".into())
+            .spawn(move || run(opts, cadence, table_bytes, rx, engine))?;
+        Ok(LearnerThread { tx, join })
+    }
+    /// A sender for the engine thread.
+    pub fn sender(&self) -> Sender<LearnMsg> {
+        self.tx.clone()
+    }
+    /// Stops after what is queued.
+    pub fn finish(self) {
+        drop(self.tx);
+        let _ = self.join.join();
+    }
+}
+
+struct State {
+    learner: Option<Learner>,
+    epoch: u64,
+    name: String,
+    enabled: bool,
+    fitted_at: u64,
+    last_fit: Instant,
+}
+
+fn run(
+    opts: LearnOptions,
+    cadence: Cadence,
+    table_bytes: usize,
+    rx: Receiver<LearnMsg>,
+    engine: Sender<EngineInput>,
+) {
+    let mut st = State {
+        learner: None,
+        epoch: 0,
+        name: String::new(),
+        enabled: true,
+        fitted_at: 0,
+        last_fit: Instant::now(),
+    };
+    loop {
+        let msg = rx.recv_timeout(Duration::from_millis(200));
+        match msg {
+            Ok(LearnMsg::Session {
+                epoch,
+                tick_rate_hz,
+                units,
+                name,
+            }) => {
+                st.epoch = epoch;
+                st.name = name;
+                st.fitted_at = 0;
+                st.learner = match Learner::new(opts.clone(), tick_rate_hz) {
+                    Ok(mut l) => {
+                        l.add_units(units);
+                        Some(l)
+                    }
+                    Err(e) => {
+                        note(&engine, epoch, format!("cannot learn at this clock: {e}"));
+                        None
+                    }
+                };
+            }
+            Ok(LearnMsg::Units { units, from_tick }) => {
+                if let Some(l) = st.learner.as_mut() {
+                    l.declare_units_from(&units, from_tick);
+                }
+            }
+            Ok(LearnMsg::Trial(w)) => {
+                if let Some(l) = st.learner.as_mut() {
+                    l.add(w);
+                }
+            }
+            Ok(LearnMsg::Enable(on)) => st.enabled = on,
+            Ok(LearnMsg::Reset) => {
+                if let Some(l) = st.learner.as_mut() {
+                    l.reset();
+                }
+                st.fitted_at = st.learner.as_ref().map(|l| l.added()).unwrap_or(0);
+            }
+            Ok(LearnMsg::Save { path, reply }) => {
+                let r = match st.learner.as_ref() {
+                    None => Err("no session has started: nothing learned yet".to_string()),
+                    Some(l) => match fit(l) {
+                        Ok((spec, n)) => {
+                            let what = format!(
+                                "learned during session {:?} from {n} labelled trials",
+                                st.name
+                            );
+                            crate::model_file::save_model(&path, &spec, &what)
+                                .map(|_| {
+                                    format!(
+                                        "{}: {} units × {} stimuli, {what}",
+                                        path.display(),
+                                        spec.units.len(),
+                                        spec.stimuli.len()
+                                    )
+                                })
+                                .map_err(|e| format!("{e:#}"))
+                        }
+                        Err(e) => Err(format!("nothing to save yet: {e}")),
+                    },
+                };
+                let _ = reply.send(r);
+            }
+            Err(RecvTimeoutError::Timeout) => {}
+            Err(RecvTimeoutError::Disconnected) => break,
+        }
+        let Some(l) = st.learner.as_ref() else {
+            continue;
+        };
+        let new = l.added() - st.fitted_at;
+        let due = new >= cadence.every_trials.max(1) as u64
+            || (new > 0 && st.last_fit.elapsed() >= cadence.every);
+        // Fit on every trial already queued first: the newest model is the one worth building.
+        if !st.enabled || !due || !rx.is_empty() {
+            continue;
+        }
+        st.fitted_at = l.added();
+        st.last_fit = Instant::now();
+        let t0 = Instant::now();
+        match fit(l).and_then(|(spec, n)| {
+            let m = Model::new(spec).map_err(|e| e.to_string())?;
+            m.prepare_with_lookup_budget(table_bytes);
+            Ok((m, n))
+        }) {
+            Ok((model, trials)) => {
+                let learned = Learned {
+                    epoch: st.epoch,
+                    model: Arc::new(model),
+                    trials,
+                    fit_s: t0.elapsed().as_secs_f64(),
+                };
+                if engine.send(EngineInput::Learned(learned)).is_err() {
+                    break;
+                }
+            }
+            Err(e) => note(&engine, st.epoch, e),
+        }
+    }
+}
+
+fn note(engine: &Sender<EngineInput>, epoch: u64, text: String) {
+    let _ = engine.send(EngineInput::LearnNote { epoch, text });
+}
+
+/// The fit of every trial held, cell by cell on this thread, exactly as `auspex fit` fits.
+fn fit(l: &Learner) -> Result<(ModelSpec, u64), String> {
+    let plan = l.plan().map_err(|e| e.to_string())?;
+    let cells = plan
+        .cells
+        .iter()
+        .map(|c| fit_cell(c, plan.n_bins, plan.bin_width_s, &plan.families, plan.bandwidth))
+        .collect();
+    Ok((plan.assemble(cells), l.added()))
+}
