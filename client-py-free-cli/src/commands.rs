@@ -206,6 +206,118 @@ pub fn decode_cmd(
     Ok(sc.accuracy())
 }
 
+/// Settings of `decode --prequential`.
+#[derive(Clone, Debug)]
+pub struct PrequentialArgs {
+    /// Window, ms (tables, or a recording made without learning).
+    pub window_ms: f64,
+    /// Bin width, ms.
+    pub bin_ms: f64,
+    /// Count families.
+    pub families: String,
+    /// Minimum labelled trials per stimulus before a stimulus or unit enters the model.
+    pub min_trials: u32,
+    /// Refit after this many labelled trials (where the recording does not say).
+    pub every_trials: u32,
+}
+
+/// `decode --prequential`: every trial decoded with a model learned only from the trials
+/// labelled before it opened. Returns the accuracy of the decided, labelled trials.
+pub fn decode_prequential_cmd(
+    source: &Source,
+    out_dir: &Path,
+    args: &DecodeArgs,
+    p: &PrequentialArgs,
+) -> anyhow::Result<f64> {
+    use crate::prequential::{run_recording, tables_as_recording, write_decisions, Schedule};
+    let mut opts = auspex_engine::learn::LearnOptions {
+        fit: FitOptions {
+            bin_width_s: p.bin_ms / 1000.0,
+            window_s: p.window_ms / 1000.0,
+            families: parse_families(&p.families)?,
+            ..FitOptions::default()
+        },
+        min_trials_per_stimulus: p.min_trials.max(1),
+        ..Default::default()
+    };
+    let rec = match source {
+        Source::Session(path) => crate::wire::read_recording(path)?,
+        Source::Tables { .. } => {
+            let (data, report) = source.load(opts.fit.window_s)?;
+            eprintln!("{report}");
+            let wt = (opts.fit.window_s * data.tick_rate_hz).round() as i64;
+            tables_as_recording(&data, wt)
+        }
+    };
+    if let Some(o) = crate::prequential::recorded_options(&rec) {
+        eprintln!(
+            "the recording holds {} learned-model swaps: refitting at the same points with the daemon's settings ({} ms window, {} ms bins)",
+            rec.learned.iter().filter(|(_, m)| !m.reset).count(),
+            o.fit.window_s * 1000.0,
+            o.fit.bin_width_s * 1000.0
+        );
+        opts = o;
+    } else {
+        eprintln!(
+            "refitting every {} labelled trials; a refit applies to the trials that open after it",
+            p.every_trials
+        );
+    }
+    std::fs::create_dir_all(out_dir)
+        .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;
+    let post_path = out_dir.join("posteriors.csv");
+    let mut f = std::io::BufWriter::with_capacity(
+        1 << 20,
+        std::fs::File::create(&post_path)
+            .with_context(|| format!("{}: cannot create", post_path.display()))?,
+    );
+    use std::io::Write;
+    writeln!(f, "trial,bin,stimulus,posterior")?;
+    let (run, names, _) = run_recording(
+        &rec,
+        &opts,
+        &args.config(rec.dataset.tick_rate_hz),
+        &Schedule {
+            every_trials: p.every_trials,
+        },
+        Some(&mut f),
+        false,
+    )?;
+    f.flush()
+        .with_context(|| format!("writing {}", post_path.display()))?;
+    let dec_path = out_dir.join("decisions.csv");
+    write_decisions(&dec_path, &run.decisions, &names)
+        .with_context(|| format!("writing {}", dec_path.display()))?;
+    let labelled: Vec<(&crate::offline::DecisionRow, &String)> = run
+        .decisions
+        .iter()
+        .zip(&names)
+        .filter(|(r, _)| r.true_stimulus.is_some())
+        .collect();
+    let correct = labelled
+        .iter()
+        .filter(|(r, n)| r.true_stimulus.as_deref() == Some(n.as_str()))
+        .count();
+    let acc = correct as f64 / labelled.len().max(1) as f64;
+    println!(
+        "prequential {}: {} models applied ({} from the recording's swap points), {} trials decided, accuracy {:.1}% of {} labelled ({} correct); {} trials opened before the first model (learned from, not decoded); {} labelled trials learned",
+        args.decoder.name(),
+        run.models.len(),
+        if run.recorded_swaps { "all" } else { "none" },
+        run.decisions.len(),
+        100.0 * acc,
+        labelled.len(),
+        correct,
+        run.undecoded_trials,
+        run.trials_learned
+    );
+    if let Some((k, u, s)) = run.models.last() {
+        println!("last model: fitted on {k} labelled trials, {u} units × {s} stimuli");
+    }
+    eprintln!("wrote {} and {}", post_path.display(), dec_path.display());
+    Ok(acc)
+}
+
 /// `export`.
 pub fn export_cmd(model_path: &Path, out: Option<&Path>) -> anyhow::Result<()> {
     let (_, model) = load_model(model_path)?;

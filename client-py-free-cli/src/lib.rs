@@ -11,6 +11,7 @@ pub mod fitting;
 pub mod live;
 pub mod monitor;
 pub mod offline;
+pub mod prequential;
 pub mod report;
 pub mod session;
 pub mod tables;

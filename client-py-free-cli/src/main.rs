@@ -135,9 +135,28 @@ enum Cmd {
     },
     /// Decode every trial offline: posteriors.csv and decisions.csv
     Decode {
-        /// Model file
+        /// Model file (not with --prequential)
+        #[arg(long, required_unless_present = "prequential", conflicts_with = "prequential")]
+        model: Option<PathBuf>,
+        /// Learn while decoding, as the daemon does: each trial decoded with a model fitted only on
+        /// trials labelled before it opened (from a daemon's recording: at the daemon's own swap points)
         #[arg(long)]
-        model: PathBuf,
+        prequential: bool,
+        /// With --prequential: window after onset, ms (a learning daemon's recording carries its own)
+        #[arg(long, default_value_t = 250.0)]
+        window_ms: f64,
+        /// With --prequential: bin width, ms
+        #[arg(long, default_value_t = 1.0)]
+        bin_ms: f64,
+        /// With --prequential: count families (as for fit)
+        #[arg(long, default_value = "all")]
+        families: String,
+        /// With --prequential: labelled trials of a stimulus before it (and a unit) enters the model
+        #[arg(long, default_value_t = 3)]
+        learn_min_trials: u32,
+        /// With --prequential: refit after this many new labelled trials
+        #[arg(long, default_value_t = 8)]
+        refit_every_trials: u32,
         #[command(flatten)]
         tables: Tables,
         #[command(flatten)]
@@ -326,6 +345,14 @@ enum Steer {
     Decoder { decoder: String },
     /// Load a model file; open trials finish on the old one
     Reload { model: PathBuf },
+    /// Learning during the session: freeze (keep the model, keep collecting trials), resume, or
+    /// reset (forget the trials learned so far)
+    Learn {
+        #[arg(value_parser = ["freeze", "resume", "reset"])]
+        action: String,
+    },
+    /// Fit on every trial learned so far and write it as a model file (as `auspex fit` writes)
+    SaveLearned { path: PathBuf },
     /// Ask which stimulus to present next
     Next {
         /// balanced-blocks or least-certain
@@ -381,6 +408,12 @@ fn main() {
         .map(|_| ()),
         Cmd::Decode {
             model,
+            prequential: _,
+            window_ms,
+            bin_ms,
+            families,
+            learn_min_trials,
+            refit_every_trials,
             tables,
             opts,
             out_dir,
@@ -391,7 +424,21 @@ fn main() {
                 min_time_ms: opts.min_time_ms,
                 prior: opts.prior,
             };
-            commands::decode_cmd(&model, &tables.source(), &out_dir, &args)
+            match model {
+                Some(m) => commands::decode_cmd(&m, &tables.source(), &out_dir, &args),
+                None => commands::decode_prequential_cmd(
+                    &tables.source(),
+                    &out_dir,
+                    &args,
+                    &commands::PrequentialArgs {
+                        window_ms,
+                        bin_ms,
+                        families,
+                        min_trials: learn_min_trials,
+                        every_trials: refit_every_trials,
+                    },
+                ),
+            }
             .map(|_| ())
         }
         Cmd::Validate {
@@ -492,12 +539,31 @@ fn main() {
             if json {
                 println!("{}", serde_json::json!({"version": s.version, "model": s.model_path, "stimuli": s.stimuli, "units": s.units.len(),
                     "decoder": s.decoder, "threshold": s.threshold, "min_time_s": s.min_time_s, "prior": s.prior, "tick_rate_hz": s.tick_rate_hz,
-                    "open_trials": s.open_trials, "recording": s.recording_path,
+                    "open_trials": s.open_trials, "recording": s.recording_path, "session": s.session_name,
+                    "learning": s.learning.as_ref().map(|l| serde_json::json!({"enabled": l.enabled, "trials_learned": l.trials_learned, "model_trials": l.model_trials, "last_refit_age_s": l.last_refit_age_s, "last_refit_s": l.last_refit_s, "refits": l.refits, "waiting_for": l.waiting_for})),
+                    "ended_sessions": s.ended_sessions.iter().map(|e| serde_json::json!({"session": e.session_name, "reason": e.reason, "trials_completed": e.trials_completed, "decisions": e.decisions, "decisions_labelled": e.decisions_labelled, "decisions_correct": e.decisions_correct, "trials_learned": e.trials_learned, "recording": e.recording_path})).collect::<Vec<_>>(),
                     "senders": s.senders.iter().map(|x| serde_json::json!({"sender": x.sender, "last_seq": x.last_seq, "gaps": x.gaps, "ended": x.ended})).collect::<Vec<_>>()}));
             } else {
                 println!("auspexd {} · model {} ({} units × {} stimuli: {})", s.version, s.model_path, s.units.len(), s.stimuli.len(), s.stimuli.join(", "));
                 println!("decoder {} · threshold {} after {} ms · prior [{}]", s.decoder, s.threshold, s.min_time_s * 1000.0, s.prior.iter().map(|p| format!("{p:.3}")).collect::<Vec<_>>().join(", "));
-                println!("clock {} ticks/s · open trials {:?} · recording {}", s.tick_rate_hz, s.open_trials, if s.recording_path.is_empty() { "off" } else { &s.recording_path });
+                if s.tick_rate_hz > 0.0 {
+                    println!("session {:?} · clock {} ticks/s · open trials {:?} · recording {}", s.session_name, s.tick_rate_hz, s.open_trials, if s.recording_path.is_empty() { "off" } else { &s.recording_path });
+                } else {
+                    println!("no session yet (waiting for SessionStart) · recording {}", if s.recording_path.is_empty() { "off" } else { &s.recording_path });
+                }
+                if let Some(l) = &s.learning {
+                    let state = if l.enabled { "on" } else { "frozen" };
+                    let model = if l.model_trials > 0 {
+                        format!("model in use fitted on {} trials, applied {:.0} s ago after a {:.2} s refit", l.model_trials, l.last_refit_age_s, l.last_refit_s)
+                    } else {
+                        "no learned model yet".to_string()
+                    };
+                    println!("learning {state}: {} labelled trials taken · {model} · {} refits (every {} trials or {:.0} s){}", l.trials_learned, l.refits, l.refit_every_trials, l.refit_every_s,
+                        if l.waiting_for.is_empty() { String::new() } else { format!(" · waiting for {}", l.waiting_for) });
+                }
+                for e in &s.ended_sessions {
+                    println!("{}", auspex::monitor::session_line(e));
+                }
                 for x in &s.senders {
                     println!("sender {:?}: {} messages, last #{}, {} gaps{}", x.sender, x.messages, x.last_seq, x.gaps, if x.ended { ", ended" } else { "" });
                 }
@@ -520,8 +586,19 @@ fn main() {
                 Steer::Decoder { decoder } => B::SetDecoder(v1::SetDecoder { decoder }),
                 Steer::Reload { model } => B::Reload(v1::ReloadModel { path: std::fs::canonicalize(&model).unwrap_or(model).display().to_string() }),
                 Steer::Next { policy } => B::NextStimulus(v1::NextStimulus { policy }),
+                Steer::Learn { action } => B::SetLearning(v1::SetLearning { action }),
+                Steer::SaveLearned { path } => {
+                    // The daemon writes the file: give it an absolute path.
+                    let abs = if path.is_absolute() { path } else { std::env::current_dir()?.join(path) };
+                    B::SaveLearned(v1::SaveLearned { path: abs.display().to_string() })
+                }
             };
-            let r = auspex::live::control(&control, body, std::time::Duration::from_secs(5)).await?;
+            let wait = if matches!(body, B::SaveLearned(_)) { 600 } else { 5 };
+            let r = auspex::live::control(&control, body, std::time::Duration::from_secs(wait)).await?;
+            if !r.note.is_empty() {
+                println!("{}", r.note);
+                return Ok(());
+            }
             match r.body {
                 Some(v1::control_reply::Body::Next(n)) => println!("{}", n.stimulus),
                 Some(v1::control_reply::Body::Status(s)) => println!("ok: decoder {}, threshold {}, minimum {} ms, model {}", s.decoder, s.threshold, s.min_time_s * 1000.0, s.model_path),

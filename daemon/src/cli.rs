@@ -10,9 +10,34 @@ pub struct DaemonArgs {
     /// TOML configuration file (flags override it)
     #[arg(long)]
     pub config: Option<PathBuf>,
-    /// Model file from `auspex fit`
+    /// Model file from `auspex fit` (leave out to learn one from the session's labelled trials)
     #[arg(long)]
     pub model: Option<PathBuf>,
+    /// Learn from labelled trials during the session: on by default without --model; with
+    /// --model, learned models replace it once they can be fitted
+    #[arg(long, num_args = 0..=1, default_missing_value = "true", value_name = "BOOL")]
+    pub learn: Option<bool>,
+    /// Start with learning frozen: trials are kept, no refit until `auspex steer learn resume`
+    #[arg(long)]
+    pub learn_frozen: bool,
+    /// Window after onset the learner fits, ms (without --model) [default: 250]
+    #[arg(long)]
+    pub learn_window_ms: Option<f64>,
+    /// Bin width the learner fits, ms (without --model) [default: 1]
+    #[arg(long)]
+    pub learn_bin_ms: Option<f64>,
+    /// Count families the learner chooses among: comma-separated (poisson, nb, com, empirical) or all [default: all]
+    #[arg(long)]
+    pub learn_families: Option<String>,
+    /// Labelled trials a stimulus needs before it enters the learned model, and a unit of every stimulus before it contributes [default: 3]
+    #[arg(long)]
+    pub learn_min_trials: Option<u32>,
+    /// Refit after this many new labelled trials [default: 8]
+    #[arg(long)]
+    pub refit_every_trials: Option<u32>,
+    /// ... or after this many seconds with at least one new labelled trial [default: 30]
+    #[arg(long)]
+    pub refit_every_s: Option<f64>,
     /// Main ingest endpoint (acquisition connects here) [default: tcp://127.0.0.1:7710]
     #[arg(long)]
     pub ingest: Option<String>,
@@ -82,6 +107,18 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
         decoder,
         threshold
     );
+    over!(
+        learn,
+        learn_window_ms,
+        learn_bin_ms,
+        learn_families,
+        learn_min_trials,
+        refit_every_trials,
+        refit_every_s
+    );
+    if a.learn_frozen {
+        f.learn_frozen = Some(true);
+    }
     if a.table_memory_mb.is_some() {
         f.table_memory_mb = a.table_memory_mb;
     }

@@ -15,7 +15,7 @@ use crate::next_stimulus::StimulusChooser;
 use crate::publish::Publisher;
 use crate::ratelog::RateLimitedLog;
 use crate::recorder::RecorderMsg;
-use crate::stream::{apply_body, remember_onset, TrialStimuli};
+use auspex_proto::stream::{apply_body, remember_onset, TrialStimuli};
 use auspex_engine::engine::{
     Counters, Decision, DecisionReason, Engine, EngineConfig, EngineError, EngineSink, Frame,
     TrialEnd, TrialOutcome, UnitSummaries,
@@ -687,7 +687,7 @@ impl EngineThread {
         };
         match body {
             inbound::Body::SessionStart(ss) => {
-                self.session_start(&ss);
+                self.session_start(&ss, &msg.sender);
                 return;
             }
             inbound::Body::EndOfStream(_) => {
@@ -809,7 +809,7 @@ impl EngineThread {
         }
     }
 
-    fn session_start(&mut self, ss: &v1::SessionStart) {
+    fn session_start(&mut self, ss: &v1::SessionStart, sender: &str) {
         if !(ss.tick_rate_hz.is_finite() && ss.tick_rate_hz >= 1.0 && ss.tick_rate_hz <= 1e12) {
             self.counters.malformed += 1;
             let r = ss.tick_rate_hz;
@@ -857,6 +857,14 @@ impl EngineThread {
             }
         }
         self.epoch += 1;
+        // Sequence tracking starts afresh: the senders of the last session stay visible in
+        // status until this one starts.
+        self.senders.retain(|k, _| k == sender);
+        if let Some(s) = self.senders.get_mut(sender) {
+            s.gaps = 0;
+            s.messages = 1;
+            s.ended = false;
+        }
         self.tick_rate = Some(ss.tick_rate_hz);
         self.config.tick_rate_hz = ss.tick_rate_hz;
         // Name the recording after the session (the file of the first session was opened at
@@ -891,7 +899,7 @@ impl EngineThread {
             });
             let _ = l.tx.send(LearnMsg::Enable(l.enabled));
         }
-        if let Some(m) = self.model.clone() {
+        if let (None, Some(m)) = (&self.engine, self.model.clone()) {
             match Engine::new(m, self.config.clone()) {
                 Ok(e) => self.engine = Some(e),
                 Err(e) => {
@@ -954,7 +962,6 @@ impl EngineThread {
         if let Some(e) = self.engine.take() {
             add_counters(&mut self.carried, e.counters());
         }
-        self.senders.clear();
         self.names.clear();
         self.held.clear();
         self.collector = None;
@@ -1004,18 +1011,11 @@ impl EngineThread {
         link.refits += 1;
         link.waiting_for.clear();
         if let Some(r) = &self.recorder {
-            let _ = r.send(RecorderMsg::Record(v1::SessionRecord {
-                received_unix_ns: crate::ingest::now_ns(),
-                endpoint: 0,
-                message: Vec::new(),
-                header: None,
-                learned: Some(v1::LearnedSwap {
-                    trials_learned: l.trials,
-                    units: l.model.n_units() as u32,
-                    stimuli: l.model.n_stimuli() as u32,
-                    reset: false,
-                }),
-            }));
+            let _ = r.send(RecorderMsg::Record(swap_record(
+                &link.setup.options,
+                l.trials,
+                Some(&l.model),
+            )));
         }
         tracing::info!(trials = l.trials, units = l.model.n_units(), stimuli = l.model.n_stimuli(), fit_s = l.fit_s, "learned model applies to trials that open from now on");
         self.current = l.model.stimuli().to_vec().into();
@@ -1100,18 +1100,11 @@ impl EngineThread {
             "reset" => {
                 let _ = l.tx.send(LearnMsg::Reset);
                 if let Some(r) = &self.recorder {
-                    let _ = r.send(RecorderMsg::Record(v1::SessionRecord {
-                        received_unix_ns: crate::ingest::now_ns(),
-                        endpoint: 0,
-                        message: Vec::new(),
-                        header: None,
-                        learned: Some(v1::LearnedSwap {
-                            trials_learned: l.trials_sent,
-                            units: 0,
-                            stimuli: 0,
-                            reset: true,
-                        }),
-                    }));
+                    let _ = r.send(RecorderMsg::Record(swap_record(
+                        &l.setup.options,
+                        l.trials_sent,
+                        None,
+                    )));
                 }
             }
             other => {
@@ -1323,8 +1316,19 @@ impl EngineThread {
                 .as_ref()
                 .map(|e| e.open_trials().collect())
                 .unwrap_or_default(),
-            n_bins: self.model.as_ref().map(|m| m.n_bins() as u32).unwrap_or(0),
-            bin_width_s: self.model.as_ref().map(|m| m.bin_width_s()).unwrap_or(0.0),
+            n_bins: match (&self.model, &self.learn) {
+                (Some(m), _) => m.n_bins() as u32,
+                (None, Some(l)) => {
+                    let f = &l.setup.options.fit;
+                    (f.window_s / f.bin_width_s).round() as u32
+                }
+                (None, None) => 0,
+            },
+            bin_width_s: match (&self.model, &self.learn) {
+                (Some(m), _) => m.bin_width_s(),
+                (None, Some(l)) => l.setup.options.fit.bin_width_s,
+                (None, None) => 0.0,
+            },
             session_name: self
                 .session
                 .as_ref()
@@ -1333,6 +1337,28 @@ impl EngineThread {
             ended_sessions: self.ended.clone(),
             learning,
         }
+    }
+}
+
+/// The recording's marker of a learned model taking over (`model`), or of the learner forgetting
+/// its trials (None), after `trials` labelled trials, with the settings a replay needs.
+fn swap_record(opts: &LearnOptions, trials: u64, model: Option<&Arc<Model>>) -> v1::SessionRecord {
+    v1::SessionRecord {
+        received_unix_ns: crate::ingest::now_ns(),
+        endpoint: 0,
+        message: Vec::new(),
+        header: None,
+        learned: Some(v1::LearnedSwap {
+            trials_learned: trials,
+            units: model.map(|m| m.n_units() as u32).unwrap_or(0),
+            stimuli: model.map(|m| m.n_stimuli() as u32).unwrap_or(0),
+            reset: model.is_none(),
+            window_s: opts.fit.window_s,
+            bin_width_s: opts.fit.bin_width_s,
+            families: opts.fit.families.iter().map(|f| f.name().to_string()).collect(),
+            min_trials_per_stimulus: opts.min_trials_per_stimulus,
+            max_trials_per_stimulus: opts.max_trials_per_stimulus.min(u32::MAX as usize) as u32,
+        }),
     }
 }
 

@@ -17,4 +17,3 @@ pub mod ratelog;
 pub mod publish;
 pub mod recorder;
 pub mod service;
-pub mod stream;

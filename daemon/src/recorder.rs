@@ -86,6 +86,9 @@ fn run(
     let mut errors = 0u64;
     let mut last = Instant::now();
     let mut dirty = false;
+    // Records in the current file: a file left without any (the next session never came) is
+    // removed at the end rather than left as an empty recording.
+    let mut written = 0u64;
     let period = Duration::from_millis(100);
     loop {
         let msg = rx.recv_timeout(
@@ -96,6 +99,7 @@ fn run(
         let mut flush = false;
         match msg {
             Ok(RecorderMsg::Record(r)) => {
+                written += 1;
                 if let Err(e) = w.append(&r) {
                     errors += 1;
                     tracing::error!(file = %path.display(), error = %e, "session recording: write failed");
@@ -120,9 +124,10 @@ fn run(
                 }
                 match open(&to, model_path, crate::ingest::now_ns()) {
                     Ok(nw) => {
-                        tracing::info!(closed = %path.display(), next = %to.display(), "session recording closed; the next session records to a new file");
+                        tracing::info!(closed = %path.display(), "session recording closed; the next session records to a new file");
                         w = nw;
                         path = to;
+                        written = 0;
                     }
                     Err(e) => {
                         errors += 1;
@@ -150,6 +155,10 @@ fn run(
     if let Err(e) = w.flush() {
         errors += 1;
         tracing::error!(file = %path.display(), error = %e, "session recording: final flush failed");
+    }
+    drop(w);
+    if written == 0 {
+        let _ = std::fs::remove_file(&path);
     }
     errors
 }

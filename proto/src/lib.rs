@@ -3,7 +3,9 @@
 //! The wire and file schemas of Auspex (`proto/auspex/v1/*.proto`, compiled by prost through
 //! protox at build time), and the byte codecs for model files and session recordings.
 //! Codecs work on bytes and treat "incomplete" as a normal answer, not an error.
-//! Must not: open sockets or know about the engine.
+//! `stream` applies inbound messages to the engine: the one rule the daemon and offline replay
+//! share.
+//! Must not: open sockets, read files or clocks.
 #![deny(missing_docs)]
 
 /// Generated protobuf types (package `auspex.v1`).
@@ -14,6 +16,7 @@ pub mod v1 {
 
 pub mod crc32;
 pub mod session;
+pub mod stream;
 
 use prost::Message;
 

@@ -12,7 +12,7 @@
 
 use auspex_engine::engine::{Engine, EngineError, EngineSink};
 use auspex_engine::learn::{TrialWindow, WindowCollector};
-use auspex_proto::v1::inbound::Body;
+use crate::v1::inbound::Body;
 use std::collections::{HashMap, VecDeque};
 use std::sync::Arc;
 
