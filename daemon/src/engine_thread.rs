@@ -870,11 +870,14 @@ impl EngineThread {
         // Name the recording after the session (the file of the first session was opened at
         // start, before its name was known; later ones are opened at their session's start).
         if let (Some(dir), Some(r)) = (&self.record_dir, &self.recorder) {
-            let path = dir.join(format!(
-                "{}-{}.apxs",
-                file_safe(&ss.session_name),
-                utc_stamp(unix_now_s())
-            ));
+            let stem = format!("{}-{}", file_safe(&ss.session_name), utc_stamp(unix_now_s()));
+            let path = (1..)
+                .map(|i| match i {
+                    1 => dir.join(format!("{stem}.apxs")),
+                    i => dir.join(format!("{stem}-{i}.apxs")),
+                })
+                .find(|p| !p.exists())
+                .unwrap_or_else(|| dir.join(format!("{stem}.apxs")));
             let _ = r.send(RecorderMsg::Rename(path.clone()));
             self.recording_path = path.display().to_string();
         }

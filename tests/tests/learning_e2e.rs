@@ -1,0 +1,443 @@
+//! Learning during the recording, end to end with a libzmq-based peer: a daemon started with no
+//! model learns from a simulated session whose task program labels each trial only after its
+//! window; its live posteriors equal `decode --prequential` of its own recording bit for bit, and
+//! the learned model it saves equals `auspex fit` of that recording. A unit declared part-way
+//! learns from then on. Three sessions in a row through one daemon give three recordings and
+//! three summaries, each session decoded exactly as if it ran alone.
+
+use auspex::prequential::{run_recording, Schedule};
+use auspex::wire::{dataset_messages, read_recording};
+use auspex_engine::engine::{EngineConfig, EngineSink, Frame};
+use auspex_engine::fit::{plan, FitOptions};
+use auspex_engine::learn::LearnOptions;
+use auspex_engine::simulate::{simulate, Scenario, SimOptions};
+use auspex_engine::{Dataset, Model};
+use auspex_proto::v1::{self, control_reply, control_request, inbound::Body, outbound};
+use auspexd::config::{validate, FileConfig};
+use prost::Message;
+use std::sync::{mpsc, Arc};
+use std::time::{Duration, Instant};
+
+fn serial() -> std::sync::MutexGuard<'static, ()> {
+    static LOCK: std::sync::Mutex<()> = std::sync::Mutex::new(());
+    LOCK.lock().unwrap_or_else(|e| e.into_inner())
+}
+
+fn scenario() -> Scenario {
+    let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();
+    let mut s: Scenario = toml::from_str(&text).unwrap();
+    s.units.truncate(8);
+    s.stimuli.truncate(4);
+    s
+}
+
+fn runtime() -> tokio::runtime::Runtime {
+    auspexd::service::io_runtime().unwrap()
+}
+
+fn control(ctx: &zmq::Context, endpoint: &str, body: control_request::Body) -> v1::ControlReply {
+    let req = ctx.socket(zmq::REQ).unwrap();
+    req.set_rcvtimeo(120_000).unwrap();
+    req.set_linger(0).unwrap();
+    req.connect(endpoint).unwrap();
+    req.send(v1::ControlRequest { body: Some(body) }.encode_to_vec(), 0)
+        .unwrap();
+    v1::ControlReply::decode(req.recv_bytes(0).unwrap().as_slice()).unwrap()
+}
+
+fn status(ctx: &zmq::Context, endpoint: &str) -> v1::Status {
+    match control(ctx, endpoint, control_request::Body::Status(v1::StatusQuery {})).body {
+        Some(control_reply::Body::Status(s)) => s,
+        other => panic!("no status: {other:?}"),
+    }
+}
+
+fn wait_for(mut cond: impl FnMut() -> bool, what: &str) {
+    let t0 = Instant::now();
+    while !cond() {
+        assert!(t0.elapsed() < Duration::from_secs(60), "timed out waiting for {what}");
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+type Got = Vec<(String, v1::Outbound)>;
+
+fn subscriber(ctx: &zmq::Context, endpoint: &str) -> (mpsc::Sender<()>, std::thread::JoinHandle<Got>) {
+    let sub = ctx.socket(zmq::SUB).unwrap();
+    sub.set_rcvhwm(0).unwrap();
+    sub.connect(endpoint).unwrap();
+    sub.set_subscribe(b"").unwrap();
+    let (tx, rx) = mpsc::channel();
+    let h = std::thread::spawn(move || {
+        let mut out = Vec::new();
+        sub.set_rcvtimeo(50).unwrap();
+        loop {
+            let stop = rx.try_recv().is_ok();
+            while let Ok(parts) = sub.recv_multipart(if stop { 0 } else { zmq::DONTWAIT }) {
+                out.push((
+                    String::from_utf8_lossy(&parts[0]).to_string(),
+                    v1::Outbound::decode(parts[1].as_slice()).unwrap(),
+                ));
+            }
+            if stop {
+                return out;
+            }
+            std::thread::sleep(Duration::from_millis(2));
+        }
+    });
+    (tx, h)
+}
+
+fn frames_of(got: &[(String, v1::Outbound)]) -> Vec<(u64, u32, Vec<f64>)> {
+    let mut v: Vec<_> = got
+        .iter()
+        .filter_map(|(t, m)| match &m.body {
+            Some(outbound::Body::Posterior(p)) if t == "posterior" => {
+                Some((p.trial, p.bin, p.posterior.clone()))
+            }
+            _ => None,
+        })
+        .collect();
+    v.sort_by_key(|x| (x.0, x.1));
+    v
+}
+
+fn daemon_config(record: &std::path::Path, model: Option<std::path::PathBuf>) -> auspexd::config::DaemonConfig {
+    let fc = FileConfig {
+        model,
+        ingest: Some("tcp://127.0.0.1:0".into()),
+        task_ingest: Some("tcp://127.0.0.1:0".into()),
+        publish: Some("tcp://127.0.0.1:0".into()),
+        control: Some("tcp://127.0.0.1:0".into()),
+        record: Some(record.to_path_buf()),
+        refit_every_trials: Some(4),
+        ..Default::default()
+    };
+    let mut c = validate(fc, &mut Vec::new()).unwrap();
+    c.health_period = Duration::from_millis(100);
+    c
+}
+
+/// The session as acquisition plus a task program would send it, on one sender: onsets without
+/// the stimulus, each trial's label only once its window has passed, and optionally a unit
+/// declared part-way (its spikes before the declaration dropped: they were never sorted).
+fn session_messages(
+    data: &Dataset,
+    name: &str,
+    window_ticks: i64,
+    late_unit: Option<(u32, i64)>,
+) -> Vec<v1::Inbound> {
+    let mut d = data.clone();
+    if let Some((u, from)) = late_unit {
+        d.spikes.retain(|&(t, unit)| unit != u || t >= from);
+        d.units.retain(|&x| x != u);
+    }
+    let labels: std::collections::HashMap<u64, (i64, String)> = d
+        .trials
+        .iter()
+        .map(|t| (t.id, (t.onset, t.stimulus.clone().unwrap_or_default())))
+        .collect();
+    for t in d.trials.iter_mut() {
+        t.stimulus = None;
+    }
+    let plain = dataset_messages(&d, name, 1000, window_ticks);
+    let mut out = Vec::new();
+    let mut pending: Vec<(i64, u64)> = Vec::new();
+    let mut declared = late_unit.is_none();
+    for m in plain {
+        let wm = match &m.body {
+            Some(Body::Spikes(b)) => Some(b.complete_through),
+            Some(Body::Heartbeat(h)) => Some(h.complete_through),
+            _ => None,
+        };
+        if let Some(Body::Onset(o)) = &m.body {
+            pending.push((o.onset_tick + window_ticks, o.trial));
+        }
+        if let (false, Some((u, from)), Some(w)) = (declared, late_unit, wm) {
+            if w + 1000 >= from {
+                declared = true;
+                out.push(v1::Inbound {
+                    sender: name.into(),
+                    seq: 0,
+                    body: Some(Body::UnitsAdded(v1::UnitsAdded {
+                        units: vec![u],
+                        from_tick: from,
+                    })),
+                });
+            }
+        }
+        let is_end = matches!(m.body, Some(Body::EndOfStream(_)));
+        out.push(m);
+        if let Some(w) = wm {
+            pending.retain(|&(end, trial)| {
+                if end - 1 <= w {
+                    out.push(v1::Inbound {
+                        sender: name.into(),
+                        seq: 0,
+                        body: Some(Body::Label(v1::TrialLabel {
+                            trial,
+                            stimulus: labels[&trial].1.clone(),
+                        })),
+                    });
+                    false
+                } else {
+                    true
+                }
+            });
+        }
+        if is_end {
+            break;
+        }
+    }
+    for (i, m) in out.iter_mut().enumerate() {
+        m.seq = i as u64 + 1;
+    }
+    out
+}
+
+/// Sends messages at about `speed` × real time (1 ms batches).
+fn send(push: &zmq::Socket, msgs: &[v1::Inbound], speed: f64) {
+    let t0 = Instant::now();
+    let mut batches = 0u64;
+    for m in msgs {
+        push.send(m.encode_to_vec(), 0).unwrap();
+        if matches!(m.body, Some(Body::Spikes(_)) | Some(Body::Heartbeat(_))) {
+            batches += 1;
+            let due = Duration::from_secs_f64(batches as f64 * 0.001 / speed);
+            if let Some(w) = due.checked_sub(t0.elapsed()) {
+                std::thread::sleep(w);
+            }
+        }
+    }
+}
+
+fn recordings(dir: &std::path::Path) -> Vec<std::path::PathBuf> {
+    let mut v: Vec<_> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|e| e == "apxs"))
+        .collect();
+    v.sort();
+    v
+}
+
+#[test]
+fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offline_fit() {
+    let _g = serial();
+    let sc = scenario();
+    let truth = Model::new(sc.true_model().unwrap()).unwrap();
+    let data = simulate(
+        &truth,
+        &SimOptions {
+            trials_per_stimulus: 12,
+            seed: 21,
+            ..sc.sim_options()
+        },
+    );
+    let window_ticks = (sc.window_ms / 1000.0 * data.tick_rate_hz).round() as i64;
+    // The last unit is isolated a third of the way in.
+    let late = *data.units.last().unwrap();
+    let from = data.trials[data.trials.len() / 3].onset - 1000;
+    let msgs = session_messages(&data, "rig-7-day-2", window_ticks, Some((late, from)));
+
+    let dir = tempfile::tempdir().unwrap();
+    let mut cfg = daemon_config(dir.path(), None);
+    cfg.learn.as_mut().unwrap().window_s = Some(sc.window_ms / 1000.0);
+    let rt = runtime();
+    let running = rt.block_on(auspexd::service::start(cfg)).unwrap();
+    let ep = running.endpoints.clone();
+    let ctx = zmq::Context::new();
+    let (stop, sub) = subscriber(&ctx, &ep.publish);
+    std::thread::sleep(Duration::from_millis(300));
+    let push = ctx.socket(zmq::PUSH).unwrap();
+    push.connect(&ep.ingest).unwrap();
+    send(&push, &msgs, 8.0);
+    let n = msgs.len() as u64;
+    wait_for(
+        || status(&ctx, &ep.control).ended_sessions.len() == 1,
+        "the session to end after its end of stream",
+    );
+    let st = status(&ctx, &ep.control);
+    assert_eq!(st.senders[0].last_seq, n);
+    let learning = st.learning.clone().unwrap();
+    assert_eq!(learning.trials_learned, data.trials.len() as u64);
+    assert!(learning.refits >= 2, "models learned during the session: {learning:?}");
+    // Save what was learned: the fit of every labelled trial of the session.
+    let saved = dir.path().join("learned.apxm");
+    let r = control(
+        &ctx,
+        &ep.control,
+        control_request::Body::SaveLearned(v1::SaveLearned {
+            path: saved.display().to_string(),
+        }),
+    );
+    assert!(r.ok, "save: {}", r.error);
+    std::thread::sleep(Duration::from_millis(300));
+    stop.send(()).unwrap();
+    let got = sub.join().unwrap();
+    rt.block_on(running.stop());
+
+    let live = frames_of(&got);
+    assert!(live.len() > 1000, "live frames: {}", live.len());
+    let summary = got
+        .iter()
+        .find_map(|(t, m)| match &m.body {
+            Some(outbound::Body::Session(s)) if t == "session" => Some(s.clone()),
+            _ => None,
+        })
+        .expect("a session summary is published");
+    assert_eq!(summary.session_name, "rig-7-day-2");
+    assert_eq!(summary.reason, "every sender ended");
+    assert!(summary.decisions_labelled > 0 && summary.decisions_correct > 0);
+
+    let files = recordings(dir.path());
+    assert_eq!(files.len(), 1, "one recording: {files:?}");
+    let name = files[0].file_name().unwrap().to_string_lossy().to_string();
+    assert!(name.starts_with("rig-7-day-2-") && name.ends_with("Z.apxs"), "{name}");
+    let rec = read_recording(&files[0]).unwrap();
+    assert!(rec.learned.len() >= 2);
+
+    // Live posteriors = prequential decoding of the recording, bit for bit.
+    let (run, _, frames) = run_recording(
+        &rec,
+        &LearnOptions::default(),
+        &EngineConfig::new(rec.dataset.tick_rate_hz),
+        &Schedule { every_trials: 4 },
+        None::<Vec<u8>>,
+        true,
+    )
+    .unwrap();
+    let mut offline = frames.unwrap();
+    offline.sort_by_key(|x| (x.0, x.1));
+    assert_eq!(run.models.len(), rec.learned.len());
+    assert!(run.undecoded_trials > 0, "the first trials wait for a model");
+    assert_eq!(live.len(), offline.len());
+    assert!(live == offline, "live and prequential frames differ");
+
+    // The saved model = `auspex fit` of the recording (the late unit from its declaration on).
+    assert_eq!(rec.dataset.declared_from.get(&late), Some(&from));
+    let (spec, _) = auspexd::model_file::load_model(&saved).unwrap();
+    let fitted = plan(
+        &rec.dataset,
+        &FitOptions {
+            window_s: sc.window_ms / 1000.0,
+            ..FitOptions::default()
+        },
+    )
+    .unwrap()
+    .fit_all();
+    assert!(spec.units.contains(&late));
+    assert!(spec == fitted, "the saved learned model differs from the offline fit");
+    let n_late = spec.cells[spec.units.iter().position(|&u| u == late).unwrap() * spec.stimuli.len()]
+        .summary
+        .n_trials;
+    let n_first = spec.cells[0].summary.n_trials;
+    assert!(n_late < n_first, "the late unit learns only from its declaration: {n_late} vs {n_first}");
+}
+
+#[derive(Default)]
+struct Collect(Vec<(u64, u32, Vec<f64>)>);
+impl EngineSink for Collect {
+    fn frame(&mut self, f: &Frame<'_>) {
+        self.0.push((f.trial, f.bin, f.posterior.to_vec()));
+    }
+}
+
+#[test]
+fn three_sessions_through_one_daemon_are_three_recordings_and_three_summaries() {
+    let _g = serial();
+    let sc = scenario();
+    let truth = Model::new(sc.true_model().unwrap()).unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let model_path = dir.path().join("truth.apxm");
+    auspexd::model_file::save_model(&model_path, &sc.true_model().unwrap(), "e2e").unwrap();
+    let rec_dir = dir.path().join("rec");
+    std::fs::create_dir(&rec_dir).unwrap();
+    let cfg = daemon_config(&rec_dir, Some(model_path));
+    let rt = runtime();
+    let running = rt.block_on(auspexd::service::start(cfg)).unwrap();
+    let ep = running.endpoints.clone();
+    let ctx = zmq::Context::new();
+    let (stop, sub) = subscriber(&ctx, &ep.publish);
+    std::thread::sleep(Duration::from_millis(300));
+    let push = ctx.socket(zmq::PUSH).unwrap();
+    push.connect(&ep.ingest).unwrap();
+    let window_ticks = (sc.window_ms / 1000.0 * 1e6).round() as i64;
+    let mut datasets = Vec::new();
+    for (i, name) in ["alpha", "beta", "gamma"].iter().enumerate() {
+        let data = simulate(
+            &truth,
+            &SimOptions {
+                trials_per_stimulus: 2,
+                seed: 100 + i as u64,
+                ..sc.sim_options()
+            },
+        );
+        let mut msgs = dataset_messages(&data, name, 1000, window_ticks);
+        if *name == "beta" {
+            // beta's sender never says it ended: gamma's start ends beta.
+            msgs.pop();
+        }
+        for m in msgs.iter_mut() {
+            m.sender = "acq".into();
+        }
+        send(&push, &msgs, 1e9);
+        let want = i + 1;
+        if *name != "beta" {
+            wait_for(|| status(&ctx, &ep.control).ended_sessions.len() == want, "the session to end");
+        } else {
+            wait_for(
+                || status(&ctx, &ep.control).senders.first().is_some_and(|s| s.last_seq == msgs.len() as u64),
+                "beta to be processed",
+            );
+        }
+        datasets.push(data);
+    }
+    let st = status(&ctx, &ep.control);
+    assert_eq!(st.health.unwrap().duplicate_messages, 0);
+    std::thread::sleep(Duration::from_millis(300));
+    stop.send(()).unwrap();
+    let got = sub.join().unwrap();
+    rt.block_on(running.stop());
+
+    let summaries: Vec<v1::SessionSummary> = got
+        .iter()
+        .filter_map(|(_, m)| match &m.body {
+            Some(outbound::Body::Session(s)) => Some(s.clone()),
+            _ => None,
+        })
+        .collect();
+    let names: Vec<&str> = summaries.iter().map(|s| s.session_name.as_str()).collect();
+    assert_eq!(names, ["alpha", "beta", "gamma"]);
+    assert_eq!(summaries[1].reason, "new session");
+    assert_eq!(summaries[0].reason, "every sender ended");
+    let files = recordings(&rec_dir);
+    assert_eq!(files.len(), 3, "{files:?}");
+    // Each session decoded exactly as alone: its frames equal offline decoding of its dataset.
+    let mut frames_by_session: Vec<Vec<(u64, u32, Vec<f64>)>> = vec![Vec::new(); 3];
+    let mut k = 0usize;
+    for (t, m) in &got {
+        match &m.body {
+            Some(outbound::Body::Posterior(p)) if t == "posterior" => {
+                frames_by_session[k].push((p.trial, p.bin, p.posterior.clone()))
+            }
+            Some(outbound::Body::Session(_)) => k += 1,
+            _ => {}
+        }
+    }
+    let model = Arc::new(truth);
+    for (i, data) in datasets.iter().enumerate() {
+        let name = ["alpha", "beta", "gamma"][i];
+        let file = files
+            .iter()
+            .find(|p| p.file_name().unwrap().to_string_lossy().starts_with(name))
+            .unwrap();
+        let rec = read_recording(file).unwrap();
+        assert_eq!(rec.dataset.trials.len(), data.trials.len(), "{name}");
+        let mut c = Collect::default();
+        auspex::offline::run_dataset(model.clone(), data, EngineConfig::new(1e6), &mut c).unwrap();
+        c.0.sort_by_key(|x| (x.0, x.1));
+        frames_by_session[i].sort_by_key(|x| (x.0, x.1));
+        assert!(frames_by_session[i] == c.0, "session {name} differs from decoding it alone");
+    }
+}
