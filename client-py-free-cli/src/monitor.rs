@@ -26,6 +26,14 @@ pub enum UnitSort {
 struct UnitState {
     accuracy: f64,
     info_bits: f64,
+    /// The daemon's assessment: accuracy interval, information s.e., verdict, settled, latency.
+    acc_ci: (f64, f64),
+    info_se: f64,
+    verdict: String,
+    settled: bool,
+    latency_ms: f64,
+    /// Mean count per stimulus with its interval: (trials, mean, low, high).
+    tuning: Vec<(u64, f64, f64, f64)>,
     /// Per presented stimulus: (trials, Σ posterior of the presented stimulus, times decoded right).
     per_stim: Vec<(u64, f64, u64)>,
 }
@@ -157,6 +165,16 @@ impl MonitorState {
                     let st = self.units.entry(l.unit).or_default();
                     st.accuracy = l.accuracy;
                     st.info_bits = l.info_bits;
+                    st.acc_ci = (l.accuracy_low, l.accuracy_high);
+                    st.info_se = l.info_se_bits;
+                    st.verdict = l.verdict.clone();
+                    st.settled = l.settled;
+                    st.latency_ms = l.latency_ms;
+                    st.tuning = l
+                        .tuning
+                        .iter()
+                        .map(|t| (t.trials, t.mean_count, t.low, t.high))
+                        .collect();
                     if st.per_stim.len() != ns {
                         st.per_stim = vec![(0, 0.0, 0); ns];
                     }
@@ -378,11 +396,30 @@ impl MonitorState {
                 } else {
                     Style::default()
                 };
+                let st = &self.units[u];
+                let verdict = if st.verdict.is_empty() {
+                    String::new()
+                } else if st.settled {
+                    format!("{}, settled", st.verdict)
+                } else {
+                    st.verdict.clone()
+                };
+                let vstyle = match st.verdict.as_str() {
+                    "encodes" => Style::default().fg(Color::Cyan),
+                    "not yet enough trials" => Style::default().fg(Color::DarkGray),
+                    _ => Style::default(),
+                };
                 Row::new(vec![
                     Cell::from(u.to_string()),
-                    Cell::from(format!("{:.0}%", a * 100.0)),
-                    Cell::from(format!("{info:.3}")),
+                    Cell::from(format!(
+                        "{:.0}% [{:.0}–{:.0}]",
+                        a * 100.0,
+                        st.acc_ci.0 * 100.0,
+                        st.acc_ci.1 * 100.0
+                    )),
+                    Cell::from(format!("{info:.2}±{:.2}", st.info_se)),
                     Cell::from(bar),
+                    Cell::from(verdict).style(vstyle),
                 ])
                 .style(style)
             })
@@ -396,13 +433,14 @@ impl MonitorState {
             rows,
             [
                 Constraint::Length(7),
-                Constraint::Length(6),
-                Constraint::Length(7),
-                Constraint::Min(10),
+                Constraint::Length(14),
+                Constraint::Length(10),
+                Constraint::Length(10),
+                Constraint::Min(12),
             ],
         )
         .header(
-            Row::new(vec!["unit", "acc", "bits", ""])
+            Row::new(vec!["unit", "acc [95%]", "bits ± se", "", "verdict"])
                 .style(Style::default().add_modifier(Modifier::BOLD)),
         )
         .block(
@@ -424,31 +462,46 @@ impl MonitorState {
             return;
         };
         let st = &self.units[unit];
-        let lines: Vec<Line> = st
+        let max_mean = st.tuning.iter().map(|t| t.3).fold(1e-9, f64::max);
+        let mut lines: Vec<Line> = st
             .per_stim
             .iter()
             .enumerate()
             .map(|(i, (n, sp, right))| {
+                let tune = st.tuning.get(i).copied().unwrap_or_default();
+                let count = if tune.0 > 0 {
+                    format!(
+                        "count {:>5.2} [{:.2}–{:.2}] ",
+                        tune.1, tune.2, tune.3
+                    )
+                } else {
+                    "count   –              ".into()
+                };
+                let bar = "█".repeat(((tune.1 / max_mean) * 10.0).round() as usize);
                 if *n == 0 {
-                    Line::from(format!("{:>6}  –", self.name(i as u32)))
+                    Line::from(format!("{:>6}  {count} –", self.name(i as u32)))
                 } else {
                     let mean = sp / *n as f64;
                     Line::from(vec![
-                        Span::raw(format!("{:>6} ", self.name(i as u32))),
-                        Span::styled(
-                            "█".repeat((mean * 12.0).round() as usize),
-                            Style::default().fg(Color::Magenta),
-                        ),
+                        Span::raw(format!("{:>6} {count}", self.name(i as u32))),
+                        Span::styled(format!("{bar:<10}"), Style::default().fg(Color::Magenta)),
                         Span::raw(format!(" p̄={mean:.2} right {right}/{n}")),
                     ])
                 }
             })
             .collect();
+        lines.push(Line::from(format!(
+            "peak response {:.0} ms after onset (preferred stimulus) · {}",
+            st.latency_ms,
+            if st.verdict.is_empty() { "–" } else { &st.verdict }
+        )));
         f.render_widget(
             Paragraph::new(lines).block(
                 Block::default()
                     .borders(Borders::ALL)
-                    .title(format!("unit {unit}: posterior of the presented stimulus")),
+                    .title(format!(
+                        "unit {unit}: tuning (mean count, 95%) and posterior of the presented stimulus"
+                    )),
             ),
             area,
         );
@@ -541,7 +594,8 @@ pub fn json_line(topic: &str, m: &v1::Outbound) -> String {
         }
         Some(outbound::Body::Units(u)) => {
             json!({"trial": u.trial, "presented": u.presented, "labelled_trials": u.labelled_trials,
-            "units": u.units.iter().map(|l| json!({"unit": l.unit, "presented_posterior": l.presented_posterior, "decoded": l.decoded, "accuracy": l.accuracy, "info_bits": l.info_bits})).collect::<Vec<_>>()})
+            "units": u.units.iter().map(|l| json!({"unit": l.unit, "presented_posterior": l.presented_posterior, "decoded": l.decoded, "accuracy": l.accuracy, "accuracy_low": l.accuracy_low, "accuracy_high": l.accuracy_high, "info_bits": l.info_bits, "info_se_bits": l.info_se_bits, "p_value": l.p_value, "verdict": l.verdict, "settled": l.settled, "latency_ms": l.latency_ms, "trials": l.trials,
+                "tuning": l.tuning.iter().map(|t| json!({"trials": t.trials, "mean_count": t.mean_count, "low": t.low, "high": t.high})).collect::<Vec<_>>()})).collect::<Vec<_>>()})
         }
         Some(outbound::Body::Health(h)) => {
             json!({"spikes_per_s": h.spikes_per_s, "frames_per_s": h.frames_per_s, "late_spikes": h.late_spikes, "malformed": h.malformed_messages, "sequence_gaps": h.sequence_gaps, "dropped_posterior": h.dropped_posterior, "update_p50_us": h.update_p50_us, "update_p99_us": h.update_p99_us})

@@ -11,7 +11,10 @@ use crate::fitting::fit_cells;
 use crate::offline::DecisionRow;
 use crate::wire::RecordedSession;
 use anyhow::Context;
-use auspex_engine::engine::{Decision, Engine, EngineConfig, EngineSink, Frame, TrialEnd};
+use auspex_engine::assess::{assess, Assessment, VerdictRule};
+use auspex_engine::engine::{
+    Decision, Engine, EngineConfig, EngineSink, Frame, TrialEnd, UnitSummaries,
+};
 use auspex_engine::learn::{LearnOptions, Learner, TrialWindow, WindowCollector};
 use auspex_engine::{CountFamily, Model};
 use auspex_proto::stream::{apply_body, remember_onset, TrialStimuli};
@@ -40,6 +43,8 @@ pub struct PrequentialRun {
     pub trials_learned: u64,
     /// Whether the swap points came from the recording (true) or the schedule.
     pub recorded_swaps: bool,
+    /// The per-unit assessments after the last labelled trial (as the daemon publishes them).
+    pub units: Vec<(u32, Assessment)>,
 }
 
 /// Writes posterior rows with each trial's own stimulus names and collects decisions.
@@ -52,6 +57,7 @@ pub struct PrequentialSink<'a, W: Write> {
     error: Option<std::io::Error>,
     /// Every frame as (trial, bin, posterior), when asked for (tests).
     pub frames: Option<Vec<(u64, u32, Vec<f64>)>>,
+    units: Option<Vec<(u32, Assessment)>>,
 }
 
 impl<W: Write> EngineSink for PrequentialSink<'_, W> {
@@ -86,6 +92,15 @@ impl<W: Write> EngineSink for PrequentialSink<'_, W> {
         });
     }
     fn trial_end(&mut self, _e: &TrialEnd<'_>) {}
+    fn unit_summaries(&mut self, s: &UnitSummaries<'_>) {
+        let rule = VerdictRule::default();
+        let ns = s.model.n_stimuli();
+        self.units = Some(
+            (0..s.units.len())
+                .map(|i| (s.units[i], assess(s.tally.confusion(i), ns, &rule)))
+                .collect(),
+        );
+    }
 }
 
 /// The learner's settings recorded in the first marker of a recording, if any.
@@ -177,6 +192,7 @@ impl<W: Write> Run<'_, W> {
             decided_names: Vec::new(),
             error: None,
             frames: self.frames.take(),
+            units: None,
         };
         let _ = apply_body(
             self.engine.as_mut(),
@@ -192,8 +208,12 @@ impl<W: Write> Run<'_, W> {
             decided_names,
             error,
             frames,
+            units,
             ..
         } = sink;
+        if let Some(u) = units {
+            self.result.units = u;
+        }
         self.frames = frames;
         self.result.decisions.extend(decisions);
         self.decided_names.extend(decided_names);

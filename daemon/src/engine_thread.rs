@@ -20,6 +20,7 @@ use auspex_engine::engine::{
     Counters, Decision, DecisionReason, Engine, EngineConfig, EngineError, EngineSink, Frame,
     TrialEnd, TrialOutcome, UnitSummaries,
 };
+use auspex_engine::assess::{assess, peak_ms, tuning, VerdictRule};
 use auspex_engine::learn::{LearnOptions, TrialWindow, WindowCollector};
 use auspex_engine::Model;
 use auspex_proto::topic;
@@ -238,13 +239,43 @@ impl EngineSink for PubSink<'_> {
                 }
             }
         }
+        let ns = s.model.n_stimuli();
+        let rule = VerdictRule::default();
         let units = (0..s.units.len())
-            .map(|i| v1::UnitLine {
-                unit: s.units[i],
-                presented_posterior: s.presented_posterior[i],
-                decoded: s.decoded[i],
-                accuracy: s.accuracy[i],
-                info_bits: s.info_bits[i],
+            .map(|i| {
+                let a = assess(s.tally.confusion(i), ns, &rule);
+                let sums = s.tally.count_sums(i);
+                let tuning: Vec<v1::StimulusTuning> = sums
+                    .iter()
+                    .map(|&(n, sum, sq)| {
+                        let t = tuning(n, sum, sq);
+                        v1::StimulusTuning {
+                            trials: t.trials,
+                            mean_count: t.mean,
+                            low: t.low,
+                            high: t.high,
+                        }
+                    })
+                    .collect();
+                let preferred = (0..ns)
+                    .max_by(|&x, &y| s.model.count(i, x).mean().total_cmp(&s.model.count(i, y).mean()))
+                    .unwrap_or(0);
+                v1::UnitLine {
+                    unit: s.units[i],
+                    presented_posterior: s.presented_posterior[i],
+                    decoded: s.decoded[i],
+                    accuracy: s.accuracy[i],
+                    info_bits: s.info_bits[i],
+                    trials: a.trials,
+                    accuracy_low: a.accuracy_low,
+                    accuracy_high: a.accuracy_high,
+                    info_se_bits: a.info_se_bits,
+                    p_value: a.p_value,
+                    verdict: a.verdict.words().into(),
+                    settled: a.settled,
+                    latency_ms: peak_ms(s.model.timing(i, preferred), s.model.bin_width_s()),
+                    tuning,
+                }
             })
             .collect();
         let body = outbound::Body::Units(v1::UnitReport {

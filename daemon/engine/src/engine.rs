@@ -299,6 +299,10 @@ pub struct UnitSummaries<'a> {
     pub info_bits: &'a [f64],
     /// Labelled trials so far.
     pub n_trials: u64,
+    /// The running tally (confusion matrices and count sums per unit, in `units` order).
+    pub tally: &'a UnitTally,
+    /// The trial's model (densities for response latencies).
+    pub model: &'a Model,
 }
 
 /// Receives the engine's outputs. Borrowed data is valid only during the call.
@@ -922,6 +926,7 @@ impl Engine {
             self.us_decoded[u] = best;
             if same {
                 self.tally.record(u, presented, best);
+                self.tally.record_count(u, presented, t.k[u]);
             }
         }
         if !same {
@@ -941,6 +946,8 @@ impl Engine {
             accuracy: &self.us_acc,
             info_bits: &self.us_info,
             n_trials: self.tally.n_trials(),
+            tally: &self.tally,
+            model: m,
         });
     }
 }

@@ -10,6 +10,7 @@
 //! inputs give bit-identical outputs everywhere.
 #![deny(missing_docs)]
 
+pub mod assess;
 pub mod count;
 pub mod data;
 pub mod density;

@@ -30,6 +30,8 @@ pub struct UnitTally {
     nonzero: Vec<[u32; 3]>,
     correct: Vec<u64>,
     n_trials: u64,
+    /// Per (unit, presented stimulus): labelled trials, Σ window count, Σ count².
+    count_sums: Vec<(u64, f64, f64)>,
 }
 
 impl UnitTally {
@@ -45,6 +47,7 @@ impl UnitTally {
             nonzero: vec![[0; 3]; units.len()],
             correct: vec![0; units.len()],
             n_trials: 0,
+            count_sums: vec![(0, 0.0, 0.0); units.len() * n_stim],
         }
     }
     /// Unit ids.
@@ -75,6 +78,19 @@ impl UnitTally {
         if presented == decoded {
             self.correct[u] += 1;
         }
+    }
+    /// Records unit index `u`'s window count in a trial with `presented` (its tuning).
+    pub fn record_count(&mut self, u: usize, presented: u32, count: u32) {
+        if let Some(c) = self.count_sums.get_mut(u * self.n_stim + presented as usize) {
+            let k = count as f64;
+            c.0 += 1;
+            c.1 += k;
+            c.2 += k * k;
+        }
+    }
+    /// Unit index `u`'s count sums per presented stimulus: (trials, Σ count, Σ count²).
+    pub fn count_sums(&self, u: usize) -> &[(u64, f64, f64)] {
+        &self.count_sums[u * self.n_stim..(u + 1) * self.n_stim]
     }
     /// Marks the end of one labelled trial (after every unit was recorded).
     pub fn end_trial(&mut self) {
