@@ -93,13 +93,41 @@ pub fn fit_cmd(
     prior_from_frequencies: bool,
     quiet: bool,
 ) -> anyhow::Result<Model> {
+    fit_cmd_with(
+        source,
+        out,
+        window_ms,
+        bin_ms,
+        families,
+        prior_from_frequencies,
+        true,
+        quiet,
+    )
+}
+
+/// `fit`, choosing whether few-trial cells are shrunk toward their unit's pooled data.
+#[allow(clippy::too_many_arguments)]
+pub fn fit_cmd_with(
+    source: &Source,
+    out: &Path,
+    window_ms: f64,
+    bin_ms: f64,
+    families: &str,
+    prior_from_frequencies: bool,
+    shrink: bool,
+    quiet: bool,
+) -> anyhow::Result<Model> {
     let opts = FitOptions {
         bin_width_s: bin_ms / 1000.0,
         window_s: window_ms / 1000.0,
         families: parse_families(families)?,
         prior_from_frequencies,
         bandwidth: Default::default(),
-        shrinkage: Default::default(),
+        shrinkage: if shrink {
+            auspex_engine::fit::Shrinkage::EmpiricalBayes
+        } else {
+            auspex_engine::fit::Shrinkage::Off
+        },
     };
     let (data, report) = source.load(opts.window_s)?;
     eprintln!("{report}");

@@ -129,6 +129,9 @@ enum Cmd {
         /// Prior from the stimuli's training frequencies instead of equal
         #[arg(long)]
         prior_from_frequencies: bool,
+        /// Fit every cell from its own trials alone (no empirical Bayes shrinkage toward the unit's pooled data)
+        #[arg(long)]
+        no_shrink: bool,
         /// Do not print the per-cell table
         #[arg(long)]
         quiet: bool,
@@ -395,14 +398,16 @@ fn main() {
             bin_ms,
             families,
             prior_from_frequencies,
+            no_shrink,
             quiet,
-        } => commands::fit_cmd(
+        } => commands::fit_cmd_with(
             &tables.source(),
             &out,
             window_ms,
             bin_ms,
             &families,
             prior_from_frequencies,
+            !no_shrink,
             quiet,
         )
         .map(|_| ()),
