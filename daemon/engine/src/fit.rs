@@ -400,3 +400,106 @@ impl FitPlan {
         self.assemble(cells)
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::count::CountParams;
+    use rand::{Rng, SeedableRng};
+
+    fn cell(counts: &[u32]) -> CellInput {
+        CellInput {
+            counts: counts.to_vec(),
+            times: counts.iter().map(|&k| vec![1.5; k as usize]).collect(),
+        }
+    }
+
+    fn poisson_mean(c: &CellSpec) -> f64 {
+        match c.count {
+            CountParams::Poisson { mean } => mean,
+            ref p => panic!("not Poisson: {p:?}"),
+        }
+    }
+
+    #[test]
+    fn shrinkage_follows_the_hand_computed_rule() {
+        // Counts A = 1, 2, 3 (mean 2, variance 1) and B = 5, 6, 7 (mean 6, variance 1):
+        // pooled mean m = 4, within variance σ² = 1, between = ((2−4)² + (6−4)²)/2 = 4,
+        // sampling noise = (1/3 + 1/3)/2 = 1/3, τ² = 11/3, κ = σ²/τ² = 3/11,
+        // w = κ/(κ + 3) = 1/12: A → (11/12)·2 + 4/12 = 2.1667, B → (11/12)·6 + 4/12 = 5.8333.
+        let inputs = [cell(&[1, 2, 3]), cell(&[5, 6, 7])];
+        let mut cells: Vec<CellSpec> = inputs
+            .iter()
+            .map(|c| fit_cell(c, 4, 0.001, &[CountFamily::Poisson], BandwidthRule::default()))
+            .collect();
+        let refs: Vec<&CellInput> = inputs.iter().collect();
+        let kappa = shrink_unit(&refs, &mut cells);
+        assert!((kappa - 3.0 / 11.0).abs() < 1e-12);
+        assert!((poisson_mean(&cells[0]) - (11.0 / 12.0 * 2.0 + 4.0 / 12.0)).abs() < 1e-12);
+        assert!((poisson_mean(&cells[1]) - (11.0 / 12.0 * 6.0 + 4.0 / 12.0)).abs() < 1e-12);
+        // Densities stay probability vectors.
+        for c in &cells {
+            assert!((c.timing.iter().sum::<f64>() - 1.0).abs() < 1e-12);
+            assert!(c.timing.iter().all(|&q| q > 0.0));
+        }
+    }
+
+    #[test]
+    fn shrinkage_vanishes_with_many_trials_and_helps_with_few() {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(3);
+        let poisson = |rng: &mut rand_chacha::ChaCha8Rng, mu: f64| -> u32 {
+            // Knuth's multiplication method (small means).
+            let l = (-mu).exp();
+            let (mut k, mut p) = (0u32, 1.0f64);
+            loop {
+                p *= rng.gen::<f64>();
+                if p <= l {
+                    return k;
+                }
+                k += 1;
+            }
+        };
+        let truth = [1.0, 1.5, 2.0, 2.5, 3.0, 3.5];
+        let (mut err_raw, mut err_shrunk) = (0.0, 0.0);
+        for _ in 0..300 {
+            let inputs: Vec<CellInput> = truth
+                .iter()
+                .map(|&mu| cell(&(0..3).map(|_| poisson(&mut rng, mu)).collect::<Vec<_>>()))
+                .collect();
+            let raw: Vec<CellSpec> = inputs
+                .iter()
+                .map(|c| fit_cell(c, 4, 0.001, &[CountFamily::Poisson], BandwidthRule::default()))
+                .collect();
+            let mut shrunk = raw.clone();
+            let refs: Vec<&CellInput> = inputs.iter().collect();
+            shrink_unit(&refs, &mut shrunk);
+            for (s, &mu) in truth.iter().enumerate() {
+                err_raw += (poisson_mean(&raw[s]) - mu).powi(2);
+                err_shrunk += (poisson_mean(&shrunk[s]) - mu).powi(2);
+            }
+        }
+        assert!(
+            err_shrunk < 0.9 * err_raw,
+            "3 trials per cell: squared error {err_shrunk:.1} shrunk vs {err_raw:.1} raw"
+        );
+        // 400 trials per cell: each mean moves less than 1% of the way to the pooled mean.
+        let inputs: Vec<CellInput> = truth
+            .iter()
+            .map(|&mu| cell(&(0..400).map(|_| poisson(&mut rng, mu)).collect::<Vec<_>>()))
+            .collect();
+        let raw: Vec<CellSpec> = inputs
+            .iter()
+            .map(|c| fit_cell(c, 4, 0.001, &[CountFamily::Poisson], BandwidthRule::default()))
+            .collect();
+        let mut shrunk = raw.clone();
+        let refs: Vec<&CellInput> = inputs.iter().collect();
+        shrink_unit(&refs, &mut shrunk);
+        let all: Vec<u32> = inputs.iter().flat_map(|c| c.counts.clone()).collect();
+        let m = all.iter().map(|&x| x as f64).sum::<f64>() / all.len() as f64;
+        for s in 0..truth.len() {
+            let (a, b) = (poisson_mean(&raw[s]), poisson_mean(&shrunk[s]));
+            let w = (b - a) / (m - a);
+            assert!((0.0..0.01).contains(&w), "{a} → {b}: weight {w}");
+        }
+    }
+}
