@@ -402,6 +402,69 @@ fn tradeoff_plot(v: &Validation) -> String {
     p.finish()
 }
 
+fn learning_plots(v: &Validation) -> String {
+    let lc = &v.learning_curve;
+    let xmax = lc.last().map(|p| p.trials_per_stimulus as f64).unwrap_or(1.0);
+    let xs: Vec<f64> = lc.iter().map(|p| p.trials_per_stimulus as f64).collect();
+    let mut a = Plot::new(460.0, 300.0, (0.0, xmax), (0.0, 1.0));
+    a.axes(
+        "Held-out accuracy at the window end (95% interval)",
+        "training trials per stimulus",
+        "accuracy",
+    );
+    let lo: Vec<f64> = lc.iter().map(|p| p.lo).collect();
+    let hi: Vec<f64> = lc.iter().map(|p| p.hi).collect();
+    a.band(&xs, &lo, &hi, DECODER_COLOURS[0]);
+    let pts: Vec<(f64, f64)> = lc
+        .iter()
+        .map(|p| (p.trials_per_stimulus as f64, p.accuracy))
+        .collect();
+    a.line(&pts, DECODER_COLOURS[0], 2.0, false);
+    for p in lc {
+        a.dot(
+            p.trials_per_stimulus as f64,
+            p.accuracy,
+            3.0,
+            DECODER_COLOURS[0],
+            &format!(
+                "{} trials per stimulus: {:.1}% [{:.1}, {:.1}]",
+                p.trials_per_stimulus,
+                100.0 * p.accuracy,
+                100.0 * p.lo,
+                100.0 * p.hi
+            ),
+        );
+    }
+    a.line(&[(0.0, v.chance), (xmax, v.chance)], "#555", 1.2, true);
+    a.text(xmax * 0.02, v.chance + 0.02, "chance", "#555");
+    let top = lc
+        .iter()
+        .map(|p| p.info_bits + 1.96 * p.info_se_bits)
+        .fold((v.stimuli.len() as f64).log2() * 0.25, f64::max)
+        * 1.1;
+    let mut b = Plot::new(460.0, 300.0, (0.0, xmax), (0.0, top));
+    b.axes(
+        "Held-out information (± 1.96 s.e.)",
+        "training trials per stimulus",
+        "bits",
+    );
+    let lo: Vec<f64> = lc
+        .iter()
+        .map(|p| (p.info_bits - 1.96 * p.info_se_bits).max(0.0))
+        .collect();
+    let hi: Vec<f64> = lc
+        .iter()
+        .map(|p| p.info_bits + 1.96 * p.info_se_bits)
+        .collect();
+    b.band(&xs, &lo, &hi, DECODER_COLOURS[0]);
+    let pts: Vec<(f64, f64)> = lc
+        .iter()
+        .map(|p| (p.trials_per_stimulus as f64, p.info_bits))
+        .collect();
+    b.line(&pts, DECODER_COLOURS[0], 2.0, false);
+    a.finish() + &b.finish()
+}
+
 fn decision_time_plot(v: &Validation) -> String {
     let d = &v.decoders[0];
     let (edges, h) = histogram(&d.decision_times_ms, 0.0, v.window_ms, 50);
@@ -840,6 +903,25 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
         i.bits,
     );
     s += &units_plot(v);
+    if !v.learning_curve.is_empty() {
+        s += "</div><h2>How many trials: the learning curve</h2><p class=sub>The same folds, with each fold's training trials cut to n per stimulus (a seeded random subset), the model fitted on them as <code>auspex fit</code> fits and the fold's untouched held-out trials decoded at the window end (order statistics, all units). Bands: 95% Clopper–Pearson interval of accuracy; ±1.96 standard errors of the information. It answers how many trials per stimulus a session of this kind needs.</p><div class=row>";
+        s += &learning_plots(v);
+        s += "<table><tr><th>trials per stimulus</th><th>held-out trials</th><th>accuracy [95%]</th><th>information (bits) ± s.e.</th></tr>";
+        for p in &v.learning_curve {
+            let _ = write!(
+                s,
+                "<tr><td>{}</td><td>{}</td><td>{:.1}% [{:.1}, {:.1}]</td><td>{:.3} ± {:.3}</td></tr>",
+                p.trials_per_stimulus,
+                p.held_out,
+                100.0 * p.accuracy,
+                100.0 * p.lo,
+                100.0 * p.hi,
+                p.info_bits,
+                p.info_se_bits
+            );
+        }
+        s += "</table>";
+    }
     s += "</div><h2>Units</h2><p class=sub>Ranked by single-unit information (window-end decoding of held-out trials with that unit alone). Open a unit for its raster, PSTH with the fitted density, count distributions, KS plot and per-stimulus table.</p>";
     s += "<table><tr><th>rank</th><th>unit</th><th>accuracy</th><th>information (bits)</th><th>null 95%</th><th>p</th><th>families</th><th>fit flags</th></tr>";
     for (r, u) in v.units_ranked.iter().enumerate() {

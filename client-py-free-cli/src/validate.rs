@@ -63,6 +63,25 @@ pub const THRESHOLDS: [f64; 8] = [0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 0.99, 0.999];
 /// Consecutive bins the lower 95% bound must stay above chance for "reliably above chance".
 pub const RELIABLE_RUN_BINS: usize = 10;
 
+/// One point of the learning curve.
+#[derive(Clone, Debug, Serialize)]
+pub struct LearningPoint {
+    /// Training trials of each stimulus in each fold.
+    pub trials_per_stimulus: usize,
+    /// Held-out trials decoded (all folds).
+    pub held_out: u64,
+    /// Window-end accuracy (order statistics, population).
+    pub accuracy: f64,
+    /// 95% Clopper–Pearson interval.
+    pub lo: f64,
+    /// 95% Clopper–Pearson interval.
+    pub hi: f64,
+    /// Bias-corrected information, bits.
+    pub info_bits: f64,
+    /// Its standard error, bits.
+    pub info_se_bits: f64,
+}
+
 /// Accuracy at one time.
 #[derive(Clone, Debug, Serialize)]
 pub struct CurvePoint {
@@ -225,6 +244,9 @@ pub struct Validation {
     /// Whether the closed-form window-end decoding used by the shuffle null gives exactly the
     /// engine's window-end decisions (it must; false would mean the null is not comparable).
     pub closed_form_agrees: bool,
+    /// Held-out accuracy and information at the window end against training trials per stimulus
+    /// (same folds, training trials subsampled per stimulus).
+    pub learning_curve: Vec<LearningPoint>,
     /// Seconds the run took.
     pub seconds: f64,
 }
@@ -612,6 +634,10 @@ pub fn validate(
         eprintln!("warning: closed-form window-end decoding differs from the engine's; the shuffle null may not be comparable");
     }
 
+    // Learning curve: the same folds with training subsampled to n trials per stimulus.
+    bar.set_message("learning curve");
+    let learning_curve = learning_curve(&data, &labels, &fold_of, k, &stimuli, &bins, opts)?;
+
     // Units: accuracy, information and its null; cells: count variability, family, fit.
     let full_cells = crate::fitting::fit_cells(&full_plan, false);
     let full_model = Arc::new(Model::new(full_plan.assemble(full_cells))?);
@@ -686,6 +712,7 @@ pub fn validate(
             failed,
         },
         closed_form_agrees,
+        learning_curve,
         seconds: t0.elapsed().as_secs_f64(),
     };
     Ok((
@@ -698,6 +725,75 @@ pub fn validate(
             rescaled,
         },
     ))
+}
+
+/// Training sizes (trials per stimulus) the learning curve tries, up to what the folds hold.
+const LEARNING_SIZES: [usize; 12] = [2, 3, 5, 8, 12, 20, 30, 50, 80, 120, 200, 300];
+
+/// Held-out window-end accuracy and information against training trials per stimulus: each
+/// fold's training trials are shuffled (seeded) within each stimulus and the first n kept; the
+/// model is fitted on them as `auspex fit` would and decodes the fold's untouched test trials.
+fn learning_curve(
+    data: &Dataset,
+    labels: &[usize],
+    fold_of: &[usize],
+    k: usize,
+    stimuli: &[String],
+    bins: &[Vec<Vec<u32>>],
+    opts: &ValidateOptions,
+) -> anyhow::Result<Vec<LearningPoint>> {
+    let (ns, nu, nt) = (stimuli.len(), data.units.len(), labels.len());
+    let mut rng = ChaCha8Rng::seed_from_u64(opts.seed ^ 0x1ea2);
+    // Per fold, per stimulus: training trials in a seeded random order.
+    let orders: Vec<Vec<Vec<usize>>> = (0..k)
+        .map(|f| {
+            (0..ns)
+                .map(|s| {
+                    let mut v: Vec<usize> = (0..nt)
+                        .filter(|&i| fold_of[i] != f && labels[i] == s)
+                        .collect();
+                    v.shuffle(&mut rng);
+                    v
+                })
+                .collect()
+        })
+        .collect();
+    let most = orders
+        .iter()
+        .flat_map(|f| f.iter().map(|v| v.len()))
+        .min()
+        .unwrap_or(0);
+    let mut sizes: Vec<usize> = LEARNING_SIZES.iter().copied().filter(|&n| n < most).collect();
+    if most >= 2 {
+        sizes.push(most);
+    }
+    let mut out = Vec::new();
+    for n in sizes {
+        let mut pop = vec![0u64; ns * ns];
+        let mut units = vec![vec![0u64; ns * ns]; nu];
+        for (f, order) in orders.iter().enumerate() {
+            let mut train: Vec<usize> = order.iter().flat_map(|v| v[..n].iter().copied()).collect();
+            train.sort_unstable();
+            let test: Vec<usize> = (0..nt).filter(|&i| fold_of[i] == f).collect();
+            let p = reorder(plan(&subset(data, &train, None), &opts.fit)?, stimuli)?;
+            let cells = crate::fitting::fit_cells(&p, false);
+            let model = Model::new(p.assemble(cells))?;
+            window_end_confusions(&model, bins, labels, &test, &mut pop, &mut units);
+        }
+        let a = auspex_engine::assess::assess(&pop, ns, &Default::default());
+        let correct: u64 = (0..ns).map(|s| pop[s * ns + s]).sum();
+        let (lo, hi) = clopper_pearson(correct, a.trials, 0.05);
+        out.push(LearningPoint {
+            trials_per_stimulus: n,
+            held_out: a.trials,
+            accuracy: a.accuracy,
+            lo,
+            hi,
+            info_bits: a.info_bits,
+            info_se_bits: a.info_se_bits,
+        });
+    }
+    Ok(out)
 }
 
 type Nulls = (Vec<f64>, Vec<Vec<f64>>);
@@ -833,6 +929,18 @@ pub fn summary_table(v: &Validation) -> String {
             100.0 * d.decision.accuracy,
             d.decision.mean_time_ms,
             d.info_bits
+        );
+    }
+    if !v.learning_curve.is_empty() {
+        let pts: Vec<String> = v
+            .learning_curve
+            .iter()
+            .map(|p| format!("{}: {:.0}%", p.trials_per_stimulus, 100.0 * p.accuracy))
+            .collect();
+        let _ = writeln!(
+            s,
+            "learning curve (training trials per stimulus: held-out window-end accuracy): {}",
+            pts.join(" · ")
         );
     }
     let i = &v.information;

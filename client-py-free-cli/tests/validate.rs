@@ -74,6 +74,16 @@ fn timing_beats_count_only_and_information_is_significant() {
             .iter()
             .all(|c| c.lo <= c.accuracy && c.accuracy <= c.hi));
     }
+    // Learning curve: sizes up to what the training folds hold (16 per stimulus here), and more
+    // training trials decode better (first vs last point, intervals apart).
+    let lc = &v.learning_curve;
+    assert_eq!(lc.first().unwrap().trials_per_stimulus, 2);
+    assert_eq!(lc.last().unwrap().trials_per_stimulus, 16);
+    assert!(lc.iter().all(|p| p.held_out == 80 && p.lo <= p.accuracy && p.accuracy <= p.hi));
+    assert!(
+        lc.last().unwrap().lo > lc.first().unwrap().hi,
+        "learning curve {lc:?}"
+    );
     // JSON round trip holds the same figures.
     let j: serde_json::Value = serde_json::from_str(&serde_json::to_string(&v).unwrap()).unwrap();
     assert_eq!(
