@@ -316,7 +316,7 @@ fn pct(sorted: &[f64], p: f64) -> f64 {
 /// (1-based) possibly a trial onset (trials back to back: 250 ms window, 50 ms gap) and the
 /// spike batch with watermark `i·1000 − 1`, marked `Some(i)` so the sender can time it. About
 /// 16 spikes/s per unit, deterministic.
-pub fn latency_messages(nu: usize, n_batches: usize) -> Vec<(Option<usize>, Vec<u8>)> {
+pub fn latency_messages(nu: usize, ns: usize, n_batches: usize) -> Vec<(Option<usize>, Vec<u8>)> {
     let mut out = Vec::with_capacity(n_batches + n_batches / 300 + 2);
     let mut seq = 0u64;
     let mut enc = |body: Body| {
@@ -348,7 +348,8 @@ pub fn latency_messages(nu: usize, n_batches: usize) -> Vec<(Option<usize>, Vec<
                 enc(Body::Onset(v1::TrialOnset {
                     trial,
                     onset_tick: (ms - 1) * 1000,
-                    stimulus: "s0".into(),
+                    // Stimuli in turn, so a learning daemon has every stimulus to refit on.
+                    stimulus: format!("s{}", (trial - 1) % ns as u64),
                 })),
             ));
         }
@@ -396,12 +397,15 @@ pub fn summarise(transport: &str, mut lat: Vec<f64>, batches: usize) -> Latency 
 
 /// Starts a daemon in this process on loopback (`tcp` on free ports, or `ipc` sockets in
 /// `dir`) with the synthetic model of `nu` units × `ns` stimuli, a 1 MHz clock and no task
-/// endpoint: the set-up of every latency run, whichever library the peer uses.
+/// endpoint: the set-up of every latency run, whichever library the peer uses. With `learning`
+/// the daemon also learns from the labelled trials and refits after every one of them (the
+/// heaviest refit load), swapping each learned model in as it comes.
 pub async fn start_daemon(
     nu: usize,
     ns: usize,
     transport: &str,
     dir: &std::path::Path,
+    learning: bool,
 ) -> anyhow::Result<auspexd::service::Running> {
     let model_path = dir.join(format!("bench-{nu}x{ns}.apxm"));
     auspexd::model_file::save_model(&model_path, synthetic_model(nu, ns).spec(), "auspex bench")?;
@@ -416,6 +420,8 @@ pub async fn start_daemon(
         publish: Some(ep("publish")),
         control: Some(ep("control")),
         tick_rate_hz: Some(1e6),
+        learn: Some(learning),
+        refit_every_trials: Some(1),
         ..Default::default()
     };
     let cfg = auspexd::config::validate(fc, &mut Vec::new()).map_err(|e| anyhow::anyhow!(e))?;
@@ -432,8 +438,9 @@ pub async fn latency(
     seconds: f64,
     transport: &str,
     dir: &std::path::Path,
+    learning: bool,
 ) -> anyhow::Result<Latency> {
-    let running = start_daemon(nu, ns, transport, dir).await?;
+    let running = start_daemon(nu, ns, transport, dir, learning).await?;
     let eps = running.endpoints.clone();
     let mut sub = zeromq::SubSocket::new();
     sub.connect(&eps.publish).await?;
@@ -472,7 +479,7 @@ pub async fn latency(
     });
 
     let t0 = tokio::time::Instant::now();
-    for (batch, bytes) in latency_messages(nu, n_batches) {
+    for (batch, bytes) in latency_messages(nu, ns, n_batches) {
         if let Some(i) = batch {
             tokio::time::sleep_until(t0 + Duration::from_micros(i as u64 * 1000)).await;
             if let Ok(mut v) = sent.lock() {
@@ -482,8 +489,23 @@ pub async fn latency(
         push.send(ZmqMessage::from(Bytes::from(bytes))).await?;
     }
     let lat = receiver.await?;
+    let refits = if learning {
+        crate::live::status(&eps.control)
+            .await
+            .ok()
+            .and_then(|s| s.learning)
+            .map(|l| l.refits)
+            .unwrap_or(0)
+    } else {
+        0
+    };
     running.stop().await;
-    Ok(summarise(transport, lat, n_batches))
+    let name = if learning {
+        format!("{transport}, learning ({refits} refits swapped in)")
+    } else {
+        transport.to_string()
+    };
+    Ok(summarise(&name, lat, n_batches))
 }
 
 /// The size ladder the self-test climbs.
@@ -512,6 +534,8 @@ pub struct Options {
     pub latency: bool,
     /// Memory for looked-up COM-Poisson/empirical terms, bytes (as the daemon's setting).
     pub table_bytes: usize,
+    /// Latency over TCP with learning off and on (refit after every trial), side by side.
+    pub learning: bool,
 }
 
 /// Everything `auspex bench` measured.
@@ -543,7 +567,9 @@ pub async fn run(opts: &Options) -> anyhow::Result<Report> {
         }
         None => report.engine = ladder().await?,
     }
-    if opts.latency {
+    if opts.learning {
+        report.latency = learning_latencies(opts.latency_seconds, opts.latency_size).await?;
+    } else if opts.latency {
         report.latency = latencies(opts.latency_seconds, opts.latency_size).await?;
     }
     eprintln!("bench finished in {:.1} s", t0.elapsed().as_secs_f64());
@@ -590,12 +616,41 @@ async fn latencies(seconds: f64, size: (usize, usize)) -> anyhow::Result<Vec<Lat
             "latency over {transport} loopback: {} units × {} stimuli, 1 kHz batches for {seconds} s …",
             size.0, size.1
         );
-        let l = latency(size.0, size.1, seconds, transport, dir.path()).await?;
+        let l = latency(size.0, size.1, seconds, transport, dir.path(), false).await?;
         println!(
             "batch → posterior frame over {}: p50 {:.0} µs, p99 {:.0} µs, p99.9 {:.0} µs, worst {:.0} µs ({} frames)",
             l.transport, l.p50_us, l.p99_us, l.p999_us, l.max_us, l.frames
         );
         lats.push(l);
+    }
+    Ok(lats)
+}
+
+/// Batch → posterior latency over TCP without and with learning (a refit after every labelled
+/// trial, each swapped in at the next trial boundary), in one run.
+async fn learning_latencies(seconds: f64, size: (usize, usize)) -> anyhow::Result<Vec<Latency>> {
+    let dir = tempfile::tempdir()?;
+    let mut lats = Vec::new();
+    for learning in [false, true] {
+        eprintln!(
+            "latency over tcp loopback, learning {}: {} units × {} stimuli, 1 kHz batches for {seconds} s …",
+            if learning { "on (refit after every trial)" } else { "off" },
+            size.0,
+            size.1
+        );
+        let l = latency(size.0, size.1, seconds, "tcp", dir.path(), learning).await?;
+        println!(
+            "batch → posterior frame over {}: p50 {:.0} µs, p99 {:.0} µs, p99.9 {:.0} µs, worst {:.0} µs ({} frames)",
+            l.transport, l.p50_us, l.p99_us, l.p999_us, l.max_us, l.frames
+        );
+        lats.push(l);
+    }
+    if let [off, on] = &lats[..] {
+        println!(
+            "→ p99 with refits / without: {:.2} (p50 {:.2})",
+            on.p99_us / off.p99_us,
+            on.p50_us / off.p50_us
+        );
     }
     Ok(lats)
 }

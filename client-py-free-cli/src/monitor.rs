@@ -674,6 +674,8 @@ mod tests {
                         decoded: 0,
                         accuracy: 0.8,
                         info_bits: 0.5,
+                        verdict: "encodes".into(),
+                        ..Default::default()
                     },
                     v1::UnitLine {
                         unit: 102,
@@ -681,6 +683,7 @@ mod tests {
                         decoded: 1,
                         accuracy: 0.4,
                         info_bits: 0.05,
+                        ..Default::default()
                     },
                 ],
             }),

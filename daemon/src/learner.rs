@@ -123,6 +123,23 @@ struct State {
     last_fit: Instant,
 }
 
+/// Lowers this thread's scheduling priority (nice 10), so on a busy machine the engine thread
+/// and the socket thread win the cores and a refit only takes what they leave.
+fn lower_priority() {
+    #[cfg(target_os = "linux")]
+    {
+        // SAFETY: gettid and setpriority take plain integers and touch no memory of ours; on
+        // Linux a thread id names this thread alone, so only the learner's priority changes.
+        let r = unsafe {
+            let tid = libc::syscall(libc::SYS_gettid) as libc::id_t;
+            libc::setpriority(libc::PRIO_PROCESS, tid, 10)
+        };
+        if r != 0 {
+            tracing::debug!("could not lower the learner thread's priority");
+        }
+    }
+}
+
 fn run(
     opts: LearnOptions,
     cadence: Cadence,
@@ -130,6 +147,7 @@ fn run(
     rx: Receiver<LearnMsg>,
     engine: Sender<EngineInput>,
 ) {
+    lower_priority();
     let mut st = State {
         learner: None,
         epoch: 0,

@@ -14,7 +14,7 @@ fn main() -> anyhow::Result<()> {
     let transport = args.get(4).cloned().unwrap_or_else(|| "tcp".into());
     let dir = tempfile::tempdir()?;
     let rt = auspexd::service::io_runtime()?;
-    let running = rt.block_on(auspex::bench::start_daemon(nu, ns, &transport, dir.path()))?;
+    let running = rt.block_on(auspex::bench::start_daemon(nu, ns, &transport, dir.path(), false))?;
     let eps = running.endpoints.clone();
     let ctx = zmq::Context::new();
     let sub = ctx.socket(zmq::SUB)?;
@@ -28,7 +28,7 @@ fn main() -> anyhow::Result<()> {
     std::thread::sleep(Duration::from_millis(300));
 
     let n = (seconds * 1000.0).round() as usize;
-    let msgs = auspex::bench::latency_messages(nu, n);
+    let msgs = auspex::bench::latency_messages(nu, ns, n);
     let t0 = Instant::now();
     let sender = std::thread::spawn(move || -> anyhow::Result<Vec<Option<Instant>>> {
         let mut sent = vec![None; n + 1];
