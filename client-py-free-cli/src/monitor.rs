@@ -274,6 +274,22 @@ impl MonitorState {
             ),
             Span::raw(format!("  decisions: {acc}")),
             Span::styled(
+                match &self.health {
+                    Some(h) if h.learning => format!(
+                        "   learning{}: {} labelled trials, {}",
+                        if h.learning_frozen { " (frozen)" } else { "" },
+                        h.trials_learned,
+                        if h.learned_model_trials > 0 {
+                            format!("model from {}", h.learned_model_trials)
+                        } else {
+                            "no model yet".into()
+                        }
+                    ),
+                    _ => String::new(),
+                },
+                Style::default().fg(Color::Cyan),
+            ),
+            Span::styled(
                 if self.paused { "   ‖ PAUSED" } else { "" },
                 Style::default().fg(Color::Red),
             ),
@@ -470,16 +486,14 @@ impl MonitorState {
             .map(|(i, (n, sp, right))| {
                 let tune = st.tuning.get(i).copied().unwrap_or_default();
                 let count = if tune.0 > 0 {
-                    format!(
-                        "count {:>5.2} [{:.2}–{:.2}] ",
-                        tune.1, tune.2, tune.3
-                    )
+                    format!("count {:.2} [{:.2}–{:.2}]", tune.1, tune.2, tune.3)
                 } else {
-                    "count   –              ".into()
+                    "count –".into()
                 };
+                let count = format!("{count:<25}");
                 let bar = "█".repeat(((tune.1 / max_mean) * 10.0).round() as usize);
                 if *n == 0 {
-                    Line::from(format!("{:>6}  {count} –", self.name(i as u32)))
+                    Line::from(format!("{:>6} {count}", self.name(i as u32)))
                 } else {
                     let mean = sp / *n as f64;
                     Line::from(vec![
@@ -490,18 +504,17 @@ impl MonitorState {
                 }
             })
             .collect();
-        lines.push(Line::from(format!(
-            "peak response {:.0} ms after onset (preferred stimulus) · {}",
-            st.latency_ms,
-            if st.verdict.is_empty() { "–" } else { &st.verdict }
-        )));
+        if st.latency_ms > 0.0 {
+            lines.push(Line::from(format!(
+                "peak response {:.0} ms after onset (preferred stimulus)",
+                st.latency_ms
+            )));
+        }
         f.render_widget(
             Paragraph::new(lines).block(
                 Block::default()
                     .borders(Borders::ALL)
-                    .title(format!(
-                        "unit {unit}: tuning (mean count, 95%) and posterior of the presented stimulus"
-                    )),
+                    .title(format!("unit {unit}: tuning and presented posterior")),
             ),
             area,
         );
@@ -734,14 +747,14 @@ mod tests {
         let i102 = screen.find("102").unwrap();
         assert!(i101 < i102);
         assert!(
-            screen.contains("unit 101: posterior of the presented stimulus"),
+            screen.contains("unit 101: tuning and presented posterior"),
             "{screen}"
         );
         st.next_sort();
         st.next_sort();
         assert_eq!(st.unit_rows()[0].0, 101);
         st.select(1);
-        assert!(render(&st).contains("unit 102: posterior"));
+        assert!(render(&st).contains("unit 102: tuning"));
     }
 
     #[test]

@@ -1285,6 +1285,10 @@ impl EngineThread {
             recorder_errors: 0,
             unlabelled_trials_dropped: ec.labels_missing,
             duplicate_messages: self.counters.duplicate_messages,
+            learning: self.learn.is_some(),
+            trials_learned: self.learn.as_ref().map(|l| l.trials_sent).unwrap_or(0),
+            learned_model_trials: self.learn.as_ref().map(|l| l.model_trials).unwrap_or(0),
+            learning_frozen: self.learn.as_ref().is_some_and(|l| !l.enabled),
         }
     }
 
