@@ -565,6 +565,7 @@ pub async fn run(opts: &Options) -> anyhow::Result<Report> {
             print_model_point(path, &p);
             report.model = Some(p);
         }
+        None if opts.learning => {}
         None => report.engine = ladder().await?,
     }
     if opts.learning {
