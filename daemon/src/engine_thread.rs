@@ -1058,7 +1058,9 @@ impl EngineThread {
             self.config = e.config().clone();
         }
         self.model_path = format!("learned from {} labelled trials", l.trials);
-        self.model = Some(l.model);
+        if let Some(old) = self.model.replace(l.model) {
+            let _ = link.tx.send(LearnMsg::Retire(old));
+        }
     }
 
     fn reload(&mut self, model: Arc<Model>, path: String) -> ControlReply {

@@ -60,6 +60,10 @@ pub enum LearnMsg {
     Enable(bool),
     /// Forget every trial taken so far.
     Reset,
+    /// A model the engine thread no longer opens trials with: kept here until the trials
+    /// still decoding with it have ended, then freed on this thread, so freeing a large model's
+    /// tables never stalls the engine thread.
+    Retire(Arc<Model>),
     /// Fit on everything so far and save it.
     Save {
         /// Model file path.
@@ -124,7 +128,10 @@ struct State {
 }
 
 /// Lowers this thread's scheduling priority (nice 10), so on a busy machine the engine thread
-/// and the socket thread win the cores and a refit only takes what they leave.
+/// and the socket thread win the cores and a refit mostly takes what they leave. (The idle
+/// class, `SCHED_IDLE`, was tried and made the p99 latency 8× worse on the 2-core benchmark
+/// machine: a starved refit can hold a lock the engine thread then waits for, such as an
+/// allocator arena's.)
 fn lower_priority() {
     #[cfg(target_os = "linux")]
     {
@@ -156,9 +163,13 @@ fn run(
         fitted_at: 0,
         last_fit: Instant::now(),
     };
+    let mut retired: Vec<Arc<Model>> = Vec::new();
     loop {
         let msg = rx.recv_timeout(Duration::from_millis(200));
+        // Free retired models nobody else holds any more.
+        retired.retain(|m| Arc::strong_count(m) > 1);
         match msg {
+            Ok(LearnMsg::Retire(m)) => retired.push(m),
             Ok(LearnMsg::Session {
                 epoch,
                 tick_rate_hz,
