@@ -127,21 +127,33 @@ impl<W: Write> EngineSink for CsvSink<'_, W> {
     }
 }
 
-/// Writes `decisions.csv`.
+/// Writes `decisions.csv`, names from the model's stimuli.
 pub fn write_decisions(
     path: &std::path::Path,
     stimuli: &[String],
     rows: &[DecisionRow],
 ) -> std::io::Result<()> {
+    write_named_decisions(
+        path,
+        rows.iter()
+            .map(|r| (r, stimuli[r.decision.stimulus as usize].as_str())),
+    )
+}
+
+/// Writes `decisions.csv` from (row, decided stimulus name) pairs.
+pub fn write_named_decisions<'a>(
+    path: &std::path::Path,
+    rows: impl Iterator<Item = (&'a DecisionRow, &'a str)>,
+) -> std::io::Result<()> {
     let mut w = std::io::BufWriter::new(std::fs::File::create(path)?);
     writeln!(w, "trial,stimulus,posterior,bin,reason,true_stimulus")?;
-    for r in rows {
+    for (r, name) in rows {
         let d = &r.decision;
         writeln!(
             w,
             "{},{},{},{},{},{}",
             d.trial,
-            stimuli[d.stimulus as usize],
+            name,
             d.posterior,
             d.bin,
             d.reason.name(),

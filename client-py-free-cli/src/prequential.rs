@@ -370,20 +370,5 @@ pub fn write_decisions(
     rows: &[DecisionRow],
     names: &[String],
 ) -> std::io::Result<()> {
-    let mut w = std::io::BufWriter::new(std::fs::File::create(path)?);
-    writeln!(w, "trial,stimulus,posterior,bin,reason,true_stimulus")?;
-    for (r, n) in rows.iter().zip(names) {
-        let d = &r.decision;
-        writeln!(
-            w,
-            "{},{},{},{},{},{}",
-            d.trial,
-            n,
-            d.posterior,
-            d.bin,
-            d.reason.name(),
-            r.true_stimulus.as_deref().unwrap_or("")
-        )?;
-    }
-    w.flush()
+    crate::offline::write_named_decisions(path, rows.iter().zip(names.iter().map(String::as_str)))
 }

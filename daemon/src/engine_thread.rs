@@ -288,6 +288,20 @@ impl EngineSink for PubSink<'_> {
     }
 }
 
+/// The sink over the engine thread's fields (a macro, so the engine can be borrowed beside it).
+macro_rules! pub_sink {
+    ($t:ident) => {
+        PubSink {
+            publisher: &mut $t.publisher,
+            recorder: $t.recorder.as_ref(),
+            names: &$t.names,
+            current: &$t.current,
+            chooser: &mut $t.chooser,
+            tally: $t.session.as_mut(),
+        }
+    };
+}
+
 /// The published form of a decision, named in the order of the trial's model.
 pub fn decision_msg(d: &Decision, stimuli: &[String]) -> v1::DecisionEvent {
     v1::DecisionEvent {
@@ -761,14 +775,7 @@ impl EngineThread {
         if self.engine.is_some() {
             remember_onset(&mut self.names, &body, &self.current);
         }
-        let mut sink = PubSink {
-            publisher: &mut self.publisher,
-            recorder: self.recorder.as_ref(),
-            names: &self.names,
-            current: &self.current,
-            chooser: &mut self.chooser,
-            tally: self.session.as_mut(),
-        };
+        let mut sink = pub_sink!(self);
         let applied = apply_body(
             self.engine.as_mut(),
             self.collector.as_mut(),
@@ -950,14 +957,7 @@ impl EngineThread {
 
     fn close_trials(&mut self, outcome: TrialOutcome) {
         if let Some(e) = self.engine.as_mut() {
-            let mut sink = PubSink {
-                publisher: &mut self.publisher,
-                recorder: self.recorder.as_ref(),
-                names: &self.names,
-                current: &self.current,
-                chooser: &mut self.chooser,
-                tally: self.session.as_mut(),
-            };
+            let mut sink = pub_sink!(self);
             e.close_all(outcome, &mut sink);
         }
     }

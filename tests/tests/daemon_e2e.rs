@@ -8,19 +8,14 @@ use auspex_engine::engine::{EngineConfig, EngineSink, Frame};
 use auspex_engine::fit::{plan, FitOptions};
 use auspex_engine::simulate::{simulate, Scenario, SimOptions};
 use auspex_engine::{Dataset, Model};
-use auspex_proto::v1::{self, control_reply, control_request, outbound};
+use auspex_proto::v1::{self, control_request, outbound};
 use auspexd::config::{validate, FileConfig};
+
+mod common;
+use common::{control, frames_of, serial, status, subscriber, wait_for};
 use prost::Message;
-use std::sync::mpsc;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
-
-/// The tests here each run a daemon, a libzmq peer and a flat-out sender; on a two-core CI
-/// machine running them side by side starves some of them for seconds. One at a time.
-fn serial() -> std::sync::MutexGuard<'static, ()> {
-    static LOCK: std::sync::Mutex<()> = std::sync::Mutex::new(());
-    LOCK.lock().unwrap_or_else(|e| e.into_inner())
-}
 
 fn scenario() -> Scenario {
     let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();
@@ -102,77 +97,6 @@ impl EngineSink for Collect {
 }
 
 /// A libzmq SUB collecting everything on a thread until told to stop.
-fn subscriber(
-    ctx: &zmq::Context,
-    endpoint: &str,
-) -> (
-    mpsc::Sender<()>,
-    std::thread::JoinHandle<Vec<(String, v1::Outbound)>>,
-) {
-    let sub = ctx.socket(zmq::SUB).unwrap();
-    sub.set_rcvhwm(0).unwrap();
-    sub.connect(endpoint).unwrap();
-    sub.set_subscribe(b"").unwrap();
-    let (tx, rx) = mpsc::channel();
-    let h = std::thread::spawn(move || {
-        let mut out = Vec::new();
-        sub.set_rcvtimeo(50).unwrap();
-        loop {
-            if rx.try_recv().is_ok() {
-                // Drain what is still queued.
-                while let Ok(parts) = sub.recv_multipart(0) {
-                    out.push((
-                        String::from_utf8_lossy(&parts[0]).to_string(),
-                        v1::Outbound::decode(parts[1].as_slice()).unwrap(),
-                    ));
-                }
-                return out;
-            }
-            if let Ok(parts) = sub.recv_multipart(0) {
-                out.push((
-                    String::from_utf8_lossy(&parts[0]).to_string(),
-                    v1::Outbound::decode(parts[1].as_slice()).unwrap(),
-                ));
-            }
-        }
-    });
-    (tx, h)
-}
-
-fn control(ctx: &zmq::Context, endpoint: &str, body: control_request::Body) -> v1::ControlReply {
-    let req = ctx.socket(zmq::REQ).unwrap();
-    req.set_rcvtimeo(5000).unwrap();
-    req.set_linger(0).unwrap();
-    req.connect(endpoint).unwrap();
-    req.send(v1::ControlRequest { body: Some(body) }.encode_to_vec(), 0)
-        .unwrap();
-    v1::ControlReply::decode(req.recv_bytes(0).unwrap().as_slice()).unwrap()
-}
-
-fn status(ctx: &zmq::Context, endpoint: &str) -> v1::Status {
-    match control(
-        ctx,
-        endpoint,
-        control_request::Body::Status(v1::StatusQuery {}),
-    )
-    .body
-    {
-        Some(control_reply::Body::Status(s)) => s,
-        other => panic!("no status: {other:?}"),
-    }
-}
-
-fn wait_for(mut cond: impl FnMut() -> bool, what: &str) {
-    let t0 = Instant::now();
-    while !cond() {
-        assert!(
-            t0.elapsed() < Duration::from_secs(30),
-            "timed out waiting for {what}"
-        );
-        std::thread::sleep(Duration::from_millis(20));
-    }
-}
-
 /// How the peer connects: transport, ingest pattern, and whether trial onsets and labels come
 /// from a separate task-control program on the task endpoint.
 #[derive(Clone, Copy)]
@@ -632,20 +556,6 @@ fn runtime() -> tokio::runtime::Runtime {
         .enable_all()
         .build()
         .unwrap()
-}
-
-fn frames_of(got: &[(String, v1::Outbound)]) -> Vec<(u64, u32, Vec<f64>)> {
-    let mut v: Vec<_> = got
-        .iter()
-        .filter_map(|(t, m)| match &m.body {
-            Some(outbound::Body::Posterior(p)) if t == "posterior" => {
-                Some((p.trial, p.bin, p.posterior.clone()))
-            }
-            _ => None,
-        })
-        .collect();
-    v.sort_by_key(|x| (x.0, x.1));
-    v
 }
 
 fn offline_frames(

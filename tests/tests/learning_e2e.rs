@@ -12,16 +12,15 @@ use auspex_engine::fit::{plan, FitOptions};
 use auspex_engine::learn::LearnOptions;
 use auspex_engine::simulate::{simulate, Scenario, SimOptions};
 use auspex_engine::{Dataset, Model};
-use auspex_proto::v1::{self, control_reply, control_request, inbound::Body, outbound};
+use auspex_proto::v1::{self, control_request, inbound::Body, outbound};
 use auspexd::config::{validate, FileConfig};
+
+mod common;
+use common::{control, frames_of, serial, status, subscriber, wait_for};
 use prost::Message;
-use std::sync::{mpsc, Arc};
+use std::sync::Arc;
 use std::time::{Duration, Instant};
 
-fn serial() -> std::sync::MutexGuard<'static, ()> {
-    static LOCK: std::sync::Mutex<()> = std::sync::Mutex::new(());
-    LOCK.lock().unwrap_or_else(|e| e.into_inner())
-}
 
 fn scenario() -> Scenario {
     let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();
@@ -35,72 +34,11 @@ fn runtime() -> tokio::runtime::Runtime {
     auspexd::service::io_runtime().unwrap()
 }
 
-fn control(ctx: &zmq::Context, endpoint: &str, body: control_request::Body) -> v1::ControlReply {
-    let req = ctx.socket(zmq::REQ).unwrap();
-    req.set_rcvtimeo(120_000).unwrap();
-    req.set_linger(0).unwrap();
-    req.connect(endpoint).unwrap();
-    req.send(v1::ControlRequest { body: Some(body) }.encode_to_vec(), 0)
-        .unwrap();
-    v1::ControlReply::decode(req.recv_bytes(0).unwrap().as_slice()).unwrap()
-}
 
-fn status(ctx: &zmq::Context, endpoint: &str) -> v1::Status {
-    match control(ctx, endpoint, control_request::Body::Status(v1::StatusQuery {})).body {
-        Some(control_reply::Body::Status(s)) => s,
-        other => panic!("no status: {other:?}"),
-    }
-}
 
-fn wait_for(mut cond: impl FnMut() -> bool, what: &str) {
-    let t0 = Instant::now();
-    while !cond() {
-        assert!(t0.elapsed() < Duration::from_secs(60), "timed out waiting for {what}");
-        std::thread::sleep(Duration::from_millis(20));
-    }
-}
 
-type Got = Vec<(String, v1::Outbound)>;
 
-fn subscriber(ctx: &zmq::Context, endpoint: &str) -> (mpsc::Sender<()>, std::thread::JoinHandle<Got>) {
-    let sub = ctx.socket(zmq::SUB).unwrap();
-    sub.set_rcvhwm(0).unwrap();
-    sub.connect(endpoint).unwrap();
-    sub.set_subscribe(b"").unwrap();
-    let (tx, rx) = mpsc::channel();
-    let h = std::thread::spawn(move || {
-        let mut out = Vec::new();
-        sub.set_rcvtimeo(50).unwrap();
-        loop {
-            let stop = rx.try_recv().is_ok();
-            while let Ok(parts) = sub.recv_multipart(if stop { 0 } else { zmq::DONTWAIT }) {
-                out.push((
-                    String::from_utf8_lossy(&parts[0]).to_string(),
-                    v1::Outbound::decode(parts[1].as_slice()).unwrap(),
-                ));
-            }
-            if stop {
-                return out;
-            }
-            std::thread::sleep(Duration::from_millis(2));
-        }
-    });
-    (tx, h)
-}
 
-fn frames_of(got: &[(String, v1::Outbound)]) -> Vec<(u64, u32, Vec<f64>)> {
-    let mut v: Vec<_> = got
-        .iter()
-        .filter_map(|(t, m)| match &m.body {
-            Some(outbound::Body::Posterior(p)) if t == "posterior" => {
-                Some((p.trial, p.bin, p.posterior.clone()))
-            }
-            _ => None,
-        })
-        .collect();
-    v.sort_by_key(|x| (x.0, x.1));
-    v
-}
 
 fn daemon_config(record: &std::path::Path, model: Option<std::path::PathBuf>) -> auspexd::config::DaemonConfig {
     let fc = FileConfig {
@@ -195,6 +133,37 @@ fn session_messages(
     out
 }
 
+/// A running daemon with a collecting subscriber and a connected PUSH sender.
+struct Live {
+    rt: tokio::runtime::Runtime,
+    running: auspexd::service::Running,
+    ep: auspexd::service::BoundEndpoints,
+    ctx: zmq::Context,
+    stop: std::sync::mpsc::Sender<()>,
+    sub: std::thread::JoinHandle<Vec<(String, v1::Outbound)>>,
+    push: zmq::Socket,
+}
+
+fn live(cfg: auspexd::config::DaemonConfig) -> Live {
+    let rt = runtime();
+    let running = rt.block_on(auspexd::service::start(cfg)).unwrap();
+    let ep = running.endpoints.clone();
+    let ctx = zmq::Context::new();
+    let (stop, sub) = subscriber(&ctx, &ep.publish);
+    std::thread::sleep(Duration::from_millis(300));
+    let push = ctx.socket(zmq::PUSH).unwrap();
+    push.connect(&ep.ingest).unwrap();
+    Live {
+        rt,
+        running,
+        ep,
+        ctx,
+        stop,
+        sub,
+        push,
+    }
+}
+
 /// Sends messages at about `speed` × real time (1 ms batches).
 fn send(push: &zmq::Socket, msgs: &[v1::Inbound], speed: f64) {
     let t0 = Instant::now();
@@ -243,14 +212,15 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
     let dir = tempfile::tempdir().unwrap();
     let mut cfg = daemon_config(dir.path(), None);
     cfg.learn.as_mut().unwrap().window_s = Some(sc.window_ms / 1000.0);
-    let rt = runtime();
-    let running = rt.block_on(auspexd::service::start(cfg)).unwrap();
-    let ep = running.endpoints.clone();
-    let ctx = zmq::Context::new();
-    let (stop, sub) = subscriber(&ctx, &ep.publish);
-    std::thread::sleep(Duration::from_millis(300));
-    let push = ctx.socket(zmq::PUSH).unwrap();
-    push.connect(&ep.ingest).unwrap();
+    let Live {
+        rt,
+        running,
+        ep,
+        ctx,
+        stop,
+        sub,
+        push,
+    } = live(cfg);
     send(&push, &msgs, 8.0);
     let n = msgs.len() as u64;
     wait_for(
@@ -354,14 +324,15 @@ fn three_sessions_through_one_daemon_are_three_recordings_and_three_summaries() 
     let rec_dir = dir.path().join("rec");
     std::fs::create_dir(&rec_dir).unwrap();
     let cfg = daemon_config(&rec_dir, Some(model_path));
-    let rt = runtime();
-    let running = rt.block_on(auspexd::service::start(cfg)).unwrap();
-    let ep = running.endpoints.clone();
-    let ctx = zmq::Context::new();
-    let (stop, sub) = subscriber(&ctx, &ep.publish);
-    std::thread::sleep(Duration::from_millis(300));
-    let push = ctx.socket(zmq::PUSH).unwrap();
-    push.connect(&ep.ingest).unwrap();
+    let Live {
+        rt,
+        running,
+        ep,
+        ctx,
+        stop,
+        sub,
+        push,
+    } = live(cfg);
     let window_ticks = (sc.window_ms / 1000.0 * 1e6).round() as i64;
     let mut datasets = Vec::new();
     for (i, name) in ["alpha", "beta", "gamma"].iter().enumerate() {

@@ -414,6 +414,18 @@ mod tests {
         }
     }
 
+    /// Fits each cell as Poisson, then a copy shrunk as `assemble` would.
+    fn raw_and_shrunk(inputs: &[CellInput]) -> (Vec<CellSpec>, Vec<CellSpec>, f64) {
+        let raw: Vec<CellSpec> = inputs
+            .iter()
+            .map(|c| fit_cell(c, 4, 0.001, &[CountFamily::Poisson], BandwidthRule::default()))
+            .collect();
+        let mut shrunk = raw.clone();
+        let refs: Vec<&CellInput> = inputs.iter().collect();
+        let kappa = shrink_unit(&refs, &mut shrunk);
+        (raw, shrunk, kappa)
+    }
+
     fn poisson_mean(c: &CellSpec) -> f64 {
         match c.count {
             CountParams::Poisson { mean } => mean,
@@ -428,12 +440,7 @@ mod tests {
         // sampling noise = (1/3 + 1/3)/2 = 1/3, τ² = 11/3, κ = σ²/τ² = 3/11,
         // w = κ/(κ + 3) = 1/12: A → (11/12)·2 + 4/12 = 2.1667, B → (11/12)·6 + 4/12 = 5.8333.
         let inputs = [cell(&[1, 2, 3]), cell(&[5, 6, 7])];
-        let mut cells: Vec<CellSpec> = inputs
-            .iter()
-            .map(|c| fit_cell(c, 4, 0.001, &[CountFamily::Poisson], BandwidthRule::default()))
-            .collect();
-        let refs: Vec<&CellInput> = inputs.iter().collect();
-        let kappa = shrink_unit(&refs, &mut cells);
+        let (_, cells, kappa) = raw_and_shrunk(&inputs);
         assert!((kappa - 3.0 / 11.0).abs() < 1e-12);
         assert!((poisson_mean(&cells[0]) - (11.0 / 12.0 * 2.0 + 4.0 / 12.0)).abs() < 1e-12);
         assert!((poisson_mean(&cells[1]) - (11.0 / 12.0 * 6.0 + 4.0 / 12.0)).abs() < 1e-12);
@@ -466,13 +473,7 @@ mod tests {
                 .iter()
                 .map(|&mu| cell(&(0..3).map(|_| poisson(&mut rng, mu)).collect::<Vec<_>>()))
                 .collect();
-            let raw: Vec<CellSpec> = inputs
-                .iter()
-                .map(|c| fit_cell(c, 4, 0.001, &[CountFamily::Poisson], BandwidthRule::default()))
-                .collect();
-            let mut shrunk = raw.clone();
-            let refs: Vec<&CellInput> = inputs.iter().collect();
-            shrink_unit(&refs, &mut shrunk);
+            let (raw, shrunk, _) = raw_and_shrunk(&inputs);
             for (s, &mu) in truth.iter().enumerate() {
                 err_raw += (poisson_mean(&raw[s]) - mu).powi(2);
                 err_shrunk += (poisson_mean(&shrunk[s]) - mu).powi(2);
@@ -487,13 +488,7 @@ mod tests {
             .iter()
             .map(|&mu| cell(&(0..400).map(|_| poisson(&mut rng, mu)).collect::<Vec<_>>()))
             .collect();
-        let raw: Vec<CellSpec> = inputs
-            .iter()
-            .map(|c| fit_cell(c, 4, 0.001, &[CountFamily::Poisson], BandwidthRule::default()))
-            .collect();
-        let mut shrunk = raw.clone();
-        let refs: Vec<&CellInput> = inputs.iter().collect();
-        shrink_unit(&refs, &mut shrunk);
+        let (raw, shrunk, _) = raw_and_shrunk(&inputs);
         let all: Vec<u32> = inputs.iter().flat_map(|c| c.counts.clone()).collect();
         let m = all.iter().map(|&x| x as f64).sum::<f64>() / all.len() as f64;
         for s in 0..truth.len() {

@@ -1,0 +1,102 @@
+//! Helpers every end-to-end test file shares: one daemon test at a time, a libzmq SUB that
+//! collects everything, control requests over a libzmq REQ, waiting for a condition, and the
+//! posterior frames of what was collected.
+#![allow(dead_code)]
+
+use auspex_proto::v1::{self, control_reply, control_request, outbound};
+use prost::Message;
+use std::sync::mpsc;
+use std::time::{Duration, Instant};
+
+/// The tests here each run a daemon, a libzmq peer and a flat-out sender; on a two-core CI
+/// machine running them side by side starves some of them for seconds. One at a time.
+pub fn serial() -> std::sync::MutexGuard<'static, ()> {
+    static LOCK: std::sync::Mutex<()> = std::sync::Mutex::new(());
+    LOCK.lock().unwrap_or_else(|e| e.into_inner())
+}
+
+pub fn subscriber(
+    ctx: &zmq::Context,
+    endpoint: &str,
+) -> (
+    mpsc::Sender<()>,
+    std::thread::JoinHandle<Vec<(String, v1::Outbound)>>,
+) {
+    let sub = ctx.socket(zmq::SUB).unwrap();
+    sub.set_rcvhwm(0).unwrap();
+    sub.connect(endpoint).unwrap();
+    sub.set_subscribe(b"").unwrap();
+    let (tx, rx) = mpsc::channel();
+    let h = std::thread::spawn(move || {
+        let mut out = Vec::new();
+        sub.set_rcvtimeo(50).unwrap();
+        loop {
+            if rx.try_recv().is_ok() {
+                // Drain what is still queued.
+                while let Ok(parts) = sub.recv_multipart(0) {
+                    out.push((
+                        String::from_utf8_lossy(&parts[0]).to_string(),
+                        v1::Outbound::decode(parts[1].as_slice()).unwrap(),
+                    ));
+                }
+                return out;
+            }
+            if let Ok(parts) = sub.recv_multipart(0) {
+                out.push((
+                    String::from_utf8_lossy(&parts[0]).to_string(),
+                    v1::Outbound::decode(parts[1].as_slice()).unwrap(),
+                ));
+            }
+        }
+    });
+    (tx, h)
+}
+
+pub fn control(ctx: &zmq::Context, endpoint: &str, body: control_request::Body) -> v1::ControlReply {
+    let req = ctx.socket(zmq::REQ).unwrap();
+    req.set_rcvtimeo(5000).unwrap();
+    req.set_linger(0).unwrap();
+    req.connect(endpoint).unwrap();
+    req.send(v1::ControlRequest { body: Some(body) }.encode_to_vec(), 0)
+        .unwrap();
+    v1::ControlReply::decode(req.recv_bytes(0).unwrap().as_slice()).unwrap()
+}
+
+pub fn status(ctx: &zmq::Context, endpoint: &str) -> v1::Status {
+    match control(
+        ctx,
+        endpoint,
+        control_request::Body::Status(v1::StatusQuery {}),
+    )
+    .body
+    {
+        Some(control_reply::Body::Status(s)) => s,
+        other => panic!("no status: {other:?}"),
+    }
+}
+
+pub fn wait_for(mut cond: impl FnMut() -> bool, what: &str) {
+    let t0 = Instant::now();
+    while !cond() {
+        assert!(
+            t0.elapsed() < Duration::from_secs(30),
+            "timed out waiting for {what}"
+        );
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+pub fn frames_of(got: &[(String, v1::Outbound)]) -> Vec<(u64, u32, Vec<f64>)> {
+    let mut v: Vec<_> = got
+        .iter()
+        .filter_map(|(t, m)| match &m.body {
+            Some(outbound::Body::Posterior(p)) if t == "posterior" => {
+                Some((p.trial, p.bin, p.posterior.clone()))
+            }
+            _ => None,
+        })
+        .collect();
+    v.sort_by_key(|x| (x.0, x.1));
+    v
+}
+
