@@ -279,7 +279,7 @@ pub fn decode_prequential_cmd(
     };
     if let Some(o) = crate::prequential::recorded_options(&rec) {
         eprintln!(
-            "the recording holds {} learned-model swaps: refitting at the same points with the daemon's settings ({} ms window, {} ms bins)",
+            "the recording is of a learning daemon with {} learned-model swaps: refitting at the same points with its settings ({} ms window, {} ms bins)",
             rec.learned.iter().filter(|(_, m)| !m.reset).count(),
             o.fit.window_s * 1000.0,
             o.fit.bin_width_s * 1000.0

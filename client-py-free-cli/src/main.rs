@@ -269,6 +269,10 @@ enum Cmd {
         /// Only the offline part (fit, decode, export)
         #[arg(long)]
         offline_only: bool,
+        /// Live part without a model: the daemon learns from the session's labelled trials as
+        /// they come (checked against `decode --prequential` of its recording)
+        #[arg(long, conflicts_with = "offline_only")]
+        learn: bool,
     },
     /// Run the daemon (same flags as `auspexd`)
     Daemon {
@@ -501,14 +505,18 @@ fn main() {
         }),
         Cmd::Export { model, out } => commands::export_cmd(&model, out.as_deref()),
         Cmd::Inspect { model } => commands::inspect_cmd(&model),
-        Cmd::Demo { out_dir, quiet, speed, fast, plain, offline_only } => commands::demo_offline(&out_dir, quiet).and_then(|model| {
+        Cmd::Demo { out_dir, quiet, speed, fast, plain, offline_only, learn } => commands::demo_offline(&out_dir, quiet).and_then(|model| {
             if offline_only {
                 return Ok(());
             }
-            eprintln!("── live: starting the daemon and replaying the demo session {} ──", if fast { "as fast as it goes".to_string() } else { format!("at {speed}× real time") });
+            let model = (!learn).then_some(model);
+            if learn && fast {
+                eprintln!("note: with --fast the whole session passes before the learner's first refit, so nothing is decoded live; try --speed 10");
+            }
+            eprintln!("── live: starting the daemon{} and replaying the demo session {} ──", if learn { " with no model (it learns from the labelled trials)" } else { "" }, if fast { "as fast as it goes".to_string() } else { format!("at {speed}× real time") });
             let pace = if fast { Pace::Max } else { Pace::Speed(speed) };
             let view = if plain { View::Lines } else { View::auto() };
-            runtime()?.block_on(auspex::session::live_demo(&model, &out_dir, pace, view))?;
+            runtime()?.block_on(auspex::session::live_demo(model.as_deref(), &out_dir, pace, view))?;
             eprintln!("validation report: {} (open it in a browser)", out_dir.join("validation").join("report.html").display());
             Ok(())
         }),

@@ -21,6 +21,8 @@ pub enum View {
     Lines,
     /// JSON lines.
     Json,
+    /// Nothing shown: only the decisions are collected (for checks).
+    Quiet,
 }
 
 impl View {
@@ -103,7 +105,7 @@ pub async fn monitor(
                     match view {
                         View::Lines => if let Some(l) = plain_line(&state, &topic, &msg) { let _ = writeln!(out.lock(), "{l}"); },
                         View::Json => { let _ = writeln!(out.lock(), "{}", json_line(&topic, &msg)); },
-                        View::Screen => {}
+                        View::Screen | View::Quiet => {}
                     }
                 }
             }
@@ -125,9 +127,11 @@ fn free_port() -> anyhow::Result<u16> {
         .port())
 }
 
-/// The live demo. Returns when the replay is done and the daemon has stopped.
+/// The live demo. Returns when the replay is done and the daemon has stopped. With no model
+/// the daemon learns from the session's own labelled trials, and the check is against
+/// prequential decoding of its recording.
 pub async fn live_demo(
-    model_path: &std::path::Path,
+    model_path: Option<&std::path::Path>,
     out_dir: &std::path::Path,
     pace: Pace,
     view: View,
@@ -145,9 +149,17 @@ pub async fn live_demo(
     let recording = out_dir.join("demo-session.apxs");
     let exe = std::env::current_exe().context("finding the auspex executable")?;
     let log = std::fs::File::create(out_dir.join("daemon.log"))?;
-    let mut child = std::process::Command::new(exe)
-        .args(["daemon", "--model"])
-        .arg(model_path)
+    let mut cmd = std::process::Command::new(exe);
+    cmd.arg("daemon");
+    match model_path {
+        Some(m) => {
+            cmd.arg("--model").arg(m);
+        }
+        None => {
+            cmd.args(["--learn-window-ms", "250"]);
+        }
+    }
+    let mut child = cmd
         .args([
             "--ingest",
             &ingest,
@@ -184,19 +196,36 @@ pub async fn live_demo(
         let (stop_tx, stop_rx) = watch::channel(false);
         let (p2, c2) = (publish.clone(), control_ep.clone());
         let mon = tokio::spawn(async move { monitor(&p2, &c2, view, stop_rx).await });
+        // The decisions for the check are collected apart from the display, so closing the
+        // monitor (q) does not stop the replay or skip the check.
+        let (p3, c3, rx3) = (publish.clone(), control_ep.clone(), stop_tx.subscribe());
+        let collector = tokio::spawn(async move { monitor(&p3, &c3, View::Quiet, rx3).await });
         tokio::time::sleep(Duration::from_millis(300)).await;
         let bt = 1000; // 1 ms batches at 1 µs ticks
         let msgs = crate::wire::dataset_messages(&data, "demo-replay", bt, 250 * bt);
         let progress = view != View::Screen && std::io::stderr().is_terminal();
+        let watch_monitor = async {
+            loop {
+                tokio::time::sleep(Duration::from_millis(100)).await;
+                if mon.is_finished() {
+                    break;
+                }
+            }
+            if view == View::Screen {
+                eprintln!("monitor closed; the replay goes on (ctrl-c stops the demo) …");
+            }
+            std::future::pending::<()>().await
+        };
         let took = tokio::select! {
             r = replay(&ingest, &control_ep, &msgs, "demo-replay", data.tick_rate_hz, pace, progress) => r?,
             _ = tokio::signal::ctrl_c() => { let _ = stop_tx.send(true); bail!("interrupted") }
-            r = async { loop { tokio::time::sleep(Duration::from_millis(100)).await; if mon.is_finished() { break; } } } => { let _ = r; bail!("monitor closed") }
+            _ = watch_monitor => unreachable!("pending never completes"),
         };
         tokio::time::sleep(Duration::from_millis(500)).await;
         let st = status(&control_ep).await?;
         let _ = stop_tx.send(true);
-        let seen = mon.await.context("monitor task")??;
+        let _ = mon.await.context("monitor task")?;
+        let seen = collector.await.context("decision collector")??;
         Ok((took, st, seen, msgs.len()))
     }
     .await;
@@ -218,33 +247,22 @@ pub async fn live_demo(
         h.dropped_posterior
     );
     // The same session decoded offline must give the same decisions.
-    let (_, model) = auspexd::model_file::load_model(model_path)?;
-    let model = std::sync::Arc::new(model);
-    let mut sink = crate::offline::CsvSink::new(model.stimuli(), &data, None::<std::io::Sink>);
-    crate::offline::run_dataset(
-        model.clone(),
-        &data,
-        auspex_engine::EngineConfig::new(1e6),
-        &mut sink,
-    )?;
-    let mut offline: SeenDecisions = sink
-        .decisions
-        .iter()
-        .map(|r| {
-            (
-                r.decision.trial,
-                r.decision.stimulus,
-                r.decision.posterior.to_bits(),
-                r.decision.bin,
-            )
-        })
-        .collect();
+    let offline = match model_path {
+        Some(m) => offline_decisions(m, &data)?,
+        None => prequential_decisions(&recording)?,
+    };
     let mut live = seen;
+    let mut offline = offline;
     offline.sort();
     live.sort();
     if live == offline {
         eprintln!(
-            "live decisions are identical to offline decoding of the same session ({} trials)",
+            "live decisions are identical to {} of the same session ({} trials)",
+            if model_path.is_some() {
+                "offline decoding"
+            } else {
+                "prequential decoding (`auspex decode --prequential --session`)"
+            },
             live.len()
         );
     } else {
@@ -261,4 +279,53 @@ pub async fn live_demo(
         recording.display()
     );
     Ok(())
+}
+
+fn to_seen(rows: &[crate::offline::DecisionRow]) -> SeenDecisions {
+    rows.iter()
+        .map(|r| {
+            (
+                r.decision.trial,
+                r.decision.stimulus,
+                r.decision.posterior.to_bits(),
+                r.decision.bin,
+            )
+        })
+        .collect()
+}
+
+/// The demo session decoded offline with the model.
+fn offline_decisions(
+    model_path: &std::path::Path,
+    data: &auspex_engine::Dataset,
+) -> anyhow::Result<SeenDecisions> {
+    let (_, model) = auspexd::model_file::load_model(model_path)?;
+    let model = std::sync::Arc::new(model);
+    let mut sink = crate::offline::CsvSink::new(model.stimuli(), data, None::<std::io::Sink>);
+    crate::offline::run_dataset(
+        model.clone(),
+        data,
+        auspex_engine::EngineConfig::new(1e6),
+        &mut sink,
+    )?;
+    Ok(to_seen(&sink.decisions))
+}
+
+/// The learning daemon's recording decoded prequentially, at the daemon's own swap points.
+fn prequential_decisions(recording: &std::path::Path) -> anyhow::Result<SeenDecisions> {
+    let rec = crate::wire::read_recording(recording)?;
+    let (run, _, _) = crate::prequential::run_recording(
+        &rec,
+        &Default::default(),
+        &auspex_engine::EngineConfig::new(rec.dataset.tick_rate_hz),
+        &crate::prequential::Schedule { every_trials: 8 },
+        None::<std::io::Sink>,
+        false,
+    )?;
+    eprintln!(
+        "the daemon learned {} models during the session ({} trials opened before the first)",
+        run.models.len(),
+        run.undecoded_trials
+    );
+    Ok(to_seen(&run.decisions))
 }

@@ -939,6 +939,11 @@ impl EngineThread {
                 name: ss.session_name.clone(),
             });
             let _ = l.tx.send(LearnMsg::Enable(l.enabled));
+            // Mark the recording as a learning session from its start (with the learner's
+            // settings), so a replay knows to follow the swap points even if none come.
+            if let Some(r) = &self.recorder {
+                let _ = r.send(RecorderMsg::Record(swap_record(&l.setup.options, 0, None)));
+            }
         }
         if let (None, Some(m)) = (&self.engine, self.model.clone()) {
             match Engine::new(m, self.config.clone()) {
