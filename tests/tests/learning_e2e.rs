@@ -412,3 +412,90 @@ fn three_sessions_through_one_daemon_are_three_recordings_and_three_summaries() 
         assert!(frames_by_session[i] == c.0, "session {name} differs from decoding it alone");
     }
 }
+
+#[test]
+fn retransmitted_messages_are_dropped_and_a_restarting_sender_is_followed() {
+    let _g = serial();
+    let sc = scenario();
+    let truth = Model::new(sc.true_model().unwrap()).unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let model_path = dir.path().join("truth.apxm");
+    auspexd::model_file::save_model(&model_path, &sc.true_model().unwrap(), "e2e").unwrap();
+    let cfg = daemon_config(&dir.path().join("s.apxs"), Some(model_path));
+    let Live {
+        rt,
+        running,
+        ep,
+        ctx,
+        stop,
+        sub,
+        push,
+    } = live(cfg);
+    let data = simulate(
+        &truth,
+        &SimOptions {
+            trials_per_stimulus: 2,
+            seed: 7,
+            ..sc.sim_options()
+        },
+    );
+    let window_ticks = (sc.window_ms / 1000.0 * 1e6).round() as i64;
+    let msgs = dataset_messages(&data, "acq", 1000, window_ticks);
+    // Every spike batch with spikes is sent twice, the copy carrying a spike beyond its own
+    // promise (the schema allows it): applied twice it would be counted twice.
+    let mut sent = 0u64;
+    let mut dups = 0u64;
+    let half = msgs.len() / 2;
+    for (i, m) in msgs.iter().enumerate() {
+        push.send(m.encode_to_vec(), 0).unwrap();
+        sent += 1;
+        if let Some(Body::Spikes(b)) = &m.body {
+            if !b.units.is_empty() && dups < 20 {
+                let mut copy = m.clone();
+                if let Some(Body::Spikes(cb)) = copy.body.as_mut() {
+                    cb.units.push(cb.units[0]);
+                    cb.ticks.push(cb.complete_through + 1);
+                }
+                push.send(copy.encode_to_vec(), 0).unwrap();
+                dups += 1;
+            }
+        }
+        if i == half {
+            // The sender restarts mid-session and says so: SessionStart again, numbering from 1.
+            let mut again = msgs[0].clone();
+            again.seq = 1;
+            push.send(again.encode_to_vec(), 0).unwrap();
+            // ... then goes on from 2 with the rest of the session.
+            for (j, rest) in msgs[i + 1..].iter().enumerate() {
+                let mut r = rest.clone();
+                r.seq = 2 + j as u64;
+                push.send(r.encode_to_vec(), 0).unwrap();
+            }
+            break;
+        }
+    }
+    let last = 1 + (msgs.len() - half - 1) as u64;
+    wait_for(
+        || {
+            status(&ctx, &ep.control)
+                .senders
+                .iter()
+                .any(|s| s.sender == "acq" && s.ended && s.last_seq == last)
+                || status(&ctx, &ep.control).ended_sessions.len() == 1
+        },
+        "the session to be processed",
+    );
+    let h = status(&ctx, &ep.control).health.unwrap();
+    assert_eq!(h.duplicate_messages, dups, "every retransmission dropped");
+    assert_eq!(h.sequence_gaps, 0, "the restart is not a gap");
+    std::thread::sleep(Duration::from_millis(300));
+    stop.send(()).unwrap();
+    let got = sub.join().unwrap();
+    rt.block_on(running.stop());
+    // Frames equal decoding the session once, alone: nothing counted twice, nothing lost.
+    let mut c = Collect::default();
+    auspex::offline::run_dataset(Arc::new(truth), &data, EngineConfig::new(1e6), &mut c).unwrap();
+    c.0.sort_by_key(|x| (x.0, x.1));
+    assert!(frames_of(&got) == c.0, "frames differ from decoding the session once");
+    assert!(sent > 0);
+}
