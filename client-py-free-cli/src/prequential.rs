@@ -23,6 +23,9 @@ use std::collections::{HashMap, VecDeque};
 use std::io::Write;
 use std::sync::Arc;
 
+/// Posterior frames as (trial, bin, posterior).
+pub type Frames = Vec<(u64, u32, Vec<f64>)>;
+
 /// When models are refitted where the recording does not say.
 #[derive(Clone, Debug)]
 pub struct Schedule {
@@ -239,7 +242,7 @@ pub fn run_recording<W: Write>(
     schedule: &Schedule,
     out: Option<W>,
     collect_frames: bool,
-) -> anyhow::Result<(PrequentialRun, Vec<String>, Option<Vec<(u64, u32, Vec<f64>)>>)> {
+) -> anyhow::Result<(PrequentialRun, Vec<String>, Option<Frames>)> {
     let recorded = !rec.learned.is_empty();
     let opts = if recorded {
         recorded_options(rec).unwrap_or_else(|| opts.clone())
