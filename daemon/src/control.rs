@@ -104,16 +104,26 @@ pub async fn run_control(
             _ = stop.changed() => break,
             r = sock.recv() => match r {
                 Ok(m) => {
-                    // Envelope: identity, then (for REQ peers) an empty delimiter, then the body.
+                    // Envelope: the peer's identity, then (REQ peers) an empty delimiter; then
+                    // exactly one frame, the request. Anything else gets one error reply.
                     let mut frames = m.into_vec();
-                    let bytes = frames.pop().unwrap_or_default();
                     if frames.is_empty() {
                         continue;
                     }
-                    let reply = handle(&bytes, &tx, table_bytes).await;
-                    let mut out = ZmqMessage::from(frames.remove(0));
-                    for f in frames {
-                        out.push_back(f);
+                    let identity = frames.remove(0);
+                    let delimiter = frames.first().is_some_and(|f| f.is_empty());
+                    if delimiter {
+                        frames.remove(0);
+                    }
+                    let reply = match frames.len() {
+                        1 => handle(&frames[0], &tx, table_bytes).await,
+                        n => error_reply(format!(
+                            "a control request is one frame (a ControlRequest); this message had {n}"
+                        )),
+                    };
+                    let mut out = ZmqMessage::from(identity);
+                    if delimiter {
+                        out.push_back(Bytes::new());
                     }
                     out.push_back(Bytes::from(reply.encode_to_vec()));
                     if let Err(e) = sock.send(out).await {

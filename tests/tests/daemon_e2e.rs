@@ -789,3 +789,42 @@ fn control_answers_a_thousand_short_lived_clients_while_ingest_is_busy() {
     sender.join().unwrap();
     rt.block_on(running.stop());
 }
+
+#[test]
+fn control_answers_every_frame_count_with_one_rule() {
+    let _g = serial();
+    let f = fixture(1);
+    let rt = runtime();
+    let running = rt.block_on(auspexd::service::start(config(&f, None))).unwrap();
+    let ep = running.endpoints.control.clone();
+    let ctx = zmq::Context::new();
+    let req_bytes = v1::ControlRequest {
+        body: Some(control_request::Body::Status(v1::StatusQuery {})),
+    }
+    .encode_to_vec();
+    let decode = |parts: Vec<Vec<u8>>| -> v1::ControlReply {
+        assert_eq!(parts.len(), 1, "one reply frame, never the request echoed back");
+        v1::ControlReply::decode(parts[0].as_slice()).unwrap()
+    };
+    // REQ, two frames: refused with one error reply.
+    let req = ctx.socket(zmq::REQ).unwrap();
+    req.set_rcvtimeo(5000).unwrap();
+    req.connect(&ep).unwrap();
+    req.send_multipart([req_bytes.clone(), b"extra".to_vec()], 0).unwrap();
+    let r = decode(req.recv_multipart(0).unwrap());
+    assert!(!r.ok && r.error.contains("one frame"), "{r:?}");
+    // REQ, one frame: answered.
+    req.send(req_bytes.clone(), 0).unwrap();
+    assert!(decode(req.recv_multipart(0).unwrap()).ok);
+    // DEALER without a delimiter: one frame answered, two refused.
+    let dealer = ctx.socket(zmq::DEALER).unwrap();
+    dealer.set_rcvtimeo(5000).unwrap();
+    dealer.connect(&ep).unwrap();
+    dealer.send(req_bytes.clone(), 0).unwrap();
+    assert!(decode(dealer.recv_multipart(0).unwrap()).ok);
+    dealer
+        .send_multipart([req_bytes.clone(), req_bytes.clone()], 0)
+        .unwrap();
+    assert!(!decode(dealer.recv_multipart(0).unwrap()).ok);
+    rt.block_on(running.stop());
+}

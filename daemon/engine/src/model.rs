@@ -169,6 +169,21 @@ impl Model {
                 return inv(format!("stimulus {s:?} is listed twice"));
             }
         }
+        // Every cell's shape is checked before the tables are sized from it, so a small file that
+        // declares a huge window or cell count is refused instead of asking for the memory.
+        for (i, cell) in spec.cells.iter().enumerate() {
+            if cell.timing.len() != nb {
+                return inv(format!(
+                    "cell (unit {}, stimulus {}) has {} timing bins, window has {nb}",
+                    spec.units[i / ns],
+                    spec.stimuli[i % ns],
+                    cell.timing.len()
+                ));
+            }
+        }
+        if nu.checked_mul(nb).and_then(|x| x.checked_mul(ns)).is_none() {
+            return inv(format!("{nu} units × {nb} bins × {ns} stimuli is too large"));
+        }
         let psum: f64 = spec.prior.iter().sum();
         let ln_prior: Vec<f64> = spec.prior.iter().map(|p| (p / psum).ln()).collect();
 
@@ -429,4 +444,30 @@ pub fn mean_var(counts: &[u32]) -> (f64, f64) {
         0.0
     };
     (m, v)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_small_spec_declaring_a_huge_window_is_refused_before_allocating() {
+        // 200 × 1000 cells without timing and a window of 1 000 000 bins: sizing the tables first
+        // would ask for 3 × 1.6 TB (the process aborted on such a file before).
+        let cell = CellSpec {
+            count: CountParams::Poisson { mean: 1.0 },
+            timing: Vec::new(),
+            summary: CellSummary::default(),
+        };
+        let spec = ModelSpec {
+            bin_width_s: 0.001,
+            n_bins: 1_000_000,
+            stimuli: (0..1000).map(|s| format!("s{s}")).collect(),
+            units: (0..200).collect(),
+            prior: vec![1e-3; 1000],
+            cells: vec![cell; 200 * 1000],
+        };
+        let e = Model::new(spec).unwrap_err().to_string();
+        assert!(e.contains("0 timing bins, window has 1000000"), "{e}");
+    }
 }
