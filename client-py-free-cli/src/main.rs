@@ -51,6 +51,10 @@ struct Tables {
     /// Acquisition clock ticks per second for the tables (times are rounded to ticks on reading)
     #[arg(long, default_value_t = 1e6)]
     tick_rate: f64,
+    /// Accept tables whose times look wrong together (no overlap, a hundredfold difference in
+    /// span, nearly every spike outside every trial window)
+    #[arg(long)]
+    trust_times: bool,
 }
 
 impl Tables {
@@ -61,6 +65,7 @@ impl Tables {
                 spikes: s.clone(),
                 trials: t.clone(),
                 tick_rate_hz: self.tick_rate,
+                trust_times: self.trust_times,
             },
             // clap enforces one of the two forms.
             _ => unreachable!("clap requires --session or --spikes with --trials"),

@@ -13,7 +13,7 @@ use std::path::Path;
 #[error("{0}")]
 pub struct TableError(pub String);
 
-fn split_fields(line: &str) -> Vec<String> {
+fn split_fields(line: &str, delim: char) -> Vec<String> {
     let mut out = Vec::new();
     let mut cur = String::new();
     let mut quoted = false;
@@ -25,7 +25,7 @@ fn split_fields(line: &str) -> Vec<String> {
                 chars.next();
             }
             '"' => quoted = !quoted,
-            ',' if !quoted => out.push(std::mem::take(&mut cur)),
+            c if c == delim && !quoted => out.push(std::mem::take(&mut cur)),
             _ => cur.push(c),
         }
     }
@@ -53,7 +53,14 @@ fn read_table(path: &Path, required: &[&str]) -> Result<Table, TableError> {
             required.join(",")
         ))
     })?;
-    let names = split_fields(header.trim_start_matches('\u{feff}'));
+    let header = header.trim_start_matches('\u{feff}');
+    // Comma-separated as written by Auspex; tab- and semicolon-separated tables (spreadsheet
+    // exports) are read too, the separator taken from the header line.
+    let delim = [',', '\t', ';']
+        .into_iter()
+        .max_by_key(|d| (header.matches(*d).count(), *d == ','))
+        .unwrap_or(',');
+    let names = split_fields(header, delim);
     let cols: HashMap<String, usize> = names
         .iter()
         .enumerate()
@@ -71,7 +78,7 @@ fn read_table(path: &Path, required: &[&str]) -> Result<Table, TableError> {
     }
     let mut rows = Vec::new();
     for (i, l) in lines {
-        let f = split_fields(l);
+        let f = split_fields(l, delim);
         if f.len() < names.len() {
             return Err(TableError(format!(
                 "{p}:{}: expected {} fields like the header, found {}",
@@ -87,6 +94,57 @@ fn read_table(path: &Path, required: &[&str]) -> Result<Table, TableError> {
         rows,
         cols,
     })
+}
+
+/// Shares and spans that say the two tables' times do not fit together.
+const MOST_OUTSIDE: f64 = 0.95;
+const SPAN_RATIO: f64 = 100.0;
+
+/// Refuses tables whose times cannot be right together: time ranges that do not overlap,
+/// spans a hundredfold apart (one table in milliseconds?), or nearly every spike outside every
+/// trial window. `--trust-times` skips it.
+pub fn check_times(
+    data: &Dataset,
+    report: &ReadReport,
+    spikes: &Path,
+    trials: &Path,
+) -> Result<(), TableError> {
+    let (Some(s0), Some(s1)) = (data.spikes.first(), data.spikes.last()) else {
+        return Ok(());
+    };
+    let (Some(t0), Some(t1)) = (data.trials.first(), data.trials.last()) else {
+        return Ok(());
+    };
+    let sec = |t: i64| t as f64 / data.tick_rate_hz;
+    let (ss, se, ts, te) = (sec(s0.0), sec(s1.0), sec(t0.onset), sec(t1.onset));
+    let what = format!(
+        "spikes in {} span {ss:.3}–{se:.3} s and trial onsets in {} span {ts:.3}–{te:.3} s",
+        spikes.display(),
+        trials.display()
+    );
+    let hint = "both tables must give seconds from the same start of the recording (a table in milliseconds must be divided by 1000); if the times are right, pass --trust-times";
+    let (sspan, tspan) = ((se - ss).max(1e-9), (te - ts).max(1e-9));
+    if se.max(te) > 0.0 && (sspan / tspan >= SPAN_RATIO || tspan / sspan >= SPAN_RATIO) && data.trials.len() > 1 {
+        return Err(TableError(format!(
+            "the times look like different units: {what}, a {:.0}-fold difference; {hint}",
+            (sspan / tspan).max(tspan / sspan)
+        )));
+    }
+    if se < ts || te < ss {
+        return Err(TableError(format!(
+            "the tables do not overlap in time: {what}; {hint}"
+        )));
+    }
+    let share = report.spikes_outside_windows as f64 / report.spikes.max(1) as f64;
+    if share > MOST_OUTSIDE {
+        return Err(TableError(format!(
+            "{:.1}% of the spikes ({} of {}) fall in no trial window: {what}; {hint}, or give the right --window-ms",
+            100.0 * share,
+            report.spikes_outside_windows,
+            report.spikes
+        )));
+    }
+    Ok(())
 }
 
 impl Table {
@@ -252,6 +310,8 @@ pub enum Source {
         trials: std::path::PathBuf,
         /// Ticks per second used to round times.
         tick_rate_hz: f64,
+        /// Skip [`check_times`].
+        trust_times: bool,
     },
     /// A session recording (`.apxs`); labels sent after onsets are applied to their trials.
     Session(std::path::PathBuf),
@@ -264,6 +324,7 @@ impl Source {
             spikes: spikes.to_path_buf(),
             trials: trials.to_path_buf(),
             tick_rate_hz: 1e6,
+            trust_times: false,
         }
     }
 
@@ -274,7 +335,14 @@ impl Source {
                 spikes,
                 trials,
                 tick_rate_hz,
-            } => Ok(read_dataset(spikes, trials, *tick_rate_hz, window_s)?),
+                trust_times,
+            } => {
+                let (data, report) = read_dataset(spikes, trials, *tick_rate_hz, window_s)?;
+                if !trust_times {
+                    check_times(&data, &report, spikes, trials)?;
+                }
+                Ok((data, report))
+            }
             Source::Session(p) => {
                 let rec = crate::wire::read_recording(p)?;
                 if rec.undecodable > 0 {
@@ -372,6 +440,43 @@ mod tests {
 
     const GOOD_T: &str = "trial,onset_s,stimulus\n1,0.5,N\n2,1.5,S\n";
     const GOOD_S: &str = "unit,time_s\n3,0.51\n3,0.6\n4,1.6\n";
+
+    #[test]
+    fn tab_and_semicolon_tables_are_read() {
+        let d = tempfile::tempdir().unwrap();
+        let s = write(d.path(), "s.tsv", "unit\ttime_s\n3\t0.51\n4\t1.6\n");
+        let t = write(d.path(), "t.csv", "trial;onset_s;stimulus\n1;0.5;N\n2;1.5;S\n");
+        let (data, _) = read_dataset(&s, &t, 1e6, 0.25).unwrap();
+        assert_eq!(data.spikes, vec![(510_000, 3), (1_600_000, 4)]);
+        assert_eq!(data.trials[1].stimulus.as_deref(), Some("S"));
+    }
+
+    fn check(spikes: &str, trials: &str) -> Result<(), String> {
+        let d = tempfile::tempdir().unwrap();
+        let s = write(d.path(), "s.csv", spikes);
+        let t = write(d.path(), "t.csv", trials);
+        let (data, rep) = read_dataset(&s, &t, 1e6, 0.25).unwrap();
+        check_times(&data, &rep, &s, &t).map_err(|e| e.to_string())
+    }
+
+    #[test]
+    fn times_that_cannot_fit_together_are_refused_with_what_was_found() {
+        assert!(check(GOOD_S, GOOD_T).is_ok());
+        // Spike times in milliseconds under the time_s header.
+        let e = check("unit,time_s\n3,510\n3,600\n4,1600\n", GOOD_T).unwrap_err();
+        assert!(e.contains("look like different units") && e.contains("milliseconds"), "{e}");
+        assert!(e.contains("s.csv") && e.contains("t.csv") && e.contains("--trust-times"), "{e}");
+        // No overlap.
+        let e = check("unit,time_s\n3,10.1\n3,10.6\n4,11.6\n", GOOD_T).unwrap_err();
+        assert!(e.contains("do not overlap"), "{e}");
+        // Nearly every spike outside every window.
+        let mut many = String::from("unit,time_s\n3,0.51\n");
+        for i in 0..100 {
+            many.push_str(&format!("3,{}\n", 0.8 + i as f64 * 0.0065));
+        }
+        let e = check(&many, GOOD_T).unwrap_err();
+        assert!(e.contains("fall in no trial window"), "{e}");
+    }
 
     #[test]
     fn reads_good_tables_and_reports() {
