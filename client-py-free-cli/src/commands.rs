@@ -13,6 +13,9 @@ use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
+/// Below this many labelled trials a stimulus gets a warning at fit.
+pub const FEW_TRIALS: usize = 3;
+
 /// Reads a scenario file (TOML).
 pub fn read_scenario(path: &Path) -> anyhow::Result<Scenario> {
     let text = std::fs::read_to_string(path)
@@ -133,6 +136,15 @@ pub fn fit_cmd_with(
     eprintln!("{report}");
     let t0 = std::time::Instant::now();
     let (spec, plan) = fit_dataset(&data, &opts, std::io::stderr().is_terminal() && !quiet)?;
+    for (name, &n) in plan.stimuli.iter().zip(&plan.trials_per_stimulus) {
+        if (n as usize) < FEW_TRIALS {
+            eprintln!(
+                "warning: stimulus {name:?} has only {n} labelled trial{} in {}: its cells lean on each unit's pooled data (see \"Few trials\" in the README), and `auspex validate` needs at least 2",
+                if n == 1 { "" } else { "s" },
+                source.describe()
+            );
+        }
+    }
     if !quiet {
         print!("{}", summary_table(&spec));
     }

@@ -349,15 +349,20 @@ enum Cmd {
 enum Steer {
     /// Decision threshold and minimum time (apply to trials that open from now on)
     Policy {
+        /// Decide when the top posterior reaches this, in (0, 1] (default: keep the current one)
         #[arg(long)]
-        threshold: f64,
+        threshold: Option<f64>,
+        /// ... but not before this many ms after onset (default: keep the current one)
         #[arg(long)]
-        min_time_ms: f64,
+        min_time_ms: Option<f64>,
     },
     /// Prior over stimuli, comma-separated in model order; "model" restores the model's
     Prior { prior: String },
     /// order-stats, inhomogeneous-poisson or count-only
-    Decoder { decoder: String },
+    Decoder {
+        #[arg(value_parser = ["order-stats", "inhomogeneous-poisson", "count-only"])]
+        decoder: String,
+    },
     /// Load a model file; open trials finish on the old one
     Reload { model: PathBuf },
     /// Learning during the session: freeze (keep the model, keep collecting trials), resume, or
@@ -603,7 +608,17 @@ fn main() {
         Cmd::Steer { control, what } => runtime().and_then(|rt| rt.block_on(async {
             use v1::control_request::Body as B;
             let body = match what {
-                Steer::Policy { threshold, min_time_ms } => B::SetPolicy(v1::SetPolicy { threshold, min_time_s: min_time_ms / 1000.0 }),
+                Steer::Policy { threshold, min_time_ms } => {
+                    if threshold.is_none() && min_time_ms.is_none() {
+                        anyhow::bail!("give --threshold, --min-time-ms or both");
+                    }
+                    // The request sets both: fill in what was not given from the daemon's status.
+                    let st = auspex::live::status(&control).await?;
+                    B::SetPolicy(v1::SetPolicy {
+                        threshold: threshold.unwrap_or(st.threshold),
+                        min_time_s: min_time_ms.map(|m| m / 1000.0).unwrap_or(st.min_time_s),
+                    })
+                }
                 Steer::Prior { prior } => B::SetPrior(v1::SetPrior { prior: if prior == "model" { vec![] } else { parse_prior(&prior).map_err(|e| anyhow::anyhow!(e))? } }),
                 Steer::Decoder { decoder } => B::SetDecoder(v1::SetDecoder { decoder }),
                 Steer::Reload { model } => B::Reload(v1::ReloadModel { path: std::fs::canonicalize(&model).unwrap_or(model).display().to_string() }),

@@ -318,7 +318,7 @@ impl MonitorState {
                 Style::default().fg(Color::Gray),
             )),
             Line::from(Span::styled(
-                "q quit · p pause · s sort units · ↑/↓ select unit",
+                "q quit · p pause · o order units · ↑/↓ select unit",
                 Style::default().fg(Color::DarkGray),
             )),
         ];

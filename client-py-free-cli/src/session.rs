@@ -80,7 +80,7 @@ pub async fn monitor(
                                     Char('q') | Esc => return Ok(()),
                                     Char('c') if k.modifiers.contains(crossterm::event::KeyModifiers::CONTROL) => return Ok(()),
                                     Char('p') => state.paused = !state.paused,
-                                    Char('s') => state.next_sort(),
+                                    Char('o') => state.next_sort(),
                                     Up | Char('k') => state.select(-1),
                                     Down | Char('j') => state.select(1),
                                     _ => {}

@@ -424,7 +424,16 @@ pub fn validate(
         .unwrap_or(0);
     let k = opts.folds.clamp(2, min_per.max(2));
     if min_per < 2 {
-        anyhow::bail!("every stimulus needs at least 2 labelled trials for cross-validation");
+        let few: Vec<String> = (0..ns)
+            .filter_map(|s| {
+                let n = labels.iter().filter(|&&l| l == s).count();
+                (n < 2).then(|| format!("{:?} ({n})", stimuli[s]))
+            })
+            .collect();
+        anyhow::bail!(
+            "{source}: every stimulus needs at least 2 labelled trials for cross-validation; too few: {}",
+            few.join(", ")
+        );
     }
     let fold_of = stratified_folds(&labels, ns, k, opts.seed);
     let bw_ms = opts.fit.bin_width_s * 1000.0;
