@@ -586,7 +586,7 @@ fn main() {
                         "no learned model yet".to_string()
                     };
                     println!("learning {state}: {} labelled trials taken · {model} · {} refits (every {} trials or {:.0} s){}", l.trials_learned, l.refits, l.refit_every_trials, l.refit_every_s,
-                        if l.waiting_for.is_empty() { String::new() } else { format!(" · waiting for {}", l.waiting_for) });
+                        if l.waiting_for.is_empty() { String::new() } else { format!(" · not yet: {}", l.waiting_for) });
                 }
                 for e in &s.ended_sessions {
                     println!("{}", auspex::monitor::session_line(e));

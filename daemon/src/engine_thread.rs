@@ -507,7 +507,7 @@ impl EngineThread {
             applied_at: None,
             last_refit_s: 0.0,
             refits: 0,
-            waiting_for: "a session to start".into(),
+            waiting_for: "no session has started".into(),
         });
         let mut t = EngineThread {
             base: s.model.clone().map(|m| (m, s.model_path.clone())),
@@ -931,7 +931,7 @@ impl EngineThread {
             l.trials_sent = 0;
             l.model_trials = 0;
             l.applied_at = None;
-            l.waiting_for = "labelled trials".into();
+            l.waiting_for = "no labelled trial yet".into();
             let _ = l.tx.send(LearnMsg::Session {
                 epoch: self.epoch,
                 tick_rate_hz: ss.tick_rate_hz,
