@@ -225,6 +225,22 @@ impl Plot {
             y += 13.0;
         }
     }
+    /// A legend whose top-left corner is at (x, y) in data coordinates (kept off the data).
+    fn legend_at(&mut self, items: &[(String, &str)], x: f64, y: f64) {
+        let (mut py, px) = (self.sy(y) + 12.0, self.sx(x) + 4.0);
+        for (label, col) in items {
+            let _ = write!(
+                self.svg,
+                r##"<line x1="{px:.1}" y1="{:.1}" x2="{:.1}" y2="{:.1}" stroke="{col}" stroke-width="2.5"/><text x="{:.1}" y="{py:.1}" class="tk">{}</text>"##,
+                py - 3.5,
+                px + 16.0,
+                py - 3.5,
+                px + 20.0,
+                esc(label)
+            );
+            py += 13.0;
+        }
+    }
     fn finish(self) -> String {
         format!(
             r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" viewBox="0 0 {w} {h}">{}</svg>"#,
@@ -399,6 +415,54 @@ fn tradeoff_plot(v: &Validation) -> String {
         true,
     );
     p.legend(&decoder_legend(v));
+    p.finish()
+}
+
+fn calibration_plot(v: &Validation) -> String {
+    let mut p = Plot::new(460.0, 360.0, (0.0, 1.0), (0.0, 1.0));
+    p.axes(
+        "Reliability: stated confidence against held-out accuracy",
+        "top posterior (bins of 0.1 with ≥ 5 trials)",
+        "accuracy (95% interval)",
+    );
+    p.line(&[(0.0, 0.0), (1.0, 1.0)], "#555", 1.0, true);
+    p.text(0.62, 0.06, "dashed: perfect calibration", "#555");
+    let sets = &v.calibration.reliability;
+    let shown: Vec<usize> = [0, sets.len().saturating_sub(1)]
+        .into_iter()
+        .filter(|&i| i < sets.len())
+        .collect::<std::collections::BTreeSet<_>>()
+        .into_iter()
+        .collect();
+    let mut legend = Vec::new();
+    for (k, &i) in shown.iter().enumerate() {
+        let set = &sets[i];
+        let col = DECODER_COLOURS[k % 3];
+        // Bins of fewer than 5 trials say little and would dominate the picture.
+        let bins: Vec<_> = set.bins.iter().filter(|b| b.n >= 5).collect();
+        let pts: Vec<(f64, f64)> = bins.iter().map(|b| (b.confidence, b.accuracy)).collect();
+        p.line(&pts, col, 1.5, false);
+        for b in bins {
+            p.line(&[(b.confidence, b.lo), (b.confidence, b.hi)], col, 1.0, false);
+            p.dot(
+                b.confidence,
+                b.accuracy,
+                3.0,
+                col,
+                &format!(
+                    "{}: confidence {:.3}, accuracy {:.1}% [{:.1}, {:.1}] of {} trials",
+                    set.when,
+                    b.confidence,
+                    100.0 * b.accuracy,
+                    100.0 * b.lo,
+                    100.0 * b.hi,
+                    b.n
+                ),
+            );
+        }
+        legend.push((format!("{} (ECE {:.3})", set.when, set.ece), col));
+    }
+    p.legend_at(&legend, 0.02, 0.98);
     p.finish()
 }
 
@@ -903,6 +967,27 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
         i.bits,
     );
     s += &units_plot(v);
+    s += "</div><h2>Do decisions keep their promise?</h2><p class=sub>Deciding at threshold θ promises to be right at least a share θ of the time. Below, the order-statistics decoder's decisions on held-out trials: realised accuracy with its 95% Clopper–Pearson interval for every threshold, flagged where the whole interval lies below the promise; and the reliability of the stated confidence (top posterior, binned by 0.1) at decision time and at the window end, with the expected calibration error (ECE: the trial-weighted mean gap between confidence and accuracy). Points below the diagonal are over-confident.</p><div class=row>";
+    s += &calibration_plot(v);
+    s += "<table><tr><th>threshold (promise)</th><th>held-out accuracy [95%]</th><th></th></tr>";
+    for p in &v.calibration.promises {
+        let _ = write!(
+            s,
+            "<tr><td>{}</td><td>{:.1}% [{:.1}, {:.1}]</td><td class={}>{}</td></tr>",
+            p.threshold,
+            100.0 * p.accuracy,
+            100.0 * p.lo,
+            100.0 * p.hi,
+            if p.kept { "ok" } else { "warn" },
+            if p.kept { "kept" } else { "broken" }
+        );
+    }
+    s += "</table><table><tr><th>confidence at</th><th>ECE</th><th>trials</th></tr>";
+    for r in &v.calibration.reliability {
+        let n: u64 = r.bins.iter().map(|b| b.n).sum();
+        let _ = write!(s, "<tr><td>{}</td><td>{:.3}</td><td>{n}</td></tr>", esc(&r.when), r.ece);
+    }
+    s += "</table>";
     if !v.learning_curve.is_empty() {
         s += "</div><h2>How many trials: the learning curve</h2><p class=sub>The same folds, with each fold's training trials cut to n per stimulus (a seeded random subset), the model fitted on them as <code>auspex fit</code> fits and the fold's untouched held-out trials decoded at the window end (order statistics, all units). Bands: 95% Clopper–Pearson interval of accuracy; ±1.96 standard errors of the information. It answers how many trials per stimulus a session of this kind needs.</p><div class=row>";
         s += &learning_plots(v);

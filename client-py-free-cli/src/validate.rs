@@ -63,6 +63,41 @@ pub const THRESHOLDS: [f64; 8] = [0.5, 0.6, 0.7, 0.8, 0.9, 0.95, 0.99, 0.999];
 /// Consecutive bins the lower 95% bound must stay above chance for "reliably above chance".
 pub const RELIABLE_RUN_BINS: usize = 10;
 
+/// How reliable the stated confidence is at one moment of the trial.
+#[derive(Clone, Debug, Serialize)]
+pub struct ReliabilitySet {
+    /// When: "at decision (θ = …)", "at 25 ms", …, "at window end".
+    pub when: String,
+    /// Confidence bins with accuracy and interval.
+    pub bins: Vec<auspex_engine::validation::ReliabilityBin>,
+    /// Expected calibration error.
+    pub ece: f64,
+}
+
+/// Whether deciding at a threshold keeps its promise on held-out trials.
+#[derive(Clone, Debug, Serialize)]
+pub struct Promise {
+    /// The threshold: the promised accuracy.
+    pub threshold: f64,
+    /// Held-out accuracy of decisions at it.
+    pub accuracy: f64,
+    /// 95% Clopper–Pearson interval.
+    pub lo: f64,
+    /// 95% Clopper–Pearson interval.
+    pub hi: f64,
+    /// The interval reaches the promise (kept) or lies wholly below it (broken).
+    pub kept: bool,
+}
+
+/// Calibration of the order-statistics decoder's posteriors on held-out trials.
+#[derive(Clone, Debug, Serialize)]
+pub struct Calibration {
+    /// Reliability at decision time and at fixed times after onset.
+    pub reliability: Vec<ReliabilitySet>,
+    /// Every threshold of the trade-off, promise against realised accuracy.
+    pub promises: Vec<Promise>,
+}
+
 /// One point of the learning curve.
 #[derive(Clone, Debug, Serialize)]
 pub struct LearningPoint {
@@ -247,6 +282,8 @@ pub struct Validation {
     /// Held-out accuracy and information at the window end against training trials per stimulus
     /// (same folds, training trials subsampled per stimulus).
     pub learning_curve: Vec<LearningPoint>,
+    /// Whether the decisions' confidence keeps its promise (order statistics, held out).
+    pub calibration: Calibration,
     /// Seconds the run took.
     pub seconds: f64,
 }
@@ -634,6 +671,7 @@ pub fn validate(
             confusion_end: nested(&conf_end, ns),
         });
     }
+    let calibration = calibration(&traj[0], &labels, ns, nb, bw_ms, min_bin, opts.threshold, &decoders[0]);
     // The observed population figure is the engine's own window-end confusion (order stats);
     // the closed form used by the null must agree with it.
     let engine_conf: Vec<u64> = decoders[0].confusion_end.concat();
@@ -722,6 +760,7 @@ pub fn validate(
         },
         closed_form_agrees,
         learning_curve,
+        calibration,
         seconds: t0.elapsed().as_secs_f64(),
     };
     Ok((
@@ -734,6 +773,83 @@ pub fn validate(
             rescaled,
         },
     ))
+}
+
+/// Times after onset (ms) at which the reliability of the posterior is shown, besides the
+/// decision time and the window end.
+const RELIABILITY_TIMES_MS: [f64; 3] = [25.0, 50.0, 100.0];
+
+/// Reliability of the top posterior (held-out trajectories) at decision time, at fixed times
+/// and at the window end, and every threshold's promise against its realised accuracy.
+#[allow(clippy::too_many_arguments)]
+fn calibration(
+    traj: &[Vec<f32>],
+    labels: &[usize],
+    ns: usize,
+    nb: usize,
+    bw_ms: f64,
+    min_bin: usize,
+    threshold: f64,
+    order_stats: &DecoderReport,
+) -> Calibration {
+    use auspex_engine::validation::reliability;
+    let at_bin = |b: usize| -> Vec<(f64, bool)> {
+        traj.iter()
+            .zip(labels)
+            .map(|(tr, &l)| {
+                let row = &tr[b * ns..(b + 1) * ns];
+                let top = argmax(row);
+                (row[top] as f64, top == l)
+            })
+            .collect()
+    };
+    let mut sets = Vec::new();
+    let decided: Vec<(f64, bool)> = traj
+        .iter()
+        .zip(labels)
+        .map(|(tr, &l)| {
+            let (s, b, _) = decide(tr, ns, threshold, min_bin, true);
+            (tr[b * ns + s] as f64, s == l)
+        })
+        .collect();
+    let (bins, ece) = reliability(&decided, 10);
+    sets.push(ReliabilitySet {
+        when: format!("at decision (θ = {threshold})"),
+        bins,
+        ece,
+    });
+    for t in RELIABILITY_TIMES_MS {
+        let b = (t / bw_ms).round() as usize;
+        if b >= 1 && b < nb {
+            let (bins, ece) = reliability(&at_bin(b - 1), 10);
+            sets.push(ReliabilitySet {
+                when: format!("at {t:.0} ms"),
+                bins,
+                ece,
+            });
+        }
+    }
+    let (bins, ece) = reliability(&at_bin(nb - 1), 10);
+    sets.push(ReliabilitySet {
+        when: "at window end".into(),
+        bins,
+        ece,
+    });
+    let promises = order_stats
+        .tradeoff
+        .iter()
+        .map(|t| Promise {
+            threshold: t.threshold,
+            accuracy: t.accuracy,
+            lo: t.lo,
+            hi: t.hi,
+            kept: t.hi >= t.threshold,
+        })
+        .collect();
+    Calibration {
+        reliability: sets,
+        promises,
+    }
 }
 
 /// Training sizes (trials per stimulus) the learning curve tries, up to what the folds hold.
@@ -938,6 +1054,39 @@ pub fn summary_table(v: &Validation) -> String {
             100.0 * d.decision.accuracy,
             d.decision.mean_time_ms,
             d.info_bits
+        );
+    }
+    let broken: Vec<String> = v
+        .calibration
+        .promises
+        .iter()
+        .filter(|p| !p.kept)
+        .map(|p| {
+            format!(
+                "{} ({:.1}% [{:.1}, {:.1}])",
+                p.threshold,
+                100.0 * p.accuracy,
+                100.0 * p.lo,
+                100.0 * p.hi
+            )
+        })
+        .collect();
+    let ece = v
+        .calibration
+        .reliability
+        .first()
+        .map(|r| r.ece)
+        .unwrap_or(f64::NAN);
+    if broken.is_empty() {
+        let _ = writeln!(
+            s,
+            "promise (decide at θ ⇒ right ≥ θ): kept at every threshold on held-out trials (calibration error at decision {ece:.3})"
+        );
+    } else {
+        let _ = writeln!(
+            s,
+            "promise (decide at θ ⇒ right ≥ θ): BROKEN at {} — the whole 95% interval lies below θ (calibration error at decision {ece:.3}; see the report)",
+            broken.join(", ")
         );
     }
     if !v.learning_curve.is_empty() {

@@ -84,6 +84,19 @@ fn timing_beats_count_only_and_information_is_significant() {
         lc.last().unwrap().lo > lc.first().unwrap().hi,
         "learning curve {lc:?}"
     );
+    // Calibration: every threshold's promise against its realised accuracy (kept exactly when
+    // the interval reaches the threshold), reliability sets over every held-out trial.
+    let c = &v.calibration;
+    assert_eq!(c.promises.len(), auspex::validate::THRESHOLDS.len());
+    for (p, t) in c.promises.iter().zip(&v.decoders[0].tradeoff) {
+        assert_eq!((p.threshold, p.accuracy), (t.threshold, t.accuracy));
+        assert_eq!(p.kept, p.hi >= p.threshold);
+    }
+    assert!(c.reliability[0].when.starts_with("at decision"));
+    for r in &c.reliability {
+        assert_eq!(r.bins.iter().map(|b| b.n).sum::<u64>(), v.trials as u64);
+        assert!((0.0..=1.0).contains(&r.ece));
+    }
     // JSON round trip holds the same figures.
     let j: serde_json::Value = serde_json::from_str(&serde_json::to_string(&v).unwrap()).unwrap();
     assert_eq!(

@@ -193,6 +193,60 @@ pub fn earliest_reliable(lower: &[f64], chance: f64, run: usize) -> Option<usize
     })
 }
 
+/// One confidence bin of a reliability diagram.
+#[derive(Clone, Debug, PartialEq, serde::Serialize)]
+pub struct ReliabilityBin {
+    /// Lower edge of the confidence bin.
+    pub from: f64,
+    /// Upper edge (the last bin includes 1).
+    pub to: f64,
+    /// Trials whose confidence fell in the bin.
+    pub n: u64,
+    /// Their mean confidence (top posterior).
+    pub confidence: f64,
+    /// Share of them decoded right.
+    pub accuracy: f64,
+    /// 95% Clopper–Pearson interval of the accuracy.
+    pub lo: f64,
+    /// 95% Clopper–Pearson interval of the accuracy.
+    pub hi: f64,
+}
+
+/// Reliability of stated confidences: `points` are (top posterior, decoded right), binned into
+/// `n_bins` equal-width confidence bins; returns the non-empty bins and the expected calibration
+/// error `ECE = Σ_b (n_b / N) · |accuracy_b − confidence_b|`.
+pub fn reliability(points: &[(f64, bool)], n_bins: usize) -> (Vec<ReliabilityBin>, f64) {
+    let n_bins = n_bins.max(1);
+    let mut acc = vec![(0u64, 0u64, 0.0f64); n_bins];
+    for &(c, right) in points {
+        let b = ((c.clamp(0.0, 1.0) * n_bins as f64) as usize).min(n_bins - 1);
+        acc[b].0 += 1;
+        acc[b].1 += right as u64;
+        acc[b].2 += c;
+    }
+    let total = points.len().max(1) as f64;
+    let mut ece = 0.0;
+    let mut bins = Vec::new();
+    for (b, &(n, k, csum)) in acc.iter().enumerate() {
+        if n == 0 {
+            continue;
+        }
+        let (conf, a) = (csum / n as f64, k as f64 / n as f64);
+        ece += n as f64 / total * (a - conf).abs();
+        let (lo, hi) = crate::stats::clopper_pearson(k, n, 0.05);
+        bins.push(ReliabilityBin {
+            from: b as f64 / n_bins as f64,
+            to: (b + 1) as f64 / n_bins as f64,
+            n,
+            confidence: conf,
+            accuracy: a,
+            lo,
+            hi,
+        });
+    }
+    (bins, ece)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -209,6 +263,24 @@ mod tests {
             }
         }
         assert_eq!(f, stratified_folds(&labels, 4, 5, 1), "seeded");
+    }
+
+    #[test]
+    fn reliability_and_ece_match_a_hand_computed_case() {
+        // Five trials: confidences 0.95 (right), 0.92 (wrong), 0.85 (right), 0.55 (right),
+        // 0.52 (wrong), in 10 bins. Bin [0.9, 1): n 2, confidence 0.935, accuracy 0.5;
+        // bin [0.8, 0.9): n 1, 0.85, 1.0; bin [0.5, 0.6): n 2, 0.535, 0.5.
+        // ECE = 2/5·|0.5 − 0.935| + 1/5·|1 − 0.85| + 2/5·|0.5 − 0.535|
+        //     = 0.174 + 0.03 + 0.014 = 0.218 (computed by hand).
+        let pts = [(0.95, true), (0.92, false), (0.85, true), (0.55, true), (0.52, false)];
+        let (bins, ece) = reliability(&pts, 10);
+        assert_eq!(bins.len(), 3);
+        assert_eq!((bins[0].n, bins[1].n, bins[2].n), (2, 1, 2));
+        assert!((bins[2].confidence - 0.935).abs() < 1e-12 && bins[2].accuracy == 0.5);
+        assert!((ece - 0.218).abs() < 1e-12, "{ece}");
+        assert!(bins.iter().all(|b| b.lo <= b.accuracy && b.accuracy <= b.hi));
+        // A confidence of exactly 1 falls in the last bin.
+        assert_eq!(reliability(&[(1.0, true)], 10).0[0].from, 0.9);
     }
 
     #[test]
