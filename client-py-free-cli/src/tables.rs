@@ -33,13 +33,18 @@ fn split_fields(line: &str, delim: char) -> Vec<String> {
     out.into_iter().map(|s| s.trim().to_string()).collect()
 }
 
+/// The largest tick a table may hold: half the tick range, so an onset plus its window, or a
+/// spike's distance from an onset, never overflows.
+const MAX_TICK: f64 = 4.0e18;
+
 struct Table {
     path: String,
+    tick_rate_hz: f64,
     rows: Vec<(usize, Vec<String>)>,
     cols: HashMap<String, usize>,
 }
 
-fn read_table(path: &Path, required: &[&str]) -> Result<Table, TableError> {
+fn read_table(path: &Path, required: &[&str], tick_rate_hz: f64) -> Result<Table, TableError> {
     let p = path.display().to_string();
     let text =
         std::fs::read_to_string(path).map_err(|e| TableError(format!("{p}: cannot read: {e}")))?;
@@ -91,6 +96,7 @@ fn read_table(path: &Path, required: &[&str]) -> Result<Table, TableError> {
     }
     Ok(Table {
         path: p,
+        tick_rate_hz,
         rows,
         cols,
     })
@@ -169,6 +175,14 @@ impl Table {
             return Err(TableError(format!(
                 "{}:{line}: column `{col}`: {v} is negative; times are seconds from the start of the recording",
                 self.path
+            )));
+        }
+        if x * self.tick_rate_hz > MAX_TICK {
+            return Err(TableError(format!(
+                "{}:{line}: column `{col}`: {v} s is beyond what the clock can count at {} ticks/s (at most {:.3e} s); times are seconds from the start of the recording",
+                self.path,
+                self.tick_rate_hz,
+                MAX_TICK / self.tick_rate_hz
             )));
         }
         Ok(x)
@@ -251,7 +265,7 @@ pub fn read_dataset(
             "tick rate {tick_rate_hz} must be at least 1 tick per second"
         )));
     }
-    let st = read_table(spikes, &["unit", "time_s"])?;
+    let st = read_table(spikes, &["unit", "time_s"], tick_rate_hz)?;
     let mut sp = Vec::with_capacity(st.rows.len());
     let mut units = std::collections::BTreeSet::new();
     for (line, row) in &st.rows {
@@ -268,7 +282,7 @@ pub fn read_dataset(
         sp.push((seconds_to_ticks(t, tick_rate_hz), unit));
     }
     sp.sort_unstable();
-    let tt = read_table(trials, &["trial", "onset_s", "stimulus"])?;
+    let tt = read_table(trials, &["trial", "onset_s", "stimulus"], tick_rate_hz)?;
     let mut tr = Vec::with_capacity(tt.rows.len());
     let mut seen: HashMap<u64, usize> = HashMap::new();
     for (line, row) in &tt.rows {
@@ -440,6 +454,14 @@ mod tests {
 
     const GOOD_T: &str = "trial,onset_s,stimulus\n1,0.5,N\n2,1.5,S\n";
     const GOOD_S: &str = "unit,time_s\n3,0.51\n3,0.6\n4,1.6\n";
+
+    #[test]
+    fn times_beyond_the_clock_are_refused_not_wrapped() {
+        // An onset of 1e13 s at 1 MHz is 1e19 ticks, past the tick range (it used to panic
+        // computing the window).
+        let e = err(GOOD_S, "trial,onset_s,stimulus\n1,1e13,N\n2,1.5,S\n");
+        assert!(e.contains("t.csv:2") && e.contains("beyond what the clock can count"), "{e}");
+    }
 
     #[test]
     fn tab_and_semicolon_tables_are_read() {

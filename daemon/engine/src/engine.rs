@@ -168,7 +168,7 @@ pub struct Counters {
     pub watermark_backwards: u64,
     /// Duplicate trial ids.
     pub duplicate_trials: u64,
-    /// Onsets too far in the past.
+    /// Onsets too far in the past, or whose window would run past the end of the tick range.
     pub stale_onsets: u64,
     /// Labels or cancels for trials not held.
     pub unknown_trials: u64,
@@ -689,6 +689,16 @@ impl Engine {
             return Err(EngineError::DuplicateTrial(id));
         }
         if self.watermark != i64::MIN && onset < self.watermark.saturating_sub(self.history_ticks) {
+            self.counters.stale_onsets += 1;
+            return Err(EngineError::StaleOnset {
+                trial: id,
+                onset,
+                watermark: self.watermark,
+            });
+        }
+        // The window must end inside the tick range (a bogus onset near i64::MAX would wrap).
+        let window = self.bin_ticks.saturating_mul(self.model.n_bins() as i64);
+        if onset.checked_add(window).is_none() {
             self.counters.stale_onsets += 1;
             return Err(EngineError::StaleOnset {
                 trial: id,

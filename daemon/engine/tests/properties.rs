@@ -189,3 +189,32 @@ proptest! {
         }
     }
 }
+
+/// An onset whose window would run past the end of the tick range is refused and counted; the
+/// engine goes on decoding (it used to wrap in release builds and panic with overflow checks).
+#[test]
+fn an_onset_at_the_end_of_the_tick_range_is_refused_not_wrapped() {
+    use auspex_engine::engine::{EngineError, NullSink};
+    let spec = auspex_engine::ModelSpec {
+        bin_width_s: 0.001,
+        n_bins: 4,
+        stimuli: vec!["a".into(), "b".into()],
+        units: vec![1],
+        prior: vec![0.5, 0.5],
+        cells: (0..2)
+            .map(|s| auspex_engine::CellSpec {
+                count: CountParams::Poisson { mean: 1.0 + s as f64 },
+                timing: vec![0.25; 4],
+                summary: Default::default(),
+            })
+            .collect(),
+    };
+    let m = Arc::new(Model::new(spec).unwrap());
+    let mut e = Engine::new(m, EngineConfig::new(1000.0)).unwrap();
+    let r = e.open_trial(1, i64::MAX - 2, None, &mut NullSink);
+    assert!(matches!(r, Err(EngineError::StaleOnset { .. })), "{r:?}");
+    assert_eq!(e.counters().stale_onsets, 1);
+    e.open_trial(2, 0, None, &mut NullSink).unwrap();
+    e.advance(i64::MAX, &mut NullSink).unwrap();
+    assert_eq!(e.counters().trials_completed, 1);
+}
