@@ -13,6 +13,7 @@ pub mod monitor;
 pub mod offline;
 pub mod prequential;
 pub mod report;
+pub mod send;
 pub mod session;
 pub mod tables;
 pub mod validate;

@@ -311,6 +311,21 @@ enum Cmd {
         #[arg(long, default_value = "auspex-replay")]
         sender: String,
     },
+    /// Send plain text lines (spike UNIT TICK, through TICK, onset TRIAL TICK [STIM], label, cancel,
+    /// units … from TICK, session, end) to a daemon: a bridge for programs in any language
+    Send {
+        /// File or named pipe to read (default: standard input)
+        input: Option<PathBuf>,
+        /// Keep reading a file that is being appended to, until an `end` line
+        #[arg(long)]
+        follow: bool,
+        /// Daemon ingest endpoint (or its task endpoint for task-control lines)
+        #[arg(long, default_value = auspexd::config::defaults::INGEST)]
+        to: String,
+        /// Sender name (each program that sends needs its own)
+        #[arg(long, default_value = "auspex-send")]
+        sender: String,
+    },
     /// Show a daemon's state, model and counters
     Status {
         /// Daemon control endpoint
@@ -561,6 +576,18 @@ fn main() {
                 Ok(())
             })
         }),
+        Cmd::Send { input, follow, to, sender } => runtime().and_then(|rt| rt.block_on(async {
+            let reader: Box<dyn std::io::BufRead + Send> = match &input {
+                Some(p) => Box::new(std::io::BufReader::new(
+                    std::fs::File::open(p).map_err(|e| anyhow::anyhow!("{}: cannot open: {e}", p.display()))?,
+                )),
+                None => Box::new(std::io::BufReader::new(std::io::stdin())),
+            };
+            let s = auspex::send::send(reader, &to, &sender, follow).await?;
+            eprintln!("sent {} messages ({} spikes) as {sender:?}{}", s.messages, s.spikes,
+                if s.bad_lines > 0 { format!("; {} lines were refused (see above)", s.bad_lines) } else { String::new() });
+            Ok(())
+        })),
         Cmd::Status { control, json } => runtime().and_then(|rt| rt.block_on(async {
             let s = auspex::live::status(&control).await?;
             if json {
@@ -576,7 +603,8 @@ fn main() {
                 if s.tick_rate_hz > 0.0 {
                     println!("session {:?} · clock {} ticks/s · open trials {:?} · recording {}", s.session_name, s.tick_rate_hz, s.open_trials, if s.recording_path.is_empty() { "off" } else { &s.recording_path });
                 } else {
-                    println!("no session yet (waiting for SessionStart) · recording {}", if s.recording_path.is_empty() { "off" } else { &s.recording_path });
+                    let ended = if s.ended_sessions.is_empty() { String::new() } else { format!(" ({} ended)", s.ended_sessions.len()) };
+                    println!("no session running{ended}: waiting for a SessionStart · recording {}", if s.recording_path.is_empty() { "off" } else { &s.recording_path });
                 }
                 if let Some(l) = &s.learning {
                     let state = if l.enabled { "on" } else { "frozen" };

@@ -1005,6 +1005,9 @@ impl EngineThread {
         self.held.clear();
         self.collector = None;
         self.tick_rate = self.fixed_tick_rate;
+        if let Some(l) = self.learn.as_mut() {
+            l.waiting_for = "the next session".into();
+        }
         if self.learn.is_some() {
             // Learning starts from the loaded model (or none) in every session.
             self.model = self.base.as_ref().map(|b| b.0.clone());

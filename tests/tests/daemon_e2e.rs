@@ -828,3 +828,45 @@ fn control_answers_every_frame_count_with_one_rule() {
     assert!(!decode(dealer.recv_multipart(0).unwrap()).ok);
     rt.block_on(running.stop());
 }
+
+#[test]
+fn text_lines_through_auspex_send_give_frames_identical_to_offline_decode() {
+    let _g = serial();
+    let f = fixture(2);
+    let rt = runtime();
+    let running = rt.block_on(auspexd::service::start(config(&f, None))).unwrap();
+    let ep = running.endpoints.clone();
+    let ctx = zmq::Context::new();
+    let (stop, sub) = subscriber(&ctx, &ep.publish);
+    std::thread::sleep(Duration::from_millis(300));
+    let window = (f.model.bin_width_s() * 1e6).round() as i64 * f.model.n_bins() as i64;
+    let lines = auspex::send::dataset_lines(&f.data, window);
+    let s = rt
+        .block_on(auspex::send::send(
+            Box::new(std::io::Cursor::new(lines.into_bytes())),
+            &ep.ingest,
+            "lines",
+            false,
+        ))
+        .unwrap();
+    assert_eq!(s.bad_lines, 0);
+    assert_eq!(s.spikes, f.data.spikes.len() as u64);
+    wait_for(
+        || {
+            status(&ctx, &ep.control)
+                .ended_sessions
+                .first()
+                .is_some_and(|e| e.session_name == "lines")
+        },
+        "the lines' session to end",
+    );
+    std::thread::sleep(Duration::from_millis(300));
+    stop.send(()).unwrap();
+    let got = sub.join().unwrap();
+    rt.block_on(running.stop());
+    assert_eq!(
+        frames_of(&got),
+        offline_frames(f.model.clone(), &f.data, |_| true),
+        "frames from text lines differ from offline decoding"
+    );
+}
