@@ -144,7 +144,11 @@ enum Cmd {
     /// Decode every trial offline: posteriors.csv and decisions.csv
     Decode {
         /// Model file (not with --prequential)
-        #[arg(long, required_unless_present = "prequential", conflicts_with = "prequential")]
+        #[arg(
+            long,
+            required_unless_present = "prequential",
+            conflicts_with = "prequential"
+        )]
         model: Option<PathBuf>,
         /// Learn while decoding, as the daemon does: each trial decoded with a model fitted only on
         /// trials labelled before it opened (from a daemon's recording: at the daemon's own swap points)

@@ -74,7 +74,10 @@ impl<W: Write> EngineSink for PrequentialSink<'_, W> {
         if let Some(w) = self.out.as_mut() {
             let names = self.names.get(f.trial);
             for (s, p) in f.posterior.iter().enumerate() {
-                let name = names.and_then(|n| n.get(s)).map(String::as_str).unwrap_or("?");
+                let name = names
+                    .and_then(|n| n.get(s))
+                    .map(String::as_str)
+                    .unwrap_or("?");
                 if let Err(e) = writeln!(w, "{},{},{},{}", f.trial, f.bin, name, p) {
                     self.error = Some(e);
                     return;

@@ -443,7 +443,12 @@ fn calibration_plot(v: &Validation) -> String {
         let pts: Vec<(f64, f64)> = bins.iter().map(|b| (b.confidence, b.accuracy)).collect();
         p.line(&pts, col, 1.5, false);
         for b in bins {
-            p.line(&[(b.confidence, b.lo), (b.confidence, b.hi)], col, 1.0, false);
+            p.line(
+                &[(b.confidence, b.lo), (b.confidence, b.hi)],
+                col,
+                1.0,
+                false,
+            );
             p.dot(
                 b.confidence,
                 b.accuracy,
@@ -468,7 +473,10 @@ fn calibration_plot(v: &Validation) -> String {
 
 fn learning_plots(v: &Validation) -> String {
     let lc = &v.learning_curve;
-    let xmax = lc.last().map(|p| p.trials_per_stimulus as f64).unwrap_or(1.0);
+    let xmax = lc
+        .last()
+        .map(|p| p.trials_per_stimulus as f64)
+        .unwrap_or(1.0);
     let xs: Vec<f64> = lc.iter().map(|p| p.trials_per_stimulus as f64).collect();
     let mut a = Plot::new(460.0, 300.0, (0.0, xmax), (0.0, 1.0));
     a.axes(
@@ -985,7 +993,12 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
     s += "</table><table><tr><th>confidence at</th><th>ECE</th><th>trials</th></tr>";
     for r in &v.calibration.reliability {
         let n: u64 = r.bins.iter().map(|b| b.n).sum();
-        let _ = write!(s, "<tr><td>{}</td><td>{:.3}</td><td>{n}</td></tr>", esc(&r.when), r.ece);
+        let _ = write!(
+            s,
+            "<tr><td>{}</td><td>{:.3}</td><td>{n}</td></tr>",
+            esc(&r.when),
+            r.ece
+        );
     }
     s += "</table>";
     if !v.learning_curve.is_empty() {

@@ -246,11 +246,7 @@ pub fn dataset_lines(data: &auspex_engine::Dataset, window_ticks: i64) -> String
                 onset,
                 stimulus,
             } => {
-                let _ = writeln!(
-                    s,
-                    "onset {trial} {onset} {}",
-                    stimulus.unwrap_or_default()
-                );
+                let _ = writeln!(s, "onset {trial} {onset} {}", stimulus.unwrap_or_default());
             }
             auspex_engine::data::Event::Batch { spikes, watermark } => {
                 for (t, u) in spikes {
@@ -279,16 +275,25 @@ mod tests {
         assert_eq!(parse_line("", &mut p), Ok(None));
         match parse_line("through 120", &mut p) {
             Ok(Some(Body::Spikes(b))) => {
-                assert_eq!((b.units, b.ticks, b.complete_through), (vec![3], vec![100], 120))
+                assert_eq!(
+                    (b.units, b.ticks, b.complete_through),
+                    (vec![3], vec![100], 120)
+                )
             }
             other => panic!("{other:?}"),
         }
-        assert!(matches!(parse_line("through 130", &mut p), Ok(Some(Body::Heartbeat(_)))));
+        assert!(matches!(
+            parse_line("through 130", &mut p),
+            Ok(Some(Body::Heartbeat(_)))
+        ));
         assert!(matches!(
             parse_line("onset 7 90 N", &mut p),
             Ok(Some(Body::Onset(ref o))) if o.trial == 7 && o.onset_tick == 90 && o.stimulus == "N"
         ));
-        assert!(matches!(parse_line("label 7 S", &mut p), Ok(Some(Body::Label(_)))));
+        assert!(matches!(
+            parse_line("label 7 S", &mut p),
+            Ok(Some(Body::Label(_)))
+        ));
         assert!(matches!(
             parse_line("cancel 7 animal moved", &mut p),
             Ok(Some(Body::Cancel(ref c))) if c.reason == "animal moved"
@@ -297,7 +302,10 @@ mod tests {
             parse_line("units 9 10 from 5000", &mut p),
             Ok(Some(Body::UnitsAdded(ref u))) if u.units == [9, 10] && u.from_tick == 5000
         ));
-        assert!(matches!(parse_line("end", &mut p), Ok(Some(Body::EndOfStream(_)))));
+        assert!(matches!(
+            parse_line("end", &mut p),
+            Ok(Some(Body::EndOfStream(_)))
+        ));
         for (bad, says) in [
             ("spike x 1", "unit `x`"),
             ("spike 1", "UNIT TICK"),

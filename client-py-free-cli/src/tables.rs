@@ -130,7 +130,10 @@ pub fn check_times(
     );
     let hint = "both tables must give seconds from the same start of the recording (a table in milliseconds must be divided by 1000); if the times are right, pass --trust-times";
     let (sspan, tspan) = ((se - ss).max(1e-9), (te - ts).max(1e-9));
-    if se.max(te) > 0.0 && (sspan / tspan >= SPAN_RATIO || tspan / sspan >= SPAN_RATIO) && data.trials.len() > 1 {
+    if se.max(te) > 0.0
+        && (sspan / tspan >= SPAN_RATIO || tspan / sspan >= SPAN_RATIO)
+        && data.trials.len() > 1
+    {
         return Err(TableError(format!(
             "the times look like different units: {what}, a {:.0}-fold difference; {hint}",
             (sspan / tspan).max(tspan / sspan)
@@ -460,14 +463,21 @@ mod tests {
         // An onset of 1e13 s at 1 MHz is 1e19 ticks, past the tick range (it used to panic
         // computing the window).
         let e = err(GOOD_S, "trial,onset_s,stimulus\n1,1e13,N\n2,1.5,S\n");
-        assert!(e.contains("t.csv:2") && e.contains("beyond what the clock can count"), "{e}");
+        assert!(
+            e.contains("t.csv:2") && e.contains("beyond what the clock can count"),
+            "{e}"
+        );
     }
 
     #[test]
     fn tab_and_semicolon_tables_are_read() {
         let d = tempfile::tempdir().unwrap();
         let s = write(d.path(), "s.tsv", "unit\ttime_s\n3\t0.51\n4\t1.6\n");
-        let t = write(d.path(), "t.csv", "trial;onset_s;stimulus\n1;0.5;N\n2;1.5;S\n");
+        let t = write(
+            d.path(),
+            "t.csv",
+            "trial;onset_s;stimulus\n1;0.5;N\n2;1.5;S\n",
+        );
         let (data, _) = read_dataset(&s, &t, 1e6, 0.25).unwrap();
         assert_eq!(data.spikes, vec![(510_000, 3), (1_600_000, 4)]);
         assert_eq!(data.trials[1].stimulus.as_deref(), Some("S"));
@@ -486,8 +496,14 @@ mod tests {
         assert!(check(GOOD_S, GOOD_T).is_ok());
         // Spike times in milliseconds under the time_s header.
         let e = check("unit,time_s\n3,510\n3,600\n4,1600\n", GOOD_T).unwrap_err();
-        assert!(e.contains("look like different units") && e.contains("milliseconds"), "{e}");
-        assert!(e.contains("s.csv") && e.contains("t.csv") && e.contains("--trust-times"), "{e}");
+        assert!(
+            e.contains("look like different units") && e.contains("milliseconds"),
+            "{e}"
+        );
+        assert!(
+            e.contains("s.csv") && e.contains("t.csv") && e.contains("--trust-times"),
+            "{e}"
+        );
         // No overlap.
         let e = check("unit,time_s\n3,10.1\n3,10.6\n4,11.6\n", GOOD_T).unwrap_err();
         assert!(e.contains("do not overlap"), "{e}");

@@ -671,7 +671,16 @@ pub fn validate(
             confusion_end: nested(&conf_end, ns),
         });
     }
-    let calibration = calibration(&traj[0], &labels, ns, nb, bw_ms, min_bin, opts.threshold, &decoders[0]);
+    let calibration = calibration(
+        &traj[0],
+        &labels,
+        ns,
+        nb,
+        bw_ms,
+        min_bin,
+        opts.threshold,
+        &decoders[0],
+    );
     // The observed population figure is the engine's own window-end confusion (order stats);
     // the closed form used by the null must agree with it.
     let engine_conf: Vec<u64> = decoders[0].confusion_end.concat();
@@ -888,7 +897,11 @@ fn learning_curve(
         .flat_map(|f| f.iter().map(|v| v.len()))
         .min()
         .unwrap_or(0);
-    let mut sizes: Vec<usize> = LEARNING_SIZES.iter().copied().filter(|&n| n < most).collect();
+    let mut sizes: Vec<usize> = LEARNING_SIZES
+        .iter()
+        .copied()
+        .filter(|&n| n < most)
+        .collect();
     if most >= 2 {
         sizes.push(most);
     }

@@ -79,7 +79,9 @@ fn timing_beats_count_only_and_information_is_significant() {
     let lc = &v.learning_curve;
     assert_eq!(lc.first().unwrap().trials_per_stimulus, 2);
     assert_eq!(lc.last().unwrap().trials_per_stimulus, 16);
-    assert!(lc.iter().all(|p| p.held_out == 80 && p.lo <= p.accuracy && p.accuracy <= p.hi));
+    assert!(lc
+        .iter()
+        .all(|p| p.held_out == 80 && p.lo <= p.accuracy && p.accuracy <= p.hi));
     assert!(
         lc.last().unwrap().lo > lc.first().unwrap().hi,
         "learning curve {lc:?}"

@@ -15,14 +15,14 @@ use crate::next_stimulus::StimulusChooser;
 use crate::publish::Publisher;
 use crate::ratelog::RateLimitedLog;
 use crate::recorder::RecorderMsg;
-use auspex_proto::stream::{apply_body, remember_onset, TrialStimuli};
+use auspex_engine::assess::{assess, peak_ms, tuning, VerdictRule};
 use auspex_engine::engine::{
     Counters, Decision, DecisionReason, Engine, EngineConfig, EngineError, EngineSink, Frame,
     TrialEnd, TrialOutcome, UnitSummaries,
 };
-use auspex_engine::assess::{assess, peak_ms, tuning, VerdictRule};
 use auspex_engine::learn::{LearnOptions, TrialWindow, WindowCollector};
 use auspex_engine::Model;
+use auspex_proto::stream::{apply_body, remember_onset, TrialStimuli};
 use auspex_proto::topic;
 use auspex_proto::v1::{self, control_request, inbound, outbound, ControlReply};
 use bytes::Bytes;
@@ -258,7 +258,12 @@ impl EngineSink for PubSink<'_> {
                     })
                     .collect();
                 let preferred = (0..ns)
-                    .max_by(|&x, &y| s.model.count(i, x).mean().total_cmp(&s.model.count(i, y).mean()))
+                    .max_by(|&x, &y| {
+                        s.model
+                            .count(i, x)
+                            .mean()
+                            .total_cmp(&s.model.count(i, y).mean())
+                    })
                     .unwrap_or(0);
                 v1::UnitLine {
                     unit: s.units[i],
@@ -657,7 +662,11 @@ impl EngineThread {
             ..
         }) = &msg
         {
-            if self.session.as_ref().is_some_and(|s| s.name != ss.session_name) {
+            if self
+                .session
+                .as_ref()
+                .is_some_and(|s| s.name != ss.session_name)
+            {
                 self.end_session("new session");
             }
         }
@@ -835,7 +844,9 @@ impl EngineThread {
     fn units_added(&mut self, ua: &v1::UnitsAdded) {
         if self.session.is_none() {
             self.counters.before_session += 1;
-            self.warn("no-session", || "UnitsAdded before SessionStart; ignored".into());
+            self.warn("no-session", || {
+                "UnitsAdded before SessionStart; ignored".into()
+            });
             return;
         }
         tracing::info!(units = ?ua.units, from_tick = ua.from_tick, "units added to the session");
@@ -908,7 +919,11 @@ impl EngineThread {
         // Name the recording after the session (the file of the first session was opened at
         // start, before its name was known; later ones are opened at their session's start).
         if let (Some(dir), Some(r)) = (&self.record_dir, &self.recorder) {
-            let stem = format!("{}-{}", file_safe(&ss.session_name), utc_stamp(unix_now_s()));
+            let stem = format!(
+                "{}-{}",
+                file_safe(&ss.session_name),
+                utc_stamp(unix_now_s())
+            );
             let path = (1..)
                 .map(|i| match i {
                     1 => dir.join(format!("{stem}.apxs")),
@@ -924,8 +939,7 @@ impl EngineThread {
             self.recording_path.clone(),
         ));
         if let Some(l) = self.learn.as_mut() {
-            let window_ticks =
-                (l.setup.options.fit.window_s * ss.tick_rate_hz).round() as i64;
+            let window_ticks = (l.setup.options.fit.window_s * ss.tick_rate_hz).round() as i64;
             let history = (self.config.history_s * ss.tick_rate_hz).round() as i64;
             self.collector = Some(WindowCollector::new(window_ticks, history));
             l.trials_sent = 0;
@@ -1059,7 +1073,13 @@ impl EngineThread {
                 Some(&l.model),
             )));
         }
-        tracing::info!(trials = l.trials, units = l.model.n_units(), stimuli = l.model.n_stimuli(), fit_s = l.fit_s, "learned model applies to trials that open from now on");
+        tracing::info!(
+            trials = l.trials,
+            units = l.model.n_units(),
+            stimuli = l.model.n_stimuli(),
+            fit_s = l.fit_s,
+            "learned model applies to trials that open from now on"
+        );
         self.current = l.model.stimuli().to_vec().into();
         self.chooser.resize(l.model.n_stimuli());
         if let Some(e) = &self.engine {
@@ -1128,9 +1148,7 @@ impl EngineThread {
 
     fn set_learning(&mut self, action: &str) -> Result<(), String> {
         let Some(l) = self.learn.as_mut() else {
-            return Err(
-                "learning is off: start auspexd without --model, or with --learn".into(),
-            );
+            return Err("learning is off: start auspexd without --model, or with --learn".into());
         };
         match action {
             "freeze" => {
@@ -1403,7 +1421,12 @@ fn swap_record(opts: &LearnOptions, trials: u64, model: Option<&Arc<Model>>) -> 
             reset: model.is_none(),
             window_s: opts.fit.window_s,
             bin_width_s: opts.fit.bin_width_s,
-            families: opts.fit.families.iter().map(|f| f.name().to_string()).collect(),
+            families: opts
+                .fit
+                .families
+                .iter()
+                .map(|f| f.name().to_string())
+                .collect(),
             min_trials_per_stimulus: opts.min_trials_per_stimulus,
             max_trials_per_stimulus: opts.max_trials_per_stimulus.min(u32::MAX as usize) as u32,
         }),

@@ -279,7 +279,15 @@ fn fit(l: &Learner) -> Result<(ModelSpec, u64), String> {
     let cells = plan
         .cells
         .iter()
-        .map(|c| fit_cell(c, plan.n_bins, plan.bin_width_s, &plan.families, plan.bandwidth))
+        .map(|c| {
+            fit_cell(
+                c,
+                plan.n_bins,
+                plan.bin_width_s,
+                &plan.families,
+                plan.bandwidth,
+            )
+        })
         .collect();
     Ok((plan.assemble(cells), l.added()))
 }

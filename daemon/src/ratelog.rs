@@ -48,7 +48,6 @@ impl RateLimitedLog {
     }
 }
 
-
 impl Default for RateLimitedLog {
     fn default() -> Self {
         Self::new()

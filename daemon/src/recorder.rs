@@ -65,7 +65,11 @@ impl Recorder {
     }
 }
 
-fn open(path: &Path, model_path: &str, now_ns: i64) -> std::io::Result<SessionWriter<BufWriter<File>>> {
+fn open(
+    path: &Path,
+    model_path: &str,
+    now_ns: i64,
+) -> std::io::Result<SessionWriter<BufWriter<File>>> {
     let f = File::create(path)?;
     let mut w = SessionWriter::new(
         BufWriter::with_capacity(1 << 20, f),

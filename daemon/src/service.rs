@@ -6,12 +6,12 @@
 use crate::config::{DaemonConfig, IngestPattern};
 use crate::engine_thread::{EngineInput, EngineThread, EngineThreadSetup, LearnSetup};
 use crate::learner::LearnerThread;
-use auspex_engine::fit::FitOptions;
-use auspex_engine::learn::LearnOptions;
 use crate::publish::{bind_pub, run_publisher, PublishStats, Publisher};
 use crate::recorder::{resolve_path, Recorder};
 use anyhow::Context;
 use auspex_engine::engine::EngineConfig;
+use auspex_engine::fit::FitOptions;
+use auspex_engine::learn::LearnOptions;
 use std::future::Future;
 use std::sync::Arc;
 use tokio::sync::watch;
@@ -170,14 +170,9 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
                 .unwrap_or(0);
             let path = resolve_path(p, now_s);
             Some(
-                Recorder::start(
-                    path.clone(),
-                    &model_label,
-                    crate::ingest::now_ns(),
-                )
-                .with_context(|| {
-                    format!("{}: cannot create the session recording", path.display())
-                })?,
+                Recorder::start(path.clone(), &model_label, crate::ingest::now_ns()).with_context(
+                    || format!("{}: cannot create the session recording", path.display()),
+                )?,
             )
         }
         None => None,
@@ -188,10 +183,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
     let learner = match &cfg.learn {
         Some(l) => {
             let (window_s, bin_width_s) = match &model {
-                Some(m) => (
-                    m.bin_width_s() * m.n_bins() as f64,
-                    m.bin_width_s(),
-                ),
+                Some(m) => (m.bin_width_s() * m.n_bins() as f64, m.bin_width_s()),
                 None => (l.window_s.unwrap_or(0.25), l.bin_width_s.unwrap_or(0.001)),
             };
             let options = LearnOptions {
@@ -218,7 +210,15 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
                 cadence: l.cadence,
                 enabled: !l.frozen,
             };
-            tracing::info!(window_s, bin_width_s, min_trials = l.min_trials, refit_every_trials = l.cadence.every_trials, refit_every_s = l.cadence.every.as_secs_f64(), frozen = l.frozen, "learning from labelled trials");
+            tracing::info!(
+                window_s,
+                bin_width_s,
+                min_trials = l.min_trials,
+                refit_every_trials = l.cadence.every_trials,
+                refit_every_s = l.cadence.every.as_secs_f64(),
+                frozen = l.frozen,
+                "learning from labelled trials"
+            );
             Some((thread, setup))
         }
         None => None,

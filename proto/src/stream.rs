@@ -10,9 +10,9 @@
 //!
 //! Must not: log, count daemon-level figures, or touch sockets (callers do, from [`Applied`]).
 
+use crate::v1::inbound::Body;
 use auspex_engine::engine::{Engine, EngineError, EngineSink};
 use auspex_engine::learn::{TrialWindow, WindowCollector};
-use crate::v1::inbound::Body;
 use std::collections::{HashMap, VecDeque};
 use std::sync::Arc;
 

@@ -14,7 +14,13 @@ fn main() -> anyhow::Result<()> {
     let transport = args.get(4).cloned().unwrap_or_else(|| "tcp".into());
     let dir = tempfile::tempdir()?;
     let rt = auspexd::service::io_runtime()?;
-    let running = rt.block_on(auspex::bench::start_daemon(nu, ns, &transport, dir.path(), false))?;
+    let running = rt.block_on(auspex::bench::start_daemon(
+        nu,
+        ns,
+        &transport,
+        dir.path(),
+        false,
+    ))?;
     let eps = running.endpoints.clone();
     let ctx = zmq::Context::new();
     let sub = ctx.socket(zmq::SUB)?;

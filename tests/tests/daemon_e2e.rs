@@ -795,7 +795,9 @@ fn control_answers_every_frame_count_with_one_rule() {
     let _g = serial();
     let f = fixture(1);
     let rt = runtime();
-    let running = rt.block_on(auspexd::service::start(config(&f, None))).unwrap();
+    let running = rt
+        .block_on(auspexd::service::start(config(&f, None)))
+        .unwrap();
     let ep = running.endpoints.control.clone();
     let ctx = zmq::Context::new();
     let req_bytes = v1::ControlRequest {
@@ -803,14 +805,19 @@ fn control_answers_every_frame_count_with_one_rule() {
     }
     .encode_to_vec();
     let decode = |parts: Vec<Vec<u8>>| -> v1::ControlReply {
-        assert_eq!(parts.len(), 1, "one reply frame, never the request echoed back");
+        assert_eq!(
+            parts.len(),
+            1,
+            "one reply frame, never the request echoed back"
+        );
         v1::ControlReply::decode(parts[0].as_slice()).unwrap()
     };
     // REQ, two frames: refused with one error reply.
     let req = ctx.socket(zmq::REQ).unwrap();
     req.set_rcvtimeo(5000).unwrap();
     req.connect(&ep).unwrap();
-    req.send_multipart([req_bytes.clone(), b"extra".to_vec()], 0).unwrap();
+    req.send_multipart([req_bytes.clone(), b"extra".to_vec()], 0)
+        .unwrap();
     let r = decode(req.recv_multipart(0).unwrap());
     assert!(!r.ok && r.error.contains("one frame"), "{r:?}");
     // REQ, one frame: answered.
@@ -834,7 +841,9 @@ fn text_lines_through_auspex_send_give_frames_identical_to_offline_decode() {
     let _g = serial();
     let f = fixture(2);
     let rt = runtime();
-    let running = rt.block_on(auspexd::service::start(config(&f, None))).unwrap();
+    let running = rt
+        .block_on(auspexd::service::start(config(&f, None)))
+        .unwrap();
     let ep = running.endpoints.clone();
     let ctx = zmq::Context::new();
     let (stop, sub) = subscriber(&ctx, &ep.publish);

@@ -21,7 +21,6 @@ use prost::Message;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
-
 fn scenario() -> Scenario {
     let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();
     let mut s: Scenario = toml::from_str(&text).unwrap();
@@ -34,13 +33,10 @@ fn runtime() -> tokio::runtime::Runtime {
     auspexd::service::io_runtime().unwrap()
 }
 
-
-
-
-
-
-
-fn daemon_config(record: &std::path::Path, model: Option<std::path::PathBuf>) -> auspexd::config::DaemonConfig {
+fn daemon_config(
+    record: &std::path::Path,
+    model: Option<std::path::PathBuf>,
+) -> auspexd::config::DaemonConfig {
     let fc = FileConfig {
         model,
         ingest: Some("tcp://127.0.0.1:0".into()),
@@ -231,7 +227,10 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
     assert_eq!(st.senders[0].last_seq, n);
     let learning = st.learning.clone().unwrap();
     assert_eq!(learning.trials_learned, data.trials.len() as u64);
-    assert!(learning.refits >= 2, "models learned during the session: {learning:?}");
+    assert!(
+        learning.refits >= 2,
+        "models learned during the session: {learning:?}"
+    );
     // Save what was learned: the fit of every labelled trial of the session.
     let saved = dir.path().join("learned.apxm");
     let r = control(
@@ -263,7 +262,10 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
     let files = recordings(dir.path());
     assert_eq!(files.len(), 1, "one recording: {files:?}");
     let name = files[0].file_name().unwrap().to_string_lossy().to_string();
-    assert!(name.starts_with("rig-7-day-2-") && name.ends_with("Z.apxs"), "{name}");
+    assert!(
+        name.starts_with("rig-7-day-2-") && name.ends_with("Z.apxs"),
+        "{name}"
+    );
     let rec = read_recording(&files[0]).unwrap();
     assert!(rec.learned.len() >= 3);
 
@@ -282,7 +284,10 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
     // The recording opens with a learning marker (no model), then one per swap.
     assert!(rec.learned[0].1.reset && rec.learned[0].1.trials_learned == 0);
     assert_eq!(run.models.len(), rec.learned.len() - 1);
-    assert!(run.undecoded_trials > 0, "the first trials wait for a model");
+    assert!(
+        run.undecoded_trials > 0,
+        "the first trials wait for a model"
+    );
     assert_eq!(live.len(), offline.len());
     assert!(live == offline, "live and prequential frames differ");
 
@@ -299,12 +304,19 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
     .unwrap()
     .fit_all();
     assert!(spec.units.contains(&late));
-    assert!(spec == fitted, "the saved learned model differs from the offline fit");
-    let n_late = spec.cells[spec.units.iter().position(|&u| u == late).unwrap() * spec.stimuli.len()]
-        .summary
-        .n_trials;
+    assert!(
+        spec == fitted,
+        "the saved learned model differs from the offline fit"
+    );
+    let n_late = spec.cells
+        [spec.units.iter().position(|&u| u == late).unwrap() * spec.stimuli.len()]
+    .summary
+    .n_trials;
     let n_first = spec.cells[0].summary.n_trials;
-    assert!(n_late < n_first, "the late unit learns only from its declaration: {n_late} vs {n_first}");
+    assert!(
+        n_late < n_first,
+        "the late unit learns only from its declaration: {n_late} vs {n_first}"
+    );
 }
 
 #[derive(Default)]
@@ -357,10 +369,18 @@ fn three_sessions_through_one_daemon_are_three_recordings_and_three_summaries() 
         send(&push, &msgs, 1e9);
         let want = i + 1;
         if *name != "beta" {
-            wait_for(|| status(&ctx, &ep.control).ended_sessions.len() == want, "the session to end");
+            wait_for(
+                || status(&ctx, &ep.control).ended_sessions.len() == want,
+                "the session to end",
+            );
         } else {
             wait_for(
-                || status(&ctx, &ep.control).senders.first().is_some_and(|s| s.last_seq == msgs.len() as u64),
+                || {
+                    status(&ctx, &ep.control)
+                        .senders
+                        .first()
+                        .is_some_and(|s| s.last_seq == msgs.len() as u64)
+                },
                 "beta to be processed",
             );
         }
@@ -411,7 +431,10 @@ fn three_sessions_through_one_daemon_are_three_recordings_and_three_summaries() 
         auspex::offline::run_dataset(model.clone(), data, EngineConfig::new(1e6), &mut c).unwrap();
         c.0.sort_by_key(|x| (x.0, x.1));
         frames_by_session[i].sort_by_key(|x| (x.0, x.1));
-        assert!(frames_by_session[i] == c.0, "session {name} differs from decoding it alone");
+        assert!(
+            frames_by_session[i] == c.0,
+            "session {name} differs from decoding it alone"
+        );
     }
 }
 
@@ -498,6 +521,9 @@ fn retransmitted_messages_are_dropped_and_a_restarting_sender_is_followed() {
     let mut c = Collect::default();
     auspex::offline::run_dataset(Arc::new(truth), &data, EngineConfig::new(1e6), &mut c).unwrap();
     c.0.sort_by_key(|x| (x.0, x.1));
-    assert!(frames_of(&got) == c.0, "frames differ from decoding the session once");
+    assert!(
+        frames_of(&got) == c.0,
+        "frames differ from decoding the session once"
+    );
     assert!(sent > 0);
 }

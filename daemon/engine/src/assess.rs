@@ -128,8 +128,12 @@ pub fn tuning(n: u64, sum: f64, sum_sq: f64) -> Tuning {
 /// Assesses one unit from its presented × decoded confusion matrix (`s × s`, row = presented).
 pub fn assess(conf: &[u64], s: usize, rule: &VerdictRule) -> Assessment {
     let n: u64 = conf.iter().sum();
-    let rows: Vec<u64> = (0..s).map(|i| conf[i * s..(i + 1) * s].iter().sum()).collect();
-    let cols: Vec<u64> = (0..s).map(|j| (0..s).map(|i| conf[i * s + j]).sum()).collect();
+    let rows: Vec<u64> = (0..s)
+        .map(|i| conf[i * s..(i + 1) * s].iter().sum())
+        .collect();
+    let cols: Vec<u64> = (0..s)
+        .map(|j| (0..s).map(|i| conf[i * s + j]).sum())
+        .collect();
     let correct: u64 = (0..s).map(|i| conf[i * s + i]).sum();
     let (lo, hi) = clopper_pearson(correct, n, 0.05);
     let nf = n.max(1) as f64;

@@ -672,7 +672,11 @@ pub fn with_mean(params: &CountParams, target: f64, w: f64, pool: &[f64]) -> Opt
                 *o = (1.0 - w) * p + w * q;
             }
             // Entries past one table's end come from the other alone: keep every entry > 0.
-            let floor = out.iter().copied().filter(|x| *x > 0.0).fold(1.0f64, f64::min);
+            let floor = out
+                .iter()
+                .copied()
+                .filter(|x| *x > 0.0)
+                .fold(1.0f64, f64::min);
             for o in out.iter_mut() {
                 if *o <= 0.0 {
                     *o = floor * 1e-3;

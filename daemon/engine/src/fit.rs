@@ -7,9 +7,9 @@
 
 use crate::count::{choose_family, fit_negative_binomial, with_mean, CountDist, CountFamily};
 use crate::data::{Dataset, UnitWindows};
-use std::collections::BTreeMap;
 use crate::density::{fit_timing, BandwidthRule};
 use crate::model::{mean_var, CellSpec, CellSummary, ModelSpec};
+use std::collections::BTreeMap;
 
 /// How to fit.
 #[derive(Clone, Debug, PartialEq)]
@@ -197,7 +197,9 @@ pub(crate) fn plan_from_windows(
     if opts.families.is_empty() {
         return Err(FitError::Options("no count family allowed".into()));
     }
-    let labelled: Vec<usize> = (0..stim_of.len()).filter(|&i| stim_of[i].is_some()).collect();
+    let labelled: Vec<usize> = (0..stim_of.len())
+        .filter(|&i| stim_of[i].is_some())
+        .collect();
     let mut per = vec![0u32; stimuli.len()];
     for s in stim_of.iter().flatten() {
         per[*s] += 1;
@@ -301,7 +303,10 @@ pub fn shrink_unit(inputs: &[&CellInput], cells: &mut [CellSpec]) -> f64 {
     } else {
         KAPPA_MAX
     };
-    let all_counts: Vec<u32> = inputs.iter().flat_map(|c| c.counts.iter().copied()).collect();
+    let all_counts: Vec<u32> = inputs
+        .iter()
+        .flat_map(|c| c.counts.iter().copied())
+        .collect();
     let pool_pmf = CountDist::new(fit_negative_binomial(&all_counts))
         .map(|d| d.pmf().to_vec())
         .unwrap_or_default();
@@ -418,7 +423,15 @@ mod tests {
     fn raw_and_shrunk(inputs: &[CellInput]) -> (Vec<CellSpec>, Vec<CellSpec>, f64) {
         let raw: Vec<CellSpec> = inputs
             .iter()
-            .map(|c| fit_cell(c, 4, 0.001, &[CountFamily::Poisson], BandwidthRule::default()))
+            .map(|c| {
+                fit_cell(
+                    c,
+                    4,
+                    0.001,
+                    &[CountFamily::Poisson],
+                    BandwidthRule::default(),
+                )
+            })
             .collect();
         let mut shrunk = raw.clone();
         let refs: Vec<&CellInput> = inputs.iter().collect();

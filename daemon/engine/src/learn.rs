@@ -79,8 +79,7 @@ impl WindowCollector {
         if self.recent_set.contains(&id) {
             return;
         }
-        if self.watermark != i64::MIN && onset < self.watermark.saturating_sub(self.history_ticks)
-        {
+        if self.watermark != i64::MIN && onset < self.watermark.saturating_sub(self.history_ticks) {
             return;
         }
         if self.recent.len() == RECENT_IDS {

@@ -182,7 +182,9 @@ impl Model {
             }
         }
         if nu.checked_mul(nb).and_then(|x| x.checked_mul(ns)).is_none() {
-            return inv(format!("{nu} units × {nb} bins × {ns} stimuli is too large"));
+            return inv(format!(
+                "{nu} units × {nb} bins × {ns} stimuli is too large"
+            ));
         }
         let psum: f64 = spec.prior.iter().sum();
         let ln_prior: Vec<f64> = spec.prior.iter().map(|p| (p / psum).ln()).collect();

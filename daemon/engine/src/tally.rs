@@ -81,7 +81,10 @@ impl UnitTally {
     }
     /// Records unit index `u`'s window count in a trial with `presented` (its tuning).
     pub fn record_count(&mut self, u: usize, presented: u32, count: u32) {
-        if let Some(c) = self.count_sums.get_mut(u * self.n_stim + presented as usize) {
+        if let Some(c) = self
+            .count_sums
+            .get_mut(u * self.n_stim + presented as usize)
+        {
             let k = count as f64;
             c.0 += 1;
             c.1 += k;

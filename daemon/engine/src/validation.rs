@@ -272,13 +272,21 @@ mod tests {
         // bin [0.8, 0.9): n 1, 0.85, 1.0; bin [0.5, 0.6): n 2, 0.535, 0.5.
         // ECE = 2/5·|0.5 − 0.935| + 1/5·|1 − 0.85| + 2/5·|0.5 − 0.535|
         //     = 0.174 + 0.03 + 0.014 = 0.218 (computed by hand).
-        let pts = [(0.95, true), (0.92, false), (0.85, true), (0.55, true), (0.52, false)];
+        let pts = [
+            (0.95, true),
+            (0.92, false),
+            (0.85, true),
+            (0.55, true),
+            (0.52, false),
+        ];
         let (bins, ece) = reliability(&pts, 10);
         assert_eq!(bins.len(), 3);
         assert_eq!((bins[0].n, bins[1].n, bins[2].n), (2, 1, 2));
         assert!((bins[2].confidence - 0.935).abs() < 1e-12 && bins[2].accuracy == 0.5);
         assert!((ece - 0.218).abs() < 1e-12, "{ece}");
-        assert!(bins.iter().all(|b| b.lo <= b.accuracy && b.accuracy <= b.hi));
+        assert!(bins
+            .iter()
+            .all(|b| b.lo <= b.accuracy && b.accuracy <= b.hi));
         // A confidence of exactly 1 falls in the last bin.
         assert_eq!(reliability(&[(1.0, true)], 10).0[0].from, 0.9);
     }

@@ -203,7 +203,9 @@ fn an_onset_at_the_end_of_the_tick_range_is_refused_not_wrapped() {
         prior: vec![0.5, 0.5],
         cells: (0..2)
             .map(|s| auspex_engine::CellSpec {
-                count: CountParams::Poisson { mean: 1.0 + s as f64 },
+                count: CountParams::Poisson {
+                    mean: 1.0 + s as f64,
+                },
                 timing: vec![0.25; 4],
                 summary: Default::default(),
             })

@@ -52,7 +52,11 @@ pub fn subscriber(
     (tx, h)
 }
 
-pub fn control(ctx: &zmq::Context, endpoint: &str, body: control_request::Body) -> v1::ControlReply {
+pub fn control(
+    ctx: &zmq::Context,
+    endpoint: &str,
+    body: control_request::Body,
+) -> v1::ControlReply {
     let req = ctx.socket(zmq::REQ).unwrap();
     req.set_rcvtimeo(5000).unwrap();
     req.set_linger(0).unwrap();
@@ -99,4 +103,3 @@ pub fn frames_of(got: &[(String, v1::Outbound)]) -> Vec<(u64, u32, Vec<f64>)> {
     v.sort_by_key(|x| (x.0, x.1));
     v
 }
-
