@@ -66,6 +66,16 @@ pub enum Pace {
     Max,
 }
 
+/// A PUSH socket connected to a daemon's ingest endpoint (an error after 5 s without one).
+pub async fn connect_push(ingest: &str) -> anyhow::Result<zeromq::PushSocket> {
+    let mut push = zeromq::PushSocket::new();
+    tokio::time::timeout(Duration::from_secs(5), push.connect(ingest))
+        .await
+        .map_err(|_| anyhow::anyhow!("no daemon is listening at {ingest}"))?
+        .with_context(|| format!("cannot connect to {ingest}"))?;
+    Ok(push)
+}
+
 /// Sends encoded inbound messages to `ingest`, paced by their watermarks, then waits for the
 /// daemon (via `control`) to acknowledge the last sequence number of `sender`.
 pub async fn replay(
@@ -77,11 +87,7 @@ pub async fn replay(
     pace: Pace,
     progress: bool,
 ) -> anyhow::Result<Duration> {
-    let mut push = zeromq::PushSocket::new();
-    tokio::time::timeout(Duration::from_secs(5), push.connect(ingest))
-        .await
-        .map_err(|_| anyhow::anyhow!("no daemon is listening at {ingest}"))?
-        .with_context(|| format!("cannot connect to {ingest}"))?;
+    let mut push = connect_push(ingest).await?;
     let bar = if progress {
         ProgressBar::new(messages.len() as u64)
     } else {

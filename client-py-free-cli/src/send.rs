@@ -23,7 +23,7 @@ use bytes::Bytes;
 use prost::Message;
 use std::io::BufRead;
 use std::time::Duration;
-use zeromq::{Socket, SocketSend, ZmqMessage};
+use zeromq::{SocketSend, ZmqMessage};
 
 /// Parses one line; spikes accumulate in `pending` until a `through` line sends them.
 /// `Ok(None)`: nothing to send yet (a spike, a blank line or a comment).
@@ -143,11 +143,7 @@ pub async fn send(
     sender: &str,
     follow: bool,
 ) -> anyhow::Result<SendSummary> {
-    let mut push = zeromq::PushSocket::new();
-    tokio::time::timeout(Duration::from_secs(5), push.connect(to))
-        .await
-        .map_err(|_| anyhow::anyhow!("no daemon is listening at {to}"))?
-        .with_context(|| format!("cannot connect to {to}"))?;
+    let mut push = crate::live::connect_push(to).await?;
     // Lines are read on a thread of their own: standard input and pipes block.
     let (tx, mut rx) = tokio::sync::mpsc::channel::<(usize, String)>(4096);
     std::thread::spawn(move || {

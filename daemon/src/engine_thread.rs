@@ -650,17 +650,15 @@ impl EngineThread {
 
     fn inbound(&mut self, endpoint: u32, bytes: Bytes, received_ns: i64) {
         self.counters.messages_in += 1;
-        let msg = if bytes.len() > self.max_message_bytes {
-            None
-        } else {
-            v1::Inbound::decode(bytes.as_ref()).ok()
-        };
+        // Decoded once; oversized messages are not decoded at all.
+        let msg =
+            (bytes.len() <= self.max_message_bytes).then(|| v1::Inbound::decode(bytes.as_ref()));
         // A new session ends the current one before its first message is recorded, so each
         // recording holds one session.
-        if let Some(v1::Inbound {
+        if let Some(Ok(v1::Inbound {
             body: Some(inbound::Body::SessionStart(ss)),
             ..
-        }) = &msg
+        })) = &msg
         {
             if self
                 .session
@@ -689,13 +687,11 @@ impl EngineThread {
             return;
         }
         let msg = match msg {
-            Some(m) => m,
-            None => {
+            Some(Ok(m)) => m,
+            // Oversized messages were counted above.
+            None => return,
+            Some(Err(e)) => {
                 self.counters.malformed += 1;
-                let e = v1::Inbound::decode(bytes.as_ref())
-                    .err()
-                    .map(|e| e.to_string())
-                    .unwrap_or_default();
                 self.warn("malformed", || {
                     format!("endpoint {endpoint}: not an Inbound message ({e})")
                 });

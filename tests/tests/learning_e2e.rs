@@ -129,6 +129,14 @@ fn session_messages(
     out
 }
 
+/// The scenario's true model, and the same saved as a model file in `dir`.
+fn truth_on_disk(sc: &Scenario, dir: &std::path::Path) -> (Model, std::path::PathBuf) {
+    let spec = sc.true_model().unwrap();
+    let path = dir.join("truth.apxm");
+    auspexd::model_file::save_model(&path, &spec, "e2e").unwrap();
+    (Model::new(spec).unwrap(), path)
+}
+
 /// A running daemon with a collecting subscriber and a connected PUSH sender.
 struct Live {
     rt: tokio::runtime::Runtime,
@@ -331,10 +339,8 @@ impl EngineSink for Collect {
 fn three_sessions_through_one_daemon_are_three_recordings_and_three_summaries() {
     let _g = serial();
     let sc = scenario();
-    let truth = Model::new(sc.true_model().unwrap()).unwrap();
     let dir = tempfile::tempdir().unwrap();
-    let model_path = dir.path().join("truth.apxm");
-    auspexd::model_file::save_model(&model_path, &sc.true_model().unwrap(), "e2e").unwrap();
+    let (truth, model_path) = truth_on_disk(&sc, dir.path());
     let rec_dir = dir.path().join("rec");
     std::fs::create_dir(&rec_dir).unwrap();
     let cfg = daemon_config(&rec_dir, Some(model_path));
@@ -442,10 +448,8 @@ fn three_sessions_through_one_daemon_are_three_recordings_and_three_summaries() 
 fn retransmitted_messages_are_dropped_and_a_restarting_sender_is_followed() {
     let _g = serial();
     let sc = scenario();
-    let truth = Model::new(sc.true_model().unwrap()).unwrap();
     let dir = tempfile::tempdir().unwrap();
-    let model_path = dir.path().join("truth.apxm");
-    auspexd::model_file::save_model(&model_path, &sc.true_model().unwrap(), "e2e").unwrap();
+    let (truth, model_path) = truth_on_disk(&sc, dir.path());
     let cfg = daemon_config(&dir.path().join("s.apxs"), Some(model_path));
     let Live {
         rt,
