@@ -46,6 +46,7 @@ pub fn synthetic_model(nu: usize, ns: usize) -> Arc<Model> {
             units: (0..nu as u32).collect(),
             prior: vec![1.0; ns],
             cells,
+            calibration: Default::default(),
         })
         .expect("synthetic model is valid"),
     )

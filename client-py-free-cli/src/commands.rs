@@ -5,6 +5,7 @@ use crate::offline::{run_dataset, score, write_decisions, CsvSink};
 use crate::tables::{write_dataset, Source};
 use anyhow::{bail, Context};
 use auspex_engine::engine::{DecisionPolicy, Decoder, EngineConfig};
+use auspex_engine::calibrate::{calibrate, held_out_set, Calibration, CalibrationMethod};
 use auspex_engine::fit::FitOptions;
 use auspex_engine::simulate::{simulate, Scenario, SimOptions};
 use auspex_engine::Model;
@@ -85,57 +86,68 @@ pub fn simulate_cmd(
     Ok(())
 }
 
-/// `fit`.
-#[allow(clippy::too_many_arguments)]
-pub fn fit_cmd(
-    source: &Source,
-    out: &Path,
-    window_ms: f64,
-    bin_ms: f64,
-    families: &str,
-    prior_from_frequencies: bool,
-    quiet: bool,
-) -> anyhow::Result<Model> {
-    fit_cmd_with(
-        source,
-        out,
-        window_ms,
-        bin_ms,
-        families,
-        prior_from_frequencies,
-        true,
-        quiet,
-    )
+/// Settings of `fit`.
+#[derive(Clone, Debug)]
+pub struct FitArgs {
+    /// Window after onset, ms.
+    pub window_ms: f64,
+    /// Bin width, ms.
+    pub bin_ms: f64,
+    /// Count families (comma-separated or `all`).
+    pub families: String,
+    /// Prior from training frequencies.
+    pub prior_from_frequencies: bool,
+    /// Empirical Bayes shrinkage of few-trial cells.
+    pub shrink: bool,
+    /// Recalibration of the posterior, fitted on held-out folds.
+    pub calibration: CalibrationMethod,
+    /// Folds for the calibration's held-out decoding (0: none, no threshold evidence).
+    pub calibration_folds: usize,
+    /// Minimum decision time the threshold evidence is replayed with, ms.
+    pub min_time_ms: f64,
+    /// No per-cell table.
+    pub quiet: bool,
 }
 
-/// `fit`, choosing whether few-trial cells are shrunk toward their unit's pooled data.
-#[allow(clippy::too_many_arguments)]
-pub fn fit_cmd_with(
-    source: &Source,
-    out: &Path,
-    window_ms: f64,
-    bin_ms: f64,
-    families: &str,
-    prior_from_frequencies: bool,
-    shrink: bool,
-    quiet: bool,
-) -> anyhow::Result<Model> {
+impl Default for FitArgs {
+    fn default() -> Self {
+        FitArgs {
+            window_ms: 250.0,
+            bin_ms: 1.0,
+            families: "all".into(),
+            prior_from_frequencies: false,
+            shrink: true,
+            calibration: DEFAULT_CALIBRATION,
+            calibration_folds: 5,
+            min_time_ms: DecisionPolicy::default().min_time_s * 1000.0,
+            quiet: false,
+        }
+    }
+}
+
+/// The recalibration `fit` applies unless told otherwise.
+pub const DEFAULT_CALIBRATION: CalibrationMethod = CalibrationMethod::Temperature;
+
+/// `fit`: plans and fits the cells, calibrates on held-out folds, writes the model file.
+pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Model> {
     let opts = FitOptions {
-        bin_width_s: bin_ms / 1000.0,
-        window_s: window_ms / 1000.0,
-        families: parse_families(families)?,
-        prior_from_frequencies,
+        bin_width_s: args.bin_ms / 1000.0,
+        window_s: args.window_ms / 1000.0,
+        families: parse_families(&args.families)?,
+        prior_from_frequencies: args.prior_from_frequencies,
         bandwidth: Default::default(),
-        shrinkage: if shrink {
+        shrinkage: if args.shrink {
             auspex_engine::fit::Shrinkage::EmpiricalBayes
         } else {
             auspex_engine::fit::Shrinkage::Off
         },
     };
+    let quiet = args.quiet;
     let (data, report) = source.load(opts.window_s)?;
     eprintln!("{report}");
     let t0 = std::time::Instant::now();
-    let (spec, plan) = fit_dataset(&data, &opts, std::io::stderr().is_terminal() && !quiet)?;
+    let (mut spec, plan) =
+        fit_dataset(&data, &opts, std::io::stderr().is_terminal() && !quiet)?;
     for (name, &n) in plan.stimuli.iter().zip(&plan.trials_per_stimulus) {
         if (n as usize) < FEW_TRIALS {
             eprintln!(
@@ -154,14 +166,102 @@ pub fn fit_cmd_with(
         spec.stimuli.len(),
         spec.cells.len(),
         spec.n_bins,
-        bin_ms,
+        args.bin_ms,
         t0.elapsed().as_secs_f64(),
         plan.unlabelled_trials
     );
+    if args.calibration_folds > 0 {
+        match calibrate_spec(&data, &opts, &spec.stimuli, args) {
+            Ok(c) => {
+                eprint!("{}", calibration_summary(&c));
+                spec.calibration = c;
+            }
+            Err(e) => eprintln!(
+                "warning: the model is not calibrated ({e}); its thresholds carry no held-out evidence and `--target-accuracy` will refuse it"
+            ),
+        }
+    }
     let model = Model::new(spec.clone())?;
     save_model(out, &spec, &source.describe())?;
     eprintln!("model written to {}", out.display());
     Ok(model)
+}
+
+/// Cross-validated calibration of a model fitted on `data` with `opts`.
+fn calibrate_spec(
+    data: &auspex_engine::Dataset,
+    opts: &FitOptions,
+    stimuli: &[String],
+    args: &FitArgs,
+) -> anyhow::Result<Calibration> {
+    let t0 = std::time::Instant::now();
+    let bar = crate::fitting::spinner(
+        std::io::stderr().is_terminal() && !args.quiet,
+        "calibrating on held-out folds",
+    );
+    let set = held_out_set(data, opts, stimuli, args.calibration_folds, 1, &|p| {
+        bar.tick();
+        p.assemble(crate::fitting::fit_cells(p, false))
+    })?;
+    bar.finish_and_clear();
+    let c = calibrate(&set, args.calibration, args.min_time_ms / 1000.0);
+    tracing::debug!(seconds = t0.elapsed().as_secs_f64(), "calibrated");
+    Ok(c)
+}
+
+/// The lines `fit` prints about a calibration.
+pub fn calibration_summary(c: &Calibration) -> String {
+    use std::fmt::Write;
+    let mut s = String::new();
+    let (lo, hi) = c
+        .factors
+        .iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &f| {
+            (a.min(f), b.max(f))
+        });
+    let _ = writeln!(
+        s,
+        "calibration: {} (β {}), fitted on {} held-out trials ({} folds); held-out log loss {:.4} → {:.4} nats per bin",
+        c.method.name(),
+        if (hi - lo).abs() < 1e-12 {
+            format!("{lo:.3}")
+        } else {
+            format!("{lo:.3}–{hi:.3}")
+        },
+        c.held_out_trials,
+        c.folds,
+        c.log_loss_uncalibrated,
+        c.log_loss_calibrated
+    );
+    let kept: Vec<String> = c
+        .evidence
+        .iter()
+        .filter(|e| e.threshold >= 0.8 && e.threshold <= 0.99)
+        .map(|e| {
+            format!(
+                "{} → {:.3}{}",
+                e.threshold,
+                e.accuracy(),
+                if e.hi >= e.threshold { "" } else { " (broken)" }
+            )
+        })
+        .collect();
+    let broken = c
+        .evidence
+        .iter()
+        .filter(|e| e.threshold >= 0.8 && e.threshold <= 0.99 && e.hi < e.threshold)
+        .count();
+    let _ = writeln!(
+        s,
+        "promises (held-out accuracy of deciding at each threshold, cross-fitted): {} — {}",
+        if broken == 0 {
+            "every threshold from 0.8 to 0.99 kept".to_string()
+        } else {
+            format!("{broken} broken")
+        },
+        kept.join(", ")
+    );
+    s
 }
 
 /// Decoding settings from the command line.
@@ -401,7 +501,14 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
     let model_path = out_dir.join("demo.apxm");
     eprintln!("── 1/4 fitting the demo model (on {}) ──", demo.display());
     let source = Source::tables(&sp, &tr);
-    fit_cmd(&source, &model_path, 250.0, 1.0, "all", false, quiet)?;
+    fit_cmd(
+        &source,
+        &model_path,
+        &FitArgs {
+            quiet,
+            ..Default::default()
+        },
+    )?;
     eprintln!("── 2/4 decoding every trial with each decoder ──");
     for dec in Decoder::ALL {
         let args = DecodeArgs {

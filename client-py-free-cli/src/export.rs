@@ -20,6 +20,10 @@ struct ModelJson<'a> {
     stimuli: &'a [String],
     units: &'a [u32],
     prior: Vec<f64>,
+    /// β(b) per bin: posterior_s(b) = softmax_s(ln prior_s + β(b)·log L_s(b)); all 1 when the
+    /// model is not calibrated.
+    calibration_factors: Vec<f64>,
+    calibration_method: &'a str,
     cells: Vec<CellJson<'a>>,
 }
 
@@ -46,6 +50,12 @@ pub fn model_json(m: &Model) -> String {
         stimuli: m.stimuli(),
         units: m.units(),
         prior: m.ln_prior().iter().map(|l| l.exp()).collect(),
+        calibration_factors: if m.calibration().is_active() {
+            m.calibration().factors.clone()
+        } else {
+            vec![1.0; m.n_bins()]
+        },
+        calibration_method: m.calibration().method.name(),
         cells,
     };
     serde_json::to_string_pretty(&j).expect("plain numbers and strings serialise")

@@ -158,3 +158,17 @@ fn short(f: CountFamily) -> &'static str {
         CountFamily::Empirical => "E",
     }
 }
+
+/// A spinner with a message for work without a known length (hidden when not on a terminal).
+pub fn spinner(show: bool, msg: &'static str) -> ProgressBar {
+    if !show {
+        return ProgressBar::hidden();
+    }
+    let bar = ProgressBar::new_spinner();
+    bar.set_style(
+        ProgressStyle::with_template("{spinner} {msg} ({elapsed})").expect("static template"),
+    );
+    bar.set_message(msg);
+    bar.enable_steady_tick(std::time::Duration::from_millis(120));
+    bar
+}

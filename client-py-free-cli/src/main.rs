@@ -137,6 +137,17 @@ enum Cmd {
         /// Fit every cell from its own trials alone (no empirical Bayes shrinkage toward the unit's pooled data)
         #[arg(long)]
         no_shrink: bool,
+        /// Recalibrate the posterior on held-out folds so thresholds keep their promise: none,
+        /// temperature (one factor) or banded-temperature (one per band of time since onset)
+        #[arg(long, default_value = "temperature", value_parser = parse_calibration)]
+        calibration: auspex_engine::calibrate::CalibrationMethod,
+        /// Folds of the held-out decoding the calibration and the threshold evidence come from
+        /// (0: skip it; the model then carries no evidence for --target-accuracy)
+        #[arg(long, default_value_t = 5)]
+        calibration_folds: usize,
+        /// Minimum decision time the threshold evidence is replayed with, ms (use the daemon's)
+        #[arg(long, default_value_t = 20.0)]
+        min_time_ms: f64,
         /// Do not print the per-cell table
         #[arg(long)]
         quiet: bool,
@@ -435,16 +446,24 @@ fn main() {
             families,
             prior_from_frequencies,
             no_shrink,
+            calibration,
+            calibration_folds,
+            min_time_ms,
             quiet,
-        } => commands::fit_cmd_with(
+        } => commands::fit_cmd(
             &tables.source(),
             &out,
-            window_ms,
-            bin_ms,
-            &families,
-            prior_from_frequencies,
-            !no_shrink,
-            quiet,
+            &commands::FitArgs {
+                window_ms,
+                bin_ms,
+                families,
+                prior_from_frequencies,
+                shrink: !no_shrink,
+                calibration,
+                calibration_folds,
+                min_time_ms,
+                quiet,
+            },
         )
         .map(|_| ()),
         Cmd::Decode {
@@ -689,4 +708,15 @@ fn main() {
         eprintln!("auspex: error: {e:#}");
         std::process::exit(1);
     }
+}
+
+/// Parses a calibration method name, listing the choices when it is unknown.
+fn parse_calibration(s: &str) -> Result<auspex_engine::calibrate::CalibrationMethod, String> {
+    use auspex_engine::calibrate::CalibrationMethod;
+    CalibrationMethod::parse(s).ok_or_else(|| {
+        format!(
+            "unknown calibration {s:?}; choose one of: {}",
+            CalibrationMethod::ALL.map(|m| m.name()).join(", ")
+        )
+    })
 }

@@ -320,31 +320,8 @@ impl EngineSink for TrajSink {
 }
 
 /// Puts a plan's stimuli in `order` (folds may meet stimuli in a different first order).
-fn reorder(mut p: FitPlan, order: &[String]) -> anyhow::Result<FitPlan> {
-    let ns = order.len();
-    if p.stimuli.len() != ns {
-        anyhow::bail!(
-            "a training fold holds {} of the {} stimuli; use fewer folds",
-            p.stimuli.len(),
-            ns
-        );
-    }
-    let map: Vec<usize> = order
-        .iter()
-        .map(|s| p.stimuli.iter().position(|x| x == s).unwrap_or(0))
-        .collect();
-    let nu = p.units.len();
-    let mut cells = Vec::with_capacity(nu * ns);
-    for u in 0..nu {
-        for &m in &map {
-            cells.push(std::mem::take(&mut p.cells[u * ns + m]));
-        }
-    }
-    p.cells = cells;
-    p.trials_per_stimulus = map.iter().map(|&m| p.trials_per_stimulus[m]).collect();
-    p.prior = map.iter().map(|&m| p.prior[m]).collect();
-    p.stimuli = order.to_vec();
-    Ok(p)
+fn reorder(p: FitPlan, order: &[String]) -> anyhow::Result<FitPlan> {
+    Ok(p.reordered(order)?)
 }
 
 fn subset(data: &Dataset, keep: &[usize], labels: Option<(&[usize], &[String])>) -> Dataset {
@@ -986,6 +963,7 @@ fn shuffle_null(
                 units: data.units.clone(),
                 prior: prior.clone(),
                 cells: cells.into_iter().collect::<Vec<CellSpec>>(),
+                calibration: Default::default(),
             })?;
             window_end_confusions(&model, bins, labels, &f.test, &mut pop, &mut units);
         }

@@ -2,7 +2,7 @@
 //! implementation of the DESIGN.md mathematics that reads only the exported JSON and the CSV
 //! tables, and against decoding with the true model.
 
-use auspex::commands::{decode_cmd, export_cmd, fit_cmd, simulate_cmd, DecodeArgs};
+use auspex::commands::{decode_cmd, export_cmd, fit_cmd, simulate_cmd, DecodeArgs, FitArgs};
 use auspex::tables::Source;
 use auspex_engine::engine::Decoder;
 use std::collections::HashMap;
@@ -86,11 +86,12 @@ fn posteriors_agree_with_an_independent_implementation_of_the_json_export() {
     fit_cmd(
         &Source::tables(&t.join("spikes.csv"), &t.join("trials.csv")),
         &d.join("m.apxm"),
-        200.0,
-        1.0,
-        "all",
-        false,
-        true,
+        &FitArgs {
+            window_ms: 200.0,
+            families: "all".into(),
+            quiet: true,
+            ..Default::default()
+        },
     )
     .unwrap();
     export_cmd(&d.join("m.apxm"), Some(&d.join("m.json"))).unwrap();
@@ -132,6 +133,16 @@ fn posteriors_agree_with_an_independent_implementation_of_the_json_export() {
         .iter()
         .map(|p| p.as_f64().unwrap())
         .collect();
+    // Calibration: posterior = softmax(ln prior + β(b)·log L(b)), README "Model interchange JSON".
+    let beta: Vec<f64> = j["calibration_factors"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| p.as_f64().unwrap())
+        .collect();
+    assert_eq!(beta.len(), nb);
+    assert_eq!(j["calibration_method"], "temperature", "fit calibrates by default");
+    assert!(beta.iter().all(|&b| b != 1.0), "a fitted factor is never exactly 1");
     let mut cells: HashMap<(u64, String), (Vec<f64>, Vec<f64>)> = HashMap::new();
     for c in j["cells"].as_array().unwrap() {
         let f = |k: &str| -> Vec<f64> {
@@ -184,14 +195,16 @@ fn posteriors_agree_with_an_independent_implementation_of_the_json_export() {
         for b in 0..nb {
             let mut logp: Vec<f64> = prior.iter().map(|p| p.ln()).collect();
             for (si, s) in stimuli.iter().enumerate() {
+                let mut log_l = 0.0;
                 for (ui, &u) in units.iter().enumerate() {
                     let (pmf, q) = &cells[&(u, s.clone())];
                     let k: usize = counts[ui][..=b].iter().sum();
                     let spike_term: f64 =
                         (0..=b).map(|bb| counts[ui][bb] as f64 * q[bb].ln()).sum();
                     let surv: f64 = q[b + 1..].iter().sum();
-                    logp[si] += spike_term + ln_gf_deriv(pmf, k, surv);
+                    log_l += spike_term + ln_gf_deriv(pmf, k, surv);
                 }
+                logp[si] += beta[b] * log_l;
             }
             let m = logp.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
             let z: f64 = logp.iter().map(|l| (l - m).exp()).sum();
@@ -248,11 +261,12 @@ fn fitted_model_decodes_like_the_true_model_and_timing_beats_count_only() {
     fit_cmd(
         &Source::tables(&t.join("spikes.csv"), &t.join("trials.csv")),
         &d.join("fit.apxm"),
-        250.0,
-        1.0,
-        "all",
-        false,
-        true,
+        &FitArgs {
+            window_ms: 250.0,
+            families: "all".into(),
+            quiet: true,
+            ..Default::default()
+        },
     )
     .unwrap();
     let acc = |model: &str, dec: Decoder| {
@@ -306,11 +320,12 @@ fn fitted_parameters_recover_the_scenario() {
     fit_cmd(
         &Source::tables(&d.join("spikes.csv"), &d.join("trials.csv")),
         &d.join("fit.apxm"),
-        200.0,
-        1.0,
-        "poisson,nb,com",
-        false,
-        true,
+        &FitArgs {
+            window_ms: 200.0,
+            families: "poisson,nb,com".into(),
+            quiet: true,
+            ..Default::default()
+        },
     )
     .unwrap();
     let (truth, _) = auspexd::model_file::load_model(&d.join("true.apxm")).unwrap();

@@ -1,6 +1,7 @@
 //! Model files on disk: conversion between the engine's `ModelSpec` and the `ModelFile` schema,
 //! and loading/saving with errors that name the file.
 
+use auspex_engine::calibrate::{Calibration, CalibrationMethod, ThresholdEvidence};
 use auspex_engine::count::{CountFamily, CountParams};
 use auspex_engine::model::{CellSpec, CellSummary, ModelSpec};
 use auspex_proto::v1;
@@ -65,6 +66,7 @@ pub fn spec_to_proto(spec: &ModelSpec, training_data: &str) -> v1::ModelFile {
         prior: spec.prior.clone(),
         created_by: format!("auspex {}", env!("CARGO_PKG_VERSION")),
         training_data: training_data.into(),
+        calibration: calibration_to_proto(&spec.calibration),
         cells: spec
             .cells
             .iter()
@@ -164,6 +166,71 @@ pub fn spec_from_proto(m: &v1::ModelFile) -> Result<ModelSpec, String> {
         units: m.units.clone(),
         prior: m.prior.clone(),
         cells,
+        calibration: calibration_from_proto(m.calibration.as_ref())?,
+    })
+}
+
+fn calibration_to_proto(c: &Calibration) -> Option<v1::Calibration> {
+    if c == &Calibration::default() {
+        return None;
+    }
+    Some(v1::Calibration {
+        method: match c.method {
+            CalibrationMethod::None => v1::CalibrationMethod::CalibrationNone,
+            CalibrationMethod::Temperature => v1::CalibrationMethod::Temperature,
+            CalibrationMethod::BandedTemperature => v1::CalibrationMethod::BandedTemperature,
+        } as i32,
+        factor: c.factors.clone(),
+        held_out_trials: c.held_out_trials,
+        folds: c.folds,
+        log_loss_uncalibrated: c.log_loss_uncalibrated,
+        log_loss_calibrated: c.log_loss_calibrated,
+        min_time_s: c.min_time_s,
+        evidence: c
+            .evidence
+            .iter()
+            .map(|e| v1::ThresholdRecord {
+                threshold: e.threshold,
+                trials: e.trials,
+                correct: e.correct,
+                accuracy_lo: e.lo,
+                accuracy_hi: e.hi,
+                median_decision_ms: e.median_decision_ms,
+            })
+            .collect(),
+    })
+}
+
+fn calibration_from_proto(c: Option<&v1::Calibration>) -> Result<Calibration, String> {
+    let Some(c) = c else {
+        return Ok(Calibration::default());
+    };
+    let method = match v1::CalibrationMethod::try_from(c.method) {
+        Ok(v1::CalibrationMethod::CalibrationNone) => CalibrationMethod::None,
+        Ok(v1::CalibrationMethod::Temperature) => CalibrationMethod::Temperature,
+        Ok(v1::CalibrationMethod::BandedTemperature) => CalibrationMethod::BandedTemperature,
+        Err(_) => return Err(format!("unknown calibration method {}", c.method)),
+    };
+    Ok(Calibration {
+        method,
+        factors: c.factor.clone(),
+        held_out_trials: c.held_out_trials,
+        folds: c.folds,
+        log_loss_uncalibrated: c.log_loss_uncalibrated,
+        log_loss_calibrated: c.log_loss_calibrated,
+        min_time_s: c.min_time_s,
+        evidence: c
+            .evidence
+            .iter()
+            .map(|e| ThresholdEvidence {
+                threshold: e.threshold,
+                trials: e.trials,
+                correct: e.correct,
+                lo: e.accuracy_lo,
+                hi: e.accuracy_hi,
+                median_decision_ms: e.median_decision_ms,
+            })
+            .collect(),
     })
 }
 

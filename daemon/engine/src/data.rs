@@ -168,6 +168,17 @@ impl Dataset {
         UnitWindows { counts, times }
     }
 
+    /// The same session with only the trials at `keep` (indices into `trials`; spikes kept).
+    pub fn subset(&self, keep: &[usize]) -> Dataset {
+        Dataset {
+            tick_rate_hz: self.tick_rate_hz,
+            units: self.units.clone(),
+            spikes: self.spikes.clone(),
+            trials: keep.iter().map(|&i| self.trials[i].clone()).collect(),
+            declared_from: self.declared_from.clone(),
+        }
+    }
+
     /// Spikes that fall in no trial window.
     pub fn spikes_outside_windows(&self, window_ticks: i64) -> usize {
         // Trials are sorted by onset; sweep with the latest window end seen.

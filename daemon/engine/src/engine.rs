@@ -8,6 +8,7 @@
 //! decoding, validation and replay all drive this one type, so equal inputs give equal outputs.
 
 use crate::model::{CellKernel, Model};
+use crate::calibrate::posterior_into;
 use crate::special::{entropy_bits, softmax_in_place};
 use crate::table::{ProductAcc, NO_SLOT};
 use crate::tally::UnitTally;
@@ -91,6 +92,9 @@ pub struct EngineConfig {
     /// of the per-model sums plus spiking units. Same mathematics, different summation order;
     /// kept for benchmarks and cross-checks.
     pub per_cell_reference: bool,
+    /// Apply the model's calibration (its factors β(b); see `calibrate.rs`). Off: β = 1, the
+    /// raw posterior.
+    pub calibrated: bool,
 }
 
 impl EngineConfig {
@@ -103,6 +107,7 @@ impl EngineConfig {
             prior: None,
             history_s: 2.0,
             per_cell_reference: false,
+            calibrated: true,
         }
     }
 }
@@ -223,6 +228,8 @@ pub struct Decision {
     pub reason: DecisionReason,
     /// Presented stimulus, if known at the time.
     pub presented: Option<u32>,
+    /// The threshold in force for the trial (the promise a threshold decision keeps).
+    pub threshold: f64,
 }
 
 /// A posterior frame for one completed bin of one trial.
@@ -236,6 +243,9 @@ pub struct Frame<'a> {
     pub bin_end_tick: i64,
     /// Posterior over stimuli.
     pub posterior: &'a [f64],
+    /// The population log-likelihood of the trial so far, per stimulus, without the prior and
+    /// before calibration (up to a constant shared by all stimuli).
+    pub log_likelihood: &'a [f64],
     /// Top stimulus.
     pub top: u32,
     /// Its posterior.
@@ -345,6 +355,10 @@ struct TrialState {
     /// Per (u, s): Σ ln q over the unit's spikes; at the end, the unit's full log-likelihood.
     unit_ll: Vec<f64>,
     pop_spike: Vec<f64>,
+    /// Population log-likelihood of the current bin (no prior, no calibration).
+    ll: Vec<f64>,
+    /// Apply the model's calibration factors.
+    calibrated: bool,
     post: Vec<f64>,
     /// Table-family corrections of the current bin, as a product (see `table.rs`).
     table_acc: ProductAcc,
@@ -373,6 +387,8 @@ impl TrialState {
             reference: false,
             unit_ll: vec![0.0; nu * ns],
             pop_spike: vec![0.0; ns],
+            ll: vec![0.0; ns],
+            calibrated: false,
             post: vec![0.0; ns],
             table_acc: ProductAcc::new(ns),
             decision: None,
@@ -513,6 +529,48 @@ pub struct Engine {
 const RECENT_IDS: usize = 4096;
 const PARKED_MAX: usize = 64;
 
+/// The first bin that may take a threshold decision: bin b may once (b + 1)·Δ ≥ the minimum
+/// time. The one rule the engine and every replay of held-out trials use.
+pub fn min_bin_for(min_time_s: f64, bin_width_s: f64) -> u32 {
+    ((min_time_s / bin_width_s - 1e-9).ceil() as i64 - 1).clamp(0, u32::MAX as i64) as u32
+}
+
+/// Decodes a whole dataset as an acquisition system would deliver it (1-bin batches, each trial
+/// opened before the batch holding its onset): offline decoding, validation and calibration.
+pub fn run_dataset(
+    model: Arc<Model>,
+    data: &crate::data::Dataset,
+    cfg: EngineConfig,
+    sink: &mut dyn EngineSink,
+) -> Result<Counters, EngineError> {
+    let mut e = Engine::new(model.clone(), cfg)?;
+    let bt = e.bin_ticks();
+    let window = bt * model.n_bins() as i64;
+    for ev in data.events(bt, window) {
+        match ev {
+            crate::data::Event::Open {
+                trial,
+                onset,
+                stimulus,
+            } => {
+                let idx = stimulus
+                    .as_deref()
+                    .and_then(|s| model.stimulus_index(s))
+                    .map(|i| i as u32);
+                // Refusals are counted by the engine; offline input is already validated.
+                let _ = e.open_trial(trial, onset, idx, sink);
+            }
+            crate::data::Event::Batch { spikes, watermark } => {
+                for (tick, unit) in spikes {
+                    let _ = e.spike(unit, tick);
+                }
+                e.advance(watermark, sink)?;
+            }
+        }
+    }
+    Ok(e.counters().clone())
+}
+
 fn bin_ticks_for(model: &Model, tick_rate_hz: f64) -> Result<i64, EngineError> {
     if !(tick_rate_hz.is_finite() && tick_rate_hz > 0.0) {
         return Err(EngineError::Config(format!(
@@ -599,8 +657,7 @@ impl Engine {
             }
         };
         // A bin b may decide once (b + 1)·Δ ≥ minimum time.
-        let bw = self.model.bin_width_s();
-        self.min_bin = ((p.min_time_s / bw - 1e-9).ceil() as i64 - 1).max(0) as u32;
+        self.min_bin = min_bin_for(p.min_time_s, self.model.bin_width_s());
         self.history_ticks = (c.history_s * c.tick_rate_hz).round() as i64;
         self.config = c;
         Ok(())
@@ -721,6 +778,7 @@ impl Engine {
         st.presented = presented;
         st.decoder = self.config.decoder;
         st.reference = self.config.per_cell_reference;
+        st.calibrated = self.config.calibrated;
         st.threshold = self.config.policy.threshold;
         st.min_bin = self.min_bin;
         st.ln_prior.clone_from(&self.ln_prior);
@@ -1135,38 +1193,38 @@ fn run_bins(
         match t.decoder {
             Decoder::CountOnly => {
                 for s in 0..ns {
-                    t.post[s] = t.ln_prior[s];
+                    t.ll[s] = 0.0;
                 }
                 if last {
                     for u in 0..nu {
                         for s in 0..ns {
-                            t.post[s] += m.dists[u * ns + s].ln_pmf(t.k[u]);
+                            t.ll[s] += m.dists[u * ns + s].ln_pmf(t.k[u]);
                         }
                     }
                 }
             }
             dec if t.reference => {
                 for s in 0..ns {
-                    t.post[s] = t.ln_prior[s] + t.pop_spike[s];
+                    t.ll[s] = t.pop_spike[s];
                 }
                 for u in 0..nu {
                     let k = t.k[u];
                     let cc = &t.cconst[u * ns..(u + 1) * ns];
                     for s in 0..ns {
-                        t.post[s] += count_term(&m, dec, u, s, b, k, cc[s]);
+                        t.ll[s] += count_term(&m, dec, u, s, b, k, cc[s]);
                     }
                 }
             }
             Decoder::InhomogeneousPoisson => {
                 let sums = &m.rate_sum[b * ns..(b + 1) * ns];
                 for s in 0..ns {
-                    t.post[s] = t.ln_prior[s] + t.pop_spike[s] + t.cc_sum[s] + sums[s];
+                    t.ll[s] = t.pop_spike[s] + t.cc_sum[s] + sums[s];
                 }
             }
             Decoder::OrderStats => {
                 let sums = &m.order_stats_sum[b * ns..(b + 1) * ns];
                 for s in 0..ns {
-                    t.post[s] = t.ln_prior[s] + t.pop_spike[s] + t.cc_sum[s] + sums[s];
+                    t.ll[s] = t.pop_spike[s] + t.cc_sum[s] + sums[s];
                 }
                 // Negative binomial cells of units that have spiked: the k-dependent part.
                 // Once most units have spiked, walk them in order so this bin's rows of `g`
@@ -1180,13 +1238,13 @@ fn run_bins(
                     let row = (b * nu + u) * ns;
                     let g = &m.nb_g[row..row + ns];
                     if m.unit_all_negbin[u] {
-                        for (p, g) in t.post.iter_mut().zip(g) {
+                        for (p, g) in t.ll.iter_mut().zip(g) {
                             *p -= k * g;
                         }
                     } else {
                         for s in 0..ns {
                             if let CellKernel::NegBin { .. } = m.kernels[u * ns + s] {
-                                t.post[s] -= k * g[s];
+                                t.ll[s] -= k * g[s];
                             }
                         }
                     }
@@ -1211,10 +1269,10 @@ fn run_bins(
                 // spiked through their correction.
                 let tp = m.table_prep();
                 if !tp.units.is_empty() {
-                    for (p, s0) in t.post.iter_mut().zip(&tp.sum0[b * ns..(b + 1) * ns]) {
+                    for (p, s0) in t.ll.iter_mut().zip(&tp.sum0[b * ns..(b + 1) * ns]) {
                         *p += s0;
                     }
-                    let (k, post, acc) = (&t.k, &mut t.post, &mut t.table_acc);
+                    let (k, post, acc) = (&t.k, &mut t.ll, &mut t.table_acc);
                     let add = |u: usize| {
                         if k[u] > 0 && tp.slot[u] != NO_SLOT {
                             tp.add_unit(&m, u, b, k[u], post, acc);
@@ -1231,7 +1289,7 @@ fn run_bins(
                     } else {
                         each_prefetching(tp.units.len(), |i| tp.units[i], ahead, add);
                     }
-                    t.table_acc.flush_into(&mut t.post);
+                    t.table_acc.flush_into(&mut t.ll);
                 }
             }
         }
@@ -1248,7 +1306,11 @@ fn run_bins(
                 }
             }
         }
-        softmax_in_place(&mut t.post);
+        let beta = match m.calibration().factors.get(b) {
+            Some(&f) if t.calibrated => f,
+            _ => 1.0,
+        };
+        posterior_into(&t.ln_prior, &t.ll, beta, &mut t.post);
         let (top, top_p) = argmax(&t.post);
         counters.frames += 1;
         sink.frame(&Frame {
@@ -1256,6 +1318,7 @@ fn run_bins(
             bin: b as u32,
             bin_end_tick: bin_end - 1,
             posterior: &t.post,
+            log_likelihood: &t.ll,
             top,
             top_posterior: top_p,
             entropy_bits: entropy_bits(&t.post),
@@ -1279,6 +1342,7 @@ fn run_bins(
                     bin: b as u32,
                     reason,
                     presented: t.presented,
+                    threshold: t.threshold,
                 };
                 t.decision = Some(d);
                 counters.decisions += 1;

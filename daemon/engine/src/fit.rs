@@ -368,6 +368,37 @@ pub fn fit_cell(
 }
 
 impl FitPlan {
+    /// The same plan with its stimuli in `order` (a fold of the trials may meet the stimuli in
+    /// another first-appearance order than the whole dataset).
+    pub fn reordered(mut self, order: &[String]) -> Result<FitPlan, FitError> {
+        let ns = order.len();
+        if self.stimuli.len() != ns {
+            return Err(FitError::Data(format!(
+                "a training fold holds {} of the {} stimuli; use fewer folds",
+                self.stimuli.len(),
+                ns
+            )));
+        }
+        let mut map = Vec::with_capacity(ns);
+        for s in order {
+            map.push(self.stimuli.iter().position(|x| x == s).ok_or_else(|| {
+                FitError::Data(format!("a training fold holds no trial of stimulus {s:?}"))
+            })?);
+        }
+        let nu = self.units.len();
+        let mut cells = Vec::with_capacity(nu * ns);
+        for u in 0..nu {
+            for &m in &map {
+                cells.push(std::mem::take(&mut self.cells[u * ns + m]));
+            }
+        }
+        self.cells = cells;
+        self.trials_per_stimulus = map.iter().map(|&m| self.trials_per_stimulus[m]).collect();
+        self.prior = map.iter().map(|&m| self.prior[m]).collect();
+        self.stimuli = order.to_vec();
+        Ok(self)
+    }
+
     /// Assembles the fitted cells (unit-major, as in `self.cells`) into a model spec.
     pub fn assemble(&self, mut cells: Vec<CellSpec>) -> ModelSpec {
         if self.shrinkage == Shrinkage::EmpiricalBayes {
@@ -384,6 +415,7 @@ impl FitPlan {
             units: self.units.clone(),
             prior: self.prior.clone(),
             cells,
+            calibration: Default::default(),
         }
     }
 

@@ -494,6 +494,7 @@ mod tests {
                 cell(3.0, &flat),
                 cell(3.0, &flat),
             ],
+            calibration: Default::default(),
         })
         .unwrap()
     }

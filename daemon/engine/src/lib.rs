@@ -11,6 +11,7 @@
 #![deny(missing_docs)]
 
 pub mod assess;
+pub mod calibrate;
 pub mod count;
 pub mod data;
 pub mod density;

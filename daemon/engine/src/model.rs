@@ -4,6 +4,7 @@
 //!
 //! Must not: change after construction (hot reload builds a new `Model`), or do I/O.
 
+use crate::calibrate::Calibration;
 use crate::count::{CountDist, CountError, CountFamily, CountParams};
 use crate::table::TablePrep;
 use serde::{Deserialize, Serialize};
@@ -50,6 +51,9 @@ pub struct ModelSpec {
     pub prior: Vec<f64>,
     /// Cells, unit-major: cell (u, s) is at `u · S + s`.
     pub cells: Vec<CellSpec>,
+    /// Calibration of the posterior and the held-out threshold evidence (default: none).
+    #[serde(default)]
+    pub calibration: Calibration,
 }
 
 /// Why a model could not be built.
@@ -151,6 +155,7 @@ impl Model {
         if spec.prior.iter().any(|p| !(p.is_finite() && *p > 0.0)) {
             return inv("prior entries must be finite and > 0".into());
         }
+        spec.calibration.check(nb).map_err(ModelError::Invalid)?;
         if spec.cells.len() != nu * ns {
             return inv(format!(
                 "{} cells for {nu} units × {ns} stimuli",
@@ -351,6 +356,10 @@ impl Model {
     pub fn ln_prior(&self) -> &[f64] {
         &self.ln_prior
     }
+    /// The calibration the engine applies (unless switched off) and its evidence.
+    pub fn calibration(&self) -> &Calibration {
+        &self.spec.calibration
+    }
     /// Builds the per-bin precomputation the summed path reads: negative binomial spike steps,
     /// and for COM-Poisson and empirical cells their silence sums, the product form's tables and
     /// a lookup of `ln Φ^(k)(S(b)) − ln Φ^(0)(S(b))` for the counts [`TABLE_LOOKUP_BUDGET_BYTES`]
@@ -468,6 +477,7 @@ mod tests {
             units: (0..200).collect(),
             prior: vec![1e-3; 1000],
             cells: vec![cell; 200 * 1000],
+            calibration: Default::default(),
         };
         let e = Model::new(spec).unwrap_err().to_string();
         assert!(e.contains("0 timing bins, window has 1000000"), "{e}");

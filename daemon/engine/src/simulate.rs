@@ -157,6 +157,7 @@ impl Scenario {
             units: self.units.iter().map(|u| u.id).collect(),
             prior: vec![1.0 / self.stimuli.len() as f64; self.stimuli.len()],
             cells,
+            calibration: Default::default(),
         };
         Model::new(spec.clone())?;
         Ok(spec)

@@ -494,6 +494,7 @@ mod tests {
             units: (0..nu as u32).collect(),
             prior: vec![1.0; ns],
             cells,
+            calibration: Default::default(),
         })
         .unwrap()
     }

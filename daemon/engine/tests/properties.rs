@@ -61,6 +61,7 @@ fn model_strategy() -> impl Strategy<Value = Arc<Model>> {
                     units: (0..nu as u32).collect(),
                     prior: vec![1.0; ns],
                     cells,
+                    calibration: Default::default(),
                 })
                 .unwrap(),
             )
@@ -210,6 +211,7 @@ fn an_onset_at_the_end_of_the_tick_range_is_refused_not_wrapped() {
                 summary: Default::default(),
             })
             .collect(),
+        calibration: Default::default(),
     };
     let m = Arc::new(Model::new(spec).unwrap());
     let mut e = Engine::new(m, EngineConfig::new(1000.0)).unwrap();

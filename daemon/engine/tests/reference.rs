@@ -32,6 +32,7 @@ fn model(bin_width_s: f64, stimuli: &[&str], units: &[u32], cells: Vec<CellSpec>
             units: units.to_vec(),
             prior: vec![1.0 / stimuli.len() as f64; stimuli.len()],
             cells,
+            calibration: Default::default(),
         })
         .unwrap(),
     )

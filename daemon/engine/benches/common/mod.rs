@@ -56,6 +56,7 @@ pub fn model_at(nu: usize, ns: usize, family: &str, mean_count: f64) -> Arc<Mode
             units: (0..nu as u32).collect(),
             prior: vec![1.0; ns],
             cells,
+            calibration: Default::default(),
         })
         .unwrap(),
     )
