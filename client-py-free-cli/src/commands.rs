@@ -275,6 +275,24 @@ pub struct DecodeArgs {
     pub min_time_ms: f64,
     /// Prior override.
     pub prior: Option<Vec<f64>>,
+    /// Choose the threshold from the model's held-out record so decisions keep this accuracy.
+    pub target_accuracy: Option<f64>,
+    /// Apply the model's calibration.
+    pub calibrated: bool,
+}
+
+impl Default for DecodeArgs {
+    fn default() -> Self {
+        let p = DecisionPolicy::default();
+        DecodeArgs {
+            decoder: Decoder::default(),
+            threshold: p.threshold,
+            min_time_ms: p.min_time_s * 1000.0,
+            prior: None,
+            target_accuracy: None,
+            calibrated: true,
+        }
+    }
 }
 
 impl DecodeArgs {
@@ -287,8 +305,52 @@ impl DecodeArgs {
             min_time_s: self.min_time_ms / 1000.0,
         };
         c.prior = self.prior.clone();
+        c.calibrated = self.calibrated;
         c
     }
+
+    /// With a target accuracy: the threshold and minimum time from `model`'s held-out record
+    /// (printed with their evidence), or a refusal that says why.
+    pub fn resolve_target(&mut self, model: &Model) -> anyhow::Result<()> {
+        let Some(target) = self.target_accuracy else {
+            return Ok(());
+        };
+        let (threshold, min_time_s, line) = promise_for(model, target, self.decoder, self.calibrated)?;
+        eprintln!("{line}");
+        self.threshold = threshold;
+        self.min_time_ms = min_time_s * 1000.0;
+        Ok(())
+    }
+}
+
+/// The threshold and minimum time that keep `target` by `model`'s held-out record, with a line
+/// stating the evidence; refused where the evidence does not apply or cannot support the target.
+pub fn promise_for(
+    model: &Model,
+    target: f64,
+    decoder: Decoder,
+    calibrated: bool,
+) -> anyhow::Result<(f64, f64, String)> {
+    if decoder != Decoder::OrderStats {
+        bail!("--target-accuracy needs the order-stats decoder (the model's held-out record is of it)");
+    }
+    let c = model.calibration();
+    if !calibrated && c.is_active() {
+        bail!("--target-accuracy uses the model's calibrated record; drop --uncalibrated");
+    }
+    let e = c.threshold_for(target)?;
+    let line = format!(
+        "target accuracy {target}: deciding at threshold {} (held out: {}/{} right = {:.3}, 95% interval {:.3}–{:.3}; median decision {:.0} ms; minimum time {:.0} ms)",
+        e.threshold,
+        e.correct,
+        e.trials,
+        e.accuracy(),
+        e.lo,
+        e.hi,
+        e.median_decision_ms,
+        c.min_time_s * 1000.0
+    );
+    Ok((e.threshold, c.min_time_s, line))
 }
 
 /// `decode`: returns the accuracy.
@@ -300,6 +362,10 @@ pub fn decode_cmd(
 ) -> anyhow::Result<f64> {
     let (_, model) = load_model(model_path)?;
     let model = Arc::new(model);
+    let mut args = args.clone();
+    args.resolve_target(&model)
+        .with_context(|| format!("{}", model_path.display()))?;
+    let args = &args;
     let window_s = model.bin_width_s() * model.n_bins() as f64;
     let (data, report) = source.load(window_s)?;
     eprintln!("{report}");
@@ -370,6 +436,9 @@ pub fn decode_prequential_cmd(
     p: &PrequentialArgs,
 ) -> anyhow::Result<f64> {
     use crate::prequential::{run_recording, tables_as_recording, write_decisions, Schedule};
+    if args.target_accuracy.is_some() {
+        bail!("--target-accuracy needs a fitted model's held-out record; with --prequential give --threshold");
+    }
     let mut opts = auspex_engine::learn::LearnOptions {
         fit: FitOptions {
             bin_width_s: p.bin_ms / 1000.0,
@@ -486,7 +555,47 @@ pub fn inspect_cmd(model_path: &Path) -> anyhow::Result<()> {
         model.stimuli().join(", ")
     );
     print!("{}", summary_table(&spec));
+    print!("{}", promise_table(model.calibration()));
     Ok(())
+}
+
+/// The calibration and its held-out threshold record as a table (what `inspect` shows).
+pub fn promise_table(c: &Calibration) -> String {
+    use std::fmt::Write;
+    let mut s = String::new();
+    if c.evidence.is_empty() {
+        let _ = writeln!(
+            s,
+            "no held-out threshold record (fitted with --calibration-folds 0, or by an older version): --target-accuracy refuses this model"
+        );
+        return s;
+    }
+    s.push_str(&calibration_summary(c).lines().next().unwrap_or("").to_string());
+    s.push('\n');
+    let _ = writeln!(
+        s,
+        "held-out record of the decision rule (minimum time {:.0} ms; a promise is kept when the interval reaches the threshold):",
+        c.min_time_s * 1000.0
+    );
+    let _ = writeln!(
+        s,
+        "  threshold   right      accuracy  95% interval   median decision  promise"
+    );
+    for e in &c.evidence {
+        let _ = writeln!(
+            s,
+            "  {:<9}   {:>4}/{:<4}  {:.3}     {:.3}–{:.3}    {:>6.0} ms        {}",
+            e.threshold,
+            e.correct,
+            e.trials,
+            e.accuracy(),
+            e.lo,
+            e.hi,
+            e.median_decision_ms,
+            if e.hi >= e.threshold { "kept" } else { "BROKEN" }
+        );
+    }
+    s
 }
 
 /// `demo`: the offline path on the bundled demo data.
@@ -516,6 +625,7 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
             threshold: 0.9,
             min_time_ms: 20.0,
             prior: None,
+            ..Default::default()
         };
         decode_cmd(&model_path, &source, &out_dir.join(dec.name()), &args)?;
     }

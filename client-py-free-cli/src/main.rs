@@ -81,12 +81,19 @@ struct DecodeOpts {
     /// Decide when the top posterior reaches this
     #[arg(long, default_value_t = 0.9)]
     threshold: f64,
+    /// Instead of --threshold: the accuracy decisions must keep; the threshold (and minimum time)
+    /// come from the model's held-out record, and decoding is refused when no threshold keeps it
+    #[arg(long, conflicts_with = "threshold")]
+    target_accuracy: Option<f64>,
     /// ... but not before this many ms after onset
     #[arg(long, default_value_t = 20.0)]
     min_time_ms: f64,
     /// Prior over stimuli, comma-separated in model order (default: the model's)
     #[arg(long, value_parser = parse_prior)]
     prior: Option<Vec<f64>>,
+    /// Ignore the model's calibration (raw posterior, β = 1)
+    #[arg(long)]
+    uncalibrated: bool,
 }
 
 #[derive(Subcommand)]
@@ -483,6 +490,8 @@ fn main() {
                 threshold: opts.threshold,
                 min_time_ms: opts.min_time_ms,
                 prior: opts.prior,
+                target_accuracy: opts.target_accuracy,
+                calibrated: !opts.uncalibrated,
             };
             match model {
                 Some(m) => commands::decode_cmd(&m, &tables.source(), &out_dir, &args),

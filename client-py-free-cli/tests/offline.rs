@@ -100,6 +100,7 @@ fn posteriors_agree_with_an_independent_implementation_of_the_json_export() {
         threshold: 0.9,
         min_time_ms: 20.0,
         prior: None,
+        ..Default::default()
     };
     let te = d.join("test");
     decode_cmd(
@@ -276,6 +277,7 @@ fn fitted_model_decodes_like_the_true_model_and_timing_beats_count_only() {
             threshold: 1.0,
             min_time_ms: 20.0,
             prior: None,
+            ..Default::default()
         };
         decode_cmd(
             &d.join(model),
