@@ -392,6 +392,11 @@ enum Steer {
         /// ... but not before this many ms after onset (default: keep the current one)
         #[arg(long)]
         min_time_ms: Option<f64>,
+        /// Instead: the accuracy threshold decisions must keep; threshold and minimum time come
+        /// from the model's held-out record, refused when it cannot support the target
+        /// (--threshold or --min-time-ms later replace the target)
+        #[arg(long, conflicts_with_all = ["threshold", "min_time_ms"])]
+        target_accuracy: Option<f64>,
     },
     /// Prior over stimuli, comma-separated in model order; "model" restores the model's
     Prior { prior: String },
@@ -426,6 +431,14 @@ fn runtime() -> anyhow::Result<tokio::runtime::Runtime> {
 }
 
 fn main() {
+    // Output piped into `head` or a closed pager ends the program quietly, as command-line tools
+    // do, instead of a panic on the failed write.
+    #[cfg(unix)]
+    // SAFETY: restoring the default disposition of SIGPIPE at the start of main, before any
+    // thread is spawned; no handler is installed.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
     let cli = Cli::parse();
     let r = match cli.cmd {
         Cmd::Simulate {
@@ -626,12 +639,17 @@ fn main() {
                 println!("{}", serde_json::json!({"version": s.version, "model": s.model_path, "stimuli": s.stimuli, "units": s.units.len(),
                     "decoder": s.decoder, "threshold": s.threshold, "min_time_s": s.min_time_s, "prior": s.prior, "tick_rate_hz": s.tick_rate_hz,
                     "open_trials": s.open_trials, "recording": s.recording_path, "session": s.session_name,
+                    "promise": s.promise.as_ref().map(|p| serde_json::json!({"target_accuracy": (p.target_accuracy > 0.0).then_some(p.target_accuracy), "withheld": p.withheld, "evidence": p.evidence, "calibrated": p.calibrated, "calibration": p.calibration})),
+                    "promise_records": s.health.as_ref().map(|h| h.promises.iter().map(|r| serde_json::json!({"promise": r.promise, "threshold": r.threshold, "decisions": r.decisions, "correct": r.correct, "lo": r.accuracy_lo, "hi": r.accuracy_hi, "cusum": r.cusum, "broken": r.broken})).collect::<Vec<_>>()),
                     "learning": s.learning.as_ref().map(|l| serde_json::json!({"enabled": l.enabled, "trials_learned": l.trials_learned, "model_trials": l.model_trials, "last_refit_age_s": l.last_refit_age_s, "last_refit_s": l.last_refit_s, "refits": l.refits, "waiting_for": l.waiting_for})),
                     "ended_sessions": s.ended_sessions.iter().map(|e| serde_json::json!({"session": e.session_name, "reason": e.reason, "trials_completed": e.trials_completed, "decisions": e.decisions, "decisions_labelled": e.decisions_labelled, "decisions_correct": e.decisions_correct, "trials_learned": e.trials_learned, "recording": e.recording_path})).collect::<Vec<_>>(),
                     "senders": s.senders.iter().map(|x| serde_json::json!({"sender": x.sender, "last_seq": x.last_seq, "gaps": x.gaps, "ended": x.ended})).collect::<Vec<_>>()}));
             } else {
                 println!("auspexd {} · model {} ({} units × {} stimuli: {})", s.version, s.model_path, s.units.len(), s.stimuli.len(), s.stimuli.join(", "));
                 println!("decoder {} · threshold {} after {} ms · prior [{}]", s.decoder, s.threshold, s.min_time_s * 1000.0, s.prior.iter().map(|p| format!("{p:.3}")).collect::<Vec<_>>().join(", "));
+                for l in auspex::monitor::promise_lines(&s) {
+                    println!("{l}");
+                }
                 if s.tick_rate_hz > 0.0 {
                     println!("session {:?} · clock {} ticks/s · open trials {:?} · recording {}", s.session_name, s.tick_rate_hz, s.open_trials, if s.recording_path.is_empty() { "off" } else { &s.recording_path });
                 } else {
@@ -668,15 +686,16 @@ fn main() {
         Cmd::Steer { control, what } => runtime().and_then(|rt| rt.block_on(async {
             use v1::control_request::Body as B;
             let body = match what {
-                Steer::Policy { threshold, min_time_ms } => {
-                    if threshold.is_none() && min_time_ms.is_none() {
-                        anyhow::bail!("give --threshold, --min-time-ms or both");
+                Steer::Policy { threshold, min_time_ms, target_accuracy } => {
+                    if threshold.is_none() && min_time_ms.is_none() && target_accuracy.is_none() {
+                        anyhow::bail!("give --threshold, --min-time-ms (or both), or --target-accuracy");
                     }
                     // The request sets both: fill in what was not given from the daemon's status.
                     let st = auspex::live::status(&control).await?;
                     B::SetPolicy(v1::SetPolicy {
                         threshold: threshold.unwrap_or(st.threshold),
                         min_time_s: min_time_ms.map(|m| m / 1000.0).unwrap_or(st.min_time_s),
+                        target_accuracy: target_accuracy.unwrap_or(0.0),
                     })
                 }
                 Steer::Prior { prior } => B::SetPrior(v1::SetPrior { prior: if prior == "model" { vec![] } else { parse_prior(&prior).map_err(|e| anyhow::anyhow!(e))? } }),
@@ -698,7 +717,12 @@ fn main() {
             }
             match r.body {
                 Some(v1::control_reply::Body::Next(n)) => println!("{}", n.stimulus),
-                Some(v1::control_reply::Body::Status(s)) => println!("ok: decoder {}, threshold {}, minimum {} ms, model {}", s.decoder, s.threshold, s.min_time_s * 1000.0, s.model_path),
+                Some(v1::control_reply::Body::Status(s)) => {
+                    println!("ok: decoder {}, threshold {}, minimum {} ms, model {}", s.decoder, s.threshold, s.min_time_s * 1000.0, s.model_path);
+                    for l in auspex::monitor::promise_lines(&s) {
+                        println!("{l}");
+                    }
+                }
                 None => println!("ok"),
             }
             Ok(())

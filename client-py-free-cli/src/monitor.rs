@@ -289,6 +289,31 @@ impl MonitorState {
                 },
                 Style::default().fg(Color::Cyan),
             ),
+            match &self.health {
+                Some(h) if !h.promises.is_empty() => {
+                    let (n, k): (u64, u64) = h
+                        .promises
+                        .iter()
+                        .fold((0, 0), |(n, k), r| (n + r.decisions, k + r.correct));
+                    let levels: Vec<String> =
+                        h.promises.iter().map(|r| r.promise.to_string()).collect();
+                    if h.promise_broken {
+                        Span::styled(
+                            format!("   PROMISE BROKEN ({}): {k}/{n} right", levels.join(", ")),
+                            Style::default()
+                                .fg(Color::White)
+                                .bg(Color::Red)
+                                .add_modifier(Modifier::BOLD),
+                        )
+                    } else {
+                        Span::styled(
+                            format!("   promise {} kept: {k}/{n} right", levels.join(", ")),
+                            Style::default().fg(Color::Green),
+                        )
+                    }
+                }
+                _ => Span::raw(""),
+            },
             Span::styled(
                 if self.paused { "   ‖ PAUSED" } else { "" },
                 Style::default().fg(Color::Red),
@@ -519,6 +544,60 @@ impl MonitorState {
             area,
         );
     }
+}
+
+/// One line for the live record of one promised level.
+pub fn promise_record_line(r: &v1::PromiseRecord) -> String {
+    format!(
+        "promise {}{}: {}/{} labelled threshold decisions right = {:.3} (95% interval {:.3}–{:.3}){}",
+        r.promise,
+        if r.threshold != r.promise {
+            format!(" (threshold {})", r.threshold)
+        } else {
+            String::new()
+        },
+        r.correct,
+        r.decisions,
+        r.correct as f64 / r.decisions.max(1) as f64,
+        r.accuracy_lo,
+        r.accuracy_hi,
+        if r.broken {
+            " — BROKEN: right less often than promised (CUSUM alarm)"
+        } else {
+            " — kept so far"
+        }
+    )
+}
+
+/// What backs the decision threshold, and how the promise has been kept this session (status).
+pub fn promise_lines(s: &v1::Status) -> Vec<String> {
+    let mut out = Vec::new();
+    if let Some(p) = &s.promise {
+        let how = if p.target_accuracy > 0.0 {
+            format!("target accuracy {}", p.target_accuracy)
+        } else {
+            format!("threshold {} set directly", s.threshold)
+        };
+        out.push(format!(
+            "promise: {how} · calibration {}{}",
+            p.calibration,
+            if p.calibrated { "" } else { " (switched off)" }
+        ));
+        if p.withheld {
+            out.push(format!(
+                "  threshold decisions WITHHELD (every decision at the window end): {}",
+                p.evidence
+            ));
+        } else if !p.evidence.is_empty() {
+            out.push(format!("  {}", p.evidence));
+        }
+    }
+    if let Some(h) = &s.health {
+        for r in &h.promises {
+            out.push(format!("  {}", promise_record_line(r)));
+        }
+    }
+    out
 }
 
 /// One line for a session summary (plain mode, status).

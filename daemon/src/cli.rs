@@ -71,6 +71,13 @@ pub struct DaemonArgs {
     /// Minimum time after onset before a threshold decision, ms
     #[arg(long)]
     pub min_time_ms: Option<f64>,
+    /// Instead of --threshold: the accuracy threshold decisions must keep; threshold and minimum
+    /// time come from the model's held-out record (start refused when it cannot support it)
+    #[arg(long, conflicts_with = "threshold")]
+    pub target_accuracy: Option<f64>,
+    /// Ignore the model's calibration (raw posterior, β = 1)
+    #[arg(long)]
+    pub uncalibrated: bool,
     /// Log JSON lines instead of text
     #[arg(long)]
     pub log_json: bool,
@@ -105,8 +112,12 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
         control,
         record,
         decoder,
-        threshold
+        threshold,
+        target_accuracy
     );
+    if a.uncalibrated {
+        f.uncalibrated = Some(true);
+    }
     over!(
         learn,
         learn_window_ms,

@@ -44,6 +44,10 @@ pub struct FileConfig {
     pub threshold: Option<f64>,
     /// Minimum decision time, ms.
     pub min_time_ms: Option<f64>,
+    /// Choose threshold and minimum time from the model's held-out record to keep this accuracy.
+    pub target_accuracy: Option<f64>,
+    /// Ignore the model's calibration (raw posterior).
+    pub uncalibrated: Option<bool>,
     /// Largest inbound message accepted, bytes.
     pub max_message_bytes: Option<usize>,
     /// Seed of the next-stimulus policy.
@@ -112,6 +116,10 @@ pub struct DaemonConfig {
     pub decoder: Decoder,
     /// Decision policy.
     pub policy: DecisionPolicy,
+    /// Target accuracy (the threshold then comes from the model's held-out record).
+    pub target_accuracy: Option<f64>,
+    /// Apply the model's calibration.
+    pub calibrated: bool,
     /// Largest inbound message accepted.
     pub max_message_bytes: usize,
     /// Seed of the next-stimulus policy.
@@ -272,6 +280,16 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
     if !(min_time_ms.is_finite() && min_time_ms >= 0.0) {
         return Err(format!("minimum time {min_time_ms} ms must be ≥ 0"));
     }
+    if let Some(t) = f.target_accuracy {
+        if !(t > 0.0 && t < 1.0) {
+            return Err(format!(
+                "target accuracy {t} must be in (0, 1), e.g. 0.95"
+            ));
+        }
+        if f.threshold.is_some() {
+            return Err("give either a threshold or a target accuracy, not both".into());
+        }
+    }
     if let Some(r) = f.tick_rate_hz {
         if !(r.is_finite() && r >= 1.0) {
             return Err(format!("tick rate {r} must be ≥ 1 tick per second"));
@@ -307,6 +325,8 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
             threshold,
             min_time_s: min_time_ms / 1000.0,
         },
+        target_accuracy: f.target_accuracy,
+        calibrated: !f.uncalibrated.unwrap_or(false),
         max_message_bytes,
         seed: f.seed.unwrap_or(1),
         engine_queue: 1 << 16,

@@ -12,6 +12,7 @@
 
 use crate::learner::{Cadence, LearnMsg, Learned};
 use crate::next_stimulus::StimulusChooser;
+use crate::promise::PromiseKeeper;
 use crate::publish::Publisher;
 use crate::ratelog::RateLimitedLog;
 use crate::recorder::RecorderMsg;
@@ -114,7 +115,9 @@ struct SessionTally {
     labelled: u64,
     correct: u64,
     /// Decided trials that ended before their label: (trial, decided stimulus name).
-    awaiting_label: VecDeque<(u64, String)>,
+    /// Decided trials that ended before their label: (trial, decided stimulus name, the
+    /// threshold of a threshold decision).
+    awaiting_label: VecDeque<(u64, String, Option<f64>)>,
     recording: String,
 }
 
@@ -142,6 +145,7 @@ struct PubSink<'a> {
     current: &'a Arc<[String]>,
     chooser: &'a mut StimulusChooser,
     tally: Option<&'a mut SessionTally>,
+    promise: &'a mut PromiseKeeper,
 }
 
 impl PubSink<'_> {
@@ -188,6 +192,13 @@ impl EngineSink for PubSink<'_> {
         }
         let decided = e.decision.map(|d| self.name(e.trial, d.stimulus));
         let presented = e.presented.map(|p| self.name(e.trial, p));
+        let by_threshold = e
+            .decision
+            .filter(|d| d.reason == DecisionReason::Threshold)
+            .map(|d| d.threshold);
+        if let (Some(d), Some(p), Some(th)) = (&decided, &presented, by_threshold) {
+            self.promise.record(th, d == p);
+        }
         if let Some(t) = self.tally.as_mut() {
             if e.outcome == TrialOutcome::Completed {
                 t.completed += 1;
@@ -203,7 +214,7 @@ impl EngineSink for PubSink<'_> {
                     if t.awaiting_label.len() == 256 {
                         t.awaiting_label.pop_front();
                     }
-                    t.awaiting_label.push_back((e.trial, d.clone()));
+                    t.awaiting_label.push_back((e.trial, d.clone(), by_threshold));
                 }
                 _ => {}
             }
@@ -232,10 +243,13 @@ impl EngineSink for PubSink<'_> {
     fn unit_summaries(&mut self, s: &UnitSummaries<'_>) {
         let presented = self.name(s.trial, s.presented);
         if let Some(t) = self.tally.as_mut() {
-            if let Some(i) = t.awaiting_label.iter().position(|(id, _)| *id == s.trial) {
-                if let Some((_, d)) = t.awaiting_label.remove(i) {
+            if let Some(i) = t.awaiting_label.iter().position(|(id, _, _)| *id == s.trial) {
+                if let Some((_, d, th)) = t.awaiting_label.remove(i) {
                     t.labelled += 1;
                     t.correct += (d == presented) as u64;
+                    if let Some(th) = th {
+                        self.promise.record(th, d == presented);
+                    }
                 }
             }
         }
@@ -303,6 +317,7 @@ macro_rules! pub_sink {
             current: &$t.current,
             chooser: &mut $t.chooser,
             tally: $t.session.as_mut(),
+            promise: &mut $t.promise,
         }
     };
 }
@@ -392,6 +407,7 @@ pub struct EngineThread {
     epoch: u64,
     learn: Option<LearnLink>,
     windows: Vec<TrialWindow>,
+    promise: PromiseKeeper,
 }
 
 /// Trial messages held while waiting for SessionStart; more are counted as malformed.
@@ -425,6 +441,8 @@ pub struct EngineThreadSetup {
     pub health_period: Duration,
     /// Learning (None: off), and the learner thread's inbox.
     pub learn: Option<(LearnSetup, Sender<LearnMsg>)>,
+    /// Choose the threshold from the model's held-out record to keep this accuracy.
+    pub target_accuracy: Option<f64>,
 }
 
 /// Adds one set of engine counters to another.
@@ -549,7 +567,9 @@ impl EngineThread {
             epoch: 0,
             learn,
             windows: Vec::new(),
+            promise: PromiseKeeper::new(s.target_accuracy),
         };
+        t.config.policy = t.promise.model_changed(t.model.as_deref(), &t.config);
         if let (Some(r), Some(m)) = (t.tick_rate, t.model.clone()) {
             t.config.tick_rate_hz = r;
             t.engine = Some(Engine::new(m, t.config.clone())?);
@@ -934,6 +954,7 @@ impl EngineThread {
             &ss.session_name,
             self.recording_path.clone(),
         ));
+        self.promise.new_session();
         if let Some(l) = self.learn.as_mut() {
             let window_ticks = (l.setup.options.fit.window_s * ss.tick_rate_hz).round() as i64;
             let history = (self.config.history_s * ss.tick_rate_hz).round() as i64;
@@ -1022,6 +1043,7 @@ impl EngineThread {
             // Learning starts from the loaded model (or none) in every session.
             self.model = self.base.as_ref().map(|b| b.0.clone());
             self.model_path = self.base.as_ref().map(|b| b.1.clone()).unwrap_or_default();
+            self.config.policy = self.promise.model_changed(self.model.as_deref(), &self.config);
             self.current = self
                 .model
                 .as_ref()
@@ -1047,12 +1069,17 @@ impl EngineThread {
         if l.epoch != self.epoch || self.session.is_none() {
             return;
         }
+        let mut cfg = self.config.clone();
+        cfg.policy = self.promise.model_changed(Some(&l.model), &cfg);
         let r = match self.engine.as_mut() {
-            Some(e) => e.set_model(l.model.clone()),
-            None => Engine::new(l.model.clone(), self.config.clone()).map(|e| {
+            Some(e) => e
+                .set_model(l.model.clone())
+                .and_then(|()| e.set_config(cfg.clone())),
+            None => Engine::new(l.model.clone(), cfg.clone()).map(|e| {
                 self.engine = Some(e);
             }),
         };
+        self.config.policy = cfg.policy;
         if let Err(e) = r {
             link.waiting_for = format!("the learned model could not be used: {e}");
             return;
@@ -1088,10 +1115,30 @@ impl EngineThread {
     }
 
     fn reload(&mut self, model: Arc<Model>, path: String) -> ControlReply {
+        // A target accuracy the new model's record cannot support refuses the reload.
+        let mut cfg = self.config.clone();
+        if let Some(t) = self.promise.target() {
+            match PromiseKeeper::policy_for(t, Some(&model), &cfg) {
+                Ok((p, _)) => cfg.policy = p,
+                Err(e) => {
+                    return ControlReply {
+                        ok: false,
+                        error: format!("{path}: not loaded: target accuracy {t}: {e}"),
+                        note: String::new(),
+                        body: None,
+                    }
+                }
+            }
+        }
         let r = match self.engine.as_mut() {
-            Some(e) => e.set_model(model.clone()),
+            Some(e) => e
+                .set_model(model.clone())
+                .and_then(|()| e.set_config(cfg.clone())),
             None => Ok(()),
         };
+        if r.is_ok() {
+            self.config.policy = self.promise.model_changed(Some(&model), &cfg);
+        }
         match r {
             Ok(()) => {
                 self.current = model.stimuli().to_vec().into();
@@ -1199,7 +1246,23 @@ impl EngineThread {
                 let mut c = self.config.clone();
                 c.policy.threshold = p.threshold;
                 c.policy.min_time_s = p.min_time_s;
-                let r = self.apply_config(c);
+                let target = (p.target_accuracy > 0.0).then_some(p.target_accuracy);
+                let r = match target {
+                    // Checked against the model before anything changes.
+                    Some(t) => PromiseKeeper::policy_for(t, self.model.as_deref(), &c)
+                        .map(|(pol, _)| c.policy = pol),
+                    None => Ok(()),
+                }
+                .and_then(|()| self.apply_config(c.clone()));
+                if r.is_ok() {
+                    let _ = self.promise.set_target(target, self.model.as_deref(), &c);
+                    tracing::info!(
+                        threshold = c.policy.threshold,
+                        min_time_s = c.policy.min_time_s,
+                        target_accuracy = target.unwrap_or(0.0),
+                        "decision policy changed; applies to trials that open from now on"
+                    );
+                }
                 with_status(self, r)
             }
             B::SetPrior(p) => {
@@ -1313,6 +1376,8 @@ impl EngineThread {
             trials_learned: self.learn.as_ref().map(|l| l.trials_sent).unwrap_or(0),
             learned_model_trials: self.learn.as_ref().map(|l| l.model_trials).unwrap_or(0),
             learning_frozen: self.learn.as_ref().is_some_and(|l| !l.enabled),
+            promises: self.promise.records(),
+            promise_broken: self.promise.broken(),
         }
     }
 
@@ -1398,6 +1463,7 @@ impl EngineThread {
                 .unwrap_or_default(),
             ended_sessions: self.ended.clone(),
             learning,
+            promise: Some(self.promise.state(self.model.as_deref(), &self.config)),
         }
     }
 }

@@ -13,6 +13,7 @@ pub mod ingest;
 pub mod learner;
 pub mod model_file;
 pub mod next_stimulus;
+pub mod promise;
 pub mod publish;
 pub mod ratelog;
 pub mod recorder;

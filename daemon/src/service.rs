@@ -180,6 +180,13 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
     let mut ec = EngineConfig::new(cfg.tick_rate_hz.unwrap_or(1e6));
     ec.decoder = cfg.decoder;
     ec.policy = cfg.policy;
+    ec.calibrated = cfg.calibrated;
+    if let (Some(t), Some(m)) = (cfg.target_accuracy, &model) {
+        // Refuse rather than promise: a loaded model whose record cannot support the target.
+        let (_, line) = crate::promise::PromiseKeeper::policy_for(t, Some(m), &ec)
+            .map_err(|e| anyhow::anyhow!("{model_label}: target accuracy {t}: {e}"))?;
+        tracing::info!("{line}");
+    }
     let learner = match &cfg.learn {
         Some(l) => {
             let (window_s, bin_width_s) = match &model {
@@ -239,6 +246,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         max_message_bytes: cfg.max_message_bytes,
         seed: cfg.seed,
         health_period: cfg.health_period,
+        target_accuracy: cfg.target_accuracy,
     };
     let et = EngineThread::new(setup, engine_rx.clone())
         .map_err(|e| anyhow::anyhow!("{model_label}: {e}"))?;
