@@ -221,12 +221,19 @@ pub fn calibration_summary(c: &Calibration) -> String {
         });
     let _ = writeln!(
         s,
-        "calibration: {} (β {}), fitted on {} held-out trials ({} folds); held-out log loss {:.4} → {:.4} nats per bin",
+        "calibration: {} (β {}{}), fitted on {} held-out trials ({} folds); held-out log loss {:.4} → {:.4} nats per bin",
         c.method.name(),
-        if (hi - lo).abs() < 1e-12 {
+        if !lo.is_finite() {
+            "1".to_string()
+        } else if (hi - lo).abs() < 1e-12 {
             format!("{lo:.3}")
         } else {
             format!("{lo:.3}–{hi:.3}")
+        },
+        if c.floor > 0.0 {
+            format!(", prior share ε {}", c.floor)
+        } else {
+            String::new()
         },
         c.held_out_trials,
         c.folds,
@@ -242,18 +249,18 @@ pub fn calibration_summary(c: &Calibration) -> String {
                 "{} → {:.3}{}",
                 e.threshold,
                 e.accuracy(),
-                if e.hi >= e.threshold { "" } else { " (broken)" }
+                if e.kept() { "" } else { " (broken)" }
             )
         })
         .collect();
     let broken = c
         .evidence
         .iter()
-        .filter(|e| e.threshold >= 0.8 && e.threshold <= 0.99 && e.hi < e.threshold)
+        .filter(|e| e.threshold >= 0.8 && e.threshold <= 0.99 && !e.kept())
         .count();
     let _ = writeln!(
         s,
-        "promises (held-out accuracy of deciding at each threshold, cross-fitted): {} — {}",
+        "promises (held-out accuracy of all decisions at each threshold, cross-fitted; a promise is the threshold decisions'): {} — {}",
         if broken == 0 {
             "every threshold from 0.8 to 0.99 kept".to_string()
         } else {
@@ -579,12 +586,13 @@ pub fn promise_table(c: &Calibration) -> String {
     );
     let _ = writeln!(
         s,
-        "  threshold   right      accuracy  95% interval   median decision  promise"
+        "  threshold   all decisions: right  accuracy  95% interval   median   by threshold: right  accuracy  promise"
     );
     for e in &c.evidence {
+        let (ea, _, _) = e.early_accuracy();
         let _ = writeln!(
             s,
-            "  {:<9}   {:>4}/{:<4}  {:.3}     {:.3}–{:.3}    {:>6.0} ms        {}",
+            "  {:<9}   {:>8}/{:<4}         {:.3}     {:.3}–{:.3}    {:>4.0} ms  {:>8}/{:<4}        {}     {}",
             e.threshold,
             e.correct,
             e.trials,
@@ -592,7 +600,10 @@ pub fn promise_table(c: &Calibration) -> String {
             e.lo,
             e.hi,
             e.median_decision_ms,
-            if e.hi >= e.threshold { "kept" } else { "BROKEN" }
+            e.early_correct,
+            e.early,
+            if e.early > 0 { format!("{ea:.3}") } else { "  –  ".into() },
+            if e.kept() { "kept" } else { "BROKEN" }
         );
     }
     s

@@ -23,6 +23,8 @@ struct ModelJson<'a> {
     /// β(b) per bin: posterior_s(b) = softmax_s(ln prior_s + β(b)·log L_s(b)); all 1 when the
     /// model is not calibrated.
     calibration_factors: Vec<f64>,
+    /// ε: posterior = (1 − ε)·softmax(…) + ε·prior (0 without a floor).
+    calibration_floor: f64,
     calibration_method: &'a str,
     cells: Vec<CellJson<'a>>,
 }
@@ -50,11 +52,12 @@ pub fn model_json(m: &Model) -> String {
         stimuli: m.stimuli(),
         units: m.units(),
         prior: m.ln_prior().iter().map(|l| l.exp()).collect(),
-        calibration_factors: if m.calibration().is_active() {
-            m.calibration().factors.clone()
-        } else {
+        calibration_factors: if m.calibration().factors.is_empty() {
             vec![1.0; m.n_bins()]
+        } else {
+            m.calibration().factors.clone()
         },
+        calibration_floor: m.calibration().floor,
         calibration_method: m.calibration().method.name(),
         cells,
     };

@@ -471,6 +471,132 @@ fn calibration_plot(v: &Validation) -> String {
     p.finish()
 }
 
+const METHOD_COLOURS: [&str; 4] = ["#7f7f7f", "#1f4e9c", "#ff7f0e", "#2ca02c"];
+
+/// Realised held-out accuracy against the promise, per recalibration method.
+fn promise_plot(v: &Validation) -> String {
+    let mut p = Plot::new(460.0, 360.0, (0.78, 1.0), (0.78, 1.0));
+    p.axes(
+        "Promise kept? threshold against held-out accuracy",
+        "threshold θ (the promised accuracy)",
+        "accuracy of threshold decisions (95% interval)",
+    );
+    p.line(&[(0.78, 0.78), (1.0, 1.0)], "#555", 1.0, true);
+    let methods = &v.calibration.methods;
+    let mut legend = Vec::new();
+    for (m, mr) in methods.iter().enumerate() {
+        let col = METHOD_COLOURS[m % 4];
+        // Side by side so intervals at the same threshold do not hide each other.
+        let dx = (m as f64 - (methods.len() as f64 - 1.0) / 2.0) * 0.0025;
+        let pts: Vec<&auspex_engine::calibrate::ThresholdEvidence> =
+            mr.record.iter().filter(|e| e.threshold >= 0.8).collect();
+        let pts: Vec<_> = pts.into_iter().filter(|e| e.early > 0).collect();
+        let line: Vec<(f64, f64)> = pts
+            .iter()
+            .map(|e| (e.threshold + dx, e.early_accuracy().0))
+            .collect();
+        p.line(&line, col, 1.5, false);
+        for e in pts {
+            let (acc, lo, hi) = e.early_accuracy();
+            p.line(
+                &[(e.threshold + dx, lo.max(0.78)), (e.threshold + dx, hi)],
+                col,
+                1.0,
+                false,
+            );
+            p.dot(
+                e.threshold + dx,
+                acc,
+                3.0,
+                col,
+                &format!(
+                    "{}: θ = {}: {}/{} threshold decisions right = {:.1}% [{:.1}, {:.1}] ({} of {} trials decided by the threshold), median decision {:.0} ms",
+                    mr.method,
+                    e.threshold,
+                    e.early_correct,
+                    e.early,
+                    100.0 * acc,
+                    100.0 * lo,
+                    100.0 * hi,
+                    e.early,
+                    e.trials,
+                    e.median_decision_ms
+                ),
+            );
+        }
+        legend.push((
+            format!(
+                "{} ({}/{} kept, {}/{} ≥ θ)",
+                if mr.method == "none" {
+                    "raw posterior"
+                } else {
+                    &mr.method
+                },
+                mr.kept.0,
+                mr.kept.1,
+                mr.met.0,
+                mr.met.1
+            ),
+            col,
+        ));
+    }
+    legend.push(("dashed: accuracy = promise".to_string(), "#555"));
+    p.legend_at(&legend, 0.885, 0.845);
+    p.finish()
+}
+
+/// Accuracy against median decision time per recalibration method (the price of a kept promise).
+fn promise_time_plot(v: &Validation) -> String {
+    let methods = &v.calibration.methods;
+    let tmax = methods
+        .iter()
+        .flat_map(|m| m.record.iter().map(|e| e.median_decision_ms))
+        .fold(0.0f64, f64::max)
+        .max(10.0);
+    let mut p = Plot::new(460.0, 360.0, (0.0, tmax * 1.05), (0.78, 1.0));
+    p.axes(
+        "What a kept promise costs: accuracy against decision time",
+        "median decision time (ms)",
+        "held-out accuracy",
+    );
+    let mut legend = Vec::new();
+    for (m, mr) in methods.iter().enumerate() {
+        let col = METHOD_COLOURS[m % 4];
+        let pts: Vec<(f64, f64)> = mr
+            .record
+            .iter()
+            .filter(|e| e.threshold >= 0.8)
+            .map(|e| (e.median_decision_ms, e.accuracy()))
+            .collect();
+        p.line(&pts, col, 1.5, m == 0);
+        for e in mr.record.iter().filter(|e| e.threshold >= 0.8) {
+            p.dot(
+                e.median_decision_ms,
+                e.accuracy(),
+                2.5,
+                col,
+                &format!(
+                    "{}: θ = {}: {:.1}% at {:.0} ms",
+                    mr.method,
+                    e.threshold,
+                    100.0 * e.accuracy(),
+                    e.median_decision_ms
+                ),
+            );
+        }
+        legend.push((
+            if mr.method == "none" {
+                "raw posterior (dashed)".to_string()
+            } else {
+                mr.method.clone()
+            },
+            col,
+        ));
+    }
+    p.legend_at(&legend, tmax * 0.55, 0.86);
+    p.finish()
+}
+
 fn learning_plots(v: &Validation) -> String {
     let lc = &v.learning_curve;
     let xmax = lc
@@ -1001,6 +1127,63 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
         );
     }
     s += "</table>";
+    if !v.calibration.methods.is_empty() {
+        let _ = write!(
+            s,
+            "</div><h2>Keeping the promise: recalibration compared</h2><p class=sub>Temperature scaling (Guo, Pleiss, Sun &amp; Weinberger 2017): the posterior becomes softmax(ln prior + β·log L), β fitted to minimise the held-out log loss of the presented stimulus — one β for the window (<b>temperature</b>) or one per band of time since onset, bands doubling from the minimum decision time (<b>banded-temperature</b>). Here each outer fold's β is fitted on held-out decoding <i>inside</i> its training trials (nested cross-validation), then applied to the fold's held-out trials; decisions are replayed exactly as the engine takes them. A promise θ is kept when the 95% Clopper–Pearson interval of the accuracy reaches θ. <code>auspex fit</code> applies <b>{}</b> by default (<code>--calibration</code>).</p><div class=row>",
+            esc(&v.calibration.default_method)
+        );
+        s += &promise_plot(v);
+        s += &promise_time_plot(v);
+        s += "</div><div class=row><table><tr><th>threshold</th>";
+        for m in &v.calibration.methods {
+            let _ = write!(
+                s,
+                "<th>{} — threshold decisions right [95%] · all decisions · median decision time</th>",
+                esc(if m.method == "none" {
+                    "raw posterior"
+                } else {
+                    &m.method
+                })
+            );
+        }
+        s += "</tr>";
+        let n = v.calibration.methods[0].record.len();
+        for i in 0..n {
+            let th = v.calibration.methods[0].record[i].threshold;
+            if th < 0.8 {
+                continue;
+            }
+            let _ = write!(s, "<tr><td>{th}</td>");
+            for m in &v.calibration.methods {
+                let e = &m.record[i];
+                let kept = e.kept();
+                let (ea, elo, ehi) = e.early_accuracy();
+                let _ = write!(
+                    s,
+                    "<td class={}>{}/{} by threshold: {:.1}% [{:.1}, {:.1}] · all: {:.1}% · {:.0} ms{}</td>",
+                    if kept { "ok" } else { "warn" },
+                    e.early_correct,
+                    e.early,
+                    100.0 * ea,
+                    100.0 * elo,
+                    100.0 * ehi,
+                    100.0 * e.accuracy(),
+                    e.median_decision_ms,
+                    match m.time_ratio.get(i).copied().flatten() {
+                        Some(r) if m.method != "none" => format!(" (×{r:.2})"),
+                        _ => String::new(),
+                    }
+                );
+            }
+            s += "</tr>";
+        }
+        s += "<tr><td>held-out log loss</td>";
+        for m in &v.calibration.methods {
+            let _ = write!(s, "<td>{:.4} nats per bin; β {:.3}–{:.3}; ε {}–{}; ECE at decision {:.3}</td>", m.log_loss, m.factor_range.0, m.factor_range.1, m.floor_range.0, m.floor_range.1, m.at_decision.ece);
+        }
+        s += "</tr></table><p class=sub>(×r): median decision time divided by the raw posterior's at the same realised accuracy (interpolated along its trade-off).</p>";
+    }
     if !v.learning_curve.is_empty() {
         s += "</div><h2>How many trials: the learning curve</h2><p class=sub>The same folds, with each fold's training trials cut to n per stimulus (a seeded random subset), the model fitted on them as <code>auspex fit</code> fits and the fold's untouched held-out trials decoded at the window end (order statistics, all units). Bands: 95% Clopper–Pearson interval of accuracy; ±1.96 standard errors of the information. It answers how many trials per stimulus a session of this kind needs.</p><div class=row>";
         s += &learning_plots(v);

@@ -89,13 +89,43 @@ pub struct Promise {
     pub kept: bool,
 }
 
+/// One recalibration method, fitted inside each training fold only (nested cross-validation)
+/// and applied to the fold's held-out trials.
+#[derive(Clone, Debug, Serialize)]
+pub struct MethodReport {
+    /// Method name ("none" is the raw posterior).
+    pub method: String,
+    /// Mean held-out log loss per trial and bin, nats.
+    pub log_loss: f64,
+    /// Factor range over folds and bins.
+    pub factor_range: (f64, f64),
+    /// Prior share ε range over folds.
+    pub floor_range: (f64, f64),
+    /// Deciding at each threshold: held-out record.
+    pub record: Vec<auspex_engine::calibrate::ThresholdEvidence>,
+    /// Thresholds from 0.8 to 0.99 whose interval reaches the promise, of those tested.
+    pub kept: (usize, usize),
+    /// Thresholds from 0.8 to 0.99 whose threshold decisions' accuracy is at least θ (the
+    /// point estimate, a stricter reading), of those tested.
+    pub met: (usize, usize),
+    /// Reliability at decision time (headline threshold).
+    pub at_decision: ReliabilitySet,
+    /// Median decision time at each threshold divided by the raw posterior's median decision
+    /// time at the same realised accuracy (interpolated on the raw trade-off; None outside it).
+    pub time_ratio: Vec<Option<f64>>,
+}
+
 /// Calibration of the order-statistics decoder's posteriors on held-out trials.
 #[derive(Clone, Debug, Serialize)]
 pub struct Calibration {
     /// Reliability at decision time and at fixed times after onset.
     pub reliability: Vec<ReliabilitySet>,
-    /// Every threshold of the trade-off, promise against realised accuracy.
+    /// Every threshold's promise against its realised accuracy.
     pub promises: Vec<Promise>,
+    /// The raw posterior and each recalibration, compared on the same held-out trials.
+    pub methods: Vec<MethodReport>,
+    /// The method `auspex fit` applies by default.
+    pub default_method: String,
 }
 
 /// One point of the learning curve.
@@ -306,6 +336,8 @@ struct TrajSink {
     index: HashMap<u64, usize>,
     ns: usize,
     out: Vec<Vec<f32>>,
+    /// The log-likelihood trajectories too (order statistics: calibration is fitted on them).
+    ll: Option<Vec<Vec<f64>>>,
 }
 
 impl EngineSink for TrajSink {
@@ -314,6 +346,9 @@ impl EngineSink for TrajSink {
             let b = f.bin as usize;
             for (s, p) in f.posterior.iter().enumerate() {
                 self.out[i][b * self.ns + s] = *p as f32;
+            }
+            if let Some(ll) = self.ll.as_mut() {
+                ll[i][b * self.ns..(b + 1) * self.ns].copy_from_slice(f.log_likelihood);
             }
         }
     }
@@ -454,7 +489,7 @@ pub fn validate(
     let min_bin = ((opts.min_time_ms / bw_ms - 1e-9).ceil() as i64 - 1).max(0) as usize;
 
     let bar = if opts.progress {
-        ProgressBar::new((k + opts.shuffles + 1) as u64)
+        ProgressBar::new((2 * k + opts.shuffles + 1) as u64)
     } else {
         ProgressBar::hidden()
     };
@@ -491,6 +526,7 @@ pub fn validate(
     let mut unit_conf = vec![vec![0u64; ns * ns]; nu];
     let mut pop_conf_closed = vec![0u64; ns * ns];
     let mut folds = Vec::with_capacity(k);
+    let mut held_ll: Vec<Vec<f64>> = vec![Vec::new(); nt];
     let mut rng = ChaCha8Rng::seed_from_u64(opts.seed ^ 0x5eed);
     for f in 0..k {
         let train: Vec<usize> = (0..nt).filter(|&i| fold_of[i] != f).collect();
@@ -518,12 +554,16 @@ pub fn validate(
                     .collect(),
                 ns,
                 out: vec![vec![0f32; nb * ns]; test.len()],
+                ll: (*dec == Decoder::OrderStats).then(|| vec![vec![0f64; nb * ns]; test.len()]),
             };
             let mut cfg = EngineConfig::new(data.tick_rate_hz);
             cfg.decoder = *dec;
             run_dataset(model.clone(), &test_data, cfg, &mut sink)?;
             for (j, &i) in test.iter().enumerate() {
                 traj[d][i] = std::mem::take(&mut sink.out[j]);
+                if let Some(ll) = sink.ll.as_mut() {
+                    held_ll[i] = std::mem::take(&mut ll[j]);
+                }
             }
         }
         window_end_confusions(
@@ -648,7 +688,7 @@ pub fn validate(
             confusion_end: nested(&conf_end, ns),
         });
     }
-    let calibration = calibration(
+    let mut calibration = calibration(
         &traj[0],
         &labels,
         ns,
@@ -658,6 +698,36 @@ pub fn validate(
         opts.threshold,
         &decoders[0],
     );
+    bar.set_message("calibration, fitted inside each training fold");
+    calibration.methods = compare_calibrations(
+        &data,
+        &stimuli,
+        &labels,
+        &folds,
+        held_ll,
+        &full_plan.prior,
+        opts,
+        min_bin,
+        &bar,
+    )?;
+    // The promise is the threshold decisions': judged from the raw posterior's record.
+    if let Some(raw) = calibration.methods.first() {
+        calibration.promises = raw
+            .record
+            .iter()
+            .filter(|e| THRESHOLDS.contains(&e.threshold))
+            .map(|e| {
+                let (accuracy, lo, hi) = e.early_accuracy();
+                Promise {
+                    threshold: e.threshold,
+                    accuracy,
+                    lo,
+                    hi,
+                    kept: e.kept(),
+                }
+            })
+            .collect();
+    }
     // The observed population figure is the engine's own window-end confusion (order stats);
     // the closed form used by the null must agree with it.
     let engine_conf: Vec<u64> = decoders[0].confusion_end.concat();
@@ -835,8 +905,194 @@ fn calibration(
     Calibration {
         reliability: sets,
         promises,
+        methods: Vec::new(),
+        default_method: crate::commands::DEFAULT_CALIBRATION.name().into(),
     }
 }
+
+/// The median over thresholds 0.8–0.99 of a method's decision-time ratio at equal accuracy.
+pub fn median_ratio(m: &MethodReport) -> Option<f64> {
+    let mut r: Vec<f64> = m
+        .record
+        .iter()
+        .zip(&m.time_ratio)
+        .filter(|(e, _)| e.threshold >= PROMISE_RANGE.0 - 1e-9 && e.threshold <= PROMISE_RANGE.1 + 1e-9)
+        .filter_map(|(_, r)| *r)
+        .collect();
+    if r.is_empty() {
+        return None;
+    }
+    r.sort_by(|a, b| a.total_cmp(b));
+    Some(r[r.len() / 2])
+}
+
+/// Thresholds whose promise the method comparison judges.
+pub const PROMISE_RANGE: (f64, f64) = (0.8, 0.99);
+
+/// The raw posterior and each recalibration on the same held-out trials. Each outer fold's
+/// factors are fitted on held-out decoding *inside* its training trials (inner folds), so no
+/// held-out label shapes the calibration applied to it.
+#[allow(clippy::too_many_arguments)]
+fn compare_calibrations(
+    data: &Dataset,
+    stimuli: &[String],
+    labels: &[usize],
+    folds: &[Fold],
+    held_ll: Vec<Vec<f64>>,
+    prior: &[f64],
+    opts: &ValidateOptions,
+    min_bin: usize,
+    bar: &ProgressBar,
+) -> anyhow::Result<Vec<MethodReport>> {
+    use auspex_engine::calibrate::{
+        fit_factors, held_out_set, mean_log_loss, posterior_into, replay_decision,
+        threshold_evidence, CalibrationMethod, HeldOutTrial, EVIDENCE_THRESHOLDS,
+    };
+    let psum: f64 = prior.iter().sum();
+    let ln_prior: Vec<f64> = prior.iter().map(|p| (p / psum).ln()).collect();
+    let ns = ln_prior.len();
+    let nb = held_ll.first().map(|l| l.len()).unwrap_or(0) / ns.max(1);
+    let trials: Vec<HeldOutTrial> = held_ll
+        .into_iter()
+        .zip(labels)
+        .map(|(ll, &label)| HeldOutTrial { label, ll })
+        .collect();
+    // Factors per method per outer fold, fitted on the inner held-out decoding of its training.
+    let methods = CalibrationMethod::ALL;
+    let mut factors: Vec<Vec<auspex_engine::calibrate::Fitted>> =
+        vec![Vec::new(); methods.len()];
+    for f in folds {
+        let inner = held_out_set(
+            &data.subset(&f.train),
+            &opts.fit,
+            stimuli,
+            opts.folds,
+            opts.seed ^ 0xca1,
+            &|p| p.assemble(crate::fitting::fit_cells(p, false)),
+        )?;
+        let refs: Vec<&HeldOutTrial> = inner.trials.iter().collect();
+        for (m, method) in methods.iter().enumerate() {
+            factors[m].push(fit_factors(*method, &refs, &ln_prior, nb, min_bin));
+        }
+        bar.inc(1);
+    }
+    let mut fold_of = vec![0; trials.len()];
+    for (fi, f) in folds.iter().enumerate() {
+        for &i in &f.test {
+            fold_of[i] = fi;
+        }
+    }
+    let mut out: Vec<MethodReport> = Vec::new();
+    for (m, method) in methods.iter().enumerate() {
+        let factors_of: Vec<&auspex_engine::calibrate::Fitted> =
+            fold_of.iter().map(|&f| &factors[m][f]).collect();
+        let record = threshold_evidence(
+            &trials,
+            &factors_of,
+            &ln_prior,
+            &EVIDENCE_THRESHOLDS,
+            min_bin,
+            opts.fit.bin_width_s * 1000.0,
+        );
+        let mut loss = 0.0;
+        for (fi, f) in folds.iter().enumerate() {
+            let mine: Vec<&HeldOutTrial> = f.test.iter().map(|&i| &trials[i]).collect();
+            loss += mean_log_loss(&mine, &ln_prior, &factors[m][fi]) * mine.len() as f64;
+        }
+        let in_range: Vec<_> = record
+            .iter()
+            .filter(|e| {
+                e.threshold >= PROMISE_RANGE.0 - 1e-9 && e.threshold <= PROMISE_RANGE.1 + 1e-9
+            })
+            .collect();
+        let kept = (
+            in_range.iter().filter(|e| e.kept()).count(),
+            in_range.len(),
+        );
+        let met = (
+            in_range
+                .iter()
+                .filter(|e| e.early == 0 || e.early_accuracy().0 >= e.threshold)
+                .count(),
+            in_range.len(),
+        );
+        let mut post = vec![0.0; ns];
+        let decided: Vec<(f64, bool)> = trials
+            .iter()
+            .zip(&factors_of)
+            .map(|(t, f)| {
+                let (s, b, _) =
+                    replay_decision(&t.ll, &ln_prior, f, opts.threshold, min_bin, &mut post);
+                posterior_into(
+                    &ln_prior,
+                    &t.ll[b * ns..(b + 1) * ns],
+                    f.beta(b),
+                    f.floor,
+                    &mut post,
+                );
+                (post[s], s == t.label)
+            })
+            .collect();
+        let (bins, ece) = auspex_engine::validation::reliability(&decided, 10);
+        let range = factors[m]
+            .iter()
+            .flat_map(|f| f.factors.iter())
+            .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &x| {
+                (a.min(x), b.max(x))
+            });
+        let time_ratio = match out.first() {
+            None => vec![Some(1.0); record.len()],
+            Some(raw) => record
+                .iter()
+                .map(|e| raw_time_at(&raw.record, e.accuracy()).map(|t| e.median_decision_ms / t))
+                .collect(),
+        };
+        out.push(MethodReport {
+            method: method.name().into(),
+            log_loss: loss / trials.len().max(1) as f64,
+            factor_range: if range.0.is_finite() {
+                range
+            } else {
+                (1.0, 1.0)
+            },
+            floor_range: factors[m].iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), f| {
+                (a.min(f.floor), b.max(f.floor))
+            }),
+            record,
+            kept,
+            met,
+            at_decision: ReliabilitySet {
+                when: format!("at decision (θ = {})", opts.threshold),
+                bins,
+                ece,
+            },
+            time_ratio,
+        });
+    }
+    Ok(out)
+}
+
+/// The raw posterior's median decision time at `accuracy`, interpolated linearly between the
+/// thresholds whose accuracies bracket it (None outside the raw record's range).
+fn raw_time_at(raw: &[auspex_engine::calibrate::ThresholdEvidence], accuracy: f64) -> Option<f64> {
+    let mut pts: Vec<(f64, f64)> = raw
+        .iter()
+        .map(|e| (e.accuracy(), e.median_decision_ms))
+        .collect();
+    pts.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.total_cmp(&b.1)));
+    for w in pts.windows(2) {
+        let ((a0, t0), (a1, t1)) = (w[0], w[1]);
+        if accuracy >= a0 && accuracy <= a1 {
+            return Some(if a1 > a0 {
+                t0 + (t1 - t0) * (accuracy - a0) / (a1 - a0)
+            } else {
+                t0.min(t1)
+            });
+        }
+    }
+    None
+}
+
 
 /// Training sizes (trials per stimulus) the learning curve tries, up to what the folds hold.
 const LEARNING_SIZES: [usize; 12] = [2, 3, 5, 8, 12, 20, 30, 50, 80, 120, 200, 300];
@@ -1078,6 +1334,38 @@ pub fn summary_table(v: &Validation) -> String {
             s,
             "promise (decide at θ ⇒ right ≥ θ): BROKEN at {} — the whole 95% interval lies below θ (calibration error at decision {ece:.3}; see the report)",
             broken.join(", ")
+        );
+    }
+    if !v.calibration.methods.is_empty() {
+        let parts: Vec<String> = v
+            .calibration
+            .methods
+            .iter()
+            .map(|m| {
+                let ratio = median_ratio(m);
+                format!(
+                    "{} {}/{} (accuracy ≥ θ: {}/{}; log loss {:.4}{})",
+                    m.method,
+                    m.kept.0,
+                    m.kept.1,
+                    m.met.0,
+                    m.met.1,
+                    m.log_loss,
+                    match ratio {
+                        Some(r) if m.method != "none" =>
+                            format!(", median decision time ×{r:.2} of the raw posterior's at equal accuracy"),
+                        _ => String::new(),
+                    }
+                )
+            })
+            .collect();
+        let _ = writeln!(
+            s,
+            "recalibration, fitted inside each training fold — promises kept at thresholds {}–{} (interval reaches θ): {}; `auspex fit` applies {}",
+            PROMISE_RANGE.0,
+            PROMISE_RANGE.1,
+            parts.join(" · "),
+            v.calibration.default_method
         );
     }
     if !v.learning_curve.is_empty() {

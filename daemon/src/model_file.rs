@@ -179,7 +179,9 @@ fn calibration_to_proto(c: &Calibration) -> Option<v1::Calibration> {
             CalibrationMethod::None => v1::CalibrationMethod::CalibrationNone,
             CalibrationMethod::Temperature => v1::CalibrationMethod::Temperature,
             CalibrationMethod::BandedTemperature => v1::CalibrationMethod::BandedTemperature,
+            CalibrationMethod::TemperatureFloor => v1::CalibrationMethod::TemperatureFloor,
         } as i32,
+        floor: c.floor,
         factor: c.factors.clone(),
         held_out_trials: c.held_out_trials,
         folds: c.folds,
@@ -196,6 +198,8 @@ fn calibration_to_proto(c: &Calibration) -> Option<v1::Calibration> {
                 accuracy_lo: e.lo,
                 accuracy_hi: e.hi,
                 median_decision_ms: e.median_decision_ms,
+                early: e.early,
+                early_correct: e.early_correct,
             })
             .collect(),
     })
@@ -209,11 +213,13 @@ fn calibration_from_proto(c: Option<&v1::Calibration>) -> Result<Calibration, St
         Ok(v1::CalibrationMethod::CalibrationNone) => CalibrationMethod::None,
         Ok(v1::CalibrationMethod::Temperature) => CalibrationMethod::Temperature,
         Ok(v1::CalibrationMethod::BandedTemperature) => CalibrationMethod::BandedTemperature,
+        Ok(v1::CalibrationMethod::TemperatureFloor) => CalibrationMethod::TemperatureFloor,
         Err(_) => return Err(format!("unknown calibration method {}", c.method)),
     };
     Ok(Calibration {
         method,
         factors: c.factor.clone(),
+        floor: c.floor,
         held_out_trials: c.held_out_trials,
         folds: c.folds,
         log_loss_uncalibrated: c.log_loss_uncalibrated,
@@ -229,6 +235,8 @@ fn calibration_from_proto(c: Option<&v1::Calibration>) -> Result<Calibration, St
                 lo: e.accuracy_lo,
                 hi: e.accuracy_hi,
                 median_decision_ms: e.median_decision_ms,
+                early: e.early,
+                early_correct: e.early_correct,
             })
             .collect(),
     })

@@ -57,14 +57,19 @@ pub enum CalibrationMethod {
     Temperature,
     /// One temperature per band of time since onset.
     BandedTemperature,
+    /// One temperature, and a share ε of the prior mixed into the posterior (Huber's
+    /// ε-contamination model): the posterior never claims more than the model's rate of
+    /// confident errors allows.
+    TemperatureFloor,
 }
 
 impl CalibrationMethod {
     /// Every method, in the order reports compare them.
-    pub const ALL: [CalibrationMethod; 3] = [
+    pub const ALL: [CalibrationMethod; 4] = [
         CalibrationMethod::None,
         CalibrationMethod::Temperature,
         CalibrationMethod::BandedTemperature,
+        CalibrationMethod::TemperatureFloor,
     ];
     /// Name used on the command line and in files.
     pub fn name(self) -> &'static str {
@@ -72,6 +77,7 @@ impl CalibrationMethod {
             CalibrationMethod::None => "none",
             CalibrationMethod::Temperature => "temperature",
             CalibrationMethod::BandedTemperature => "banded-temperature",
+            CalibrationMethod::TemperatureFloor => "temperature-floor",
         }
     }
     /// Parses a method name.
@@ -80,6 +86,7 @@ impl CalibrationMethod {
             "none" | "off" => Some(CalibrationMethod::None),
             "temperature" => Some(CalibrationMethod::Temperature),
             "banded-temperature" | "banded" => Some(CalibrationMethod::BandedTemperature),
+            "temperature-floor" | "floor" => Some(CalibrationMethod::TemperatureFloor),
             _ => None,
         }
     }
@@ -100,12 +107,34 @@ pub struct ThresholdEvidence {
     pub hi: f64,
     /// Median decision time, ms after onset (end of the deciding bin).
     pub median_decision_ms: f64,
+    /// Decisions taken by the threshold (the rest came at the window end).
+    #[serde(default)]
+    pub early: u32,
+    /// Of which right.
+    #[serde(default)]
+    pub early_correct: u32,
 }
 
 impl ThresholdEvidence {
-    /// Realised accuracy.
+    /// Realised accuracy of every decision.
     pub fn accuracy(&self) -> f64 {
         self.correct as f64 / self.trials.max(1) as f64
+    }
+    /// The promise of the threshold decisions: right at least a share θ of the time. Kept when
+    /// their 95% Clopper–Pearson interval reaches θ (or none was taken: nothing was claimed).
+    pub fn kept(&self) -> bool {
+        self.early == 0
+            || clopper_pearson(self.early_correct as u64, self.early as u64, 0.05).1
+                >= self.threshold
+    }
+    /// Accuracy of the threshold decisions and its 95% interval.
+    pub fn early_accuracy(&self) -> (f64, f64, f64) {
+        let (lo, hi) = clopper_pearson(self.early_correct as u64, self.early as u64, 0.05);
+        (
+            self.early_correct as f64 / self.early.max(1) as f64,
+            lo,
+            hi,
+        )
     }
 }
 
@@ -116,6 +145,9 @@ pub struct Calibration {
     pub method: CalibrationMethod,
     /// β(b) for every bin (empty: none, β = 1).
     pub factors: Vec<f64>,
+    /// ε: share of the prior mixed into the posterior, `(1 − ε)·π + ε·prior` (0: none).
+    #[serde(default)]
+    pub floor: f64,
     /// Held-out trials the factors and the evidence come from.
     pub held_out_trials: u32,
     /// Cross-validation folds.
@@ -154,7 +186,15 @@ pub enum PromiseError {
 impl Calibration {
     /// Whether the engine applies anything.
     pub fn is_active(&self) -> bool {
-        !self.factors.is_empty()
+        !self.factors.is_empty() || self.floor > 0.0
+    }
+
+    /// The parameters the engine applies.
+    pub fn fitted(&self) -> Fitted {
+        Fitted {
+            factors: self.factors.clone(),
+            floor: self.floor,
+        }
     }
 
     /// Checks shapes and values against a model of `n_bins` bins.
@@ -173,6 +213,12 @@ impl Calibration {
         {
             return Err(format!(
                 "calibration factor {f} of bin {b} must be in (0, {MAX_FACTOR}]"
+            ));
+        }
+        if !(self.floor >= 0.0 && self.floor <= MAX_FLOOR) {
+            return Err(format!(
+                "calibration floor {} must be in [0, {MAX_FLOOR}]",
+                self.floor
             ));
         }
         for e in &self.evidence {
@@ -218,6 +264,8 @@ impl Calibration {
 /// Largest factor accepted in a model file (β > 1 sharpens the posterior; more than this would
 /// be a fit gone wrong).
 pub const MAX_FACTOR: f64 = 16.0;
+/// Largest prior share ε accepted.
+pub const MAX_FLOOR: f64 = 0.5;
 /// Search range of a fitted factor.
 const FACTOR_RANGE: (f64, f64) = (1.0 / 64.0, 8.0);
 
@@ -226,14 +274,37 @@ pub const EVIDENCE_THRESHOLDS: [f64; 16] = [
     0.5, 0.6, 0.7, 0.8, 0.85, 0.9, 0.925, 0.95, 0.96, 0.97, 0.975, 0.98, 0.985, 0.99, 0.995, 0.999,
 ];
 
-/// The engine's calibrated posterior of one bin: `out = softmax(ln_prior + β · ll)`. The engine
-/// and every replay of held-out trials use this one function, so they agree bit for bit.
+/// A calibration's parameters: β(b) per bin (empty: 1) and the prior share ε.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Fitted {
+    /// β(b).
+    pub factors: Vec<f64>,
+    /// ε.
+    pub floor: f64,
+}
+
+impl Fitted {
+    /// β of bin `b`.
+    #[inline]
+    pub fn beta(&self, b: usize) -> f64 {
+        self.factors.get(b).copied().unwrap_or(1.0)
+    }
+}
+
+/// The engine's calibrated posterior of one bin:
+/// `out = (1 − ε)·softmax(ln_prior + β · ll) + ε·prior`. The engine and every replay of
+/// held-out trials use this one function, so they agree bit for bit.
 #[inline]
-pub fn posterior_into(ln_prior: &[f64], ll: &[f64], beta: f64, out: &mut [f64]) {
+pub fn posterior_into(ln_prior: &[f64], ll: &[f64], beta: f64, floor: f64, out: &mut [f64]) {
     for ((o, p), l) in out.iter_mut().zip(ln_prior).zip(ll) {
         *o = p + beta * l;
     }
     softmax_in_place(out);
+    if floor > 0.0 {
+        for (o, p) in out.iter_mut().zip(ln_prior) {
+            *o = (1.0 - floor) * *o + floor * p.exp();
+        }
+    }
 }
 
 /// One held-out trial: its presented stimulus and its log-likelihood trajectory (bin-major,
@@ -325,32 +396,107 @@ pub fn bands(n_bins: usize, min_bin: usize) -> Vec<Range<usize>> {
     edges.windows(2).map(|w| w[0]..w[1]).collect()
 }
 
-/// Fits `method`'s factors (one per bin) on `trials`.
+/// Fits `method`'s parameters on `trials`.
 pub fn fit_factors(
     method: CalibrationMethod,
     trials: &[&HeldOutTrial],
     ln_prior: &[f64],
     n_bins: usize,
     min_bin: usize,
-) -> Vec<f64> {
+) -> Fitted {
     match method {
-        CalibrationMethod::None => Vec::new(),
-        CalibrationMethod::Temperature => {
-            vec![fit_factor(trials, ln_prior, 0..n_bins); n_bins]
-        }
+        CalibrationMethod::None => Fitted::default(),
+        CalibrationMethod::Temperature => Fitted {
+            factors: vec![fit_factor(trials, ln_prior, 0..n_bins); n_bins],
+            floor: 0.0,
+        },
         CalibrationMethod::BandedTemperature => {
             let mut f = vec![1.0; n_bins];
             for band in bands(n_bins, min_bin) {
                 let beta = fit_factor(trials, ln_prior, band.clone());
                 f[band].iter_mut().for_each(|x| *x = beta);
             }
-            f
+            Fitted {
+                factors: f,
+                floor: 0.0,
+            }
+        }
+        CalibrationMethod::TemperatureFloor => {
+            let (beta, floor) = fit_factor_floor(trials, ln_prior, 0..n_bins);
+            Fitted {
+                factors: vec![beta; n_bins],
+                floor,
+            }
         }
     }
 }
 
-/// Mean log loss per trial and bin of `trials` under `factors` (empty: β = 1).
-pub fn mean_log_loss(trials: &[&HeldOutTrial], ln_prior: &[f64], factors: &[f64]) -> f64 {
+/// Log loss summed over `bins` with factor `beta` and prior share `floor`.
+fn mixture_loss(
+    trials: &[&HeldOutTrial],
+    ln_prior: &[f64],
+    bins: &Range<usize>,
+    beta: f64,
+    floor: f64,
+) -> f64 {
+    let ns = ln_prior.len();
+    let mut post = vec![0.0; ns];
+    let mut loss = 0.0;
+    for t in trials {
+        for b in bins.clone() {
+            posterior_into(ln_prior, &t.ll[b * ns..(b + 1) * ns], beta, floor, &mut post);
+            loss -= post[t.label].max(f64::MIN_POSITIVE).ln();
+        }
+    }
+    loss
+}
+
+/// Prior shares ε tried by [`CalibrationMethod::TemperatureFloor`].
+const FLOOR_GRID: [f64; 10] = [0.0, 1e-4, 3e-4, 1e-3, 2e-3, 5e-3, 0.01, 0.02, 0.03, 0.05];
+
+/// (β, ε) minimising the held-out log loss of `(1 − ε)·softmax(ln prior + β·ll) + ε·prior`
+/// over `bins`: ε on a grid, β by golden-section search in ln β for each.
+pub fn fit_factor_floor(
+    trials: &[&HeldOutTrial],
+    ln_prior: &[f64],
+    bins: Range<usize>,
+) -> (f64, f64) {
+    if trials.is_empty() || bins.is_empty() {
+        return (1.0, 0.0);
+    }
+    let mut best = (f64::INFINITY, 1.0, 0.0);
+    for &eps in &FLOOR_GRID {
+        let f = |lb: f64| mixture_loss(trials, ln_prior, &bins, lb.exp(), eps);
+        let (mut a, mut b) = (FACTOR_RANGE.0.ln(), FACTOR_RANGE.1.ln());
+        let g = 0.618_033_988_749_894_9;
+        let (mut x1, mut x2) = (b - g * (b - a), a + g * (b - a));
+        let (mut f1, mut f2) = (f(x1), f(x2));
+        for _ in 0..28 {
+            if f1 < f2 {
+                b = x2;
+                x2 = x1;
+                f2 = f1;
+                x1 = b - g * (b - a);
+                f1 = f(x1);
+            } else {
+                a = x1;
+                x1 = x2;
+                f1 = f2;
+                x2 = a + g * (b - a);
+                f2 = f(x2);
+            }
+        }
+        let lb = 0.5 * (a + b);
+        let l = f(lb);
+        if l < best.0 {
+            best = (l, lb.exp(), eps);
+        }
+    }
+    (best.1, best.2)
+}
+
+/// Mean log loss per trial and bin of `trials` under `fitted`.
+pub fn mean_log_loss(trials: &[&HeldOutTrial], ln_prior: &[f64], fitted: &Fitted) -> f64 {
     let ns = ln_prior.len();
     let Some(first) = trials.first() else {
         return f64::NAN;
@@ -358,18 +504,17 @@ pub fn mean_log_loss(trials: &[&HeldOutTrial], ln_prior: &[f64], factors: &[f64]
     let nb = first.ll.len() / ns;
     let mut total = 0.0;
     for b in 0..nb {
-        let beta = factors.get(b).copied().unwrap_or(1.0);
-        total += loss_and_slope(trials, ln_prior, &(b..b + 1), beta).0;
+        total += mixture_loss(trials, ln_prior, &(b..b + 1), fitted.beta(b), fitted.floor);
     }
     total / (trials.len() * nb) as f64
 }
 
 /// The decision the engine takes on a trial with log-likelihood trajectory `ll` (stimulus, bin,
-/// by threshold), calibrated by `factors` (empty: β = 1); `post` is scratch of `n_stimuli`.
+/// by threshold), calibrated by `fitted`; `post` is scratch of `n_stimuli`.
 pub fn replay_decision(
     ll: &[f64],
     ln_prior: &[f64],
-    factors: &[f64],
+    fitted: &Fitted,
     threshold: f64,
     min_bin: usize,
     post: &mut [f64],
@@ -377,8 +522,13 @@ pub fn replay_decision(
     let ns = ln_prior.len();
     let nb = ll.len() / ns;
     for b in 0..nb {
-        let beta = factors.get(b).copied().unwrap_or(1.0);
-        posterior_into(ln_prior, &ll[b * ns..(b + 1) * ns], beta, post);
+        posterior_into(
+            ln_prior,
+            &ll[b * ns..(b + 1) * ns],
+            fitted.beta(b),
+            fitted.floor,
+            post,
+        );
         let top = argmax(post);
         if b >= min_bin && post[top] >= threshold {
             return (top, b, true);
@@ -394,7 +544,7 @@ pub fn replay_decision(
 /// (`factors_of[i]`), and summarises accuracy and decision time.
 pub fn threshold_evidence(
     trials: &[HeldOutTrial],
-    factors_of: &[&[f64]],
+    factors_of: &[&Fitted],
     ln_prior: &[f64],
     thresholds: &[f64],
     min_bin: usize,
@@ -404,11 +554,13 @@ pub fn threshold_evidence(
     thresholds
         .iter()
         .map(|&th| {
-            let mut correct = 0u32;
+            let (mut correct, mut early, mut early_correct) = (0u32, 0u32, 0u32);
             let mut times = Vec::with_capacity(trials.len());
             for (t, f) in trials.iter().zip(factors_of) {
-                let (s, b, _) = replay_decision(&t.ll, ln_prior, f, th, min_bin, &mut post);
+                let (s, b, by) = replay_decision(&t.ll, ln_prior, f, th, min_bin, &mut post);
                 correct += (s == t.label) as u32;
+                early += by as u32;
+                early_correct += (by && s == t.label) as u32;
                 times.push((b + 1) as f64 * bin_ms);
             }
             times.sort_by(|a, b| a.total_cmp(b));
@@ -421,6 +573,8 @@ pub fn threshold_evidence(
                 lo,
                 hi,
                 median_decision_ms: times.get(times.len() / 2).copied().unwrap_or(f64::NAN),
+                early,
+                early_correct,
             }
         })
         .collect()
@@ -583,7 +737,7 @@ pub fn cross_fitted_factors(
     set: &HeldOutSet,
     method: CalibrationMethod,
     min_bin: usize,
-) -> Vec<Vec<f64>> {
+) -> Vec<Fitted> {
     let nb = set.trials.first().map(|t| t.ll.len()).unwrap_or(0) / set.ln_prior.len().max(1);
     (0..set.folds)
         .map(|f| {
@@ -606,9 +760,9 @@ pub fn calibrate(set: &HeldOutSet, method: CalibrationMethod, min_time_s: f64) -
     let nb = set.trials.first().map(|t| t.ll.len()).unwrap_or(0) / ns.max(1);
     let min_bin = min_bin_for(min_time_s, set.bin_ms / 1000.0) as usize;
     let all: Vec<&HeldOutTrial> = set.trials.iter().collect();
-    let factors = fit_factors(method, &all, &set.ln_prior, nb, min_bin);
+    let fitted = fit_factors(method, &all, &set.ln_prior, nb, min_bin);
     let per_fold = cross_fitted_factors(set, method, min_bin);
-    let factors_of: Vec<&[f64]> = set.fold_of.iter().map(|&f| &per_fold[f][..]).collect();
+    let factors_of: Vec<&Fitted> = set.fold_of.iter().map(|&f| &per_fold[f]).collect();
     let mut loss = 0.0;
     for (f, fac) in per_fold.iter().enumerate() {
         let mine: Vec<&HeldOutTrial> = set
@@ -622,10 +776,11 @@ pub fn calibrate(set: &HeldOutSet, method: CalibrationMethod, min_time_s: f64) -
     }
     Calibration {
         method,
-        factors,
+        factors: fitted.factors,
+        floor: fitted.floor,
         held_out_trials: set.trials.len() as u32,
         folds: set.folds as u32,
-        log_loss_uncalibrated: mean_log_loss(&all, &set.ln_prior, &[]),
+        log_loss_uncalibrated: mean_log_loss(&all, &set.ln_prior, &Fitted::default()),
         log_loss_calibrated: loss / set.trials.len().max(1) as f64,
         min_time_s,
         evidence: threshold_evidence(
@@ -739,7 +894,7 @@ mod tests {
         let want = (n1 as f64 / n0 as f64).ln() / m;
         assert!((beta - want).abs() < 1e-9, "β {beta} vs worked {want}");
         let mut post = [0.0; 2];
-        posterior_into(&lp, &[m, 0.0], beta, &mut post);
+        posterior_into(&lp, &[m, 0.0], beta, 0.0, &mut post);
         assert!((post[0] - 0.9).abs() < 1e-9);
     }
 
@@ -754,7 +909,7 @@ mod tests {
         for _ in 0..4000 {
             let ll: Vec<f64> = (0..ns).map(|_| rng.gen_range(-3.0..3.0)).collect();
             let mut p = vec![0.0; ns];
-            posterior_into(&lp, &ll, 1.0, &mut p);
+            posterior_into(&lp, &ll, 1.0, 0.0, &mut p);
             let u: f64 = rng.gen();
             let mut acc = 0.0;
             let mut label = ns - 1;
@@ -783,6 +938,98 @@ mod tests {
         assert!((beta2 - beta / 2.0).abs() < 1e-6, "{beta2} vs {beta}/2");
     }
 
+    /// A well-specified model fitted on many trials needs (almost) no correction; the same
+    /// scenario fitted on a handful of trials per stimulus is over-confident and gets β < 1.
+    #[test]
+    fn well_specified_model_with_many_trials_needs_almost_no_correction() {
+        use crate::count::CountFamily;
+        use crate::simulate::{simulate, Scenario, ScenarioUnit};
+        let units: Vec<ScenarioUnit> = (0..6)
+            .map(|i| ScenarioUnit {
+                id: 10 + i,
+                preferred_deg: 30.0 * i as f64,
+                baseline_count: 0.8,
+                peak_count: 3.0,
+                count_family: "poisson".into(),
+                fano: 1.0,
+                early_ms: 20.0,
+                late_ms: 45.0,
+                width_ms: 8.0,
+            })
+            .collect();
+        let sc = |trials: u32| Scenario {
+            description: "calibration test".into(),
+            stimuli: vec![
+                ("a".into(), 0.0),
+                ("b".into(), 45.0),
+                ("c".into(), 90.0),
+                ("d".into(), 180.0),
+            ],
+            bin_width_ms: 1.0,
+            window_ms: 80.0,
+            trials_per_stimulus: trials,
+            gap_ms: (50.0, 100.0),
+            spontaneous_hz: 0.0,
+            tick_rate_hz: 10_000.0,
+            seed: 3,
+            units: units.clone(),
+        };
+        let beta_for = |trials: u32| {
+            let s = sc(trials);
+            let model = Model::new(s.true_model().unwrap()).unwrap();
+            let data = simulate(&model, &s.sim_options());
+            let opts = FitOptions {
+                bin_width_s: 0.001,
+                window_s: 0.08,
+                families: vec![CountFamily::Poisson],
+                ..FitOptions::default()
+            };
+            let stimuli = model.stimuli().to_vec();
+            let set = held_out_set(&data, &opts, &stimuli, 5, 1, &|p| p.fit_all()).unwrap();
+            calibrate(&set, CalibrationMethod::Temperature, 0.02).factors[0]
+        };
+        let many = beta_for(300);
+        assert!((0.9..=1.1).contains(&many), "β {many} with 300 trials per stimulus");
+        let few = beta_for(8);
+        eprintln!("β {many:.3} with 300 trials per stimulus, {few:.3} with 8");
+        assert!(few < many - 0.1, "β {few} with 8 trials vs {many} with 300");
+    }
+
+    /// Forecasts from a calibrated model whose labels are replaced, 5% of the time, by a
+    /// uniformly drawn stimulus: exactly the ε-contamination mixture with ε = 0.05 and β = 1.
+    #[test]
+    fn temperature_floor_recovers_a_contamination_share() {
+        let mut rng = ChaCha8Rng::seed_from_u64(5);
+        let ns = 4;
+        let lp = vec![(0.25f64).ln(); ns];
+        let mut trials = Vec::new();
+        for _ in 0..6000 {
+            let ll: Vec<f64> = (0..ns).map(|_| rng.gen_range(-6.0..6.0)).collect();
+            let mut p = vec![0.0; ns];
+            posterior_into(&lp, &ll, 1.0, 0.0, &mut p);
+            let label = if rng.gen::<f64>() < 0.05 {
+                rng.gen_range(0..ns)
+            } else {
+                let u: f64 = rng.gen();
+                let mut acc = 0.0;
+                p.iter()
+                    .position(|q| {
+                        acc += q;
+                        u < acc
+                    })
+                    .unwrap_or(ns - 1)
+            };
+            trials.push(HeldOutTrial { label, ll });
+        }
+        let refs: Vec<&HeldOutTrial> = trials.iter().collect();
+        let (beta, eps) = fit_factor_floor(&refs, &lp, 0..1);
+        assert!((0.03..=0.05).contains(&eps), "ε {eps}");
+        assert!((beta - 1.0).abs() < 0.12, "β {beta}");
+        // Plain temperature scaling has to flatten everything instead.
+        let t = fit_factor(&refs, &lp, 0..1);
+        assert!(t < beta, "temperature {t} vs floor's β {beta}");
+    }
+
     #[test]
     fn bands_double_from_the_minimum_time_and_cover_the_window() {
         assert_eq!(bands(250, 19), vec![0..20, 20..40, 40..80, 80..160, 160..250]);
@@ -807,6 +1054,8 @@ mod tests {
                 lo,
                 hi,
                 median_decision_ms: 30.0,
+                early: 0,
+                early_correct: 0,
             }
         };
         let c = Calibration {

@@ -1306,11 +1306,13 @@ fn run_bins(
                 }
             }
         }
-        let beta = match m.calibration().factors.get(b) {
-            Some(&f) if t.calibrated => f,
-            _ => 1.0,
+        let cal = m.calibration();
+        let (beta, floor) = match cal.factors.get(b) {
+            Some(&f) if t.calibrated => (f, cal.floor),
+            _ if t.calibrated => (1.0, cal.floor),
+            _ => (1.0, 0.0),
         };
-        posterior_into(&t.ln_prior, &t.ll, beta, &mut t.post);
+        posterior_into(&t.ln_prior, &t.ll, beta, floor, &mut t.post);
         let (top, top_p) = argmax(&t.post);
         counters.frames += 1;
         sink.frame(&Frame {
