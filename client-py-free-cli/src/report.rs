@@ -526,9 +526,9 @@ fn promise_plot(v: &Validation) -> String {
         }
         legend.push((
             format!(
-                "{} ({}/{} kept, {}/{} ≥ θ)",
+                "{}: {}/{} kept, {}/{} ≥ θ",
                 if mr.method == "none" {
-                    "raw posterior"
+                    "raw"
                 } else {
                     &mr.method
                 },
@@ -541,23 +541,27 @@ fn promise_plot(v: &Validation) -> String {
         ));
     }
     legend.push(("dashed: accuracy = promise".to_string(), "#555"));
-    p.legend_at(&legend, 0.885, 0.845);
+    p.legend_at(&legend, 0.855, 0.84);
     p.finish()
 }
 
 /// Accuracy against median decision time per recalibration method (the price of a kept promise).
 fn promise_time_plot(v: &Validation) -> String {
     let methods = &v.calibration.methods;
+    // Up to θ = 0.99: beyond it decisions drift to the window end and squash the rest.
+    let shown = |e: &&auspex_engine::calibrate::ThresholdEvidence| {
+        e.threshold >= 0.8 && e.threshold <= 0.99 + 1e-9
+    };
     let tmax = methods
         .iter()
-        .flat_map(|m| m.record.iter().map(|e| e.median_decision_ms))
+        .flat_map(|m| m.record.iter().filter(shown).map(|e| e.median_decision_ms))
         .fold(0.0f64, f64::max)
         .max(10.0);
     let mut p = Plot::new(460.0, 360.0, (0.0, tmax * 1.05), (0.78, 1.0));
     p.axes(
-        "What a kept promise costs: accuracy against decision time",
+        "What a kept promise costs (θ 0.8–0.99)",
         "median decision time (ms)",
-        "held-out accuracy",
+        "held-out accuracy of all decisions",
     );
     let mut legend = Vec::new();
     for (m, mr) in methods.iter().enumerate() {
@@ -565,11 +569,11 @@ fn promise_time_plot(v: &Validation) -> String {
         let pts: Vec<(f64, f64)> = mr
             .record
             .iter()
-            .filter(|e| e.threshold >= 0.8)
+            .filter(shown)
             .map(|e| (e.median_decision_ms, e.accuracy()))
             .collect();
         p.line(&pts, col, 1.5, m == 0);
-        for e in mr.record.iter().filter(|e| e.threshold >= 0.8) {
+        for e in mr.record.iter().filter(shown) {
             p.dot(
                 e.median_decision_ms,
                 e.accuracy(),
@@ -1130,7 +1134,7 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
     if !v.calibration.methods.is_empty() {
         let _ = write!(
             s,
-            "</div><h2>Keeping the promise: recalibration compared</h2><p class=sub>Temperature scaling (Guo, Pleiss, Sun &amp; Weinberger 2017): the posterior becomes softmax(ln prior + β·log L), β fitted to minimise the held-out log loss of the presented stimulus — one β for the window (<b>temperature</b>) or one per band of time since onset, bands doubling from the minimum decision time (<b>banded-temperature</b>). Here each outer fold's β is fitted on held-out decoding <i>inside</i> its training trials (nested cross-validation), then applied to the fold's held-out trials; decisions are replayed exactly as the engine takes them. A promise θ is kept when the 95% Clopper–Pearson interval of the accuracy reaches θ. <code>auspex fit</code> applies <b>{}</b> by default (<code>--calibration</code>).</p><div class=row>",
+            "</div><h2>Keeping the promise: recalibration compared</h2><p class=sub>Temperature scaling (Guo, Pleiss, Sun &amp; Weinberger 2017): the posterior becomes softmax(ln prior + β·log L), β fitted to minimise the held-out log loss of the presented stimulus — one β for the window (<b>temperature</b>) or one per band of time since onset, bands doubling from the minimum decision time (<b>banded-temperature</b>); or one β with a share ε of the prior mixed in, (1 − ε)·posterior + ε·prior, ε on a grid up to 0.05 (Huber's ε-contamination model, <b>temperature-floor</b>): the posterior then never claims more certainty than the model's rate of confident errors allows. Here each outer fold's β is fitted on held-out decoding <i>inside</i> its training trials (nested cross-validation), then applied to the fold's held-out trials; decisions are replayed exactly as the engine takes them. A promise θ is kept when the 95% Clopper–Pearson interval of the accuracy reaches θ. <code>auspex fit</code> applies <b>{}</b> by default (<code>--calibration</code>).</p><div class=row>",
             esc(&v.calibration.default_method)
         );
         s += &promise_plot(v);
