@@ -126,7 +126,7 @@ impl Default for FitArgs {
 }
 
 /// The recalibration `fit` applies unless told otherwise.
-pub const DEFAULT_CALIBRATION: CalibrationMethod = CalibrationMethod::Temperature;
+pub const DEFAULT_CALIBRATION: CalibrationMethod = auspex_engine::calibrate::DEFAULT_METHOD;
 
 /// `fit`: plans and fits the cells, calibrates on held-out folds, writes the model file.
 pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Model> {

@@ -171,7 +171,8 @@ impl<W: Write> Run<'_, W> {
             Err(_) => return Ok(()),
         };
         let cells = fit_cells(&plan, false);
-        let model = Arc::new(Model::new(plan.assemble(cells))?);
+        let spec = l.calibrated(plan.assemble(cells), &|p| p.assemble(fit_cells(p, false)));
+        let model = Arc::new(Model::new(spec)?);
         match self.engine.as_mut() {
             Some(e) => e.set_model(model.clone())?,
             None => self.engine = Some(Engine::new(model.clone(), self.cfg.clone())?),

@@ -90,9 +90,27 @@ fn timing_beats_count_only_and_information_is_significant() {
     // the interval reaches the threshold), reliability sets over every held-out trial.
     let c = &v.calibration;
     assert_eq!(c.promises.len(), auspex::validate::THRESHOLDS.len());
+    // The promise is the threshold decisions', from the raw posterior's replayed record; that
+    // replay (from the f64 log-likelihoods) takes the very decisions the engine's trajectories
+    // give.
+    let raw = &c.methods[0];
+    assert_eq!(raw.method, "none");
     for (p, t) in c.promises.iter().zip(&v.decoders[0].tradeoff) {
-        assert_eq!((p.threshold, p.accuracy), (t.threshold, t.accuracy));
-        assert_eq!(p.kept, p.hi >= p.threshold);
+        let e = raw
+            .record
+            .iter()
+            .find(|e| e.threshold == t.threshold)
+            .unwrap();
+        assert_eq!(e.accuracy(), t.accuracy, "θ = {}", t.threshold);
+        let (acc, lo, hi) = e.early_accuracy();
+        assert_eq!((p.threshold, p.accuracy, p.lo, p.hi), (t.threshold, acc, lo, hi));
+        assert_eq!(p.kept, e.early == 0 || p.hi >= p.threshold);
+    }
+    // Every recalibration is judged on every held-out trial.
+    assert_eq!(c.methods.len(), 4);
+    for m in &c.methods {
+        assert!(m.record.iter().all(|e| e.trials as usize == v.trials));
+        assert!(m.log_loss.is_finite() && m.log_loss > 0.0);
     }
     assert!(c.reliability[0].when.starts_with("at decision"));
     for r in &c.reliability {

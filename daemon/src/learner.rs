@@ -289,5 +289,6 @@ fn fit(l: &Learner) -> Result<(ModelSpec, u64), String> {
             )
         })
         .collect();
-    Ok((plan.assemble(cells), l.added()))
+    let spec = l.calibrated(plan.assemble(cells), &|p| p.fit_all());
+    Ok((spec, l.added()))
 }

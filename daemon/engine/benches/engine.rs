@@ -94,6 +94,30 @@ fn bench(c: &mut Criterion) {
         );
     }
     g.finish();
+    // What calibration costs per bin: the same negative binomial trial, raw posterior against
+    // temperature scaling (β on every bin) and temperature with a prior share ε.
+    let mut g = c.benchmark_group("calibration_250_bins_16hz");
+    g.sample_size(10);
+    g.warm_up_time(std::time::Duration::from_secs(1));
+    g.measurement_time(std::time::Duration::from_secs(3));
+    g.throughput(Throughput::Elements(BINS as u64));
+    let base = model_at(nu, ns, "negative_binomial", REALISTIC_COUNT);
+    for (name, factors, floor) in [
+        ("none", vec![], 0.0),
+        ("temperature", vec![0.88; BINS], 0.0),
+        ("temperature-floor", vec![0.88; BINS], 0.01),
+    ] {
+        let mut spec = base.spec().clone();
+        spec.calibration.factors = factors;
+        spec.calibration.floor = floor;
+        let m = Arc::new(auspex_engine::Model::new(spec).unwrap());
+        let mut e = Engine::new(m, EngineConfig::new(1000.0)).unwrap();
+        let (mut trial, mut onset) = (0u64, 0i64);
+        g.bench_function(BenchmarkId::new(name, format!("{nu}x{ns}")), |b| {
+            b.iter(|| decode_trial(&mut e, &mut trial, &mut onset, &spikes))
+        });
+    }
+    g.finish();
     // The floor: only reading what a negative binomial bin needs once every unit has spiked —
     // one row of S values per unit from a [bin][unit][stimulus] table as large as the model's —
     // with one multiply-add each. The summed path's NB time is compared with this.

@@ -264,6 +264,9 @@ impl Calibration {
 /// Largest factor accepted in a model file (β > 1 sharpens the posterior; more than this would
 /// be a fit gone wrong).
 pub const MAX_FACTOR: f64 = 16.0;
+/// The recalibration `auspex fit` and the learner apply unless told otherwise.
+pub const DEFAULT_METHOD: CalibrationMethod = CalibrationMethod::Temperature;
+
 /// Largest prior share ε accepted.
 pub const MAX_FLOOR: f64 = 0.5;
 /// Search range of a fitted factor.

@@ -14,8 +14,10 @@
 //! Must not: fit (callers do, with `fit::fit_cell` on as many threads as they like), read clocks
 //! or spawn threads.
 
+use crate::calibrate::{calibrate, held_out_set, CalibrationMethod, DEFAULT_METHOD};
 use crate::data::{Dataset, UnitWindows};
 use crate::fit::{plan_from_windows, window_bins, FitError, FitOptions, FitPlan};
+use crate::model::ModelSpec;
 use std::collections::{BTreeMap, BTreeSet, HashMap, HashSet, VecDeque};
 
 /// One labelled trial's window: spikes as (ticks after onset, unit), in (tick, unit) order.
@@ -200,6 +202,11 @@ pub struct LearnOptions {
     /// The most recent labelled trials kept per stimulus (older ones are forgotten, which also
     /// bounds memory: per unit, at most stimuli × this × (spikes per window) spike times).
     pub max_trials_per_stimulus: usize,
+    /// Recalibration of every learned model, fitted on held-out folds of the trials learned
+    /// (as `auspex fit` does), with its threshold record.
+    pub calibration: CalibrationMethod,
+    /// Minimum decision time the threshold record is replayed with, seconds.
+    pub calibration_min_time_s: f64,
 }
 
 impl Default for LearnOptions {
@@ -208,6 +215,8 @@ impl Default for LearnOptions {
             fit: FitOptions::default(),
             min_trials_per_stimulus: 3,
             max_trials_per_stimulus: 1000,
+            calibration: DEFAULT_METHOD,
+            calibration_min_time_s: crate::engine::DecisionPolicy::default().min_time_s,
         }
     }
 }
@@ -457,6 +466,29 @@ impl Learner {
         d.spikes.sort_unstable();
         d.spikes.dedup();
         d
+    }
+
+    /// `spec`, fitted on this learner's trials, with its calibration and threshold record: the
+    /// held-out folds are the learned trials of the model's stimuli, restricted to its units
+    /// (`fit` fits a fold's plan as the caller fits). Too few trials: returned uncalibrated.
+    pub fn calibrated(&self, mut spec: ModelSpec, fit: &dyn Fn(&FitPlan) -> ModelSpec) -> ModelSpec {
+        if self.opts.calibration == CalibrationMethod::None {
+            return spec;
+        }
+        let mut d = self.dataset();
+        let units: std::collections::BTreeSet<u32> = spec.units.iter().copied().collect();
+        d.units.retain(|u| units.contains(u));
+        d.spikes.retain(|(_, u)| units.contains(u));
+        d.trials
+            .retain(|t| t.stimulus.as_ref().is_some_and(|s| spec.stimuli.contains(s)));
+        if let Ok(set) = held_out_set(&d, &self.opts.fit, &spec.stimuli, 5, 1, fit) {
+            spec.calibration = calibrate(
+                &set,
+                self.opts.calibration,
+                self.opts.calibration_min_time_s,
+            );
+        }
+        spec
     }
 }
 
