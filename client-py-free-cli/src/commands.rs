@@ -4,8 +4,8 @@ use crate::fitting::{fit_dataset, parse_families, summary_table};
 use crate::offline::{run_dataset, score, write_decisions, CsvSink};
 use crate::tables::{write_dataset, Source};
 use anyhow::{bail, Context};
-use auspex_engine::engine::{DecisionPolicy, Decoder, EngineConfig};
 use auspex_engine::calibrate::{calibrate, held_out_set, Calibration, CalibrationMethod};
+use auspex_engine::engine::{DecisionPolicy, Decoder, EngineConfig};
 use auspex_engine::fit::FitOptions;
 use auspex_engine::simulate::{simulate, Scenario, SimOptions};
 use auspex_engine::Model;
@@ -146,8 +146,7 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
     let (data, report) = source.load(opts.window_s)?;
     eprintln!("{report}");
     let t0 = std::time::Instant::now();
-    let (mut spec, plan) =
-        fit_dataset(&data, &opts, std::io::stderr().is_terminal() && !quiet)?;
+    let (mut spec, plan) = fit_dataset(&data, &opts, std::io::stderr().is_terminal() && !quiet)?;
     for (name, &n) in plan.stimuli.iter().zip(&plan.trials_per_stimulus) {
         if (n as usize) < FEW_TRIALS {
             eprintln!(
@@ -322,7 +321,8 @@ impl DecodeArgs {
         let Some(target) = self.target_accuracy else {
             return Ok(());
         };
-        let (threshold, min_time_s, line) = promise_for(model, target, self.decoder, self.calibrated)?;
+        let (threshold, min_time_s, line) =
+            promise_for(model, target, self.decoder, self.calibrated)?;
         eprintln!("{line}");
         self.threshold = threshold;
         self.min_time_ms = min_time_s * 1000.0;
@@ -577,7 +577,13 @@ pub fn promise_table(c: &Calibration) -> String {
         );
         return s;
     }
-    s.push_str(&calibration_summary(c).lines().next().unwrap_or("").to_string());
+    s.push_str(
+        &calibration_summary(c)
+            .lines()
+            .next()
+            .unwrap_or("")
+            .to_string(),
+    );
     s.push('\n');
     let _ = writeln!(
         s,

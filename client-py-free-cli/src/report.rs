@@ -1184,7 +1184,16 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
         }
         s += "<tr><td>held-out log loss</td>";
         for m in &v.calibration.methods {
-            let _ = write!(s, "<td>{:.4} nats per bin; β {:.3}–{:.3}; ε {}–{}; ECE at decision {:.3}</td>", m.log_loss, m.factor_range.0, m.factor_range.1, m.floor_range.0, m.floor_range.1, m.at_decision.ece);
+            let _ = write!(
+                s,
+                "<td>{:.4} nats per bin; β {:.3}–{:.3}; ε {}–{}; ECE at decision {:.3}</td>",
+                m.log_loss,
+                m.factor_range.0,
+                m.factor_range.1,
+                m.floor_range.0,
+                m.floor_range.1,
+                m.at_decision.ece
+            );
         }
         s += "</tr></table><p class=sub>(×r): median decision time divided by the raw posterior's at the same realised accuracy (interpolated along its trade-off).</p>";
     }

@@ -916,7 +916,9 @@ pub fn median_ratio(m: &MethodReport) -> Option<f64> {
         .record
         .iter()
         .zip(&m.time_ratio)
-        .filter(|(e, _)| e.threshold >= PROMISE_RANGE.0 - 1e-9 && e.threshold <= PROMISE_RANGE.1 + 1e-9)
+        .filter(|(e, _)| {
+            e.threshold >= PROMISE_RANGE.0 - 1e-9 && e.threshold <= PROMISE_RANGE.1 + 1e-9
+        })
         .filter_map(|(_, r)| *r)
         .collect();
     if r.is_empty() {
@@ -959,8 +961,7 @@ fn compare_calibrations(
         .collect();
     // Factors per method per outer fold, fitted on the inner held-out decoding of its training.
     let methods = CalibrationMethod::ALL;
-    let mut factors: Vec<Vec<auspex_engine::calibrate::Fitted>> =
-        vec![Vec::new(); methods.len()];
+    let mut factors: Vec<Vec<auspex_engine::calibrate::Fitted>> = vec![Vec::new(); methods.len()];
     for f in folds {
         let inner = held_out_set(
             &data.subset(&f.train),
@@ -1005,10 +1006,7 @@ fn compare_calibrations(
                 e.threshold >= PROMISE_RANGE.0 - 1e-9 && e.threshold <= PROMISE_RANGE.1 + 1e-9
             })
             .collect();
-        let kept = (
-            in_range.iter().filter(|e| e.kept()).count(),
-            in_range.len(),
-        );
+        let kept = (in_range.iter().filter(|e| e.kept()).count(), in_range.len());
         let met = (
             in_range
                 .iter()
@@ -1055,9 +1053,11 @@ fn compare_calibrations(
             } else {
                 (1.0, 1.0)
             },
-            floor_range: factors[m].iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), f| {
-                (a.min(f.floor), b.max(f.floor))
-            }),
+            floor_range: factors[m]
+                .iter()
+                .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), f| {
+                    (a.min(f.floor), b.max(f.floor))
+                }),
             record,
             kept,
             met,
@@ -1092,7 +1092,6 @@ fn raw_time_at(raw: &[auspex_engine::calibrate::ThresholdEvidence], accuracy: f6
     }
     None
 }
-
 
 /// Training sizes (trials per stimulus) the learning curve tries, up to what the folds hold.
 const LEARNING_SIZES: [usize; 12] = [2, 3, 5, 8, 12, 20, 30, 50, 80, 120, 200, 300];

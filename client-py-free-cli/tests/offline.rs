@@ -142,8 +142,14 @@ fn posteriors_agree_with_an_independent_implementation_of_the_json_export() {
         .map(|p| p.as_f64().unwrap())
         .collect();
     assert_eq!(beta.len(), nb);
-    assert_eq!(j["calibration_method"], "temperature", "fit calibrates by default");
-    assert!(beta.iter().all(|&b| b != 1.0), "a fitted factor is never exactly 1");
+    assert_eq!(
+        j["calibration_method"], "temperature",
+        "fit calibrates by default"
+    );
+    assert!(
+        beta.iter().all(|&b| b != 1.0),
+        "a fitted factor is never exactly 1"
+    );
     let mut cells: HashMap<(u64, String), (Vec<f64>, Vec<f64>)> = HashMap::new();
     for c in j["cells"].as_array().unwrap() {
         let f = |k: &str| -> Vec<f64> {

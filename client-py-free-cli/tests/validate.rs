@@ -103,7 +103,10 @@ fn timing_beats_count_only_and_information_is_significant() {
             .unwrap();
         assert_eq!(e.accuracy(), t.accuracy, "θ = {}", t.threshold);
         let (acc, lo, hi) = e.early_accuracy();
-        assert_eq!((p.threshold, p.accuracy, p.lo, p.hi), (t.threshold, acc, lo, hi));
+        assert_eq!(
+            (p.threshold, p.accuracy, p.lo, p.hi),
+            (t.threshold, acc, lo, hi)
+        );
         assert_eq!(p.kept, e.early == 0 || p.hi >= p.threshold);
     }
     // Every recalibration is judged on every held-out trial.

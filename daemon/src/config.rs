@@ -282,9 +282,7 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
     }
     if let Some(t) = f.target_accuracy {
         if !(t > 0.0 && t < 1.0) {
-            return Err(format!(
-                "target accuracy {t} must be in (0, 1), e.g. 0.95"
-            ));
+            return Err(format!("target accuracy {t} must be in (0, 1), e.g. 0.95"));
         }
         if f.threshold.is_some() {
             return Err("give either a threshold or a target accuracy, not both".into());

@@ -214,7 +214,8 @@ impl EngineSink for PubSink<'_> {
                     if t.awaiting_label.len() == 256 {
                         t.awaiting_label.pop_front();
                     }
-                    t.awaiting_label.push_back((e.trial, d.clone(), by_threshold));
+                    t.awaiting_label
+                        .push_back((e.trial, d.clone(), by_threshold));
                 }
                 _ => {}
             }
@@ -243,7 +244,11 @@ impl EngineSink for PubSink<'_> {
     fn unit_summaries(&mut self, s: &UnitSummaries<'_>) {
         let presented = self.name(s.trial, s.presented);
         if let Some(t) = self.tally.as_mut() {
-            if let Some(i) = t.awaiting_label.iter().position(|(id, _, _)| *id == s.trial) {
+            if let Some(i) = t
+                .awaiting_label
+                .iter()
+                .position(|(id, _, _)| *id == s.trial)
+            {
                 if let Some((_, d, th)) = t.awaiting_label.remove(i) {
                     t.labelled += 1;
                     t.correct += (d == presented) as u64;
@@ -1043,7 +1048,9 @@ impl EngineThread {
             // Learning starts from the loaded model (or none) in every session.
             self.model = self.base.as_ref().map(|b| b.0.clone());
             self.model_path = self.base.as_ref().map(|b| b.1.clone()).unwrap_or_default();
-            self.config.policy = self.promise.model_changed(self.model.as_deref(), &self.config);
+            self.config.policy = self
+                .promise
+                .model_changed(self.model.as_deref(), &self.config);
             self.current = self
                 .model
                 .as_ref()

@@ -91,7 +91,10 @@ impl PromiseKeeper {
         }
         let c = m.calibration();
         if !config.calibrated && c.is_active() {
-            return Err("the held-out record is of the calibrated posterior; calibration is switched off".into());
+            return Err(
+                "the held-out record is of the calibrated posterior; calibration is switched off"
+                    .into(),
+            );
         }
         let e = c.threshold_for(target).map_err(|e| e.to_string())?;
         Ok((
@@ -143,7 +146,11 @@ impl PromiseKeeper {
 
     /// After the model changed (reload, learned): the policy that keeps the target, or the
     /// withheld policy with the reason kept for status. Without a target, `config`'s policy.
-    pub fn model_changed(&mut self, model: Option<&Model>, config: &EngineConfig) -> DecisionPolicy {
+    pub fn model_changed(
+        &mut self,
+        model: Option<&Model>,
+        config: &EngineConfig,
+    ) -> DecisionPolicy {
         let Some(t) = self.target else {
             self.evidence = Self::record_line(model, config.policy.threshold);
             return config.policy;
@@ -151,7 +158,11 @@ impl PromiseKeeper {
         match Self::policy_for(t, model, config) {
             Ok((p, line)) => {
                 if self.withheld {
-                    tracing::info!(target = t, threshold = p.threshold, "the model's record now supports the target: threshold decisions resume");
+                    tracing::info!(
+                        target = t,
+                        threshold = p.threshold,
+                        "the model's record now supports the target: threshold decisions resume"
+                    );
                 }
                 self.withheld = false;
                 self.evidence = line;
@@ -203,7 +214,11 @@ impl PromiseKeeper {
             .find(|(th, _)| *th == threshold)
             .map(|(_, p)| *p)
             .unwrap_or(threshold);
-        let i = match self.watches.iter().position(|(_, w)| w.threshold == promise) {
+        let i = match self
+            .watches
+            .iter()
+            .position(|(_, w)| w.threshold == promise)
+        {
             Some(i) => i,
             None => {
                 self.watches.push((threshold, PromiseWatch::new(promise)));

@@ -302,15 +302,24 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
     // The saved model = `auspex fit` of the recording (the late unit from its declaration on).
     assert_eq!(rec.dataset.declared_from.get(&late), Some(&from));
     let (spec, _) = auspexd::model_file::load_model(&saved).unwrap();
-    let fitted = plan(
+    let fit_opts = FitOptions {
+        window_s: sc.window_ms / 1000.0,
+        ..FitOptions::default()
+    };
+    let mut fitted = plan(&rec.dataset, &fit_opts).unwrap().fit_all();
+    // Calibrated as `auspex fit` calibrates: 5 held-out folds, seed 1, temperature, 20 ms.
+    let set = auspex_engine::calibrate::held_out_set(
         &rec.dataset,
-        &FitOptions {
-            window_s: sc.window_ms / 1000.0,
-            ..FitOptions::default()
-        },
+        &fit_opts,
+        &fitted.stimuli,
+        5,
+        1,
+        &|p| p.fit_all(),
     )
-    .unwrap()
-    .fit_all();
+    .unwrap();
+    fitted.calibration =
+        auspex_engine::calibrate::calibrate(&set, auspex_engine::calibrate::DEFAULT_METHOD, 0.02);
+    assert!(spec.calibration.is_active() && !spec.calibration.evidence.is_empty());
     assert!(spec.units.contains(&late));
     assert!(
         spec == fitted,

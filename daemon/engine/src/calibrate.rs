@@ -130,11 +130,7 @@ impl ThresholdEvidence {
     /// Accuracy of the threshold decisions and its 95% interval.
     pub fn early_accuracy(&self) -> (f64, f64, f64) {
         let (lo, hi) = clopper_pearson(self.early_correct as u64, self.early as u64, 0.05);
-        (
-            self.early_correct as f64 / self.early.max(1) as f64,
-            lo,
-            hi,
-        )
+        (self.early_correct as f64 / self.early.max(1) as f64, lo, hi)
     }
 }
 
@@ -447,7 +443,13 @@ fn mixture_loss(
     let mut loss = 0.0;
     for t in trials {
         for b in bins.clone() {
-            posterior_into(ln_prior, &t.ll[b * ns..(b + 1) * ns], beta, floor, &mut post);
+            posterior_into(
+                ln_prior,
+                &t.ll[b * ns..(b + 1) * ns],
+                beta,
+                floor,
+                &mut post,
+            );
             loss -= post[t.label].max(f64::MIN_POSITIVE).ln();
         }
     }
@@ -855,11 +857,7 @@ impl PromiseWatch {
     /// Realised accuracy and its 95% Clopper–Pearson interval.
     pub fn accuracy(&self) -> (f64, f64, f64) {
         let (lo, hi) = clopper_pearson(self.correct, self.decisions, 0.05);
-        (
-            self.correct as f64 / self.decisions.max(1) as f64,
-            lo,
-            hi,
-        )
+        (self.correct as f64 / self.decisions.max(1) as f64, lo, hi)
     }
 
     /// Starts over (a new model or a new session).
@@ -992,7 +990,10 @@ mod tests {
             calibrate(&set, CalibrationMethod::Temperature, 0.02).factors[0]
         };
         let many = beta_for(300);
-        assert!((0.9..=1.1).contains(&many), "β {many} with 300 trials per stimulus");
+        assert!(
+            (0.9..=1.1).contains(&many),
+            "β {many} with 300 trials per stimulus"
+        );
         let few = beta_for(8);
         eprintln!("β {many:.3} with 300 trials per stimulus, {few:.3} with 8");
         assert!(few < many - 0.1, "β {few} with 8 trials vs {many} with 300");
@@ -1035,7 +1036,10 @@ mod tests {
 
     #[test]
     fn bands_double_from_the_minimum_time_and_cover_the_window() {
-        assert_eq!(bands(250, 19), vec![0..20, 20..40, 40..80, 80..160, 160..250]);
+        assert_eq!(
+            bands(250, 19),
+            vec![0..20, 20..40, 40..80, 80..160, 160..250]
+        );
         assert_eq!(bands(10, 0), vec![0..5, 5..10]);
         assert_eq!(bands(11, 0), vec![0..5, 5..11]);
         let b = bands(1000, 9);
@@ -1116,7 +1120,10 @@ mod tests {
             false_alarms += kept.alarm as usize;
             caught += broken.alarm as usize;
         }
-        assert!(false_alarms as f64 / streams as f64 <= 0.1, "{false_alarms}");
+        assert!(
+            false_alarms as f64 / streams as f64 <= 0.1,
+            "{false_alarms}"
+        );
         assert!(caught as f64 / streams as f64 >= 0.5, "{caught}");
     }
 }

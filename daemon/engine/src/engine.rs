@@ -7,8 +7,8 @@
 //! is open (trial states are pooled; spike buffers keep their capacity). The daemon, offline
 //! decoding, validation and replay all drive this one type, so equal inputs give equal outputs.
 
-use crate::model::{CellKernel, Model};
 use crate::calibrate::posterior_into;
+use crate::model::{CellKernel, Model};
 use crate::special::{entropy_bits, softmax_in_place};
 use crate::table::{ProductAcc, NO_SLOT};
 use crate::tally::UnitTally;

@@ -471,7 +471,11 @@ impl Learner {
     /// `spec`, fitted on this learner's trials, with its calibration and threshold record: the
     /// held-out folds are the learned trials of the model's stimuli, restricted to its units
     /// (`fit` fits a fold's plan as the caller fits). Too few trials: returned uncalibrated.
-    pub fn calibrated(&self, mut spec: ModelSpec, fit: &dyn Fn(&FitPlan) -> ModelSpec) -> ModelSpec {
+    pub fn calibrated(
+        &self,
+        mut spec: ModelSpec,
+        fit: &dyn Fn(&FitPlan) -> ModelSpec,
+    ) -> ModelSpec {
         if self.opts.calibration == CalibrationMethod::None {
             return spec;
         }
@@ -479,8 +483,11 @@ impl Learner {
         let units: std::collections::BTreeSet<u32> = spec.units.iter().copied().collect();
         d.units.retain(|u| units.contains(u));
         d.spikes.retain(|(_, u)| units.contains(u));
-        d.trials
-            .retain(|t| t.stimulus.as_ref().is_some_and(|s| spec.stimuli.contains(s)));
+        d.trials.retain(|t| {
+            t.stimulus
+                .as_ref()
+                .is_some_and(|s| spec.stimuli.contains(s))
+        });
         if let Ok(set) = held_out_set(&d, &self.opts.fit, &spec.stimuli, 5, 1, fit) {
             spec.calibration = calibrate(
                 &set,
