@@ -75,6 +75,8 @@ pub struct MonitorState {
     last_seq: [u64; 6],
     /// Summaries of sessions that ended while the monitor ran.
     pub sessions_ended: Vec<String>,
+    /// The decision policy and what backs it (from the daemon's status at start).
+    pub policy: String,
 }
 
 impl MonitorState {
@@ -96,6 +98,7 @@ impl MonitorState {
             missed: 0,
             last_seq: [0; 6],
             sessions_ended: Vec::new(),
+            policy: String::new(),
         }
     }
 
@@ -252,7 +255,7 @@ impl MonitorState {
                 Constraint::Length(1),
                 Constraint::Min(8),
                 Constraint::Min(8),
-                Constraint::Length(2),
+                Constraint::Length(3),
             ])
             .split(area);
         let acc = if self.decided > 0 {
@@ -338,6 +341,10 @@ impl MonitorState {
         self.draw_units(f, bottom[0]);
         self.draw_unit_detail(f, bottom[1]);
         let foot = vec![
+            Line::from(Span::styled(
+                self.policy.clone(),
+                Style::default().fg(Color::Cyan),
+            )),
             Line::from(Span::styled(
                 self.health_line(),
                 Style::default().fg(Color::Gray),
@@ -567,6 +574,32 @@ pub fn promise_record_line(r: &v1::PromiseRecord) -> String {
             " — kept so far"
         }
     )
+}
+
+/// One line: the decision policy and what backs it (the monitor's footer).
+pub fn policy_line(s: &v1::Status) -> String {
+    let mut out = format!(
+        "decide at θ {} after {:.0} ms",
+        s.threshold,
+        s.min_time_s * 1000.0
+    );
+    if let Some(p) = &s.promise {
+        out += &format!(
+            " · calibration {}{}",
+            p.calibration,
+            if p.calibrated { "" } else { " (off)" }
+        );
+        if p.target_accuracy > 0.0 {
+            out += &format!(" · target {}", p.target_accuracy);
+        }
+        if p.withheld {
+            out += " · threshold decisions WITHHELD";
+        }
+        if !p.evidence.is_empty() {
+            out += &format!(" · {}", p.evidence);
+        }
+    }
+    out
 }
 
 /// What backs the decision threshold, and how the promise has been kept this session (status).

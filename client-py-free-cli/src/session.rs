@@ -50,6 +50,7 @@ pub async fn monitor(
         .await
         .with_context(|| format!("asking the daemon at {control_ep} for its model"))?;
     let mut state = MonitorState::new(st.stimuli.clone(), st.bin_width_s);
+    state.policy = crate::monitor::policy_line(&st);
     let mut sub = zeromq::SubSocket::new();
     sub.connect(publish)
         .await

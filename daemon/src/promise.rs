@@ -103,7 +103,7 @@ impl PromiseKeeper {
                 min_time_s: c.min_time_s,
             },
             format!(
-                "threshold {} keeps {target}: held out {}/{} right = {:.3} (95% interval {:.3}–{:.3}), median decision {:.0} ms, minimum time {:.0} ms",
+                "held out at θ {}: {}/{} right = {:.3} [{:.3}–{:.3}], median decision {:.0} ms",
                 e.threshold,
                 e.correct,
                 e.trials,
@@ -111,7 +111,6 @@ impl PromiseKeeper {
                 e.lo,
                 e.hi,
                 e.median_decision_ms,
-                c.min_time_s * 1000.0
             ),
         ))
     }
@@ -191,7 +190,7 @@ impl PromiseKeeper {
             })
             .map(|e| {
                 format!(
-                    "held out at threshold {}: {}/{} right = {:.3} (95% interval {:.3}–{:.3}), median decision {:.0} ms",
+                    "held out at θ {}: {}/{} right = {:.3} [{:.3}–{:.3}], median decision {:.0} ms",
                     e.threshold,
                     e.correct,
                     e.trials,

@@ -157,8 +157,10 @@ fn a_target_accuracy_is_kept_refused_and_watched_live() {
     assert_eq!(p.target_accuracy, target);
     assert!(!p.withheld && p.calibrated, "{p:?}");
     assert!(
-        p.evidence
-            .contains(&format!("threshold {}", chosen.threshold)),
+        p.evidence.starts_with(&format!(
+            "held out at θ {}: {}/{}",
+            chosen.threshold, chosen.correct, chosen.trials
+        )),
         "{}",
         p.evidence
     );
