@@ -6,11 +6,25 @@ use crate::validate::{Extras, Validation};
 use auspex_engine::stats::ks_critical;
 use std::fmt::Write;
 
+/// Okabe & Ito's colour-blind-safe palette (yellow darkened to read on white), then two more.
 const PALETTE: [&str; 10] = [
-    "#1f77b4", "#d62728", "#2ca02c", "#9467bd", "#ff7f0e", "#17becf", "#8c564b", "#e377c2",
-    "#7f7f7f", "#bcbd22",
+    "#0072B2", "#E69F00", "#009E73", "#D55E00", "#56B4E9", "#CC79A7", "#000000", "#A08C00",
+    "#999999", "#882255",
 ];
-const DECODER_COLOURS: [&str; 3] = ["#1f4e9c", "#2ca02c", "#d62728"];
+const DECODER_COLOURS: [&str; 3] = ["#0072B2", "#E69F00", "#D55E00"];
+/// Chance, thresholds and other reference lines.
+const REFERENCE: &str = "#666";
+/// Average advance of a character at the label font sizes (px), for fitting text to a width.
+const CHAR_PX: f64 = 6.4;
+
+/// `textLength` squeezing a text of `chars` characters into `avail` pixels when it would not fit.
+fn fit_attr(chars: usize, avail: f64) -> String {
+    if chars as f64 * CHAR_PX > avail {
+        format!(r#" textLength="{avail:.0}" lengthAdjust="spacingAndGlyphs""#)
+    } else {
+        String::new()
+    }
+}
 /// Units drawn in full (raster, PSTH, counts, KS plot), most informative first.
 pub const UNIT_DETAIL_MAX: usize = 64;
 
@@ -128,13 +142,16 @@ impl Plot {
                 fmt_tick(t)
             );
         }
+        // Titles and labels longer than their room are squeezed to fit, never clipped.
         let _ = write!(
             self.svg,
-            r##"<text x="{:.1}" y="14" class="tt">{}</text><text x="{:.1}" y="{:.1}" class="lb" text-anchor="middle">{}</text><text x="11" y="{:.1}" class="lb" text-anchor="middle" transform="rotate(-90 11 {:.1})">{}</text>"##,
+            r##"<text x="{:.1}" y="14" class="tt"{}>{}</text><text x="{:.1}" y="{:.1}" class="lb" text-anchor="middle"{}>{}</text><text x="11" y="{:.1}" class="lb" text-anchor="middle" transform="rotate(-90 11 {:.1})">{}</text>"##,
             x0,
+            fit_attr(title.chars().count() + 4, self.w - x0 - 4.0),
             esc(title),
             (x0 + x1) / 2.0,
             self.h - 4.0,
+            fit_attr(xlabel.chars().count(), self.w - 8.0),
             esc(xlabel),
             (y0 + y1) / 2.0,
             (y0 + y1) / 2.0,
@@ -200,30 +217,31 @@ impl Plot {
         );
     }
     fn text(&mut self, x: f64, y: f64, s: &str, col: &str) {
+        // Near the right edge the text ends at the point instead of starting there.
+        let px = self.sx(x);
+        let anchor = if px + s.chars().count() as f64 * CHAR_PX > self.w - 2.0 {
+            "end"
+        } else {
+            "start"
+        };
         let _ = write!(
             self.svg,
-            r##"<text x="{:.1}" y="{:.1}" class="tk" fill="{col}">{}</text>"##,
-            self.sx(x),
+            r##"<text x="{px:.1}" y="{:.1}" class="tk" fill="{col}" text-anchor="{anchor}">{}</text>"##,
             self.sy(y),
             esc(s)
         );
     }
-    fn legend(&mut self, items: &[(String, &str)]) {
-        let mut y = self.top + 12.0;
-        let x = self.w - self.right - 150.0;
-        for (label, col) in items {
-            let _ = write!(
-                self.svg,
-                r##"<line x1="{x:.1}" y1="{:.1}" x2="{:.1}" y2="{:.1}" stroke="{col}" stroke-width="2.5"/><text x="{:.1}" y="{:.1}" class="tk">{}</text>"##,
-                y - 3.5,
-                x + 16.0,
-                y - 3.5,
-                x + 20.0,
-                y,
-                esc(label)
-            );
-            y += 13.0;
-        }
+    /// A line with a given dash pattern (e.g. "1 3" dotted).
+    fn line_dashed(&mut self, pts: &[(f64, f64)], col: &str, width: f64, dash: &str) {
+        let d: Vec<String> = pts
+            .iter()
+            .map(|(x, y)| format!("{:.1},{:.1}", self.sx(*x), self.sy(*y)))
+            .collect();
+        let _ = write!(
+            self.svg,
+            r##"<polyline fill="none" stroke="{col}" stroke-width="{width}" stroke-dasharray="{dash}" points="{}"/>"##,
+            d.join(" ")
+        );
     }
     /// A legend whose top-left corner is at (x, y) in data coordinates (kept off the data).
     fn legend_at(&mut self, items: &[(String, &str)], x: f64, y: f64) {
@@ -256,7 +274,7 @@ fn heatmap(title: &str, conf: &[Vec<u64>], names: &[String]) -> String {
     let cell = (300.0 / n as f64).clamp(12.0, 36.0);
     let (left, top) = (60.0, 40.0);
     let size = cell * n as f64;
-    let (w, h) = (left + size + 20.0, top + size + 40.0);
+    let (w, h) = (left + size.max(330.0) + 20.0, top + size + 90.0);
     let mut s = format!(
         r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}"><text x="{left}" y="14" class="tt">{}</text>"#,
         esc(title)
@@ -281,9 +299,11 @@ fn heatmap(title: &str, conf: &[Vec<u64>], names: &[String]) -> String {
                 100.0 * p
             );
             if cell >= 22.0 && c > 0 {
+                // Light text on dark cells.
+                let ink = if p > 0.55 { "#fff" } else { "#222" };
                 let _ = write!(
                     s,
-                    r##"<text x="{:.1}" y="{:.1}" class="tk" text-anchor="middle">{c}</text>"##,
+                    r##"<text x="{:.1}" y="{:.1}" class="tk" text-anchor="middle" fill="{ink}">{c}</text>"##,
                     left + (j as f64 + 0.5) * cell,
                     top + (i as f64 + 0.6) * cell
                 );
@@ -306,9 +326,34 @@ fn heatmap(title: &str, conf: &[Vec<u64>], names: &[String]) -> String {
     }
     let _ = write!(
         s,
-        r##"<text x="{:.1}" y="{:.1}" class="lb" text-anchor="middle">rows: presented · columns: decoded</text></svg>"##,
+        r##"<text x="{:.1}" y="{:.1}" class="lb" text-anchor="middle">rows: presented · columns: decoded</text>"##,
         left + size / 2.0,
         top + size + 18.0
+    );
+    // Colour scale: share of the presented row, right (diagonal, blue) and wrong (red).
+    let (sx, sy, sw) = (left, top + size + 30.0, size.min(200.0));
+    for k in 0..20 {
+        let p = k as f64 / 19.0;
+        let shade = (255.0 * (1.0 - p)).round() as u8;
+        let _ = write!(
+            s,
+            r##"<rect x="{:.1}" y="{sy:.1}" width="{:.1}" height="8" fill="rgb({shade},{shade},255)"/><rect x="{:.1}" y="{:.1}" width="{:.1}" height="8" fill="rgb(255,{shade},{shade})"/>"##,
+            sx + p * (sw - sw / 20.0),
+            sw / 20.0 + 0.5,
+            sx + p * (sw - sw / 20.0),
+            sy + 9.0,
+            sw / 20.0 + 0.5
+        );
+    }
+    let _ = write!(
+        s,
+        r##"<text x="{:.1}" y="{:.1}" class="tk">0</text><text x="{:.1}" y="{:.1}" class="tk" text-anchor="end">100% of the row</text><text x="{:.1}" y="{:.1}" class="tk">colour: share of the presented row (blue: right, red: wrong)</text></svg>"##,
+        sx,
+        sy + 28.0,
+        sx + sw,
+        sy + 28.0,
+        sx,
+        sy + 41.0
     );
     s
 }
@@ -343,13 +388,42 @@ fn accuracy_plot(v: &Validation) -> String {
         "ms after onset",
         "accuracy",
     );
-    for (d, dr) in v.decoders.iter().enumerate() {
+    p.line(
+        &[(0.0, v.chance), (v.window_ms, v.chance)],
+        REFERENCE,
+        1.2,
+        true,
+    );
+    p.text(v.window_ms * 0.01, v.chance + 0.02, "chance", REFERENCE);
+    let mut legend = Vec::new();
+    // Drawn in reverse so the default decoder ends on top; the second one dashed, so identical
+    // curves still show both.
+    for (d, dr) in v.decoders.iter().enumerate().rev() {
+        let col = DECODER_COLOURS[d % 3];
+        if dr.decoder == "count-only" {
+            // It decides only at the window end: one point, not a curve along chance.
+            let c = &dr.accuracy_end;
+            p.line(&[(c.t_ms, c.lo), (c.t_ms, c.hi)], col, 1.5, false);
+            p.dot(
+                c.t_ms,
+                c.accuracy,
+                4.0,
+                col,
+                &format!("count-only at the window end: {:.1}%", 100.0 * c.accuracy),
+            );
+            legend.push((format!("{} (window end only)", dr.decoder), col));
+            continue;
+        }
         let xs: Vec<f64> = dr.curve.iter().map(|c| c.t_ms).collect();
         let lo: Vec<f64> = dr.curve.iter().map(|c| c.lo).collect();
         let hi: Vec<f64> = dr.curve.iter().map(|c| c.hi).collect();
-        p.band(&xs, &lo, &hi, DECODER_COLOURS[d % 3]);
+        p.band(&xs, &lo, &hi, col);
         let pts: Vec<(f64, f64)> = dr.curve.iter().map(|c| (c.t_ms, c.accuracy)).collect();
-        p.line(&pts, DECODER_COLOURS[d % 3], 2.0, false);
+        p.line(&pts, col, 2.0, d == 1);
+        legend.push((
+            format!("{}{}", dr.decoder, if d == 1 { " (dashed)" } else { "" }),
+            col,
+        ));
         if let Some(t) = dr.earliest_reliable_ms {
             let y = dr.curve[((t / v.bin_ms) as usize)
                 .saturating_sub(1)
@@ -364,14 +438,9 @@ fn accuracy_plot(v: &Validation) -> String {
             );
         }
     }
-    p.line(
-        &[(0.0, v.chance), (v.window_ms, v.chance)],
-        "#555",
-        1.2,
-        true,
-    );
-    p.text(v.window_ms * 0.01, v.chance + 0.02, "chance", "#555");
-    p.legend(&decoder_legend(v));
+    legend.reverse();
+    legend.push(("bands: 95% intervals".into(), "#ccc"));
+    p.legend_at(&legend, v.window_ms * 0.55, 0.55);
     p.finish()
 }
 
@@ -410,11 +479,12 @@ fn tradeoff_plot(v: &Validation) -> String {
     }
     p.line(
         &[(0.0, v.chance), (v.window_ms, v.chance)],
-        "#555",
+        REFERENCE,
         1.2,
         true,
     );
-    p.legend(&decoder_legend(v));
+    p.text(v.window_ms * 0.01, v.chance + 0.02, "chance", REFERENCE);
+    p.legend_at(&decoder_legend(v), v.window_ms * 0.5, 0.5);
     p.finish()
 }
 
@@ -425,8 +495,8 @@ fn calibration_plot(v: &Validation) -> String {
         "top posterior (bins of 0.1 with ≥ 5 trials)",
         "accuracy (95% interval)",
     );
-    p.line(&[(0.0, 0.0), (1.0, 1.0)], "#555", 1.0, true);
-    p.text(0.62, 0.06, "dashed: perfect calibration", "#555");
+    p.line(&[(0.0, 0.0), (1.0, 1.0)], REFERENCE, 1.0, true);
+    p.text(0.62, 0.06, "dashed: perfect calibration", REFERENCE);
     let sets = &v.calibration.reliability;
     let shown: Vec<usize> = [0, sets.len().saturating_sub(1)]
         .into_iter()
@@ -471,7 +541,7 @@ fn calibration_plot(v: &Validation) -> String {
     p.finish()
 }
 
-const METHOD_COLOURS: [&str; 4] = ["#7f7f7f", "#1f4e9c", "#ff7f0e", "#2ca02c"];
+const METHOD_COLOURS: [&str; 4] = ["#999999", "#0072B2", "#E69F00", "#009E73"];
 
 /// Realised held-out accuracy against the promise, per recalibration method.
 fn promise_plot(v: &Validation) -> String {
@@ -481,7 +551,7 @@ fn promise_plot(v: &Validation) -> String {
         "threshold θ (the promised accuracy)",
         "accuracy of threshold decisions (95% interval)",
     );
-    p.line(&[(0.78, 0.78), (1.0, 1.0)], "#555", 1.0, true);
+    p.line(&[(0.78, 0.78), (1.0, 1.0)], REFERENCE, 1.0, true);
     let methods = &v.calibration.methods;
     let mut legend = Vec::new();
     for (m, mr) in methods.iter().enumerate() {
@@ -540,7 +610,7 @@ fn promise_plot(v: &Validation) -> String {
             col,
         ));
     }
-    legend.push(("dashed: accuracy = promise".to_string(), "#555"));
+    legend.push(("dashed: accuracy = promise".to_string(), REFERENCE));
     p.legend_at(&legend, 0.855, 0.84);
     p.finish()
 }
@@ -637,8 +707,8 @@ fn learning_plots(v: &Validation) -> String {
             ),
         );
     }
-    a.line(&[(0.0, v.chance), (xmax, v.chance)], "#555", 1.2, true);
-    a.text(xmax * 0.02, v.chance + 0.02, "chance", "#555");
+    a.line(&[(0.0, v.chance), (xmax, v.chance)], REFERENCE, 1.2, true);
+    a.text(xmax * 0.02, v.chance + 0.02, "chance", REFERENCE);
     let top = lc
         .iter()
         .map(|p| p.info_bits + 1.96 * p.info_se_bits)
@@ -690,15 +760,15 @@ fn null_plot(title: &str, null: &[f64], observed: f64) -> String {
     p.bars(&edges, &h, "#888", 0.7);
     p.line(
         &[(observed, 0.0), (observed, top * 1.1)],
-        "#d62728",
+        PALETTE[3],
         2.0,
         false,
     );
     p.text(
         observed,
         top * 1.05,
-        &format!(" observed {observed:.3}"),
-        "#d62728",
+        &format!(" observed {observed:.3} "),
+        PALETTE[3],
     );
     p.finish()
 }
@@ -713,18 +783,21 @@ fn units_plot(v: &Validation) -> String {
         * 1.1;
     let mut p = Plot::new(
         (60.0 + 18.0 * n as f64).max(420.0),
-        280.0,
+        300.0,
         (0.0, n as f64),
         (0.0, top),
     );
+    // The unit ids are the x tick labels (no numeric ticks to collide with).
+    p.xticks = false;
+    p.bottom = 54.0;
     p.axes(
-        "Units ranked by single-unit information (red tick: shuffle-null 95th percentile)",
-        "unit (rank order)",
+        "Units ranked by single-unit information (tick: shuffle-null 95th percentile)",
+        "unit id, most informative first",
         "bits",
     );
     for (i, u) in v.units_ranked.iter().enumerate() {
         let col = if u.info.p_value < 0.05 {
-            "#1f4e9c"
+            PALETTE[0]
         } else {
             "#aaa"
         };
@@ -734,14 +807,14 @@ fn units_plot(v: &Validation) -> String {
                 (i as f64 + 0.1, u.info.null_95),
                 (i as f64 + 0.9, u.info.null_95),
             ],
-            "#d62728",
+            PALETTE[3],
             2.0,
             false,
         );
-        let (lx, ly) = (p.sx(i as f64 + 0.5), p.sy(0.0) + 12.0);
+        let (lx, ly) = (p.sx(i as f64 + 0.5) + 3.0, p.sy(0.0) + 6.0);
         let _ = write!(
             p.svg,
-            r##"<text x="{lx:.1}" y="{ly:.1}" class="tk" text-anchor="end" transform="rotate(-60 {lx:.1} {ly:.1})">{}</text>"##,
+            r##"<text x="{lx:.1}" y="{ly:.1}" class="tk" text-anchor="end" transform="rotate(-90 {lx:.1} {ly:.1})">{}</text>"##,
             u.unit
         );
         p.dot(
@@ -777,20 +850,33 @@ fn trajectories_plot(v: &Validation, x: &Extras) -> String {
             "ms",
             "posterior",
         );
-        for k in 0..ns {
+        p.line_dashed(
+            &[(0.0, v.threshold), (v.window_ms, v.threshold)],
+            REFERENCE,
+            1.0,
+            "1 3",
+        );
+        p.text(v.window_ms * 0.82, v.threshold - 0.07, &format!("θ {}", v.threshold), REFERENCE);
+        // The presented stimulus last, on top.
+        for k in (0..ns).filter(|&k| k != s).chain([s]) {
             let pts: Vec<(f64, f64)> = (0..nb)
                 .map(|b| ((b + 1) as f64 * v.bin_ms, tr[b * ns + k] as f64))
                 .collect();
-            p.line(&pts, colour(k), if k == s { 2.5 } else { 1.0 }, k != s);
+            p.line(&pts, colour(k), if k == s { 2.5 } else { 1.0 }, false);
         }
-        p.line(
-            &[(0.0, v.threshold), (v.window_ms, v.threshold)],
-            "#555",
-            0.8,
-            true,
-        );
         out += &p.finish();
     }
+    // Which colour is which stimulus.
+    let _ = write!(out, "<div class=sub style=\"width:100%\">");
+    for (k, name) in v.stimuli.iter().enumerate() {
+        let _ = write!(
+            out,
+            "<span style=\"white-space:nowrap;margin-right:14px\"><span style=\"display:inline-block;width:18px;height:3px;vertical-align:middle;background:{}\"></span> {}</span>",
+            colour(k),
+            esc(name)
+        );
+    }
+    out += "</div>";
     out
 }
 
@@ -868,9 +954,11 @@ fn unit_section(v: &Validation, x: &Extras, ur: &crate::validate::UnitReport) ->
             .max(fit.iter().map(|f| f.1).fold(0.0, f64::max));
         psth.push((edges, h, fit));
     }
-    let mut p = Plot::new(330.0, 250.0, (0.0, v.window_ms), (0.0, peak * 1.05));
+    // The legend (which colour is which stimulus, for the raster too) sits in a right margin.
+    let mut p = Plot::new(400.0, 250.0, (0.0, v.window_ms), (0.0, peak * 1.05));
+    p.right = 70.0;
     p.axes(
-        "PSTH (bars) and fitted spike density (lines)",
+        "PSTH (bars), fitted density (lines)",
         "ms after onset",
         "spikes/s",
     );
@@ -884,16 +972,19 @@ fn unit_section(v: &Validation, x: &Extras, ur: &crate::validate::UnitReport) ->
         .enumerate()
         .map(|(i, n)| (n.clone(), colour(i)))
         .collect();
-    p.legend(&items[..items.len().min(10)]);
+    p.legend_at(
+        &items[..items.len().min(14)],
+        v.window_ms * 1.01,
+        peak * 1.05,
+    );
     s += &p.finish();
-    // Count histograms with the fitted distributions.
+    // Count histograms with the fitted distributions: one small panel per stimulus.
     let maxc = (0..x.labels.len())
         .map(|i| w.counts[0][i])
         .max()
         .unwrap_or(0)
         .max(3) as usize
         + 1;
-    let mut p = Plot::new(330.0, 250.0, (0.0, maxc as f64), (0.0, 1.0));
     let mut top: f64 = 0.05;
     let mut lines = Vec::new();
     for st in 0..ns {
@@ -910,51 +1001,45 @@ fn unit_section(v: &Validation, x: &Extras, ur: &crate::validate::UnitReport) ->
             .max(pmf.iter().map(|x| x.1).fold(0.0, f64::max));
         lines.push((h, pmf));
     }
-    p.y = (0.0, top * 1.05);
-    p.axes(
-        "window counts (bars) and fitted distributions (lines)",
-        "spikes in the window",
-        "share of trials",
-    );
     let edges: Vec<f64> = (0..=maxc).map(|n| n as f64).collect();
+    s += "<div><div class=sub><b>window counts</b> (bars: share of trials) <b>and fitted distribution</b> (line), per stimulus</div><div class=row style=\"gap:2px;max-width:520px\">";
     for (st, (h, pmf)) in lines.iter().enumerate() {
-        p.bars(&edges, h, colour(st), 0.15);
+        let mut p = Plot::new(128.0, 96.0, (0.0, maxc as f64), (0.0, top * 1.05));
+        p.left = 28.0;
+        p.bottom = 18.0;
+        p.top = 16.0;
+        p.axes(&v.stimuli[st], "", "");
+        p.bars(&edges, h, colour(st), 0.35);
         p.line(pmf, colour(st), 1.5, false);
+        s += &p.finish();
     }
-    s += &p.finish();
-    // KS plot: empirical CDF of rescaled intervals against the uniform, with the 95% band.
-    let mut p = Plot::new(330.0, 250.0, (0.0, 1.0), (0.0, 1.0));
+    s += "</div></div>";
+    // KS plot: each cell's empirical CDF of rescaled intervals minus the uniform, divided by
+    // that cell's own 95% critical value (it depends on how many intervals the cell has), so
+    // one band, ±1, is every cell's band.
+    let mut p = Plot::new(330.0, 250.0, (0.0, 1.0), (-1.6, 1.6));
     p.axes(
-        "time-rescaling KS plot (held out)",
+        "time rescaling, held out: KS deviation",
         "model quantile",
-        "empirical CDF",
+        "deviation / cell's 95% critical value",
     );
-    let nmin = ur
-        .cells
-        .iter()
-        .map(|c| c.ks_n)
-        .filter(|&n| n > 0)
-        .min()
-        .unwrap_or(0);
-    if nmin > 0 {
-        let c = ks_critical(nmin, 0.05);
-        p.line(&[(0.0, c), (1.0 - c, 1.0)], "#888", 1.0, true);
-        p.line(&[(c, 0.0), (1.0, 1.0 - c)], "#888", 1.0, true);
-    }
-    p.line(&[(0.0, 0.0), (1.0, 1.0)], "#444", 0.8, false);
+    p.band(&[0.0, 1.0], &[-1.0, -1.0], &[1.0, 1.0], "#888");
+    p.line(&[(0.0, 0.0), (1.0, 0.0)], "#444", 0.8, false);
+    p.text(0.02, 1.05, "95% band of each cell", REFERENCE);
     for st in 0..ns {
         let mut z = x.rescaled[u * ns + st].clone();
-        if z.is_empty() {
+        if z.len() < 5 {
             continue;
         }
         z.sort_by(|a, b| a.total_cmp(b));
         let n = z.len() as f64;
+        let crit = ks_critical(z.len(), 0.05);
         let step = (z.len() / 200).max(1);
         let pts: Vec<(f64, f64)> = z
             .iter()
             .enumerate()
             .step_by(step)
-            .map(|(i, &q)| (q, (i as f64 + 0.5) / n))
+            .map(|(i, &q)| (q, (((i as f64 + 0.5) / n - q) / crit).clamp(-1.6, 1.6)))
             .collect();
         p.line(&pts, colour(st), 1.3, false);
     }
@@ -1094,11 +1179,11 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
         &co.confusion_end,
         &v.stimuli,
     );
-    s += "</div><h2>Example posterior trajectories (order statistics; bold: presented stimulus; dashed: threshold)</h2><div class=row>";
+    s += "</div><h2>Example posterior trajectories (order statistics; bold: presented stimulus; dotted: threshold θ)</h2><div class=row>";
     s += &trajectories_plot(v, x);
     s += "</div><h2>How much: information and its shuffle null</h2>";
-    let _ = write!(s, "<p class=sub>Mutual information between presented and window-end decoded stimulus: plug-in {:.3} bits minus the Panzeri–Treves bias {:.3} bits = {:.3} bits. Null: labels permuted within each training fold only (held-out labels untouched), cells refitted on the shuffled labels with the family and bandwidth chosen on the real fold, held-out trials decoded at the window end; p = (1 + #null ≥ observed) / (1 + shuffles).</p><div class=row>",
-        i.plugin_bits, i.bias_bits, i.bits);
+    let _ = write!(s, "<p class=sub>Mutual information between presented and window-end decoded stimulus: plug-in {:.3} bits, Panzeri–Treves bias correction {:+.3} bits, corrected {:.3} bits. Null: labels permuted within each training fold only (held-out labels untouched), cells refitted on the shuffled labels with the family and bandwidth chosen on the real fold, held-out trials decoded at the window end; p = (1 + #null ≥ observed) / (1 + shuffles).</p><div class=row>",
+        i.plugin_bits, -i.bias_bits, i.bits);
     s += &null_plot(
         "population information: shuffle null (grey) and observed (red)",
         &i.null_bits,

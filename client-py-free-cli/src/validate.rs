@@ -1382,8 +1382,8 @@ pub fn summary_table(v: &Validation) -> String {
     let i = &v.information;
     let _ = writeln!(
         s,
-        "information (order statistics, window end): {:.3} bits (plug-in {:.3} − bias {:.3}); shuffle null 95% {:.3} bits, p = {:.4} ({} shuffles)",
-        i.bits, i.plugin_bits, i.bias_bits, i.null_95, i.p_value, v.shuffles
+        "information (order statistics, window end): {:.3} bits (plug-in {:.3}, bias correction {:+.3}); shuffle null 95% {:.3} bits, p = {:.4} ({} shuffles)",
+        i.bits, i.plugin_bits, -i.bias_bits, i.null_95, i.p_value, v.shuffles
     );
     let _ = writeln!(
         s,
