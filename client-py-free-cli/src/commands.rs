@@ -8,7 +8,7 @@ use auspex_engine::calibrate::{calibrate, held_out_set, Calibration, Calibration
 use auspex_engine::engine::{DecisionPolicy, Decoder, EngineConfig};
 use auspex_engine::fit::FitOptions;
 use auspex_engine::simulate::{simulate, Scenario, SimOptions};
-use auspex_engine::Model;
+use auspex_engine::{Dataset, Model};
 use auspexd::model_file::{load_model, save_model};
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
@@ -105,6 +105,8 @@ pub struct FitArgs {
     pub calibration_folds: usize,
     /// Minimum decision time the threshold evidence is replayed with, ms.
     pub min_time_ms: f64,
+    /// The order to list stimuli in (empty: numeric if every name is a number, else as first met).
+    pub stimulus_order: Vec<String>,
     /// No per-cell table.
     pub quiet: bool,
 }
@@ -120,6 +122,7 @@ impl Default for FitArgs {
             calibration: DEFAULT_CALIBRATION,
             calibration_folds: 5,
             min_time_ms: DecisionPolicy::default().min_time_s * 1000.0,
+            stimulus_order: Vec::new(),
             quiet: false,
         }
     }
@@ -143,8 +146,9 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
         },
     };
     let quiet = args.quiet;
-    let (data, report) = source.load(opts.window_s)?;
+    let (mut data, report) = source.load(opts.window_s)?;
     eprintln!("{report}");
+    order_stimuli(&mut data, &args.stimulus_order, source)?;
     let t0 = std::time::Instant::now();
     let (mut spec, plan) = fit_dataset(&data, &opts, std::io::stderr().is_terminal() && !quiet)?;
     for (name, &n) in plan.stimuli.iter().zip(&plan.trials_per_stimulus) {
@@ -625,6 +629,11 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
     std::fs::create_dir_all(out_dir)
         .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;
     let model_path = out_dir.join("demo.apxm");
+    // The scenario's own order (N, NE, E, … round the compass), so neighbouring directions sit
+    // side by side in every table and confusion matrix.
+    let order: Vec<String> = read_scenario(&demo.join("scenario.toml"))
+        .map(|sc| sc.stimuli.into_iter().map(|(name, _)| name).collect())
+        .unwrap_or_default();
     eprintln!("── 1/4 fitting the demo model (on {}) ──", demo.display());
     let source = Source::tables(&sp, &tr);
     fit_cmd(
@@ -632,6 +641,7 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
         &model_path,
         &FitArgs {
             quiet,
+            stimulus_order: order.clone(),
             ..Default::default()
         },
     )?;
@@ -661,6 +671,7 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
             seed: 1,
             threshold: 0.9,
             min_time_ms: 20.0,
+            stimulus_order: order.clone(),
         },
         quiet,
     )?;
@@ -686,6 +697,38 @@ pub struct ValidateArgs {
     pub threshold: f64,
     /// Minimum decision time, ms.
     pub min_time_ms: f64,
+    /// The order to list stimuli in (empty: numeric if every name is a number, else as first met).
+    pub stimulus_order: Vec<String>,
+}
+
+/// Sets the order stimuli are listed in; every name must be a stimulus of the data, and every
+/// stimulus of the data must be named.
+pub fn order_stimuli(data: &mut Dataset, order: &[String], source: &Source) -> anyhow::Result<()> {
+    if order.is_empty() {
+        return Ok(());
+    }
+    let names = data.stimulus_names();
+    let unknown: Vec<&String> = order.iter().filter(|s| !names.contains(s)).collect();
+    let missing: Vec<&String> = names.iter().filter(|s| !order.contains(s)).collect();
+    if !unknown.is_empty() || !missing.is_empty() {
+        bail!(
+            "--stimulus-order must name every stimulus of {} exactly once: {}{}(the data has: {})",
+            source.describe(),
+            if unknown.is_empty() {
+                String::new()
+            } else {
+                format!("not in the data: {:?}; ", unknown)
+            },
+            if missing.is_empty() {
+                String::new()
+            } else {
+                format!("missing: {:?}; ", missing)
+            },
+            names.join(", ")
+        );
+    }
+    data.stimulus_order = order.to_vec();
+    Ok(())
 }
 
 /// `validate`: writes `report.html` and `validation.json` to `out_dir`, prints the summary.
@@ -714,8 +757,9 @@ pub fn validate_cmd(
         min_time_ms: a.min_time_ms,
         progress: std::io::stderr().is_terminal() && !quiet,
     };
-    let (data, report) = source.load(opts.fit.window_s)?;
+    let (mut data, report) = source.load(opts.fit.window_s)?;
     eprintln!("{report}");
+    order_stimuli(&mut data, &a.stimulus_order, source)?;
     let (v, extras) = crate::validate::validate(&data, &source.describe(), &opts)?;
     std::fs::create_dir_all(out_dir)
         .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;

@@ -155,6 +155,10 @@ enum Cmd {
         /// Minimum decision time the threshold evidence is replayed with, ms (use the daemon's)
         #[arg(long, default_value_t = 20.0)]
         min_time_ms: f64,
+        /// List the stimuli in this order (comma-separated, every stimulus once) in the model and
+        /// its tables [default: numeric when every name is a number, else as first met]
+        #[arg(long, value_delimiter = ',')]
+        stimulus_order: Vec<String>,
         /// Do not print the per-cell table
         #[arg(long)]
         quiet: bool,
@@ -226,6 +230,10 @@ enum Cmd {
         /// Minimum time before a threshold decision, ms
         #[arg(long, default_value_t = 20.0)]
         min_time_ms: f64,
+        /// List the stimuli in this order (comma-separated, every stimulus once) in the report
+        /// [default: numeric when every name is a number, else as first met]
+        #[arg(long, value_delimiter = ',')]
+        stimulus_order: Vec<String>,
         /// No progress bar
         #[arg(long)]
         quiet: bool,
@@ -469,6 +477,7 @@ fn main() {
             calibration,
             calibration_folds,
             min_time_ms,
+            stimulus_order,
             quiet,
         } => commands::fit_cmd(
             &tables.source(),
@@ -482,6 +491,7 @@ fn main() {
                 calibration,
                 calibration_folds,
                 min_time_ms,
+                stimulus_order,
                 quiet,
             },
         )
@@ -534,6 +544,7 @@ fn main() {
             seed,
             threshold,
             min_time_ms,
+            stimulus_order,
             quiet,
         } => commands::validate_cmd(
             &tables.source(),
@@ -547,6 +558,7 @@ fn main() {
                 seed,
                 threshold,
                 min_time_ms,
+                stimulus_order,
             },
             quiet,
         )

@@ -856,7 +856,12 @@ fn trajectories_plot(v: &Validation, x: &Extras) -> String {
             1.0,
             "1 3",
         );
-        p.text(v.window_ms * 0.82, v.threshold - 0.07, &format!("θ {}", v.threshold), REFERENCE);
+        p.text(
+            v.window_ms * 0.82,
+            v.threshold - 0.07,
+            &format!("θ {}", v.threshold),
+            REFERENCE,
+        );
         // The presented stimulus last, on top.
         for k in (0..ns).filter(|&k| k != s).chain([s]) {
             let pts: Vec<(f64, f64)> = (0..nb)

@@ -311,6 +311,7 @@ pub fn read_dataset(
         spikes: sp,
         units: units.into_iter().collect(),
         declared_from: Default::default(),
+        stimulus_order: Vec::new(),
     };
     let report = report_for(&data, window_s);
     Ok((data, report))

@@ -366,6 +366,7 @@ fn subset(data: &Dataset, keep: &[usize], labels: Option<(&[usize], &[String])>)
         spikes: data.spikes.clone(),
         trials: keep.iter().map(|&i| data.trials[i].clone()).collect(),
         declared_from: data.declared_from.clone(),
+        stimulus_order: data.stimulus_order.clone(),
     };
     if let Some((lab, names)) = labels {
         for (t, &i) in d.trials.iter_mut().zip(keep) {

@@ -219,6 +219,34 @@ fn report_is_well_formed_and_renders_in_headless_chromium() {
     );
     auspex::tables::write_dataset(&data, &dir.path().join("s.csv"), &dir.path().join("t.csv"))
         .unwrap();
+    // The scenario's stimuli, reversed: not the order the trial table first meets them in.
+    let mut order: Vec<String> = sc.stimuli.iter().map(|(n, _)| n.clone()).collect();
+    order.reverse();
+    // A misspelt order is refused, naming what is wrong and what the data has.
+    let mut bad = order.clone();
+    bad[0] = "nowhere".into();
+    let e = auspex::commands::validate_cmd(
+        &Source::tables(&dir.path().join("s.csv"), &dir.path().join("t.csv")),
+        dir.path(),
+        &auspex::commands::ValidateArgs {
+            window_ms: 250.0,
+            bin_ms: 1.0,
+            families: "all".into(),
+            folds: 4,
+            shuffles: 20,
+            seed: 3,
+            threshold: 0.9,
+            min_time_ms: 20.0,
+            stimulus_order: bad,
+        },
+        true,
+    )
+    .unwrap_err()
+    .to_string();
+    assert!(
+        e.contains("not in the data: [\"nowhere\"]") && e.contains("missing:"),
+        "{e}"
+    );
     let v = auspex::commands::validate_cmd(
         &Source::tables(&dir.path().join("s.csv"), &dir.path().join("t.csv")),
         dir.path(),
@@ -231,10 +259,13 @@ fn report_is_well_formed_and_renders_in_headless_chromium() {
             seed: 3,
             threshold: 0.9,
             min_time_ms: 20.0,
+            stimulus_order: order.clone(),
         },
         true,
     )
     .unwrap();
+    // The report lists the stimuli in the order asked for.
+    assert_eq!(v.stimuli, order);
     let html = std::fs::read_to_string(dir.path().join("report.html")).unwrap();
     assert_well_formed(&html);
     assert!(html.contains("Accuracy against time since onset"));

@@ -30,6 +30,10 @@ pub struct Dataset {
     /// from which it is recorded. Trials with an onset before that tick are not used to fit the
     /// unit (its earlier spikes were never sent, so its silence there is no evidence).
     pub declared_from: std::collections::BTreeMap<u32, i64>,
+    /// The order stimuli are listed in (models, reports); stimuli not named here follow in
+    /// order of first appearance. Empty: numeric order when every name is a number, else
+    /// order of first appearance.
+    pub stimulus_order: Vec<String>,
 }
 
 /// The bin of `tick` in a trial with `onset`, or None outside [onset, onset + n_bins·bin_ticks).
@@ -88,6 +92,22 @@ impl Dataset {
                     v.push(s.clone());
                 }
             }
+        }
+        if !self.stimulus_order.is_empty() {
+            let mut ordered: Vec<String> = self
+                .stimulus_order
+                .iter()
+                .filter(|s| v.contains(s))
+                .cloned()
+                .collect();
+            ordered.extend(v.into_iter().filter(|s| !self.stimulus_order.contains(s)));
+            return ordered;
+        }
+        let numbers: Option<Vec<f64>> = v.iter().map(|s| s.trim().parse::<f64>().ok()).collect();
+        if let Some(x) = numbers {
+            let mut idx: Vec<usize> = (0..v.len()).collect();
+            idx.sort_by(|&a, &b| x[a].total_cmp(&x[b]));
+            return idx.into_iter().map(|i| v[i].clone()).collect();
         }
         v
     }
@@ -176,6 +196,7 @@ impl Dataset {
             spikes: self.spikes.clone(),
             trials: keep.iter().map(|&i| self.trials[i].clone()).collect(),
             declared_from: self.declared_from.clone(),
+            stimulus_order: self.stimulus_order.clone(),
         }
     }
 
@@ -215,6 +236,29 @@ mod tests {
     }
 
     #[test]
+    fn stimuli_are_listed_numerically_as_first_met_or_as_asked() {
+        let trial = |id: u64, s: &str| Trial {
+            id,
+            onset: id as i64 * 100,
+            stimulus: Some(s.into()),
+        };
+        let mut d = Dataset {
+            trials: vec![
+                trial(1, "90"),
+                trial(2, "0"),
+                trial(3, "180"),
+                trial(4, "45.5"),
+            ],
+            ..Dataset::default()
+        };
+        assert_eq!(d.stimulus_names(), ["0", "45.5", "90", "180"]);
+        d.trials[1].stimulus = Some("left".into());
+        assert_eq!(d.stimulus_names(), ["90", "left", "180", "45.5"]);
+        d.stimulus_order = vec!["left".into(), "45.5".into()];
+        assert_eq!(d.stimulus_names(), ["left", "45.5", "90", "180"]);
+    }
+
+    #[test]
     fn outside_window_count() {
         let d = Dataset {
             tick_rate_hz: 1000.0,
@@ -233,6 +277,7 @@ mod tests {
             spikes: vec![(5, 1), (10, 1), (24, 1), (25, 1), (40, 1)],
             units: vec![1],
             declared_from: Default::default(),
+            stimulus_order: Vec::new(),
         };
         // Windows [10, 20) ∪ [15, 25): 5, 25 and 40 fall outside.
         assert_eq!(d.spikes_outside_windows(10), 3);

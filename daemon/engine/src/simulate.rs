@@ -277,5 +277,6 @@ pub fn simulate(model: &Model, opts: &SimOptions) -> Dataset {
         spikes,
         units,
         declared_from: Default::default(),
+        stimulus_order: Vec::new(),
     }
 }
