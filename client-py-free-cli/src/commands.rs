@@ -185,7 +185,7 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
         }
     }
     let model = Model::new(spec.clone())?;
-    save_model(out, &spec, &source.describe())?;
+    save_model(out, &spec, &source.canonical())?;
     eprintln!("model written to {}", out.display());
     Ok(model)
 }
@@ -403,6 +403,15 @@ pub fn decode_cmd(
     write_decisions(&dec_path, model.stimuli(), &rows)
         .with_context(|| format!("writing {}", dec_path.display()))?;
     let sc = score(model.stimuli(), &rows);
+    if rows.is_empty() {
+        bail!(
+            "{}: no trial to decode (the data hold {} trials; is this the right file?)",
+            source.describe(),
+            data.trials.len()
+        );
+    }
+    // Decoding the very trials the model was fitted on flatters it: say so.
+    let in_sample = auspexd::model_file::training_data(model_path) == source.canonical();
     if counters.unknown_unit_spikes > 0 {
         eprintln!(
             "note: {} spikes came from units the model does not have and were not used",
@@ -410,15 +419,19 @@ pub fn decode_cmd(
         );
     }
     println!(
-        "{}: {} trials decided, accuracy {:.1}% of {} labelled ({} correct), mean decision at {:.1} ms, {:.0}% before the window end",
+        "{}: {} trials decided, {}accuracy {:.1}% of {} labelled ({} correct), mean decision at {:.1} ms, {:.0}% before the window end",
         args.decoder.name(),
         rows.len(),
+        if in_sample { "IN-SAMPLE " } else { "" },
         100.0 * sc.accuracy(),
         sc.labelled,
         sc.correct,
         (sc.mean_bin + 1.0) * model.bin_width_s() * 1000.0,
         100.0 * sc.early_share
     );
+    if in_sample {
+        eprintln!("note: in sample — the model was fitted on these very trials, so this accuracy flatters it; `auspex validate` gives held-out figures");
+    }
     eprintln!("wrote {} and {}", post_path.display(), dec_path.display());
     Ok(sc.accuracy())
 }

@@ -385,6 +385,21 @@ impl Source {
             Source::Session(p) => format!("session {}", p.display()),
         }
     }
+
+    /// [`Source::describe`] with absolute paths: what a model file records as its training data,
+    /// so decoding the same files later can say that its figures are in sample.
+    pub fn canonical(&self) -> String {
+        let abs = |p: &Path| {
+            std::fs::canonicalize(p)
+                .unwrap_or_else(|_| p.to_path_buf())
+                .display()
+                .to_string()
+        };
+        match self {
+            Source::Tables { spikes, trials, .. } => format!("{} + {}", abs(spikes), abs(trials)),
+            Source::Session(p) => format!("session {}", abs(p)),
+        }
+    }
 }
 
 /// The read report of a dataset for a window length.

@@ -10,21 +10,24 @@ use std::path::Path;
 /// Why a model file could not be used.
 #[derive(Debug, thiserror::Error)]
 pub enum ModelLoadError {
-    /// Reading or writing failed.
-    #[error("{path}: {source}")]
+    /// Reading or writing failed. (The causes are part of the message, not separate sources,
+    /// so an error chain names them once.)
+    #[error("{path}: {cause}")]
     Io {
         /// The file.
         path: String,
         /// The cause.
-        source: std::io::Error,
+        cause: std::io::Error,
     },
     /// Bytes are not a model file.
-    #[error("{path}: {source}")]
+    #[error("{path}: {cause}{hint}")]
     Format {
         /// The file.
         path: String,
         /// The cause.
-        source: auspex_proto::ModelFileError,
+        cause: auspex_proto::ModelFileError,
+        /// What the file looks like instead, if recognisable.
+        hint: &'static str,
     },
     /// The contents do not make a valid model.
     #[error("{path}: {msg}")]
@@ -251,8 +254,17 @@ pub fn save_model(
     let bytes = auspex_proto::encode_model_file(&spec_to_proto(spec, training_data));
     std::fs::write(path, bytes).map_err(|e| ModelLoadError::Io {
         path: path.display().to_string(),
-        source: e,
+        cause: e,
     })
+}
+
+/// What a model file says it was fitted on (empty when it cannot be read).
+pub fn training_data(path: &Path) -> String {
+    std::fs::read(path)
+        .ok()
+        .and_then(|b| auspex_proto::decode_model_file(&b).ok())
+        .map(|m| m.training_data)
+        .unwrap_or_default()
 }
 
 /// Reads and validates a model file, returning the spec and the built model.
@@ -260,11 +272,16 @@ pub fn load_model(path: &Path) -> Result<(ModelSpec, auspex_engine::Model), Mode
     let p = path.display().to_string();
     let bytes = std::fs::read(path).map_err(|e| ModelLoadError::Io {
         path: p.clone(),
-        source: e,
+        cause: e,
     })?;
     let m = auspex_proto::decode_model_file(&bytes).map_err(|e| ModelLoadError::Format {
         path: p.clone(),
-        source: e,
+        hint: match bytes.iter().find(|b| !b.is_ascii_whitespace()) {
+            Some(b'{') => " — this looks like JSON: `auspex export` writes JSON for reading; give the .apxm file `auspex fit` wrote",
+            Some(b'u') | Some(b't') if bytes.contains(&b',') => " — this looks like a CSV table; give the .apxm file `auspex fit` wrote",
+            _ => "",
+        },
+        cause: e,
     })?;
     let spec = spec_from_proto(&m).map_err(|msg| ModelLoadError::Invalid {
         path: p.clone(),

@@ -48,12 +48,19 @@ pub enum ModelFileError {
     /// Missing magic prefix.
     #[error("not an Auspex model file (missing the APXMODEL prefix)")]
     NotAModel,
-    /// Protobuf decoding failed.
-    #[error("model file is damaged: {0}")]
-    Decode(#[from] prost::DecodeError),
+    /// Protobuf decoding failed (the cause is part of the message, not a separate source, so
+    /// error chains print it once).
+    #[error("model file is damaged ({0}); was it copied completely?")]
+    Decode(prost::DecodeError),
     /// Unknown version.
     #[error("model file format version {0} is not supported by this build (supports {MODEL_FORMAT_VERSION})")]
     Version(u32),
+}
+
+impl From<prost::DecodeError> for ModelFileError {
+    fn from(e: prost::DecodeError) -> Self {
+        ModelFileError::Decode(e)
+    }
 }
 
 /// Encodes a model file (magic + message).
