@@ -135,7 +135,7 @@ enum Cmd {
         /// Bin width, ms
         #[arg(long, default_value_t = 1.0)]
         bin_ms: f64,
-        /// Count families to choose among: comma-separated (poisson, nb, com, empirical) or all
+        /// Count families to choose among: comma-separated poisson, negative_binomial (or nb), com_poisson (or com), empirical; or all
         #[arg(long, default_value = "all")]
         families: String,
         /// Prior from the stimuli's training frequencies instead of equal

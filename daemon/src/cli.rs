@@ -26,7 +26,7 @@ pub struct DaemonArgs {
     /// Bin width the learner fits, ms (without --model) [default: 1]
     #[arg(long)]
     pub learn_bin_ms: Option<f64>,
-    /// Count families the learner chooses among: comma-separated (poisson, nb, com, empirical) or all [default: all]
+    /// Count families the learner chooses among: comma-separated poisson, negative_binomial (or nb), com_poisson (or com), empirical; or all [default: all]
     #[arg(long)]
     pub learn_families: Option<String>,
     /// Labelled trials a stimulus needs before it enters the learned model, and a unit of every stimulus before it contributes [default: 3]
@@ -159,8 +159,11 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
             .with_writer(std::io::stderr)
             .init();
     } else {
+        // Colour only on a terminal: piped into a file or `less`, the log stays plain text.
+        use std::io::IsTerminal;
         tracing_subscriber::fmt()
             .with_env_filter(filter)
+            .with_ansi(std::io::stderr().is_terminal())
             .with_writer(std::io::stderr)
             .init();
     }

@@ -870,7 +870,11 @@ impl EngineThread {
             });
             return;
         }
-        tracing::info!(units = ?ua.units, from_tick = ua.from_tick, "units added to the session");
+        tracing::info!(
+            units = %ua.units.iter().map(|u| u.to_string()).collect::<Vec<_>>().join(","),
+            from_tick = ua.from_tick,
+            "units added to the session"
+        );
         if let Some(l) = &self.learn {
             let _ = l.tx.send(LearnMsg::Units {
                 units: ua.units.clone(),

@@ -79,7 +79,10 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
                 stimuli = model.n_stimuli(),
                 prepare_s = t0.elapsed().as_secs_f64(),
                 table_mb = model.table_bytes() >> 20,
-                looked_up_counts = ?model.table_lookup_counts(),
+                looked_up_counts = %model
+                    .table_lookup_counts()
+                    .map(|n| format!("up to {n}"))
+                    .unwrap_or_else(|| "none (no table-family cells)".into()),
                 "model prepared"
             );
             Some(Arc::new(model))
@@ -261,8 +264,11 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         control: control_ep.to_string(),
         recording: recorder.as_ref().map(|r| r.path.clone()),
     };
-    tracing::info!(ingest = %endpoints.ingest, task_ingest = ?endpoints.task_ingest, publish = %endpoints.publish, control = %endpoints.control,
-        recording = ?endpoints.recording, model = %model_label, learning = cfg.learn.is_some(), "auspexd listening");
+    tracing::info!(ingest = %endpoints.ingest,
+        task_ingest = %endpoints.task_ingest.as_deref().unwrap_or("off"),
+        publish = %endpoints.publish, control = %endpoints.control,
+        recording = %endpoints.recording.as_ref().map(|p| p.display().to_string()).unwrap_or_else(|| "off".into()),
+        model = %model_label, learning = cfg.learn.is_some(), "auspexd listening");
     Ok(Running {
         endpoints,
         stop_tx,
