@@ -657,8 +657,13 @@ fn main() {
                     "ended_sessions": s.ended_sessions.iter().map(|e| serde_json::json!({"session": e.session_name, "reason": e.reason, "trials_completed": e.trials_completed, "decisions": e.decisions, "decisions_labelled": e.decisions_labelled, "decisions_correct": e.decisions_correct, "trials_learned": e.trials_learned, "recording": e.recording_path})).collect::<Vec<_>>(),
                     "senders": s.senders.iter().map(|x| serde_json::json!({"sender": x.sender, "last_seq": x.last_seq, "gaps": x.gaps, "ended": x.ended})).collect::<Vec<_>>()}));
             } else {
-                println!("auspexd {} · model {} ({} units × {} stimuli: {})", s.version, s.model_path, s.units.len(), s.stimuli.len(), s.stimuli.join(", "));
-                println!("decoder {} · threshold {} after {} ms · prior [{}]", s.decoder, s.threshold, s.min_time_s * 1000.0, s.prior.iter().map(|p| format!("{p:.3}")).collect::<Vec<_>>().join(", "));
+                if s.model_path.is_empty() {
+                    println!("auspexd {} · no model yet{}", s.version, if s.learning.is_some() { " (learning: one comes once enough trials are labelled)" } else { "" });
+                } else {
+                    println!("auspexd {} · model {} ({} units × {} stimuli: {})", s.version, s.model_path, s.units.len(), s.stimuli.len(), s.stimuli.join(", "));
+                }
+                println!("decoder {} · threshold {} after {} ms · prior {}", s.decoder, s.threshold, s.min_time_s * 1000.0,
+                    if s.prior.is_empty() { "(the model's)".to_string() } else { format!("[{}]", s.prior.iter().map(|p| format!("{p:.3}")).collect::<Vec<_>>().join(", ")) });
                 for l in auspex::monitor::promise_lines(&s) {
                     println!("{l}");
                 }
