@@ -70,6 +70,11 @@ pub fn simulate_cmd(
     if let Some(s) = seed {
         opts.seed = s;
     }
+    opts.check(
+        model.bin_width_s() * model.n_bins() as f64,
+        model.n_stimuli(),
+    )
+    .map_err(|e| anyhow::anyhow!("{e}"))?;
     let data = simulate(&model, &opts);
     std::fs::create_dir_all(out_dir)
         .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;

@@ -61,6 +61,9 @@ pub struct UnitWindows {
     pub times: Vec<Vec<Vec<f64>>>,
 }
 
+/// Most spikes in one batch that crosses a gap between trial windows.
+pub const GAP_BATCH_SPIKES: usize = 65_536;
+
 /// One input to the engine, in the order a live session would deliver it.
 #[derive(Clone, Debug, PartialEq)]
 pub enum Event {
@@ -125,7 +128,8 @@ impl Dataset {
     }
 
     /// The session as an acquisition system would deliver it: batches of `batch_ticks` ticks
-    /// (e.g. 1 ms), each trial opened in the batch that contains its onset, before that batch.
+    /// (e.g. 1 ms) while a trial window is open and one batch across each gap between windows,
+    /// each trial opened in the batch that contains its onset, before that batch.
     pub fn events(&self, batch_ticks: i64, window_ticks: i64) -> Vec<Event> {
         let batch_ticks = batch_ticks.max(1);
         let mut out = Vec::new();
@@ -139,8 +143,24 @@ impl Dataset {
         let mut trials = self.trials.iter().peekable();
         let mut si = 0;
         let mut wm = start - 1;
+        // The end (exclusive) of the latest window opened so far.
+        let mut open_until = i64::MIN;
         while wm < end {
-            let next = wm + batch_ticks;
+            let mut next = wm.saturating_add(batch_ticks);
+            // Between windows nothing is decoded: one batch up to just before the next onset
+            // (at most GAP_BATCH_SPIKES spikes), so a long pause or an onset far ahead costs one
+            // message instead of one per bin. Frames do not depend on how batches are cut.
+            if wm >= open_until.saturating_sub(1) {
+                let target = trials.peek().map(|t| t.onset - 1).unwrap_or(end).min(end);
+                if target > next {
+                    let cap = self
+                        .spikes
+                        .get(si + GAP_BATCH_SPIKES)
+                        .map(|s| s.0 - 1)
+                        .unwrap_or(i64::MAX);
+                    next = target.min(cap.max(next));
+                }
+            }
             while let Some(t) = trials.peek() {
                 if t.onset <= next {
                     out.push(Event::Open {
@@ -148,6 +168,7 @@ impl Dataset {
                         onset: t.onset,
                         stimulus: t.stimulus.clone(),
                     });
+                    open_until = open_until.max(t.onset.saturating_add(window_ticks));
                     trials.next();
                 } else {
                     break;

@@ -85,9 +85,94 @@ fn gauss_bins(n_bins: usize, bin_ms: f64, centre_ms: f64, width_ms: f64) -> Vec<
         .collect()
 }
 
+/// Most bins a scenario's window may hold.
+pub const MAX_SCENARIO_BINS: f64 = 100_000.0;
+/// Most trials per stimulus a scenario may ask for.
+pub const MAX_SCENARIO_TRIALS: u32 = 100_000;
+
+/// Checks a value is finite and within `[lo, hi]`, naming the field and the range.
+fn within(field: &str, x: f64, lo: f64, hi: f64) -> Result<(), ScenarioError> {
+    if x.is_finite() && x >= lo && x <= hi {
+        Ok(())
+    } else {
+        Err(ScenarioError::Invalid(format!(
+            "{field} = {x} is out of range: it must be a number from {lo} to {hi}"
+        )))
+    }
+}
+
+impl SimOptions {
+    /// Checks every setting before anything is drawn or allocated: the clock, the gaps, the
+    /// background rate, the number of trials, and that the whole session's ticks fit in i64.
+    pub fn check(&self, window_s: f64, n_stimuli: usize) -> Result<(), ScenarioError> {
+        within("tick_rate_hz", self.tick_rate_hz, 1.0, 1e10)?;
+        within("spontaneous_hz", self.spontaneous_hz, 0.0, 1000.0)?;
+        within("gap (minimum, s)", self.gap_s.0, 0.0, 1e4)?;
+        within("gap (maximum, s)", self.gap_s.1, self.gap_s.0, 1e4)?;
+        if self.trials_per_stimulus > MAX_SCENARIO_TRIALS {
+            return Err(ScenarioError::Invalid(format!(
+                "trials_per_stimulus = {} is more than {MAX_SCENARIO_TRIALS}",
+                self.trials_per_stimulus
+            )));
+        }
+        let session_s =
+            self.trials_per_stimulus as f64 * n_stimuli as f64 * (window_s + self.gap_s.1);
+        if session_s * self.tick_rate_hz > 4e18 {
+            return Err(ScenarioError::Invalid(format!(
+                "a session of {session_s:.0} s at {} ticks/s does not fit the 64-bit tick range; lower the tick rate or the trials",
+                self.tick_rate_hz
+            )));
+        }
+        Ok(())
+    }
+}
+
 impl Scenario {
+    /// Checks every field's range before anything is built (limits in README "Simulating").
+    pub fn check(&self) -> Result<(), ScenarioError> {
+        let inv = |m: String| Err(ScenarioError::Invalid(m));
+        if self.stimuli.len() < 2 || self.units.is_empty() {
+            return inv("needs at least two stimuli and one unit".into());
+        }
+        within("bin_width_ms", self.bin_width_ms, 0.001, 1000.0)?;
+        within(
+            "window_ms",
+            self.window_ms,
+            self.bin_width_ms,
+            self.bin_width_ms * MAX_SCENARIO_BINS,
+        )?;
+        within("tick_rate_hz", self.tick_rate_hz, 1.0, 1e10)?;
+        if self.bin_width_ms / 1000.0 * self.tick_rate_hz < 1.0 - 1e-9 {
+            return inv(format!(
+                "bin_width_ms = {} is shorter than one tick at {} ticks/s",
+                self.bin_width_ms, self.tick_rate_hz
+            ));
+        }
+        for (name, dir) in &self.stimuli {
+            within(&format!("direction of stimulus {name:?}"), *dir, -1e6, 1e6)?;
+        }
+        for u in &self.units {
+            let f = |field: &str| format!("unit {}: {field}", u.id);
+            within(&f("preferred_deg"), u.preferred_deg, -1e6, 1e6)?;
+            within(&f("baseline_count"), u.baseline_count, 1e-6, 1e4)?;
+            within(&f("peak_count"), u.peak_count, 1e-6, 1e4)?;
+            within(&f("fano"), u.fano, 1e-3, 100.0)?;
+            within(&f("early_ms"), u.early_ms, 0.0, self.window_ms)?;
+            within(&f("late_ms"), u.late_ms, 0.0, self.window_ms)?;
+            within(
+                &f("width_ms"),
+                u.width_ms,
+                self.bin_width_ms / 10.0,
+                self.window_ms,
+            )?;
+        }
+        self.sim_options()
+            .check(self.window_ms / 1000.0, self.stimuli.len())
+    }
+
     /// The true model this scenario describes.
     pub fn true_model(&self) -> Result<ModelSpec, ScenarioError> {
+        self.check()?;
         let inv = |m: String| Err(ScenarioError::Invalid(m));
         if self.stimuli.len() < 2 || self.units.is_empty() {
             return inv("needs at least two stimuli and one unit".into());
@@ -278,5 +363,78 @@ pub fn simulate(model: &Model, opts: &SimOptions) -> Dataset {
         units,
         declared_from: Default::default(),
         stimulus_order: Vec::new(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn base() -> Scenario {
+        Scenario {
+            description: "check".into(),
+            stimuli: vec![("a".into(), 0.0), ("b".into(), 90.0)],
+            bin_width_ms: 1.0,
+            window_ms: 50.0,
+            trials_per_stimulus: 3,
+            gap_ms: (10.0, 20.0),
+            spontaneous_hz: 2.0,
+            tick_rate_hz: 1e6,
+            seed: 1,
+            units: vec![ScenarioUnit {
+                id: 1,
+                preferred_deg: 0.0,
+                baseline_count: 1.0,
+                peak_count: 3.0,
+                count_family: "poisson".into(),
+                fano: 1.0,
+                early_ms: 10.0,
+                late_ms: 30.0,
+                width_ms: 5.0,
+            }],
+        }
+    }
+
+    /// Each value that used to panic, loop for ever or ask for gigabytes is refused before
+    /// anything is built, naming its field.
+    #[test]
+    fn out_of_range_scenarios_are_refused_naming_the_field() {
+        assert!(base().true_model().is_ok());
+        let cases: Vec<(&str, Box<dyn Fn(&mut Scenario)>)> = vec![
+            ("window_ms", Box::new(|s| s.window_ms = f64::INFINITY)),
+            ("window_ms", Box::new(|s| s.window_ms = 1e6)),
+            ("bin_width_ms", Box::new(|s| s.bin_width_ms = 1e-6)),
+            ("spontaneous_hz", Box::new(|s| s.spontaneous_hz = f64::NAN)),
+            (
+                "spontaneous_hz",
+                Box::new(|s| s.spontaneous_hz = f64::INFINITY),
+            ),
+            ("tick_rate_hz", Box::new(|s| s.tick_rate_hz = -5.0)),
+            ("tick_rate_hz", Box::new(|s| s.tick_rate_hz = 1e300)),
+            (
+                "64-bit tick range",
+                Box::new(|s| {
+                    s.tick_rate_hz = 1e10;
+                    s.gap_ms = (1e6, 1e7);
+                    s.trials_per_stimulus = 100_000;
+                }),
+            ),
+            ("gap", Box::new(|s| s.gap_ms = (20.0, 10.0))),
+            (
+                "trials_per_stimulus",
+                Box::new(|s| s.trials_per_stimulus = u32::MAX),
+            ),
+            ("unit 1: width_ms", Box::new(|s| s.units[0].width_ms = 0.0)),
+            ("unit 1: fano", Box::new(|s| s.units[0].fano = f64::NAN)),
+            ("unit 1: late_ms", Box::new(|s| s.units[0].late_ms = 1e9)),
+        ];
+        for (field, set) in cases {
+            let mut s = base();
+            set(&mut s);
+            match s.true_model() {
+                Ok(_) => panic!("{field}: accepted"),
+                Err(e) => assert!(e.to_string().contains(field), "{field}: {e}"),
+            }
+        }
     }
 }

@@ -222,3 +222,107 @@ fn an_onset_at_the_end_of_the_tick_range_is_refused_not_wrapped() {
     e.advance(i64::MAX, &mut NullSink).unwrap();
     assert_eq!(e.counters().trials_completed, 1);
 }
+
+/// A session with long pauses and an onset far in the future (1e7 s at 1 MHz): the event stream
+/// crosses each gap in one batch (a handful of events, not one per bin — the old cut asked for
+/// gigabytes), and the frames equal those of 1-bin batches throughout.
+#[test]
+fn gaps_between_windows_cost_one_batch_and_change_no_frame() {
+    use auspex_engine::data::{Dataset, Event, Trial};
+    use auspex_engine::engine::run_dataset;
+    let nb = 20usize;
+    let q = vec![1.0 / nb as f64; nb];
+    let early: Vec<f64> = (0..nb)
+        .map(|b| if b < 5 { 0.15 } else { 0.25 / 15.0 })
+        .collect();
+    let cell = |mean: f64, t: &Vec<f64>| CellSpec {
+        count: CountParams::Poisson { mean },
+        timing: t.clone(),
+        summary: CellSummary::default(),
+    };
+    let m = Arc::new(
+        Model::new(ModelSpec {
+            bin_width_s: 0.001,
+            n_bins: nb as u32,
+            stimuli: vec!["a".into(), "b".into()],
+            units: vec![1, 2],
+            prior: vec![1.0, 1.0],
+            cells: vec![
+                cell(3.0, &early),
+                cell(3.0, &q),
+                cell(1.0, &q),
+                cell(4.0, &early),
+            ],
+            calibration: Default::default(),
+        })
+        .unwrap(),
+    );
+    // Ticks of 1 µs; bins of 1000 ticks.
+    let far = 10_000_000_000_000i64; // 1e7 s
+    let trial = |id: u64, onset: i64, s: &str| Trial {
+        id,
+        onset,
+        stimulus: Some(s.into()),
+    };
+    let mut spikes = vec![
+        (100, 1),
+        (2_000, 2),
+        (3_500, 1),
+        (25_000, 2),
+        (31_500, 1),
+        (33_000, 2),
+        (900_000, 1),
+    ];
+    spikes.extend([(far + 1_500, 2), (far + 2_500, 1), (far + 4_000, 2)]);
+    let data = Dataset {
+        tick_rate_hz: 1e6,
+        trials: vec![trial(1, 0, "a"), trial(2, 30_000, "b"), trial(3, far, "b")],
+        spikes,
+        units: vec![1, 2],
+        ..Dataset::default()
+    };
+    let window = 1000 * nb as i64;
+    let events = data.events(1000, window);
+    assert!(events.len() < 200, "{} events", events.len());
+    let mut gapped = Frames::default();
+    run_dataset(m.clone(), &data, EngineConfig::new(1e6), &mut gapped).unwrap();
+    // The same session in 1-bin batches only around the windows, driven by hand.
+    let mut e = Engine::new(m.clone(), EngineConfig::new(1e6)).unwrap();
+    let mut by_bin = Frames::default();
+    let mut si = 0;
+    for t in &data.trials {
+        let mut wm = t.onset - 1;
+        // Spikes before this onset are not in any window: hand them over with the watermark.
+        while si < data.spikes.len() && data.spikes[si].0 <= wm {
+            e.spike(data.spikes[si].1, data.spikes[si].0).unwrap();
+            si += 1;
+        }
+        if wm > e.watermark() {
+            e.advance(wm, &mut by_bin).unwrap();
+        }
+        e.open_trial(
+            t.id,
+            t.onset,
+            Some(if t.stimulus.as_deref() == Some("a") {
+                0
+            } else {
+                1
+            }),
+            &mut by_bin,
+        )
+        .unwrap();
+        while wm < t.onset + window {
+            wm += 1000;
+            while si < data.spikes.len() && data.spikes[si].0 <= wm {
+                e.spike(data.spikes[si].1, data.spikes[si].0).unwrap();
+                si += 1;
+            }
+            e.advance(wm, &mut by_bin).unwrap();
+        }
+    }
+    assert_eq!(gapped.0.len(), 3 * nb);
+    assert_eq!(gapped.0, by_bin.0);
+    assert!(events
+        .iter()
+        .any(|ev| matches!(ev, Event::Open { trial: 3, .. })));
+}
