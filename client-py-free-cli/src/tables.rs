@@ -410,7 +410,7 @@ pub fn report_for(data: &Dataset, window_s: f64) -> ReadReport {
         let a = data.spikes.partition_point(|s| s.0 < t.onset);
         let b = data
             .spikes
-            .partition_point(|s| s.0 < t.onset + window_ticks);
+            .partition_point(|s| s.0 < t.onset.saturating_add(window_ticks));
         for s in &data.spikes[a..b] {
             in_window.insert(s.1);
         }

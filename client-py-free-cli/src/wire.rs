@@ -115,6 +115,11 @@ pub fn read_recording(path: &std::path::Path) -> anyhow::Result<RecordedSession>
         match v1::Inbound::decode(r.message.as_slice()) {
             Ok(m) => {
                 match &m.body {
+                    // A clock the daemon refuses (not finite, below 1 or above 10¹² ticks/s)
+                    // is skipped here too, as it was live.
+                    Some(Body::SessionStart(s))
+                        if !(s.tick_rate_hz.is_finite()
+                            && (1.0..=1e12).contains(&s.tick_rate_hz)) => {}
                     Some(Body::SessionStart(s)) => {
                         data.tick_rate_hz = s.tick_rate_hz;
                         units.extend(s.units.iter().copied());
@@ -166,7 +171,7 @@ pub fn read_recording(path: &std::path::Path) -> anyhow::Result<RecordedSession>
     }
     if data.tick_rate_hz <= 0.0 {
         anyhow::bail!(
-            "{}: the recording has no SessionStart, so its clock rate is unknown",
+            "{}: the recording has no valid SessionStart (a clock of 1 to 10¹² ticks/s), so its clock rate is unknown",
             path.display()
         );
     }

@@ -120,10 +120,14 @@ impl Dataset {
         let t = self
             .trials
             .iter()
-            .map(|t| t.onset + window_ticks)
+            .map(|t| t.onset.saturating_add(window_ticks))
             .max()
             .unwrap_or(0);
-        let s = self.spikes.last().map(|x| x.0 + 1).unwrap_or(0);
+        let s = self
+            .spikes
+            .last()
+            .map(|x| x.0.saturating_add(1))
+            .unwrap_or(0);
         t.max(s)
     }
 
@@ -142,7 +146,7 @@ impl Dataset {
         let end = self.end_tick(window_ticks);
         let mut trials = self.trials.iter().peekable();
         let mut si = 0;
-        let mut wm = start - 1;
+        let mut wm = start.saturating_sub(1);
         // The end (exclusive) of the latest window opened so far.
         let mut open_until = i64::MIN;
         while wm < end {
@@ -151,7 +155,11 @@ impl Dataset {
             // (at most GAP_BATCH_SPIKES spikes), so a long pause or an onset far ahead costs one
             // message instead of one per bin. Frames do not depend on how batches are cut.
             if wm >= open_until.saturating_sub(1) {
-                let target = trials.peek().map(|t| t.onset - 1).unwrap_or(end).min(end);
+                let target = trials
+                    .peek()
+                    .map(|t| t.onset.saturating_sub(1))
+                    .unwrap_or(end)
+                    .min(end);
                 if target > next {
                     let cap = self
                         .spikes
@@ -198,7 +206,9 @@ impl Dataset {
         let window = bin_ticks * n_bins as i64;
         for (i, t) in self.trials.iter().enumerate() {
             let a = self.spikes.partition_point(|s| s.0 < t.onset);
-            let b = self.spikes.partition_point(|s| s.0 < t.onset + window);
+            let b = self
+                .spikes
+                .partition_point(|s| s.0 < t.onset.saturating_add(window));
             for &(tick, unit) in &self.spikes[a..b] {
                 if let Some(&u) = index.get(&unit) {
                     counts[u][i] += 1;
@@ -231,7 +241,7 @@ impl Dataset {
         onsets.sort_unstable();
         for &(tick, _) in &self.spikes {
             while ti < onsets.len() && onsets[ti] <= tick {
-                covered_until = covered_until.max(onsets[ti] + window_ticks);
+                covered_until = covered_until.max(onsets[ti].saturating_add(window_ticks));
                 ti += 1;
             }
             if tick >= covered_until {

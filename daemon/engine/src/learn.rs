@@ -459,8 +459,11 @@ impl Learner {
                 onset: t.onset,
                 stimulus: Some(t.stimulus.clone()),
             });
-            d.spikes
-                .extend(t.spikes.iter().map(|&(dt, u)| (t.onset + dt, u)));
+            d.spikes.extend(
+                t.spikes
+                    .iter()
+                    .map(|&(dt, u)| (t.onset.saturating_add(dt), u)),
+            );
         }
         d.trials.sort_by_key(|t| (t.onset, t.id));
         d.spikes.sort_unstable();
