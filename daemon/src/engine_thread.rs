@@ -723,6 +723,15 @@ impl EngineThread {
                 return;
             }
         };
+        // Bytes that decode as neither a sender nor a body are garbage, not a sender named ""
+        // (a named sender's unknown message kind still advances its numbering, below).
+        if msg.body.is_none() && msg.sender.is_empty() {
+            self.counters.malformed += 1;
+            self.warn("malformed", || {
+                "message without a body (unknown kind?)".into()
+            });
+            return;
+        }
         let restart = matches!(msg.body, Some(inbound::Body::SessionStart(_)));
         let s = self.senders.entry(msg.sender.clone()).or_default();
         s.messages += 1;
@@ -1274,9 +1283,22 @@ impl EngineThread {
                         "decision policy changed; applies to trials that open from now on"
                     );
                 }
-                with_status(self, r)
+                let mut reply = with_status(self, r);
+                // A minimum time past the window end leaves only window-end decisions: say so.
+                if let (true, Some(m)) = (reply.ok, &self.model) {
+                    let window_s = m.n_bins() as f64 * m.bin_width_s();
+                    if c.policy.min_time_s > window_s + 1e-9 {
+                        reply.note = format!(
+                            "policy set, but the minimum time {} ms is past the {} ms window: every decision will come at the window end",
+                            c.policy.min_time_s * 1000.0,
+                            window_s * 1000.0
+                        );
+                    }
+                }
+                reply
             }
             B::SetPrior(p) => {
+                let sum: f64 = p.prior.iter().sum();
                 let mut c = self.config.clone();
                 c.prior = if p.prior.is_empty() {
                     None
@@ -1284,7 +1306,14 @@ impl EngineThread {
                     Some(p.prior)
                 };
                 let r = self.apply_config(c);
-                with_status(self, r)
+                let mut reply = with_status(self, r);
+                // Entries that do not sum to 1 are used as weights: say so, never silently.
+                if reply.ok && sum > 0.0 && (sum - 1.0).abs() > 1e-6 {
+                    reply.note = format!(
+                        "prior set: its entries summed to {sum} and were divided by that sum"
+                    );
+                }
+                reply
             }
             B::SetDecoder(d) => match auspex_engine::Decoder::parse(&d.decoder) {
                 Some(dec) => {

@@ -180,6 +180,16 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         }
         None => None,
     };
+    if let Some(m) = &model {
+        let window_s = m.n_bins() as f64 * m.bin_width_s();
+        if cfg.target_accuracy.is_none() && cfg.policy.min_time_s > window_s + 1e-9 {
+            tracing::warn!(
+                min_time_ms = cfg.policy.min_time_s * 1000.0,
+                window_ms = window_s * 1000.0,
+                "the minimum decision time is past the window end: every decision will come at the window end"
+            );
+        }
+    }
     let mut ec = EngineConfig::new(cfg.tick_rate_hz.unwrap_or(1e6));
     ec.decoder = cfg.decoder;
     ec.policy = cfg.policy;
