@@ -599,7 +599,7 @@ async fn ladder() -> anyhow::Result<Vec<EnginePoint>> {
             break;
         }
     }
-    let best = points.iter().filter(|p| p.headroom >= 10.0).last();
+    let best = points.iter().rfind(|p| p.headroom >= 10.0);
     match best {
         Some(b) => println!(
             "→ this machine decodes {} units × {} stimuli in real time with ≥ 10× headroom ({:.1} µs per 1 ms bin)",

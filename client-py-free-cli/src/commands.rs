@@ -599,13 +599,7 @@ pub fn promise_table(c: &Calibration) -> String {
         );
         return s;
     }
-    s.push_str(
-        &calibration_summary(c)
-            .lines()
-            .next()
-            .unwrap_or("")
-            .to_string(),
-    );
+    s.push_str(calibration_summary(c).lines().next().unwrap_or(""));
     s.push('\n');
     let _ = writeln!(
         s,

@@ -98,8 +98,8 @@ pub fn summary_table(spec: &ModelSpec) -> String {
     let mut s = String::new();
     let _ = writeln!(
         s,
-        "{:>6}  {:<12} {:<18} {:>7} {:>6} {:>9}  {}",
-        "unit", "stimulus", "count family", "mean", "Fano", "bw (ms)", "held-out ln L/trial"
+        "{:>6}  {:<12} {:<18} {:>7} {:>6} {:>9}  held-out ln L/trial",
+        "unit", "stimulus", "count family", "mean", "Fano", "bw (ms)"
     );
     let mut fam_counts = std::collections::BTreeMap::new();
     for (i, c) in spec.cells.iter().enumerate() {

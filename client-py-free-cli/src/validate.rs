@@ -1233,7 +1233,9 @@ fn shuffle_null(
         .unwrap_or(1)
         .min(opts.shuffles.max(1));
     let next = std::sync::atomic::AtomicUsize::new(0);
-    let results: Vec<anyhow::Result<Vec<(usize, (f64, Vec<f64>))>>> = std::thread::scope(|sc| {
+    // Per shuffle: its index, the population null and each unit's.
+    type ShuffleNulls = Vec<(usize, (f64, Vec<f64>))>;
+    let results: Vec<anyhow::Result<ShuffleNulls>> = std::thread::scope(|sc| {
         let hs: Vec<_> = (0..threads)
             .map(|_| {
                 sc.spawn(|| {

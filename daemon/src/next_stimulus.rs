@@ -50,7 +50,7 @@ impl StimulusChooser {
     /// The stimulus with the lowest running decoding accuracy (untried first), exploring a
     /// random one 10% of the time.
     pub fn least_certain(&mut self, n: usize) -> u32 {
-        if self.next_u64() % 10 == 0 {
+        if self.next_u64().is_multiple_of(10) {
             return (self.next_u64() % n as u64) as u32;
         }
         let acc = |i: usize| {

@@ -1210,21 +1210,21 @@ fn run_bins(
                 for u in 0..nu {
                     let k = t.k[u];
                     let cc = &t.cconst[u * ns..(u + 1) * ns];
-                    for s in 0..ns {
-                        t.ll[s] += count_term(&m, dec, u, s, b, k, cc[s]);
+                    for (s, (l, c)) in t.ll.iter_mut().zip(cc).enumerate() {
+                        *l += count_term(&m, dec, u, s, b, k, *c);
                     }
                 }
             }
             Decoder::InhomogeneousPoisson => {
                 let sums = &m.rate_sum[b * ns..(b + 1) * ns];
-                for s in 0..ns {
-                    t.ll[s] = t.pop_spike[s] + t.cc_sum[s] + sums[s];
+                for (((l, p), c), x) in t.ll.iter_mut().zip(&t.pop_spike).zip(&t.cc_sum).zip(sums) {
+                    *l = p + c + x;
                 }
             }
             Decoder::OrderStats => {
                 let sums = &m.order_stats_sum[b * ns..(b + 1) * ns];
-                for s in 0..ns {
-                    t.ll[s] = t.pop_spike[s] + t.cc_sum[s] + sums[s];
+                for (((l, p), c), x) in t.ll.iter_mut().zip(&t.pop_spike).zip(&t.cc_sum).zip(sums) {
+                    *l = p + c + x;
                 }
                 // Negative binomial cells of units that have spiked: the k-dependent part.
                 // Once most units have spiked, walk them in order so this bin's rows of `g`
@@ -1242,9 +1242,10 @@ fn run_bins(
                             *p -= k * g;
                         }
                     } else {
-                        for s in 0..ns {
-                            if let CellKernel::NegBin { .. } = m.kernels[u * ns + s] {
-                                t.ll[s] -= k * g[s];
+                        let kernels = &m.kernels[u * ns..(u + 1) * ns];
+                        for ((l, g), kernel) in t.ll.iter_mut().zip(g).zip(kernels) {
+                            if let CellKernel::NegBin { .. } = kernel {
+                                *l -= k * g;
                             }
                         }
                     }

@@ -400,7 +400,8 @@ mod tests {
     #[test]
     fn out_of_range_scenarios_are_refused_naming_the_field() {
         assert!(base().true_model().is_ok());
-        let cases: Vec<(&str, Box<dyn Fn(&mut Scenario)>)> = vec![
+        type Case = (&'static str, Box<dyn Fn(&mut Scenario)>);
+        let cases: Vec<Case> = vec![
             ("window_ms", Box::new(|s| s.window_ms = f64::INFINITY)),
             ("window_ms", Box::new(|s| s.window_ms = 1e6)),
             ("bin_width_ms", Box::new(|s| s.bin_width_ms = 1e-6)),

@@ -519,7 +519,7 @@ mod tests {
                         let mut acc = ProductAcc::new(ns);
                         p.add_unit(&m, u, b, k, &mut post, &mut acc);
                         acc.flush_into(&mut post);
-                        for s in 0..ns {
+                        for (s, got) in post.iter().enumerate() {
                             let i = u * ns + s;
                             let want = match m.kernels[i] {
                                 CellKernel::Table => {
@@ -529,9 +529,8 @@ mod tests {
                                 _ => 0.0,
                             };
                             assert!(
-                                (post[s] - want).abs() <= 1e-10 * want.abs().max(1.0),
-                                "u {u} s {s} b {b} k {k}: {} vs {want}",
-                                post[s]
+                                (got - want).abs() <= 1e-10 * want.abs().max(1.0),
+                                "u {u} s {s} b {b} k {k}: {got} vs {want}"
                             );
                         }
                     }

@@ -149,7 +149,7 @@ mod tests {
                 .wrapping_mul(6364136223846793005)
                 .wrapping_add(1442695040888963407);
             let p = ((x >> 33) % 5) as u32;
-            let d = if (x >> 20) % 3 == 0 {
+            let d = if (x >> 20).is_multiple_of(3) {
                 p
             } else {
                 ((x >> 40) % 5) as u32
