@@ -42,6 +42,9 @@ pub(crate) struct TablePrep {
     pub(crate) sum0: Vec<f64>,
     /// `1/Φ^(0)(S(b))` per [b][slot][s] for table-family cells, 0 for the others.
     inv0: Vec<f64>,
+    /// `ln Φ^(0)(S(b))` per [b][slot][s]: what the slow path subtracts (the reciprocal above
+    /// under- or overflows for huge-rate cells, whose logarithm stays finite).
+    ln0: Vec<f64>,
     /// 1 for a slot's cells of other families (their ratio is taken as 1), 0 for table cells.
     other: Vec<f64>,
     /// 1 for a slot's table cells, 0 for the others (whose ratio carries no scale).
@@ -60,6 +63,12 @@ pub(crate) struct TablePrep {
 
 /// Slot value of a unit without table-family cells.
 pub(crate) const NO_SLOT: u32 = u32::MAX;
+
+/// Most count-table terms the lookup may sum while it is built. Cells whose tables are too long
+/// for the fast (Horner) form cost a whole-table sum per entry; without this bound a 4 KB model
+/// with a couple of huge-rate COM-Poisson cells took minutes to prepare. Counts beyond the cap
+/// are evaluated per bin instead (correct, slower), so preparation stays around a second.
+pub const PREP_TERMS_MAX: usize = 50_000_000;
 
 /// Rows `[b][k − 1][slot][s]` for k = 1..=K, 0 for cells of other families: one bin's rows lie
 /// together, and within them the units at the same count, so a pass over the units in order
@@ -168,6 +177,7 @@ impl TablePrep {
         // Φ^(0)(S(b)) of every table cell: its reciprocal per [b][slot][s], its log summed.
         p.sum0 = vec![0.0; nb * ns];
         p.inv0 = vec![0.0; nb * nt * ns];
+        p.ln0 = vec![0.0; nb * nt * ns];
         let mut vals = vec![0.0; ns];
         for (sl, &u) in units.iter().enumerate() {
             for b in 0..nb {
@@ -184,6 +194,7 @@ impl TablePrep {
                     };
                     p.sum0[b * ns + s] += ln0;
                     p.inv0[(b * nt + sl) * ns + s] = (-ln0).exp();
+                    p.ln0[(b * nt + sl) * ns + s] = ln0;
                 }
             }
         }
@@ -234,6 +245,7 @@ impl TablePrep {
             return;
         }
         let inv0 = &self.inv0[(b * nt + sl) * ns..(b * nt + sl + 1) * ns];
+        let ln0 = &self.ln0[(b * nt + sl) * ns..(b * nt + sl + 1) * ns];
         let z = &m.surv[(u * m.n_bins() + b) * ns..(u * m.n_bins() + b + 1) * ns];
         let (_, rows, shortest, j) = self.w_rows[sl];
         if rows > 0 && (k as usize) < shortest {
@@ -265,7 +277,7 @@ impl TablePrep {
         }
         for (s, p) in post.iter_mut().enumerate() {
             if let CellKernel::Table = m.kernels[u * ns + s] {
-                *p += m.dists[u * ns + s].ln_gf_deriv(k, z[s]) + inv0[s].ln();
+                *p += m.dists[u * ns + s].ln_gf_deriv(k, z[s]) - ln0[s];
             }
         }
     }
@@ -285,7 +297,11 @@ impl TablePrep {
 
     /// Bytes held.
     pub(crate) fn bytes(&self) -> usize {
-        8 * (self.sum0.len() + self.inv0.len() + 2 * self.other.len() + self.w.len())
+        8 * (self.sum0.len()
+            + self.inv0.len()
+            + self.ln0.len()
+            + 2 * self.other.len()
+            + self.w.len())
             + 8 * self.lookup.values.len()
     }
 
@@ -313,7 +329,24 @@ impl TablePrep {
             .max()
             .unwrap_or(0);
         let per_count = (nt * nb * ns * 8).max(1);
-        let kk = longest.min(budget / per_count);
+        let mut kk = longest.min(budget / per_count);
+        // Bounded preparation time (see PREP_TERMS_MAX).
+        let slow_terms_per_count: usize = self
+            .units
+            .iter()
+            .enumerate()
+            .filter(|(sl, _)| self.w_rows[*sl].1 == 0)
+            .map(|(_, &u)| {
+                (0..ns)
+                    .filter(|&s| matches!(m.kernels[u * ns + s], CellKernel::Table))
+                    .map(|s| m.dists[u * ns + s].pmf().len())
+                    .sum::<usize>()
+                    * nb
+            })
+            .sum();
+        if slow_terms_per_count > 0 {
+            kk = kk.min(PREP_TERMS_MAX / slow_terms_per_count);
+        }
         let mut l = Lookup {
             k: kk,
             values: vec![0.0; kk * nt * nb * ns],
@@ -323,7 +356,7 @@ impl TablePrep {
             let (_, rows, shortest, j) = self.w_rows[sl];
             for b in 0..nb {
                 let z = &m.surv[(u * nb + b) * ns..(u * nb + b + 1) * ns];
-                let inv0 = &self.inv0[(b * nt + sl) * ns..(b * nt + sl + 1) * ns];
+                let ln0 = &self.ln0[(b * nt + sl) * ns..(b * nt + sl + 1) * ns];
                 for k in 1..=kk {
                     let fast = rows > 0 && k < shortest;
                     if fast {
@@ -340,7 +373,7 @@ impl TablePrep {
                         } else {
                             m.dists[i].ln_gf_deriv(k as u32, z[s])
                         };
-                        l.values[row + s] = ln_k + inv0[s].ln();
+                        l.values[row + s] = ln_k - ln0[s];
                     }
                 }
             }
@@ -497,6 +530,52 @@ mod tests {
             calibration: Default::default(),
         })
         .unwrap()
+    }
+
+    /// Huge-rate COM-Poisson cells (tables of thousands of counts, too long for the fast form):
+    /// the lookup is capped so its build sums at most PREP_TERMS_MAX table terms, and a count
+    /// beyond the cap still decodes (per bin) to the same value as the finite sum.
+    #[test]
+    fn preparation_of_huge_rate_cells_is_bounded() {
+        let nb = 250;
+        let cell = |lambda: f64| CellSpec {
+            count: CountParams::ComPoisson { lambda, nu: 1.0 },
+            timing: vec![1.0 / nb as f64; nb],
+            summary: CellSummary::default(),
+        };
+        let m = Model::new(ModelSpec {
+            bin_width_s: 0.001,
+            n_bins: nb as u32,
+            stimuli: vec!["a".into(), "b".into()],
+            units: vec![1],
+            prior: vec![1.0, 1.0],
+            cells: vec![cell(5000.0), cell(6000.0)],
+            calibration: Default::default(),
+        })
+        .unwrap();
+        let p = TablePrep::build(&m, 1 << 30);
+        let terms: usize = (0..2).map(|s| m.dists[s].pmf().len()).sum::<usize>() * nb;
+        assert!(m.dists[1].pmf().len() > FAST_MAX_COUNT);
+        assert!(
+            p.lookup.k * terms <= PREP_TERMS_MAX,
+            "{} counts",
+            p.lookup.k
+        );
+        assert!(p.lookup.k < m.dists[1].pmf().len());
+        // Beyond the lookup the correction is computed, and equals the finite sum.
+        let (b, k) = (100, p.lookup.k as u32 + 5);
+        let mut post = vec![0.0; 2];
+        let mut acc = ProductAcc::new(2);
+        p.add_unit(&m, 0, b, k, &mut post, &mut acc);
+        acc.flush_into(&mut post);
+        for (s, got) in post.iter().enumerate() {
+            let z = m.survival(0, s, b);
+            let want = m.dists[s].ln_gf_deriv(k, z) - m.dists[s].ln_gf_deriv(0, z);
+            assert!(
+                (got - want).abs() <= 1e-8 * want.abs().max(1.0),
+                "{got} vs {want}"
+            );
+        }
     }
 
     /// The product form (Horner on W(n) = P(n)·n!, one logarithm per stimulus) against the
