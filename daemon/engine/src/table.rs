@@ -344,8 +344,8 @@ impl TablePrep {
                     * nb
             })
             .sum();
-        if slow_terms_per_count > 0 {
-            kk = kk.min(PREP_TERMS_MAX / slow_terms_per_count);
+        if let Some(cap) = PREP_TERMS_MAX.checked_div(slow_terms_per_count) {
+            kk = kk.min(cap);
         }
         let mut l = Lookup {
             k: kk,
