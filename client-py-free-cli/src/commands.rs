@@ -1,6 +1,6 @@
 //! The command implementations behind `auspex <command>`.
 
-use crate::fitting::{fit_dataset, parse_families, summary_table};
+use crate::fitting::{cell_table, fit_dataset, parse_families};
 use crate::offline::{run_dataset, score, write_decisions, CsvSink};
 use crate::tables::{write_dataset, Source};
 use anyhow::{bail, Context};
@@ -166,7 +166,7 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
         }
     }
     if !quiet {
-        print!("{}", summary_table(&spec));
+        print!("{}", cell_table(&spec));
     }
     eprintln!(
         "fitted {} units × {} stimuli ({} cells, {} bins of {} ms) in {:.1} s; {} trials without a label were not used",
@@ -583,7 +583,7 @@ pub fn inspect_cmd(model_path: &Path) -> anyhow::Result<()> {
         model.bin_width_s() * 1000.0,
         model.stimuli().join(", ")
     );
-    print!("{}", summary_table(&spec));
+    print!("{}", cell_table(&spec));
     print!("{}", promise_table(model.calibration()));
     Ok(())
 }
@@ -661,8 +661,8 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
     for dec in Decoder::ALL {
         let args = DecodeArgs {
             decoder: dec,
-            threshold: 0.9,
-            min_time_ms: 20.0,
+            threshold: auspex_engine::engine::DEFAULT_THRESHOLD,
+            min_time_ms: auspex_engine::engine::DEFAULT_MIN_TIME_MS,
             prior: None,
             ..Default::default()
         };
@@ -681,8 +681,8 @@ pub fn demo_offline(out_dir: &Path, quiet: bool) -> anyhow::Result<PathBuf> {
             folds: 5,
             shuffles: 200,
             seed: 1,
-            threshold: 0.9,
-            min_time_ms: 20.0,
+            threshold: auspex_engine::engine::DEFAULT_THRESHOLD,
+            min_time_ms: auspex_engine::engine::DEFAULT_MIN_TIME_MS,
             stimulus_order: order.clone(),
         },
         quiet,
@@ -781,7 +781,7 @@ pub fn validate_cmd(
     let json_path = out_dir.join("validation.json");
     std::fs::write(&json_path, serde_json::to_string_pretty(&v)?)
         .with_context(|| format!("{}: cannot write", json_path.display()))?;
-    print!("{}", crate::validate::summary_table(&v));
+    print!("{}", crate::validate::terminal_summary(&v));
     eprintln!(
         "validated in {:.1} s; wrote {} (open it in a browser) and {}",
         v.seconds,

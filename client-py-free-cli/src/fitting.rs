@@ -92,7 +92,7 @@ pub fn parse_families(s: &str) -> anyhow::Result<Vec<CountFamily>> {
 }
 
 /// The per-cell summary table printed after a fit.
-pub fn summary_table(spec: &ModelSpec) -> String {
+pub fn cell_table(spec: &ModelSpec) -> String {
     use std::fmt::Write;
     let ns = spec.stimuli.len();
     let mut s = String::new();

@@ -79,14 +79,14 @@ struct DecodeOpts {
     #[arg(long, default_value = "order-stats", value_parser = parse_decoder)]
     decoder: Decoder,
     /// Decide when the top posterior reaches this
-    #[arg(long, default_value_t = 0.9)]
+    #[arg(long, default_value_t = auspex_engine::engine::DEFAULT_THRESHOLD)]
     threshold: f64,
     /// Instead of --threshold: the accuracy decisions must keep; the threshold (and minimum time)
     /// come from the model's held-out record, and decoding is refused when no threshold keeps it
     #[arg(long, conflicts_with = "threshold")]
     target_accuracy: Option<f64>,
     /// ... but not before this many ms after onset
-    #[arg(long, default_value_t = 20.0)]
+    #[arg(long, default_value_t = auspex_engine::engine::DEFAULT_MIN_TIME_MS)]
     min_time_ms: f64,
     /// Prior over stimuli, comma-separated in model order (default: the model's)
     #[arg(long, value_parser = parse_prior)]
@@ -153,7 +153,7 @@ enum Cmd {
         #[arg(long, default_value_t = 5)]
         calibration_folds: usize,
         /// Minimum decision time the threshold evidence is replayed with, ms (use the daemon's)
-        #[arg(long, default_value_t = 20.0)]
+        #[arg(long, default_value_t = auspex_engine::engine::DEFAULT_MIN_TIME_MS)]
         min_time_ms: f64,
         /// List the stimuli in this order (comma-separated, every stimulus once) in the model and
         /// its tables [default: numeric when every name is a number, else as first met]
@@ -225,10 +225,10 @@ enum Cmd {
         #[arg(long, default_value_t = 1)]
         seed: u64,
         /// Threshold for the headline decision figures
-        #[arg(long, default_value_t = 0.9)]
+        #[arg(long, default_value_t = auspex_engine::engine::DEFAULT_THRESHOLD)]
         threshold: f64,
         /// Minimum time before a threshold decision, ms
-        #[arg(long, default_value_t = 20.0)]
+        #[arg(long, default_value_t = auspex_engine::engine::DEFAULT_MIN_TIME_MS)]
         min_time_ms: f64,
         /// List the stimuli in this order (comma-separated, every stimulus once) in the report
         /// [default: numeric when every name is a number, else as first met]

@@ -231,6 +231,8 @@ pub async fn live_demo(
     }
     .await;
     // Clean stop: SIGTERM, then wait.
+    // SAFETY: `pid` is the id of the daemon child this function spawned and still owns (not
+    // yet waited for, so the id cannot have been reused); kill(2) only sends a signal.
     unsafe {
         libc::kill(pid, libc::SIGTERM);
     }

@@ -51,8 +51,8 @@ impl Default for ValidateOptions {
             shuffles: 200,
             seed: 1,
             fit: FitOptions::default(),
-            threshold: 0.9,
-            min_time_ms: 20.0,
+            threshold: auspex_engine::engine::DEFAULT_THRESHOLD,
+            min_time_ms: auspex_engine::engine::DEFAULT_MIN_TIME_MS,
             progress: false,
         }
     }
@@ -1272,7 +1272,7 @@ fn shuffle_null(
 }
 
 /// The terminal summary.
-pub fn summary_table(v: &Validation) -> String {
+pub fn terminal_summary(v: &Validation) -> String {
     use std::fmt::Write;
     let mut s = String::new();
     let _ = writeln!(

@@ -272,14 +272,16 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
             "unknown decoder `{d}`: use order-stats, inhomogeneous-poisson or count-only"
         ))?,
     };
-    let threshold = f.threshold.unwrap_or(0.9);
-    if !(threshold > 0.0 && threshold <= 1.0) {
-        return Err(format!("threshold {threshold} must be in (0, 1]"));
-    }
-    let min_time_ms = f.min_time_ms.unwrap_or(20.0);
-    if !(min_time_ms.is_finite() && min_time_ms >= 0.0) {
-        return Err(format!("minimum time {min_time_ms} ms must be ≥ 0"));
-    }
+    let policy = DecisionPolicy {
+        threshold: f
+            .threshold
+            .unwrap_or(auspex_engine::engine::DEFAULT_THRESHOLD),
+        min_time_s: f
+            .min_time_ms
+            .unwrap_or(auspex_engine::engine::DEFAULT_MIN_TIME_MS)
+            / 1000.0,
+    };
+    policy.check()?;
     if let Some(t) = f.target_accuracy {
         if !(t > 0.0 && t < 1.0) {
             return Err(format!("target accuracy {t} must be in (0, 1), e.g. 0.95"));
@@ -319,10 +321,7 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
         record: f.record,
         tick_rate_hz: f.tick_rate_hz,
         decoder,
-        policy: DecisionPolicy {
-            threshold,
-            min_time_s: min_time_ms / 1000.0,
-        },
+        policy,
         target_accuracy: f.target_accuracy,
         calibrated: !f.uncalibrated.unwrap_or(false),
         max_message_bytes,

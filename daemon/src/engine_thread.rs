@@ -102,6 +102,9 @@ struct SenderInfo {
     gaps: u64,
     ended: bool,
     messages: u64,
+    /// Spoke while no session ran (e.g. a task program announcing trials before acquisition's
+    /// SessionStart): part of the session that starts next, not of the one before.
+    between_sessions: bool,
 }
 
 /// The running session's figures, for its summary.
@@ -733,8 +736,10 @@ impl EngineThread {
             return;
         }
         let restart = matches!(msg.body, Some(inbound::Body::SessionStart(_)));
+        let between = self.session.is_none();
         let s = self.senders.entry(msg.sender.clone()).or_default();
         s.messages += 1;
+        s.between_sessions |= between;
         if s.last_seq != 0 && msg.seq <= s.last_seq {
             if restart || (s.ended && msg.seq == 1) {
                 // A sender that restarts announces itself (SessionStart, or seq 1 after its
@@ -942,7 +947,13 @@ impl EngineThread {
         self.epoch += 1;
         // Sequence tracking starts afresh: the senders of the last session stay visible in
         // status until this one starts.
-        self.senders.retain(|k, _| k == sender);
+        // (A sender that spoke while no session ran belongs to this one: a task program's onset
+        // may overtake acquisition's SessionStart on its own socket.)
+        self.senders
+            .retain(|k, s| k == sender || (s.between_sessions && !s.ended));
+        for s in self.senders.values_mut() {
+            s.between_sessions = false;
+        }
         if let Some(s) = self.senders.get_mut(sender) {
             s.gaps = 0;
             s.messages = 1;
@@ -1188,21 +1199,15 @@ impl EngineThread {
     fn apply_config(&mut self, c: EngineConfig) -> Result<(), String> {
         if let Some(e) = self.engine.as_mut() {
             e.set_config(c.clone()).map_err(|e| e.to_string())?;
-        } else if let Some(m) = &self.model {
-            // Validate against a throwaway engine at a nominal clock.
-            let mut probe = c.clone();
-            probe.tick_rate_hz = 1.0 / m.bin_width_s();
-            Engine::new(m.clone(), probe).map_err(|e| e.to_string())?;
         } else {
-            let p = &c.policy;
-            if !(p.threshold > 0.0 && p.threshold <= 1.0) {
-                return Err(format!("threshold {} must be in (0, 1]", p.threshold));
-            }
-            if !(p.min_time_s.is_finite() && p.min_time_s >= 0.0) {
-                return Err(format!("minimum time {} s must be ≥ 0", p.min_time_s));
-            }
-            if c.prior.is_some() {
-                return Err("no model yet: a prior needs the model's stimuli".into());
+            // No engine yet (no session): the same checks the engine makes.
+            c.policy.check()?;
+            match (&c.prior, &self.model) {
+                (Some(p), Some(m)) => auspex_engine::engine::check_prior(p, m.n_stimuli())?,
+                (Some(_), None) => {
+                    return Err("no model yet: a prior needs the model's stimuli".into())
+                }
+                (None, _) => {}
             }
         }
         self.config = c;

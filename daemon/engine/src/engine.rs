@@ -66,13 +66,46 @@ pub struct DecisionPolicy {
     pub min_time_s: f64,
 }
 
+/// The decision threshold used unless one is given (everywhere: CLI, daemon, reports).
+pub const DEFAULT_THRESHOLD: f64 = 0.9;
+/// The minimum decision time used unless one is given, ms.
+pub const DEFAULT_MIN_TIME_MS: f64 = 20.0;
+
 impl Default for DecisionPolicy {
     fn default() -> Self {
         DecisionPolicy {
-            threshold: 0.9,
-            min_time_s: 0.02,
+            threshold: DEFAULT_THRESHOLD,
+            min_time_s: DEFAULT_MIN_TIME_MS / 1000.0,
         }
     }
+}
+
+impl DecisionPolicy {
+    /// The one check of a policy's values (the engine, the daemon's configuration and its
+    /// control requests all use it).
+    pub fn check(&self) -> Result<(), String> {
+        if !(self.threshold > 0.0 && self.threshold <= 1.0) {
+            return Err(format!("threshold {} must be in (0, 1]", self.threshold));
+        }
+        if !(self.min_time_s.is_finite() && self.min_time_s >= 0.0) {
+            return Err(format!(
+                "minimum time {} ms must be ≥ 0",
+                self.min_time_s * 1000.0
+            ));
+        }
+        Ok(())
+    }
+}
+
+/// The one check of a prior override: one finite positive weight per stimulus.
+pub fn check_prior(prior: &[f64], n_stimuli: usize) -> Result<(), String> {
+    if prior.len() != n_stimuli || prior.iter().any(|x| !(x.is_finite() && *x > 0.0)) {
+        return Err(format!(
+            "prior must have {n_stimuli} finite positive entries (got {})",
+            prior.len()
+        ));
+    }
+    Ok(())
 }
 
 /// Engine settings; validated by [`Engine::new`] and the setters.
@@ -624,18 +657,7 @@ impl Engine {
 
     fn apply_config(&mut self, c: EngineConfig) -> Result<(), EngineError> {
         let p = &c.policy;
-        if !(p.threshold > 0.0 && p.threshold <= 1.0) {
-            return Err(EngineError::Config(format!(
-                "threshold {} must be in (0, 1]",
-                p.threshold
-            )));
-        }
-        if !(p.min_time_s.is_finite() && p.min_time_s >= 0.0) {
-            return Err(EngineError::Config(format!(
-                "minimum time {} s must be ≥ 0",
-                p.min_time_s
-            )));
-        }
+        p.check().map_err(EngineError::Config)?;
         if !(c.history_s.is_finite() && c.history_s >= 0.0 && c.history_s <= 3600.0) {
             return Err(EngineError::Config(format!(
                 "history {} s must be in [0, 3600]",
@@ -646,12 +668,7 @@ impl Engine {
         self.ln_prior = match &c.prior {
             None => self.model.ln_prior().to_vec(),
             Some(p) => {
-                if p.len() != ns || p.iter().any(|x| !(x.is_finite() && *x > 0.0)) {
-                    return Err(EngineError::Config(format!(
-                        "prior must have {ns} finite positive entries (got {})",
-                        p.len()
-                    )));
-                }
+                check_prior(p, ns).map_err(EngineError::Config)?;
                 let s: f64 = p.iter().sum();
                 p.iter().map(|x| (x / s).ln()).collect()
             }
