@@ -16,7 +16,7 @@ use auspex_proto::v1::{self, control_request, inbound::Body, outbound};
 use auspexd::config::{validate, FileConfig};
 
 mod common;
-use common::{control, frames_of, serial, status, subscriber, wait_for};
+use common::{control, control_waiting, frames_of, serial, status, subscriber, wait_for};
 use prost::Message;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
@@ -225,7 +225,25 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
         sub,
         push,
     } = live(cfg);
-    send(&push, &msgs, 8.0);
+    // Paced, and paused after each third until the learner has swapped in a model, so at least
+    // two refits (each also calibrating on 5 held-out folds) land in-session however busy the
+    // machine is (the learner runs at nice 10).
+    let thirds = [msgs.len() / 3, 2 * msgs.len() / 3, msgs.len()];
+    let mut sent = 0;
+    for (i, &to) in thirds.iter().enumerate() {
+        send(&push, &msgs[sent..to], 8.0);
+        sent = to;
+        if i < 2 {
+            wait_for(
+                || {
+                    status(&ctx, &ep.control)
+                        .learning
+                        .is_some_and(|l| l.refits > i as u32)
+                },
+                "a learned model swapped in",
+            );
+        }
+    }
     let n = msgs.len() as u64;
     wait_for(
         || status(&ctx, &ep.control).ended_sessions.len() == 1,
@@ -241,12 +259,13 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
     );
     // Save what was learned: the fit of every labelled trial of the session.
     let saved = dir.path().join("learned.apxm");
-    let r = control(
+    let r = control_waiting(
         &ctx,
         &ep.control,
         control_request::Body::SaveLearned(v1::SaveLearned {
             path: saved.display().to_string(),
         }),
+        120_000,
     );
     assert!(r.ok, "save: {}", r.error);
     std::thread::sleep(Duration::from_millis(300));

@@ -57,8 +57,18 @@ pub fn control(
     endpoint: &str,
     body: control_request::Body,
 ) -> v1::ControlReply {
+    control_waiting(ctx, endpoint, body, 5000)
+}
+
+/// A control request whose reply may take a while (saving a learned model fits it first).
+pub fn control_waiting(
+    ctx: &zmq::Context,
+    endpoint: &str,
+    body: control_request::Body,
+    timeout_ms: i32,
+) -> v1::ControlReply {
     let req = ctx.socket(zmq::REQ).unwrap();
-    req.set_rcvtimeo(5000).unwrap();
+    req.set_rcvtimeo(timeout_ms).unwrap();
     req.set_linger(0).unwrap();
     req.connect(endpoint).unwrap();
     req.send(v1::ControlRequest { body: Some(body) }.encode_to_vec(), 0)
