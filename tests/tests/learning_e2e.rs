@@ -16,7 +16,7 @@ use auspex_proto::v1::{self, control_request, inbound::Body, outbound};
 use auspexd::config::{validate, FileConfig};
 
 mod common;
-use common::{control, control_waiting, frames_of, serial, status, subscriber, wait_for};
+use common::{control_waiting, frames_of, serial, status, subscriber, wait_for};
 use prost::Message;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
