@@ -221,23 +221,11 @@ fn calibrate_spec(
 pub fn calibration_summary(c: &Calibration) -> String {
     use std::fmt::Write;
     let mut s = String::new();
-    let (lo, hi) = c
-        .factors
-        .iter()
-        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &f| {
-            (a.min(f), b.max(f))
-        });
     let _ = writeln!(
         s,
         "calibration: {} (β {}{}), fitted on {} held-out trials ({} folds); held-out log loss {:.4} → {:.4} nats per bin",
         c.method.name(),
-        if !lo.is_finite() {
-            "1".to_string()
-        } else if (hi - lo).abs() < 1e-12 {
-            format!("{lo:.3}")
-        } else {
-            format!("{lo:.3}–{hi:.3}")
-        },
+        c.beta_text(),
         if c.floor > 0.0 {
             format!(", prior share ε {}", c.floor)
         } else {
@@ -347,26 +335,18 @@ pub fn promise_for(
     decoder: Decoder,
     calibrated: bool,
 ) -> anyhow::Result<(f64, f64, String)> {
-    if decoder != Decoder::OrderStats {
-        bail!("--target-accuracy needs the order-stats decoder (the model's held-out record is of it)");
-    }
-    let c = model.calibration();
-    if !calibrated && c.is_active() {
-        bail!("--target-accuracy uses the model's calibrated record; drop --uncalibrated");
-    }
-    let e = c.threshold_for(target)?;
+    // The daemon's rule, so decode and the daemon choose and refuse alike.
+    let mut cfg = EngineConfig::new(1.0);
+    cfg.decoder = decoder;
+    cfg.calibrated = calibrated;
+    let (policy, evidence) = auspexd::promise::PromiseKeeper::policy_for(target, Some(model), &cfg)
+        .map_err(|e| anyhow::anyhow!("--target-accuracy {target}: {e}"))?;
     let line = format!(
-        "target accuracy {target}: deciding at threshold {} (held out: {}/{} right = {:.3}, 95% interval {:.3}–{:.3}; median decision {:.0} ms; minimum time {:.0} ms)",
-        e.threshold,
-        e.correct,
-        e.trials,
-        e.accuracy(),
-        e.lo,
-        e.hi,
-        e.median_decision_ms,
-        c.min_time_s * 1000.0
+        "target accuracy {target}: deciding at threshold {} after {:.0} ms — {evidence}",
+        policy.threshold,
+        policy.min_time_s * 1000.0
     );
-    Ok((e.threshold, c.min_time_s, line))
+    Ok((policy.threshold, policy.min_time_s, line))
 }
 
 /// `decode`: returns the accuracy.

@@ -43,17 +43,7 @@ pub fn calibration_line(model: Option<&Model>) -> String {
     if !c.is_active() {
         return "none".into();
     }
-    let (lo, hi) = c
-        .factors
-        .iter()
-        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &f| {
-            (a.min(f), b.max(f))
-        });
-    if hi - lo < 1e-12 {
-        format!("{} (β {lo:.3})", c.method.name())
-    } else {
-        format!("{} (β {lo:.3}–{hi:.3})", c.method.name())
-    }
+    format!("{} (β {})", c.method.name(), c.beta_text())
 }
 
 impl PromiseKeeper {

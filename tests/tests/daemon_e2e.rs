@@ -12,17 +12,13 @@ use auspex_proto::v1::{self, control_request, outbound};
 use auspexd::config::{validate, FileConfig};
 
 mod common;
-use common::{control, frames_of, serial, status, subscriber, wait_for};
+use common::{control, frames_of, runtime, serial, status, subscriber, wait_for};
 use prost::Message;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 fn scenario() -> Scenario {
-    let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();
-    let mut s: Scenario = toml::from_str(&text).unwrap();
-    s.units.truncate(10);
-    s.stimuli.truncate(4);
-    s
+    common::demo_scenario(10, 4)
 }
 
 struct Fixture {
@@ -548,14 +544,6 @@ fn bad_input_is_counted_and_never_stops_the_daemon() {
         "trials to complete after bad input",
     );
     rt.block_on(running.stop());
-}
-
-fn runtime() -> tokio::runtime::Runtime {
-    tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .unwrap()
 }
 
 fn offline_frames(

@@ -22,11 +22,7 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 fn scenario() -> Scenario {
-    let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();
-    let mut s: Scenario = toml::from_str(&text).unwrap();
-    s.units.truncate(8);
-    s.stimuli.truncate(4);
-    s
+    common::demo_scenario(8, 4)
 }
 
 fn runtime() -> tokio::runtime::Runtime {

@@ -8,7 +8,7 @@ use auspex::wire::dataset_messages;
 use auspex_engine::calibrate::{calibrate, held_out_set, CalibrationMethod};
 use auspex_engine::engine::{Decision, DecisionReason, EngineConfig, EngineSink};
 use auspex_engine::fit::{plan, FitOptions};
-use auspex_engine::simulate::{simulate, Scenario, SimOptions};
+use auspex_engine::simulate::{simulate, SimOptions};
 use auspex_engine::{Dataset, Model, ModelSpec};
 use auspex_proto::v1::{self, control_request};
 use auspexd::config::{validate, FileConfig};
@@ -17,20 +17,12 @@ use std::sync::Arc;
 use std::time::Duration;
 
 mod common;
-use common::{control, serial, status, wait_for};
-
-fn scenario() -> Scenario {
-    let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();
-    let mut s: Scenario = toml::from_str(&text).unwrap();
-    s.units.truncate(10);
-    s.stimuli.truncate(4);
-    s
-}
+use common::{control, runtime, serial, status, wait_for};
 
 /// A calibrated model (temperature, with its threshold record) fitted on 25 trials per stimulus,
 /// and 30 fresh trials per stimulus to stream.
 fn calibrated() -> (ModelSpec, Dataset) {
-    let sc = scenario();
+    let sc = common::demo_scenario(10, 4);
     let truth = Model::new(sc.true_model().unwrap()).unwrap();
     let train = simulate(
         &truth,
@@ -70,14 +62,6 @@ fn config(model: &std::path::Path, target: Option<f64>) -> auspexd::config::Daem
     let mut c = validate(fc, &mut Vec::new()).unwrap();
     c.health_period = Duration::from_millis(100);
     c
-}
-
-fn runtime() -> tokio::runtime::Runtime {
-    tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(2)
-        .enable_all()
-        .build()
-        .unwrap()
 }
 
 /// Labelled threshold decisions offline: (decisions, right).

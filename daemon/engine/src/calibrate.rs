@@ -185,6 +185,23 @@ impl Calibration {
         !self.factors.is_empty() || self.floor > 0.0
     }
 
+    /// β as text: one value, or the range over bins ("1" when there are no factors).
+    pub fn beta_text(&self) -> String {
+        let (lo, hi) = self
+            .factors
+            .iter()
+            .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &f| {
+                (a.min(f), b.max(f))
+            });
+        if !lo.is_finite() {
+            "1".into()
+        } else if hi - lo < 1e-12 {
+            format!("{lo:.3}")
+        } else {
+            format!("{lo:.3}–{hi:.3}")
+        }
+    }
+
     /// The parameters the engine applies.
     pub fn fitted(&self) -> Fitted {
         Fitted {

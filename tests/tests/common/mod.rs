@@ -113,3 +113,21 @@ pub fn frames_of(got: &[(String, v1::Outbound)]) -> Vec<(u64, u32, Vec<f64>)> {
     v.sort_by_key(|x| (x.0, x.1));
     v
 }
+
+/// The demo scenario cut to its first `units` units and `stimuli` stimuli.
+pub fn demo_scenario(units: usize, stimuli: usize) -> auspex_engine::simulate::Scenario {
+    let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();
+    let mut s: auspex_engine::simulate::Scenario = toml::from_str(&text).unwrap();
+    s.units.truncate(units);
+    s.stimuli.truncate(stimuli);
+    s
+}
+
+/// The two-worker runtime the daemon tests start their daemons on.
+pub fn runtime() -> tokio::runtime::Runtime {
+    tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()
+        .unwrap()
+}
