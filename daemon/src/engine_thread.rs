@@ -852,8 +852,9 @@ impl EngineThread {
                 EngineError::DuplicateTrial(_) => "duplicate-trial",
                 EngineError::StaleOnset { .. } => "stale-onset",
                 EngineError::UnknownTrial(_) => "unknown-trial",
-                EngineError::UnknownStimulus(_) => "stimulus",
+                EngineError::StrayPartial { .. } => "stray-partial",
                 EngineError::Config(_) => "config",
+                EngineError::UnknownStimulus(_) => "stimulus",
             };
             self.warn(kind, || e.to_string());
         }

@@ -128,6 +128,93 @@ pub struct EngineConfig {
     /// Apply the model's calibration (its factors β(b); see `calibrate.rs`). Off: β = 1, the
     /// raw posterior.
     pub calibrated: bool,
+    /// Which blocks of the population sum this engine computes, and what it emits.
+    pub role: Role,
+}
+
+/// Which blocks of the population sum (see [`crate::model::UNIT_BLOCK`]) an engine computes
+/// itself, and whether it emits posteriors or block partials. Parts are an even split of a
+/// model's blocks ([`Model::part_blocks`]); at most [`MAX_PARTS`].
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Default)]
+pub enum Role {
+    /// Every block: posteriors, decisions, trial ends, per-unit summaries.
+    #[default]
+    Whole,
+    /// Part `part` of `parts` only; emits [`Partial`]s and nothing else.
+    Shard {
+        /// Which part.
+        part: u32,
+        /// Of how many.
+        parts: u32,
+    },
+    /// Part `part` of `parts` itself (None: no block) and every other block from the shards'
+    /// partials ([`Engine::add_partial`]); emits what a whole engine emits.
+    Combiner {
+        /// The part computed here.
+        part: Option<u32>,
+        /// Of how many.
+        parts: u32,
+    },
+}
+
+/// Most parts a model's blocks can be split into (frames carry the lost ones as a bit mask).
+pub const MAX_PARTS: u32 = 64;
+
+impl Role {
+    fn check(&self) -> Result<(), String> {
+        let (part, parts) = match *self {
+            Role::Whole => return Ok(()),
+            Role::Shard { part, parts } => (Some(part), parts),
+            Role::Combiner { part, parts } => (part, parts),
+        };
+        if !(1..=MAX_PARTS).contains(&parts) || part.is_some_and(|p| p >= parts) {
+            return Err(format!(
+                "part {part:?} of {parts}: parts must be 1..={MAX_PARTS} and the part below them"
+            ));
+        }
+        Ok(())
+    }
+    /// The blocks of `m` computed by an engine in this role.
+    pub fn local_blocks(&self, m: &Model) -> std::ops::Range<usize> {
+        match *self {
+            Role::Whole => 0..m.n_blocks(),
+            Role::Shard { part, parts } => m.part_blocks(part, parts),
+            Role::Combiner {
+                part: Some(part),
+                parts,
+            } => m.part_blocks(part, parts),
+            Role::Combiner { part: None, .. } => 0..0,
+        }
+    }
+    /// The part holding block `j` of `m` (0 for a whole engine).
+    pub fn part_of_block(&self, m: &Model, j: usize) -> u32 {
+        let parts = match *self {
+            Role::Whole => return 0,
+            Role::Shard { parts, .. } | Role::Combiner { parts, .. } => parts,
+        };
+        (0..parts)
+            .find(|&p| m.part_blocks(p, parts).contains(&j))
+            .unwrap_or(0)
+    }
+}
+
+/// One shard's partial log-likelihoods for one bin of one trial: the sums over the units of
+/// blocks `first_block ..` (one row of stimuli per block, no prior, no calibration).
+#[derive(Debug, Clone, Copy)]
+pub struct Partial<'a> {
+    /// Trial id.
+    pub trial: u64,
+    /// Bin index.
+    pub bin: u32,
+    /// First block.
+    pub first_block: u32,
+    /// Blocks × stimuli.
+    pub values: &'a [f64],
+    /// Spikes of the blocks' units in the trial so far.
+    pub spikes: u32,
+    /// At the last bin: the blocks' units' full-window log-likelihoods (units × stimuli, for the
+    /// per-unit summaries) and spike counts.
+    pub units: Option<(&'a [f64], &'a [u32])>,
 }
 
 impl EngineConfig {
@@ -141,6 +228,7 @@ impl EngineConfig {
             history_s: 2.0,
             per_cell_reference: false,
             calibrated: true,
+            role: Role::Whole,
         }
     }
 }
@@ -191,6 +279,16 @@ pub enum EngineError {
     /// Stimulus index outside the model.
     #[error("stimulus index {0} is not in the model")]
     UnknownStimulus(u32),
+    /// A partial for a trial, bin or blocks this combiner is not waiting for.
+    #[error("partial for trial {trial} bin {bin} (blocks from {first_block}) is not awaited")]
+    StrayPartial {
+        /// Trial id.
+        trial: u64,
+        /// Bin.
+        bin: u32,
+        /// First block.
+        first_block: u32,
+    },
 }
 
 /// Running counts of everything the engine saw or refused.
@@ -224,6 +322,9 @@ pub struct Counters {
     pub decisions: u64,
     /// Completed trials whose label never came before they were evicted.
     pub labels_missing: u64,
+    /// Partials refused by a combiner (trial not open, bin passed, blocks not awaited).
+    #[serde(default)]
+    pub stray_partials: u64,
 }
 
 /// Why a decision fired.
@@ -287,6 +388,8 @@ pub struct Frame<'a> {
     pub entropy_bits: f64,
     /// Spikes of model units in the trial so far.
     pub spikes: u32,
+    /// Parts whose blocks this frame lacks (bit p: part p was lost; 0 for a whole engine).
+    pub lost_parts: u64,
 }
 
 /// How a trial ended.
@@ -358,6 +461,8 @@ pub trait EngineSink {
     fn trial_end(&mut self, _end: &TrialEnd<'_>) {}
     /// Per-unit summaries for a labelled, completed trial.
     fn unit_summaries(&mut self, _s: &UnitSummaries<'_>) {}
+    /// A shard's partials for one bin (only engines in the [`Role::Shard`] role emit these).
+    fn partial(&mut self, _p: &Partial<'_>) {}
 }
 
 /// A sink that ignores everything.
@@ -377,17 +482,36 @@ struct TrialState {
     next_bin: u32,
     cursor: u64,
     k: Vec<u32>,
+    /// Spikes of the local blocks' units so far.
     total_spikes: u32,
+    /// Spikes of the remote blocks' units so far (from the partials consumed).
+    remote_spikes: u32,
     /// Per (u, s): the count-dependent constant of the count term.
     cconst: Vec<f64>,
-    /// Per s: Σ_u cconst, kept in step with `cconst`.
+    /// Per (block, s): Σ over the block's units of cconst, kept in step with `cconst`.
     cc_sum: Vec<f64>,
-    /// Units with at least one spike in the trial so far.
+    /// Per block, from the block's first unit index on: its units with at least one spike in the
+    /// trial so far, in order of their first spike; `active_n` holds how many.
     active: Vec<u32>,
+    active_n: Vec<u32>,
     reference: bool,
     /// Per (u, s): Σ ln q over the unit's spikes; at the end, the unit's full log-likelihood.
     unit_ll: Vec<f64>,
+    /// Per (block, s): Σ ln q over the block's spikes.
     pop_spike: Vec<f64>,
+    /// Per (block, s): the block's partial log-likelihood of the current bin.
+    blk_ll: Vec<f64>,
+    /// Blocks computed here.
+    local: std::ops::Range<usize>,
+    /// Emit partials instead of posteriors (a shard).
+    shard: bool,
+    /// Per block: computed elsewhere and awaited from a shard.
+    awaited: Vec<bool>,
+    /// Parts lost (their blocks neither local nor awaited).
+    lost_parts: u64,
+    /// Remote partials of bins `next_bin ..`, in bin order; `spare` keeps used slots.
+    remote: VecDeque<RemoteBin>,
+    spare: Vec<RemoteBin>,
     /// Population log-likelihood of the current bin (no prior, no calibration).
     ll: Vec<f64>,
     /// Apply the model's calibration factors.
@@ -400,7 +524,7 @@ struct TrialState {
 
 impl TrialState {
     fn blank(model: Arc<Model>) -> Self {
-        let (nu, ns) = (model.n_units(), model.n_stimuli());
+        let (nu, ns, nblk) = (model.n_units(), model.n_stimuli(), model.n_blocks());
         TrialState {
             id: 0,
             onset: 0,
@@ -414,12 +538,21 @@ impl TrialState {
             cursor: 0,
             k: vec![0; nu],
             total_spikes: 0,
+            remote_spikes: 0,
             cconst: vec![0.0; nu * ns],
-            cc_sum: vec![0.0; ns],
-            active: Vec::with_capacity(nu),
+            cc_sum: vec![0.0; nblk * ns],
+            active: vec![0; nu],
+            active_n: vec![0; nblk],
             reference: false,
             unit_ll: vec![0.0; nu * ns],
-            pop_spike: vec![0.0; ns],
+            pop_spike: vec![0.0; nblk * ns],
+            blk_ll: vec![0.0; nblk * ns],
+            local: 0..nblk,
+            shard: false,
+            awaited: vec![false; nblk],
+            lost_parts: 0,
+            remote: VecDeque::new(),
+            spare: Vec::new(),
             ll: vec![0.0; ns],
             calibrated: false,
             post: vec![0.0; ns],
@@ -433,12 +566,56 @@ impl TrialState {
     fn reset_counts(&mut self, start: &CountStart) {
         self.k.iter_mut().for_each(|x| *x = 0);
         self.total_spikes = 0;
+        self.remote_spikes = 0;
         self.unit_ll.iter_mut().for_each(|x| *x = 0.0);
         self.pop_spike.iter_mut().for_each(|x| *x = 0.0);
         self.decision = None;
-        self.active.clear();
+        self.active_n.iter_mut().for_each(|x| *x = 0);
         self.cconst.copy_from_slice(&start.cconst);
         self.cc_sum.copy_from_slice(&start.sum);
+        while let Some(r) = self.remote.pop_front() {
+            self.spare.push(r);
+        }
+    }
+
+    /// Spikes of model units in the trial so far, local and remote.
+    fn spikes(&self) -> u32 {
+        self.total_spikes.saturating_add(self.remote_spikes)
+    }
+
+    /// Whether the remote partials of the next bin are all in.
+    fn remote_ready(&self) -> bool {
+        let Some(slot) = self.remote.front() else {
+            return !self.awaited.iter().any(|&a| a);
+        };
+        self.awaited
+            .iter()
+            .zip(&slot.have)
+            .all(|(&want, &have)| !want || have)
+    }
+}
+
+/// The remote blocks' partials of one bin of one trial, as they arrive.
+struct RemoteBin {
+    /// Blocks × stimuli.
+    values: Vec<f64>,
+    /// Per block: arrived.
+    have: Vec<bool>,
+    /// Spikes reported with them.
+    spikes: u32,
+}
+
+impl RemoteBin {
+    fn new(nblk: usize, ns: usize) -> Self {
+        RemoteBin {
+            values: vec![0.0; nblk * ns],
+            have: vec![false; nblk],
+            spikes: 0,
+        }
+    }
+    fn clear(&mut self) {
+        self.have.iter_mut().for_each(|h| *h = false);
+        self.spikes = 0;
     }
 }
 
@@ -463,12 +640,13 @@ impl CountStart {
         let (nu, ns) = (m.n_units(), m.n_stimuli());
         self.cconst.clear();
         self.sum.clear();
-        self.sum.resize(ns, 0.0);
+        self.sum.resize(m.n_blocks() * ns, 0.0);
         for u in 0..nu {
+            let j = m.block_of(u);
             for s in 0..ns {
                 let c = count_const(m, dec, u, s, 0);
                 self.cconst.push(c);
-                self.sum[s] += c;
+                self.sum[j * ns + s] += c;
             }
         }
         self.key = Some((m.clone(), dec));
@@ -551,6 +729,10 @@ pub struct Engine {
     counters: Counters,
     tally: UnitTally,
     count_start: CountStart,
+    /// Blocks of the current model computed here (from the role).
+    local: std::ops::Range<usize>,
+    /// Parts lost by a combiner: trials opened from now on do not wait for them.
+    lost: u64,
     // Per-unit summary buffers.
     us_post: Vec<f64>,
     us_decoded: Vec<u32>,
@@ -629,6 +811,8 @@ impl Engine {
         let mut e = Engine {
             tally: UnitTally::new(model.units(), model.n_stimuli()),
             count_start: CountStart::default(),
+            local: 0..0,
+            lost: 0,
             ln_prior: model.ln_prior().to_vec(),
             min_bin: 0,
             history_ticks: 0,
@@ -658,6 +842,7 @@ impl Engine {
     fn apply_config(&mut self, c: EngineConfig) -> Result<(), EngineError> {
         let p = &c.policy;
         p.check().map_err(EngineError::Config)?;
+        c.role.check().map_err(EngineError::Config)?;
         if !(c.history_s.is_finite() && c.history_s >= 0.0 && c.history_s <= 3600.0) {
             return Err(EngineError::Config(format!(
                 "history {} s must be in [0, 3600]",
@@ -676,6 +861,7 @@ impl Engine {
         // A bin b may decide once (b + 1)·Δ ≥ minimum time.
         self.min_bin = min_bin_for(p.min_time_s, self.model.bin_width_s());
         self.history_ticks = (c.history_s * c.tick_rate_hz).round() as i64;
+        self.local = c.role.local_blocks(&self.model);
         self.config = c;
         Ok(())
     }
@@ -801,6 +987,19 @@ impl Engine {
         st.ln_prior.clone_from(&self.ln_prior);
         st.bin_ticks = self.bin_ticks;
         st.next_bin = 0;
+        st.local = self.local.clone();
+        st.shard = matches!(self.config.role, Role::Shard { .. });
+        st.lost_parts = 0;
+        for j in 0..st.awaited.len() {
+            let remote =
+                matches!(self.config.role, Role::Combiner { .. }) && !st.local.contains(&j);
+            let part = self.config.role.part_of_block(&self.model, j);
+            let lost = remote && self.lost & (1u64 << part) != 0;
+            st.awaited[j] = remote && !lost;
+            if lost {
+                st.lost_parts |= 1u64 << part;
+            }
+        }
         st.cursor = self.spikes_base + self.spikes.partition_point(|x| x.0 < onset) as u64;
         self.count_start.ensure(&self.model, st.decoder);
         st.reset_counts(&self.count_start);
@@ -833,18 +1032,136 @@ impl Engine {
                 watermark: self.watermark,
             });
         }
-        if self.model.unit_index(unit).is_none()
-            && !self
-                .trials
-                .iter()
-                .any(|t| t.model.unit_index(unit).is_some())
-        {
-            self.counters.unknown_unit_spikes += 1;
-            return Err(EngineError::UnknownUnit(unit));
+        match self.keeps(unit) {
+            None => {
+                self.counters.unknown_unit_spikes += 1;
+                Err(EngineError::UnknownUnit(unit))
+            }
+            Some(keep) => {
+                // A spike of another part's unit is counted (the combiner's counters are the
+                // deployment's) but held by the shard computing that part.
+                self.counters.spikes += 1;
+                if keep {
+                    self.pending.push((tick, unit));
+                }
+                Ok(())
+            }
         }
-        self.counters.spikes += 1;
-        self.pending.push((tick, unit));
+    }
+
+    /// Whether a spike of `unit` is held here: None for a unit of no model in use, Some(false)
+    /// for a unit whose blocks another part computes.
+    fn keeps(&self, unit: u32) -> Option<bool> {
+        let mut known = false;
+        if let Some(u) = self.model.unit_index(unit) {
+            if self.local.contains(&self.model.block_of(u)) {
+                return Some(true);
+            }
+            known = true;
+        }
+        for t in &self.trials {
+            if Arc::ptr_eq(&t.model, &self.model) {
+                continue;
+            }
+            if let Some(u) = t.model.unit_index(unit) {
+                if t.local.contains(&t.model.block_of(u)) {
+                    return Some(true);
+                }
+                known = true;
+            }
+        }
+        known.then_some(false)
+    }
+
+    /// Takes a shard's partials for one bin of an open trial (a [`Role::Combiner`] only). The
+    /// bin is decoded once the watermark has passed it (for the blocks computed here) and every
+    /// awaited block's partial is in; partials may arrive ahead of the watermark.
+    pub fn add_partial(
+        &mut self,
+        p: &Partial<'_>,
+        sink: &mut dyn EngineSink,
+    ) -> Result<(), EngineError> {
+        let stray = EngineError::StrayPartial {
+            trial: p.trial,
+            bin: p.bin,
+            first_block: p.first_block,
+        };
+        let Some(t) = self.trials.iter_mut().find(|t| t.id == p.trial) else {
+            self.counters.stray_partials += 1;
+            return Err(stray);
+        };
+        let m = &t.model;
+        let (ns, nb) = (m.n_stimuli(), m.n_bins());
+        let first = p.first_block as usize;
+        let n = p.values.len() / ns;
+        let ok = p.values.len() == n * ns
+            && n > 0
+            && first + n <= m.n_blocks()
+            && (first..first + n).all(|j| t.awaited[j])
+            && p.bin >= t.next_bin
+            && (p.bin as usize) < nb
+            && p.units.is_none_or(|(ll, k)| {
+                let units = m.blocks[first].start..m.blocks[first + n - 1].end;
+                p.bin as usize + 1 == nb && ll.len() == units.len() * ns && k.len() == units.len()
+            });
+        if !ok {
+            self.counters.stray_partials += 1;
+            return Err(stray);
+        }
+        let idx = (p.bin - t.next_bin) as usize;
+        while t.remote.len() <= idx {
+            let mut slot = t
+                .spare
+                .pop()
+                .unwrap_or_else(|| RemoteBin::new(m.n_blocks(), ns));
+            slot.clear();
+            t.remote.push_back(slot);
+        }
+        let slot = &mut t.remote[idx];
+        slot.values[first * ns..(first + n) * ns].copy_from_slice(p.values);
+        for h in &mut slot.have[first..first + n] {
+            *h = true;
+        }
+        slot.spikes = slot.spikes.saturating_add(p.spikes);
+        if let Some((ll, k)) = p.units {
+            let u0 = m.blocks[first].start;
+            t.unit_ll[u0 * ns..u0 * ns + ll.len()].copy_from_slice(ll);
+            t.k[u0..u0 + k.len()].copy_from_slice(k);
+        }
+        self.run_trials(sink);
         Ok(())
+    }
+
+    /// A combiner gives up on part `part`: open trials stop waiting for its blocks and so do
+    /// trials opened later, until [`Engine::restore_part`]. Its units contribute nothing; every
+    /// frame says so in [`Frame::lost_parts`].
+    pub fn lose_part(&mut self, part: u32, sink: &mut dyn EngineSink) {
+        if part >= MAX_PARTS {
+            return;
+        }
+        self.lost |= 1u64 << part;
+        let role = self.config.role;
+        for t in &mut self.trials {
+            for j in 0..t.awaited.len() {
+                if t.awaited[j] && role.part_of_block(&t.model, j) == part {
+                    t.awaited[j] = false;
+                    t.lost_parts |= 1u64 << part;
+                }
+            }
+        }
+        self.run_trials(sink);
+    }
+
+    /// Trials opened from now on wait for part `part` again.
+    pub fn restore_part(&mut self, part: u32) {
+        if part < MAX_PARTS {
+            self.lost &= !(1u64 << part);
+        }
+    }
+
+    /// Parts lost (bit p: part p), as trials opened now would see them.
+    pub fn lost_parts(&self) -> u64 {
+        self.lost
     }
 
     /// Sets the presented stimulus of a trial that is open or completed and waiting for its label.
@@ -966,6 +1283,10 @@ impl Engine {
             if done {
                 let t = self.trials.remove(i);
                 self.counters.trials_completed += 1;
+                if t.shard {
+                    self.recycle(t);
+                    continue;
+                }
                 emit_end(&t, TrialOutcome::Completed, sink);
                 if t.presented.is_some() {
                     self.summarise_units(&t, sink);
@@ -993,6 +1314,10 @@ impl Engine {
 
     fn summarise_units(&mut self, t: &TrialState, sink: &mut dyn EngineSink) {
         let Some(presented) = t.presented else { return };
+        if t.lost_parts != 0 {
+            // Some units contributed nothing to this trial: no per-unit line would be whole.
+            return;
+        }
         let m = &t.model;
         let (nu, ns) = (m.n_units(), m.n_stimuli());
         self.us_post.resize(nu, 0.0);
@@ -1055,7 +1380,7 @@ fn emit_end(t: &TrialState, outcome: TrialOutcome, sink: &mut dyn EngineSink) {
         presented: t.presented,
         outcome,
         decision: t.decision,
-        spikes: t.total_spikes,
+        spikes: t.spikes(),
         posterior: &t.post,
         bins: t.next_bin,
     });
@@ -1126,11 +1451,15 @@ fn run_bins(
     sink: &mut dyn EngineSink,
 ) -> bool {
     let m = t.model.clone();
-    let (nu, ns, nb) = (m.n_units(), m.n_stimuli(), m.n_bins());
+    let (ns, nb) = (m.n_stimuli(), m.n_bins());
     while (t.next_bin as usize) < nb {
         let b = t.next_bin as usize;
         let bin_end = t.onset + (b as i64 + 1) * t.bin_ticks; // exclusive
-        if watermark < bin_end - 1 {
+                                                              // A combiner computing no block of its own is driven by the partials alone.
+        if !t.local.is_empty() && watermark < bin_end - 1 {
+            return false;
+        }
+        if !t.shard && !t.remote_ready() {
             return false;
         }
         // Spikes of this bin.
@@ -1148,7 +1477,9 @@ fn run_bins(
             if let Some(&(ahead_tick, ahead_unit)) = spikes.get(pos + PREFETCH_AHEAD) {
                 if ahead_tick < bin_end && ahead_tick >= t.onset {
                     if let Some(ua) = m.unit_index(ahead_unit) {
-                        prefetch_rows(&m, t, ua, b);
+                        if t.local.contains(&m.block_of(ua)) {
+                            prefetch_rows(&m, t, ua, b);
+                        }
                     }
                 }
             }
@@ -1160,18 +1491,24 @@ fn run_bins(
             let Some(u) = m.unit_index(unit) else {
                 continue;
             };
+            let j = m.block_of(u);
+            if !t.local.contains(&j) {
+                continue;
+            }
             t.k[u] += 1;
             if t.k[u] == 1 {
-                t.active.push(u as u32);
+                t.active[m.blocks[j].start + t.active_n[j] as usize] = u as u32;
+                t.active_n[j] += 1;
             }
             t.total_spikes += 1;
             let row = (u * nb + b) * ns;
             let k = t.k[u];
             let lq = &m.ln_q[row..row + ns];
             let cells = u * ns..(u + 1) * ns;
+            let blk = j * ns..(j + 1) * ns;
             for ((ll, ps), q) in t.unit_ll[cells.clone()]
                 .iter_mut()
-                .zip(&mut t.pop_spike)
+                .zip(&mut t.pop_spike[blk.clone()])
                 .zip(lq)
             {
                 *ll += q;
@@ -1190,7 +1527,8 @@ fn run_bins(
             };
             match inc {
                 Some(inc) => {
-                    for ((c, sum), d) in t.cconst[cells].iter_mut().zip(&mut t.cc_sum).zip(inc) {
+                    for ((c, sum), d) in t.cconst[cells].iter_mut().zip(&mut t.cc_sum[blk]).zip(inc)
+                    {
                         *c += d;
                         *sum += d;
                     }
@@ -1200,120 +1538,19 @@ fn run_bins(
                         let i = u * ns + s;
                         let old = t.cconst[i];
                         t.cconst[i] = next_count_const(&m, t.decoder, u, s, k, old);
-                        t.cc_sum[s] += t.cconst[i] - old;
+                        t.cc_sum[j * ns + s] += t.cconst[i] - old;
                     }
                 }
             }
         }
-        // Posterior at the end of bin b.
         let last = b + 1 == nb;
-        match t.decoder {
-            Decoder::CountOnly => {
-                for s in 0..ns {
-                    t.ll[s] = 0.0;
-                }
-                if last {
-                    for u in 0..nu {
-                        for s in 0..ns {
-                            t.ll[s] += m.dists[u * ns + s].ln_pmf(t.k[u]);
-                        }
-                    }
-                }
-            }
-            dec if t.reference => {
-                for s in 0..ns {
-                    t.ll[s] = t.pop_spike[s];
-                }
-                for u in 0..nu {
-                    let k = t.k[u];
-                    let cc = &t.cconst[u * ns..(u + 1) * ns];
-                    for (s, (l, c)) in t.ll.iter_mut().zip(cc).enumerate() {
-                        *l += count_term(&m, dec, u, s, b, k, *c);
-                    }
-                }
-            }
-            Decoder::InhomogeneousPoisson => {
-                let sums = &m.rate_sum[b * ns..(b + 1) * ns];
-                for (((l, p), c), x) in t.ll.iter_mut().zip(&t.pop_spike).zip(&t.cc_sum).zip(sums) {
-                    *l = p + c + x;
-                }
-            }
-            Decoder::OrderStats => {
-                let sums = &m.order_stats_sum[b * ns..(b + 1) * ns];
-                for (((l, p), c), x) in t.ll.iter_mut().zip(&t.pop_spike).zip(&t.cc_sum).zip(sums) {
-                    *l = p + c + x;
-                }
-                // Negative binomial cells of units that have spiked: the k-dependent part.
-                // Once most units have spiked, walk them in order so this bin's rows of `g`
-                // stream from memory; before that, only the spiking ones.
-                let mut nb_term = |u: usize| {
-                    let k = t.k[u];
-                    if k == 0 || !m.unit_has_negbin[u] {
-                        return;
-                    }
-                    let k = k as f64;
-                    let row = (b * nu + u) * ns;
-                    let g = &m.nb_g[row..row + ns];
-                    if m.unit_all_negbin[u] {
-                        for (p, g) in t.ll.iter_mut().zip(g) {
-                            *p -= k * g;
-                        }
-                    } else {
-                        let kernels = &m.kernels[u * ns..(u + 1) * ns];
-                        for ((l, g), kernel) in t.ll.iter_mut().zip(g).zip(kernels) {
-                            if let CellKernel::NegBin { .. } = kernel {
-                                *l -= k * g;
-                            }
-                        }
-                    }
-                };
-                if m.any_negbin && 2 * t.active.len() > nu {
-                    (0..nu).for_each(&mut nb_term);
-                } else if m.any_negbin {
-                    let act = &t.active;
-                    let k = &t.k;
-                    each_prefetching(
-                        act.len(),
-                        |i| act[i] as usize,
-                        |u| {
-                            if k[u] > 0 && m.unit_has_negbin[u] {
-                                prefetch(&m.nb_g[(b * nu + u) * ns..(b * nu + u + 1) * ns]);
-                            }
-                        },
-                        nb_term,
-                    );
-                }
-                // Table families: silent units through the per-model sums, units that have
-                // spiked through their correction.
-                let tp = m.table_prep();
-                if !tp.units.is_empty() {
-                    for (p, s0) in t.ll.iter_mut().zip(&tp.sum0[b * ns..(b + 1) * ns]) {
-                        *p += s0;
-                    }
-                    let (k, post, acc) = (&t.k, &mut t.ll, &mut t.table_acc);
-                    let add = |u: usize| {
-                        if k[u] > 0 && tp.slot[u] != NO_SLOT {
-                            tp.add_unit(&m, u, b, k[u], post, acc);
-                        }
-                    };
-                    let ahead = |u: usize| {
-                        if k[u] > 0 && tp.slot[u] != NO_SLOT {
-                            prefetch(tp.row_for(u, b, k[u], ns));
-                        }
-                    };
-                    if t.active.len() < tp.units.len() {
-                        let act = &t.active;
-                        each_prefetching(act.len(), |i| act[i] as usize, ahead, add);
-                    } else {
-                        each_prefetching(tp.units.len(), |i| tp.units[i], ahead, add);
-                    }
-                    t.table_acc.flush_into(&mut t.ll);
-                }
-            }
+        for j in t.local.clone() {
+            block_partial(t, &m, j, b, last);
         }
         if last {
-            // Each unit's full-window log-likelihood, kept for the per-unit summaries.
-            for u in 0..nu {
+            // Each local unit's full-window log-likelihood, kept for the per-unit summaries.
+            let units = local_units(&m, &t.local);
+            for u in units {
                 let k = t.k[u];
                 for s in 0..ns {
                     let i = u * ns + s;
@@ -1323,6 +1560,55 @@ fn run_bins(
                     };
                 }
             }
+        }
+        if t.shard {
+            let units = local_units(&m, &t.local);
+            if !t.local.is_empty() {
+                sink.partial(&Partial {
+                    trial: t.id,
+                    bin: b as u32,
+                    first_block: t.local.start as u32,
+                    values: &t.blk_ll[t.local.start * ns..t.local.end * ns],
+                    spikes: t.total_spikes,
+                    units: last.then(|| {
+                        (
+                            &t.unit_ll[units.start * ns..units.end * ns],
+                            &t.k[units.clone()],
+                        )
+                    }),
+                });
+            }
+            t.next_bin += 1;
+            continue;
+        }
+        // The population sum: block partials added in block order, wherever they were computed.
+        let mut first = true;
+        {
+            let slot = t.remote.front();
+            for j in 0..t.awaited.len() {
+                let row = if t.local.contains(&j) {
+                    &t.blk_ll[j * ns..(j + 1) * ns]
+                } else if let (true, Some(slot)) = (t.awaited[j], slot) {
+                    &slot.values[j * ns..(j + 1) * ns]
+                } else {
+                    continue;
+                };
+                if first {
+                    t.ll.copy_from_slice(row);
+                    first = false;
+                } else {
+                    for (l, x) in t.ll.iter_mut().zip(row) {
+                        *l += x;
+                    }
+                }
+            }
+        }
+        if first {
+            t.ll.iter_mut().for_each(|l| *l = 0.0);
+        }
+        if let Some(slot) = t.remote.pop_front() {
+            t.remote_spikes = slot.spikes;
+            t.spare.push(slot);
         }
         let cal = m.calibration();
         let (beta, floor) = match cal.factors.get(b) {
@@ -1342,7 +1628,8 @@ fn run_bins(
             top,
             top_posterior: top_p,
             entropy_bits: entropy_bits(&t.post),
-            spikes: t.total_spikes,
+            spikes: t.spikes(),
+            lost_parts: t.lost_parts,
         });
         if t.decision.is_none() {
             let reason =
@@ -1372,4 +1659,138 @@ fn run_bins(
         t.next_bin += 1;
     }
     true
+}
+
+/// The units of a range of blocks, as a unit index range.
+fn local_units(m: &Model, blocks: &std::ops::Range<usize>) -> std::ops::Range<usize> {
+    if blocks.is_empty() {
+        return 0..0;
+    }
+    m.blocks[blocks.start].start..m.blocks[blocks.end - 1].end
+}
+
+/// Block `j`'s partial log-likelihood at the end of bin `b`, into `t.blk_ll`: the same
+/// mathematics as a whole-population pass, over the block's units only.
+fn block_partial(t: &mut TrialState, m: &Model, j: usize, b: usize, last: bool) {
+    let (nu, ns, nb) = (m.n_units(), m.n_stimuli(), m.n_bins());
+    let units = m.blocks[j].clone();
+    let row = j * ns..(j + 1) * ns;
+    match t.decoder {
+        Decoder::CountOnly => {
+            let out = &mut t.blk_ll[row];
+            out.iter_mut().for_each(|l| *l = 0.0);
+            if last {
+                for u in units {
+                    for (s, l) in out.iter_mut().enumerate() {
+                        *l += m.dists[u * ns + s].ln_pmf(t.k[u]);
+                    }
+                }
+            }
+        }
+        dec if t.reference => {
+            t.blk_ll[row.clone()].copy_from_slice(&t.pop_spike[row.clone()]);
+            for u in units {
+                let k = t.k[u];
+                let cc = &t.cconst[u * ns..(u + 1) * ns];
+                for (s, (l, c)) in t.blk_ll[row.clone()].iter_mut().zip(cc).enumerate() {
+                    *l += count_term(m, dec, u, s, b, k, *c);
+                }
+            }
+        }
+        Decoder::InhomogeneousPoisson => {
+            let sums = &m.rate_sum[(j * nb + b) * ns..(j * nb + b + 1) * ns];
+            let out = &mut t.blk_ll[row.clone()];
+            for (((l, p), c), x) in out
+                .iter_mut()
+                .zip(&t.pop_spike[row.clone()])
+                .zip(&t.cc_sum[row.clone()])
+                .zip(sums)
+            {
+                *l = p + c + x;
+            }
+        }
+        Decoder::OrderStats => {
+            let sums = &m.order_stats_sum[(j * nb + b) * ns..(j * nb + b + 1) * ns];
+            let out = &mut t.blk_ll[row.clone()];
+            for (((l, p), c), x) in out
+                .iter_mut()
+                .zip(&t.pop_spike[row.clone()])
+                .zip(&t.cc_sum[row.clone()])
+                .zip(sums)
+            {
+                *l = p + c + x;
+            }
+            let act = &t.active[units.start..units.start + t.active_n[j] as usize];
+            let k = &t.k;
+            // Negative binomial cells of units that have spiked: the k-dependent part.
+            // Once most of the block's units have spiked, walk them in order so this bin's rows
+            // of `g` stream from memory; before that, only the spiking ones.
+            let nb_term = |out: &mut [f64], u: usize| {
+                let k = k[u];
+                if k == 0 || !m.unit_has_negbin[u] {
+                    return;
+                }
+                let k = k as f64;
+                let r = (b * nu + u) * ns;
+                let g = &m.nb_g[r..r + ns];
+                if m.unit_all_negbin[u] {
+                    for (p, g) in out.iter_mut().zip(g) {
+                        *p -= k * g;
+                    }
+                } else {
+                    let kernels = &m.kernels[u * ns..(u + 1) * ns];
+                    for ((l, g), kernel) in out.iter_mut().zip(g).zip(kernels) {
+                        if let CellKernel::NegBin { .. } = kernel {
+                            *l -= k * g;
+                        }
+                    }
+                }
+            };
+            if m.any_negbin && 2 * act.len() > units.len() {
+                units.clone().for_each(|u| nb_term(out, u));
+            } else if m.any_negbin {
+                each_prefetching(
+                    act.len(),
+                    |i| act[i] as usize,
+                    |u| {
+                        if k[u] > 0 && m.unit_has_negbin[u] {
+                            prefetch(&m.nb_g[(b * nu + u) * ns..(b * nu + u + 1) * ns]);
+                        }
+                    },
+                    |u| nb_term(out, u),
+                );
+            }
+            // Table families: silent units through the per-block sums, units that have
+            // spiked through their correction.
+            let tp = m.table_prep();
+            let lo = tp.units.partition_point(|&u| u < units.start);
+            let hi = tp.units.partition_point(|&u| u < units.end);
+            if lo < hi {
+                for (p, s0) in out
+                    .iter_mut()
+                    .zip(&tp.sum0[(j * nb + b) * ns..(j * nb + b + 1) * ns])
+                {
+                    *p += s0;
+                }
+                let acc = &mut t.table_acc;
+                let mut add = |u: usize| {
+                    if k[u] > 0 && tp.slot[u] != NO_SLOT {
+                        tp.add_unit(m, u, b, k[u], out, acc);
+                    }
+                };
+                let ahead = |u: usize| {
+                    if k[u] > 0 && tp.slot[u] != NO_SLOT {
+                        prefetch(tp.row_for(u, b, k[u], ns));
+                    }
+                };
+                if act.len() < hi - lo {
+                    each_prefetching(act.len(), |i| act[i] as usize, ahead, &mut add);
+                } else {
+                    let tu = &tp.units[lo..hi];
+                    each_prefetching(tu.len(), |i| tu[i], ahead, &mut add);
+                }
+                t.table_acc.flush_into(out);
+            }
+        }
+    }
 }

@@ -103,11 +103,15 @@ pub struct Model {
     pub(crate) nb_g: Vec<f64>,
     pub(crate) ln_prior: Vec<f64>,
     unit_index: HashMap<u32, u32>,
-    /// Σ_u of the count-independent part of every closed-form cell's count term, per [b][s]:
+    /// The units of each block of the likelihood sum (see [`UNIT_BLOCK`]), as index ranges.
+    pub(crate) blocks: Vec<std::ops::Range<usize>>,
+    /// Σ over a block's units of the count-independent part of every closed-form cell's count
+    /// term, per [block][b][s]:
     /// `μ·S(b)` for Poisson cells, `−r·ln(1 − (1−p)·S(b))` for negative binomial cells. With it
     /// a bin costs O(S) plus the units that have spiked (and any table-family units).
     pub(crate) order_stats_sum: Vec<f64>,
-    /// Σ_u μ_us·S_us(b) per [b][s]: the inhomogeneous Poisson decoder's whole silence term.
+    /// Σ over a block's units of μ_us·S_us(b) per [block][b][s]: the inhomogeneous Poisson
+    /// decoder's whole silence term.
     pub(crate) rate_sum: Vec<f64>,
     /// Units with at least one negative binomial cell.
     pub(crate) unit_has_negbin: Vec<bool>,
@@ -129,6 +133,12 @@ pub struct Model {
 /// Memory a model spends by default on looked-up COM-Poisson/empirical count terms (the daemon's
 /// `--table-memory-mb` changes it): all counts for small models, the low counts for large ones.
 pub const TABLE_LOOKUP_BUDGET_BYTES: usize = 1 << 30;
+
+/// Units per block of the population sum. The log-likelihood is summed per block of this many
+/// consecutive units (in the model's unit order), and the block partials are then added in block
+/// order — by one engine, by engine threads or by shards on several machines alike — so the
+/// result is the same bits however the blocks are spread.
+pub const UNIT_BLOCK: usize = 64;
 
 impl Model {
     /// Validates a spec and precomputes the tables.
@@ -253,18 +263,24 @@ impl Model {
         }
         let means: Vec<f64> = dists.iter().map(|d| d.mean().max(1e-12)).collect();
         let ln_means = means.iter().map(|m| m.ln()).collect();
-        let mut order_stats_sum = vec![0.0; nb * ns];
-        let mut rate_sum = vec![0.0; nb * ns];
+        let blocks: Vec<std::ops::Range<usize>> = (0..nu)
+            .step_by(UNIT_BLOCK)
+            .map(|a| a..(a + UNIT_BLOCK).min(nu))
+            .collect();
+        let mut order_stats_sum = vec![0.0; blocks.len() * nb * ns];
+        let mut rate_sum = vec![0.0; blocks.len() * nb * ns];
         let mut unit_has_negbin = vec![false; nu];
         let mut unit_all_negbin = vec![true; nu];
         let mut poisson_ln_mean = vec![0.0; nu * ns];
         for u in 0..nu {
+            let blk = u / UNIT_BLOCK;
             for s in 0..ns {
                 let i = u * ns + s;
                 for b in 0..nb {
                     let t = (u * nb + b) * ns + s;
-                    rate_sum[b * ns + s] += means[i] * surv[t];
-                    order_stats_sum[b * ns + s] += match kernels[i] {
+                    let o = (blk * nb + b) * ns + s;
+                    rate_sum[o] += means[i] * surv[t];
+                    order_stats_sum[o] += match kernels[i] {
                         CellKernel::Poisson { mean, .. } => mean * surv[t],
                         CellKernel::NegBin { shape } => -shape * nb_g[(b * nu + u) * ns + s],
                         CellKernel::Table => 0.0,
@@ -296,6 +312,7 @@ impl Model {
             nb_g,
             ln_prior,
             unit_index,
+            blocks,
             order_stats_sum,
             rate_sum,
             any_negbin: unit_has_negbin.iter().any(|&x| x),
@@ -305,6 +322,25 @@ impl Model {
             table: std::sync::OnceLock::new(),
             nb_steps: std::sync::OnceLock::new(),
         })
+    }
+
+    /// Blocks of the population sum ([`UNIT_BLOCK`] units each, the last one shorter).
+    pub fn n_blocks(&self) -> usize {
+        self.blocks.len()
+    }
+
+    /// The blocks of part `index` of `parts` (an even split of whole blocks; parts past the
+    /// number of blocks are empty).
+    pub fn part_blocks(&self, index: u32, parts: u32) -> std::ops::Range<usize> {
+        let n = self.blocks.len();
+        let parts = parts.max(1) as usize;
+        let i = (index as usize).min(parts);
+        (n * i / parts)..(n * (i + 1).min(parts) / parts)
+    }
+
+    /// The block holding unit index `u`.
+    pub fn block_of(&self, u: usize) -> usize {
+        u / UNIT_BLOCK
     }
 
     /// The spec this model was built from.

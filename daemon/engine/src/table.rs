@@ -38,7 +38,7 @@ pub(crate) struct TablePrep {
     pub(crate) slot: Vec<u32>,
     /// Slot → unit index.
     pub(crate) units: Vec<usize>,
-    /// Σ over table-family cells of `ln Φ^(0)(S(b))`, per [b][s]; empty without table cells.
+    /// Σ over a block's table-family cells of `ln Φ^(0)(S(b))`, per [block][b][s].
     pub(crate) sum0: Vec<f64>,
     /// `1/Φ^(0)(S(b))` per [b][slot][s] for table-family cells, 0 for the others.
     inv0: Vec<f64>,
@@ -175,7 +175,7 @@ impl TablePrep {
             .collect();
         p.is_table = p.other.iter().map(|&o| (o == 0.0) as i64).collect();
         // Φ^(0)(S(b)) of every table cell: its reciprocal per [b][slot][s], its log summed.
-        p.sum0 = vec![0.0; nb * ns];
+        p.sum0 = vec![0.0; m.n_blocks() * nb * ns];
         p.inv0 = vec![0.0; nb * nt * ns];
         p.ln0 = vec![0.0; nb * nt * ns];
         let mut vals = vec![0.0; ns];
@@ -192,7 +192,7 @@ impl TablePrep {
                     } else {
                         m.dists[u * ns + s].ln_gf_deriv(0, z[s])
                     };
-                    p.sum0[b * ns + s] += ln0;
+                    p.sum0[(m.block_of(u) * nb + b) * ns + s] += ln0;
                     p.inv0[(b * nt + sl) * ns + s] = (-ln0).exp();
                     p.ln0[(b * nt + sl) * ns + s] = ln0;
                 }
