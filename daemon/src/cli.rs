@@ -84,6 +84,9 @@ pub struct DaemonArgs {
     /// Memory for looked-up COM-Poisson/empirical count terms, MB (more: fewer evaluated per bin) [default: 1024]
     #[arg(long)]
     pub table_memory_mb: Option<u64>,
+    /// Engine threads sharing the model's units; frames are identical for any number (`auspex bench` recommends one) [default: 1]
+    #[arg(long, value_name = "N")]
+    pub threads: Option<u32>,
 }
 
 /// Runs the daemon from flags; returns the process exit code.
@@ -132,6 +135,9 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
     }
     if a.table_memory_mb.is_some() {
         f.table_memory_mb = a.table_memory_mb;
+    }
+    if a.threads.is_some() {
+        f.threads = a.threads;
     }
     if a.tick_rate.is_some() {
         f.tick_rate_hz = a.tick_rate;

@@ -56,6 +56,8 @@ pub struct FileConfig {
     pub log_json: Option<bool>,
     /// Memory for looked-up COM-Poisson/empirical terms, MB.
     pub table_memory_mb: Option<u64>,
+    /// Engine threads sharing the units (frames are identical for any number).
+    pub threads: Option<u32>,
     /// Learn from the session's labelled trials (default: on without a model, off with one).
     pub learn: Option<bool>,
     /// Start with learning frozen (trials are kept, no refits until resumed).
@@ -132,6 +134,8 @@ pub struct DaemonConfig {
     pub health_period: std::time::Duration,
     /// Bytes a model may spend on looked-up COM-Poisson/empirical terms (at load and reload).
     pub table_memory_bytes: usize,
+    /// Engine threads (1: the engine thread alone).
+    pub threads: u32,
 }
 
 /// Default endpoints: loopback only.
@@ -309,7 +313,15 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
             "table memory {table_mb} MB is more than 1 TB; give MB, e.g. 2048"
         ));
     }
+    let threads = f.threads.unwrap_or(1);
+    if !(1..=crate::workers::MAX_THREADS).contains(&threads) {
+        return Err(format!(
+            "threads {threads} must be 1..={} (`auspex bench --threads` measures what helps)",
+            crate::workers::MAX_THREADS
+        ));
+    }
     Ok(DaemonConfig {
+        threads,
         table_memory_bytes: (table_mb as usize) << 20,
         model,
         learn,

@@ -16,6 +16,7 @@ use crate::promise::PromiseKeeper;
 use crate::publish::Publisher;
 use crate::ratelog::RateLimitedLog;
 use crate::recorder::RecorderMsg;
+use crate::workers::{OwnedPartial, Workers};
 use auspex_engine::assess::{assess, peak_ms, tuning, VerdictRule};
 use auspex_engine::engine::{
     Counters, Decision, DecisionReason, Engine, EngineConfig, EngineError, EngineSink, Frame,
@@ -416,6 +417,10 @@ pub struct EngineThread {
     learn: Option<LearnLink>,
     windows: Vec<TrialWindow>,
     promise: PromiseKeeper,
+    /// Engine worker threads computing the other parts of the unit blocks (None: one thread).
+    workers: Option<Workers>,
+    /// Counts fresh engines, so the workers know when to build theirs anew.
+    engine_gen: u64,
 }
 
 /// Trial messages held while waiting for SessionStart; more are counted as malformed.
@@ -443,6 +448,8 @@ pub struct EngineThreadSetup {
     pub record_dir: Option<PathBuf>,
     /// Largest message.
     pub max_message_bytes: usize,
+    /// Engine threads (the engine thread and `threads − 1` workers, see `workers.rs`).
+    pub threads: u32,
     /// Next-stimulus seed.
     pub seed: u64,
     /// Health period.
@@ -576,11 +583,17 @@ impl EngineThread {
             learn,
             windows: Vec::new(),
             promise: PromiseKeeper::new(s.target_accuracy),
+            workers: None,
+            engine_gen: 0,
         };
         t.config.policy = t.promise.model_changed(t.model.as_deref(), &t.config);
+        t.config.role = crate::workers::combiner_role(s.threads);
+        t.workers = Workers::start(s.threads)
+            .map_err(|e| EngineError::Config(format!("cannot start engine threads: {e}")))?;
         if let (Some(r), Some(m)) = (t.tick_rate, t.model.clone()) {
             t.config.tick_rate_hz = r;
             t.engine = Some(Engine::new(m, t.config.clone())?);
+            t.engine_gen += 1;
         }
         Ok(t)
     }
@@ -592,7 +605,20 @@ impl EngineThread {
                 .health_period
                 .saturating_sub(self.last_health.elapsed())
                 .max(Duration::from_millis(1));
-            match rx.recv_timeout(wait) {
+            let input = match self.workers.as_ref().map(|w| w.partials.clone()) {
+                None => rx.recv_timeout(wait),
+                Some(partials) => crossbeam_channel::select! {
+                    recv(rx) -> m => m.map_err(|_| RecvTimeoutError::Disconnected),
+                    recv(partials) -> p => {
+                        if let Ok(p) = p {
+                            self.take_partial(p);
+                        }
+                        continue;
+                    }
+                    default(wait) => Err(RecvTimeoutError::Timeout),
+                },
+            };
+            match input {
                 Ok(EngineInput::Inbound {
                     endpoint,
                     bytes,
@@ -601,6 +627,7 @@ impl EngineThread {
                     let t0 = Instant::now();
                     self.inbound(endpoint, bytes, received_ns);
                     self.record_latency(t0.elapsed().as_secs_f64() * 1e6);
+                    self.drain_partials();
                 }
                 Ok(EngineInput::Control { body, reply }) => {
                     let r = self.control(body);
@@ -658,6 +685,30 @@ impl EngineThread {
         self.publish_health();
         if let Some(r) = &self.recorder {
             let _ = r.send(RecorderMsg::Flush);
+        }
+    }
+
+    /// Adds a worker's partials to the combiner (its frames, decisions and trial ends follow).
+    fn take_partial(&mut self, p: OwnedPartial) {
+        if let Some(e) = self.engine.as_mut() {
+            let mut sink = pub_sink!(self);
+            // A partial of a trial already closed (session end, shutdown) is counted by the
+            // engine as stray; nothing else can go wrong with the workers' own output.
+            let _ = e.add_partial(&p.as_partial(), &mut sink);
+        }
+        if let Some(w) = &self.workers {
+            w.recycle(p);
+        }
+    }
+
+    /// Takes every partial already waiting.
+    fn drain_partials(&mut self) {
+        while let Some(p) = self
+            .workers
+            .as_ref()
+            .and_then(|w| w.partials.try_recv().ok())
+        {
+            self.take_partial(p);
         }
     }
 
@@ -818,6 +869,14 @@ impl EngineThread {
     fn apply(&mut self, body: inbound::Body) {
         if self.engine.is_some() {
             remember_onset(&mut self.names, &body, &self.current);
+        }
+        // One shared body for the combiner and every worker (see `workers.rs`).
+        let body = Arc::new(body);
+        if let Some(w) = self.workers.as_mut() {
+            w.sync(self.engine.as_ref(), self.engine_gen);
+            if self.engine.is_some() {
+                w.body(&body);
+            }
         }
         let mut sink = pub_sink!(self);
         let applied = apply_body(
@@ -1008,7 +1067,10 @@ impl EngineThread {
         }
         if let (None, Some(m)) = (&self.engine, self.model.clone()) {
             match Engine::new(m, self.config.clone()) {
-                Ok(e) => self.engine = Some(e),
+                Ok(e) => {
+                    self.engine = Some(e);
+                    self.engine_gen += 1;
+                }
                 Err(e) => {
                     self.counters.malformed += 1;
                     tracing::error!(error = %e, "cannot decode this session with the loaded model");
@@ -1022,6 +1084,13 @@ impl EngineThread {
     }
 
     fn close_trials(&mut self, outcome: TrialOutcome) {
+        if let (Some(w), Some(_)) = (self.workers.as_mut(), self.engine.as_ref()) {
+            // Bins the workers have computed but not yet reported complete the trials first.
+            w.sync(self.engine.as_ref(), self.engine_gen);
+            w.barrier();
+            w.close_all(outcome);
+            self.drain_partials();
+        }
         if let Some(e) = self.engine.as_mut() {
             let mut sink = pub_sink!(self);
             e.close_all(outcome, &mut sink);
@@ -1109,6 +1178,7 @@ impl EngineThread {
                 .and_then(|()| e.set_config(cfg.clone())),
             None => Engine::new(l.model.clone(), cfg.clone()).map(|e| {
                 self.engine = Some(e);
+                self.engine_gen += 1;
             }),
         };
         self.config.policy = cfg.policy;

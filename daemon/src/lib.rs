@@ -18,3 +18,4 @@ pub mod publish;
 pub mod ratelog;
 pub mod recorder;
 pub mod service;
+pub mod workers;

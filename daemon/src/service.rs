@@ -257,6 +257,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
             .map(|r| r.path.display().to_string())
             .unwrap_or_default(),
         max_message_bytes: cfg.max_message_bytes,
+        threads: cfg.threads,
         seed: cfg.seed,
         health_period: cfg.health_period,
         target_accuracy: cfg.target_accuracy,

@@ -30,8 +30,11 @@ struct Fixture {
 }
 
 fn fixture(trials: u32) -> Fixture {
+    fixture_of(trials, scenario())
+}
+
+fn fixture_of(trials: u32, sc: Scenario) -> Fixture {
     let dir = tempfile::tempdir().unwrap();
-    let sc = scenario();
     let truth = Model::new(sc.true_model().unwrap()).unwrap();
     let train = simulate(
         &truth,
@@ -100,6 +103,19 @@ struct Peer {
     ipc: bool,
     sub_ingest: bool,
     split_task: bool,
+    /// Engine threads (`--threads`), and units in the model (several blocks of units when > 64).
+    threads: u32,
+    units: usize,
+}
+
+impl Peer {
+    const TCP: Peer = Peer {
+        ipc: false,
+        sub_ingest: false,
+        split_task: false,
+        threads: 1,
+        units: 10,
+    };
 }
 
 /// Renumbers messages for one sender.
@@ -115,9 +131,10 @@ fn as_sender(msgs: Vec<v1::Inbound>, name: &str) -> Vec<v1::Inbound> {
 }
 
 fn stream_and_compare(peer: Peer) {
-    let f = fixture(3);
+    let f = fixture_of(3, common::many_units_scenario(peer.units, 4));
     let ipc_dir = tempfile::tempdir().unwrap();
     let mut cfg = config(&f, peer.ipc.then(|| ipc_dir.path()));
+    cfg.threads = peer.threads;
     if peer.sub_ingest {
         cfg.ingest_pattern = auspexd::config::IngestPattern::Sub;
     }
@@ -314,7 +331,22 @@ fn libzmq_sender_over_tcp_gets_frames_identical_to_offline_decode() {
         ipc: false,
         sub_ingest: false,
         split_task: false,
+        ..Peer::TCP
     });
+}
+
+/// `--threads 1, 2, 3` on a model of 150 units (three blocks): the same frames as offline decode,
+/// bit for bit, whichever thread computed which block.
+#[test]
+fn every_thread_count_gives_frames_identical_to_offline_decode() {
+    let _serial = serial();
+    for threads in [1, 2, 3] {
+        stream_and_compare(Peer {
+            threads,
+            units: 150,
+            ..Peer::TCP
+        });
+    }
 }
 
 #[test]
@@ -324,6 +356,7 @@ fn libzmq_pub_sender_into_sub_ingest_gets_identical_frames() {
         ipc: false,
         sub_ingest: true,
         split_task: false,
+        ..Peer::TCP
     });
 }
 
@@ -334,6 +367,7 @@ fn onsets_and_labels_from_a_separate_task_program_give_identical_frames() {
         ipc: true,
         sub_ingest: false,
         split_task: true,
+        ..Peer::TCP
     });
 }
 
@@ -344,6 +378,7 @@ fn libzmq_sender_over_ipc_gets_frames_identical_to_offline_decode() {
         ipc: true,
         sub_ingest: false,
         split_task: false,
+        ..Peer::TCP
     });
 }
 

@@ -1087,6 +1087,11 @@ impl Engine {
             first_block: p.first_block,
         };
         let Some(t) = self.trials.iter_mut().find(|t| t.id == p.trial) else {
+            // A trial that ended here (cancelled, or its session closed) while the shard's
+            // partials were on their way: nothing is missing.
+            if self.recent_set.contains(&p.trial) {
+                return Ok(());
+            }
             self.counters.stray_partials += 1;
             return Err(stray);
         };

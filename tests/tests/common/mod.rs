@@ -131,3 +131,23 @@ pub fn runtime() -> tokio::runtime::Runtime {
         .build()
         .unwrap()
 }
+
+/// The demo scenario grown to `units` units (the demo's 24 repeated with new ids and turned
+/// preferred directions), for models of several unit blocks.
+#[allow(dead_code)]
+pub fn many_units_scenario(units: usize, stimuli: usize) -> auspex_engine::simulate::Scenario {
+    let mut s = demo_scenario(usize::MAX, stimuli);
+    if units <= s.units.len() {
+        return demo_scenario(units, stimuli);
+    }
+    let base = s.units.clone();
+    s.units = (0..units)
+        .map(|i| {
+            let mut u = base[i % base.len()].clone();
+            u.id = 1000 + i as u32;
+            u.preferred_deg = (u.preferred_deg + 15.0 * (i / base.len()) as f64) % 360.0;
+            u
+        })
+        .collect();
+    s
+}

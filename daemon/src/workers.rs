@@ -1,0 +1,290 @@
+//! Engine worker threads (`auspexd --threads N`): N − 1 threads, each running an engine in the
+//! [`Role::Shard`] role on one part of the model's unit blocks; the engine thread's own engine is
+//! the combiner and computes part 0. Every inbound body the combiner applies is handed to every
+//! worker as one shared `Arc` (no copy per spike per worker; each worker keeps only its own units'
+//! spikes), and each worker sends its partials back. Because the population sum is always taken
+//! block by block in block order, frames are bit-identical for every thread count.
+//!
+//! Must not: decide, publish, touch sockets, or apply anything the combiner did not apply in the
+//! same order (model and configuration changes travel in the same channel as the bodies).
+
+use auspex_engine::engine::{Engine, EngineConfig, EngineSink, Partial, Role, TrialOutcome};
+use auspex_engine::Model;
+use auspex_proto::stream::{apply_body, TrialStimuli};
+use auspex_proto::v1::inbound;
+use crossbeam_channel::{Receiver, Sender};
+use std::sync::Arc;
+use std::thread::JoinHandle;
+
+/// Most threads `--threads` accepts (each thread computes one part of the unit blocks).
+pub const MAX_THREADS: u32 = 64;
+
+/// One worker's partials for one bin, owned (sent to the engine thread).
+#[derive(Debug)]
+pub struct OwnedPartial {
+    /// Trial id.
+    pub trial: u64,
+    /// Bin.
+    pub bin: u32,
+    /// First block.
+    pub first_block: u32,
+    /// Blocks × stimuli.
+    pub values: Vec<f64>,
+    /// Spikes of the blocks' units so far.
+    pub spikes: u32,
+    /// At the last bin: per-unit log-likelihoods and counts.
+    pub units: Option<(Vec<f64>, Vec<u32>)>,
+}
+
+impl OwnedPartial {
+    /// Borrowed as the engine takes it.
+    pub fn as_partial(&self) -> Partial<'_> {
+        Partial {
+            trial: self.trial,
+            bin: self.bin,
+            first_block: self.first_block,
+            values: &self.values,
+            spikes: self.spikes,
+            units: self.units.as_ref().map(|(l, k)| (&l[..], &k[..])),
+        }
+    }
+}
+
+enum WorkerMsg {
+    /// A fresh engine (a new session, or the first model).
+    New(Arc<Model>, EngineConfig),
+    /// The combiner's model changed (for trials opened from now on).
+    SetModel(Arc<Model>),
+    /// The combiner's configuration changed.
+    SetConfig(EngineConfig),
+    /// An inbound body, as the combiner applies it.
+    Body(Arc<inbound::Body>),
+    /// End open trials.
+    CloseAll(TrialOutcome),
+    /// No engine (the session ended).
+    Drop,
+    /// Reply once everything before this is done (its partials are sent by then).
+    Barrier(Sender<()>),
+}
+
+/// The worker threads and what the engine thread last told them.
+pub struct Workers {
+    parts: u32,
+    txs: Vec<Sender<WorkerMsg>>,
+    /// Partials from every worker.
+    pub partials: Receiver<OwnedPartial>,
+    /// Used value buffers going back to the workers.
+    recycle: Sender<Vec<f64>>,
+    handles: Vec<JoinHandle<()>>,
+    /// (engine generation, model, configuration) last sent.
+    sent: Option<(u64, Arc<Model>, EngineConfig)>,
+}
+
+struct PartialSink<'a> {
+    tx: &'a Sender<OwnedPartial>,
+    recycled: &'a Receiver<Vec<f64>>,
+}
+
+impl EngineSink for PartialSink<'_> {
+    fn partial(&mut self, p: &Partial<'_>) {
+        let mut values = self.recycled.try_recv().unwrap_or_default();
+        values.clear();
+        values.extend_from_slice(p.values);
+        let _ = self.tx.send(OwnedPartial {
+            trial: p.trial,
+            bin: p.bin,
+            first_block: p.first_block,
+            values,
+            spikes: p.spikes,
+            units: p.units.map(|(l, k)| (l.to_vec(), k.to_vec())),
+        });
+    }
+}
+
+/// The combiner's configuration for `threads` threads (Whole for one).
+pub fn combiner_role(threads: u32) -> Role {
+    if threads <= 1 {
+        Role::Whole
+    } else {
+        Role::Combiner {
+            part: Some(0),
+            parts: threads,
+        }
+    }
+}
+
+impl Workers {
+    /// Starts `threads − 1` workers (None for one thread).
+    pub fn start(threads: u32) -> std::io::Result<Option<Workers>> {
+        if threads <= 1 {
+            return Ok(None);
+        }
+        let (ptx, prx) = crossbeam_channel::unbounded();
+        let (rtx, rrx) = crossbeam_channel::bounded::<Vec<f64>>(4096);
+        let mut txs = Vec::new();
+        let mut handles = Vec::new();
+        for part in 1..threads {
+            // Bounded: a worker that falls behind holds the engine thread back (and so ingest,
+            // whose backlog health reports) instead of queueing without limit.
+            let (tx, rx) = crossbeam_channel::bounded::<WorkerMsg>(65536);
+            let (ptx, rrx) = (ptx.clone(), rrx.clone());
+            handles.push(
+                std::thread::Builder::new()
+                    .name(format!("auspex-part-{part}"))
+                    .spawn(move || worker(part, threads, rx, ptx, rrx))?,
+            );
+            txs.push(tx);
+        }
+        Ok(Some(Workers {
+            parts: threads,
+            txs,
+            partials: prx,
+            recycle: rtx,
+            handles,
+            sent: None,
+        }))
+    }
+
+    /// Threads in all (the engine thread included).
+    pub fn threads(&self) -> u32 {
+        self.parts
+    }
+
+    fn send(&self, f: impl Fn() -> WorkerMsg) {
+        for tx in &self.txs {
+            let _ = tx.send(f());
+        }
+    }
+
+    /// Brings the workers to the combiner's model and configuration (`generation` changes each
+    /// time the engine thread makes a fresh engine). Call before handing them the next body.
+    pub fn sync(&mut self, engine: Option<&Engine>, generation: u64) {
+        let Some(e) = engine else {
+            if self.sent.take().is_some() {
+                self.send(|| WorkerMsg::Drop);
+            }
+            return;
+        };
+        match &self.sent {
+            Some((g, m, c)) if *g == generation => {
+                if !Arc::ptr_eq(m, e.model()) {
+                    let m = e.model().clone();
+                    self.send(|| WorkerMsg::SetModel(m.clone()));
+                    let c = e.config().clone();
+                    self.send(|| WorkerMsg::SetConfig(c.clone()));
+                } else if c != e.config() {
+                    let c = e.config().clone();
+                    self.send(|| WorkerMsg::SetConfig(c.clone()));
+                } else {
+                    return;
+                }
+            }
+            _ => {
+                let (m, c) = (e.model().clone(), e.config().clone());
+                self.send(|| WorkerMsg::New(m.clone(), c.clone()));
+            }
+        }
+        self.sent = Some((generation, e.model().clone(), e.config().clone()));
+    }
+
+    /// Hands a body the combiner is about to apply to every worker.
+    pub fn body(&self, body: &Arc<inbound::Body>) {
+        self.send(|| WorkerMsg::Body(body.clone()));
+    }
+
+    /// Ends the workers' open trials (the combiner ends its own).
+    pub fn close_all(&self, outcome: TrialOutcome) {
+        self.send(|| WorkerMsg::CloseAll(outcome));
+    }
+
+    /// Waits until every worker has done everything handed to it so far; their partials are
+    /// then all in [`Workers::partials`]. Used before trials are closed, so a session that ends
+    /// right after its last spikes still completes those trials as one engine would.
+    pub fn barrier(&self) {
+        let (tx, rx) = crossbeam_channel::bounded(self.txs.len());
+        self.send(|| WorkerMsg::Barrier(tx.clone()));
+        drop(tx);
+        for _ in 0..self.txs.len() {
+            if rx.recv().is_err() {
+                break;
+            }
+        }
+    }
+
+    /// Gives a used value buffer back.
+    pub fn recycle(&self, p: OwnedPartial) {
+        let _ = self.recycle.try_send(p.values);
+    }
+}
+
+impl Drop for Workers {
+    fn drop(&mut self) {
+        self.txs.clear();
+        for h in self.handles.drain(..) {
+            let _ = h.join();
+        }
+    }
+}
+
+fn shard_config(c: &EngineConfig, part: u32, parts: u32) -> EngineConfig {
+    let mut c = c.clone();
+    c.role = Role::Shard { part, parts };
+    c
+}
+
+fn worker(
+    part: u32,
+    parts: u32,
+    rx: Receiver<WorkerMsg>,
+    tx: Sender<OwnedPartial>,
+    recycled: Receiver<Vec<f64>>,
+) {
+    let mut engine: Option<Engine> = None;
+    let names = TrialStimuli::default();
+    let current: Arc<[String]> = Arc::from(Vec::new());
+    let mut windows = Vec::new();
+    let mut sink = PartialSink {
+        tx: &tx,
+        recycled: &recycled,
+    };
+    while let Ok(msg) = rx.recv() {
+        match msg {
+            WorkerMsg::New(m, c) => {
+                // The combiner built the same engine with the same model and settings.
+                engine = Engine::new(m, shard_config(&c, part, parts)).ok();
+            }
+            WorkerMsg::SetModel(m) => {
+                if let Some(e) = engine.as_mut() {
+                    let _ = e.set_model(m);
+                }
+            }
+            WorkerMsg::SetConfig(c) => {
+                if let Some(e) = engine.as_mut() {
+                    let _ = e.set_config(shard_config(&c, part, parts));
+                }
+            }
+            WorkerMsg::Body(b) => {
+                // Refusals are the combiner's to count and report; labels do not concern a
+                // shard (the empty stimulus list makes them no-ops).
+                let _ = apply_body(
+                    engine.as_mut(),
+                    None,
+                    &names,
+                    &current,
+                    &b,
+                    &mut sink,
+                    &mut windows,
+                );
+            }
+            WorkerMsg::CloseAll(o) => {
+                if let Some(e) = engine.as_mut() {
+                    e.close_all(o, &mut sink);
+                }
+            }
+            WorkerMsg::Drop => engine = None,
+            WorkerMsg::Barrier(done) => {
+                let _ = done.send(());
+            }
+        }
+    }
+}
