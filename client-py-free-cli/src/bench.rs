@@ -114,6 +114,161 @@ pub fn engine_point(nu: usize, ns: usize, budget: Duration) -> EnginePoint {
     }
 }
 
+/// Throughput of `threads` engine threads (the daemon's `--threads`) at one size.
+#[derive(Clone, Debug, serde::Serialize)]
+pub struct ThreadPoint {
+    /// Units.
+    pub units: usize,
+    /// Stimuli.
+    pub stimuli: usize,
+    /// Engine threads.
+    pub threads: u32,
+    /// Median time per 1 ms bin, µs (over trials; every bin of every trial decoded).
+    pub us_per_bin: f64,
+    /// Real time / time per bin.
+    pub headroom: f64,
+    /// One thread's time per bin / this one's (the same run).
+    pub speedup: f64,
+}
+
+/// Times whole trials through the daemon's threaded engine (a combiner and `threads − 1`
+/// workers, fed as the engine thread feeds them: one shared spike batch per bin), for about
+/// `budget`; median µs per bin.
+pub fn thread_point(m: &Arc<Model>, threads: u32, budget: Duration) -> anyhow::Result<(f64, u64)> {
+    use auspex_engine::engine::{EngineSink, TrialEnd};
+    use auspexd::workers::{combiner_role, Workers};
+    #[derive(Default)]
+    struct Ends(u64, u64);
+    impl EngineSink for Ends {
+        fn trial_end(&mut self, _: &TrialEnd<'_>) {
+            self.0 += 1;
+        }
+        fn frame(&mut self, _: &auspex_engine::engine::Frame<'_>) {
+            self.1 += 1;
+        }
+    }
+    let nu = m.n_units();
+    let mut cfg = EngineConfig::new(1000.0);
+    cfg.role = combiner_role(threads);
+    let mut e = Engine::new(m.clone(), cfg)?;
+    let mut workers = Workers::start(threads)?;
+    if let Some(w) = workers.as_mut() {
+        w.sync(Some(&e), 1);
+    }
+    let spikes: Vec<Vec<Vec<u32>>> = (0..4).map(|i| trial_spikes(nu, i)).collect();
+    let mut per_bin = Vec::new();
+    let mut sink = Ends::default();
+    let t_all = Instant::now();
+    let mut trial = 0u64;
+    while (t_all.elapsed() < budget || per_bin.len() < 3) && per_bin.len() < 200 {
+        trial += 1;
+        let onset = trial as i64 * 1000;
+        let sp = &spikes[trial as usize % spikes.len()];
+        let t0 = Instant::now();
+        let onset_body = Arc::new(Body::Onset(v1::TrialOnset {
+            trial,
+            onset_tick: onset,
+            ..Default::default()
+        }));
+        if let Some(w) = &workers {
+            w.body(&onset_body);
+        }
+        let _ = e.open_trial(trial, onset, Some(0), &mut sink);
+        for (b, units) in sp.iter().enumerate() {
+            let tick = onset + b as i64;
+            let body = Arc::new(Body::Spikes(v1::SpikeBatch {
+                units: units.clone(),
+                ticks: vec![tick; units.len()],
+                complete_through: tick,
+                ..Default::default()
+            }));
+            if let Some(w) = &workers {
+                w.body(&body);
+            }
+            if let Body::Spikes(batch) = &*body {
+                for (&u, &t) in batch.units.iter().zip(&batch.ticks) {
+                    let _ = e.spike(u, t);
+                }
+            }
+            let _ = e.advance(tick, &mut sink);
+            if let Some(w) = &workers {
+                while let Ok(p) = w.partials.try_recv() {
+                    let _ = e.add_partial(&p.as_partial(), &mut sink);
+                    w.recycle(p);
+                }
+            }
+        }
+        // The trial is decoded once every worker's last partial is in.
+        while sink.0 < trial {
+            let Some(w) = &workers else { break };
+            match w.partials.recv_timeout(Duration::from_secs(10)) {
+                Ok(p) => {
+                    let _ = e.add_partial(&p.as_partial(), &mut sink);
+                    w.recycle(p);
+                }
+                Err(_) => anyhow::bail!("engine threads stopped answering"),
+            }
+        }
+        per_bin.push(t0.elapsed().as_secs_f64() * 1e6 / BINS as f64);
+    }
+    per_bin.sort_by(|a, b| a.total_cmp(b));
+    Ok((per_bin[per_bin.len() / 2], sink.1))
+}
+
+/// Thread scaling at the given sizes for 1 ..= `max_threads` threads, printed with a
+/// recommendation for `auspexd --threads`.
+pub fn thread_scaling(
+    sizes: &[(usize, usize)],
+    max_threads: u32,
+) -> anyhow::Result<Vec<ThreadPoint>> {
+    println!(
+        "{:>6} × {:<4} {:>8} {:>12} {:>10} {:>8}",
+        "units", "stim", "threads", "µs per bin", "headroom", "speedup"
+    );
+    let mut points = Vec::new();
+    for &(nu, ns) in sizes {
+        let m = synthetic_model(nu, ns);
+        let mut one = None;
+        for threads in 1..=max_threads.max(1) {
+            let (us, _) = thread_point(&m, threads, Duration::from_millis(1500))?;
+            let base = *one.get_or_insert(us);
+            let p = ThreadPoint {
+                units: nu,
+                stimuli: ns,
+                threads,
+                us_per_bin: us,
+                headroom: 1000.0 / us,
+                speedup: base / us,
+            };
+            println!(
+                "{:>6} × {:<4} {:>8} {:>12.1} {:>9.1}× {:>7.2}×",
+                p.units, p.stimuli, p.threads, p.us_per_bin, p.headroom, p.speedup
+            );
+            points.push(p);
+        }
+    }
+    // The fewest threads within 10% of the fastest at the largest size.
+    if let Some(&(nu, ns)) = sizes.last() {
+        let at: Vec<&ThreadPoint> = points
+            .iter()
+            .filter(|p| p.units == nu && p.stimuli == ns)
+            .collect();
+        if let Some(best) = at
+            .iter()
+            .map(|p| p.us_per_bin)
+            .min_by(|a, b| a.total_cmp(b))
+        {
+            if let Some(pick) = at.iter().find(|p| p.us_per_bin <= best * 1.1) {
+                println!(
+                    "→ for {nu} units × {ns} stimuli: auspexd --threads {} ({:.2}× one thread, {:.1}× real time); more threads than cores never help",
+                    pick.threads, pick.speedup, pick.headroom
+                );
+            }
+        }
+    }
+    Ok(points)
+}
+
 /// The engine's cost on a user's own model, with trials drawn from that model.
 #[derive(Clone, Debug, serde::Serialize)]
 pub struct ModelPoint {
@@ -537,6 +692,8 @@ pub struct Options {
     pub table_bytes: usize,
     /// Latency over TCP with learning off and on (refit after every trial), side by side.
     pub learning: bool,
+    /// Thread scaling only, at 1024, 2048 and 4096 units × 64 stimuli.
+    pub thread_scaling: bool,
 }
 
 /// Everything `auspex bench` measured.
@@ -548,6 +705,8 @@ pub struct Report {
     pub model: Option<ModelPoint>,
     /// Latency runs.
     pub latency: Vec<Latency>,
+    /// Engine threads' throughput.
+    pub threads: Vec<ThreadPoint>,
 }
 
 /// Runs the self-test and prints the answer.
@@ -567,7 +726,25 @@ pub async fn run(opts: &Options) -> anyhow::Result<Report> {
             report.model = Some(p);
         }
         None if opts.learning => {}
+        None if opts.thread_scaling => {}
         None => report.engine = ladder().await?,
+    }
+    let cores = std::thread::available_parallelism()
+        .map(|n| n.get() as u32)
+        .unwrap_or(1);
+    if opts.thread_scaling {
+        eprintln!("auspex bench: engine threads (auspexd --threads), {cores} cores: throughput of whole trials");
+        report.threads = tokio::task::spawn_blocking(move || {
+            thread_scaling(&[(1024, 64), (2048, 64), (4096, 64)], cores.max(2))
+        })
+        .await??;
+        return Ok(report);
+    }
+    if opts.model.is_none() && !opts.learning {
+        eprintln!("auspex bench: engine threads (auspexd --threads), {cores} cores");
+        report.threads =
+            tokio::task::spawn_blocking(move || thread_scaling(&[(1024, 64)], cores.max(2)))
+                .await??;
     }
     if opts.learning {
         report.latency = learning_latencies(opts.latency_seconds, opts.latency_size).await?;

@@ -226,6 +226,26 @@ impl Drop for Workers {
     }
 }
 
+/// The next message: a short spin first (bins arrive every few µs when decoding flat out, and
+/// parking and waking a thread per bin costs more than the bin), then a blocking wait.
+fn next(rx: &Receiver<WorkerMsg>) -> Option<WorkerMsg> {
+    let t0 = std::time::Instant::now();
+    loop {
+        match rx.try_recv() {
+            Ok(m) => return Some(m),
+            Err(crossbeam_channel::TryRecvError::Disconnected) => return None,
+            Err(crossbeam_channel::TryRecvError::Empty) => {}
+        }
+        if t0.elapsed() > SPIN {
+            return rx.recv().ok();
+        }
+        std::hint::spin_loop();
+    }
+}
+
+/// How long a worker spins for its next message before it parks.
+const SPIN: std::time::Duration = std::time::Duration::from_micros(50);
+
 fn shard_config(c: &EngineConfig, part: u32, parts: u32) -> EngineConfig {
     let mut c = c.clone();
     c.role = Role::Shard { part, parts };
@@ -247,7 +267,7 @@ fn worker(
         tx: &tx,
         recycled: &recycled,
     };
-    while let Ok(msg) = rx.recv() {
+    while let Some(msg) = next(&rx) {
         match msg {
             WorkerMsg::New(m, c) => {
                 // The combiner built the same engine with the same model and settings.
