@@ -8,6 +8,7 @@ pub mod bench;
 pub mod commands;
 pub mod export;
 pub mod fitting;
+pub mod gather;
 pub mod live;
 pub mod monitor;
 pub mod offline;

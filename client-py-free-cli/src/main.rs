@@ -272,6 +272,15 @@ enum Cmd {
         #[arg(long, default_value_t = (auspex_engine::model::TABLE_LOOKUP_BUDGET_BYTES >> 20) as u64)]
         table_memory_mb: u64,
     },
+    /// Merge many sessions' validation.json (e.g. from a cluster job array) into one CSV table
+    Gather {
+        /// validation.json files, or directories to search for them
+        #[arg(required = true)]
+        paths: Vec<PathBuf>,
+        /// Output CSV (default: standard output)
+        #[arg(long, short)]
+        out: Option<PathBuf>,
+    },
     /// Write a model as interchange JSON (the numbers the engine uses)
     Export {
         /// Model file
@@ -590,6 +599,7 @@ fn main() {
             })
         }),
         Cmd::Export { model, out } => commands::export_cmd(&model, out.as_deref()),
+        Cmd::Gather { paths, out } => auspex::gather::gather_cmd(&paths, out.as_deref()),
         Cmd::Inspect { model } => commands::inspect_cmd(&model),
         Cmd::Demo { out_dir, quiet, speed, fast, plain, offline_only, learn } => commands::demo_offline(&out_dir, quiet).and_then(|model| {
             if offline_only {
