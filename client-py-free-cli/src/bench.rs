@@ -562,6 +562,7 @@ pub async fn start_daemon(
     transport: &str,
     dir: &std::path::Path,
     learning: bool,
+    threads: u32,
 ) -> anyhow::Result<auspexd::service::Running> {
     let model_path = dir.join(format!("bench-{nu}x{ns}.apxm"));
     auspexd::model_file::save_model(&model_path, synthetic_model(nu, ns).spec(), "auspex bench")?;
@@ -578,6 +579,7 @@ pub async fn start_daemon(
         tick_rate_hz: Some(1e6),
         learn: Some(learning),
         refit_every_trials: Some(1),
+        threads: Some(threads),
         ..Default::default()
     };
     let cfg = auspexd::config::validate(fc, &mut Vec::new()).map_err(|e| anyhow::anyhow!(e))?;
@@ -595,8 +597,9 @@ pub async fn latency(
     transport: &str,
     dir: &std::path::Path,
     learning: bool,
+    threads: u32,
 ) -> anyhow::Result<Latency> {
-    let running = start_daemon(nu, ns, transport, dir, learning).await?;
+    let running = start_daemon(nu, ns, transport, dir, learning, threads).await?;
     let eps = running.endpoints.clone();
     let mut sub = zeromq::SubSocket::new();
     sub.connect(&eps.publish).await?;
@@ -656,11 +659,14 @@ pub async fn latency(
         0
     };
     running.stop().await;
-    let name = if learning {
+    let mut name = if learning {
         format!("{transport}, learning ({refits} refits swapped in)")
     } else {
         transport.to_string()
     };
+    if threads > 1 {
+        name = format!("{name}, {threads} engine threads");
+    }
     Ok(summarise(&name, lat, n_batches))
 }
 
@@ -694,6 +700,8 @@ pub struct Options {
     pub learning: bool,
     /// Thread scaling only, at 1024, 2048 and 4096 units × 64 stimuli.
     pub thread_scaling: bool,
+    /// Engine threads of the latency runs' daemon (`auspexd --threads`).
+    pub threads: u32,
 }
 
 /// Everything `auspex bench` measured.
@@ -749,7 +757,7 @@ pub async fn run(opts: &Options) -> anyhow::Result<Report> {
     if opts.learning {
         report.latency = learning_latencies(opts.latency_seconds, opts.latency_size).await?;
     } else if opts.latency {
-        report.latency = latencies(opts.latency_seconds, opts.latency_size).await?;
+        report.latency = latencies(opts.latency_seconds, opts.latency_size, opts.threads).await?;
     }
     eprintln!("bench finished in {:.1} s", t0.elapsed().as_secs_f64());
     Ok(report)
@@ -787,7 +795,11 @@ async fn ladder() -> anyhow::Result<Vec<EnginePoint>> {
     Ok(points)
 }
 
-async fn latencies(seconds: f64, size: (usize, usize)) -> anyhow::Result<Vec<Latency>> {
+async fn latencies(
+    seconds: f64,
+    size: (usize, usize),
+    threads: u32,
+) -> anyhow::Result<Vec<Latency>> {
     let dir = tempfile::tempdir()?;
     let mut lats = Vec::new();
     for transport in ["tcp", "ipc"] {
@@ -795,7 +807,16 @@ async fn latencies(seconds: f64, size: (usize, usize)) -> anyhow::Result<Vec<Lat
             "latency over {transport} loopback: {} units × {} stimuli, 1 kHz batches for {seconds} s …",
             size.0, size.1
         );
-        let l = latency(size.0, size.1, seconds, transport, dir.path(), false).await?;
+        let l = latency(
+            size.0,
+            size.1,
+            seconds,
+            transport,
+            dir.path(),
+            false,
+            threads,
+        )
+        .await?;
         println!(
             "batch → posterior frame over {}: p50 {:.0} µs, p99 {:.0} µs, p99.9 {:.0} µs, worst {:.0} µs ({} frames)",
             l.transport, l.p50_us, l.p99_us, l.p999_us, l.max_us, l.frames
@@ -817,7 +838,7 @@ async fn learning_latencies(seconds: f64, size: (usize, usize)) -> anyhow::Resul
             size.0,
             size.1
         );
-        let l = latency(size.0, size.1, seconds, "tcp", dir.path(), learning).await?;
+        let l = latency(size.0, size.1, seconds, "tcp", dir.path(), learning, 1).await?;
         println!(
             "batch → posterior frame over {}: p50 {:.0} µs, p99 {:.0} µs, p99.9 {:.0} µs, worst {:.0} µs ({} frames)",
             l.transport, l.p50_us, l.p99_us, l.p999_us, l.max_us, l.frames

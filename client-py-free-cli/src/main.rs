@@ -268,6 +268,9 @@ enum Cmd {
         /// Only the engine threads' scaling (auspexd --threads) at 1024, 2048 and 4096 units × 64 stimuli
         #[arg(long, conflicts_with_all = ["model", "learning"])]
         thread_scaling: bool,
+        /// Engine threads of the latency runs' daemon (as auspexd --threads)
+        #[arg(long, default_value_t = 1, value_name = "N")]
+        threads: u32,
         /// Memory for looked-up COM-Poisson/empirical terms with --model, MB (as the daemon's flag)
         #[arg(long, default_value_t = (auspex_engine::model::TABLE_LOOKUP_BUDGET_BYTES >> 20) as u64)]
         table_memory_mb: u64,
@@ -576,7 +579,7 @@ fn main() {
         )
         .map(|_| ()),
         // The daemon runs in this process on the runtime it has when deployed.
-        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, learning, thread_scaling, table_memory_mb } => auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
+        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, learning, thread_scaling, threads, table_memory_mb } => auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
             rt.block_on(async {
                 if !(seconds > 0.0 && units > 0 && stimuli > 1) {
                     anyhow::bail!("--seconds must be > 0, --units ≥ 1 and --stimuli ≥ 2");
@@ -590,6 +593,7 @@ fn main() {
                     table_bytes: (table_memory_mb.min(1 << 20) as usize) << 20,
                     learning,
                     thread_scaling,
+                    threads,
                 };
                 let out = auspex::bench::run(&opts).await?;
                 if json {

@@ -1,7 +1,7 @@
 //! Batch → posterior-frame latency with a libzmq-based sender and subscriber (the `zmq` crate)
 //! against an in-process daemon on loopback: 1 kHz spike batches, trials back to back.
-//! Run: `cargo run --release -p auspex-e2e --example latency_libzmq -- [seconds] [units] [stimuli] [tcp|ipc]`
-//! (defaults 60 s, 256 units, 32 stimuli, tcp). Prints p50, p99, p99.9 and the worst case.
+//! Run: `cargo run --release -p auspex-e2e --example latency_libzmq -- [seconds] [units] [stimuli] [tcp|ipc] [threads]`
+//! (defaults 60 s, 256 units, 32 stimuli, tcp, 1 engine thread). Prints p50, p99, p99.9 and the worst case.
 
 use prost::Message;
 use std::time::{Duration, Instant};
@@ -12,6 +12,7 @@ fn main() -> anyhow::Result<()> {
     let nu: usize = args.get(2).map(|s| s.parse()).transpose()?.unwrap_or(256);
     let ns: usize = args.get(3).map(|s| s.parse()).transpose()?.unwrap_or(32);
     let transport = args.get(4).cloned().unwrap_or_else(|| "tcp".into());
+    let threads: u32 = args.get(5).map(|s| s.parse()).transpose()?.unwrap_or(1);
     let dir = tempfile::tempdir()?;
     let rt = auspexd::service::io_runtime()?;
     let running = rt.block_on(auspex::bench::start_daemon(
@@ -20,6 +21,7 @@ fn main() -> anyhow::Result<()> {
         &transport,
         dir.path(),
         false,
+        threads,
     ))?;
     let eps = running.endpoints.clone();
     let ctx = zmq::Context::new();
