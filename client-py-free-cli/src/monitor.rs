@@ -374,7 +374,8 @@ impl MonitorState {
                     .iter()
                     .enumerate()
                     .map(|(i, p)| {
-                        let n = (p * width).round() as usize;
+                        // Values come off the wire: a bar never exceeds the panel, whatever they say.
+                        let n = (p.clamp(0.0, 1.0) * width).round() as usize;
                         let chosen = dec.is_some_and(|d| d.1 == self.name(i as u32));
                         let color = if chosen { Color::Green } else { Color::Cyan };
                         Line::from(vec![

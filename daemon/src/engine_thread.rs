@@ -463,6 +463,7 @@ pub struct EngineThreadSetup {
 /// Adds one set of engine counters to another.
 fn add_counters(a: &mut Counters, b: &Counters) {
     a.spikes += b.spikes;
+    a.stray_partials += b.stray_partials;
     a.late_spikes += b.late_spikes;
     a.unknown_unit_spikes += b.unknown_unit_spikes;
     a.watermark_backwards += b.watermark_backwards;

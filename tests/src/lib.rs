@@ -1,1 +1,6 @@
-//! End-to-end tests live in tests/; this library is intentionally empty.
+//! End-to-end tests live in tests/; this library holds what the fuzz targets do with their
+//! bytes (`fuzzing`), shared by the cargo-fuzz binaries in `fuzz/` and the stable regression
+//! test `tests/fuzz_corpus.rs`.
+#![deny(missing_docs)]
+
+pub mod fuzzing;

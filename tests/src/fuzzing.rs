@@ -1,0 +1,471 @@
+//! What each fuzz target does with its bytes. The cargo-fuzz binaries in `tests/fuzz/` (their
+//! own workspace, nightly) call these functions, and `tests/tests/fuzz_corpus.rs` runs every
+//! saved input of `tests/fuzz/regressions/` through them on stable, so a finding stays fixed.
+//!
+//! Every reader of outside bytes has a target: inbound messages through the daemon's engine
+//! thread, the engine under arbitrary operation sequences (posteriors finite, summing to 1),
+//! model files, session files (records framed with valid CRCs so payloads are reached), CSV
+//! tables, the daemon's TOML configuration, scenario files, and the monitor's decoding and
+//! drawing of published messages. A target panics only on a real defect.
+//!
+//! Must not: keep state between calls, or call anything slower than the engine's own limits
+//! allow (the scenario target simulates only small sessions).
+
+use auspex_engine::count::CountParams;
+use auspex_engine::engine::{Engine, EngineConfig, EngineSink, Frame};
+use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
+use auspex_proto::v1::{self, inbound};
+use prost::Message;
+use std::sync::{Arc, OnceLock};
+
+/// The targets, by name (the fuzz binaries' and the regression folders' names).
+pub const TARGETS: [(&str, fn(&[u8])); 8] = [
+    ("inbound", inbound_messages),
+    ("engine_ops", engine_ops),
+    ("model_file", model_file),
+    ("session_file", session_file),
+    ("csv_tables", csv_tables),
+    ("toml_config", toml_config),
+    ("scenario", scenario),
+    ("monitor", monitor),
+];
+
+/// Reads the input as a stream of small numbers.
+struct Bytes<'a>(&'a [u8]);
+
+impl Bytes<'_> {
+    fn u8(&mut self) -> Option<u8> {
+        let (&b, rest) = self.0.split_first()?;
+        self.0 = rest;
+        Some(b)
+    }
+    fn u32(&mut self) -> Option<u32> {
+        Some(u32::from_le_bytes([
+            self.u8()?,
+            self.u8()?,
+            self.u8()?,
+            self.u8()?,
+        ]))
+    }
+    /// A tick: usually small and near the last one, sometimes anywhere in the i64 range.
+    fn tick(&mut self, near: i64) -> Option<i64> {
+        Some(match self.u8()? {
+            0 => i64::MAX - self.u8()? as i64,
+            1 => i64::MIN + self.u8()? as i64,
+            2 => self.u32()? as i64 * 1_000_003,
+            3 => -(self.u8()? as i64),
+            b => near.saturating_add(b as i64 - 40),
+        })
+    }
+    fn slice(&mut self, max: usize) -> &[u8] {
+        let n = (self.u8().unwrap_or(0) as usize).min(max).min(self.0.len());
+        let (a, rest) = self.0.split_at(n);
+        self.0 = rest;
+        a
+    }
+}
+
+/// A small model with every kind of cell (Poisson, negative binomial, COM-Poisson, empirical):
+/// 5 units × 3 stimuli × 20 bins of 1 ms.
+pub fn small_model() -> Arc<Model> {
+    static M: OnceLock<Arc<Model>> = OnceLock::new();
+    M.get_or_init(|| {
+        let (nu, ns, nb) = (5usize, 3usize, 20usize);
+        let mut cells = Vec::new();
+        for u in 0..nu {
+            for s in 0..ns {
+                let x = (u * ns + s) as f64 / (nu * ns) as f64;
+                let count = match u % 4 {
+                    0 => CountParams::Poisson {
+                        mean: 0.5 + 4.0 * x,
+                    },
+                    1 => CountParams::NegativeBinomial {
+                        mean: 1.0 + 3.0 * x,
+                        shape: 2.0,
+                    },
+                    2 => CountParams::ComPoisson {
+                        lambda: 1.0 + x,
+                        nu: 0.8,
+                    },
+                    _ => CountParams::Empirical {
+                        pmf: vec![0.4, 0.3, 0.2, 0.1],
+                    },
+                };
+                let q: Vec<f64> = (0..nb)
+                    .map(|b| 1.0 + ((b + 3 * s + u) % 7) as f64)
+                    .collect();
+                let z: f64 = q.iter().sum();
+                cells.push(CellSpec {
+                    count,
+                    timing: q.iter().map(|v| v / z).collect(),
+                    summary: CellSummary::default(),
+                });
+            }
+        }
+        Arc::new(
+            Model::new(ModelSpec {
+                bin_width_s: 0.001,
+                n_bins: nb as u32,
+                stimuli: vec!["north".into(), "east".into(), "south".into()],
+                units: vec![3, 4, 7, 9, 12],
+                prior: vec![1.0, 2.0, 1.0],
+                cells,
+                calibration: Default::default(),
+            })
+            .expect("the fuzzing model is valid"),
+        )
+    })
+    .clone()
+}
+
+/// Checks every frame: a probability vector.
+struct CheckFrames;
+impl EngineSink for CheckFrames {
+    fn frame(&mut self, f: &Frame<'_>) {
+        assert!(
+            f.posterior.iter().all(|p| p.is_finite() && *p >= 0.0),
+            "posterior {:?}",
+            f.posterior
+        );
+        let s: f64 = f.posterior.iter().sum();
+        assert!((s - 1.0).abs() < 1e-9, "posterior sums to {s}");
+    }
+}
+
+/// The engine driven by arbitrary operations on the small model.
+pub fn engine_ops(data: &[u8]) {
+    let m = small_model();
+    let mut b = Bytes(data);
+    let rate = match b.u8().unwrap_or(0) % 3 {
+        0 => 1000.0,
+        1 => 30_000.0,
+        _ => 1e6,
+    };
+    let mut cfg = EngineConfig::new(rate);
+    let Ok(mut e) = Engine::new(m.clone(), cfg.clone()) else {
+        return;
+    };
+    let mut sink = CheckFrames;
+    let mut last = 0i64;
+    let mut ops = 0;
+    while let Some(op) = b.u8() {
+        ops += 1;
+        if ops > 2000 {
+            break;
+        }
+        match op % 8 {
+            0 => {
+                let id = b.u8().unwrap_or(0) as u64;
+                let Some(onset) = b.tick(last) else { break };
+                let presented = b.u8().map(|x| x as u32 % 4).filter(|&x| x < 3);
+                let _ = e.open_trial(id, onset, presented, &mut sink);
+            }
+            1 | 2 => {
+                let unit = [3, 4, 7, 9, 12, 5][b.u8().unwrap_or(0) as usize % 6];
+                let Some(t) = b.tick(last) else { break };
+                let _ = e.spike(unit, t);
+            }
+            3 => {
+                let Some(w) = b.tick(last) else { break };
+                // Long gaps are decoded bin by bin: keep the watermark within reach.
+                let w = w.clamp(last.saturating_sub(10), last.saturating_add(200_000));
+                if e.advance(w, &mut sink).is_ok() {
+                    last = w;
+                }
+            }
+            4 => {
+                let id = b.u8().unwrap_or(0) as u64;
+                let _ = e.label(id, b.u8().unwrap_or(0) as u32 % 4, &mut sink);
+            }
+            5 => {
+                let _ = e.cancel(b.u8().unwrap_or(0) as u64, &mut sink);
+            }
+            6 => {
+                let x = b.u8().unwrap_or(0);
+                cfg.policy.threshold = (x as f64 / 200.0).min(1.0);
+                cfg.policy.min_time_s = (x % 30) as f64 / 1000.0;
+                cfg.decoder = auspex_engine::engine::Decoder::ALL[x as usize % 3];
+                cfg.calibrated = x % 2 == 0;
+                let _ = e.set_config(cfg.clone());
+            }
+            _ => e.close_all(auspex_engine::engine::TrialOutcome::Cancelled, &mut sink),
+        }
+    }
+}
+
+/// Builds one inbound message from the input.
+fn inbound_message(b: &mut Bytes<'_>, last: &mut i64) -> Option<Vec<u8>> {
+    let kind = b.u8()?;
+    let sender = ["acq", "task", "", "other"][b.u8()? as usize % 4].to_string();
+    let seq = match b.u8()? {
+        0 => 0,
+        1 => u64::MAX,
+        s => s as u64,
+    };
+    let body = match kind % 11 {
+        0 => inbound::Body::SessionStart(v1::SessionStart {
+            tick_rate_hz: [1000.0, 30_000.0, 1e6, 0.0, f64::NAN, 1e300, -5.0][b.u8()? as usize % 7],
+            units: (0..b.u8()? % 8)
+                .map(|i| [3, 4, 7, 9, 12, 77, 0, 3][i as usize])
+                .collect(),
+            session_name: ["a", "b", ""][b.u8()? as usize % 3].into(),
+            ..Default::default()
+        }),
+        1..=3 => {
+            let n = b.u8()? % 16;
+            let mut units = Vec::new();
+            let mut ticks = Vec::new();
+            for _ in 0..n {
+                units.push([3, 4, 7, 9, 12, 5][b.u8()? as usize % 6]);
+                ticks.push(b.tick(*last)?);
+            }
+            if b.u8()? == 7 {
+                ticks.pop();
+            }
+            let through = b.tick(*last)?;
+            *last = through.clamp(last.saturating_sub(10), last.saturating_add(5_000));
+            inbound::Body::Spikes(v1::SpikeBatch {
+                units,
+                ticks,
+                complete_through: *last,
+            })
+        }
+        4 => {
+            let t = b.tick(*last)?;
+            *last = t.clamp(last.saturating_sub(10), last.saturating_add(5_000));
+            inbound::Body::Heartbeat(v1::Heartbeat {
+                complete_through: *last,
+            })
+        }
+        5 | 6 => inbound::Body::Onset(v1::TrialOnset {
+            trial: b.u8()? as u64,
+            onset_tick: b.tick(*last)?,
+            stimulus: ["north", "east", "", "west"][b.u8()? as usize % 4].into(),
+        }),
+        7 => inbound::Body::Label(v1::TrialLabel {
+            trial: b.u8()? as u64,
+            stimulus: ["north", "south", "nowhere"][b.u8()? as usize % 3].into(),
+        }),
+        8 => inbound::Body::Cancel(v1::TrialCancel {
+            trial: b.u8()? as u64,
+            ..Default::default()
+        }),
+        9 => inbound::Body::EndOfStream(v1::EndOfStream {}),
+        10 if b.u8()? % 2 == 0 => inbound::Body::UnitsAdded(v1::UnitsAdded {
+            units: vec![[3, 4, 77][b.u8()? as usize % 3]],
+            from_tick: b.tick(*last)?,
+        }),
+        _ => return Some(b.slice(64).to_vec()),
+    };
+    Some(
+        v1::Inbound {
+            sender,
+            seq,
+            body: Some(body),
+        }
+        .encode_to_vec(),
+    )
+}
+
+/// Inbound messages, structured and raw, through the daemon's engine thread (the same code the
+/// running daemon uses: checks, sessions, engine, publishing), then a shutdown.
+pub fn inbound_messages(data: &[u8]) {
+    use auspexd::engine_thread::{EngineInput, EngineThread, EngineThreadSetup};
+    let (pub_tx, _pub_rx) = tokio::sync::mpsc::channel(1 << 16);
+    let stats = Arc::new(auspexd::publish::PublishStats::default());
+    let mut b = Bytes(data);
+    let with_model = b.u8().unwrap_or(0) % 4 != 0;
+    let setup = EngineThreadSetup {
+        model: with_model.then(small_model),
+        model_path: "fuzz".into(),
+        config: EngineConfig::new(1000.0),
+        tick_rate: None,
+        publisher: auspexd::publish::Publisher::new(pub_tx, stats),
+        recorder: None,
+        recording_path: String::new(),
+        record_dir: None,
+        max_message_bytes: 4096,
+        threads: 1 + (b.u8().unwrap_or(0) % 2) as u32,
+        seed: 1,
+        health_period: std::time::Duration::from_secs(3600),
+        learn: None,
+        target_accuracy: None,
+    };
+    let (tx, rx) = crossbeam_channel::unbounded();
+    let Ok(et) = EngineThread::new(setup, rx.clone()) else {
+        return;
+    };
+    let mut last = 0i64;
+    let mut n = 0;
+    while let Some(bytes) = inbound_message(&mut b, &mut last) {
+        n += 1;
+        if n > 500 {
+            break;
+        }
+        let _ = tx.send(EngineInput::Inbound {
+            endpoint: n % 2,
+            bytes: bytes.into(),
+            received_ns: 0,
+        });
+    }
+    let _ = tx.send(EngineInput::Shutdown);
+    et.run(rx);
+}
+
+fn scratch_file(name: &str, bytes: &[u8]) -> (tempfile::TempDir, std::path::PathBuf) {
+    let dir = tempfile::Builder::new()
+        .prefix("auspex-fuzz")
+        .tempdir_in(if std::path::Path::new("/dev/shm").is_dir() {
+            "/dev/shm"
+        } else {
+            "."
+        })
+        .or_else(|_| tempfile::tempdir())
+        .expect("a scratch directory");
+    let p = dir.path().join(name);
+    std::fs::write(&p, bytes).expect("scratch file");
+    (dir, p)
+}
+
+/// A model file: loaded as the daemon loads it; a model that loads is prepared (within its
+/// limits) and decodes one trial.
+pub fn model_file(data: &[u8]) {
+    let (_d, p) = scratch_file("m.apxm", data);
+    let Ok((_, m)) = auspexd::model_file::load_model(&p) else {
+        return;
+    };
+    let m = Arc::new(m);
+    m.prepare();
+    let Ok(mut e) = Engine::new(
+        m.clone(),
+        EngineConfig::new(1000.0 / m.bin_width_s().max(1e-3)),
+    ) else {
+        return;
+    };
+    let mut sink = CheckFrames;
+    let _ = e.open_trial(1, 0, Some(0), &mut sink);
+    let _ = e.spike(m.units()[0], 0);
+    let _ = e.advance((m.n_bins() as i64).min(5000), &mut sink);
+}
+
+/// A session file: the raw bytes, and the bytes cut into records framed with valid CRCs (so the
+/// reader reaches the payloads), through the recording reader.
+pub fn session_file(data: &[u8]) {
+    let _ = auspex_proto::session::read_session(data);
+    let mut b = Bytes(data);
+    let mut framed = Vec::new();
+    let mut last = 0;
+    while !b.0.is_empty() {
+        let structured = b.u8().unwrap_or(0) % 2 == 0;
+        let message = if structured {
+            match inbound_message(&mut b, &mut last) {
+                Some(m) => m,
+                None => break,
+            }
+        } else {
+            b.slice(200).to_vec()
+        };
+        let rec = v1::SessionRecord {
+            received_unix_ns: 0,
+            endpoint: (message.len() % 2) as u32,
+            message,
+            header: None,
+            learned: None,
+        };
+        auspex_proto::session::frame_record(&rec, &mut framed);
+    }
+    let (_d, p) = scratch_file("s.apxs", &framed);
+    let _ = auspex::wire::read_recording(&p);
+    let (_d2, p2) = scratch_file("raw.apxs", data);
+    let _ = auspex::wire::read_recording(&p2);
+}
+
+/// Two CSV tables (spikes, trials), split at the first 0xFF byte, read as `fit` reads them.
+pub fn csv_tables(data: &[u8]) {
+    let cut = data
+        .iter()
+        .position(|&x| x == 0xFF)
+        .unwrap_or(data.len() / 2);
+    let (spikes, trials) = data.split_at(cut);
+    let trials = trials.get(1..).unwrap_or_default();
+    let (_d, ps) = scratch_file("spikes.csv", spikes);
+    let (_d2, pt) = scratch_file("trials.csv", trials);
+    for rate in [1000.0, 30_000.0] {
+        if let Ok((ds, _)) = auspex::tables::read_dataset(&ps, &pt, rate, 0.25) {
+            let _ = auspex::tables::report_for(&ds, 0.25);
+            // The offline path from the tables: events in batches.
+            let mut batches = 0;
+            for _ in ds.events(rate as i64 / 1000, rate as i64 / 4) {
+                batches += 1;
+                if batches > 100_000 {
+                    break;
+                }
+            }
+        }
+    }
+}
+
+/// The daemon's TOML configuration, validated as at start.
+pub fn toml_config(data: &[u8]) {
+    let text = String::from_utf8_lossy(data);
+    if let Ok(f) = toml::from_str::<auspexd::config::FileConfig>(&text) {
+        let _ = auspexd::config::validate(f, &mut Vec::new());
+    }
+}
+
+/// A scenario file: checked, its true model built, and small sessions simulated.
+pub fn scenario(data: &[u8]) {
+    use auspex_engine::simulate::{simulate, Scenario};
+    let text = String::from_utf8_lossy(data);
+    let Ok(sc) = toml::from_str::<Scenario>(&text) else {
+        return;
+    };
+    if sc.check().is_err() {
+        return;
+    }
+    let Ok(spec) = sc.true_model() else {
+        return;
+    };
+    let mut opts = sc.sim_options();
+    opts.trials_per_stimulus = opts.trials_per_stimulus.min(2);
+    if opts
+        .check(sc.window_ms / 1000.0, spec.stimuli.len())
+        .is_err()
+    {
+        return;
+    }
+    let cells = spec.units.len() * spec.stimuli.len() * spec.n_bins as usize;
+    if cells > 200_000 {
+        return;
+    }
+    if let Ok(m) = Model::new(spec) {
+        let _ = simulate(&m, &opts);
+    }
+}
+
+/// Published messages as the monitor receives them: (topic, payload) pairs decoded, applied,
+/// printed as lines and JSON, and drawn on a 100 × 30 screen.
+pub fn monitor(data: &[u8]) {
+    use auspex::monitor::{json_line, plain_line, MonitorState};
+    let mut b = Bytes(data);
+    let mut state = MonitorState::new(vec!["north".into(), "east".into(), "south".into()], 0.001);
+    let topics = auspex_proto::topic::ALL;
+    let mut n = 0;
+    while let Some(t) = b.u8() {
+        n += 1;
+        if n > 300 {
+            break;
+        }
+        let topic = topics[t as usize % topics.len()];
+        let payload = b.slice(255);
+        let Ok(msg) = v1::Outbound::decode(payload) else {
+            continue;
+        };
+        state.apply(topic, &msg);
+        let _ = plain_line(&state, topic, &msg);
+        let _ = json_line(topic, &msg);
+    }
+    let mut term =
+        ratatui::Terminal::new(ratatui::backend::TestBackend::new(100, 30)).expect("test terminal");
+    let _ = term.draw(|f| state.draw(f));
+}
