@@ -787,20 +787,8 @@ pub fn run_dataset(
 }
 
 fn bin_ticks_for(model: &Model, tick_rate_hz: f64) -> Result<i64, EngineError> {
-    if !(tick_rate_hz.is_finite() && tick_rate_hz > 0.0) {
-        return Err(EngineError::Config(format!(
-            "tick rate {tick_rate_hz} Hz must be > 0"
-        )));
-    }
-    let exact = model.bin_width_s() * tick_rate_hz;
-    let bt = exact.round();
-    if bt < 1.0 || (bt - exact).abs() > 1e-6 * exact.max(1.0) {
-        return Err(EngineError::Config(format!(
-            "bin width {} s is not a whole number of ticks at {tick_rate_hz} Hz",
-            model.bin_width_s()
-        )));
-    }
-    Ok(bt as i64)
+    crate::ticks::bin_ticks(model.bin_width_s(), tick_rate_hz)
+        .map_err(|e| EngineError::Config(e.to_string()))
 }
 
 impl Engine {
@@ -957,8 +945,7 @@ impl Engine {
             });
         }
         // The window must end inside the tick range (a bogus onset near i64::MAX would wrap).
-        let window = self.bin_ticks.saturating_mul(self.model.n_bins() as i64);
-        if onset.checked_add(window).is_none() {
+        if crate::ticks::window_end(onset, self.bin_ticks, self.model.n_bins()).is_none() {
             self.counters.stale_onsets += 1;
             return Err(EngineError::StaleOnset {
                 trial: id,

@@ -135,13 +135,9 @@ pub fn window_bins(
             "window {window_s} s is not a whole number of {bin_width_s} s bins"
         )));
     }
-    let bt = (bin_width_s * tick_rate_hz).round();
-    if bt < 1.0 || (bt - bin_width_s * tick_rate_hz).abs() > 1e-6 * bt {
-        return Err(FitError::Options(format!(
-            "bin width {bin_width_s} s is not a whole number of ticks at {tick_rate_hz} ticks/s"
-        )));
-    }
-    Ok((nb as usize, bt as i64))
+    let bt = crate::ticks::bin_ticks(bin_width_s, tick_rate_hz)
+        .map_err(|e| FitError::Options(e.to_string()))?;
+    Ok((nb as usize, bt))
 }
 
 /// Gathers the cell inputs.

@@ -24,6 +24,7 @@ pub mod special;
 pub mod stats;
 mod table;
 pub mod tally;
+pub mod ticks;
 pub mod validation;
 
 pub use count::{CountDist, CountFamily, CountParams};
