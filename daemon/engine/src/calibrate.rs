@@ -552,7 +552,7 @@ pub fn replay_decision(
             post,
         );
         let top = argmax(post);
-        if b >= min_bin && post[top] >= threshold {
+        if crate::decision::fires(b, min_bin, post[top], threshold) {
             return (top, b, true);
         }
         if b + 1 == nb {

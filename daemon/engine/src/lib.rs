@@ -14,6 +14,7 @@ pub mod assess;
 pub mod calibrate;
 pub mod count;
 pub mod data;
+pub mod decision;
 pub mod density;
 pub mod engine;
 pub mod fit;

@@ -105,7 +105,7 @@ pub fn decide(
         for b in min_bin..nb {
             let row = &trajectory[b * n_stimuli..(b + 1) * n_stimuli];
             let top = argmax(row);
-            if row[top] as f64 >= threshold {
+            if crate::decision::fires(b, min_bin, row[top] as f64, threshold) {
                 return (top, b, true);
             }
         }
