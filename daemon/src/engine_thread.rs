@@ -1541,6 +1541,7 @@ impl EngineThread {
             min_time_s: self.config.policy.min_time_s,
             prior,
             decoder: self.config.decoder.name().into(),
+            engine_threads: self.workers.as_ref().map_or(1, |w| w.threads()),
             tick_rate_hz: self.tick_rate.unwrap_or(0.0),
             senders: self
                 .senders

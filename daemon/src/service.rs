@@ -189,6 +189,16 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
                 "the minimum decision time is past the window end: every decision will come at the window end"
             );
         }
+        if cfg.threads as usize > m.n_blocks() {
+            tracing::warn!(
+                threads = cfg.threads,
+                units = m.n_units(),
+                blocks = m.n_blocks(),
+                "more engine threads than blocks of {} units: the extra threads have nothing to do (use --threads {})",
+                auspex_engine::model::UNIT_BLOCK,
+                m.n_blocks()
+            );
+        }
     }
     let mut ec = EngineConfig::new(cfg.tick_rate_hz.unwrap_or(1e6));
     ec.decoder = cfg.decoder;
