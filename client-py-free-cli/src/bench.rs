@@ -180,7 +180,6 @@ pub fn thread_point(m: &Arc<Model>, threads: u32, budget: Duration) -> anyhow::R
                 units: units.clone(),
                 ticks: vec![tick; units.len()],
                 complete_through: tick,
-                ..Default::default()
             }));
             if let Some(w) = &workers {
                 w.body(&body);

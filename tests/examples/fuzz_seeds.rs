@@ -71,7 +71,6 @@ fn main() -> anyhow::Result<()> {
         let bytes = v1::Outbound {
             seq: 1,
             body: Some(body),
-            ..Default::default()
         }
         .encode_to_vec();
         pubs.push(t);

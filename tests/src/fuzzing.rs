@@ -18,8 +18,11 @@ use auspex_proto::v1::{self, inbound};
 use prost::Message;
 use std::sync::{Arc, OnceLock};
 
+/// A target: what it does with one input.
+pub type Target = fn(&[u8]);
+
 /// The targets, by name (the fuzz binaries' and the regression folders' names).
-pub const TARGETS: [(&str, fn(&[u8])); 8] = [
+pub const TARGETS: [(&str, Target); 8] = [
     ("inbound", inbound_messages),
     ("engine_ops", engine_ops),
     ("model_file", model_file),
@@ -209,7 +212,6 @@ fn inbound_message(b: &mut Bytes<'_>, last: &mut i64) -> Option<Vec<u8>> {
                 .map(|i| [3, 4, 7, 9, 12, 77, 0, 3][i as usize])
                 .collect(),
             session_name: ["a", "b", ""][b.u8()? as usize % 3].into(),
-            ..Default::default()
         }),
         1..=3 => {
             let n = b.u8()? % 16;

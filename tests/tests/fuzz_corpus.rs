@@ -65,7 +65,7 @@ fn every_target_survives_a_seeded_smoke_run() {
                 x ^= x << 13;
                 x ^= x >> 7;
                 x ^= x << 17;
-                if !bytes.is_empty() && x % 3 == 0 {
+                if !bytes.is_empty() && x.is_multiple_of(3) {
                     let at = (x >> 8) as usize % bytes.len();
                     bytes[at] = (x >> 32) as u8;
                 } else {

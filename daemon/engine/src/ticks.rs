@@ -36,7 +36,7 @@ pub fn bin_ticks(bin_width_s: f64, tick_rate_hz: f64) -> Result<i64, TickError> 
     }
     let exact = bin_width_s * tick_rate_hz;
     let whole = exact.round();
-    if !(whole >= 1.0) || (whole - exact).abs() > 1e-6 * exact.max(1.0) {
+    if whole.is_nan() || whole < 1.0 || (whole - exact).abs() > 1e-6 * exact.max(1.0) {
         return Err(TickError::NotWhole {
             bin_width_s,
             tick_rate_hz,
@@ -69,7 +69,7 @@ mod tests {
         assert_eq!(bin_ticks(0.001, 1e6), Ok(1000));
         // 1 ms at 24 414.0625 Hz (a common acquisition rate) is 24.4 ticks: refused, not rounded.
         assert!(matches!(
-            bin_ticks(0.001, 24_414.0625),
+            bin_ticks(0.001, 24_414.062_5),
             Err(TickError::NotWhole { .. })
         ));
         assert!(matches!(

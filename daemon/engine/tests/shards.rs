@@ -14,10 +14,15 @@ use rand::seq::SliceRandom;
 use rand::{Rng, SeedableRng};
 use std::sync::Arc;
 
+/// A frame as bits: (trial, bin, posterior, log-likelihood, spikes).
+type FrameBits = (u64, u32, Vec<u64>, Vec<u64>, u32);
+/// A shard's partial, owned: (trial, bin, first block, values, spikes, unit rows at the end).
+type OwnedPartial = (u64, u32, u32, Vec<f64>, u32, Option<(Vec<f64>, Vec<u32>)>);
+
 /// Everything a whole engine or a combiner emits, as bits.
 #[derive(Default, Debug, PartialEq)]
 struct Out {
-    frames: Vec<(u64, u32, Vec<u64>, Vec<u64>, u32)>,
+    frames: Vec<FrameBits>,
     decisions: Vec<(u64, u32, u64, u32)>,
     ends: Vec<(u64, u32, u32)>,
     units: Vec<(u64, Vec<u64>, Vec<u32>)>,
@@ -64,7 +69,7 @@ impl Out {
 
 /// A shard's partials, owned.
 #[derive(Default)]
-struct Partials(Vec<(u64, u32, u32, Vec<f64>, u32, Option<(Vec<f64>, Vec<u32>)>)>);
+struct Partials(Vec<OwnedPartial>);
 impl EngineSink for Partials {
     fn partial(&mut self, p: &Partial<'_>) {
         self.0.push((
@@ -261,7 +266,7 @@ fn sharded(
         .map(|part| Engine::new(m.clone(), config(dec, Role::Shard { part, parts })).unwrap())
         .collect();
     let mut out = Out::default();
-    let mut held: Vec<(u64, u32, u32, Vec<f64>, u32, Option<(Vec<f64>, Vec<u32>)>)> = Vec::new();
+    let mut held: Vec<OwnedPartial> = Vec::new();
     drive(inp, |step| match step {
         Step::Open(id, onset, st) => {
             let _ = comb.open_trial(id, onset, Some(st), &mut out);
