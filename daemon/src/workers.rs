@@ -308,3 +308,172 @@ fn worker(
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use auspex_engine::count::CountParams;
+    use auspex_engine::engine::{Frame, Role};
+    use auspex_engine::model::{CellSpec, CellSummary, ModelSpec};
+    use auspex_proto::v1;
+
+    fn model(nu: usize, ns: usize, nb: usize, scale: f64) -> Arc<Model> {
+        let mut cells = Vec::new();
+        for u in 0..nu {
+            for s in 0..ns {
+                let mean = scale * (0.5 + ((u * 5 + s * 3) % 7) as f64 * 0.5);
+                let q: Vec<f64> = (0..nb)
+                    .map(|b| 1.0 + ((b + u + 2 * s) % 5) as f64)
+                    .collect();
+                let z: f64 = q.iter().sum();
+                cells.push(CellSpec {
+                    count: if u % 2 == 0 {
+                        CountParams::Poisson { mean }
+                    } else {
+                        CountParams::NegativeBinomial { mean, shape: 3.0 }
+                    },
+                    timing: q.iter().map(|x| x / z).collect(),
+                    summary: CellSummary::default(),
+                });
+            }
+        }
+        Arc::new(
+            Model::new(ModelSpec {
+                bin_width_s: 0.001,
+                n_bins: nb as u32,
+                stimuli: (0..ns).map(|s| format!("s{s}")).collect(),
+                units: (0..nu as u32).collect(),
+                prior: vec![1.0; ns],
+                cells,
+                calibration: Default::default(),
+            })
+            .unwrap(),
+        )
+    }
+
+    #[derive(Default)]
+    struct Frames(Vec<(u64, u32, Vec<u64>)>);
+    impl EngineSink for Frames {
+        fn frame(&mut self, f: &Frame<'_>) {
+            self.0.push((
+                f.trial,
+                f.bin,
+                f.posterior.iter().map(|p| p.to_bits()).collect(),
+            ));
+        }
+    }
+
+    /// Bodies of a session: trials every 30 ms with 40-bin windows (they overlap), spikes from
+    /// a fixed generator, one batch per 1 ms tick; the model is swapped before trial 6 opens and
+    /// the policy changed before trial 9.
+    fn session() -> Vec<(Option<u32>, inbound::Body)> {
+        let mut out = Vec::new();
+        let mut x: u64 = 12345;
+        for tick in 0..400i64 {
+            if tick % 30 == 0 {
+                let trial = (tick / 30 + 1) as u64;
+                let event = match trial {
+                    6 => Some(1),
+                    9 => Some(2),
+                    _ => None,
+                };
+                out.push((
+                    event,
+                    inbound::Body::Onset(v1::TrialOnset {
+                        trial,
+                        onset_tick: tick,
+                        stimulus: String::new(),
+                    }),
+                ));
+            }
+            let mut units = Vec::new();
+            for _ in 0..(tick % 7) {
+                x = x
+                    .wrapping_mul(6364136223846793005)
+                    .wrapping_add(1442695040888963407);
+                units.push((x >> 40) as u32 % 200);
+            }
+            let n = units.len();
+            out.push((
+                None,
+                inbound::Body::Spikes(v1::SpikeBatch {
+                    units,
+                    ticks: vec![tick; n],
+                    complete_through: tick,
+                }),
+            ));
+        }
+        out
+    }
+
+    fn run(threads: u32) -> Frames {
+        let (a, b) = (model(200, 4, 40, 1.0), model(200, 4, 40, 2.5));
+        let mut cfg = EngineConfig::new(1000.0);
+        cfg.role = combiner_role(threads);
+        let mut e = Engine::new(a, cfg.clone()).unwrap();
+        let mut workers = Workers::start(threads).unwrap();
+        let mut out = Frames::default();
+        let (names, current) = (TrialStimuli::default(), Arc::from(Vec::new()));
+        for (event, body) in session() {
+            match event {
+                Some(1) => e.set_model(b.clone()).unwrap(),
+                Some(2) => {
+                    cfg.policy.threshold = 0.6;
+                    e.set_config(cfg.clone()).unwrap();
+                }
+                _ => {}
+            }
+            let body = Arc::new(body);
+            if let Some(w) = workers.as_mut() {
+                w.sync(Some(&e), 1);
+                w.body(&body);
+            }
+            let _ = apply_body(
+                Some(&mut e),
+                None,
+                &names,
+                &current,
+                &body,
+                &mut out,
+                &mut Vec::new(),
+            );
+            if let Some(w) = &workers {
+                while let Ok(p) = w.partials.try_recv() {
+                    e.add_partial(&p.as_partial(), &mut out).unwrap();
+                }
+            }
+        }
+        if let Some(w) = &workers {
+            w.barrier();
+            while let Ok(p) = w.partials.try_recv() {
+                e.add_partial(&p.as_partial(), &mut out).unwrap();
+            }
+        }
+        assert_eq!(
+            e.open_trials().collect::<Vec<_>>(),
+            vec![14],
+            "only the last trial, cut by the end of the session, is open"
+        );
+        out.0.sort_by_key(|f| (f.0, f.1));
+        out
+    }
+
+    /// Worker threads, with a model swap and a policy change mid-session, give the frames of one
+    /// engine bit for bit; the role check refuses a part outside the parts.
+    #[test]
+    fn workers_with_a_model_swap_equal_one_engine() {
+        let one = run(1);
+        assert_eq!(
+            one.0.len(),
+            13 * 40 + 10,
+            "13 full trials and one cut by the end"
+        );
+        for threads in [2, 3, 5] {
+            let got = run(threads);
+            assert!(got.0 == one.0, "{threads} threads differ from one");
+        }
+        let mut c = EngineConfig::new(1000.0);
+        c.role = Role::Shard { part: 3, parts: 3 };
+        assert!(Engine::new(model(10, 2, 5, 1.0), c).is_err());
+    }
+}
