@@ -564,7 +564,11 @@ pub async fn start_daemon(
     threads: u32,
 ) -> anyhow::Result<auspexd::service::Running> {
     let model_path = dir.join(format!("bench-{nu}x{ns}.apxm"));
-    auspexd::model_file::save_model(&model_path, synthetic_model(nu, ns).spec(), "auspex bench")?;
+    auspex_proto::model_file::save_model(
+        &model_path,
+        synthetic_model(nu, ns).spec(),
+        "auspex bench",
+    )?;
     let ep = |name: &str| match transport {
         "ipc" => format!("ipc://{}/{name}.sock", dir.display()),
         _ => "tcp://127.0.0.1:0".to_string(),
@@ -722,7 +726,7 @@ pub async fn run(opts: &Options) -> anyhow::Result<Report> {
     let mut report = Report::default();
     match &opts.model {
         Some(path) => {
-            let (_, m) = auspexd::model_file::load_model(path)?;
+            let (_, m) = auspex_proto::model_file::load_model(path)?;
             eprintln!("auspex bench: timing {} …", path.display());
             let (dec, tb) = (opts.decoder, opts.table_bytes);
             let p = tokio::task::spawn_blocking(move || {

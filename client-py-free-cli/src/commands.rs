@@ -9,7 +9,7 @@ use auspex_engine::engine::{DecisionPolicy, Decoder, EngineConfig};
 use auspex_engine::fit::FitOptions;
 use auspex_engine::simulate::{simulate, Scenario, SimOptions};
 use auspex_engine::{Dataset, Model};
-use auspexd::model_file::{load_model, save_model};
+use auspex_proto::model_file::{load_model, save_model};
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
@@ -396,7 +396,7 @@ pub fn decode_cmd(
         );
     }
     // Decoding the very trials the model was fitted on flatters it: say so.
-    let in_sample = auspexd::model_file::training_data(model_path) == source.canonical();
+    let in_sample = auspex_proto::model_file::training_data(model_path) == source.canonical();
     if counters.unknown_unit_spikes > 0 {
         eprintln!(
             "note: {} spikes came from units the model does not have and were not used",

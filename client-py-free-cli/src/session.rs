@@ -302,7 +302,7 @@ fn offline_decisions(
     model_path: &std::path::Path,
     data: &auspex_engine::Dataset,
 ) -> anyhow::Result<SeenDecisions> {
-    let (_, model) = auspexd::model_file::load_model(model_path)?;
+    let (_, model) = auspex_proto::model_file::load_model(model_path)?;
     let model = std::sync::Arc::new(model);
     let mut sink = crate::offline::CsvSink::new(model.stimuli(), data, None::<std::io::Sink>);
     crate::offline::run_dataset(

@@ -39,7 +39,7 @@ async fn handle(bytes: &[u8], tx: &Sender<EngineInput>, table_bytes: usize) -> C
             let path = std::path::PathBuf::from(&r.path);
             let loaded = tokio::task::spawn_blocking(move || {
                 // Build the model's lookup tables here, off the engine thread.
-                crate::model_file::load_model(&path)
+                auspex_proto::model_file::load_model(&path)
                     .inspect(|(_, m)| m.prepare_with_lookup_budget(table_bytes))
             })
             .await;

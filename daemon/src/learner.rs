@@ -216,7 +216,7 @@ fn run(
                                 "learned during session {:?} from {n} labelled trials",
                                 st.name
                             );
-                            crate::model_file::save_model(&path, &spec, &what)
+                            auspex_proto::model_file::save_model(&path, &spec, &what)
                                 .map(|_| {
                                     format!(
                                         "{}: {} units × {} stimuli, {what}",

@@ -11,7 +11,10 @@ pub mod control;
 pub mod engine_thread;
 pub mod ingest;
 pub mod learner;
-pub mod model_file;
+/// Model files (kept here for existing callers; they live in `auspex_proto::model_file`).
+pub mod model_file {
+    pub use auspex_proto::model_file::*;
+}
 pub mod next_stimulus;
 pub mod promise;
 pub mod publish;

@@ -70,7 +70,7 @@ pub fn io_runtime() -> std::io::Result<tokio::runtime::Runtime> {
 pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
     let model = match &cfg.model {
         Some(path) => {
-            let (_, model) = crate::model_file::load_model(path)?;
+            let (_, model) = auspex_proto::model_file::load_model(path)?;
             let t0 = std::time::Instant::now();
             model.prepare_with_lookup_budget(cfg.table_memory_bytes);
             tracing::info!(

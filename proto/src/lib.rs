@@ -15,6 +15,7 @@ pub mod v1 {
 }
 
 pub mod crc32;
+pub mod model_file;
 pub mod session;
 pub mod stream;
 

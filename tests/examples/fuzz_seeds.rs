@@ -22,7 +22,7 @@ fn main() -> anyhow::Result<()> {
     let tmp = tempfile::tempdir()?;
     let m = small_model();
     let mp = tmp.path().join("m.apxm");
-    auspexd::model_file::save_model(&mp, m.spec(), "fuzz seed")?;
+    auspex_proto::model_file::save_model(&mp, m.spec(), "fuzz seed")?;
     put("model_file", "small.apxm", &std::fs::read(&mp)?)?;
 
     // Engine operations: open trial 1 at tick 5 as stimulus 1, spikes, advance, label, cancel.

@@ -333,7 +333,7 @@ fn scratch_file(name: &str, bytes: &[u8]) -> (tempfile::TempDir, std::path::Path
 /// limits) and decodes one trial.
 pub fn model_file(data: &[u8]) {
     let (_d, p) = scratch_file("m.apxm", data);
-    let Ok((_, m)) = auspexd::model_file::load_model(&p) else {
+    let Ok((_, m)) = auspex_proto::model_file::load_model(&p) else {
         return;
     };
     let m = Arc::new(m);

@@ -1,10 +1,11 @@
 //! Model files on disk: conversion between the engine's `ModelSpec` and the `ModelFile` schema,
-//! and loading/saving with errors that name the file.
+//! and loading/saving with errors that name the file. The one place either happens: the daemon
+//! and the command-line client both load and save through here.
 
+use crate::v1;
 use auspex_engine::calibrate::{Calibration, CalibrationMethod, ThresholdEvidence};
 use auspex_engine::count::{CountFamily, CountParams};
 use auspex_engine::model::{CellSpec, CellSummary, ModelSpec};
-use auspex_proto::v1;
 use std::path::Path;
 
 /// Why a model file could not be used.
@@ -25,7 +26,7 @@ pub enum ModelLoadError {
         /// The file.
         path: String,
         /// The cause.
-        cause: auspex_proto::ModelFileError,
+        cause: crate::ModelFileError,
         /// What the file looks like instead, if recognisable.
         hint: &'static str,
     },
@@ -61,7 +62,7 @@ fn family_from_proto(f: i32) -> Option<CountFamily> {
 /// Spec → file message.
 pub fn spec_to_proto(spec: &ModelSpec, training_data: &str) -> v1::ModelFile {
     v1::ModelFile {
-        format_version: auspex_proto::MODEL_FORMAT_VERSION,
+        format_version: crate::MODEL_FORMAT_VERSION,
         bin_width_s: spec.bin_width_s,
         n_bins: spec.n_bins,
         stimuli: spec.stimuli.clone(),
@@ -251,7 +252,7 @@ pub fn save_model(
     spec: &ModelSpec,
     training_data: &str,
 ) -> Result<(), ModelLoadError> {
-    let bytes = auspex_proto::encode_model_file(&spec_to_proto(spec, training_data));
+    let bytes = crate::encode_model_file(&spec_to_proto(spec, training_data));
     std::fs::write(path, bytes).map_err(|e| ModelLoadError::Io {
         path: path.display().to_string(),
         cause: e,
@@ -262,7 +263,7 @@ pub fn save_model(
 pub fn training_data(path: &Path) -> String {
     std::fs::read(path)
         .ok()
-        .and_then(|b| auspex_proto::decode_model_file(&b).ok())
+        .and_then(|b| crate::decode_model_file(&b).ok())
         .map(|m| m.training_data)
         .unwrap_or_default()
 }
@@ -274,7 +275,7 @@ pub fn load_model(path: &Path) -> Result<(ModelSpec, auspex_engine::Model), Mode
         path: p.clone(),
         cause: e,
     })?;
-    let m = auspex_proto::decode_model_file(&bytes).map_err(|e| ModelLoadError::Format {
+    let m = crate::decode_model_file(&bytes).map_err(|e| ModelLoadError::Format {
         path: p.clone(),
         hint: match bytes.iter().find(|b| !b.is_ascii_whitespace()) {
             Some(b'{') => " — this looks like JSON: `auspex export` writes JSON for reading; give the .apxm file `auspex fit` wrote",
