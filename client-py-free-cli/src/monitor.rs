@@ -72,6 +72,8 @@ pub struct MonitorState {
     correct: u64,
     /// Messages lost between daemon and monitor (per-topic sequence gaps).
     pub missed: u64,
+    /// Parts of the units missing from the latest frame (an engine thread stopped), bit mask.
+    pub missing_parts: u64,
     last_seq: [u64; 6],
     /// Summaries of sessions that ended while the monitor ran.
     pub sessions_ended: Vec<String>,
@@ -96,6 +98,7 @@ impl MonitorState {
             decided: 0,
             correct: 0,
             missed: 0,
+            missing_parts: 0,
             last_seq: [0; 6],
             sessions_ended: Vec::new(),
             policy: String::new(),
@@ -123,6 +126,7 @@ impl MonitorState {
                     self.trial_decision = None;
                 }
                 self.trial = Some((p.trial, p.bin, p.posterior.clone()));
+                self.missing_parts = p.missing_parts;
             }
             Some(outbound::Body::Decision(d)) => {
                 let at_ms = (d.bin as f64 + 1.0) * self.bin_ms;
@@ -364,10 +368,16 @@ impl MonitorState {
                 vec![Line::from("waiting for a trial…")],
             ),
             Some((trial, bin, post)) => {
-                let t = format!(
+                let mut t = format!(
                     "trial {trial} · {:.0} ms after onset",
                     (*bin as f64 + 1.0) * self.bin_ms
                 );
+                if self.missing_parts != 0 {
+                    t.push_str(&format!(
+                        " · WITHOUT the units of {} engine thread(s) (see the daemon log)",
+                        self.missing_parts.count_ones()
+                    ));
+                }
                 let width = area.width.saturating_sub(20) as f64;
                 let dec = self.trial_decision.as_ref().filter(|d| d.0 == *trial);
                 let mut lines: Vec<Line> = post

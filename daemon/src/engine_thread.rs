@@ -652,6 +652,22 @@ impl EngineThread {
             if self.engine.is_some() {
                 w.body(&body);
             }
+            let dead = w.dead_parts();
+            if let Some(e) = self.engine.as_mut() {
+                let newly = dead & !e.lost_parts();
+                if newly != 0 {
+                    tracing::error!(
+                        parts = format!("{newly:#b}"),
+                        "an engine thread stopped: its units contribute nothing from now on (frames say which parts are missing); restart the daemon"
+                    );
+                    let mut sink = pub_sink!(self);
+                    for p in 0..64 {
+                        if newly & (1u64 << p) != 0 {
+                            e.lose_part(p, &mut sink);
+                        }
+                    }
+                }
+            }
         }
         let mut sink = pub_sink!(self);
         let applied = apply_body(

@@ -65,6 +65,9 @@ enum WorkerMsg {
     Drop,
     /// Reply once everything before this is done (its partials are sent by then).
     Barrier(Sender<()>),
+    /// Stop as a panic would (tests of the engine thread's recovery only).
+    #[cfg(test)]
+    Crash,
 }
 
 /// The worker threads and what the engine thread last told them.
@@ -78,6 +81,8 @@ pub struct Workers {
     handles: Vec<JoinHandle<()>>,
     /// (engine generation, model, configuration) last sent.
     sent: Option<(u64, Arc<Model>, EngineConfig)>,
+    /// Parts whose worker has stopped (bit p: part p), found when a send fails.
+    dead: std::cell::Cell<u64>,
 }
 
 struct PartialSink<'a> {
@@ -142,6 +147,7 @@ impl Workers {
             recycle: rtx,
             handles,
             sent: None,
+            dead: std::cell::Cell::new(0),
         }))
     }
 
@@ -151,9 +157,18 @@ impl Workers {
     }
 
     fn send(&self, f: impl Fn() -> WorkerMsg) {
-        for tx in &self.txs {
-            let _ = tx.send(f());
+        for (i, tx) in self.txs.iter().enumerate() {
+            if tx.send(f()).is_err() {
+                // The worker has stopped (it can only have panicked): its part is lost.
+                self.dead.set(self.dead.get() | 1u64 << (i + 1));
+            }
         }
+    }
+
+    /// Parts whose worker has stopped (bit p: part p). The engine thread gives them up
+    /// (`Engine::lose_part`) so decoding goes on without their units, said in every frame.
+    pub fn dead_parts(&self) -> u64 {
+        self.dead.get()
     }
 
     /// Brings the workers to the combiner's model and configuration (`generation` changes each
@@ -205,7 +220,8 @@ impl Workers {
         self.send(|| WorkerMsg::Barrier(tx.clone()));
         drop(tx);
         for _ in 0..self.txs.len() {
-            if rx.recv().is_err() {
+            // A worker that stopped never answers; its part is marked dead by `send`.
+            if rx.recv_timeout(std::time::Duration::from_secs(5)).is_err() {
                 break;
             }
         }
@@ -305,6 +321,8 @@ fn worker(
             WorkerMsg::Barrier(done) => {
                 let _ = done.send(());
             }
+            #[cfg(test)]
+            WorkerMsg::Crash => return,
         }
     }
 }
@@ -456,6 +474,67 @@ mod tests {
         );
         out.0.sort_by_key(|f| (f.0, f.1));
         out
+    }
+
+    /// A worker that stops is found at the next hand-off; the combiner gives its part up, the
+    /// trial still completes, and its frames name the missing part.
+    #[test]
+    fn a_stopped_worker_is_found_and_its_part_given_up() {
+        let m = model(200, 4, 40, 1.0);
+        let mut cfg = EngineConfig::new(1000.0);
+        cfg.role = combiner_role(3);
+        let mut e = Engine::new(m, cfg).unwrap();
+        let mut w = Workers::start(3).unwrap().unwrap();
+        w.sync(Some(&e), 1);
+        let _ = w.txs[1].send(WorkerMsg::Crash);
+        w.handles.remove(1).join().unwrap();
+        let (names, current) = (TrialStimuli::default(), Arc::from(Vec::new()));
+        #[derive(Default)]
+        struct Lost(Vec<u64>);
+        impl EngineSink for Lost {
+            fn frame(&mut self, f: &Frame<'_>) {
+                self.0.push(f.lost_parts);
+            }
+        }
+        let mut lost = Lost::default();
+        for (_, body) in session().into_iter().take(60) {
+            let body = Arc::new(body);
+            w.body(&body);
+            let dead = w.dead_parts();
+            let newly = dead & !e.lost_parts();
+            for p in 0..64 {
+                if newly & (1u64 << p) != 0 {
+                    e.lose_part(p, &mut lost);
+                }
+            }
+            let _ = apply_body(
+                Some(&mut e),
+                None,
+                &names,
+                &current,
+                &body,
+                &mut lost,
+                &mut Vec::new(),
+            );
+            while let Ok(p) = w.partials.try_recv() {
+                let _ = e.add_partial(&p.as_partial(), &mut lost);
+            }
+        }
+        w.barrier();
+        while let Ok(p) = w.partials.try_recv() {
+            let _ = e.add_partial(&p.as_partial(), &mut lost);
+        }
+        assert_eq!(w.dead_parts(), 1 << 2, "the second worker computes part 2");
+        // 60 bodies: onsets at ticks 0 and 30 and batches for ticks 0..=57.
+        assert_eq!(
+            lost.0.len(),
+            40 + 28,
+            "trial 1 whole, trial 2 up to the last batch"
+        );
+        assert!(
+            lost.0.iter().all(|&l| l == 1 << 2),
+            "every frame names part 2"
+        );
     }
 
     /// Worker threads, with a model swap and a policy change mid-session, give the frames of one

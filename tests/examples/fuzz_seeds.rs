@@ -53,6 +53,7 @@ fn main() -> anyhow::Result<()> {
                 top_posterior: 0.5,
                 entropy_bits: 1.4,
                 spikes: 2,
+                missing_parts: 0,
             }),
         ),
         (

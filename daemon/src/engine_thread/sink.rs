@@ -75,6 +75,7 @@ impl EngineSink for PubSink<'_> {
             top_posterior: f.top_posterior,
             entropy_bits: f.entropy_bits,
             spikes: f.spikes,
+            missing_parts: f.lost_parts,
         });
         self.publisher.publish(topic::POSTERIOR, body, false);
     }
