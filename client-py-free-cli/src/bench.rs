@@ -39,16 +39,7 @@ pub fn synthetic_model(nu: usize, ns: usize) -> Arc<Model> {
         }
     }
     Arc::new(
-        Model::new(ModelSpec {
-            bin_width_s: 0.001,
-            n_bins: BINS as u32,
-            stimuli: (0..ns).map(|s| format!("s{s}")).collect(),
-            units: (0..nu as u32).collect(),
-            prior: vec![1.0; ns],
-            cells,
-            calibration: Default::default(),
-        })
-        .expect("synthetic model is valid"),
+        Model::new(ModelSpec::numbered(nu, ns, BINS, cells)).expect("synthetic model is valid"),
     )
 }
 

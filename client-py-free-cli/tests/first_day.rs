@@ -2,21 +2,8 @@
 //! names the file, and where it can, says what the file looks like instead; decoding the
 //! training trials says it is in sample.
 
-use std::path::Path;
-use std::process::Command;
-
-fn auspex(dir: &Path, args: &[&str]) -> (bool, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_auspex"))
-        .current_dir(dir)
-        .args(args)
-        .output()
-        .unwrap();
-    (
-        out.status.success(),
-        String::from_utf8_lossy(&out.stdout).to_string(),
-        String::from_utf8_lossy(&out.stderr).to_string(),
-    )
-}
+mod common;
+use common::auspex;
 
 #[test]
 fn model_file_mistakes_are_named_once_with_a_hint() {

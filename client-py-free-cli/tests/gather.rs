@@ -2,21 +2,8 @@
 //! array would), merged into one CSV whose rows carry each session's own figures; an unreadable
 //! file is named and fails the command after the readable rows are written.
 
-use std::path::Path;
-use std::process::Command;
-
-fn auspex(dir: &Path, args: &[&str]) -> (bool, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_auspex"))
-        .current_dir(dir)
-        .args(args)
-        .output()
-        .unwrap();
-    (
-        out.status.success(),
-        String::from_utf8_lossy(&out.stdout).to_string(),
-        String::from_utf8_lossy(&out.stderr).to_string(),
-    )
-}
+mod common;
+use common::auspex;
 
 #[test]
 fn sessions_validated_apart_merge_into_one_table() {

@@ -355,18 +355,7 @@ mod tests {
                 });
             }
         }
-        Arc::new(
-            Model::new(ModelSpec {
-                bin_width_s: 0.001,
-                n_bins: nb as u32,
-                stimuli: (0..ns).map(|s| format!("s{s}")).collect(),
-                units: (0..nu as u32).collect(),
-                prior: vec![1.0; ns],
-                cells,
-                calibration: Default::default(),
-            })
-            .unwrap(),
-        )
+        Arc::new(Model::new(ModelSpec::numbered(nu, ns, nb, cells)).unwrap())
     }
 
     #[derive(Default)]

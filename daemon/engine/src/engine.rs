@@ -1580,6 +1580,15 @@ fn local_units(m: &Model, blocks: &std::ops::Range<usize>) -> std::ops::Range<us
     m.blocks[blocks.start].start..m.blocks[blocks.end - 1].end
 }
 
+/// A block's partial before its spiking units' terms: the spikes' `Σ ln q`, the count
+/// constants and the block's per-bin silence sums, stimulus by stimulus.
+#[inline]
+fn silent_sum(out: &mut [f64], pop_spike: &[f64], cc_sum: &[f64], sums: &[f64]) {
+    for (((l, p), c), x) in out.iter_mut().zip(pop_spike).zip(cc_sum).zip(sums) {
+        *l = p + c + x;
+    }
+}
+
 /// Block `j`'s partial log-likelihood at the end of bin `b`, into `t.blk_ll`: the same
 /// mathematics as a whole-population pass, over the block's units only.
 fn block_partial(t: &mut TrialState, m: &Model, j: usize, b: usize, last: bool) {
@@ -1611,26 +1620,12 @@ fn block_partial(t: &mut TrialState, m: &Model, j: usize, b: usize, last: bool) 
         Decoder::InhomogeneousPoisson => {
             let sums = &m.rate_sum[(j * nb + b) * ns..(j * nb + b + 1) * ns];
             let out = &mut t.blk_ll[row.clone()];
-            for (((l, p), c), x) in out
-                .iter_mut()
-                .zip(&t.pop_spike[row.clone()])
-                .zip(&t.cc_sum[row.clone()])
-                .zip(sums)
-            {
-                *l = p + c + x;
-            }
+            silent_sum(out, &t.pop_spike[row.clone()], &t.cc_sum[row], sums);
         }
         Decoder::OrderStats => {
             let sums = &m.order_stats_sum[(j * nb + b) * ns..(j * nb + b + 1) * ns];
             let out = &mut t.blk_ll[row.clone()];
-            for (((l, p), c), x) in out
-                .iter_mut()
-                .zip(&t.pop_spike[row.clone()])
-                .zip(&t.cc_sum[row.clone()])
-                .zip(sums)
-            {
-                *l = p + c + x;
-            }
+            silent_sum(out, &t.pop_spike[row.clone()], &t.cc_sum[row.clone()], sums);
             let act = &t.active[units.start..units.start + t.active_n[j] as usize];
             let k = &t.k;
             // Negative binomial cells of units that have spiked: the k-dependent part.

@@ -56,6 +56,22 @@ pub struct ModelSpec {
     pub calibration: Calibration,
 }
 
+impl ModelSpec {
+    /// A spec for synthetic models (benchmarks, tests, fuzzing): units numbered 0.., stimuli
+    /// named `s0`, `s1`…, a flat prior, no calibration; `cells` unit-major, `n_bins` each.
+    pub fn numbered(n_units: usize, n_stimuli: usize, n_bins: usize, cells: Vec<CellSpec>) -> Self {
+        ModelSpec {
+            bin_width_s: 0.001,
+            n_bins: n_bins as u32,
+            stimuli: (0..n_stimuli).map(|s| format!("s{s}")).collect(),
+            units: (0..n_units as u32).collect(),
+            prior: vec![1.0; n_stimuli],
+            cells,
+            calibration: Default::default(),
+        }
+    }
+}
+
 /// Why a model could not be built.
 #[derive(Debug, thiserror::Error)]
 pub enum ModelError {

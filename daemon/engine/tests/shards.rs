@@ -83,6 +83,26 @@ impl EngineSink for Partials {
     }
 }
 
+/// Hands an owned partial to a combiner.
+fn give(
+    comb: &mut Engine,
+    p: &OwnedPartial,
+    sink: &mut dyn EngineSink,
+) -> Result<(), auspex_engine::engine::EngineError> {
+    let (trial, bin, first_block, values, spikes, units) = p;
+    comb.add_partial(
+        &Partial {
+            trial: *trial,
+            bin: *bin,
+            first_block: *first_block,
+            values,
+            spikes: *spikes,
+            units: units.as_ref().map(|(l, k)| (&l[..], &k[..])),
+        },
+        sink,
+    )
+}
+
 fn family(kind: u8, x: f64) -> CountParams {
     match kind % 4 {
         0 => CountParams::Poisson {
@@ -289,30 +309,14 @@ fn sharded(
             held.shuffle(&mut rng);
             // Some partials now (ahead of the combiner's watermark), some later.
             let now = rng.gen_range(0..=held.len());
-            for (trial, bin, first_block, values, spikes, units) in held.drain(..now) {
-                let p = Partial {
-                    trial,
-                    bin,
-                    first_block,
-                    values: &values,
-                    spikes,
-                    units: units.as_ref().map(|(l, k)| (&l[..], &k[..])),
-                };
-                comb.add_partial(&p, &mut out).unwrap();
+            for p in held.drain(..now) {
+                give(&mut comb, &p, &mut out).unwrap();
             }
             comb.advance(w, &mut out).unwrap();
         }
     });
-    for (trial, bin, first_block, values, spikes, units) in held.drain(..) {
-        let p = Partial {
-            trial,
-            bin,
-            first_block,
-            values: &values,
-            spikes,
-            units: units.as_ref().map(|(l, k)| (&l[..], &k[..])),
-        };
-        comb.add_partial(&p, &mut out).unwrap();
+    for p in held.drain(..) {
+        give(&mut comb, &p, &mut out).unwrap();
     }
     assert_eq!(comb.counters().stray_partials, 0);
     out.sorted()
@@ -387,16 +391,8 @@ fn a_lost_part_is_named_in_every_frame_and_trials_still_finish() {
     shard1.advance(20, &mut p).unwrap();
     comb.advance(20, &mut seen).unwrap();
     assert!(seen.0.is_empty(), "part 2 has not reported: no frame yet");
-    for (trial, bin, first_block, values, spikes, units) in &p.0 {
-        let p = Partial {
-            trial: *trial,
-            bin: *bin,
-            first_block: *first_block,
-            values,
-            spikes: *spikes,
-            units: units.as_ref().map(|(l, k)| (&l[..], &k[..])),
-        };
-        comb.add_partial(&p, &mut seen).unwrap();
+    for p in &p.0 {
+        give(&mut comb, p, &mut seen).unwrap();
     }
     assert!(seen.0.is_empty(), "part 2 still missing");
     comb.lose_part(2, &mut seen);

@@ -48,18 +48,7 @@ pub fn model_at(nu: usize, ns: usize, family: &str, mean_count: f64) -> Arc<Mode
             });
         }
     }
-    Arc::new(
-        Model::new(ModelSpec {
-            bin_width_s: 0.001,
-            n_bins: BINS as u32,
-            stimuli: (0..ns).map(|s| format!("s{s}")).collect(),
-            units: (0..nu as u32).collect(),
-            prior: vec![1.0; ns],
-            cells,
-            calibration: Default::default(),
-        })
-        .unwrap(),
-    )
+    Arc::new(Model::new(ModelSpec::numbered(nu, ns, BINS, cells)).unwrap())
 }
 
 /// Spike bins of one trial: each unit fires `mean_count` spikes spread over the window
