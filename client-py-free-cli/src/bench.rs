@@ -60,6 +60,31 @@ fn trial_spikes(nu: usize, seed: u64) -> Vec<Vec<u32>> {
     per_bin
 }
 
+/// Decodes whole synthetic trials of `nu` units with `run_trial(trial, onset, spike bins)` for
+/// about `budget` (at least 3, at most 200 trials); the median time per 1 ms bin, µs.
+fn median_us_per_bin(
+    nu: usize,
+    budget: Duration,
+    mut run_trial: impl FnMut(u64, i64, &[Vec<u32>]) -> anyhow::Result<()>,
+) -> anyhow::Result<f64> {
+    let spikes: Vec<Vec<Vec<u32>>> = (0..4).map(|i| trial_spikes(nu, i)).collect();
+    let mut per_bin = Vec::new();
+    let t_all = Instant::now();
+    let mut trial = 0u64;
+    while (t_all.elapsed() < budget || per_bin.len() < 3) && per_bin.len() < 200 {
+        trial += 1;
+        let t0 = Instant::now();
+        run_trial(
+            trial,
+            trial as i64 * 1000,
+            &spikes[trial as usize % spikes.len()],
+        )?;
+        per_bin.push(t0.elapsed().as_secs_f64() * 1e6 / BINS as f64);
+    }
+    per_bin.sort_by(|a, b| a.total_cmp(b));
+    Ok(per_bin[per_bin.len() / 2])
+}
+
 /// Engine cost at one size.
 #[derive(Clone, Debug, serde::Serialize)]
 pub struct EnginePoint {
@@ -77,15 +102,7 @@ pub struct EnginePoint {
 pub fn engine_point(nu: usize, ns: usize, budget: Duration) -> EnginePoint {
     let m = synthetic_model(nu, ns);
     let mut e = Engine::new(m, EngineConfig::new(1000.0)).expect("engine");
-    let spikes: Vec<Vec<Vec<u32>>> = (0..4).map(|i| trial_spikes(nu, i)).collect();
-    let mut per_bin = Vec::new();
-    let t_all = Instant::now();
-    let mut trial = 0u64;
-    while (t_all.elapsed() < budget || per_bin.len() < 3) && per_bin.len() < 200 {
-        trial += 1;
-        let onset = trial as i64 * 1000;
-        let sp = &spikes[trial as usize % spikes.len()];
-        let t0 = Instant::now();
+    let us = median_us_per_bin(nu, budget, |trial, onset, sp| {
         let _ = e.open_trial(trial, onset, Some(0), &mut NullSink);
         for (b, units) in sp.iter().enumerate() {
             for &u in units {
@@ -93,10 +110,9 @@ pub fn engine_point(nu: usize, ns: usize, budget: Duration) -> EnginePoint {
             }
             let _ = e.advance(onset + b as i64, &mut NullSink);
         }
-        per_bin.push(t0.elapsed().as_secs_f64() * 1e6 / BINS as f64);
-    }
-    per_bin.sort_by(|a, b| a.total_cmp(b));
-    let us = per_bin[per_bin.len() / 2];
+        Ok(())
+    })
+    .expect("the single engine does not fail");
     EnginePoint {
         units: nu,
         stimuli: ns,
@@ -146,16 +162,8 @@ pub fn thread_point(m: &Arc<Model>, threads: u32, budget: Duration) -> anyhow::R
     if let Some(w) = workers.as_mut() {
         w.sync(Some(&e), 1);
     }
-    let spikes: Vec<Vec<Vec<u32>>> = (0..4).map(|i| trial_spikes(nu, i)).collect();
-    let mut per_bin = Vec::new();
     let mut sink = Ends::default();
-    let t_all = Instant::now();
-    let mut trial = 0u64;
-    while (t_all.elapsed() < budget || per_bin.len() < 3) && per_bin.len() < 200 {
-        trial += 1;
-        let onset = trial as i64 * 1000;
-        let sp = &spikes[trial as usize % spikes.len()];
-        let t0 = Instant::now();
+    let us = median_us_per_bin(nu, budget, |trial, onset, sp| {
         let onset_body = Arc::new(Body::Onset(v1::TrialOnset {
             trial,
             onset_tick: onset,
@@ -199,10 +207,9 @@ pub fn thread_point(m: &Arc<Model>, threads: u32, budget: Duration) -> anyhow::R
                 Err(_) => anyhow::bail!("engine threads stopped answering"),
             }
         }
-        per_bin.push(t0.elapsed().as_secs_f64() * 1e6 / BINS as f64);
-    }
-    per_bin.sort_by(|a, b| a.total_cmp(b));
-    Ok((per_bin[per_bin.len() / 2], sink.1))
+        Ok(())
+    })?;
+    Ok((us, sink.1))
 }
 
 /// Thread scaling at the given sizes for 1 ..= `max_threads` threads, printed with a

@@ -16,21 +16,14 @@ fn model(
     let timing: Vec<f64> = (0..nb).map(|b| 1.0 + (b % 17) as f64).collect();
     let z: f64 = timing.iter().sum();
     let timing: Vec<f64> = timing.iter().map(|x| x / z).collect();
-    ModelSpec {
-        bin_width_s: 0.001,
-        n_bins: nb as u32,
-        stimuli: (0..ns).map(|s| format!("s{s}")).collect(),
-        units: (0..nu as u32).collect(),
-        prior: vec![1.0; ns],
-        cells: (0..nu * ns)
-            .map(|i| CellSpec {
-                count: count(i / ns, i % ns),
-                timing: timing.clone(),
-                summary: CellSummary::default(),
-            })
-            .collect(),
-        calibration: Default::default(),
-    }
+    let cells = (0..nu * ns)
+        .map(|i| CellSpec {
+            count: count(i / ns, i % ns),
+            timing: timing.clone(),
+            summary: CellSummary::default(),
+        })
+        .collect();
+    ModelSpec::numbered(nu, ns, nb, cells)
 }
 
 fn time(name: &str, spec: ModelSpec) {
