@@ -374,7 +374,8 @@ impl MonitorState {
                 );
                 if self.missing_parts != 0 {
                     t.push_str(&format!(
-                        " · WITHOUT the units of {} engine thread(s) (see the daemon log)",
+                        // Short enough for the panel's title on an 80-column screen.
+                        " · WITHOUT units of {} thread(s)",
                         self.missing_parts.count_ones()
                     ));
                 }
@@ -878,6 +879,31 @@ mod tests {
         assert_eq!(st.unit_rows()[0].0, 101);
         st.select(1);
         assert!(render(&st).contains("unit 102: tuning"));
+    }
+
+    /// A frame without some units says so in the posterior panel's title.
+    #[test]
+    fn a_frame_missing_units_says_so() {
+        let mut st = MonitorState::new(vec!["N".into(), "S".into()], 0.001);
+        let frame = |missing_parts| v1::Outbound {
+            seq: 1,
+            body: Some(outbound::Body::Posterior(v1::PosteriorFrame {
+                trial: 3,
+                bin: 9,
+                posterior: vec![0.7, 0.3],
+                missing_parts,
+                ..Default::default()
+            })),
+            ..Default::default()
+        };
+        st.apply("posterior", &frame(1 << 2));
+        let screen = render(&st);
+        assert!(
+            screen.contains("trial 3 · 10 ms after onset · WITHOUT units of 1 thread(s)"),
+            "{screen}"
+        );
+        st.apply("posterior", &frame(0));
+        assert!(!render(&st).contains("WITHOUT"));
     }
 
     #[test]

@@ -67,7 +67,8 @@ mod tests {
     fn bins_are_whole_numbers_of_ticks() {
         assert_eq!(bin_ticks(0.001, 30_000.0), Ok(30));
         assert_eq!(bin_ticks(0.001, 1e6), Ok(1000));
-        // 1 ms at 24 414.0625 Hz (a common acquisition rate) is 24.4 ticks: refused, not rounded.
+        // 1 ms at 24 414.0625 Hz (a rate some acquisition systems use; common practice, from
+        // memory) is 24.4 ticks: refused, not rounded.
         assert!(matches!(
             bin_ticks(0.001, 24_414.062_5),
             Err(TickError::NotWhole { .. })
