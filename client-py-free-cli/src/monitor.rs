@@ -894,7 +894,6 @@ mod tests {
                 missing_parts,
                 ..Default::default()
             })),
-            ..Default::default()
         };
         st.apply("posterior", &frame(1 << 2));
         let screen = render(&st);
