@@ -112,6 +112,8 @@ pub struct FitArgs {
     pub min_time_ms: f64,
     /// The order to list stimuli in (empty: numeric if every name is a number, else as first met).
     pub stimulus_order: Vec<String>,
+    /// Unit ids at which a new unit group starts (empty: one group; see `auspexd --role shard`).
+    pub unit_groups: Vec<u32>,
     /// No per-cell table.
     pub quiet: bool,
 }
@@ -128,6 +130,7 @@ impl Default for FitArgs {
             calibration_folds: 5,
             min_time_ms: DecisionPolicy::default().min_time_s * 1000.0,
             stimulus_order: Vec::new(),
+            unit_groups: Vec::new(),
             quiet: false,
         }
     }
@@ -189,10 +192,59 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
             ),
         }
     }
+    spec.unit_groups = group_starts(&spec.units, &args.unit_groups)?;
+    if !spec.unit_groups.is_empty() {
+        let mut sizes = Vec::new();
+        let mut a = 0;
+        for &s in spec
+            .unit_groups
+            .iter()
+            .chain([spec.units.len() as u32].iter())
+        {
+            sizes.push(format!(
+                "{} units from id {}",
+                s - a,
+                spec.units[a as usize]
+            ));
+            a = s;
+        }
+        eprintln!("unit groups (one per shard machine): {}", sizes.join("; "));
+    }
     let model = Model::new(spec.clone())?;
     save_model(out, &spec, &source.canonical())?;
     eprintln!("model written to {}", out.display());
     Ok(model)
+}
+
+/// The unit index at which each group starts, from the unit ids that start them (`fit
+/// --unit-groups`): group g holds the units with ids from its starting id up to the next one.
+pub fn group_starts(units: &[u32], first_ids: &[u32]) -> anyhow::Result<Vec<u32>> {
+    if first_ids.is_empty() {
+        return Ok(Vec::new());
+    }
+    if units.windows(2).any(|w| w[0] >= w[1]) {
+        anyhow::bail!("--unit-groups needs the model's units in ascending id order");
+    }
+    let mut out = Vec::new();
+    let mut prev: Option<u32> = None;
+    for &id in first_ids {
+        if prev.is_some_and(|p| id <= p) {
+            anyhow::bail!("--unit-groups {id}: give the first unit ids in ascending order");
+        }
+        let i = units.partition_point(|&u| u < id) as u32;
+        let before = out.last().copied().unwrap_or(0);
+        if i == before || i as usize == units.len() {
+            anyhow::bail!(
+                "--unit-groups {id}: the group {} would have no unit (the model's unit ids run {}..={})",
+                if i as usize == units.len() { "starting there" } else { "before it" },
+                units.first().copied().unwrap_or(0),
+                units.last().copied().unwrap_or(0)
+            );
+        }
+        out.push(i);
+        prev = Some(id);
+    }
+    Ok(out)
 }
 
 /// Cross-validated calibration of a model fitted on `data` with `opts`.

@@ -159,6 +159,10 @@ enum Cmd {
         /// its tables [default: numeric when every name is a number, else as first met]
         #[arg(long, value_delimiter = ',')]
         stimulus_order: Vec<String>,
+        /// Cut the units into groups, one per shard machine (`auspexd --role shard`): the first
+        /// unit id of each group after the first, comma-separated, e.g. 1000,2000
+        #[arg(long, value_delimiter = ',', value_name = "ID,...")]
+        unit_groups: Vec<u32>,
         /// Do not print the per-cell table
         #[arg(long)]
         quiet: bool,
@@ -493,6 +497,7 @@ fn main() {
             calibration_folds,
             min_time_ms,
             stimulus_order,
+            unit_groups,
             quiet,
         } => commands::fit_cmd(
             &tables.source(),
@@ -507,6 +512,7 @@ fn main() {
                 calibration_folds,
                 min_time_ms,
                 stimulus_order,
+                unit_groups,
                 quiet,
             },
         )

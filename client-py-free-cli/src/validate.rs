@@ -1220,6 +1220,7 @@ fn shuffle_null(
                 prior: prior.clone(),
                 cells: cells.into_iter().collect::<Vec<CellSpec>>(),
                 calibration: Default::default(),
+                unit_groups: Vec::new(),
             })?;
             window_end_confusions(&model, bins, labels, &f.test, &mut pop, &mut units);
         }

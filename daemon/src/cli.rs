@@ -87,6 +87,25 @@ pub struct DaemonArgs {
     /// Engine threads sharing the model's units; frames are identical for any number (`auspex bench` recommends one) [default: 1]
     #[arg(long, value_name = "N")]
     pub threads: Option<u32>,
+    /// Place in a deployment across machines: whole (decode every unit here), shard (decode one
+    /// part of the units, for a combiner) or combine (add the shards' parts, publish, serve control) [default: whole]
+    #[arg(long, value_parser = ["whole", "shard", "combine"])]
+    pub role: Option<String>,
+    /// A shard's part, 0-based (the model's unit group when it has one per shard)
+    #[arg(long, value_name = "P")]
+    pub part: Option<u32>,
+    /// A shard's number of parts: the combiner's --shard count
+    #[arg(long, value_name = "N")]
+    pub parts: Option<u32>,
+    /// A shard's link endpoint, bound; its combiner connects here [default: tcp://127.0.0.1:7714]
+    #[arg(long, value_name = "ENDPOINT")]
+    pub link: Option<String>,
+    /// A combiner's shard: its link endpoint; once per shard, in part order
+    #[arg(long = "shard", value_name = "ENDPOINT")]
+    pub shards: Vec<String>,
+    /// How long a shard may stay silent before the combiner goes on without its units, ms [default: 500]
+    #[arg(long, value_name = "MS")]
+    pub shard_deadline_ms: Option<f64>,
 }
 
 /// Runs the daemon from flags; returns the process exit code.
@@ -138,6 +157,10 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
     }
     if a.threads.is_some() {
         f.threads = a.threads;
+    }
+    over!(role, part, parts, link, shard_deadline_ms);
+    if !a.shards.is_empty() {
+        f.shards = Some(a.shards.clone());
     }
     if a.tick_rate.is_some() {
         f.tick_rate_hz = a.tick_rate;

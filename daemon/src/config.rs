@@ -74,6 +74,54 @@ pub struct FileConfig {
     pub refit_every_trials: Option<u32>,
     /// ... or after this many seconds with at least one.
     pub refit_every_s: Option<f64>,
+    /// "whole" (default), "shard" or "combine": see [`Deployment`].
+    pub role: Option<String>,
+    /// A shard's part (0-based, of `parts`).
+    pub part: Option<u32>,
+    /// Parts of the deployment (a shard's; a combiner counts its `shards`).
+    pub parts: Option<u32>,
+    /// A shard's link endpoint (bound; its combiner connects).
+    pub link: Option<String>,
+    /// A combiner's shards' link endpoints, in part order.
+    pub shards: Option<Vec<String>>,
+    /// How long a shard may stay silent before the combiner goes on without it, ms.
+    pub shard_deadline_ms: Option<f64>,
+}
+
+/// Where this daemon sits in a deployment across machines.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Deployment {
+    /// Decodes every unit itself (possibly on several threads).
+    Whole,
+    /// Decodes part `part` of `parts` of the units and sends their partial log-likelihoods to
+    /// the combiner connected to its link endpoint; takes trial messages from it.
+    Shard {
+        /// Which part (0-based).
+        part: u32,
+        /// Of how many.
+        parts: u32,
+        /// Link endpoint (bound).
+        link: String,
+    },
+    /// Adds its shards' partials, publishes posteriors and decisions, serves control, relays
+    /// trial messages to the shards.
+    Combine {
+        /// The shards' link endpoints (connected), in part order.
+        shards: Vec<String>,
+        /// Silence after which a shard's units are given up.
+        deadline: std::time::Duration,
+    },
+}
+
+impl Deployment {
+    /// The role's name as flags and status give it.
+    pub fn name(&self) -> &'static str {
+        match self {
+            Deployment::Whole => "whole",
+            Deployment::Shard { .. } => "shard",
+            Deployment::Combine { .. } => "combine",
+        }
+    }
 }
 
 /// Learning settings as validated (window and bin settled at start when a model is loaded).
@@ -136,6 +184,8 @@ pub struct DaemonConfig {
     pub table_memory_bytes: usize,
     /// Engine threads (1: the engine thread alone).
     pub threads: u32,
+    /// Whole daemon, shard or combiner.
+    pub deployment: Deployment,
 }
 
 /// Default endpoints: loopback only.
@@ -148,6 +198,10 @@ pub mod defaults {
     pub const PUBLISH: &str = "tcp://127.0.0.1:7712";
     /// Control.
     pub const CONTROL: &str = "tcp://127.0.0.1:7713";
+    /// A shard's link to its combiner.
+    pub const LINK: &str = "tcp://127.0.0.1:7714";
+    /// How long a shard may stay silent before its combiner goes on without it, ms.
+    pub const SHARD_DEADLINE_MS: f64 = 500.0;
 }
 
 /// True when the endpoint only listens on this machine (ipc, inproc, or a loopback address).
@@ -168,6 +222,7 @@ pub fn is_local_endpoint(ep: &str) -> bool {
 
 /// Builds and checks the configuration. `warnings` receives what should be printed.
 pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfig, String> {
+    let deployment = deployment(&f)?;
     let model = f.model;
     let learn_on = f.learn.unwrap_or(model.is_none());
     if model.is_none() && !learn_on {
@@ -232,6 +287,25 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
     } else {
         None
     };
+    if deployment != Deployment::Whole {
+        if model.is_none() || f.learn == Some(true) {
+            return Err(format!(
+                "--role {} decodes with a fixed model: give --model (every shard and the combiner load the same file) and leave learning to a whole daemon",
+                deployment.name()
+            ));
+        }
+        if f.threads.is_some_and(|t| t > 1) {
+            return Err(format!(
+                "--threads is for a whole daemon; a {} runs one engine thread (add shards to use more machines)",
+                deployment.name()
+            ));
+        }
+    }
+    let learn = if deployment == Deployment::Whole {
+        learn
+    } else {
+        None
+    };
     let allow_remote = f.allow_remote.unwrap_or(false);
     let ingest = f.ingest.unwrap_or_else(|| defaults::INGEST.into());
     let task_ingest = match f.task_ingest {
@@ -248,6 +322,9 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
     ];
     if let Some(t) = &task_ingest {
         all.push(("task ingest", t));
+    }
+    if let Deployment::Shard { link, .. } = &deployment {
+        all.push(("link", link));
     }
     let mut seen = std::collections::HashSet::new();
     for (name, ep) in &all {
@@ -321,6 +398,7 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
         ));
     }
     Ok(DaemonConfig {
+        deployment,
         threads,
         table_memory_bytes: (table_mb as usize) << 20,
         model,
@@ -342,6 +420,75 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
         publish_queue: 1 << 14,
         health_period: std::time::Duration::from_secs(1),
     })
+}
+
+/// The deployment role from the flags, checked.
+fn deployment(f: &FileConfig) -> Result<Deployment, String> {
+    let role = f.role.as_deref().unwrap_or("whole");
+    let only = |what: &str, given: bool, role_needed: &str| -> Result<(), String> {
+        if given && role != role_needed {
+            return Err(format!("{what} is for --role {role_needed}"));
+        }
+        Ok(())
+    };
+    only(
+        "--part/--parts",
+        f.part.is_some() || f.parts.is_some(),
+        "shard",
+    )?;
+    only("--link", f.link.is_some(), "shard")?;
+    only("--shard", f.shards.is_some(), "combine")?;
+    only(
+        "--shard-deadline-ms",
+        f.shard_deadline_ms.is_some(),
+        "combine",
+    )?;
+    match role {
+        "whole" => Ok(Deployment::Whole),
+        "shard" => {
+            let (Some(part), Some(parts)) = (f.part, f.parts) else {
+                return Err("--role shard needs --part P --parts N: this shard's part (0-based) of the combiner's N shards".into());
+            };
+            let max = auspex_engine::engine::MAX_PARTS;
+            if !(1..=max).contains(&parts) || part >= parts {
+                return Err(format!(
+                    "--part {part} --parts {parts}: parts must be 1..={max} and the part 0..parts"
+                ));
+            }
+            Ok(Deployment::Shard {
+                part,
+                parts,
+                link: f.link.clone().unwrap_or_else(|| defaults::LINK.into()),
+            })
+        }
+        "combine" => {
+            let shards = f.shards.clone().unwrap_or_default();
+            let max = auspex_engine::engine::MAX_PARTS as usize;
+            if shards.is_empty() || shards.len() > max {
+                return Err(format!(
+                    "--role combine needs --shard ENDPOINT once per shard, in part order (1 to {max})"
+                ));
+            }
+            for ep in &shards {
+                if !ep.starts_with("tcp://") && !ep.starts_with("ipc://") {
+                    return Err(format!(
+                        "--shard `{ep}` must be a shard's link endpoint, tcp://HOST:PORT or ipc://PATH"
+                    ));
+                }
+            }
+            let ms = f.shard_deadline_ms.unwrap_or(defaults::SHARD_DEADLINE_MS);
+            if !(ms.is_finite() && (10.0..=600_000.0).contains(&ms)) {
+                return Err(format!("--shard-deadline-ms {ms} must be in [10, 600000]"));
+            }
+            Ok(Deployment::Combine {
+                shards,
+                deadline: std::time::Duration::from_secs_f64(ms / 1000.0),
+            })
+        }
+        other => Err(format!(
+            "--role {other}: use whole (the default), shard or combine"
+        )),
+    }
 }
 
 #[cfg(test)]

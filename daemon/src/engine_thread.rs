@@ -16,6 +16,7 @@ use crate::promise::PromiseKeeper;
 use crate::publish::Publisher;
 use crate::ratelog::RateLimitedLog;
 use crate::recorder::RecorderMsg;
+use crate::shard_link::{Link, ShardEvent};
 use crate::workers::{OwnedPartial, Workers};
 use auspex_engine::assess::{assess, peak_ms, tuning, VerdictRule};
 use auspex_engine::engine::{
@@ -85,9 +86,24 @@ pub enum EngineInput {
         /// The reason.
         text: String,
     },
+    /// A message the combiner relayed to this shard (applied like ingest, not recorded: the
+    /// combiner records it).
+    Relay {
+        /// The Inbound message.
+        bytes: Bytes,
+        /// The combiner's decoder when it applied it.
+        decoder: String,
+        /// Wall-clock receive time.
+        received_ns: i64,
+    },
+    /// From a combiner's link tasks.
+    FromShard(ShardEvent),
     /// Stop: end open trials, publish, flush.
     Shutdown,
 }
+
+/// The endpoint number relayed messages carry (0 main ingest, 1 task ingest).
+pub const RELAY_ENDPOINT: u32 = 2;
 
 /// Daemon-level counters (the engine keeps its own).
 #[derive(Default, Debug, Clone)]
@@ -124,6 +140,7 @@ macro_rules! pub_sink {
             chooser: &mut $t.chooser,
             tally: $t.session.as_mut(),
             promise: &mut $t.promise,
+            link_out: $t.link.shard_out(),
         }
     };
 }
@@ -195,6 +212,11 @@ pub struct EngineThread {
     workers: Option<Workers>,
     /// Counts fresh engines, so the workers know when to build theirs anew.
     engine_gen: u64,
+    /// Shard or combiner of a deployment across machines.
+    link: Link,
+    /// A combiner's session whose senders all ended, waiting (up to the shard deadline) for
+    /// the shards' last partials before its trials are closed.
+    pending_end: Option<Instant>,
 }
 
 /// Trial messages held while waiting for SessionStart; more are counted as malformed.
@@ -232,6 +254,8 @@ pub struct EngineThreadSetup {
     pub learn: Option<(LearnSetup, Sender<LearnMsg>)>,
     /// Choose the threshold from the model's held-out record to keep this accuracy.
     pub target_accuracy: Option<f64>,
+    /// Shard or combiner (see `shard_link.rs`).
+    pub link: Link,
 }
 
 /// Adds one set of engine counters to another.
@@ -360,15 +384,21 @@ impl EngineThread {
             promise: PromiseKeeper::new(s.target_accuracy),
             workers: None,
             engine_gen: 0,
+            link: s.link,
+            pending_end: None,
         };
         t.config.policy = t.promise.model_changed(t.model.as_deref(), &t.config);
-        t.config.role = crate::workers::combiner_role(s.threads);
+        t.config.role = t
+            .link
+            .role()
+            .unwrap_or(crate::workers::combiner_role(s.threads));
         t.workers = Workers::start(s.threads)
             .map_err(|e| EngineError::Config(format!("cannot start engine threads: {e}")))?;
         if let (Some(r), Some(m)) = (t.tick_rate, t.model.clone()) {
             t.config.tick_rate_hz = r;
             t.engine = Some(Engine::new(m, t.config.clone())?);
             t.engine_gen += 1;
+            t.mark_lost_shards();
         }
         Ok(t)
     }
@@ -435,8 +465,26 @@ impl EngineThread {
                         }
                     }
                 }
+                Ok(EngineInput::Relay {
+                    bytes,
+                    decoder,
+                    received_ns,
+                }) => self.relayed(bytes, &decoder, received_ns),
+                Ok(EngineInput::FromShard(ev)) => self.from_shard(ev),
                 Ok(EngineInput::Shutdown) | Err(RecvTimeoutError::Disconnected) => break,
                 Err(RecvTimeoutError::Timeout) => {}
+            }
+            if let (Some(t0), Link::Combine { deadline, .. }) = (self.pending_end, &self.link) {
+                let open = self
+                    .engine
+                    .as_ref()
+                    .is_some_and(|e| e.open_trials().next().is_some());
+                if !open || t0.elapsed() > *deadline {
+                    self.pending_end = None;
+                    if self.session.is_some() {
+                        self.end_session("every sender ended");
+                    }
+                }
             }
             if self.last_health.elapsed() >= self.health_period {
                 self.publish_health();
@@ -522,7 +570,7 @@ impl EngineThread {
                 self.end_session("new session");
             }
         }
-        if let Some(r) = &self.recorder {
+        if let (Some(r), false) = (&self.recorder, endpoint == RELAY_ENDPOINT) {
             let _ = r.send(RecorderMsg::Record(v1::SessionRecord {
                 received_unix_ns: received_ns,
                 endpoint,
@@ -600,6 +648,7 @@ impl EngineThread {
             });
             return;
         };
+        self.relay(&body, &bytes);
         match body {
             inbound::Body::SessionStart(ss) => {
                 self.session_start(&ss, &msg.sender);
@@ -610,7 +659,17 @@ impl EngineThread {
                     s.ended = true;
                 }
                 if self.session.is_some() && self.senders.values().all(|s| s.ended) {
-                    self.end_session("every sender ended");
+                    let waiting = matches!(self.link, Link::Combine { .. })
+                        && self
+                            .engine
+                            .as_ref()
+                            .is_some_and(|e| e.open_trials().next().is_some());
+                    if waiting {
+                        // The shards' last partials may still be on their way.
+                        self.pending_end.get_or_insert_with(Instant::now);
+                    } else {
+                        self.end_session("every sender ended");
+                    }
                 }
                 return;
             }
@@ -861,6 +920,7 @@ impl EngineThread {
                 Ok(e) => {
                     self.engine = Some(e);
                     self.engine_gen += 1;
+                    self.mark_lost_shards();
                 }
                 Err(e) => {
                     self.counters.malformed += 1;
@@ -871,6 +931,140 @@ impl EngineThread {
         tracing::info!(tick_rate_hz = ss.tick_rate_hz, units = ss.units.len(), name = %ss.session_name, held = self.held.len(), learning = self.learn.is_some(), "session started");
         for body in std::mem::take(&mut self.held) {
             self.apply(body);
+        }
+    }
+
+    /// A combiner relays what its shards need of a message it applies: everything but spikes
+    /// and heartbeats (which belong to each shard's own acquisition). Spikes reaching a
+    /// combiner are counted: their units are decoded by no one here.
+    fn relay(&mut self, body: &inbound::Body, bytes: &Bytes) {
+        let Link::Combine {
+            shards,
+            misrouted_spikes,
+            ..
+        } = &mut self.link
+        else {
+            return;
+        };
+        match body {
+            inbound::Body::Spikes(b) => {
+                *misrouted_spikes += b.units.len() as u64;
+                if self.log.allow("misrouted") {
+                    tracing::warn!(
+                        spikes = b.units.len(),
+                        "spikes reached the combiner: send each acquisition machine's spikes to its shard's ingest"
+                    );
+                }
+            }
+            inbound::Body::Heartbeat(_) => {}
+            _ => {
+                let item = crate::shard_link::RelayItem {
+                    relay: v1::ShardRelay {
+                        inbound: bytes.to_vec(),
+                        decoder: self.config.decoder.name().into(),
+                    },
+                    session_start: matches!(body, inbound::Body::SessionStart(_)),
+                };
+                for s in shards.iter() {
+                    let _ = s.relay.send(item.clone());
+                }
+            }
+        }
+    }
+
+    /// A shard applies a relayed message with the combiner's decoder.
+    fn relayed(&mut self, bytes: Bytes, decoder: &str, received_ns: i64) {
+        if let Some(d) = auspex_engine::engine::Decoder::parse(decoder) {
+            if d != self.config.decoder {
+                let mut c = self.config.clone();
+                c.decoder = d;
+                if let Err(e) = self.apply_config(c) {
+                    tracing::warn!(error = %e, "cannot take the combiner's decoder");
+                }
+            }
+        }
+        self.inbound(RELAY_ENDPOINT, bytes, received_ns);
+    }
+
+    /// A combiner's link tasks report: a shard joined, was lost, or sent a partial.
+    fn from_shard(&mut self, ev: ShardEvent) {
+        let Link::Combine {
+            shards,
+            lost_events,
+            ..
+        } = &mut self.link
+        else {
+            return;
+        };
+        match ev {
+            ShardEvent::Joined { part } => {
+                let Some(v) = shards.get_mut(part as usize) else {
+                    return;
+                };
+                tracing::info!(part, endpoint = %v.endpoint, rejoined = v.lost, "shard joined: its units count from the next trial");
+                v.joined = true;
+                v.lost = false;
+                v.note.clear();
+                if let Some(e) = self.engine.as_mut() {
+                    e.restore_part(part);
+                }
+            }
+            ShardEvent::Lost { part, why } => {
+                let Some(v) = shards.get_mut(part as usize) else {
+                    return;
+                };
+                tracing::error!(part, endpoint = %v.endpoint, "shard lost: {why}; its units contribute nothing until it rejoins (frames say which parts they lack)");
+                v.joined = false;
+                v.lost = true;
+                v.times_lost += 1;
+                v.note = why;
+                *lost_events += 1;
+                if let Some(e) = self.engine.as_mut() {
+                    let mut sink = pub_sink!(self);
+                    e.lose_part(part, &mut sink);
+                }
+            }
+            ShardEvent::Partial { part, partial } => {
+                if let Some(v) = shards.get_mut(part as usize) {
+                    v.partials += 1;
+                }
+                let parts = shards.len() as u32;
+                let Some(e) = self.engine.as_mut() else {
+                    return;
+                };
+                let own = e.model().part_blocks(part, parts);
+                let n = partial.values.len() / e.model().n_stimuli().max(1);
+                let first = partial.first_block as usize;
+                let mut sink = pub_sink!(self);
+                let r = if first >= own.start && first + n <= own.end {
+                    e.add_partial(&partial.as_partial(), &mut sink)
+                } else {
+                    Err(EngineError::StrayPartial {
+                        trial: partial.trial,
+                        bin: partial.bin,
+                        first_block: partial.first_block,
+                    })
+                };
+                if let Err(err) = r {
+                    self.warn("stray-partial", || format!("shard part {part}: {err}"));
+                }
+            }
+        }
+    }
+
+    /// A fresh engine of a combiner starts without the shards that are lost.
+    fn mark_lost_shards(&mut self) {
+        let Link::Combine { shards, .. } = &self.link else {
+            return;
+        };
+        let lost: Vec<u32> = (0..shards.len() as u32)
+            .filter(|&p| shards[p as usize].lost)
+            .collect();
+        if let Some(e) = self.engine.as_mut() {
+            let mut sink = pub_sink!(self);
+            for p in lost {
+                e.lose_part(p, &mut sink);
+            }
         }
     }
 
@@ -917,6 +1111,7 @@ impl EngineThread {
     /// Ends the current session: open trials closed, summary published, recording rotated,
     /// sequence tracking and learning started afresh for the next.
     fn end_session(&mut self, reason: &str) {
+        self.pending_end = None;
         self.close_trials(TrialOutcome::SessionEnded);
         self.publish_summary(reason);
         if let Some(e) = self.engine.take() {

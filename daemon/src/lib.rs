@@ -21,4 +21,5 @@ pub mod publish;
 pub mod ratelog;
 pub mod recorder;
 pub mod service;
+pub mod shard_link;
 pub mod workers;

@@ -3,11 +3,12 @@
 //! trigger as an argument so tests can drive it; `start` returns the bound endpoints (useful
 //! with port 0) and a handle to stop.
 
-use crate::config::{DaemonConfig, IngestPattern};
+use crate::config::{DaemonConfig, Deployment, IngestPattern};
 use crate::engine_thread::{EngineInput, EngineThread, EngineThreadSetup, LearnSetup};
 use crate::learner::LearnerThread;
 use crate::publish::{bind_pub, run_publisher, PublishStats, Publisher};
 use crate::recorder::{resolve_path, Recorder};
+use crate::shard_link::{mono_ns, Link, ShardView};
 use anyhow::Context;
 use auspex_engine::engine::EngineConfig;
 use auspex_engine::fit::FitOptions;
@@ -31,6 +32,8 @@ pub struct BoundEndpoints {
     pub control: String,
     /// Recording file.
     pub recording: Option<std::path::PathBuf>,
+    /// A shard's link endpoint.
+    pub link: Option<String>,
 }
 
 /// A running daemon.
@@ -165,6 +168,9 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         cfg.table_memory_bytes,
     )));
 
+    let (link, link_ep) =
+        start_link(&cfg, model.as_deref(), &engine_tx, &stop_rx, &mut tasks).await?;
+
     let recorder = match &cfg.record {
         Some(p) => {
             let now_s = std::time::SystemTime::now()
@@ -260,6 +266,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         learn: learner.as_ref().map(|(t, s)| (s.clone(), t.sender())),
         config: ec,
         tick_rate: cfg.tick_rate_hz,
+        link,
         publisher: Publisher::new(pub_tx, stats.clone()),
         recorder: recorder.as_ref().map(|r| r.sender()),
         recording_path: recorder
@@ -284,12 +291,14 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         publish: publish_ep,
         control: control_ep.to_string(),
         recording: recorder.as_ref().map(|r| r.path.clone()),
+        link: link_ep,
     };
     tracing::info!(ingest = %endpoints.ingest,
         task_ingest = %endpoints.task_ingest.as_deref().unwrap_or("off"),
         publish = %endpoints.publish, control = %endpoints.control,
         recording = %endpoints.recording.as_ref().map(|p| p.display().to_string()).unwrap_or_else(|| "off".into()),
-        model = %model_label, learning = cfg.learn.is_some(), "auspexd listening");
+        model = %model_label, learning = cfg.learn.is_some(), role = cfg.deployment.name(),
+        link = %endpoints.link.as_deref().unwrap_or("none"), "auspexd listening");
     Ok(Running {
         endpoints,
         stop_tx,
@@ -300,6 +309,121 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         recorder,
         learner: learner.map(|l| l.0),
     })
+}
+
+/// Binds a shard's link or starts a combiner's link tasks (one per shard).
+async fn start_link(
+    cfg: &DaemonConfig,
+    model: Option<&auspex_engine::Model>,
+    engine_tx: &crossbeam_channel::Sender<EngineInput>,
+    stop_rx: &watch::Receiver<bool>,
+    tasks: &mut Vec<JoinHandle<()>>,
+) -> anyhow::Result<(Link, Option<String>)> {
+    let (Some(path), Some(m)) = (&cfg.model, model) else {
+        return Ok((Link::None, None));
+    };
+    let crc = std::fs::read(path)
+        .map(|b| auspex_proto::crc32::crc32(&b))
+        .with_context(|| format!("{}: cannot read the model file", path.display()))?;
+    let hello = |part: u32, parts: u32| auspex_proto::v1::ShardHello {
+        part,
+        parts,
+        model_crc32: crc,
+        model_path: path.display().to_string(),
+    };
+    let parts = match &cfg.deployment {
+        Deployment::Whole => return Ok((Link::None, None)),
+        Deployment::Shard { parts, .. } => *parts,
+        Deployment::Combine { shards, .. } => shards.len() as u32,
+    };
+    if m.n_groups() > 1 && m.n_groups() != parts as usize {
+        tracing::warn!(
+            groups = m.n_groups(),
+            parts,
+            "the model has {} unit groups but the deployment {parts} parts: parts split its blocks evenly, not by group",
+            m.n_groups()
+        );
+    }
+    match &cfg.deployment {
+        Deployment::Whole => Ok((Link::None, None)),
+        Deployment::Shard { part, parts, link } => {
+            let mut s = zeromq::DealerSocket::new();
+            let ep = s
+                .bind(link)
+                .await
+                .with_context(|| format!("cannot bind link endpoint {link}"))?;
+            let units = m.part_units(*part, *parts);
+            let ids = m.units();
+            tracing::info!(
+                part,
+                parts,
+                units = units.len(),
+                first_unit = ids.get(units.start).copied().unwrap_or(0),
+                last_unit = units
+                    .end
+                    .checked_sub(1)
+                    .and_then(|i| ids.get(i))
+                    .copied()
+                    .unwrap_or(0),
+                "shard: decoding these units; send their spikes to this shard's ingest"
+            );
+            let (out_tx, out_rx) = tokio::sync::mpsc::channel(1 << 16);
+            let unsent = Arc::new(std::sync::atomic::AtomicU64::new(0));
+            tasks.push(tokio::spawn(crate::shard_link::run_shard_link(
+                s,
+                hello(*part, *parts),
+                engine_tx.clone(),
+                out_rx,
+                unsent.clone(),
+                stop_rx.clone(),
+            )));
+            Ok((
+                Link::Shard {
+                    out: out_tx,
+                    unsent,
+                    part: *part,
+                    parts: *parts,
+                },
+                Some(ep.to_string()),
+            ))
+        }
+        Deployment::Combine { shards, deadline } => {
+            let mut views = Vec::new();
+            for (i, ep) in shards.iter().enumerate() {
+                let (rtx, rrx) = tokio::sync::mpsc::unbounded_channel();
+                let last = Arc::new(std::sync::atomic::AtomicI64::new(mono_ns()));
+                tasks.push(tokio::spawn(crate::shard_link::run_combiner_link(
+                    i as u32,
+                    ep.clone(),
+                    hello(i as u32, parts),
+                    *deadline,
+                    engine_tx.clone(),
+                    rrx,
+                    last.clone(),
+                    stop_rx.clone(),
+                )));
+                views.push(ShardView {
+                    endpoint: ep.clone(),
+                    relay: rtx,
+                    last_ns: last,
+                    joined: false,
+                    lost: false,
+                    partials: 0,
+                    times_lost: 0,
+                    note: "not greeted yet".into(),
+                });
+            }
+            Ok((
+                Link::Combine {
+                    shards: views,
+                    deadline: *deadline,
+                    lost_events: 0,
+                    misrouted_spikes: 0,
+                },
+                None,
+            ))
+        }
+    }
 }
 
 impl Running {

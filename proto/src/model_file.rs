@@ -71,6 +71,7 @@ pub fn spec_to_proto(spec: &ModelSpec, training_data: &str) -> v1::ModelFile {
         created_by: format!("auspex {}", env!("CARGO_PKG_VERSION")),
         training_data: training_data.into(),
         calibration: calibration_to_proto(&spec.calibration),
+        unit_group_starts: spec.unit_groups.clone(),
         cells: spec
             .cells
             .iter()
@@ -171,6 +172,7 @@ pub fn spec_from_proto(m: &v1::ModelFile) -> Result<ModelSpec, String> {
         prior: m.prior.clone(),
         cells,
         calibration: calibration_from_proto(m.calibration.as_ref())?,
+        unit_groups: m.unit_group_starts.clone(),
     })
 }
 

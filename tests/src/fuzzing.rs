@@ -114,6 +114,7 @@ pub fn small_model() -> Arc<Model> {
                 prior: vec![1.0, 2.0, 1.0],
                 cells,
                 calibration: Default::default(),
+                unit_groups: Vec::new(),
             })
             .expect("the fuzzing model is valid"),
         )
@@ -292,6 +293,7 @@ pub fn inbound_messages(data: &[u8]) {
         health_period: std::time::Duration::from_secs(3600),
         learn: None,
         target_accuracy: None,
+        link: auspexd::shard_link::Link::None,
     };
     let (tx, rx) = crossbeam_channel::unbounded();
     let Ok(et) = EngineThread::new(setup, rx.clone()) else {

@@ -1005,6 +1005,13 @@ impl Engine {
         let (ns, nb) = (m.n_stimuli(), m.n_bins());
         let first = p.first_block as usize;
         let n = p.values.len() / ns;
+        // A part given up for this trial (it fell silent, then came back): its bins were
+        // combined without it, so what it sends now for the trial is not needed.
+        if first < m.n_blocks()
+            && t.lost_parts & (1u64 << self.config.role.part_of_block(m, first)) != 0
+        {
+            return Ok(());
+        }
         let ok = p.values.len() == n * ns
             && n > 0
             && first + n <= m.n_blocks()

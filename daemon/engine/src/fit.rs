@@ -412,6 +412,7 @@ impl FitPlan {
             prior: self.prior.clone(),
             cells,
             calibration: Default::default(),
+            unit_groups: Vec::new(),
         }
     }
 

@@ -537,6 +537,7 @@ mod tests {
                 cell(3.0, &flat),
             ],
             calibration: Default::default(),
+            unit_groups: Vec::new(),
         })
         .unwrap()
     }

@@ -54,6 +54,11 @@ pub struct ModelSpec {
     /// Calibration of the posterior and the held-out threshold evidence (default: none).
     #[serde(default)]
     pub calibration: Calibration,
+    /// Unit groups: the index (in `units`) of the first unit of each group after the first,
+    /// ascending. Empty: one group. Blocks of the population sum never straddle a group, so a
+    /// group's units can be decoded on a machine of their own (`auspexd --role shard`).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub unit_groups: Vec<u32>,
 }
 
 impl ModelSpec {
@@ -68,6 +73,7 @@ impl ModelSpec {
             prior: vec![1.0; n_stimuli],
             cells,
             calibration: Default::default(),
+            unit_groups: Vec::new(),
         }
     }
 }
@@ -121,6 +127,10 @@ pub struct Model {
     unit_index: HashMap<u32, u32>,
     /// The units of each block of the likelihood sum (see [`UNIT_BLOCK`]), as index ranges.
     pub(crate) blocks: Vec<std::ops::Range<usize>>,
+    /// The block of each unit index.
+    block_of_unit: Vec<u32>,
+    /// The first block of each unit group (one entry per group).
+    group_first_block: Vec<usize>,
     /// Σ over a block's units of the count-independent part of every closed-form cell's count
     /// term, per [block][b][s]:
     /// `μ·S(b)` for Poisson cells, `−r·ln(1 − (1−p)·S(b))` for negative binomial cells. With it
@@ -155,6 +165,24 @@ pub const TABLE_LOOKUP_BUDGET_BYTES: usize = 1 << 30;
 /// order — by one engine, by engine threads or by shards on several machines alike — so the
 /// result is the same bits however the blocks are spread.
 pub const UNIT_BLOCK: usize = 64;
+
+/// The unit index ranges of the groups whose later starts are `starts` (checked).
+fn group_ranges(nu: usize, starts: &[u32]) -> Result<Vec<std::ops::Range<usize>>, ModelError> {
+    let mut out = Vec::with_capacity(starts.len() + 1);
+    let mut a = 0usize;
+    for &s in starts {
+        let s = s as usize;
+        if s <= a || s >= nu {
+            return Err(ModelError::Invalid(format!(
+                "unit groups {starts:?}: each group must start after the previous one and inside the {nu} units"
+            )));
+        }
+        out.push(a..s);
+        a = s;
+    }
+    out.push(a..nu);
+    Ok(out)
+}
 
 impl Model {
     /// Validates a spec and precomputes the tables.
@@ -279,9 +307,24 @@ impl Model {
         }
         let means: Vec<f64> = dists.iter().map(|d| d.mean().max(1e-12)).collect();
         let ln_means = means.iter().map(|m| m.ln()).collect();
-        let blocks: Vec<std::ops::Range<usize>> = (0..nu)
-            .step_by(UNIT_BLOCK)
-            .map(|a| a..(a + UNIT_BLOCK).min(nu))
+        let groups = group_ranges(nu, &spec.unit_groups)?;
+        let blocks: Vec<std::ops::Range<usize>> = groups
+            .iter()
+            .flat_map(|g| {
+                g.clone()
+                    .step_by(UNIT_BLOCK)
+                    .map(move |a| a..(a + UNIT_BLOCK).min(g.end))
+            })
+            .collect();
+        let mut block_of_unit = vec![0u32; nu];
+        for (j, r) in blocks.iter().enumerate() {
+            for u in r.clone() {
+                block_of_unit[u] = j as u32;
+            }
+        }
+        let group_first_block: Vec<usize> = groups
+            .iter()
+            .map(|g| blocks.partition_point(|b| b.start < g.start))
             .collect();
         let mut order_stats_sum = vec![0.0; blocks.len() * nb * ns];
         let mut rate_sum = vec![0.0; blocks.len() * nb * ns];
@@ -289,7 +332,7 @@ impl Model {
         let mut unit_all_negbin = vec![true; nu];
         let mut poisson_ln_mean = vec![0.0; nu * ns];
         for u in 0..nu {
-            let blk = u / UNIT_BLOCK;
+            let blk = block_of_unit[u] as usize;
             for s in 0..ns {
                 let i = u * ns + s;
                 for b in 0..nb {
@@ -329,6 +372,8 @@ impl Model {
             ln_prior,
             unit_index,
             blocks,
+            block_of_unit,
+            group_first_block,
             order_stats_sum,
             rate_sum,
             any_negbin: unit_has_negbin.iter().any(|&x| x),
@@ -340,23 +385,48 @@ impl Model {
         })
     }
 
-    /// Blocks of the population sum ([`UNIT_BLOCK`] units each, the last one shorter).
+    /// Blocks of the population sum ([`UNIT_BLOCK`] units each, the last one of each unit
+    /// group shorter).
     pub fn n_blocks(&self) -> usize {
         self.blocks.len()
     }
 
-    /// The blocks of part `index` of `parts` (an even split of whole blocks; parts past the
+    /// Unit groups (1 when the model has none; see [`ModelSpec::unit_groups`]).
+    pub fn n_groups(&self) -> usize {
+        self.group_first_block.len()
+    }
+
+    /// The blocks of part `index` of `parts`. When the model has unit groups and `parts` equals
+    /// their number, part p is group p; otherwise an even split of whole blocks (parts past the
     /// number of blocks are empty).
     pub fn part_blocks(&self, index: u32, parts: u32) -> std::ops::Range<usize> {
         let n = self.blocks.len();
+        let g = &self.group_first_block;
+        if g.len() > 1 && parts as usize == g.len() {
+            let i = index as usize;
+            return match (g.get(i), g.get(i + 1)) {
+                (Some(&a), Some(&b)) => a..b,
+                (Some(&a), None) => a..n,
+                _ => n..n,
+            };
+        }
         let parts = parts.max(1) as usize;
         let i = (index as usize).min(parts);
         (n * i / parts)..(n * (i + 1).min(parts) / parts)
     }
 
+    /// The unit indices of part `index` of `parts` (see [`Model::part_blocks`]).
+    pub fn part_units(&self, index: u32, parts: u32) -> std::ops::Range<usize> {
+        let b = self.part_blocks(index, parts);
+        if b.is_empty() {
+            return 0..0;
+        }
+        self.blocks[b.start].start..self.blocks[b.end - 1].end
+    }
+
     /// The block holding unit index `u`.
     pub fn block_of(&self, u: usize) -> usize {
-        u / UNIT_BLOCK
+        self.block_of_unit[u] as usize
     }
 
     /// The spec this model was built from.
@@ -513,6 +583,35 @@ pub fn mean_var(counts: &[u32]) -> (f64, f64) {
 mod tests {
     use super::*;
 
+    /// Blocks restart at each unit group; a part per group when the parts equal the groups.
+    #[test]
+    fn unit_groups_cut_the_blocks() {
+        let cells = (0..200)
+            .map(|_| CellSpec {
+                count: CountParams::Poisson { mean: 1.0 },
+                timing: vec![0.5, 0.5],
+                summary: CellSummary::default(),
+            })
+            .collect();
+        let mut spec = ModelSpec::numbered(100, 2, 2, cells);
+        let m = Model::new(spec.clone()).unwrap();
+        assert_eq!(m.blocks, vec![0..64, 64..100]);
+        assert_eq!(m.n_groups(), 1);
+        spec.unit_groups = vec![70];
+        let m = Model::new(spec.clone()).unwrap();
+        assert_eq!(m.blocks, vec![0..64, 64..70, 70..100]);
+        assert_eq!((m.block_of(63), m.block_of(69), m.block_of(70)), (0, 1, 2));
+        assert_eq!(m.n_groups(), 2);
+        assert_eq!((m.part_blocks(0, 2), m.part_blocks(1, 2)), (0..2, 2..3));
+        assert_eq!((m.part_units(0, 2), m.part_units(1, 2)), (0..70, 70..100));
+        // Three parts of a two-group model: an even split of the blocks.
+        assert_eq!(m.part_blocks(2, 3), 2..3);
+        for bad in [vec![0], vec![100], vec![70, 70], vec![80, 70]] {
+            spec.unit_groups = bad;
+            assert!(Model::new(spec.clone()).is_err());
+        }
+    }
+
     #[test]
     fn a_small_spec_declaring_a_huge_window_is_refused_before_allocating() {
         // 200 × 1000 cells without timing and a window of 1 000 000 bins: sizing the tables first
@@ -530,6 +629,7 @@ mod tests {
             prior: vec![1e-3; 1000],
             cells: vec![cell; 200 * 1000],
             calibration: Default::default(),
+            unit_groups: Vec::new(),
         };
         let e = Model::new(spec).unwrap_err().to_string();
         assert!(e.contains("0 timing bins, window has 1000000"), "{e}");

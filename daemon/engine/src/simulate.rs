@@ -243,6 +243,7 @@ impl Scenario {
             prior: vec![1.0 / self.stimuli.len() as f64; self.stimuli.len()],
             cells,
             calibration: Default::default(),
+            unit_groups: Vec::new(),
         };
         Model::new(spec.clone())?;
         Ok(spec)

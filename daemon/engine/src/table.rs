@@ -542,6 +542,7 @@ mod tests {
             prior: vec![1.0, 1.0],
             cells: vec![cell(5000.0), cell(6000.0)],
             calibration: Default::default(),
+            unit_groups: Vec::new(),
         })
         .unwrap();
         let p = TablePrep::build(&m, 1 << 30);

@@ -201,6 +201,7 @@ fn an_onset_at_the_end_of_the_tick_range_is_refused_not_wrapped() {
             })
             .collect(),
         calibration: Default::default(),
+        unit_groups: Vec::new(),
     };
     let m = Arc::new(Model::new(spec).unwrap());
     let mut e = Engine::new(m, EngineConfig::new(1000.0)).unwrap();
@@ -243,6 +244,7 @@ fn gaps_between_windows_cost_one_batch_and_change_no_frame() {
                 cell(4.0, &early),
             ],
             calibration: Default::default(),
+            unit_groups: Vec::new(),
         })
         .unwrap(),
     );

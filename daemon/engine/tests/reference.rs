@@ -33,6 +33,7 @@ fn model(bin_width_s: f64, stimuli: &[&str], units: &[u32], cells: Vec<CellSpec>
             prior: vec![1.0 / stimuli.len() as f64; stimuli.len()],
             cells,
             calibration: Default::default(),
+            unit_groups: Vec::new(),
         })
         .unwrap(),
     )

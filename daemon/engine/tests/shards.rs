@@ -143,6 +143,18 @@ impl Normalised for CountParams {
 /// A model of `nu` units (several blocks), `ns` stimuli and `nb` bins; families per unit from
 /// `mix` (so some units are all one family and some mixed).
 fn model(nu: usize, ns: usize, nb: usize, mix: u8, seed: u64) -> Arc<Model> {
+    grouped_model(nu, ns, nb, mix, seed, Vec::new())
+}
+
+/// [`model`] with unit groups starting at the given unit indices.
+fn grouped_model(
+    nu: usize,
+    ns: usize,
+    nb: usize,
+    mix: u8,
+    seed: u64,
+    unit_groups: Vec<u32>,
+) -> Arc<Model> {
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
     let mut cells = Vec::new();
     for u in 0..nu {
@@ -170,6 +182,7 @@ fn model(nu: usize, ns: usize, nb: usize, mix: u8, seed: u64) -> Arc<Model> {
             prior: (1..=ns).map(|x| x as f64).collect(),
             cells,
             calibration: Default::default(),
+            unit_groups,
         })
         .unwrap(),
     )
@@ -334,10 +347,17 @@ proptest! {
         mix in 0u8..5,
         parts in 1u32..6,
         combiner_part in any::<bool>(),
+        groups in 0usize..3,
+        by_group in any::<bool>(),
         seed in any::<u64>(),
     ) {
         let nu = (blocks - 1) * UNIT_BLOCK + extra + 1;
-        let m = model(nu, ns, nb, mix, seed);
+        // Unit groups at a third and two thirds of the units (blocks restart at each), and
+        // parts that follow the groups or split the blocks evenly.
+        let mut starts: Vec<u32> = (1..=groups).map(|g| (nu * g / 3) as u32).filter(|&s| s > 0).collect();
+        starts.dedup();
+        let m = grouped_model(nu, ns, nb, mix, seed, starts);
+        let parts = if by_group && m.n_groups() > 1 { m.n_groups() as u32 } else { parts };
         let inp = input(&m, seed ^ 0x5eed);
         for dec in Decoder::ALL {
             let want = whole(&m, dec, &inp);

@@ -47,6 +47,11 @@ pub(super) struct PubSink<'a> {
     pub(super) chooser: &'a mut StimulusChooser,
     pub(super) tally: Option<&'a mut SessionTally>,
     pub(super) promise: &'a mut PromiseKeeper,
+    /// A shard's partials go here (None: not a shard).
+    pub(super) link_out: Option<(
+        &'a tokio::sync::mpsc::Sender<Vec<u8>>,
+        &'a std::sync::atomic::AtomicU64,
+    )>,
 }
 
 impl PubSink<'_> {
@@ -65,6 +70,13 @@ impl PubSink<'_> {
 }
 
 impl EngineSink for PubSink<'_> {
+    fn partial(&mut self, p: &auspex_engine::engine::Partial<'_>) {
+        if let Some((tx, unsent)) = self.link_out {
+            if tx.try_send(crate::shard_link::partial_msg(p)).is_err() {
+                unsent.fetch_add(1, Ordering::Relaxed);
+            }
+        }
+    }
     fn frame(&mut self, f: &Frame<'_>) {
         let body = outbound::Body::Posterior(v1::PosteriorFrame {
             trial: f.trial,

@@ -70,6 +70,21 @@ impl EngineThread {
             learning_frozen: self.learn.as_ref().is_some_and(|l| !l.enabled),
             promises: self.promise.records(),
             promise_broken: self.promise.broken(),
+            shards_lost: match &self.link {
+                Link::Combine { lost_events, .. } => *lost_events,
+                _ => 0,
+            },
+            missing_parts: self.engine.as_ref().map_or(0, |e| e.lost_parts()),
+            misrouted_spikes: match &self.link {
+                Link::Combine {
+                    misrouted_spikes, ..
+                } => *misrouted_spikes,
+                _ => 0,
+            },
+            partials_unsent: match &self.link {
+                Link::Shard { unsent, .. } => unsent.load(Ordering::Relaxed),
+                _ => 0,
+            },
         }
     }
 
@@ -157,6 +172,17 @@ impl EngineThread {
             ended_sessions: self.ended.clone(),
             learning,
             promise: Some(self.promise.state(self.model.as_deref(), &self.config)),
+            role: self.link.name().into(),
+            shards: self.link.shard_states(),
+            part: match &self.link {
+                Link::Shard { part, .. } => *part,
+                _ => 0,
+            },
+            parts: match &self.link {
+                Link::Shard { parts, .. } => *parts,
+                Link::Combine { shards, .. } => shards.len() as u32,
+                Link::None => 0,
+            },
         }
     }
 }
