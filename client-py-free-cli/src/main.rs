@@ -673,7 +673,8 @@ fn main() {
             let s = auspex::live::status(&control).await?;
             if json {
                 println!("{}", serde_json::json!({"version": s.version, "model": s.model_path, "stimuli": s.stimuli, "units": s.units.len(),
-                    "decoder": s.decoder, "engine_threads": s.engine_threads, "threshold": s.threshold, "min_time_s": s.min_time_s, "prior": s.prior, "tick_rate_hz": s.tick_rate_hz,
+                    "decoder": s.decoder, "engine_threads": s.engine_threads, "role": s.role, "part": s.part, "parts": s.parts,
+                    "shards": s.shards.iter().map(|x| serde_json::json!({"part": x.part, "endpoint": x.endpoint, "joined": x.joined, "partials": x.partials, "times_lost": x.times_lost, "silent_s": x.silent_s, "note": x.note})).collect::<Vec<_>>(), "threshold": s.threshold, "min_time_s": s.min_time_s, "prior": s.prior, "tick_rate_hz": s.tick_rate_hz,
                     "open_trials": s.open_trials, "recording": s.recording_path, "session": s.session_name,
                     "promise": s.promise.as_ref().map(|p| serde_json::json!({"target_accuracy": (p.target_accuracy > 0.0).then_some(p.target_accuracy), "withheld": p.withheld, "evidence": p.evidence, "calibrated": p.calibrated, "calibration": p.calibration})),
                     "promise_records": s.health.as_ref().map(|h| h.promises.iter().map(|r| serde_json::json!({"promise": r.promise, "threshold": r.threshold, "decisions": r.decisions, "correct": r.correct, "lo": r.accuracy_lo, "hi": r.accuracy_hi, "cusum": r.cusum, "broken": r.broken})).collect::<Vec<_>>()),
@@ -689,6 +690,9 @@ fn main() {
                 println!("decoder {} · threshold {} after {} ms · prior {}{}", s.decoder, s.threshold, s.min_time_s * 1000.0,
                     if s.prior.is_empty() { "(the model's)".to_string() } else { format!("[{}]", s.prior.iter().map(|p| format!("{p:.3}")).collect::<Vec<_>>().join(", ")) },
                     if s.engine_threads > 1 { format!(" · {} engine threads", s.engine_threads) } else { String::new() });
+                for l in auspex::monitor::deployment_lines(&s) {
+                    println!("{l}");
+                }
                 for l in auspex::monitor::promise_lines(&s) {
                     println!("{l}");
                 }

@@ -375,7 +375,7 @@ impl MonitorState {
                 if self.missing_parts != 0 {
                     t.push_str(&format!(
                         // Short enough for the panel's title on an 80-column screen.
-                        " · WITHOUT units of {} thread(s)",
+                        " · WITHOUT units of {} part(s)",
                         self.missing_parts.count_ones()
                     ));
                 }
@@ -612,6 +612,75 @@ pub fn policy_line(s: &v1::Status) -> String {
         }
     }
     out
+}
+
+/// A shard's or combiner's place in its deployment, for `auspex status` (nothing for a whole
+/// daemon): a shard's part; a combiner's shards, each joined or why not.
+pub fn deployment_lines(s: &v1::Status) -> Vec<String> {
+    let unsent = s.health.as_ref().map_or(0, |h| h.partials_unsent);
+    match s.role.as_str() {
+        "shard" => vec![format!(
+            "shard: part {} of {} · partials go to the combiner connected to its link{}",
+            s.part,
+            s.parts,
+            if unsent > 0 {
+                format!(" · {unsent} partials found no combiner")
+            } else {
+                String::new()
+            }
+        )],
+        "combine" => {
+            let h = s.health.clone().unwrap_or_default();
+            let mut out = vec![format!(
+                "combiner of {} shards · {} losses{}{}",
+                s.parts,
+                h.shards_lost,
+                if h.missing_parts != 0 {
+                    format!(
+                        " · trials opened now LACK parts {}",
+                        parts_list(h.missing_parts)
+                    )
+                } else {
+                    String::new()
+                },
+                if h.misrouted_spikes > 0 {
+                    format!(
+                        " · {} spikes reached the combiner (send them to their shard)",
+                        h.misrouted_spikes
+                    )
+                } else {
+                    String::new()
+                }
+            )];
+            for x in &s.shards {
+                out.push(format!(
+                    "  part {} {} · {} · {} partials · last heard {:.1} s ago · lost {} times{}",
+                    x.part,
+                    x.endpoint,
+                    if x.joined { "joined" } else { "NOT JOINED" },
+                    x.partials,
+                    x.silent_s,
+                    x.times_lost,
+                    if x.note.is_empty() {
+                        String::new()
+                    } else {
+                        format!(" · {}", x.note)
+                    }
+                ));
+            }
+            out
+        }
+        _ => Vec::new(),
+    }
+}
+
+/// Bit mask of parts as "0, 2".
+pub fn parts_list(mask: u64) -> String {
+    (0..64)
+        .filter(|p| mask & (1u64 << p) != 0)
+        .map(|p| p.to_string())
+        .collect::<Vec<_>>()
+        .join(", ")
 }
 
 /// What backs the decision threshold, and how the promise has been kept this session (status).
@@ -898,7 +967,7 @@ mod tests {
         st.apply("posterior", &frame(1 << 2));
         let screen = render(&st);
         assert!(
-            screen.contains("trial 3 · 10 ms after onset · WITHOUT units of 1 thread(s)"),
+            screen.contains("trial 3 · 10 ms after onset · WITHOUT units of 1 part(s)"),
             "{screen}"
         );
         st.apply("posterior", &frame(0));

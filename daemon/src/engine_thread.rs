@@ -217,6 +217,8 @@ pub struct EngineThread {
     /// A combiner's session whose senders all ended, waiting (up to the shard deadline) for
     /// the shards' last partials before its trials are closed.
     pending_end: Option<Instant>,
+    /// When a combiner last took a shard's partial.
+    last_partial: Instant,
 }
 
 /// Trial messages held while waiting for SessionStart; more are counted as malformed.
@@ -386,6 +388,7 @@ impl EngineThread {
             engine_gen: 0,
             link: s.link,
             pending_end: None,
+            last_partial: Instant::now(),
         };
         t.config.policy = t.promise.model_changed(t.model.as_deref(), &t.config);
         t.config.role = t
@@ -475,11 +478,13 @@ impl EngineThread {
                 Err(RecvTimeoutError::Timeout) => {}
             }
             if let (Some(t0), Link::Combine { deadline, .. }) = (self.pending_end, &self.link) {
+                // Shards that are alive keep their trials coming (a lost one is given up, and
+                // its trials then finish without it); only a long pause ends the wait early.
                 let open = self
                     .engine
                     .as_ref()
                     .is_some_and(|e| e.open_trials().next().is_some());
-                if !open || t0.elapsed() > *deadline {
+                if !open || t0.max(self.last_partial).elapsed() > *deadline * 10 {
                     self.pending_end = None;
                     if self.session.is_some() {
                         self.end_session("every sender ended");
@@ -1025,6 +1030,7 @@ impl EngineThread {
                 }
             }
             ShardEvent::Partial { part, partial } => {
+                self.last_partial = Instant::now();
                 if let Some(v) = shards.get_mut(part as usize) {
                     v.partials += 1;
                 }
@@ -1203,6 +1209,18 @@ impl EngineThread {
     }
 
     fn reload(&mut self, model: Arc<Model>, path: String) -> ControlReply {
+        if !matches!(self.link, Link::None) {
+            // Shards and combiner must sum the same model's blocks.
+            return ControlReply {
+                ok: false,
+                error: format!(
+                    "{path}: not loaded: this daemon is a {} of a deployment across machines, whose shards and combiner must load the same model; restart each of them with --model {path}",
+                    self.link.name()
+                ),
+                note: String::new(),
+                body: None,
+            };
+        }
         // A target accuracy the new model's record cannot support refuses the reload.
         let mut cfg = self.config.clone();
         if let Some(t) = self.promise.target() {
