@@ -602,14 +602,48 @@ pub async fn latency(
 ) -> anyhow::Result<Latency> {
     let running = start_daemon(nu, ns, transport, dir, learning, threads).await?;
     let eps = running.endpoints.clone();
-    let mut sub = zeromq::SubSocket::new();
-    sub.connect(&eps.publish).await?;
-    sub.subscribe(auspex_proto::topic::POSTERIOR).await?;
     let mut push = zeromq::PushSocket::new();
     push.connect(&eps.ingest).await?;
-    tokio::time::sleep(Duration::from_millis(300)).await;
-
     let n_batches = (seconds * 1000.0).round() as usize;
+    let msgs = latency_messages(nu, ns, n_batches)
+        .into_iter()
+        .map(|(b, m)| (b, 0, m))
+        .collect();
+    let lat = measure(&eps.publish, vec![push], msgs).await?;
+    let refits = if learning {
+        crate::live::status(&eps.control)
+            .await
+            .ok()
+            .and_then(|s| s.learning)
+            .map(|l| l.refits)
+            .unwrap_or(0)
+    } else {
+        0
+    };
+    running.stop().await;
+    let mut name = if learning {
+        format!("{transport}, learning ({refits} refits swapped in)")
+    } else {
+        transport.to_string()
+    };
+    if threads > 1 {
+        name = format!("{name}, {threads} engine threads");
+    }
+    Ok(summarise(&name, lat, n_batches))
+}
+
+/// Sends `msgs` (batch index to time, socket index, bytes), each batch at its millisecond, and
+/// collects the latency of every posterior frame published on `publish` (µs).
+async fn measure(
+    publish: &str,
+    mut pushes: Vec<zeromq::PushSocket>,
+    msgs: Vec<(Option<usize>, usize, Vec<u8>)>,
+) -> anyhow::Result<Vec<f64>> {
+    let mut sub = zeromq::SubSocket::new();
+    sub.connect(publish).await?;
+    sub.subscribe(auspex_proto::topic::POSTERIOR).await?;
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    let n_batches = msgs.iter().filter_map(|m| m.0).max().unwrap_or(0);
     let sent: Arc<std::sync::Mutex<Vec<Option<Instant>>>> =
         Arc::new(std::sync::Mutex::new(vec![None; n_batches + 1]));
     let recv_sent = sent.clone();
@@ -639,36 +673,156 @@ pub async fn latency(
     });
 
     let t0 = tokio::time::Instant::now();
-    for (batch, bytes) in latency_messages(nu, ns, n_batches) {
+    for (batch, to, bytes) in msgs {
         if let Some(i) = batch {
-            tokio::time::sleep_until(t0 + Duration::from_micros(i as u64 * 1000)).await;
-            if let Ok(mut v) = sent.lock() {
+            // The first socket's part of batch i starts its clock.
+            let mut v = sent.lock().map_err(|_| anyhow::anyhow!("poisoned"))?;
+            if v[i].is_none() {
+                drop(v);
+                tokio::time::sleep_until(t0 + Duration::from_micros(i as u64 * 1000)).await;
+                v = sent.lock().map_err(|_| anyhow::anyhow!("poisoned"))?;
                 v[i] = Some(Instant::now());
             }
         }
-        push.send(ZmqMessage::from(Bytes::from(bytes))).await?;
+        pushes[to]
+            .send(ZmqMessage::from(Bytes::from(bytes)))
+            .await?;
     }
-    let lat = receiver.await?;
-    let refits = if learning {
-        crate::live::status(&eps.control)
-            .await
-            .ok()
-            .and_then(|s| s.learning)
-            .map(|l| l.refits)
-            .unwrap_or(0)
-    } else {
-        0
+    Ok(receiver.await?)
+}
+
+/// The batch → posterior latency of a deployment over loopback: `shards` shard daemons (each
+/// sent the spikes of its part of the units by its own sender) and a combiner (sent the trial
+/// onsets), everything else as [`latency`] over TCP.
+pub async fn latency_sharded(
+    nu: usize,
+    ns: usize,
+    seconds: f64,
+    dir: &std::path::Path,
+    shards: u32,
+) -> anyhow::Result<Latency> {
+    let model_path = dir.join(format!("bench-{nu}x{ns}.apxm"));
+    let model = synthetic_model(nu, ns);
+    auspex_proto::model_file::save_model(&model_path, model.spec(), "auspex bench")?;
+    let local = "tcp://127.0.0.1:0".to_string();
+    let base = auspexd::config::FileConfig {
+        model: Some(model_path),
+        ingest: Some(local.clone()),
+        task_ingest: Some(local.clone()),
+        publish: Some(local.clone()),
+        control: Some(local.clone()),
+        tick_rate_hz: Some(1e6),
+        ..Default::default()
     };
-    running.stop().await;
-    let mut name = if learning {
-        format!("{transport}, learning ({refits} refits swapped in)")
-    } else {
-        transport.to_string()
+    let start = |f: auspexd::config::FileConfig| async move {
+        let cfg = auspexd::config::validate(f, &mut Vec::new()).map_err(|e| anyhow::anyhow!(e))?;
+        auspexd::service::start(cfg).await
     };
-    if threads > 1 {
-        name = format!("{name}, {threads} engine threads");
+    let mut running = Vec::new();
+    for part in 0..shards {
+        running.push(
+            start(auspexd::config::FileConfig {
+                role: Some("shard".into()),
+                part: Some(part),
+                parts: Some(shards),
+                link: Some(local.clone()),
+                ..base.clone()
+            })
+            .await?,
+        );
     }
-    Ok(summarise(&name, lat, n_batches))
+    let links: Vec<String> = running
+        .iter()
+        .filter_map(|r| r.endpoints.link.clone())
+        .collect();
+    let comb = start(auspexd::config::FileConfig {
+        role: Some("combine".into()),
+        shards: Some(links),
+        ..base
+    })
+    .await?;
+    let eps = comb.endpoints.clone();
+    // Every shard greets before the session starts.
+    let t = Instant::now();
+    while !crate::live::status(&eps.control)
+        .await
+        .is_ok_and(|s| s.shards.iter().all(|x| x.joined))
+    {
+        if t.elapsed() > Duration::from_secs(10) {
+            anyhow::bail!("the shards did not join the combiner within 10 s");
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    let mut pushes = Vec::new();
+    for r in running
+        .iter()
+        .map(|r| &r.endpoints.ingest)
+        .chain([eps.task_ingest.as_ref().unwrap_or(&eps.ingest)])
+    {
+        let mut p = zeromq::PushSocket::new();
+        p.connect(r).await?;
+        pushes.push(p);
+    }
+    let part_of: Vec<usize> = (0..nu)
+        .map(|u| {
+            (0..shards)
+                .find(|&p| model.part_units(p, shards).contains(&u))
+                .unwrap_or(0) as usize
+        })
+        .collect();
+    let n_batches = (seconds * 1000.0).round() as usize;
+    let task = shards as usize;
+    let mut seqs = vec![0u64; task + 1];
+    let mut enc = |to: usize, body: Body| {
+        seqs[to] += 1;
+        v1::Inbound {
+            sender: format!("bench-{to}"),
+            seq: seqs[to],
+            body: Some(body),
+        }
+        .encode_to_vec()
+    };
+    let mut msgs = Vec::new();
+    for (batch, bytes) in latency_messages(nu, ns, n_batches) {
+        let Some(body) = v1::Inbound::decode(bytes.as_slice())?.body else {
+            continue;
+        };
+        match body {
+            Body::SessionStart(s) => {
+                for to in 0..=task {
+                    msgs.push((None, to, enc(to, Body::SessionStart(s.clone()))));
+                }
+            }
+            Body::Spikes(b) => {
+                for to in 0..task {
+                    let (units, ticks): (Vec<u32>, Vec<i64>) = b
+                        .units
+                        .iter()
+                        .zip(&b.ticks)
+                        .filter(|(u, _)| part_of[**u as usize] == to)
+                        .map(|(u, t)| (*u, *t))
+                        .unzip();
+                    let body = Body::Spikes(v1::SpikeBatch {
+                        units,
+                        ticks,
+                        complete_through: b.complete_through,
+                    });
+                    msgs.push((batch, to, enc(to, body)));
+                }
+            }
+            other => msgs.push((None, task, enc(task, other))),
+        }
+    }
+    let lat = measure(&eps.publish, pushes, msgs).await?;
+    comb.stop().await;
+    for r in running {
+        r.stop().await;
+    }
+    Ok(summarise(
+        &format!("tcp, {shards} shards + combiner"),
+        lat,
+        n_batches,
+    ))
 }
 
 /// The size ladder the self-test climbs.
@@ -703,6 +857,8 @@ pub struct Options {
     pub thread_scaling: bool,
     /// Engine threads of the latency runs' daemon (`auspexd --threads`).
     pub threads: u32,
+    /// Latency of a whole daemon and of this many shards + a combiner, side by side (0: off).
+    pub shards: u32,
 }
 
 /// Everything `auspex bench` measured.
@@ -734,7 +890,7 @@ pub async fn run(opts: &Options) -> anyhow::Result<Report> {
             print_model_point(path, &p);
             report.model = Some(p);
         }
-        None if opts.learning => {}
+        None if opts.learning || opts.shards > 0 => {}
         None if opts.thread_scaling => {}
         None => report.engine = ladder().await?,
     }
@@ -749,13 +905,16 @@ pub async fn run(opts: &Options) -> anyhow::Result<Report> {
         .await??;
         return Ok(report);
     }
-    if opts.model.is_none() && !opts.learning {
+    if opts.model.is_none() && !opts.learning && opts.shards == 0 {
         eprintln!("auspex bench: engine threads (auspexd --threads), {cores} cores");
         report.threads =
             tokio::task::spawn_blocking(move || thread_scaling(&[(1024, 64)], cores.max(2)))
                 .await??;
     }
-    if opts.learning {
+    if opts.shards > 0 {
+        report.latency =
+            sharded_latencies(opts.latency_seconds, opts.latency_size, opts.shards).await?;
+    } else if opts.learning {
         report.latency = learning_latencies(opts.latency_seconds, opts.latency_size).await?;
     } else if opts.latency {
         report.latency = latencies(opts.latency_seconds, opts.latency_size, opts.threads).await?;
@@ -825,6 +984,35 @@ async fn latencies(
         lats.push(l);
     }
     Ok(lats)
+}
+
+/// Batch → posterior latency over TCP loopback of one whole daemon and of `shards` shards + a
+/// combiner, in one run.
+async fn sharded_latencies(
+    seconds: f64,
+    size: (usize, usize),
+    shards: u32,
+) -> anyhow::Result<Vec<Latency>> {
+    let dir = tempfile::tempdir()?;
+    eprintln!(
+        "latency over tcp loopback, one whole daemon: {} units × {} stimuli, 1 kHz batches for {seconds} s …",
+        size.0, size.1
+    );
+    let whole = latency(size.0, size.1, seconds, "tcp", dir.path(), false, 1).await?;
+    eprintln!("latency over tcp loopback, {shards} shards + combiner (each shard sent its units' spikes) …");
+    let sharded = latency_sharded(size.0, size.1, seconds, dir.path(), shards).await?;
+    for l in [&whole, &sharded] {
+        println!(
+            "batch → posterior frame over {}: p50 {:.0} µs, p99 {:.0} µs, p99.9 {:.0} µs, worst {:.0} µs ({} frames)",
+            l.transport, l.p50_us, l.p99_us, l.p999_us, l.max_us, l.frames
+        );
+    }
+    println!(
+        "→ the deployment adds p50 {:+.0} µs, p99 {:+.0} µs (target: p99 ≤ 300 µs extra)",
+        sharded.p50_us - whole.p50_us,
+        sharded.p99_us - whole.p99_us
+    );
+    Ok(vec![whole, sharded])
 }
 
 /// Batch → posterior latency over TCP without and with learning (a refit after every labelled

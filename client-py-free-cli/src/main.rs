@@ -275,6 +275,9 @@ enum Cmd {
         /// Engine threads of the latency runs' daemon (as auspexd --threads)
         #[arg(long, default_value_t = 1, value_name = "N")]
         threads: u32,
+        /// Latency over TCP of one whole daemon and of N shards + a combiner (auspexd --role), side by side
+        #[arg(long, value_name = "N", conflicts_with_all = ["model", "learning", "thread_scaling", "no_latency"])]
+        shards: Option<u32>,
         /// Memory for looked-up COM-Poisson/empirical terms with --model, MB (as the daemon's flag)
         #[arg(long, default_value_t = (auspex_engine::model::TABLE_LOOKUP_BUDGET_BYTES >> 20) as u64)]
         table_memory_mb: u64,
@@ -585,7 +588,7 @@ fn main() {
         )
         .map(|_| ()),
         // The daemon runs in this process on the runtime it has when deployed.
-        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, learning, thread_scaling, threads, table_memory_mb } => auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
+        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, learning, thread_scaling, threads, shards, table_memory_mb } => auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
             rt.block_on(async {
                 if !(seconds > 0.0 && units > 0 && stimuli > 1) {
                     anyhow::bail!("--seconds must be > 0, --units ≥ 1 and --stimuli ≥ 2");
@@ -600,7 +603,11 @@ fn main() {
                     learning,
                     thread_scaling,
                     threads,
+                    shards: shards.unwrap_or(0),
                 };
+                if !(0..=64).contains(&opts.shards) || opts.shards == 1 {
+                    anyhow::bail!("--shards {}: give 2 to 64", opts.shards);
+                }
                 let out = auspex::bench::run(&opts).await?;
                 if json {
                     println!("{}", serde_json::to_string(&out)?);
