@@ -157,6 +157,13 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
     let (mut data, report) = source.load(opts.window_s)?;
     eprintln!("{report}");
     order_stimuli(&mut data, &args.stimulus_order, source)?;
+    if !args.unit_groups.is_empty() {
+        // Checked before the fit, which takes a while.
+        let mut ids = data.units.clone();
+        ids.sort_unstable();
+        ids.dedup();
+        group_starts(&ids, &args.unit_groups)?;
+    }
     let t0 = std::time::Instant::now();
     let (mut spec, plan) = fit_dataset(&data, &opts, std::io::stderr().is_terminal() && !quiet)?;
     for (name, &n) in plan.stimuli.iter().zip(&plan.trials_per_stimulus) {
@@ -821,4 +828,21 @@ pub fn validate_cmd(
         json_path.display()
     );
     Ok(v)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::group_starts;
+
+    #[test]
+    fn unit_groups_start_at_the_given_ids() {
+        let units = [101, 102, 105, 113, 120];
+        assert_eq!(group_starts(&units, &[]).unwrap(), Vec::<u32>::new());
+        // Ids between units start the group at the next unit.
+        assert_eq!(group_starts(&units, &[103, 113]).unwrap(), [2, 3]);
+        for bad in [&[101][..], &[121], &[113, 110], &[115, 119]] {
+            assert!(group_starts(&units, bad).is_err(), "{bad:?}");
+        }
+        assert!(group_starts(&[5, 3], &[4]).is_err(), "units out of order");
+    }
 }

@@ -334,7 +334,7 @@ enum Cmd {
     /// Run the daemon (same flags as `auspexd`)
     Daemon {
         #[command(flatten)]
-        args: auspexd::cli::DaemonArgs,
+        args: Box<auspexd::cli::DaemonArgs>,
     },
     /// Send a recorded session or CSV tables to a running daemon through its ingest socket
     Replay {
@@ -362,6 +362,15 @@ enum Cmd {
         /// Sender name
         #[arg(long, default_value = "auspex-replay")]
         sender: String,
+        /// Send only these units' spikes, e.g. 101-112,130 (one acquisition machine's share for
+        /// its shard; every watermark is kept)
+        #[arg(long, value_name = "IDS")]
+        units: Option<String>,
+        /// Send only the spikes (with watermarks) or only the trial messages (onsets, labels,
+        /// cancels); the session's start and end go with both. For a shard deployment: spikes to
+        /// each shard, trials to the combiner's task endpoint
+        #[arg(long, value_parser = ["spikes", "trials"])]
+        only: Option<String>,
     },
     /// Send plain text lines (spike UNIT TICK, through TICK, onset TRIAL TICK [STIM], label, cancel,
     /// units … from TICK, session, end) to a daemon: a bridge for programs in any language
@@ -633,8 +642,8 @@ fn main() {
             eprintln!("validation report: {} (open it in a browser)", out_dir.join("validation").join("report.html").display());
             Ok(())
         }),
-        Cmd::Daemon { args } => std::process::exit(auspexd::cli::run_cli(args)),
-        Cmd::Replay { session, spikes, trials, to, control, speed, fast, sender } => runtime().and_then(|rt| {
+        Cmd::Daemon { args } => std::process::exit(auspexd::cli::run_cli(*args)),
+        Cmd::Replay { session, spikes, trials, to, control, speed, fast, sender, units, only } => runtime().and_then(|rt| {
             rt.block_on(async {
                 let (msgs, rate) = match (session, spikes, trials) {
                     (Some(p), _, _) => {
@@ -654,10 +663,21 @@ fn main() {
                         let (data, report) = auspex::tables::read_dataset(&sp, &tr, 1e6, st.bin_width_s * st.n_bins as f64)?;
                         eprintln!("{report}");
                         let bt = (st.bin_width_s * 1e6).round() as i64;
-                        (auspex::wire::dataset_messages(&data, &sender, bt, bt * st.n_bins as i64), 1e6)
+                        let mut msgs = auspex::wire::dataset_messages(&data, &sender, bt, bt * st.n_bins as i64);
+                        // Named after the trial table, so replays of one session's tables by
+                        // several senders (a shard deployment's) announce the same session.
+                        let name = tr.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
+                        for m in &mut msgs {
+                            if let Some(v1::inbound::Body::SessionStart(ss)) = m.body.as_mut() {
+                                ss.session_name = name.clone();
+                            }
+                        }
+                        (msgs, 1e6)
                     }
                     _ => anyhow::bail!("give --session FILE, or --spikes and --trials"),
                 };
+                let units = units.as_deref().map(auspex::wire::parse_unit_ranges).transpose()?;
+                let msgs = auspex::wire::select_messages(msgs, units.as_ref(), only.as_deref(), &sender);
                 let pace = if fast { Pace::Max } else { Pace::Speed(speed) };
                 let took = auspex::live::replay(&to, &control, &msgs, &sender, rate, pace, std::io::stderr().is_terminal()).await?;
                 eprintln!("sent {} messages in {:.2} s; the daemon acknowledged the last one", msgs.len(), took.as_secs_f64());

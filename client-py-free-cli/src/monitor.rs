@@ -632,9 +632,13 @@ pub fn deployment_lines(s: &v1::Status) -> Vec<String> {
         "combine" => {
             let h = s.health.clone().unwrap_or_default();
             let mut out = vec![format!(
-                "combiner of {} shards · {} losses{}{}",
+                "combiner of {} shards · {}{}{}",
                 s.parts,
-                h.shards_lost,
+                match h.shards_lost {
+                    0 => "none lost".to_string(),
+                    1 => "a shard lost once".to_string(),
+                    n => format!("shards lost {n} times"),
+                },
                 if h.missing_parts != 0 {
                     format!(
                         " · trials opened now LACK parts {}",

@@ -187,3 +187,137 @@ pub fn read_recording(path: &std::path::Path) -> anyhow::Result<RecordedSession>
         torn_tail_bytes: contents.torn_tail_bytes,
     })
 }
+
+/// Unit ids from `101-112,130` (ranges inclusive).
+pub fn parse_unit_ranges(text: &str) -> anyhow::Result<std::collections::BTreeSet<u32>> {
+    let mut out = std::collections::BTreeSet::new();
+    for part in text.split(',').map(str::trim).filter(|p| !p.is_empty()) {
+        let num = |x: &str| {
+            x.trim()
+                .parse::<u32>()
+                .map_err(|_| anyhow::anyhow!("--units {text}: `{x}` is not a unit id"))
+        };
+        match part.split_once('-') {
+            Some((a, b)) => {
+                let (a, b) = (num(a)?, num(b)?);
+                if a > b || b - a > 1_000_000 {
+                    anyhow::bail!("--units {text}: `{part}` is not a range from low to high");
+                }
+                out.extend(a..=b);
+            }
+            None => {
+                out.insert(num(part)?);
+            }
+        }
+    }
+    if out.is_empty() {
+        anyhow::bail!("--units {text}: no unit id given");
+    }
+    Ok(out)
+}
+
+/// A replay's share of a session: only `units`' spikes (every watermark kept), and only the
+/// spikes (`only = "spikes"`) or only the trial messages (`"trials"`); the session's start and
+/// end always go. Renumbered for `sender`.
+pub fn select_messages(
+    msgs: Vec<v1::Inbound>,
+    units: Option<&std::collections::BTreeSet<u32>>,
+    only: Option<&str>,
+    sender: &str,
+) -> Vec<v1::Inbound> {
+    let spikes = only != Some("trials");
+    let trials = only != Some("spikes");
+    let mut out: Vec<v1::Inbound> = msgs
+        .into_iter()
+        .filter_map(|mut m| {
+            let keep = match m.body.as_mut()? {
+                Body::Spikes(b) => {
+                    if let Some(keep) = units {
+                        let (u, t): (Vec<u32>, Vec<i64>) = b
+                            .units
+                            .iter()
+                            .zip(&b.ticks)
+                            .filter(|(u, _)| keep.contains(u))
+                            .map(|(u, t)| (*u, *t))
+                            .unzip();
+                        (b.units, b.ticks) = (u, t);
+                    }
+                    spikes
+                }
+                Body::Heartbeat(_) => spikes,
+                Body::Onset(_) | Body::Label(_) | Body::Cancel(_) => trials,
+                _ => true,
+            };
+            keep.then_some(m)
+        })
+        .collect();
+    for (i, m) in out.iter_mut().enumerate() {
+        m.sender = sender.to_string();
+        m.seq = i as u64 + 1;
+    }
+    out
+}
+
+#[cfg(test)]
+mod selection_tests {
+    use super::*;
+
+    #[test]
+    fn a_replay_share_keeps_its_units_every_watermark_and_the_session_ends() {
+        let ids = parse_unit_ranges("101-103, 130").unwrap();
+        assert_eq!(
+            ids.iter().copied().collect::<Vec<_>>(),
+            [101, 102, 103, 130]
+        );
+        assert!(parse_unit_ranges("5-2").is_err() && parse_unit_ranges("x").is_err());
+        let m = |body| v1::Inbound {
+            sender: "s".into(),
+            seq: 0,
+            body: Some(body),
+        };
+        let msgs = vec![
+            m(Body::SessionStart(Default::default())),
+            m(Body::Onset(Default::default())),
+            m(Body::Spikes(v1::SpikeBatch {
+                units: vec![101, 200, 130],
+                ticks: vec![1, 2, 3],
+                complete_through: 9,
+            })),
+            m(Body::Heartbeat(v1::Heartbeat {
+                complete_through: 19,
+            })),
+            m(Body::Label(Default::default())),
+            m(Body::EndOfStream(Default::default())),
+        ];
+        let spikes = select_messages(msgs.clone(), Some(&ids), Some("spikes"), "acq-a");
+        let kinds = |v: &[v1::Inbound]| -> Vec<&'static str> {
+            v.iter()
+                .map(|m| match m.body.as_ref().unwrap() {
+                    Body::SessionStart(_) => "start",
+                    Body::Onset(_) => "onset",
+                    Body::Spikes(_) => "spikes",
+                    Body::Heartbeat(_) => "beat",
+                    Body::Label(_) => "label",
+                    Body::EndOfStream(_) => "end",
+                    _ => "other",
+                })
+                .collect()
+        };
+        assert_eq!(kinds(&spikes), ["start", "spikes", "beat", "end"]);
+        match spikes[1].body.as_ref().unwrap() {
+            Body::Spikes(b) => {
+                assert_eq!(
+                    (&b.units[..], &b.ticks[..], b.complete_through),
+                    (&[101, 130][..], &[1, 3][..], 9)
+                )
+            }
+            _ => unreachable!(),
+        }
+        assert!(spikes
+            .iter()
+            .enumerate()
+            .all(|(i, m)| m.sender == "acq-a" && m.seq == i as u64 + 1));
+        let trials = select_messages(msgs, None, Some("trials"), "task");
+        assert_eq!(kinds(&trials), ["start", "onset", "label", "end"]);
+    }
+}

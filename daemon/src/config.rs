@@ -600,4 +600,117 @@ mod tests {
         .unwrap_err()
         .contains("model's window"));
     }
+
+    #[test]
+    fn deployment_roles_are_checked() {
+        let mut w = Vec::new();
+        let base = FileConfig {
+            model: Some("m".into()),
+            ..Default::default()
+        };
+        let with = |f: FileConfig| validate(f, &mut Vec::new());
+        assert_eq!(
+            validate(base.clone(), &mut w).unwrap().deployment,
+            Deployment::Whole
+        );
+        let shard = with(FileConfig {
+            role: Some("shard".into()),
+            part: Some(1),
+            parts: Some(2),
+            ..base.clone()
+        })
+        .unwrap();
+        assert_eq!(
+            shard.deployment,
+            Deployment::Shard {
+                part: 1,
+                parts: 2,
+                link: defaults::LINK.into()
+            }
+        );
+        let refused = |f: FileConfig, says: &str| {
+            let e = with(f).unwrap_err();
+            assert!(e.contains(says), "{e}");
+        };
+        refused(
+            FileConfig {
+                role: Some("shard".into()),
+                ..base.clone()
+            },
+            "--part P --parts N",
+        );
+        refused(
+            FileConfig {
+                role: Some("shard".into()),
+                part: Some(2),
+                parts: Some(2),
+                ..base.clone()
+            },
+            "the part 0..parts",
+        );
+        refused(
+            FileConfig {
+                role: Some("combine".into()),
+                ..base.clone()
+            },
+            "--shard ENDPOINT",
+        );
+        refused(
+            FileConfig {
+                part: Some(0),
+                ..base.clone()
+            },
+            "for --role shard",
+        );
+        refused(
+            FileConfig {
+                shards: Some(vec!["tcp://a:1".into()]),
+                ..base.clone()
+            },
+            "for --role combine",
+        );
+        refused(
+            FileConfig {
+                role: Some("combine".into()),
+                shards: Some(vec!["a:1".into()]),
+                ..base.clone()
+            },
+            "link endpoint",
+        );
+        refused(
+            FileConfig {
+                role: Some("combine".into()),
+                shards: Some(vec!["tcp://a:1".into()]),
+                threads: Some(2),
+                ..base.clone()
+            },
+            "one engine thread",
+        );
+        refused(
+            FileConfig {
+                role: Some("combine".into()),
+                shards: Some(vec!["tcp://a:1".into()]),
+                model: None,
+                ..base.clone()
+            },
+            "fixed model",
+        );
+        refused(
+            FileConfig {
+                role: Some("shard".into()),
+                part: Some(0),
+                parts: Some(2),
+                link: Some("tcp://0.0.0.0:7714".into()),
+                ..base.clone()
+            },
+            "--allow-remote",
+        );
+        refused(
+            FileConfig {
+                role: Some("middle".into()),
+                ..base
+            },
+            "whole (the default), shard or combine",
+        );
+    }
 }

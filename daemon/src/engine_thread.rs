@@ -120,6 +120,8 @@ struct DaemonCounters {
 
 #[derive(Default, Debug, Clone)]
 struct SenderInfo {
+    /// Its messages come relayed by a combiner (a shard's view of the task program).
+    relayed: bool,
     last_seq: u64,
     gaps: u64,
     ended: bool,
@@ -473,7 +475,7 @@ impl EngineThread {
                     decoder,
                     received_ns,
                 }) => self.relayed(bytes, &decoder, received_ns),
-                Ok(EngineInput::FromShard(ev)) => self.from_shard(ev),
+                Ok(EngineInput::FromShard(ev)) => self.shard_event(ev),
                 Ok(EngineInput::Shutdown) | Err(RecvTimeoutError::Disconnected) => break,
                 Err(RecvTimeoutError::Timeout) => {}
             }
@@ -618,6 +620,7 @@ impl EngineThread {
         let between = self.session.is_none();
         let s = self.senders.entry(msg.sender.clone()).or_default();
         s.messages += 1;
+        s.relayed |= endpoint == RELAY_ENDPOINT;
         s.between_sessions |= between;
         if s.last_seq != 0 && msg.seq <= s.last_seq {
             if restart || (s.ended && msg.seq == 1) {
@@ -663,7 +666,12 @@ impl EngineThread {
                 if let Some(s) = self.senders.get_mut(&msg.sender) {
                     s.ended = true;
                 }
-                if self.session.is_some() && self.senders.values().all(|s| s.ended) {
+                // A shard's session is its acquisition's: the task program's end (relayed by
+                // the combiner) may come before the last spikes of its own senders.
+                let own = |s: &&SenderInfo| !s.relayed || matches!(self.link, Link::None);
+                let ended = self.senders.values().filter(own).all(|s| s.ended)
+                    && self.senders.values().find(own).is_some();
+                if self.session.is_some() && ended {
                     let waiting = matches!(self.link, Link::Combine { .. })
                         && self
                             .engine
@@ -992,7 +1000,7 @@ impl EngineThread {
     }
 
     /// A combiner's link tasks report: a shard joined, was lost, or sent a partial.
-    fn from_shard(&mut self, ev: ShardEvent) {
+    fn shard_event(&mut self, ev: ShardEvent) {
         let Link::Combine {
             shards,
             lost_events,

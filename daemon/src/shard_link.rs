@@ -190,10 +190,11 @@ pub async fn run_combiner_link(
         let connected = loop {
             tokio::select! {
                 _ = stop.changed() => return,
-                r = tokio::time::timeout(Duration::from_millis(500), sock.connect(&endpoint)) => match r {
-                    Ok(Ok(())) => break true,
-                    Ok(Err(_)) | Err(_) => {}
-                },
+                r = tokio::time::timeout(Duration::from_millis(500), sock.connect(&endpoint)) => {
+                    if let Ok(Ok(())) = r {
+                        break true;
+                    }
+                }
                 r = relays.recv() => match r {
                     Some(r) if r.session_start => session_start = Some(r.relay),
                     Some(_) => {}
