@@ -15,7 +15,7 @@
 
 use crate::engine_thread::EngineInput;
 use crate::ingest::forward;
-use crate::workers::OwnedPartial;
+use auspex_engine::engine::OwnedPartial;
 use auspex_engine::engine::Partial;
 use auspex_proto::v1::{self, shard_link};
 use crossbeam_channel::Sender;
@@ -57,34 +57,12 @@ pub enum ShardEvent {
 
 /// A shard's partial as it travels.
 pub fn partial_msg(p: &Partial<'_>) -> Vec<u8> {
-    let (unit_ll, unit_counts) = p
-        .units
-        .map(|(l, k)| (l.to_vec(), k.to_vec()))
-        .unwrap_or_default();
     v1::ShardLink {
-        body: Some(shard_link::Body::Partial(v1::ShardPartial {
-            trial: p.trial,
-            bin: p.bin,
-            first_block: p.first_block,
-            values: p.values.to_vec(),
-            spikes: p.spikes,
-            last: p.units.is_some(),
-            unit_ll,
-            unit_counts,
-        })),
+        body: Some(shard_link::Body::Partial(
+            auspex_proto::convert::partial_msg(p),
+        )),
     }
     .encode_to_vec()
-}
-
-fn owned(p: v1::ShardPartial) -> OwnedPartial {
-    OwnedPartial {
-        trial: p.trial,
-        bin: p.bin,
-        first_block: p.first_block,
-        values: p.values,
-        spikes: p.spikes,
-        units: p.last.then_some((p.unit_ll, p.unit_counts)),
-    }
 }
 
 fn frame(body: shard_link::Body) -> ZmqMessage {
@@ -262,7 +240,7 @@ pub async fn run_combiner_link(
                             }
                         }
                         shard_link::Body::Partial(p) if joined => {
-                            let ev = EngineInput::FromShard(ShardEvent::Partial { part, partial: owned(p) });
+                            let ev = EngineInput::FromShard(ShardEvent::Partial { part, partial: auspex_proto::convert::partial_from_msg(p) });
                             if !forward(&engine_tx, ev).await { return; }
                         }
                         _ => {}

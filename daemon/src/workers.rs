@@ -20,35 +20,7 @@ use std::thread::JoinHandle;
 pub const MAX_THREADS: u32 = 64;
 
 /// One worker's partials for one bin, owned (sent to the engine thread).
-#[derive(Debug)]
-pub struct OwnedPartial {
-    /// Trial id.
-    pub trial: u64,
-    /// Bin.
-    pub bin: u32,
-    /// First block.
-    pub first_block: u32,
-    /// Blocks × stimuli.
-    pub values: Vec<f64>,
-    /// Spikes of the blocks' units so far.
-    pub spikes: u32,
-    /// At the last bin: per-unit log-likelihoods and counts.
-    pub units: Option<(Vec<f64>, Vec<u32>)>,
-}
-
-impl OwnedPartial {
-    /// Borrowed as the engine takes it.
-    pub fn as_partial(&self) -> Partial<'_> {
-        Partial {
-            trial: self.trial,
-            bin: self.bin,
-            first_block: self.first_block,
-            values: &self.values,
-            spikes: self.spikes,
-            units: self.units.as_ref().map(|(l, k)| (&l[..], &k[..])),
-        }
-    }
-}
+pub use auspex_engine::engine::OwnedPartial;
 
 enum WorkerMsg {
     /// A fresh engine (a new session, or the first model).
@@ -92,17 +64,8 @@ struct PartialSink<'a> {
 
 impl EngineSink for PartialSink<'_> {
     fn partial(&mut self, p: &Partial<'_>) {
-        let mut values = self.recycled.try_recv().unwrap_or_default();
-        values.clear();
-        values.extend_from_slice(p.values);
-        let _ = self.tx.send(OwnedPartial {
-            trial: p.trial,
-            bin: p.bin,
-            first_block: p.first_block,
-            values,
-            spikes: p.spikes,
-            units: p.units.map(|(l, k)| (l.to_vec(), k.to_vec())),
-        });
+        let values = self.recycled.try_recv().unwrap_or_default();
+        let _ = self.tx.send(OwnedPartial::copied(p, values));
     }
 }
 

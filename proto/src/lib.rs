@@ -14,8 +14,10 @@ pub mod v1 {
     include!(concat!(env!("OUT_DIR"), "/auspex.v1.rs"));
 }
 
+pub mod convert;
 pub mod crc32;
 pub mod model_file;
+pub mod recording;
 pub mod session;
 pub mod stream;
 

@@ -91,6 +91,8 @@ pub struct Decision {
     pub posterior: f64,
     /// Bin in which it fired.
     pub bin: u32,
+    /// The last tick of that bin.
+    pub bin_end_tick: i64,
     /// Why.
     pub reason: DecisionReason,
     /// Presented stimulus, if known at the time.

@@ -181,6 +181,51 @@ pub struct Partial<'a> {
     pub units: Option<(&'a [f64], &'a [u32])>,
 }
 
+/// A [`Partial`] that owns its values (to send to another thread or machine).
+#[derive(Debug, Clone, PartialEq)]
+pub struct OwnedPartial {
+    /// Trial id.
+    pub trial: u64,
+    /// Bin.
+    pub bin: u32,
+    /// First block.
+    pub first_block: u32,
+    /// Blocks × stimuli.
+    pub values: Vec<f64>,
+    /// Spikes of the blocks' units so far.
+    pub spikes: u32,
+    /// At the last bin: per-unit log-likelihoods and counts.
+    pub units: Option<(Vec<f64>, Vec<u32>)>,
+}
+
+impl OwnedPartial {
+    /// Borrowed as the engine takes it.
+    pub fn as_partial(&self) -> Partial<'_> {
+        Partial {
+            trial: self.trial,
+            bin: self.bin,
+            first_block: self.first_block,
+            values: &self.values,
+            spikes: self.spikes,
+            units: self.units.as_ref().map(|(l, k)| (&l[..], &k[..])),
+        }
+    }
+
+    /// A copy of `p`, reusing `values`' allocation.
+    pub fn copied(p: &Partial<'_>, mut values: Vec<f64>) -> Self {
+        values.clear();
+        values.extend_from_slice(p.values);
+        OwnedPartial {
+            trial: p.trial,
+            bin: p.bin,
+            first_block: p.first_block,
+            values,
+            spikes: p.spikes,
+            units: p.units.map(|(l, k)| (l.to_vec(), k.to_vec())),
+        }
+    }
+}
+
 impl EngineConfig {
     /// Defaults for a clock of `tick_rate_hz`.
     pub fn new(tick_rate_hz: f64) -> Self {
@@ -1565,6 +1610,7 @@ fn run_bins(
                     stimulus: top,
                     posterior: top_p,
                     bin: b as u32,
+                    bin_end_tick: bin_end - 1,
                     reason,
                     presented: t.presented,
                     threshold: t.threshold,

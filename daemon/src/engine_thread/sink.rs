@@ -78,17 +78,7 @@ impl EngineSink for PubSink<'_> {
         }
     }
     fn frame(&mut self, f: &Frame<'_>) {
-        let body = outbound::Body::Posterior(v1::PosteriorFrame {
-            trial: f.trial,
-            bin: f.bin,
-            bin_end_tick: f.bin_end_tick,
-            posterior: f.posterior.to_vec(),
-            top: f.top,
-            top_posterior: f.top_posterior,
-            entropy_bits: f.entropy_bits,
-            spikes: f.spikes,
-            missing_parts: f.lost_parts,
-        });
+        let body = outbound::Body::Posterior(auspex_proto::convert::frame_msg(f));
         self.publisher.publish(topic::POSTERIOR, body, false);
     }
     fn decision(&mut self, d: &Decision) {
@@ -226,25 +216,4 @@ impl EngineSink for PubSink<'_> {
     }
 }
 
-/// The published form of a decision, named in the order of the trial's model.
-pub fn decision_msg(d: &Decision, stimuli: &[String]) -> v1::DecisionEvent {
-    v1::DecisionEvent {
-        trial: d.trial,
-        stimulus: d.stimulus,
-        stimulus_name: stimuli
-            .get(d.stimulus as usize)
-            .cloned()
-            .unwrap_or_default(),
-        posterior: d.posterior,
-        bin: d.bin,
-        reason: match d.reason {
-            DecisionReason::Threshold => v1::DecisionReason::Threshold,
-            DecisionReason::WindowEnd => v1::DecisionReason::WindowEnd,
-        } as i32,
-        presented: d
-            .presented
-            .and_then(|p| stimuli.get(p as usize).cloned())
-            .unwrap_or_default(),
-        bin_end_tick: 0,
-    }
-}
+pub use auspex_proto::convert::decision_msg;
