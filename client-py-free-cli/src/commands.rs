@@ -398,7 +398,7 @@ pub fn promise_for(
     let mut cfg = EngineConfig::new(1.0);
     cfg.decoder = decoder;
     cfg.calibrated = calibrated;
-    let (policy, evidence) = auspexd::promise::PromiseKeeper::policy_for(target, Some(model), &cfg)
+    let (policy, evidence) = auspex_engine::decision::policy_for_target(target, Some(model), &cfg)
         .map_err(|e| anyhow::anyhow!("--target-accuracy {target}: {e}"))?;
     let line = format!(
         "target accuracy {target}: deciding at threshold {} after {:.0} ms — {evidence}",

@@ -12,7 +12,7 @@ use std::time::{Duration, Instant};
 use zeromq::{Socket, SocketRecv, SocketSend, ZmqMessage};
 
 /// Default endpoints of a local daemon.
-pub use auspexd::config::defaults;
+pub use auspex_proto::endpoints as defaults;
 
 /// One control request and its reply, with a timeout.
 pub async fn control(

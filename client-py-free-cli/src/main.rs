@@ -348,10 +348,10 @@ enum Cmd {
         #[arg(long, requires = "spikes")]
         trials: Option<PathBuf>,
         /// Daemon ingest endpoint
-        #[arg(long, default_value = auspexd::config::defaults::INGEST)]
+        #[arg(long, default_value = auspex_proto::endpoints::INGEST)]
         to: String,
         /// Daemon control endpoint (for the acknowledgement)
-        #[arg(long, default_value = auspexd::config::defaults::CONTROL)]
+        #[arg(long, default_value = auspex_proto::endpoints::CONTROL)]
         control: String,
         /// Times real time
         #[arg(long, default_value_t = 1.0)]
@@ -381,7 +381,7 @@ enum Cmd {
         #[arg(long)]
         follow: bool,
         /// Daemon ingest endpoint (or its task endpoint for task-control lines)
-        #[arg(long, default_value = auspexd::config::defaults::INGEST)]
+        #[arg(long, default_value = auspex_proto::endpoints::INGEST)]
         to: String,
         /// Sender name (each program that sends needs its own)
         #[arg(long, default_value = "auspex-send")]
@@ -390,7 +390,7 @@ enum Cmd {
     /// Show a daemon's state, model and counters
     Status {
         /// Daemon control endpoint
-        #[arg(long, default_value = auspexd::config::defaults::CONTROL)]
+        #[arg(long, default_value = auspex_proto::endpoints::CONTROL)]
         control: String,
         /// Print JSON
         #[arg(long)]
@@ -399,7 +399,7 @@ enum Cmd {
     /// Change a running daemon's settings, reload its model, or ask for the next stimulus
     Steer {
         /// Daemon control endpoint
-        #[arg(long, default_value = auspexd::config::defaults::CONTROL)]
+        #[arg(long, default_value = auspex_proto::endpoints::CONTROL)]
         control: String,
         #[command(subcommand)]
         what: Steer,
@@ -407,10 +407,10 @@ enum Cmd {
     /// Watch a daemon live (full screen on a terminal, plain lines otherwise)
     Monitor {
         /// Daemon publish endpoint
-        #[arg(long, default_value = auspexd::config::defaults::PUBLISH)]
+        #[arg(long, default_value = auspex_proto::endpoints::PUBLISH)]
         from: String,
         /// Daemon control endpoint
-        #[arg(long, default_value = auspexd::config::defaults::CONTROL)]
+        #[arg(long, default_value = auspex_proto::endpoints::CONTROL)]
         control: String,
         /// Plain text lines
         #[arg(long, conflicts_with = "json")]

@@ -188,18 +188,9 @@ pub struct DaemonConfig {
     pub deployment: Deployment,
 }
 
-/// Default endpoints: loopback only.
+/// Default endpoints (loopback only, `auspex_proto::endpoints`) and the shard deadline.
 pub mod defaults {
-    /// Main ingest.
-    pub const INGEST: &str = "tcp://127.0.0.1:7710";
-    /// Task-control ingest.
-    pub const TASK_INGEST: &str = "tcp://127.0.0.1:7711";
-    /// Publish.
-    pub const PUBLISH: &str = "tcp://127.0.0.1:7712";
-    /// Control.
-    pub const CONTROL: &str = "tcp://127.0.0.1:7713";
-    /// A shard's link to its combiner.
-    pub const LINK: &str = "tcp://127.0.0.1:7714";
+    pub use auspex_proto::endpoints::{CONTROL, INGEST, LINK, PUBLISH, TASK_INGEST};
     /// How long a shard may stay silent before its combiner goes on without it, ms.
     pub const SHARD_DEADLINE_MS: f64 = 500.0;
 }

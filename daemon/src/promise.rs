@@ -8,7 +8,7 @@
 //! Must not: touch the engine (the engine thread applies the policy this returns) or block.
 
 use auspex_engine::calibrate::{PromiseWatch, WATCH_ALARM};
-use auspex_engine::engine::{DecisionPolicy, Decoder, EngineConfig};
+use auspex_engine::engine::{DecisionPolicy, EngineConfig};
 use auspex_engine::Model;
 use auspex_proto::v1;
 
@@ -67,42 +67,7 @@ impl PromiseKeeper {
         model: Option<&Model>,
         config: &EngineConfig,
     ) -> Result<(DecisionPolicy, String), String> {
-        if !(target > 0.0 && target < 1.0) {
-            return Err(format!("target accuracy {target} must be in (0, 1)"));
-        }
-        let Some(m) = model else {
-            return Err("no model yet: the target needs a model's held-out record".into());
-        };
-        if config.decoder != Decoder::OrderStats {
-            return Err(format!(
-                "the target needs the order-stats decoder (the held-out record is of it), not {}",
-                config.decoder.name()
-            ));
-        }
-        let c = m.calibration();
-        if !config.calibrated && c.is_active() {
-            return Err(
-                "the held-out record is of the calibrated posterior; calibration is switched off"
-                    .into(),
-            );
-        }
-        let e = c.threshold_for(target).map_err(|e| e.to_string())?;
-        Ok((
-            DecisionPolicy {
-                threshold: e.threshold,
-                min_time_s: c.min_time_s,
-            },
-            format!(
-                "held out at θ {}: {}/{} right = {:.3} [{:.3}–{:.3}], median decision {:.0} ms",
-                e.threshold,
-                e.correct,
-                e.trials,
-                e.accuracy(),
-                e.lo,
-                e.hi,
-                e.median_decision_ms,
-            ),
-        ))
+        auspex_engine::decision::policy_for_target(target, model, config)
     }
 
     /// Sets (or clears) the target; with a target, the policy to apply, or Err when `model`

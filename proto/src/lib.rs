@@ -27,6 +27,20 @@ use prost::Message;
 pub const MODEL_MAGIC: &[u8; 8] = b"APXMODEL";
 /// Model file format version this build writes and reads.
 pub const MODEL_FORMAT_VERSION: u32 = 1;
+/// The daemon's default endpoints: loopback only (the daemon and the client both use these).
+pub mod endpoints {
+    /// Main ingest.
+    pub const INGEST: &str = "tcp://127.0.0.1:7710";
+    /// Task-control ingest.
+    pub const TASK_INGEST: &str = "tcp://127.0.0.1:7711";
+    /// Publish.
+    pub const PUBLISH: &str = "tcp://127.0.0.1:7712";
+    /// Control.
+    pub const CONTROL: &str = "tcp://127.0.0.1:7713";
+    /// A shard's link to its combiner.
+    pub const LINK: &str = "tcp://127.0.0.1:7714";
+}
+
 /// Topics on the publish socket.
 pub mod topic {
     /// Posterior frames.
