@@ -10,6 +10,8 @@ use crossbeam_channel::{Receiver, RecvTimeoutError, Sender};
 use std::fs::File;
 use std::io::BufWriter;
 use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 /// What the recorder thread is told.
@@ -28,6 +30,7 @@ pub enum RecorderMsg {
 pub struct Recorder {
     tx: Sender<RecorderMsg>,
     join: std::thread::JoinHandle<u64>,
+    errors: Arc<AtomicU64>,
     /// The file being written.
     pub path: PathBuf,
 }
@@ -49,10 +52,21 @@ impl Recorder {
         let (tx, rx) = crossbeam_channel::bounded(1 << 16);
         let p = path.clone();
         let mp = model_path.to_string();
+        let errors = Arc::new(AtomicU64::new(0));
+        let e = errors.clone();
         let join = std::thread::Builder::new()
             .name("auspex-recorder".into())
-            .spawn(move || run(w, rx, p, &mp))?;
-        Ok(Recorder { tx, join, path })
+            .spawn(move || run(w, rx, p, &mp, &e))?;
+        Ok(Recorder {
+            tx,
+            join,
+            path,
+            errors,
+        })
+    }
+    /// Write errors so far (health reports them while the daemon runs).
+    pub fn errors(&self) -> Arc<AtomicU64> {
+        self.errors.clone()
     }
     /// A sender for the engine thread.
     pub fn sender(&self) -> Sender<RecorderMsg> {
@@ -86,8 +100,13 @@ fn run(
     rx: Receiver<RecorderMsg>,
     mut path: PathBuf,
     model_path: &str,
+    live: &AtomicU64,
 ) -> u64 {
     let mut errors = 0u64;
+    let count = |errors: &mut u64| {
+        *errors += 1;
+        live.fetch_add(1, Ordering::Relaxed);
+    };
     let mut last = Instant::now();
     let mut dirty = false;
     // Records in the current file: a file left without any (the next session never came) is
@@ -105,7 +124,7 @@ fn run(
             Ok(RecorderMsg::Record(r)) => {
                 written += 1;
                 if let Err(e) = w.append(&r) {
-                    errors += 1;
+                    count(&mut errors);
                     tracing::error!(file = %path.display(), error = %e, "session recording: write failed");
                 }
                 dirty = true;
@@ -117,13 +136,13 @@ fn run(
                     path = to;
                 }
                 Err(e) => {
-                    errors += 1;
+                    count(&mut errors);
                     tracing::error!(from = %path.display(), to = %to.display(), error = %e, "session recording: cannot rename; recording continues under the old name");
                 }
             },
             Ok(RecorderMsg::Rotate(to)) => {
                 if let Err(e) = w.flush() {
-                    errors += 1;
+                    count(&mut errors);
                     tracing::error!(file = %path.display(), error = %e, "session recording: flush failed");
                 }
                 match open(&to, model_path, crate::ingest::now_ns()) {
@@ -134,7 +153,7 @@ fn run(
                         written = 0;
                     }
                     Err(e) => {
-                        errors += 1;
+                        count(&mut errors);
                         tracing::error!(file = %to.display(), error = %e, "session recording: cannot create the next file; recording continues in the current one");
                     }
                 }
@@ -147,7 +166,7 @@ fn run(
         }
         if dirty && (flush || last.elapsed() >= period) {
             if let Err(e) = w.flush() {
-                errors += 1;
+                count(&mut errors);
                 tracing::error!(file = %path.display(), error = %e, "session recording: flush failed");
             }
             dirty = false;
@@ -157,7 +176,7 @@ fn run(
         }
     }
     if let Err(e) = w.flush() {
-        errors += 1;
+        count(&mut errors);
         tracing::error!(file = %path.display(), error = %e, "session recording: final flush failed");
     }
     drop(w);

@@ -267,6 +267,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         config: ec,
         tick_rate: cfg.tick_rate_hz,
         link,
+        recorder_errors: recorder.as_ref().map(|r| r.errors()).unwrap_or_default(),
         publisher: Publisher::new(pub_tx, stats.clone()),
         recorder: recorder.as_ref().map(|r| r.sender()),
         recording_path: recorder

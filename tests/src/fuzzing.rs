@@ -294,6 +294,7 @@ pub fn inbound_messages(data: &[u8]) {
         learn: None,
         target_accuracy: None,
         link: auspexd::shard_link::Link::None,
+        recorder_errors: Default::default(),
     };
     let (tx, rx) = crossbeam_channel::unbounded();
     let Ok(et) = EngineThread::new(setup, rx.clone()) else {

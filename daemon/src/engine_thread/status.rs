@@ -61,7 +61,7 @@ impl EngineThread {
             trials_completed: ec.trials_completed,
             decisions: ec.decisions,
             model_mismatches: self.counters.model_mismatches,
-            recorder_errors: 0,
+            recorder_errors: self.recorder_errors.load(Ordering::Relaxed),
             unlabelled_trials_dropped: ec.labels_missing,
             duplicate_messages: self.counters.duplicate_messages,
             learning: self.learn.is_some(),
