@@ -16,6 +16,7 @@ pub mod prequential;
 pub mod report;
 pub mod send;
 pub mod session;
+pub mod status;
 pub mod tables;
 pub mod validate;
 pub mod wire;

@@ -658,13 +658,14 @@ pub fn deployment_lines(s: &v1::Status) -> Vec<String> {
             )];
             for x in &s.shards {
                 out.push(format!(
-                    "  part {} {} · {} · {} partials · last heard {:.1} s ago · lost {} times{}",
+                    "  part {} {} · {} · {} partials · last heard {:.1} s ago · lost {} time{}{}",
                     x.part,
                     x.endpoint,
                     if x.joined { "joined" } else { "NOT JOINED" },
                     x.partials,
                     x.silent_s,
                     x.times_lost,
+                    if x.times_lost == 1 { "" } else { "s" },
                     if x.note.is_empty() {
                         String::new()
                     } else {

@@ -487,7 +487,9 @@ pub fn validate(
     }
     let fold_of = stratified_folds(&labels, ns, k, opts.seed);
     let bw_ms = opts.fit.bin_width_s * 1000.0;
-    let min_bin = ((opts.min_time_ms / bw_ms - 1e-9).ceil() as i64 - 1).max(0) as usize;
+    let min_bin =
+        auspex_engine::decision::min_bin_for(opts.min_time_ms / 1000.0, opts.fit.bin_width_s)
+            as usize;
 
     let bar = if opts.progress {
         ProgressBar::new((2 * k + opts.shuffles + 1) as u64)

@@ -1325,15 +1325,11 @@ impl Engine {
     }
 }
 
+/// The top entry and its value (the first one on ties; see [`crate::validation::argmax`]).
 #[inline]
 fn argmax(p: &[f64]) -> (u32, f64) {
-    let mut best = (0u32, f64::NEG_INFINITY);
-    for (i, &x) in p.iter().enumerate() {
-        if x > best.1 {
-            best = (i as u32, x);
-        }
-    }
-    best
+    let i = crate::validation::argmax(p);
+    (i as u32, p.get(i).copied().unwrap_or(f64::NEG_INFINITY))
 }
 
 fn emit_end(t: &TrialState, outcome: TrialOutcome, sink: &mut dyn EngineSink) {
