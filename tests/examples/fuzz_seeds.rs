@@ -31,6 +31,14 @@ fn main() -> anyhow::Result<()> {
         180, 3, 250, 7,
     ];
     put("engine_ops", "trial.bin", &ops)?;
+    // Shard link: open trial 1 at tick 0, then a well-formed partial per bin for bin 0..2 (one
+    // block of 3 stimuli), a loss, a restoration.
+    let mut link: Vec<u8> = vec![0, 1, 0];
+    for bin in 0..3u8 {
+        link.extend([1, 1, bin, 0, 2, 1, 3, 40, 50, 60]);
+    }
+    link.extend([4, 5]);
+    put("shard_link", "partials.bin", &link)?;
     // Inbound: with a model, one thread; session start, onset, batches, label, end.
     let inbound: Vec<u8> = vec![
         1, 0, 0, 0, 1, 2, 5, 0, 5, 1, 2, 5, 0, 2, 2, 0, 50, 60, 1, 0, 3, 2, 1, 45, 2, 50, 9, 120,

@@ -13,7 +13,7 @@ shift || true
 cd "$(dirname "$0")/.."
 targets=("$@")
 if [ ${#targets[@]} -eq 0 ]; then
-  targets=(inbound engine_ops model_file session_file csv_tables toml_config scenario monitor)
+  targets=(inbound engine_ops model_file session_file csv_tables toml_config scenario monitor shard_link)
 fi
 cargo +nightly fuzz build --fuzz-dir fuzz -s none -a >/dev/null || exit 1
 status=0

@@ -5,8 +5,8 @@
 //! Every reader of outside bytes has a target: inbound messages through the daemon's engine
 //! thread, the engine under arbitrary operation sequences (posteriors finite, summing to 1),
 //! model files, session files (records framed with valid CRCs so payloads are reached), CSV
-//! tables, the daemon's TOML configuration, scenario files, and the monitor's decoding and
-//! drawing of published messages. A target panics only on a real defect.
+//! tables, the daemon's TOML configuration, scenario files, the monitor's decoding and
+//! drawing of published messages, and what a combiner takes from its shards' links. A target panics only on a real defect.
 //!
 //! Must not: keep state between calls, or call anything slower than the engine's own limits
 //! allow (the scenario target simulates only small sessions).
@@ -22,7 +22,7 @@ use std::sync::{Arc, OnceLock};
 pub type Target = fn(&[u8]);
 
 /// The targets, by name (the fuzz binaries' and the regression folders' names).
-pub const TARGETS: [(&str, Target); 8] = [
+pub const TARGETS: [(&str, Target); 9] = [
     ("inbound", inbound_messages),
     ("engine_ops", engine_ops),
     ("model_file", model_file),
@@ -31,6 +31,7 @@ pub const TARGETS: [(&str, Target); 8] = [
     ("toml_config", toml_config),
     ("scenario", scenario),
     ("monitor", monitor),
+    ("shard_link", shard_link),
 ];
 
 /// Reads the input as a stream of small numbers.
@@ -473,4 +474,102 @@ pub fn monitor(data: &[u8]) {
     let mut term =
         ratatui::Terminal::new(ratatui::backend::TestBackend::new(100, 30)).expect("test terminal");
     let _ = term.draw(|f| state.draw(f));
+}
+
+/// A value a shard's partial might carry: ordinary, extreme, or not a number at all.
+fn partial_value(b: &mut Bytes<'_>) -> f64 {
+    match b.u8().unwrap_or(0) {
+        0 => f64::NAN,
+        1 => f64::INFINITY,
+        2 => f64::NEG_INFINITY,
+        3 => -1e300,
+        4 => 1e300,
+        5 => f64::MIN_POSITIVE,
+        x => -(x as f64) / 16.0,
+    }
+}
+
+/// What a combiner takes from its shards' links: `ShardLink` messages — structured partials of
+/// any shape and values, and raw bytes — interleaved with trial openings and with the part
+/// being given up and restored, into a combiner engine computing no block itself (the network
+/// role). Every posterior must be finite and sum to 1 whatever a shard sends.
+pub fn shard_link(data: &[u8]) {
+    use auspex_engine::engine::Role;
+    use auspex_proto::v1::shard_link::Body;
+    let m = small_model();
+    let mut cfg = EngineConfig::new(1000.0);
+    cfg.role = Role::Combiner {
+        part: None,
+        parts: 1,
+    };
+    let Ok(mut e) = Engine::new(m, cfg) else {
+        return;
+    };
+    let mut sink = CheckFrames;
+    let mut b = Bytes(data);
+    let mut ops = 0;
+    while let Some(op) = b.u8() {
+        ops += 1;
+        if ops > 2000 {
+            break;
+        }
+        let msg = match op % 6 {
+            0 => {
+                let id = b.u8().unwrap_or(0) as u64 % 8;
+                let onset = b.u8().unwrap_or(0) as i64;
+                let _ = e.open_trial(id, onset, None, &mut sink);
+                continue;
+            }
+            1 | 2 => {
+                let mut p = v1::ShardPartial {
+                    trial: b.u8().unwrap_or(0) as u64 % 8,
+                    bin: b.u8().unwrap_or(0) as u32 % 24,
+                    first_block: b.u8().unwrap_or(0) as u32 % 2,
+                    spikes: b.u8().unwrap_or(0) as u32,
+                    last: b.u8().unwrap_or(0) % 2 == 0,
+                    ..Default::default()
+                };
+                for _ in 0..b.u8().unwrap_or(0) % 8 {
+                    p.values.push(partial_value(&mut b));
+                }
+                if p.last {
+                    for _ in 0..b.u8().unwrap_or(0) % 20 {
+                        p.unit_ll.push(partial_value(&mut b));
+                    }
+                    for _ in 0..b.u8().unwrap_or(0) % 8 {
+                        p.unit_counts.push(b.u8().unwrap_or(0) as u32);
+                    }
+                }
+                // Through the wire's bytes, as the link decodes them.
+                v1::ShardLink {
+                    body: Some(Body::Partial(p)),
+                }
+                .encode_to_vec()
+            }
+            3 => b.slice(96).to_vec(),
+            4 => {
+                e.lose_part(0, &mut sink);
+                continue;
+            }
+            _ => {
+                e.restore_part(0);
+                continue;
+            }
+        };
+        if let Ok(v1::ShardLink {
+            body: Some(Body::Partial(p)),
+        }) = v1::ShardLink::decode(msg.as_slice())
+        {
+            let p = auspex_proto::convert::partial_from_msg(p);
+            let bad = p
+                .values
+                .iter()
+                .chain(p.units.iter().flat_map(|u| u.0.iter()))
+                .any(|v| v.is_nan() || *v == f64::INFINITY);
+            let r = e.add_partial(&p.as_partial(), &mut sink);
+            // A log-likelihood is never NaN or +∞: such a partial is refused (and counted),
+            // never folded into a posterior.
+            assert!(!bad || r.is_err(), "a NaN or +∞ partial was taken");
+        }
+    }
 }

@@ -1037,6 +1037,15 @@ impl Engine {
             bin: p.bin,
             first_block: p.first_block,
         };
+        // A log-likelihood may be −∞ (a count the model gives no chance), never NaN or +∞.
+        if p.values
+            .iter()
+            .chain(p.units.map_or(&[][..], |(ll, _)| ll))
+            .any(|v| v.is_nan() || *v == f64::INFINITY)
+        {
+            self.counters.stray_partials += 1;
+            return Err(stray);
+        }
         let Some(t) = self.trials.iter_mut().find(|t| t.id == p.trial) else {
             // A trial that ended here (cancelled, or its session closed) while the shard's
             // partials were on their way: nothing is missing.

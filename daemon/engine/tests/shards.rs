@@ -437,3 +437,44 @@ fn a_lost_part_is_named_in_every_frame_and_trials_still_finish() {
     assert!(comb.add_partial(&stray, &mut seen).is_err());
     assert_eq!(comb.counters().stray_partials, 1);
 }
+
+/// A shard's partial holding NaN or +∞ (a defect or a corrupted link) is refused and counted; −∞
+/// (a count the model gives no chance) is a log-likelihood like any other.
+#[test]
+fn a_partial_that_is_not_a_log_likelihood_is_refused() {
+    let m = model(UNIT_BLOCK, 3, 4, 0, 3);
+    let mut comb = Engine::new(
+        m.clone(),
+        config(
+            Decoder::OrderStats,
+            Role::Combiner {
+                part: None,
+                parts: 1,
+            },
+        ),
+    )
+    .unwrap();
+    let mut out = Partials::default();
+    comb.open_trial(1, 0, Some(0), &mut out).unwrap();
+    for bad in [f64::NAN, f64::INFINITY] {
+        let p = Partial {
+            trial: 1,
+            bin: 0,
+            first_block: 0,
+            values: &[-1.0, bad, -2.0],
+            spikes: 0,
+            units: None,
+        };
+        assert!(comb.add_partial(&p, &mut out).is_err(), "{bad} refused");
+    }
+    assert_eq!(comb.counters().stray_partials, 2);
+    let p = Partial {
+        trial: 1,
+        bin: 0,
+        first_block: 0,
+        values: &[-1.0, f64::NEG_INFINITY, -2.0],
+        spikes: 0,
+        units: None,
+    };
+    assert!(comb.add_partial(&p, &mut out).is_ok(), "−∞ taken");
+}
