@@ -421,7 +421,7 @@ fn a_stopped_shard_is_named_in_every_frame_and_rejoins_at_the_next_trial() {
         .iter()
         .map(|s| s.as_ref().unwrap().endpoints.link.clone().unwrap())
         .collect();
-    let comb = combiner(&rt, &f, &links, 300.0);
+    let comb = combiner(&rt, &f, &links, 1000.0);
     let ctx = zmq::Context::new();
     let cep = comb.endpoints.clone();
     wait_for(
