@@ -102,7 +102,12 @@ pub async fn run_shard_link(
     loop {
         tokio::select! {
             _ = stop.changed() => break,
-            m = rx.recv() => match m.ok().and_then(decode) {
+            m = rx.recv() => match m {
+                Err(_) => {
+                    // No combiner connected to read from.
+                    tokio::time::sleep(Duration::from_millis(10)).await;
+                }
+                Ok(m) => match decode(m) {
                 Some(shard_link::Body::Hello(h)) => {
                     tracing::info!(combiner_model_crc32 = format!("{:08x}", h.model_crc32), "combiner connected");
                     let _ = tokio::time::timeout(SEND_WAIT, tx.send(frame(shard_link::Body::Hello(hello.clone())))).await;
@@ -116,7 +121,7 @@ pub async fn run_shard_link(
                 Some(_) | None => {
                     tracing::warn!("link: a message that is neither a greeting nor a relay; ignored");
                 }
-            },
+            }},
             p = out.recv() => match p {
                 Some(bytes) => {
                     let sent = tokio::time::timeout(SEND_WAIT, tx.send(ZmqMessage::from(bytes))).await;
@@ -165,12 +170,12 @@ pub async fn run_combiner_link(
         let mut sock = zeromq::DealerSocket::new();
         // Connect, retrying; relays that come meanwhile are not kept (the shard is not there to
         // take them), except the session's start, resent when it joins.
-        let connected = loop {
+        loop {
             tokio::select! {
                 _ = stop.changed() => return,
                 r = tokio::time::timeout(Duration::from_millis(500), sock.connect(&endpoint)) => {
                     if let Ok(Ok(())) = r {
-                        break true;
+                        break;
                     }
                 }
                 r = relays.recv() => match r {
@@ -196,8 +201,7 @@ pub async fn run_combiner_link(
                 }
             }
             tokio::time::sleep(Duration::from_millis(100)).await;
-        };
-        debug_assert!(connected);
+        }
         let (mut tx, mut rx) = sock.split();
         let _ = tokio::time::timeout(
             SEND_WAIT,
@@ -210,7 +214,12 @@ pub async fn run_combiner_link(
             tokio::select! {
                 _ = stop.changed() => return,
                 m = rx.recv() => {
-                    let Some(body) = m.ok().and_then(decode) else { continue };
+                    let Ok(m) = m else {
+                        // No peer to read from (it went away): the deadline decides.
+                        tokio::time::sleep(Duration::from_millis(10)).await;
+                        continue;
+                    };
+                    let Some(body) = decode(m) else { continue };
                     last_ns.store(mono_ns(), Ordering::Relaxed);
                     match body {
                         shard_link::Body::Hello(h) => {
