@@ -143,18 +143,7 @@ impl PromiseKeeper {
                     .iter()
                     .find(|e| e.threshold == threshold)
             })
-            .map(|e| {
-                format!(
-                    "held out at θ {}: {}/{} right = {:.3} [{:.3}–{:.3}], median decision {:.0} ms",
-                    e.threshold,
-                    e.correct,
-                    e.trials,
-                    e.accuracy(),
-                    e.lo,
-                    e.hi,
-                    e.median_decision_ms
-                )
-            })
+            .map(|e| e.held_out_line())
             .unwrap_or_default()
     }
 

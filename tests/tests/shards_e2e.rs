@@ -254,26 +254,38 @@ fn send(ctx: &zmq::Context, socks: &[zmq::Socket], control: &str, dest: usize, m
     }
 }
 
-#[test]
-fn two_shards_and_a_combiner_give_frames_identical_to_offline_decode() {
-    let _serial = serial();
-    let f = fixture(3);
-    let rt = runtime();
-    let shards = [
-        shard(&rt, &f, 0, "tcp://127.0.0.1:0"),
-        shard(&rt, &f, 1, "tcp://127.0.0.1:0"),
+/// Two shards on free ports and a combiner connected to them, once both have joined:
+/// (shards, their link endpoints, combiner).
+fn deploy(
+    rt: &tokio::runtime::Runtime,
+    f: &Fixture,
+    ctx: &zmq::Context,
+    deadline_ms: f64,
+) -> (Vec<Running>, Vec<String>, Running) {
+    let shards = vec![
+        shard(rt, f, 0, "tcp://127.0.0.1:0"),
+        shard(rt, f, 1, "tcp://127.0.0.1:0"),
     ];
     let links: Vec<String> = shards
         .iter()
         .map(|s| s.endpoints.link.clone().unwrap())
         .collect();
-    let comb = combiner(&rt, &f, &links, 5000.0);
-    let ctx = zmq::Context::new();
-    let cep = comb.endpoints.clone();
+    let comb = combiner(rt, f, &links, deadline_ms);
     wait_for(
-        || joined(&ctx, &cep.control) == [true, true],
+        || joined(ctx, &comb.endpoints.control) == [true, true],
         "both shards to join",
     );
+    (shards, links, comb)
+}
+
+#[test]
+fn two_shards_and_a_combiner_give_frames_identical_to_offline_decode() {
+    let _serial = serial();
+    let f = fixture(3);
+    let rt = runtime();
+    let ctx = zmq::Context::new();
+    let (shards, _, comb) = deploy(&rt, &f, &ctx, 5000.0);
+    let cep = comb.endpoints.clone();
     let st = status(&ctx, &cep.control);
     assert_eq!((st.role.as_str(), st.parts), ("combine", 2));
     let (stop_sub, sub) = subscriber(&ctx, &cep.publish);
@@ -347,20 +359,8 @@ fn two_shards_and_a_combiner_give_frames_identical_to_offline_decode() {
 
     // Replaying the three recordings through a fresh deployment (at 4x real time, started
     // together, as a lab would after the session) gives the same frames.
-    let shards = [
-        shard(&rt, &f, 0, "tcp://127.0.0.1:0"),
-        shard(&rt, &f, 1, "tcp://127.0.0.1:0"),
-    ];
-    let links: Vec<String> = shards
-        .iter()
-        .map(|s| s.endpoints.link.clone().unwrap())
-        .collect();
-    let comb = combiner(&rt, &f, &links, 5000.0);
+    let (shards, _, comb) = deploy(&rt, &f, &ctx, 5000.0);
     let cep = comb.endpoints.clone();
-    wait_for(
-        || joined(&ctx, &cep.control) == [true, true],
-        "both shards to join",
-    );
     let (stop_sub, sub) = subscriber(&ctx, &cep.publish);
     std::thread::sleep(Duration::from_millis(300));
     let targets = [
@@ -413,21 +413,10 @@ fn a_stopped_shard_is_named_in_every_frame_and_rejoins_at_the_next_trial() {
     let _serial = serial();
     let f = fixture(6);
     let rt = runtime();
-    let mut shards = vec![
-        Some(shard(&rt, &f, 0, "tcp://127.0.0.1:0")),
-        Some(shard(&rt, &f, 1, "tcp://127.0.0.1:0")),
-    ];
-    let links: Vec<String> = shards
-        .iter()
-        .map(|s| s.as_ref().unwrap().endpoints.link.clone().unwrap())
-        .collect();
-    let comb = combiner(&rt, &f, &links, 1000.0);
     let ctx = zmq::Context::new();
+    let (shards, links, comb) = deploy(&rt, &f, &ctx, 1000.0);
+    let mut shards: Vec<Option<Running>> = shards.into_iter().map(Some).collect();
     let cep = comb.endpoints.clone();
-    wait_for(
-        || joined(&ctx, &cep.control) == [true, true],
-        "both shards to join",
-    );
     let (stop_sub, sub) = subscriber(&ctx, &cep.publish);
     std::thread::sleep(Duration::from_millis(300));
     let ingest = |s: &Option<Running>| s.as_ref().unwrap().endpoints.ingest.clone();

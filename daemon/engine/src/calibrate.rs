@@ -116,6 +116,19 @@ pub struct ThresholdEvidence {
 }
 
 impl ThresholdEvidence {
+    /// The record in one line, as status and logs give it.
+    pub fn held_out_line(&self) -> String {
+        format!(
+            "held out at θ {}: {}/{} right = {:.3} [{:.3}–{:.3}], median decision {:.0} ms",
+            self.threshold,
+            self.correct,
+            self.trials,
+            self.accuracy(),
+            self.lo,
+            self.hi,
+            self.median_decision_ms
+        )
+    }
     /// Realised accuracy of every decision.
     pub fn accuracy(&self) -> f64 {
         self.correct as f64 / self.trials.max(1) as f64

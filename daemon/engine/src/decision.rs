@@ -137,15 +137,6 @@ pub fn policy_for_target(
             threshold: e.threshold,
             min_time_s: c.min_time_s,
         },
-        format!(
-            "held out at θ {}: {}/{} right = {:.3} [{:.3}–{:.3}], median decision {:.0} ms",
-            e.threshold,
-            e.correct,
-            e.trials,
-            e.accuracy(),
-            e.lo,
-            e.hi,
-            e.median_decision_ms,
-        ),
+        e.held_out_line(),
     ))
 }
