@@ -7,6 +7,7 @@ use auspex_engine::count::CountParams;
 use auspex_engine::engine::{Decoder, Engine, EngineConfig, NullSink};
 use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
 use auspex_engine::simulate::{simulate, SimOptions};
+use auspex_engine::{LookupBudget, PreparedModel};
 use auspex_proto::v1::{self, inbound::Body};
 use bytes::Bytes;
 use prost::Message;
@@ -21,7 +22,7 @@ const MEAN_COUNT: f64 = 4.0;
 
 /// A synthetic model: negative binomial counts (the family real units most often need) and a
 /// response bump at a unit- and stimulus-dependent latency.
-pub fn synthetic_model(nu: usize, ns: usize) -> Arc<Model> {
+pub fn synthetic_model(nu: usize, ns: usize) -> Arc<PreparedModel> {
     let mut cells = Vec::with_capacity(nu * ns);
     for u in 0..nu {
         for s in 0..ns {
@@ -41,6 +42,7 @@ pub fn synthetic_model(nu: usize, ns: usize) -> Arc<Model> {
     Arc::new(
         Model::new(ModelSpec::numbered(nu, ns, BINS, cells)).expect("synthetic model is valid"),
     )
+    .prepare(LookupBudget::DEFAULT)
 }
 
 /// Spike bins of one trial: every unit fires about `MEAN_COUNT` spikes (deterministic LCG).
@@ -141,7 +143,11 @@ pub struct ThreadPoint {
 /// Times whole trials through the daemon's threaded engine (a combiner and `threads − 1`
 /// workers, fed as the engine thread feeds them: one shared spike batch per bin), for about
 /// `budget`; median µs per bin.
-pub fn thread_point(m: &Arc<Model>, threads: u32, budget: Duration) -> anyhow::Result<(f64, u64)> {
+pub fn thread_point(
+    m: &Arc<PreparedModel>,
+    threads: u32,
+    budget: Duration,
+) -> anyhow::Result<(f64, u64)> {
     use auspex_engine::engine::{EngineSink, TrialEnd};
     use auspexd::workers::{combiner_role, Workers};
     #[derive(Default)]
@@ -302,12 +308,12 @@ pub struct ModelPoint {
 pub fn model_point(
     model: Arc<Model>,
     decoder: Decoder,
-    table_bytes: usize,
+    table_memory: LookupBudget,
     budget: Duration,
 ) -> ModelPoint {
     let (nu, ns, nb) = (model.n_units(), model.n_stimuli(), model.n_bins());
     let t_prep = Instant::now();
-    model.prepare_with_lookup_budget(table_bytes);
+    let model = model.prepare(table_memory);
     let prepare_s = t_prep.elapsed().as_secs_f64();
     let mut families = std::collections::BTreeMap::<&str, usize>::new();
     for u in 0..nu {
@@ -583,8 +589,8 @@ pub async fn start_daemon(
         threads: Some(threads),
         ..Default::default()
     };
-    let cfg = auspexd::config::validate(fc, &mut Vec::new()).map_err(|e| anyhow::anyhow!(e))?;
-    auspexd::service::start(cfg).await
+    let cfg = auspexd::config::validate(fc, &mut Vec::new())?;
+    Ok(auspexd::service::start(cfg).await?)
 }
 
 /// Runs a daemon in this process on loopback (`tcp` or `ipc`), streams `seconds` of 1 kHz
@@ -715,8 +721,8 @@ pub async fn latency_sharded(
         ..Default::default()
     };
     let start = |f: auspexd::config::FileConfig| async move {
-        let cfg = auspexd::config::validate(f, &mut Vec::new()).map_err(|e| anyhow::anyhow!(e))?;
-        auspexd::service::start(cfg).await
+        let cfg = auspexd::config::validate(f, &mut Vec::new())?;
+        anyhow::Ok(auspexd::service::start(cfg).await?)
     };
     let mut running = Vec::new();
     for part in 0..shards {
@@ -849,8 +855,8 @@ pub struct Options {
     pub decoder: Decoder,
     /// Run the latency measurements.
     pub latency: bool,
-    /// Memory for looked-up COM-Poisson/empirical terms, bytes (as the daemon's setting).
-    pub table_bytes: usize,
+    /// Memory for looked-up COM-Poisson/empirical terms (as the daemon's setting).
+    pub table_memory: LookupBudget,
     /// Latency over TCP with learning off and on (refit after every trial), side by side.
     pub learning: bool,
     /// Thread scaling only, at 1024, 2048 and 4096 units × 64 stimuli.
@@ -882,7 +888,7 @@ pub async fn run(opts: &Options) -> anyhow::Result<Report> {
         Some(path) => {
             let (_, m) = auspex_proto::model_file::load_model(path)?;
             eprintln!("auspex bench: timing {} …", path.display());
-            let (dec, tb) = (opts.decoder, opts.table_bytes);
+            let (dec, tb) = (opts.decoder, opts.table_memory);
             let p = tokio::task::spawn_blocking(move || {
                 model_point(Arc::new(m), dec, tb, Duration::from_secs(5))
             })

@@ -5,6 +5,7 @@ use auspex::live::Pace;
 use auspex::session::View;
 use auspex::tables::Source;
 use auspex_engine::engine::Decoder;
+use auspex_engine::LookupBudget;
 use auspex_proto::v1;
 use clap::{Parser, Subcommand};
 use std::io::IsTerminal;
@@ -25,6 +26,13 @@ fn parse_decoder(s: &str) -> Result<Decoder, String> {
     Decoder::parse(s).ok_or_else(|| {
         format!("unknown decoder `{s}`: use order-stats, inhomogeneous-poisson or count-only")
     })
+}
+
+fn lookup_budget(s: &str) -> Result<LookupBudget, String> {
+    let mb: u64 = s
+        .parse()
+        .map_err(|e| format!("{s:?}: {e}; give MB, e.g. 2048"))?;
+    LookupBudget::from_mb(mb).map_err(|e| e.to_string())
 }
 
 fn parse_prior(s: &str) -> Result<Vec<f64>, String> {
@@ -279,8 +287,8 @@ enum Cmd {
         #[arg(long, value_name = "N", conflicts_with_all = ["model", "learning", "thread_scaling", "no_latency"])]
         shards: Option<u32>,
         /// Memory for looked-up COM-Poisson/empirical terms with --model, MB (as the daemon's flag)
-        #[arg(long, default_value_t = (auspex_engine::model::TABLE_LOOKUP_BUDGET_BYTES >> 20) as u64)]
-        table_memory_mb: u64,
+        #[arg(long, value_name = "MB", default_value_t = LookupBudget::DEFAULT, value_parser = lookup_budget)]
+        table_memory_mb: LookupBudget,
     },
     /// Merge many sessions' validation.json (e.g. from a cluster job array) into one CSV table
     Gather {
@@ -608,7 +616,7 @@ fn main() {
                     model,
                     decoder,
                     latency: !no_latency,
-                    table_bytes: (table_memory_mb.min(1 << 20) as usize) << 20,
+                    table_memory: table_memory_mb,
                     learning,
                     thread_scaling,
                     threads,

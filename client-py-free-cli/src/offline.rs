@@ -5,7 +5,7 @@ use auspex_engine::data::{Dataset, Event};
 use auspex_engine::engine::{
     Counters, Decision, Engine, EngineConfig, EngineSink, Frame, TrialEnd,
 };
-use auspex_engine::Model;
+use auspex_engine::{LookupBudget, Model};
 use std::collections::HashMap;
 use std::io::Write;
 use std::sync::Arc;
@@ -20,14 +20,16 @@ pub struct DecisionRow {
 }
 
 /// Feeds a dataset to an engine as acquisition would: 1-bin batches with watermarks, onsets
-/// before the batch that contains them. Returns the engine's counters.
+/// before the batch that contains them. Returns the engine's counters. The model is prepared
+/// with the default lookup budget, as the daemon's default (`--table-memory-mb`), so offline
+/// and live frames are the same bits.
 pub fn run_dataset(
     model: Arc<Model>,
     data: &Dataset,
     cfg: EngineConfig,
     sink: &mut dyn EngineSink,
 ) -> anyhow::Result<Counters> {
-    let mut e = Engine::new(model.clone(), cfg)?;
+    let mut e = Engine::new(model.clone().prepare(LookupBudget::DEFAULT), cfg)?;
     let bt = e.bin_ticks();
     let window = bt * model.n_bins() as i64;
     for ev in data.events(bt, window) {

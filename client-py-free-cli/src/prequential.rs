@@ -16,7 +16,7 @@ use auspex_engine::engine::{
     Decision, Engine, EngineConfig, EngineSink, Frame, TrialEnd, UnitSummaries,
 };
 use auspex_engine::learn::{LearnOptions, Learner, TrialWindow, WindowCollector};
-use auspex_engine::{CountFamily, Model};
+use auspex_engine::{CountFamily, LookupBudget, Model};
 use auspex_proto::stream::{apply_body, remember_onset, TrialStimuli};
 use auspex_proto::v1::inbound::Body;
 use std::collections::{HashMap, VecDeque};
@@ -172,7 +172,8 @@ impl<W: Write> Run<'_, W> {
         };
         let cells = fit_cells(&plan, false);
         let spec = l.calibrated(plan.assemble(cells), &|p| p.assemble(fit_cells(p, false)));
-        let model = Arc::new(Model::new(spec)?);
+        // The daemon's learned models are prepared with its budget (default unless set).
+        let model = Arc::new(Model::new(spec)?).prepare(LookupBudget::DEFAULT);
         match self.engine.as_mut() {
             Some(e) => e.set_model(model.clone())?,
             None => self.engine = Some(Engine::new(model.clone(), self.cfg.clone())?),

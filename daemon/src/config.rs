@@ -2,6 +2,7 @@
 //! and the validated [`DaemonConfig`] built from it, where every bound is checked once.
 
 use auspex_engine::engine::{DecisionPolicy, Decoder};
+use auspex_engine::LookupBudget;
 use serde::Deserialize;
 use std::path::PathBuf;
 
@@ -180,8 +181,9 @@ pub struct DaemonConfig {
     pub publish_queue: usize,
     /// Health period.
     pub health_period: std::time::Duration,
-    /// Bytes a model may spend on looked-up COM-Poisson/empirical terms (at load and reload).
-    pub table_memory_bytes: usize,
+    /// Memory a model may spend on looked-up COM-Poisson/empirical terms (at load, reload and
+    /// each learned model).
+    pub table_memory: LookupBudget,
     /// Engine threads (1: the engine thread alone).
     pub threads: u32,
     /// Whole daemon, shard or combiner.
@@ -211,16 +213,46 @@ pub fn is_local_endpoint(ep: &str) -> bool {
     host == "localhost" || host == "::1" || host.starts_with("127.")
 }
 
+/// A configuration the daemon refuses to run, with what to change.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum ConfigError {
+    /// No model to decode with and learning switched off.
+    #[error("no model and learning off: give --model PATH (fit one with `auspex fit`), or let the daemon learn (leave out --learn false)")]
+    NothingToDecode,
+    /// An endpoint that cannot be bound as given.
+    #[error("{name} endpoint `{endpoint}` {problem}")]
+    Endpoint {
+        /// Which socket (ingest, publish, control, task ingest, link).
+        name: &'static str,
+        /// The endpoint as given.
+        endpoint: String,
+        /// What is wrong with it.
+        problem: &'static str,
+    },
+    /// The table memory is out of range.
+    #[error(transparent)]
+    TableMemory(#[from] auspex_engine::prepared::BudgetError),
+    /// The role and its flags do not fit together.
+    #[error("{0}")]
+    Deployment(String),
+    /// A setting out of range or in conflict with another.
+    #[error("{0}")]
+    Invalid(String),
+}
+
+impl From<String> for ConfigError {
+    fn from(s: String) -> Self {
+        ConfigError::Invalid(s)
+    }
+}
+
 /// Builds and checks the configuration. `warnings` receives what should be printed.
-pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfig, String> {
+pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfig, ConfigError> {
     let deployment = deployment(&f)?;
     let model = f.model;
     let learn_on = f.learn.unwrap_or(model.is_none());
     if model.is_none() && !learn_on {
-        return Err(
-            "no model and learning off: give --model PATH (fit one with `auspex fit`), or let the daemon learn (leave out --learn false)"
-                .into(),
-        );
+        return Err(ConfigError::NothingToDecode);
     }
     let learn = if learn_on {
         let with_model = model.is_some();
@@ -252,17 +284,21 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
         };
         let min_trials = f.learn_min_trials.unwrap_or(3);
         if !(1..=1000).contains(&min_trials) {
-            return Err(format!(
+            return Err(ConfigError::Invalid(format!(
                 "learn minimum {min_trials} trials per stimulus must be in 1..=1000"
-            ));
+            )));
         }
         let every_trials = f.refit_every_trials.unwrap_or(8);
         if every_trials == 0 {
-            return Err("refit every 0 trials: give at least 1".into());
+            return Err(ConfigError::Invalid(
+                "refit every 0 trials: give at least 1".to_string(),
+            ));
         }
         let every_s = f.refit_every_s.unwrap_or(30.0);
         if !(every_s.is_finite() && every_s > 0.0 && every_s <= 86_400.0) {
-            return Err(format!("refit every {every_s} s must be in (0, 86400]"));
+            return Err(ConfigError::Invalid(format!(
+                "refit every {every_s} s must be in (0, 86400]"
+            )));
         }
         Some(LearnConfig {
             frozen: f.learn_frozen.unwrap_or(false),
@@ -280,16 +316,16 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
     };
     if deployment != Deployment::Whole {
         if model.is_none() || f.learn == Some(true) {
-            return Err(format!(
+            return Err(ConfigError::Invalid(format!(
                 "--role {} decodes with a fixed model: give --model (every shard and the combiner load the same file) and leave learning to a whole daemon",
                 deployment.name()
-            ));
+            )));
         }
         if f.threads.is_some_and(|t| t > 1) {
-            return Err(format!(
+            return Err(ConfigError::Invalid(format!(
                 "--threads is for a whole daemon; a {} runs one engine thread (add shards to use more machines)",
                 deployment.name()
-            ));
+            )));
         }
     }
     let learn = if deployment == Deployment::Whole {
@@ -319,18 +355,21 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
     }
     let mut seen = std::collections::HashSet::new();
     for (name, ep) in &all {
+        let bad = |problem| ConfigError::Endpoint {
+            name,
+            endpoint: ep.to_string(),
+            problem,
+        };
         if !(ep.starts_with("tcp://") || ep.starts_with("ipc://")) {
-            return Err(format!(
-                "{name} endpoint `{ep}` must start with tcp:// or ipc://"
-            ));
+            return Err(bad("must start with tcp:// or ipc://"));
         }
         if !ep.ends_with(":0") && !seen.insert(ep.to_string()) {
-            return Err(format!("{name} endpoint `{ep}` is used twice"));
+            return Err(bad("is used twice"));
         }
         if !is_local_endpoint(ep) {
             if !allow_remote {
-                return Err(format!(
-                    "{name} endpoint `{ep}` is not on loopback; pass --allow-remote to bind it (traffic is unencrypted)"
+                return Err(bad(
+                    "is not on loopback; pass --allow-remote to bind it (traffic is unencrypted)",
                 ));
             }
             warnings.push(format!(
@@ -356,42 +395,44 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
     policy.check()?;
     if let Some(t) = f.target_accuracy {
         if !(t > 0.0 && t < 1.0) {
-            return Err(format!("target accuracy {t} must be in (0, 1), e.g. 0.95"));
+            return Err(ConfigError::Invalid(format!(
+                "target accuracy {t} must be in (0, 1), e.g. 0.95"
+            )));
         }
         if f.threshold.is_some() {
-            return Err("give either a threshold or a target accuracy, not both".into());
+            return Err(ConfigError::Invalid(
+                "give either a threshold or a target accuracy, not both".to_string(),
+            ));
         }
     }
     if let Some(r) = f.tick_rate_hz {
         if !(r.is_finite() && r >= 1.0) {
-            return Err(format!("tick rate {r} must be ≥ 1 tick per second"));
+            return Err(ConfigError::Invalid(format!(
+                "tick rate {r} must be ≥ 1 tick per second"
+            )));
         }
     }
     let max_message_bytes = f.max_message_bytes.unwrap_or(16 << 20);
     if max_message_bytes < 1024 {
-        return Err(format!(
+        return Err(ConfigError::Invalid(format!(
             "max message size {max_message_bytes} bytes is too small (≥ 1024)"
-        ));
+        )));
     }
-    let table_mb = f
-        .table_memory_mb
-        .unwrap_or((auspex_engine::model::TABLE_LOOKUP_BUDGET_BYTES >> 20) as u64);
-    if table_mb > 1 << 20 {
-        return Err(format!(
-            "table memory {table_mb} MB is more than 1 TB; give MB, e.g. 2048"
-        ));
-    }
+    let table_memory = match f.table_memory_mb {
+        Some(mb) => LookupBudget::from_mb(mb)?,
+        None => LookupBudget::DEFAULT,
+    };
     let threads = f.threads.unwrap_or(1);
     if !(1..=crate::workers::MAX_THREADS).contains(&threads) {
-        return Err(format!(
+        return Err(ConfigError::Invalid(format!(
             "threads {threads} must be 1..={} (`auspex bench --threads` measures what helps)",
             crate::workers::MAX_THREADS
-        ));
+        )));
     }
     Ok(DaemonConfig {
         deployment,
         threads,
-        table_memory_bytes: (table_mb as usize) << 20,
+        table_memory,
         model,
         learn,
         ingest,
@@ -414,11 +455,13 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
 }
 
 /// The deployment role from the flags, checked.
-fn deployment(f: &FileConfig) -> Result<Deployment, String> {
+fn deployment(f: &FileConfig) -> Result<Deployment, ConfigError> {
     let role = f.role.as_deref().unwrap_or("whole");
-    let only = |what: &str, given: bool, role_needed: &str| -> Result<(), String> {
+    let only = |what: &str, given: bool, role_needed: &str| -> Result<(), ConfigError> {
         if given && role != role_needed {
-            return Err(format!("{what} is for --role {role_needed}"));
+            return Err(ConfigError::Deployment(format!(
+                "{what} is for --role {role_needed}"
+            )));
         }
         Ok(())
     };
@@ -438,13 +481,13 @@ fn deployment(f: &FileConfig) -> Result<Deployment, String> {
         "whole" => Ok(Deployment::Whole),
         "shard" => {
             let (Some(part), Some(parts)) = (f.part, f.parts) else {
-                return Err("--role shard needs --part P --parts N: this shard's part (0-based) of the combiner's N shards".into());
+                return Err(ConfigError::Deployment("--role shard needs --part P --parts N: this shard's part (0-based) of the combiner's N shards".to_string()));
             };
             let max = auspex_engine::engine::MAX_PARTS;
             if !(1..=max).contains(&parts) || part >= parts {
-                return Err(format!(
+                return Err(ConfigError::Deployment(format!(
                     "--part {part} --parts {parts}: parts must be 1..={max} and the part 0..parts"
-                ));
+                )));
             }
             Ok(Deployment::Shard {
                 part,
@@ -456,29 +499,31 @@ fn deployment(f: &FileConfig) -> Result<Deployment, String> {
             let shards = f.shards.clone().unwrap_or_default();
             let max = auspex_engine::engine::MAX_PARTS as usize;
             if shards.is_empty() || shards.len() > max {
-                return Err(format!(
+                return Err(ConfigError::Deployment(format!(
                     "--role combine needs --shard ENDPOINT once per shard, in part order (1 to {max})"
-                ));
+                )));
             }
             for ep in &shards {
                 if !ep.starts_with("tcp://") && !ep.starts_with("ipc://") {
-                    return Err(format!(
+                    return Err(ConfigError::Deployment(format!(
                         "--shard `{ep}` must be a shard's link endpoint, tcp://HOST:PORT or ipc://PATH"
-                    ));
+                    )));
                 }
             }
             let ms = f.shard_deadline_ms.unwrap_or(defaults::SHARD_DEADLINE_MS);
             if !(ms.is_finite() && (10.0..=600_000.0).contains(&ms)) {
-                return Err(format!("--shard-deadline-ms {ms} must be in [10, 600000]"));
+                return Err(ConfigError::Deployment(format!(
+                    "--shard-deadline-ms {ms} must be in [10, 600000]"
+                )));
             }
             Ok(Deployment::Combine {
                 shards,
                 deadline: std::time::Duration::from_secs_f64(ms / 1000.0),
             })
         }
-        other => Err(format!(
+        other => Err(ConfigError::Deployment(format!(
             "--role {other}: use whole (the default), shard or combine"
-        )),
+        ))),
     }
 }
 
@@ -506,6 +551,7 @@ mod tests {
         let mut w = Vec::new();
         assert!(validate(f.clone(), &mut w)
             .unwrap_err()
+            .to_string()
             .contains("--allow-remote"));
         let f = FileConfig {
             allow_remote: Some(true),
@@ -519,14 +565,17 @@ mod tests {
     fn table_memory_from_toml_default_and_bound() {
         let mut w = Vec::new();
         let f: FileConfig = toml::from_str("model = \"m\"\ntable_memory_mb = 256\n").unwrap();
-        assert_eq!(validate(f, &mut w).unwrap().table_memory_bytes, 256 << 20);
+        assert_eq!(validate(f, &mut w).unwrap().table_memory.bytes(), 256 << 20);
         let f: FileConfig = toml::from_str("model = \"m\"\n").unwrap();
         assert_eq!(
-            validate(f, &mut w).unwrap().table_memory_bytes,
-            auspex_engine::model::TABLE_LOOKUP_BUDGET_BYTES
+            validate(f, &mut w).unwrap().table_memory,
+            LookupBudget::DEFAULT
         );
         let f: FileConfig = toml::from_str("model = \"m\"\ntable_memory_mb = 5000000\n").unwrap();
-        assert!(validate(f, &mut w).unwrap_err().contains("1 TB"));
+        assert!(matches!(
+            validate(f, &mut w),
+            Err(ConfigError::TableMemory(_))
+        ));
     }
 
     #[test]
@@ -589,6 +638,7 @@ mod tests {
             &mut w
         )
         .unwrap_err()
+        .to_string()
         .contains("model's window"));
     }
 
@@ -620,7 +670,7 @@ mod tests {
             }
         );
         let refused = |f: FileConfig, says: &str| {
-            let e = with(f).unwrap_err();
+            let e = with(f).unwrap_err().to_string();
             assert!(e.contains(says), "{e}");
         };
         refused(

@@ -4,6 +4,7 @@
 
 use crate::engine_thread::EngineInput;
 use crate::ingest::forward;
+use auspex_engine::LookupBudget;
 use auspex_proto::v1::{control_request::Body, ControlReply, ControlRequest};
 use bytes::Bytes;
 use crossbeam_channel::Sender;
@@ -27,7 +28,11 @@ fn error_reply(msg: impl Into<String>) -> ControlReply {
     }
 }
 
-async fn handle(bytes: &[u8], tx: &Sender<EngineInput>, table_bytes: usize) -> ControlReply {
+async fn handle(
+    bytes: &[u8],
+    tx: &Sender<EngineInput>,
+    table_memory: LookupBudget,
+) -> ControlReply {
     let req = match ControlRequest::decode(bytes) {
         Ok(r) => r,
         Err(e) => return error_reply(format!("request is not a ControlRequest: {e}")),
@@ -40,12 +45,12 @@ async fn handle(bytes: &[u8], tx: &Sender<EngineInput>, table_bytes: usize) -> C
             let loaded = tokio::task::spawn_blocking(move || {
                 // Build the model's lookup tables here, off the engine thread.
                 auspex_proto::model_file::load_model(&path)
-                    .inspect(|(_, m)| m.prepare_with_lookup_budget(table_bytes))
+                    .map(|(_, m)| Arc::new(m).prepare(table_memory))
             })
             .await;
             match loaded {
-                Ok(Ok((_, model))) => EngineInput::Reload {
-                    model: Arc::new(model),
+                Ok(Ok(model)) => EngineInput::Reload {
+                    model,
                     path: r.path,
                     reply: rtx,
                 },
@@ -97,7 +102,7 @@ pub async fn run_control(
     mut sock: zeromq::RouterSocket,
     tx: Sender<EngineInput>,
     mut stop: watch::Receiver<bool>,
-    table_bytes: usize,
+    table_memory: LookupBudget,
 ) {
     loop {
         tokio::select! {
@@ -116,7 +121,7 @@ pub async fn run_control(
                         frames.remove(0);
                     }
                     let reply = match frames.len() {
-                        1 => handle(&frames[0], &tx, table_bytes).await,
+                        1 => handle(&frames[0], &tx, table_memory).await,
                         n => error_reply(format!(
                             "a control request is one frame (a ControlRequest); this message had {n}"
                         )),

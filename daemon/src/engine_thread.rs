@@ -24,7 +24,7 @@ use auspex_engine::engine::{
     TrialEnd, TrialOutcome, UnitSummaries,
 };
 use auspex_engine::learn::{LearnOptions, TrialWindow, WindowCollector};
-use auspex_engine::Model;
+use auspex_engine::PreparedModel;
 use auspex_proto::stream::{apply_body, remember_onset, TrialStimuli};
 use auspex_proto::topic;
 use auspex_proto::v1::{self, control_request, inbound, outbound, ControlReply};
@@ -64,7 +64,7 @@ pub enum EngineInput {
     /// A model already loaded by the control task.
     Reload {
         /// The model.
-        model: Arc<Model>,
+        model: Arc<PreparedModel>,
         /// Its path.
         path: String,
         /// Where the reply goes.
@@ -176,9 +176,9 @@ struct LearnLink {
 
 /// Everything the engine thread owns.
 pub struct EngineThread {
-    model: Option<Arc<Model>>,
+    model: Option<Arc<PreparedModel>>,
     model_path: String,
-    base: Option<(Arc<Model>, String)>,
+    base: Option<(Arc<PreparedModel>, String)>,
     config: EngineConfig,
     fixed_tick_rate: Option<f64>,
     tick_rate: Option<f64>,
@@ -235,7 +235,7 @@ const ENDED_KEPT: usize = 64;
 /// Settings for [`EngineThread::new`].
 pub struct EngineThreadSetup {
     /// The model loaded at start (None: learn one).
-    pub model: Option<Arc<Model>>,
+    pub model: Option<Arc<PreparedModel>>,
     /// Its path (for status).
     pub model_path: String,
     /// Decoder, policy.
@@ -399,7 +399,9 @@ impl EngineThread {
             last_partial: Instant::now(),
             recorder_errors: s.recorder_errors,
         };
-        t.config.policy = t.promise.model_changed(t.model.as_deref(), &t.config);
+        t.config.policy = t
+            .promise
+            .model_changed(t.model.as_deref().map(|m| &**m), &t.config);
         t.config.role = t
             .link
             .role()
@@ -1016,7 +1018,7 @@ impl EngineThread {
             self.model_path = self.base.as_ref().map(|b| b.1.clone()).unwrap_or_default();
             self.config.policy = self
                 .promise
-                .model_changed(self.model.as_deref(), &self.config);
+                .model_changed(self.model.as_deref().map(|m| &**m), &self.config);
             self.current = self
                 .model
                 .as_ref()
@@ -1088,7 +1090,7 @@ impl EngineThread {
         }
     }
 
-    fn reload(&mut self, model: Arc<Model>, path: String) -> ControlReply {
+    fn reload(&mut self, model: Arc<PreparedModel>, path: String) -> ControlReply {
         if !matches!(self.link, Link::None) {
             // Shards and combiner must sum the same model's blocks.
             return ControlReply {
@@ -1229,13 +1231,17 @@ impl EngineThread {
                 let target = (p.target_accuracy > 0.0).then_some(p.target_accuracy);
                 let r = match target {
                     // Checked against the model before anything changes.
-                    Some(t) => PromiseKeeper::policy_for(t, self.model.as_deref(), &c)
-                        .map(|(pol, _)| c.policy = pol),
+                    Some(t) => {
+                        PromiseKeeper::policy_for(t, self.model.as_deref().map(|m| &**m), &c)
+                            .map(|(pol, _)| c.policy = pol)
+                    }
                     None => Ok(()),
                 }
                 .and_then(|()| self.apply_config(c.clone()));
                 if r.is_ok() {
-                    let _ = self.promise.set_target(target, self.model.as_deref(), &c);
+                    let _ =
+                        self.promise
+                            .set_target(target, self.model.as_deref().map(|m| &**m), &c);
                     tracing::info!(
                         threshold = c.policy.threshold,
                         min_time_s = c.policy.min_time_s,
@@ -1317,7 +1323,11 @@ impl EngineThread {
 
 /// The recording's marker of a learned model taking over (`model`), or of the learner forgetting
 /// its trials (None), after `trials` labelled trials, with the settings a replay needs.
-fn swap_record(opts: &LearnOptions, trials: u64, model: Option<&Arc<Model>>) -> v1::SessionRecord {
+fn swap_record(
+    opts: &LearnOptions,
+    trials: u64,
+    model: Option<&Arc<PreparedModel>>,
+) -> v1::SessionRecord {
     v1::SessionRecord {
         received_unix_ns: crate::ingest::now_ns(),
         endpoint: 0,

@@ -10,7 +10,7 @@
 use crate::engine_thread::EngineInput;
 use auspex_engine::fit::fit_cell;
 use auspex_engine::learn::{LearnOptions, Learner, TrialWindow};
-use auspex_engine::{Model, ModelSpec};
+use auspex_engine::{LookupBudget, Model, ModelSpec, PreparedModel};
 use crossbeam_channel::{Receiver, RecvTimeoutError, Sender};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
@@ -63,7 +63,7 @@ pub enum LearnMsg {
     /// A model the engine thread no longer opens trials with: kept here until the trials
     /// still decoding with it have ended, then freed on this thread, so freeing a large model's
     /// tables never stalls the engine thread.
-    Retire(Arc<Model>),
+    Retire(Arc<PreparedModel>),
     /// Fit on everything so far and save it.
     Save {
         /// Model file path.
@@ -78,7 +78,7 @@ pub struct Learned {
     /// Session counter it belongs to.
     pub epoch: u64,
     /// The prepared model.
-    pub model: Arc<Model>,
+    pub model: Arc<PreparedModel>,
     /// Labelled trials it was fitted on (the learner's count, the recording's marker).
     pub trials: u64,
     /// Wall time the fit and preparation took.
@@ -96,7 +96,7 @@ impl LearnerThread {
     pub fn start(
         opts: LearnOptions,
         cadence: Cadence,
-        table_bytes: usize,
+        table_memory: LookupBudget,
         engine: Sender<EngineInput>,
     ) -> std::io::Result<Self> {
         // Unbounded: the engine thread must never wait on the learner; what it sends is bounded
@@ -104,7 +104,7 @@ impl LearnerThread {
         let (tx, rx) = crossbeam_channel::unbounded();
         let join = std::thread::Builder::new()
             .name("auspex-learner".into())
-            .spawn(move || run(opts, cadence, table_bytes, rx, engine))?;
+            .spawn(move || run(opts, cadence, table_memory, rx, engine))?;
         Ok(LearnerThread { tx, join })
     }
     /// A sender for the engine thread.
@@ -150,7 +150,7 @@ fn lower_priority() {
 fn run(
     opts: LearnOptions,
     cadence: Cadence,
-    table_bytes: usize,
+    table_memory: LookupBudget,
     rx: Receiver<LearnMsg>,
     engine: Sender<EngineInput>,
 ) {
@@ -163,7 +163,7 @@ fn run(
         fitted_at: 0,
         last_fit: Instant::now(),
     };
-    let mut retired: Vec<Arc<Model>> = Vec::new();
+    let mut retired: Vec<Arc<PreparedModel>> = Vec::new();
     loop {
         let msg = rx.recv_timeout(Duration::from_millis(200));
         // Free retired models nobody else holds any more.
@@ -250,13 +250,12 @@ fn run(
         let t0 = Instant::now();
         match fit(l).and_then(|(spec, n)| {
             let m = Model::new(spec).map_err(|e| e.to_string())?;
-            m.prepare_with_lookup_budget(table_bytes);
-            Ok((m, n))
+            Ok((Arc::new(m).prepare(table_memory), n))
         }) {
             Ok((model, trials)) => {
                 let learned = Learned {
                     epoch: st.epoch,
-                    model: Arc::new(model),
+                    model,
                     trials,
                     fit_s: t0.elapsed().as_secs_f64(),
                 };

@@ -9,7 +9,6 @@ use crate::learner::LearnerThread;
 use crate::publish::{bind_pub, run_publisher, PublishStats, Publisher};
 use crate::recorder::{resolve_path, Recorder};
 use crate::shard_link::{mono_ns, Link, ShardView};
-use anyhow::Context;
 use auspex_engine::engine::EngineConfig;
 use auspex_engine::fit::FitOptions;
 use auspex_engine::learn::LearnOptions;
@@ -18,6 +17,79 @@ use std::sync::Arc;
 use tokio::sync::watch;
 use tokio::task::JoinHandle;
 use zeromq::Socket;
+
+/// Why the daemon could not start. (Causes are part of the message, not separate sources, so
+/// an error chain names them once.)
+#[derive(Debug, thiserror::Error)]
+pub enum StartError {
+    /// The model file could not be loaded.
+    #[error(transparent)]
+    Model(#[from] auspex_proto::model_file::ModelLoadError),
+    /// The model file could not be read again for its checksum (shards and combiner).
+    #[error("{path}: cannot read the model file: {cause}")]
+    ModelRead {
+        /// The file.
+        path: std::path::PathBuf,
+        /// The cause.
+        cause: std::io::Error,
+    },
+    /// A socket could not be bound (address in use, bad interface, no permission…).
+    #[error("cannot bind {socket} endpoint {endpoint}: {cause}")]
+    Bind {
+        /// Which socket (ingest, task ingest, publish, control, link).
+        socket: &'static str,
+        /// The endpoint as configured.
+        endpoint: String,
+        /// The cause.
+        cause: zeromq::ZmqError,
+    },
+    /// The session recording could not be created.
+    #[error("{path}: cannot create the session recording: {cause}")]
+    Recording {
+        /// The file.
+        path: std::path::PathBuf,
+        /// The cause.
+        cause: std::io::Error,
+    },
+    /// The model's held-out record cannot support the target accuracy.
+    #[error("{model}: target accuracy {target}: {reason}")]
+    Promise {
+        /// The model file.
+        model: String,
+        /// The target asked for.
+        target: f64,
+        /// Why not.
+        reason: String,
+    },
+    /// Learning cannot work with these settings.
+    #[error("learning: {0}")]
+    Learning(String),
+    /// The engine refused the model or settings.
+    #[error("{model}: {cause}")]
+    Engine {
+        /// The model file.
+        model: String,
+        /// The cause.
+        cause: auspex_engine::engine::EngineError,
+    },
+    /// A thread or runtime task could not be started.
+    #[error("cannot start the {what}: {cause}")]
+    Spawn {
+        /// The engine or learner thread, or the ingest socket's subscription.
+        what: &'static str,
+        /// The cause.
+        cause: String,
+    },
+}
+
+fn bind_error(socket: &'static str, endpoint: &str) -> impl FnOnce(zeromq::ZmqError) -> StartError {
+    let endpoint = endpoint.to_string();
+    move |cause| StartError::Bind {
+        socket,
+        endpoint,
+        cause,
+    }
+}
 
 /// Endpoints as bound (ports resolved).
 #[derive(Clone, Debug)]
@@ -70,12 +142,12 @@ pub fn io_runtime() -> std::io::Result<tokio::runtime::Runtime> {
 }
 
 /// Binds and starts everything.
-pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
+pub async fn start(cfg: DaemonConfig) -> Result<Running, StartError> {
     let model = match &cfg.model {
         Some(path) => {
             let (_, model) = auspex_proto::model_file::load_model(path)?;
             let t0 = std::time::Instant::now();
-            model.prepare_with_lookup_budget(cfg.table_memory_bytes);
+            let model = Arc::new(model).prepare(cfg.table_memory);
             tracing::info!(
                 model = %path.display(),
                 units = model.n_units(),
@@ -88,7 +160,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
                     .unwrap_or_else(|| "none (no table-family cells)".into()),
                 "model prepared"
             );
-            Some(Arc::new(model))
+            Some(model)
         }
         None => None,
     };
@@ -104,7 +176,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
 
     let (pub_sock, publish_ep) = bind_pub(&cfg.publish)
         .await
-        .with_context(|| format!("cannot bind publish endpoint {}", cfg.publish))?;
+        .map_err(bind_error("publish", &cfg.publish))?;
     let mut tasks = Vec::new();
     let ingest_ep = match cfg.ingest_pattern {
         IngestPattern::Pull => {
@@ -112,7 +184,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
             let ep = s
                 .bind(&cfg.ingest)
                 .await
-                .with_context(|| format!("cannot bind ingest endpoint {}", cfg.ingest))?;
+                .map_err(bind_error("ingest", &cfg.ingest))?;
             tasks.push(tokio::spawn(crate::ingest::run_ingest(
                 s,
                 0,
@@ -126,10 +198,11 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
             let ep = s
                 .bind(&cfg.ingest)
                 .await
-                .with_context(|| format!("cannot bind ingest endpoint {}", cfg.ingest))?;
-            s.subscribe("")
-                .await
-                .context("subscribing the ingest socket")?;
+                .map_err(bind_error("ingest", &cfg.ingest))?;
+            s.subscribe("").await.map_err(|e| StartError::Spawn {
+                what: "ingest subscription",
+                cause: e.to_string(),
+            })?;
             tasks.push(tokio::spawn(crate::ingest::run_ingest(
                 s,
                 0,
@@ -142,10 +215,7 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
     let task_ep = match &cfg.task_ingest {
         Some(t) => {
             let mut s = zeromq::PullSocket::new();
-            let ep = s
-                .bind(t)
-                .await
-                .with_context(|| format!("cannot bind task ingest endpoint {t}"))?;
+            let ep = s.bind(t).await.map_err(bind_error("task ingest", t))?;
             tasks.push(tokio::spawn(crate::ingest::run_ingest(
                 s,
                 1,
@@ -160,16 +230,22 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
     let control_ep = rep
         .bind(&cfg.control)
         .await
-        .with_context(|| format!("cannot bind control endpoint {}", cfg.control))?;
+        .map_err(bind_error("control", &cfg.control))?;
     tasks.push(tokio::spawn(crate::control::run_control(
         rep,
         engine_tx.clone(),
         stop_rx.clone(),
-        cfg.table_memory_bytes,
+        cfg.table_memory,
     )));
 
-    let (link, link_ep) =
-        start_link(&cfg, model.as_deref(), &engine_tx, &stop_rx, &mut tasks).await?;
+    let (link, link_ep) = start_link(
+        &cfg,
+        model.as_deref().map(|m| &**m),
+        &engine_tx,
+        &stop_rx,
+        &mut tasks,
+    )
+    .await?;
 
     let recorder = match &cfg.record {
         Some(p) => {
@@ -179,8 +255,11 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
                 .unwrap_or(0);
             let path = resolve_path(p, now_s);
             Some(
-                Recorder::start(path.clone(), &model_label, crate::ingest::now_ns()).with_context(
-                    || format!("{}: cannot create the session recording", path.display()),
+                Recorder::start(path.clone(), &model_label, crate::ingest::now_ns()).map_err(
+                    |cause| StartError::Recording {
+                        path: path.clone(),
+                        cause,
+                    },
                 )?,
             )
         }
@@ -212,8 +291,14 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
     ec.calibrated = cfg.calibrated;
     if let (Some(t), Some(m)) = (cfg.target_accuracy, &model) {
         // Refuse rather than promise: a loaded model whose record cannot support the target.
-        let (_, line) = crate::promise::PromiseKeeper::policy_for(t, Some(m), &ec)
-            .map_err(|e| anyhow::anyhow!("{model_label}: target accuracy {t}: {e}"))?;
+        let (_, line) =
+            crate::promise::PromiseKeeper::policy_for(t, Some(m), &ec).map_err(|reason| {
+                StartError::Promise {
+                    model: model_label.clone(),
+                    target: t,
+                    reason,
+                }
+            })?;
         tracing::info!("{line}");
     }
     let learner = match &cfg.learn {
@@ -234,13 +319,17 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
             };
             // Refuse now what could never fit (a window that is no whole number of bins).
             auspex_engine::fit::window_bins(bin_width_s, window_s, 1.0 / bin_width_s)
-                .map_err(|e| anyhow::anyhow!("learning: {e}"))?;
+                .map_err(|e| StartError::Learning(e.to_string()))?;
             let thread = LearnerThread::start(
                 options.clone(),
                 l.cadence,
-                cfg.table_memory_bytes,
+                cfg.table_memory,
                 engine_tx.clone(),
-            )?;
+            )
+            .map_err(|e| StartError::Spawn {
+                what: "learner thread",
+                cause: e.to_string(),
+            })?;
             let setup = LearnSetup {
                 options,
                 cadence: l.cadence,
@@ -280,11 +369,17 @@ pub async fn start(cfg: DaemonConfig) -> anyhow::Result<Running> {
         health_period: cfg.health_period,
         target_accuracy: cfg.target_accuracy,
     };
-    let et = EngineThread::new(setup, engine_rx.clone())
-        .map_err(|e| anyhow::anyhow!("{model_label}: {e}"))?;
+    let et = EngineThread::new(setup, engine_rx.clone()).map_err(|cause| StartError::Engine {
+        model: model_label.clone(),
+        cause,
+    })?;
     let engine = std::thread::Builder::new()
         .name("auspex-engine".into())
-        .spawn(move || et.run(engine_rx))?;
+        .spawn(move || et.run(engine_rx))
+        .map_err(|e| StartError::Spawn {
+            what: "engine thread",
+            cause: e.to_string(),
+        })?;
     let publisher = tokio::spawn(run_publisher(pub_sock, pub_rx, stats));
     let endpoints = BoundEndpoints {
         ingest: ingest_ep,
@@ -319,13 +414,16 @@ async fn start_link(
     engine_tx: &crossbeam_channel::Sender<EngineInput>,
     stop_rx: &watch::Receiver<bool>,
     tasks: &mut Vec<JoinHandle<()>>,
-) -> anyhow::Result<(Link, Option<String>)> {
+) -> Result<(Link, Option<String>), StartError> {
     let (Some(path), Some(m)) = (&cfg.model, model) else {
         return Ok((Link::None, None));
     };
     let crc = std::fs::read(path)
         .map(|b| auspex_proto::crc32::crc32(&b))
-        .with_context(|| format!("{}: cannot read the model file", path.display()))?;
+        .map_err(|cause| StartError::ModelRead {
+            path: path.clone(),
+            cause,
+        })?;
     let hello = |part: u32, parts: u32| auspex_proto::v1::ShardHello {
         part,
         parts,
@@ -349,10 +447,7 @@ async fn start_link(
         Deployment::Whole => Ok((Link::None, None)),
         Deployment::Shard { part, parts, link } => {
             let mut s = zeromq::DealerSocket::new();
-            let ep = s
-                .bind(link)
-                .await
-                .with_context(|| format!("cannot bind link endpoint {link}"))?;
+            let ep = s.bind(link).await.map_err(bind_error("link", link))?;
             let units = m.part_units(*part, *parts);
             let ids = m.units();
             tracing::info!(
@@ -456,7 +551,7 @@ impl Running {
 pub async fn run(
     cfg: DaemonConfig,
     shutdown: impl Future<Output = ()>,
-) -> anyhow::Result<StopSummary> {
+) -> Result<StopSummary, StartError> {
     let r = start(cfg).await?;
     shutdown.await;
     tracing::info!("stopping: finishing open trials and flushing the recording");

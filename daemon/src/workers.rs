@@ -9,7 +9,7 @@
 //! same order (model and configuration changes travel in the same channel as the bodies).
 
 use auspex_engine::engine::{Engine, EngineConfig, EngineSink, Partial, Role, TrialOutcome};
-use auspex_engine::Model;
+use auspex_engine::PreparedModel;
 use auspex_proto::stream::{apply_body, TrialStimuli};
 use auspex_proto::v1::inbound;
 use crossbeam_channel::{Receiver, Sender};
@@ -24,9 +24,9 @@ pub use auspex_engine::engine::OwnedPartial;
 
 enum WorkerMsg {
     /// A fresh engine (a new session, or the first model).
-    New(Arc<Model>, EngineConfig),
+    New(Arc<PreparedModel>, EngineConfig),
     /// The combiner's model changed (for trials opened from now on).
-    SetModel(Arc<Model>),
+    SetModel(Arc<PreparedModel>),
     /// The combiner's configuration changed.
     SetConfig(EngineConfig),
     /// An inbound body, as the combiner applies it.
@@ -52,7 +52,7 @@ pub struct Workers {
     recycle: Sender<Vec<f64>>,
     handles: Vec<JoinHandle<()>>,
     /// (engine generation, model, configuration) last sent.
-    sent: Option<(u64, Arc<Model>, EngineConfig)>,
+    sent: Option<(u64, Arc<PreparedModel>, EngineConfig)>,
     /// Parts whose worker has stopped (bit p: part p), found when a send fails.
     dead: std::cell::Cell<u64>,
 }
@@ -298,7 +298,7 @@ mod tests {
     use auspex_engine::model::{CellSpec, CellSummary, ModelSpec};
     use auspex_proto::v1;
 
-    fn model(nu: usize, ns: usize, nb: usize, scale: f64) -> Arc<Model> {
+    fn model(nu: usize, ns: usize, nb: usize, scale: f64) -> Arc<PreparedModel> {
         let mut cells = Vec::new();
         for u in 0..nu {
             for s in 0..ns {
@@ -318,7 +318,8 @@ mod tests {
                 });
             }
         }
-        Arc::new(Model::new(ModelSpec::numbered(nu, ns, nb, cells)).unwrap())
+        Arc::new(auspex_engine::Model::new(ModelSpec::numbered(nu, ns, nb, cells)).unwrap())
+            .prepare(auspex_engine::LookupBudget::DEFAULT)
     }
 
     #[derive(Default)]

@@ -14,6 +14,7 @@
 use auspex_engine::count::CountParams;
 use auspex_engine::engine::{Engine, EngineConfig, EngineSink, Frame};
 use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
+use auspex_engine::{LookupBudget, PreparedModel};
 use auspex_proto::v1::{self, inbound};
 use prost::Message;
 use std::sync::{Arc, OnceLock};
@@ -71,8 +72,8 @@ impl Bytes<'_> {
 
 /// A small model with every kind of cell (Poisson, negative binomial, COM-Poisson, empirical):
 /// 5 units × 3 stimuli × 20 bins of 1 ms.
-pub fn small_model() -> Arc<Model> {
-    static M: OnceLock<Arc<Model>> = OnceLock::new();
+pub fn small_model() -> Arc<PreparedModel> {
+    static M: OnceLock<Arc<PreparedModel>> = OnceLock::new();
     M.get_or_init(|| {
         let (nu, ns, nb) = (5usize, 3usize, 20usize);
         let mut cells = Vec::new();
@@ -119,6 +120,7 @@ pub fn small_model() -> Arc<Model> {
             })
             .expect("the fuzzing model is valid"),
         )
+        .prepare(LookupBudget::DEFAULT)
     })
     .clone()
 }
@@ -340,8 +342,7 @@ pub fn model_file(data: &[u8]) {
     let Ok((_, m)) = auspex_proto::model_file::load_model(&p) else {
         return;
     };
-    let m = Arc::new(m);
-    m.prepare();
+    let m = Arc::new(m).prepare(LookupBudget::DEFAULT);
     let Ok(mut e) = Engine::new(
         m.clone(),
         EngineConfig::new(1000.0 / m.bin_width_s().max(1e-3)),

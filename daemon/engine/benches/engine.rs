@@ -6,7 +6,7 @@
 //! Run: `cargo bench -p auspex-engine --bench engine` (set AUSPEX_BENCH_LARGE=1 for 4096×64).
 
 use auspex_engine::engine::{Decoder, Engine, EngineConfig, NullSink};
-use auspex_engine::model::Model;
+use auspex_engine::{LookupBudget, PreparedModel};
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
 use std::sync::Arc;
 
@@ -17,7 +17,7 @@ const MEAN_COUNT: f64 = 32.0; // counts reach about 64 in the upper tail
 /// The realistic-firing group: 4 spikes per window, 16 spikes/s.
 const REALISTIC_COUNT: f64 = 4.0;
 
-fn model(nu: usize, ns: usize, family: &str) -> Arc<Model> {
+fn model(nu: usize, ns: usize, family: &str) -> Arc<PreparedModel> {
     model_at(nu, ns, family, MEAN_COUNT)
 }
 
@@ -110,7 +110,7 @@ fn bench(c: &mut Criterion) {
         let mut spec = base.spec().clone();
         spec.calibration.factors = factors;
         spec.calibration.floor = floor;
-        let m = Arc::new(auspex_engine::Model::new(spec).unwrap());
+        let m = Arc::new(auspex_engine::Model::new(spec).unwrap()).prepare(LookupBudget::DEFAULT);
         let mut e = Engine::new(m, EngineConfig::new(1000.0)).unwrap();
         let (mut trial, mut onset) = (0u64, 0i64);
         g.bench_function(BenchmarkId::new(name, format!("{nu}x{ns}")), |b| {

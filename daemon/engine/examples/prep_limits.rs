@@ -5,6 +5,8 @@
 
 use auspex_engine::count::CountParams;
 use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
+use auspex_engine::LookupBudget;
+use std::sync::Arc;
 use std::time::Instant;
 
 fn model(
@@ -28,10 +30,10 @@ fn model(
 
 fn time(name: &str, spec: ModelSpec) {
     let t0 = Instant::now();
-    let m = Model::new(spec).expect("valid model");
+    let m = Arc::new(Model::new(spec).expect("valid model"));
     let built = t0.elapsed().as_secs_f64();
     let t1 = Instant::now();
-    m.prepare();
+    let m = m.prepare(LookupBudget::DEFAULT);
     let prepared = t1.elapsed().as_secs_f64();
     println!(
         "{name:<62} new {built:>6.2} s  prepare {prepared:>6.2} s  total {:>6.2} s  tables {:>5} MB",

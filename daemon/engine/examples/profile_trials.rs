@@ -18,10 +18,10 @@ fn main() {
     let ns: usize = arg(3, "64").parse().expect("stimuli");
     let count: f64 = arg(4, "4").parse().expect("spikes per window");
     let trials: usize = arg(5, "40").parse().expect("trials");
-    let m = model_at(nu, ns, &family, count);
     let t = std::time::Instant::now();
+    let m = model_at(nu, ns, &family, count);
+    eprintln!("built and prepared in {:.2} s", t.elapsed().as_secs_f64());
     let mut e = Engine::new(m, EngineConfig::new(1000.0)).expect("engine");
-    eprintln!("prepared in {:.2} s", t.elapsed().as_secs_f64());
     let spikes = trial_spikes_at(nu, count);
     let (mut trial, mut onset) = (0u64, 0i64);
     let t = std::time::Instant::now();

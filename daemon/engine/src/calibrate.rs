@@ -38,6 +38,7 @@ use crate::data::Dataset;
 use crate::engine::{min_bin_for, run_dataset, EngineConfig, EngineError, EngineSink, Frame};
 use crate::fit::{plan, FitError, FitOptions, FitPlan};
 use crate::model::{Model, ModelError, ModelSpec};
+use crate::prepared::LookupBudget;
 use crate::special::softmax_in_place;
 use crate::stats::clopper_pearson;
 use crate::validation::{argmax, stratified_folds};
@@ -648,8 +649,9 @@ impl EngineSink for Trajectories {
     }
 }
 
-/// Decodes `data`'s trials with `model` (order statistics, calibration off) and returns each
-/// trial's log-likelihood trajectory, in `data.trials` order.
+/// Decodes `data`'s trials with `model` (order statistics, calibration off; prepared with the
+/// default lookup budget) and returns each trial's log-likelihood trajectory, in `data.trials`
+/// order.
 pub fn log_likelihood_trajectories(
     model: Arc<Model>,
     data: &Dataset,
@@ -667,7 +669,7 @@ pub fn log_likelihood_trajectories(
     };
     let mut cfg = EngineConfig::new(data.tick_rate_hz);
     cfg.calibrated = false;
-    run_dataset(model, data, cfg, &mut sink)?;
+    run_dataset(model.prepare(LookupBudget::DEFAULT), data, cfg, &mut sink)?;
     Ok(sink.out)
 }
 

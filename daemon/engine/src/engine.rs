@@ -13,6 +13,7 @@ pub use crate::decision::{
     DEFAULT_THRESHOLD,
 };
 use crate::model::{CellKernel, Model};
+use crate::prepared::PreparedModel;
 use crate::special::{entropy_bits, softmax_in_place};
 use crate::table::{ProductAcc, NO_SLOT};
 use crate::tally::UnitTally;
@@ -443,7 +444,7 @@ struct TrialState {
     id: u64,
     onset: i64,
     presented: Option<u32>,
-    model: Arc<Model>,
+    model: Arc<PreparedModel>,
     decoder: Decoder,
     threshold: f64,
     min_bin: u32,
@@ -493,7 +494,7 @@ struct TrialState {
 }
 
 impl TrialState {
-    fn blank(model: Arc<Model>) -> Self {
+    fn blank(model: Arc<PreparedModel>) -> Self {
         let (nu, ns, nblk) = (model.n_units(), model.n_stimuli(), model.n_blocks());
         TrialState {
             id: 0,
@@ -595,13 +596,13 @@ impl RemoteBin {
 #[derive(Default)]
 struct CountStart {
     /// The model is held (not just its address) so a freed model's address cannot alias.
-    key: Option<(Arc<Model>, Decoder)>,
+    key: Option<(Arc<PreparedModel>, Decoder)>,
     cconst: Vec<f64>,
     sum: Vec<f64>,
 }
 
 impl CountStart {
-    fn ensure(&mut self, m: &Arc<Model>, dec: Decoder) {
+    fn ensure(&mut self, m: &Arc<PreparedModel>, dec: Decoder) {
         if let Some((km, kd)) = &self.key {
             if Arc::ptr_eq(km, m) && *kd == dec {
                 return;
@@ -642,7 +643,7 @@ fn count_const(m: &Model, dec: Decoder, u: usize, s: usize, k: u32) -> f64 {
 /// The constant after the unit's count rose from `k − 1` to `k`, updated incrementally where a
 /// family allows it (negative binomial: `+ ln(1−p) + ln(r + k − 1)`, no ln Γ per spike).
 #[inline]
-fn next_count_const(m: &Model, dec: Decoder, u: usize, s: usize, k: u32, prev: f64) -> f64 {
+fn next_count_const(m: &PreparedModel, dec: Decoder, u: usize, s: usize, k: u32, prev: f64) -> f64 {
     let i = u * m.n_stimuli() + s;
     match (dec, m.kernels[i]) {
         (Decoder::InhomogeneousPoisson, _) => prev + m.ln_means[i],
@@ -678,7 +679,7 @@ fn count_term(m: &Model, dec: Decoder, u: usize, s: usize, b: usize, k: u32, cco
 
 /// The decoding engine. See the module documentation.
 pub struct Engine {
-    model: Arc<Model>,
+    model: Arc<PreparedModel>,
     config: EngineConfig,
     bin_ticks: i64,
     min_bin: u32,
@@ -717,7 +718,7 @@ const PARKED_MAX: usize = 64;
 /// Decodes a whole dataset as an acquisition system would deliver it (1-bin batches, each trial
 /// opened before the batch holding its onset): offline decoding, validation and calibration.
 pub fn run_dataset(
-    model: Arc<Model>,
+    model: Arc<PreparedModel>,
     data: &crate::data::Dataset,
     cfg: EngineConfig,
     sink: &mut dyn EngineSink,
@@ -757,9 +758,8 @@ fn bin_ticks_for(model: &Model, tick_rate_hz: f64) -> Result<i64, EngineError> {
 
 impl Engine {
     /// A new engine for `model` with `config`.
-    pub fn new(model: Arc<Model>, config: EngineConfig) -> Result<Self, EngineError> {
+    pub fn new(model: Arc<PreparedModel>, config: EngineConfig) -> Result<Self, EngineError> {
         let bin_ticks = bin_ticks_for(&model, config.tick_rate_hz)?;
-        model.prepare();
         let mut e = Engine {
             tally: UnitTally::new(model.units(), model.n_stimuli()),
             count_start: CountStart::default(),
@@ -837,14 +837,13 @@ impl Engine {
         r
     }
     /// The model new trials open with.
-    pub fn model(&self) -> &Arc<Model> {
+    pub fn model(&self) -> &Arc<PreparedModel> {
         &self.model
     }
     /// Replaces the model for trials opened from now on; open trials finish on their own model.
     /// A prior override that no longer fits the stimuli is dropped.
-    pub fn set_model(&mut self, model: Arc<Model>) -> Result<(), EngineError> {
+    pub fn set_model(&mut self, model: Arc<PreparedModel>) -> Result<(), EngineError> {
         let bt = bin_ticks_for(&model, self.config.tick_rate_hz)?;
-        model.prepare();
         let same_shape =
             model.units() == self.model.units() && model.stimuli() == self.model.stimuli();
         if !same_shape {
@@ -1359,7 +1358,7 @@ const PREFETCH_AHEAD: usize = 6;
 
 /// Hints the cache to load the rows a spike of unit `u` in bin `b` will read or update.
 #[inline]
-fn prefetch_rows(m: &Model, t: &TrialState, u: usize, b: usize) {
+fn prefetch_rows(m: &PreparedModel, t: &TrialState, u: usize, b: usize) {
     let ns = m.n_stimuli();
     let row = (u * m.n_bins() + b) * ns;
     prefetch(&m.ln_q[row..row + ns]);
@@ -1649,7 +1648,7 @@ fn silent_sum(out: &mut [f64], pop_spike: &[f64], cc_sum: &[f64], sums: &[f64]) 
 
 /// Block `j`'s partial log-likelihood at the end of bin `b`, into `t.blk_ll`: the same
 /// mathematics as a whole-population pass, over the block's units only.
-fn block_partial(t: &mut TrialState, m: &Model, j: usize, b: usize, last: bool) {
+fn block_partial(t: &mut TrialState, m: &PreparedModel, j: usize, b: usize, last: bool) {
     let (nu, ns, nb) = (m.n_units(), m.n_stimuli(), m.n_bins());
     let units = m.blocks[j].clone();
     let row = j * ns..(j + 1) * ns;

@@ -20,6 +20,7 @@ pub mod engine;
 pub mod fit;
 pub mod learn;
 pub mod model;
+pub mod prepared;
 pub mod simulate;
 pub mod special;
 pub mod stats;
@@ -34,3 +35,4 @@ pub use engine::{
     Decision, DecisionPolicy, DecisionReason, Decoder, Engine, EngineConfig, EngineSink, Frame,
 };
 pub use model::{CellSpec, CellSummary, Model, ModelSpec};
+pub use prepared::{LookupBudget, PreparedModel};

@@ -1,12 +1,12 @@
 //! The immutable decoding model: stimuli, units, prior, and one cell per (unit, stimulus) holding
 //! its count distribution and its floored spike density q(b). Built and validated once; the
-//! per-bin tables the engine reads are precomputed here so the hot path only indexes.
+//! per-bin tables every decoder reads are precomputed here so the hot path only indexes; the
+//! budget-dependent ones are built by [`Model::prepare`] into a [`crate::PreparedModel`].
 //!
 //! Must not: change after construction (hot reload builds a new `Model`), or do I/O.
 
 use crate::calibrate::Calibration;
 use crate::count::{CountDist, CountError, CountFamily, CountParams};
-use crate::table::TablePrep;
 use serde::{Deserialize, Serialize};
 use std::collections::HashMap;
 
@@ -147,18 +147,7 @@ pub struct Model {
     pub(crate) unit_all_negbin: Vec<bool>,
     /// ln μ of Poisson cells (0 elsewhere): what a spike adds to their count constant.
     pub(crate) poisson_ln_mean: Vec<f64>,
-    /// Table-family (COM-Poisson, empirical) precomputation, built once per model on first use
-    /// by an engine (see [`Model::prepare`] and `table.rs`).
-    table: std::sync::OnceLock<TablePrep>,
-    /// What a spike adds to a negative binomial cell's count constant when the unit's count
-    /// reaches k, `ln(1−p) + ln(r + k − 1)`, laid out [u][k][s] for k < `nb_steps_k` (0 for
-    /// other families), so a spike costs one contiguous pass instead of S logarithms.
-    nb_steps: std::sync::OnceLock<(Vec<f64>, usize)>,
 }
-
-/// Memory a model spends by default on looked-up COM-Poisson/empirical count terms (the daemon's
-/// `--table-memory-mb` changes it): all counts for small models, the low counts for large ones.
-pub const TABLE_LOOKUP_BUDGET_BYTES: usize = 1 << 30;
 
 /// Units per block of the population sum. The log-likelihood is summed per block of this many
 /// consecutive units (in the model's unit order), and the block partials are then added in block
@@ -380,8 +369,6 @@ impl Model {
             unit_has_negbin,
             unit_all_negbin,
             poisson_ln_mean,
-            table: std::sync::OnceLock::new(),
-            nb_steps: std::sync::OnceLock::new(),
         })
     }
 
@@ -482,80 +469,10 @@ impl Model {
     pub fn calibration(&self) -> &Calibration {
         &self.spec.calibration
     }
-    /// Builds the per-bin precomputation the summed path reads: negative binomial spike steps,
-    /// and for COM-Poisson and empirical cells their silence sums, the product form's tables and
-    /// a lookup of `ln Φ^(k)(S(b)) − ln Φ^(0)(S(b))` for the counts [`TABLE_LOOKUP_BUDGET_BYTES`]
-    /// covers.
-    /// Engines call this when they take a model, so the first bin does not pay for it; models
-    /// that are never decoded bin by bin (validation's shuffle refits) never build it.
-    pub fn prepare(&self) {
-        self.nb_steps.get_or_init(|| {
-            let (nu, ns) = (self.n_units, self.n_stim);
-            let kmax = (0..nu * ns)
-                .filter(|&i| matches!(self.kernels[i], CellKernel::NegBin { .. }))
-                .map(|i| self.dists[i].pmf().len())
-                .max()
-                .unwrap_or(0)
-                .min(512);
-            if kmax == 0 || nu * kmax * ns * 8 > TABLE_LOOKUP_BUDGET_BYTES / 2 {
-                return (Vec::new(), 0);
-            }
-            let mut v = vec![0.0; nu * kmax * ns];
-            for u in 0..nu {
-                for s in 0..ns {
-                    if let CellKernel::NegBin { shape } = self.kernels[u * ns + s] {
-                        for k in 1..kmax {
-                            v[(u * kmax + k) * ns + s] =
-                                self.nb_step_direct(u * ns + s, shape, k as u32);
-                        }
-                    }
-                }
-            }
-            (v, kmax)
-        });
-        self.table
-            .get_or_init(|| TablePrep::build(self, TABLE_LOOKUP_BUDGET_BYTES));
-    }
-
-    /// [`Model::prepare`] with a different memory budget for the table-family lookup (0: never
-    /// build it, always evaluate exactly). Has no effect once the model is prepared.
-    pub fn prepare_with_lookup_budget(&self, bytes: usize) {
-        self.table.get_or_init(|| TablePrep::build(self, bytes));
-        self.prepare();
-    }
-
-    /// Bytes of precomputed table-family terms (0 before [`Model::prepare`]).
-    pub fn table_bytes(&self) -> usize {
-        self.table.get().map_or(0, |t| t.bytes())
-    }
-
-    /// The smallest count up to which every COM-Poisson/empirical unit's per-bin terms come from
-    /// the lookup (higher counts are evaluated in product form); None without such cells or
-    /// before [`Model::prepare`].
-    pub fn table_lookup_counts(&self) -> Option<usize> {
-        let t = self.table.get()?;
-        (!t.units.is_empty()).then(|| t.lookup_counts())
-    }
-
-    /// The table-family precomputation (built on first use).
-    #[inline]
-    pub(crate) fn table_prep(&self) -> &TablePrep {
-        self.table
-            .get_or_init(|| TablePrep::build(self, TABLE_LOOKUP_BUDGET_BYTES))
-    }
-
     /// The negative binomial step `ln(1−p) + ln(r + k − 1)` computed directly.
     #[inline]
     pub(crate) fn nb_step_direct(&self, i: usize, shape: f64, k: u32) -> f64 {
         self.dists[i].nb_ln_one_minus_p() + (shape + (k - 1) as f64).ln()
-    }
-
-    /// Unit u's row of negative binomial steps for count k (length S), when tabulated.
-    #[inline]
-    pub(crate) fn nb_step_row(&self, u: usize, k: u32) -> Option<&[f64]> {
-        let (v, kmax) = self.nb_steps.get()?;
-        let k = k as usize;
-        (k < *kmax).then(|| &v[(u * kmax + k) * self.n_stim..(u * kmax + k + 1) * self.n_stim])
     }
 
     /// S(b) of cell (u, s): probability mass of the bins after b.

@@ -5,6 +5,7 @@
 use auspex_engine::count::CountParams;
 use auspex_engine::engine::{Decoder, Engine, EngineConfig, EngineSink, Frame};
 use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
+use auspex_engine::{LookupBudget, PreparedModel};
 use proptest::prelude::*;
 use std::sync::Arc;
 
@@ -71,11 +72,18 @@ fn run_announced(
     step: i64,
     announce: i64,
 ) -> Frames {
-    run_with(m, dec, spikes, step, announce, false)
+    run_with(
+        &m.clone().prepare(LookupBudget::DEFAULT),
+        dec,
+        spikes,
+        step,
+        announce,
+        false,
+    )
 }
 
 fn run_with(
-    m: &Arc<Model>,
+    m: &Arc<PreparedModel>,
     dec: Decoder,
     spikes: &[(u32, i64)],
     step: i64,
@@ -164,11 +172,11 @@ proptest! {
     fn summed_path_matches_the_per_cell_reference(m in model_strategy(), spikes in proptest::collection::vec((0u32..4, 0i64..40), 0..60)) {
         // The same model without the table-family lookup: COM-Poisson and empirical cells then
         // take the product form (Horner on P(n)·n!, one logarithm per stimulus).
-        let exact = Arc::new(Model::new(m.spec().clone()).unwrap());
-        exact.prepare_with_lookup_budget(0);
-        for (dec, summed_model) in Decoder::ALL.into_iter().flat_map(|d| [(d, &m), (d, &exact)]) {
+        let full = m.clone().prepare(LookupBudget::DEFAULT);
+        let exact = m.clone().prepare(LookupBudget::NONE);
+        for (dec, summed_model) in Decoder::ALL.into_iter().flat_map(|d| [(d, &full), (d, &exact)]) {
             let a = run_with(summed_model, dec, &spikes, 3, -1, false).0;
-            let b = run_with(&m, dec, &spikes, 3, -1, true).0;
+            let b = run_with(&full, dec, &spikes, 3, -1, true).0;
             prop_assert_eq!(a.len(), b.len());
             for (x, y) in a.iter().zip(&b) {
                 prop_assert_eq!((x.0, x.1), (y.0, y.1));
@@ -203,7 +211,7 @@ fn an_onset_at_the_end_of_the_tick_range_is_refused_not_wrapped() {
         calibration: Default::default(),
         unit_groups: Vec::new(),
     };
-    let m = Arc::new(Model::new(spec).unwrap());
+    let m = Arc::new(Model::new(spec).unwrap()).prepare(LookupBudget::DEFAULT);
     let mut e = Engine::new(m, EngineConfig::new(1000.0)).unwrap();
     let r = e.open_trial(1, i64::MAX - 2, None, &mut NullSink);
     assert!(matches!(r, Err(EngineError::StaleOnset { .. })), "{r:?}");
@@ -247,7 +255,8 @@ fn gaps_between_windows_cost_one_batch_and_change_no_frame() {
             unit_groups: Vec::new(),
         })
         .unwrap(),
-    );
+    )
+    .prepare(LookupBudget::DEFAULT);
     // Ticks of 1 µs; bins of 1000 ticks.
     let far = 10_000_000_000_000i64; // 1e7 s
     let trial = |id: u64, onset: i64, s: &str| Trial {

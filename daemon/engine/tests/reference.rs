@@ -3,6 +3,7 @@
 use auspex_engine::count::{CountDist, CountParams};
 use auspex_engine::engine::{Decoder, Engine, EngineConfig, EngineSink, Frame};
 use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
+use auspex_engine::{LookupBudget, PreparedModel};
 use statrs::distribution::{Beta, Continuous};
 use std::sync::Arc;
 
@@ -22,7 +23,12 @@ fn cell(count: CountParams, timing: Vec<f64>) -> CellSpec {
     }
 }
 
-fn model(bin_width_s: f64, stimuli: &[&str], units: &[u32], cells: Vec<CellSpec>) -> Arc<Model> {
+fn model(
+    bin_width_s: f64,
+    stimuli: &[&str],
+    units: &[u32],
+    cells: Vec<CellSpec>,
+) -> Arc<PreparedModel> {
     let n_bins = cells[0].timing.len() as u32;
     Arc::new(
         Model::new(ModelSpec {
@@ -37,12 +43,13 @@ fn model(bin_width_s: f64, stimuli: &[&str], units: &[u32], cells: Vec<CellSpec>
         })
         .unwrap(),
     )
+    .prepare(LookupBudget::DEFAULT)
 }
 
 /// Stimulus A: uniform density on [0, 0.1 s], Poisson(4). B: density ∝ e^(−30t), negative
 /// binomial r = 2, mean 6. 1 ms bins (shared/REFERENCE-VALUES.md, "Whole decoder", derived and
 /// confirmed by Monte Carlo with 2×10⁷ trials per stimulus).
-fn two_stimulus_model() -> Arc<Model> {
+fn two_stimulus_model() -> Arc<PreparedModel> {
     let qa = vec![0.01; 100];
     let z = 1.0 - (-3.0f64).exp();
     let qb: Vec<f64> = (0..100)

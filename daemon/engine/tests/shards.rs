@@ -9,6 +9,7 @@ use auspex_engine::engine::{
     UnitSummaries,
 };
 use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec, UNIT_BLOCK};
+use auspex_engine::{LookupBudget, PreparedModel};
 use proptest::prelude::*;
 use rand::seq::SliceRandom;
 use rand::{Rng, SeedableRng};
@@ -142,7 +143,7 @@ impl Normalised for CountParams {
 
 /// A model of `nu` units (several blocks), `ns` stimuli and `nb` bins; families per unit from
 /// `mix` (so some units are all one family and some mixed).
-fn model(nu: usize, ns: usize, nb: usize, mix: u8, seed: u64) -> Arc<Model> {
+fn model(nu: usize, ns: usize, nb: usize, mix: u8, seed: u64) -> Arc<PreparedModel> {
     grouped_model(nu, ns, nb, mix, seed, Vec::new())
 }
 
@@ -154,7 +155,7 @@ fn grouped_model(
     mix: u8,
     seed: u64,
     unit_groups: Vec<u32>,
-) -> Arc<Model> {
+) -> Arc<PreparedModel> {
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
     let mut cells = Vec::new();
     for u in 0..nu {
@@ -186,6 +187,7 @@ fn grouped_model(
         })
         .unwrap(),
     )
+    .prepare(LookupBudget::DEFAULT)
 }
 
 struct Input {
@@ -233,7 +235,7 @@ fn config(dec: Decoder, role: Role) -> EngineConfig {
     c
 }
 
-fn whole(m: &Arc<Model>, dec: Decoder, inp: &Input) -> Out {
+fn whole(m: &Arc<PreparedModel>, dec: Decoder, inp: &Input) -> Out {
     let mut e = Engine::new(m.clone(), config(dec, Role::Whole)).unwrap();
     let mut out = Out::default();
     drive(inp, |step| match step {
@@ -275,7 +277,7 @@ fn drive(inp: &Input, mut f: impl FnMut(Step)) {
 /// The combiner computes part 0 (or nothing), shards the other parts; partials are handed over
 /// after each step in a shuffled order, some before the combiner's own advance.
 fn sharded(
-    m: &Arc<Model>,
+    m: &Arc<PreparedModel>,
     dec: Decoder,
     inp: &Input,
     parts: u32,

@@ -171,7 +171,10 @@ impl EngineThread {
                 .unwrap_or_default(),
             ended_sessions: self.ended.clone(),
             learning,
-            promise: Some(self.promise.state(self.model.as_deref(), &self.config)),
+            promise: Some(
+                self.promise
+                    .state(self.model.as_deref().map(|m| &**m), &self.config),
+            ),
             role: self.link.name().into(),
             shards: self.link.shard_states(),
             part: match &self.link {

@@ -6,6 +6,7 @@
 use auspex_engine::count::CountParams;
 use auspex_engine::engine::{Engine, NullSink};
 use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
+use auspex_engine::{LookupBudget, PreparedModel};
 use std::sync::Arc;
 
 /// Window bins.
@@ -13,7 +14,7 @@ pub const BINS: usize = 250;
 
 /// A model of `nu` units × `ns` stimuli, every cell of `family` (poisson, negative_binomial,
 /// com_poisson, empirical).
-pub fn model_at(nu: usize, ns: usize, family: &str, mean_count: f64) -> Arc<Model> {
+pub fn model_at(nu: usize, ns: usize, family: &str, mean_count: f64) -> Arc<PreparedModel> {
     let mut cells = Vec::with_capacity(nu * ns);
     for u in 0..nu {
         for s in 0..ns {
@@ -49,6 +50,7 @@ pub fn model_at(nu: usize, ns: usize, family: &str, mean_count: f64) -> Arc<Mode
         }
     }
     Arc::new(Model::new(ModelSpec::numbered(nu, ns, BINS, cells)).unwrap())
+        .prepare(LookupBudget::DEFAULT)
 }
 
 /// Spike bins of one trial: each unit fires `mean_count` spikes spread over the window
