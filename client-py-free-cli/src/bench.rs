@@ -140,82 +140,19 @@ pub struct ThreadPoint {
     pub speedup: f64,
 }
 
-/// Times whole trials through the daemon's threaded engine (a combiner and `threads − 1`
-/// workers, fed as the engine thread feeds them: one shared spike batch per bin), for about
-/// `budget`; median µs per bin.
+/// Times whole trials through the daemon's threaded engine (`auspexd::ThreadedDecoder`: a
+/// combiner and `threads − 1` workers fed as the engine thread feeds them), for about `budget`;
+/// median µs per bin and the frames published.
 pub fn thread_point(
     m: &Arc<PreparedModel>,
     threads: u32,
     budget: Duration,
 ) -> anyhow::Result<(f64, u64)> {
-    use auspex_engine::engine::{EngineSink, TrialEnd};
-    use auspexd::workers::{combiner_role, Workers};
-    #[derive(Default)]
-    struct Ends(u64, u64);
-    impl EngineSink for Ends {
-        fn trial_end(&mut self, _: &TrialEnd<'_>) {
-            self.0 += 1;
-        }
-        fn frame(&mut self, _: &auspex_engine::engine::Frame<'_>) {
-            self.1 += 1;
-        }
-    }
-    let nu = m.n_units();
-    let mut cfg = EngineConfig::new(1000.0);
-    cfg.role = combiner_role(threads);
-    let mut e = Engine::new(m.clone(), cfg)?;
-    let mut workers = Workers::start(threads)?;
-    if let Some(w) = workers.as_mut() {
-        w.sync(Some(&e), 1);
-    }
-    let mut sink = Ends::default();
-    let us = median_us_per_bin(nu, budget, |trial, onset, sp| {
-        let onset_body = Arc::new(Body::Onset(v1::TrialOnset {
-            trial,
-            onset_tick: onset,
-            ..Default::default()
-        }));
-        if let Some(w) = &workers {
-            w.body(&onset_body);
-        }
-        let _ = e.open_trial(trial, onset, Some(0), &mut sink);
-        for (b, units) in sp.iter().enumerate() {
-            let tick = onset + b as i64;
-            let body = Arc::new(Body::Spikes(v1::SpikeBatch {
-                units: units.clone(),
-                ticks: vec![tick; units.len()],
-                complete_through: tick,
-            }));
-            if let Some(w) = &workers {
-                w.body(&body);
-            }
-            if let Body::Spikes(batch) = &*body {
-                for (&u, &t) in batch.units.iter().zip(&batch.ticks) {
-                    let _ = e.spike(u, t);
-                }
-            }
-            let _ = e.advance(tick, &mut sink);
-            if let Some(w) = &workers {
-                while let Ok(p) = w.partials.try_recv() {
-                    let _ = e.add_partial(&p.as_partial(), &mut sink);
-                    w.recycle(p);
-                }
-            }
-        }
-        // The trial is decoded once every worker's last partial is in.
-        while sink.0 < trial {
-            let Some(w) = &workers else { break };
-            match w.partials.recv_timeout(Duration::from_secs(10)) {
-                Ok(p) => {
-                    let _ = e.add_partial(&p.as_partial(), &mut sink);
-                    w.recycle(p);
-                }
-                Err(_) => anyhow::bail!("engine threads stopped answering"),
-            }
-        }
-        Ok(())
+    let mut d = auspexd::ThreadedDecoder::start(m.clone(), threads)?;
+    let us = median_us_per_bin(m.n_units(), budget, |trial, onset, sp| {
+        Ok(d.decode_trial(trial, onset, sp)?)
     })?;
-    Ok((us, sink.1))
+    Ok((us, d.frames()))
 }
 
 /// Thread scaling at the given sizes for 1 ..= `max_threads` threads, printed with a

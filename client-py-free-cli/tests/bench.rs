@@ -40,7 +40,7 @@ fn bench_times_the_users_own_model() {
     let p = &json["model"];
 
     // The model's own shape and cells.
-    let spec = auspexd::model_file::load_model(&model).unwrap().0;
+    let spec = auspex_proto::model_file::load_model(&model).unwrap().0;
     let (nu, ns) = (spec.units.len(), spec.stimuli.len());
     assert_eq!(p["units"], nu);
     assert_eq!(p["stimuli"], ns);

@@ -68,7 +68,7 @@ fn kill_9_during_recording_loses_only_the_unflushed_tail() {
     };
     let spec = plan(&train, &opts).unwrap().fit_all();
     let model_path = dir.path().join("m.apxm");
-    auspexd::model_file::save_model(&model_path, &spec, "crash test").unwrap();
+    auspex_proto::model_file::save_model(&model_path, &spec, "crash test").unwrap();
     let data = simulate(
         &truth,
         &SimOptions {
@@ -194,7 +194,7 @@ fn kill_9_during_recording_loses_only_the_unflushed_tail() {
         "fit --session failed: {}",
         String::from_utf8_lossy(&out.stderr)
     );
-    let (_, refit) = auspexd::model_file::load_model(&dir.path().join("refit.apxm")).unwrap();
+    let (_, refit) = auspex_proto::model_file::load_model(&dir.path().join("refit.apxm")).unwrap();
     assert_eq!(refit.units(), truth.units());
 
     // The library path agrees: Source::Session reads the same trials.

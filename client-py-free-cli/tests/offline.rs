@@ -336,8 +336,8 @@ fn fitted_parameters_recover_the_scenario() {
         },
     )
     .unwrap();
-    let (truth, _) = auspexd::model_file::load_model(&d.join("true.apxm")).unwrap();
-    let (fit, fm) = auspexd::model_file::load_model(&d.join("fit.apxm")).unwrap();
+    let (truth, _) = auspex_proto::model_file::load_model(&d.join("true.apxm")).unwrap();
+    let (fit, fm) = auspex_proto::model_file::load_model(&d.join("fit.apxm")).unwrap();
     let tm = auspex_engine::Model::new(truth.clone()).unwrap();
     for u in 0..3 {
         for s in 0..2 {

@@ -40,7 +40,6 @@ use tokio::sync::oneshot;
 
 mod sink;
 mod status;
-pub use sink::decision_msg;
 use sink::{PubSink, SessionTally};
 
 /// What the engine thread receives.

@@ -3,23 +3,36 @@
 //! The Auspex service: ingest of spike batches and trial events over ZeroMQ, the engine on its
 //! own OS thread, publishing of posteriors, decisions, per-unit reports and health, control,
 //! and the session recorder. The binary is thin glue over this library.
+//!
+//! Public is only what running the daemon needs: [`cli`] (the binary's entry), [`config`] (the
+//! settings and their checks), [`service`] (start, stop, the bound endpoints) and
+//! [`ThreadedDecoder`] (the `--threads` engine, for `auspex bench`). Everything else is the
+//! daemon's own; the `fuzzing` feature opens the engine thread, publisher and shard link to the
+//! fuzz harness (`tests/src/fuzzing.rs`), which drives them without sockets.
 #![deny(missing_docs)]
 
 pub mod cli;
 pub mod config;
-pub mod control;
+mod control;
+#[cfg(feature = "fuzzing")]
 pub mod engine_thread;
-pub mod ingest;
-pub mod learner;
-/// Model files (kept here for existing callers; they live in `auspex_proto::model_file`).
-pub mod model_file {
-    pub use auspex_proto::model_file::*;
-}
-pub mod next_stimulus;
-pub mod promise;
+#[cfg(not(feature = "fuzzing"))]
+mod engine_thread;
+mod ingest;
+mod learner;
+mod next_stimulus;
+mod promise;
+#[cfg(feature = "fuzzing")]
 pub mod publish;
-pub mod ratelog;
-pub mod recorder;
+#[cfg(not(feature = "fuzzing"))]
+mod publish;
+mod ratelog;
+mod recorder;
 pub mod service;
+#[cfg(feature = "fuzzing")]
 pub mod shard_link;
-pub mod workers;
+#[cfg(not(feature = "fuzzing"))]
+mod shard_link;
+mod workers;
+
+pub use workers::{ThreadedDecoder, WorkersStalled};

@@ -290,6 +290,123 @@ fn worker(
     }
 }
 
+/// The daemon's threaded engine outside the daemon, for measuring it (`auspex bench`'s thread
+/// scaling): a combiner and `threads − 1` workers fed exactly as the engine thread feeds them —
+/// one shared body per bin, partials added as they come back.
+pub struct ThreadedDecoder {
+    engine: Engine,
+    workers: Option<Workers>,
+    sink: TrialCounter,
+}
+
+/// The worker threads stopped answering while a trial waited for their partials.
+#[derive(Debug, thiserror::Error)]
+#[error("engine threads stopped answering for 10 s")]
+pub struct WorkersStalled;
+
+#[derive(Default)]
+struct TrialCounter {
+    ends: u64,
+    frames: u64,
+}
+
+impl EngineSink for TrialCounter {
+    fn trial_end(&mut self, _: &auspex_engine::engine::TrialEnd<'_>) {
+        self.ends += 1;
+    }
+    fn frame(&mut self, _: &auspex_engine::engine::Frame<'_>) {
+        self.frames += 1;
+    }
+}
+
+impl ThreadedDecoder {
+    /// `threads` engine threads (1: the combiner alone) on `model`, ticks of 1 ms.
+    pub fn start(
+        model: Arc<PreparedModel>,
+        threads: u32,
+    ) -> Result<Self, crate::service::StartError> {
+        let mut cfg = EngineConfig::new(1000.0);
+        cfg.role = combiner_role(threads);
+        let engine =
+            Engine::new(model, cfg).map_err(|cause| crate::service::StartError::Engine {
+                model: "benchmark model".into(),
+                cause,
+            })?;
+        let mut workers =
+            Workers::start(threads).map_err(|e| crate::service::StartError::Spawn {
+                what: "engine worker threads",
+                cause: e.to_string(),
+            })?;
+        if let Some(w) = workers.as_mut() {
+            w.sync(Some(&engine), 1);
+        }
+        Ok(ThreadedDecoder {
+            engine,
+            workers,
+            sink: TrialCounter::default(),
+        })
+    }
+
+    /// Decodes trial `trial` (stimulus 0) at tick `onset`, one batch per 1-tick bin holding the
+    /// units in `bins[b]`; returns once the trial has ended.
+    pub fn decode_trial(
+        &mut self,
+        trial: u64,
+        onset: i64,
+        bins: &[Vec<u32>],
+    ) -> Result<(), WorkersStalled> {
+        let ended = self.sink.ends + 1;
+        let (e, sink) = (&mut self.engine, &mut self.sink);
+        let onset_body = Arc::new(inbound::Body::Onset(auspex_proto::v1::TrialOnset {
+            trial,
+            onset_tick: onset,
+            ..Default::default()
+        }));
+        if let Some(w) = &self.workers {
+            w.body(&onset_body);
+        }
+        let _ = e.open_trial(trial, onset, Some(0), sink);
+        for (b, units) in bins.iter().enumerate() {
+            let tick = onset + b as i64;
+            let body = Arc::new(inbound::Body::Spikes(auspex_proto::v1::SpikeBatch {
+                units: units.clone(),
+                ticks: vec![tick; units.len()],
+                complete_through: tick,
+            }));
+            if let Some(w) = &self.workers {
+                w.body(&body);
+            }
+            for &u in units {
+                let _ = e.spike(u, tick);
+            }
+            let _ = e.advance(tick, sink);
+            if let Some(w) = &self.workers {
+                while let Ok(p) = w.partials.try_recv() {
+                    let _ = e.add_partial(&p.as_partial(), sink);
+                    w.recycle(p);
+                }
+            }
+        }
+        // The trial is decoded once every worker's last partial is in.
+        while self.sink.ends < ended {
+            let Some(w) = &self.workers else { break };
+            match w.partials.recv_timeout(std::time::Duration::from_secs(10)) {
+                Ok(p) => {
+                    let _ = self.engine.add_partial(&p.as_partial(), &mut self.sink);
+                    w.recycle(p);
+                }
+                Err(_) => return Err(WorkersStalled),
+            }
+        }
+        Ok(())
+    }
+
+    /// Frames published so far.
+    pub fn frames(&self) -> u64 {
+        self.sink.frames
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -49,7 +49,7 @@ fn fixture_of(trials: u32, sc: Scenario) -> Fixture {
     };
     let spec = plan(&train, &opts).unwrap().fit_all();
     let model_path = dir.path().join("m.apxm");
-    auspexd::model_file::save_model(&model_path, &spec, "e2e").unwrap();
+    auspex_proto::model_file::save_model(&model_path, &spec, "e2e").unwrap();
     let data = simulate(
         &truth,
         &SimOptions {
@@ -619,7 +619,7 @@ fn hot_reload_through_control_applies_at_the_trial_boundary() {
     .unwrap()
     .fit_all();
     let path_b = f.model_path.with_file_name("b.apxm");
-    auspexd::model_file::save_model(&path_b, &spec_b, "e2e b").unwrap();
+    auspex_proto::model_file::save_model(&path_b, &spec_b, "e2e b").unwrap();
     let model_b = Arc::new(Model::new(spec_b).unwrap());
 
     let rt = runtime();

@@ -129,7 +129,7 @@ fn session_messages(
 fn truth_on_disk(sc: &Scenario, dir: &std::path::Path) -> (Model, std::path::PathBuf) {
     let spec = sc.true_model().unwrap();
     let path = dir.join("truth.apxm");
-    auspexd::model_file::save_model(&path, &spec, "e2e").unwrap();
+    auspex_proto::model_file::save_model(&path, &spec, "e2e").unwrap();
     (Model::new(spec).unwrap(), path)
 }
 
@@ -316,7 +316,7 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
 
     // The saved model = `auspex fit` of the recording (the late unit from its declaration on).
     assert_eq!(rec.dataset.declared_from.get(&late), Some(&from));
-    let (spec, _) = auspexd::model_file::load_model(&saved).unwrap();
+    let (spec, _) = auspex_proto::model_file::load_model(&saved).unwrap();
     let fit_opts = FitOptions {
         window_s: sc.window_ms / 1000.0,
         ..FitOptions::default()

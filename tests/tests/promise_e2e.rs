@@ -113,7 +113,7 @@ fn a_target_accuracy_is_kept_refused_and_watched_live() {
     let dir = tempfile::tempdir().unwrap();
     let (spec, data) = calibrated();
     let path = dir.path().join("m.apxm");
-    auspexd::model_file::save_model(&path, &spec, "promise e2e").unwrap();
+    auspex_proto::model_file::save_model(&path, &spec, "promise e2e").unwrap();
     let model = Arc::new(Model::new(spec.clone()).unwrap());
     let cal = model.calibration();
     // A target the record supports: the accuracy bound of its 0.8 threshold.
@@ -200,7 +200,7 @@ fn a_confidently_wrong_model_breaks_its_promise_and_health_says_so() {
     spec.stimuli.rotate_left(1);
     spec.calibration = Default::default();
     let path = dir.path().join("wrong.apxm");
-    auspexd::model_file::save_model(&path, &spec, "promise e2e, wrong names").unwrap();
+    auspex_proto::model_file::save_model(&path, &spec, "promise e2e, wrong names").unwrap();
     let model = Model::new(spec).unwrap();
     let rt = runtime();
     let running = rt

@@ -47,7 +47,7 @@ fn fixture(trials: u32) -> Fixture {
     let mut spec = plan(&train, &opts).unwrap().fit_all();
     spec.unit_groups = vec![100];
     let model_path = dir.path().join("m.apxm");
-    auspexd::model_file::save_model(&model_path, &spec, "e2e").unwrap();
+    auspex_proto::model_file::save_model(&model_path, &spec, "e2e").unwrap();
     let data = simulate(
         &truth,
         &SimOptions {

@@ -216,4 +216,4 @@ impl EngineSink for PubSink<'_> {
     }
 }
 
-pub use auspex_proto::convert::decision_msg;
+use auspex_proto::convert::decision_msg;
