@@ -2,8 +2,9 @@
 //! drawn from a [`Validation`] and its [`Extras`]. Small hand-written SVG primitives keep the
 //! page light and identical on every machine.
 
-use crate::validate::{Extras, Validation};
-use auspex_engine::stats::ks_critical;
+use crate::validate::{
+    histogram, Extras, UnitFigures, UnitReport, Validation, RASTER_TRIALS, UNIT_FIGURES_MAX,
+};
 use std::fmt::Write;
 
 /// Okabe & Ito's colour-blind-safe palette (yellow darkened to read on white), then two more.
@@ -25,8 +26,6 @@ fn fit_attr(chars: usize, avail: f64) -> String {
         String::new()
     }
 }
-/// Units drawn in full (raster, PSTH, counts, KS plot), most informative first.
-pub const UNIT_DETAIL_MAX: usize = 64;
 
 fn colour(i: usize) -> &'static str {
     PALETTE[i % PALETTE.len()]
@@ -356,20 +355,6 @@ fn heatmap(title: &str, conf: &[Vec<u64>], names: &[String]) -> String {
         sy + 41.0
     );
     s
-}
-
-fn histogram(values: &[f64], lo: f64, hi: f64, n: usize) -> (Vec<f64>, Vec<f64>) {
-    let edges: Vec<f64> = (0..=n)
-        .map(|i| lo + (hi - lo) * i as f64 / n as f64)
-        .collect();
-    let mut h = vec![0.0; n];
-    for &v in values {
-        let i = (((v - lo) / (hi - lo)) * n as f64).floor();
-        if i >= 0.0 {
-            h[(i as usize).min(n - 1)] += 1.0;
-        }
-    }
-    (edges, h)
 }
 
 /// Legend entries: each decoder in its colour.
@@ -885,22 +870,14 @@ fn trajectories_plot(v: &Validation, x: &Extras) -> String {
     out
 }
 
-fn unit_section(v: &Validation, x: &Extras, ur: &crate::validate::UnitReport) -> String {
-    let m = &x.full_model;
-    let Some(u) = m.unit_index(ur.unit) else {
-        return String::new();
-    };
+fn unit_section(v: &Validation, ur: &UnitReport, f: &UnitFigures) -> String {
     let ns = v.stimuli.len();
-    let nb = m.n_bins();
-    let bw = v.bin_ms;
-    let bin_ticks = (bw / 1000.0 * x.data.tick_rate_hz).round() as i64;
-    let w = x.data.windows(&[ur.unit], bin_ticks, nb);
     let mut s = String::new();
     let _ = write!(s, "<details><summary>unit {} — {:.3} bits (p = {:.3}), single-unit accuracy {:.1}%{}</summary><div class=row>",
         ur.unit, ur.info.bits, ur.info.p_value, 100.0 * ur.accuracy,
         if ur.cells.iter().any(|c| !c.ks_pass) { " · <b class=warn>goodness of fit flagged</b>" } else { "" });
-    // Raster: up to 12 trials per stimulus, grouped by stimulus.
-    let per = 12usize;
+    // Raster, grouped by stimulus.
+    let per = RASTER_TRIALS;
     let rows = ns * per;
     let mut p = Plot::new(
         330.0,
@@ -909,19 +886,15 @@ fn unit_section(v: &Validation, x: &Extras, ur: &crate::validate::UnitReport) ->
         (0.0, rows as f64),
     );
     p.axes(
-        "raster (12 trials per stimulus)",
+        &format!("raster ({per} trials per stimulus)"),
         "ms after onset",
         "trials",
     );
-    for st in 0..ns {
-        let trials: Vec<usize> = (0..x.labels.len())
-            .filter(|&i| x.labels[i] == st)
-            .take(per)
-            .collect();
-        for (r, &i) in trials.iter().enumerate() {
+    for (st, trials) in f.raster.iter().enumerate() {
+        for (r, times) in trials.iter().enumerate() {
             let y = (rows - st * per - r) as f64 - 0.5;
-            for t in &w.times[0][i] {
-                let (px, py) = (p.sx(t * bw), p.sy(y));
+            for &t in times {
+                let (px, py) = (p.sx(t), p.sy(y));
                 let _ = write!(
                     p.svg,
                     r##"<line x1="{px:.1}" y1="{:.1}" x2="{px:.1}" y2="{:.1}" stroke="{}" stroke-width="1"/>"##,
@@ -933,33 +906,13 @@ fn unit_section(v: &Validation, x: &Extras, ur: &crate::validate::UnitReport) ->
         }
     }
     s += &p.finish();
-    // PSTH vs fitted density, per stimulus, in spikes/s.
-    let nbins_psth = (nb / 5).max(1);
-    let mut peak: f64 = 1.0;
-    let mut psth = Vec::new();
-    for st in 0..ns {
-        let trials: Vec<usize> = (0..x.labels.len()).filter(|&i| x.labels[i] == st).collect();
-        let times: Vec<f64> = trials
-            .iter()
-            .flat_map(|&i| w.times[0][i].iter().map(|t| t * bw))
-            .collect();
-        let (edges, mut h) = histogram(&times, 0.0, v.window_ms, nbins_psth);
-        let width_s = v.window_ms / nbins_psth as f64 / 1000.0;
-        h.iter_mut()
-            .for_each(|c| *c /= trials.len().max(1) as f64 * width_s);
-        let mean = m.count(u, st).mean();
-        let fit: Vec<(f64, f64)> = m
-            .timing(u, st)
-            .iter()
-            .enumerate()
-            .map(|(b, q)| ((b as f64 + 0.5) * bw, mean * q / (bw / 1000.0)))
-            .collect();
-        peak = peak
-            .max(h.iter().cloned().fold(0.0, f64::max))
-            .max(fit.iter().map(|f| f.1).fold(0.0, f64::max));
-        psth.push((edges, h, fit));
-    }
-    // The legend (which colour is which stimulus, for the raster too) sits in a right margin.
+    // PSTH vs fitted density, per stimulus, in spikes/s. The legend (which colour is which
+    // stimulus, for the raster too) sits in a right margin.
+    let peak = f
+        .psth
+        .iter()
+        .flat_map(|(h, fit)| h.iter().copied().chain(fit.iter().map(|x| x.1)))
+        .fold(1.0, f64::max);
     let mut p = Plot::new(400.0, 250.0, (0.0, v.window_ms), (0.0, peak * 1.05));
     p.right = 70.0;
     p.axes(
@@ -967,8 +920,8 @@ fn unit_section(v: &Validation, x: &Extras, ur: &crate::validate::UnitReport) ->
         "ms after onset",
         "spikes/s",
     );
-    for (st, (edges, h, fit)) in psth.iter().enumerate() {
-        p.bars(edges, h, colour(st), 0.18);
+    for (st, (h, fit)) in f.psth.iter().enumerate() {
+        p.bars(&f.psth_edges, h, colour(st), 0.18);
         p.line(fit, colour(st), 1.6, false);
     }
     let items: Vec<(String, &str)> = v
@@ -984,32 +937,20 @@ fn unit_section(v: &Validation, x: &Extras, ur: &crate::validate::UnitReport) ->
     );
     s += &p.finish();
     // Count histograms with the fitted distributions: one small panel per stimulus.
-    let maxc = (0..x.labels.len())
-        .map(|i| w.counts[0][i])
-        .max()
-        .unwrap_or(0)
-        .max(3) as usize
-        + 1;
-    let mut top: f64 = 0.05;
-    let mut lines = Vec::new();
-    for st in 0..ns {
-        let trials: Vec<usize> = (0..x.labels.len()).filter(|&i| x.labels[i] == st).collect();
-        let mut h = vec![0.0; maxc];
-        for &i in &trials {
-            h[(w.counts[0][i] as usize).min(maxc - 1)] += 1.0 / trials.len().max(1) as f64;
-        }
-        let pmf: Vec<(f64, f64)> = (0..maxc)
-            .map(|n| (n as f64 + 0.5, m.count(u, st).ln_pmf(n as u32).exp()))
-            .collect();
-        top = top
-            .max(h.iter().cloned().fold(0.0, f64::max))
-            .max(pmf.iter().map(|x| x.1).fold(0.0, f64::max));
-        lines.push((h, pmf));
-    }
-    let edges: Vec<f64> = (0..=maxc).map(|n| n as f64).collect();
+    let top = f
+        .counts
+        .iter()
+        .flat_map(|(h, pmf)| h.iter().copied().chain(pmf.iter().map(|x| x.1)))
+        .fold(0.05, f64::max);
+    let edges: Vec<f64> = (0..=f.count_max + 1).map(|n| n as f64).collect();
     s += "<div><div class=sub><b>window counts</b> (bars: share of trials) <b>and fitted distribution</b> (line), per stimulus</div><div class=row style=\"gap:2px;max-width:520px\">";
-    for (st, (h, pmf)) in lines.iter().enumerate() {
-        let mut p = Plot::new(128.0, 96.0, (0.0, maxc as f64), (0.0, top * 1.05));
+    for (st, (h, pmf)) in f.counts.iter().enumerate() {
+        let mut p = Plot::new(
+            128.0,
+            96.0,
+            (0.0, (f.count_max + 1) as f64),
+            (0.0, top * 1.05),
+        );
         p.left = 28.0;
         p.bottom = 18.0;
         p.top = 16.0;
@@ -1019,9 +960,8 @@ fn unit_section(v: &Validation, x: &Extras, ur: &crate::validate::UnitReport) ->
         s += &p.finish();
     }
     s += "</div></div>";
-    // KS plot: each cell's empirical CDF of rescaled intervals minus the uniform, divided by
-    // that cell's own 95% critical value (it depends on how many intervals the cell has), so
-    // one band, ±1, is every cell's band.
+    // KS plot: one band, ±1, is every cell's band (deviations are over each cell's own
+    // critical value).
     let mut p = Plot::new(330.0, 250.0, (0.0, 1.0), (-1.6, 1.6));
     p.axes(
         "time rescaling, held out: KS deviation",
@@ -1031,22 +971,10 @@ fn unit_section(v: &Validation, x: &Extras, ur: &crate::validate::UnitReport) ->
     p.band(&[0.0, 1.0], &[-1.0, -1.0], &[1.0, 1.0], "#888");
     p.line(&[(0.0, 0.0), (1.0, 0.0)], "#444", 0.8, false);
     p.text(0.02, 1.05, "95% band of each cell", REFERENCE);
-    for st in 0..ns {
-        let mut z = x.rescaled[u * ns + st].clone();
-        if z.len() < 5 {
-            continue;
+    for (st, pts) in f.ks.iter().enumerate() {
+        if let Some(pts) = pts {
+            p.line(pts, colour(st), 1.3, false);
         }
-        z.sort_by(|a, b| a.total_cmp(b));
-        let n = z.len() as f64;
-        let crit = ks_critical(z.len(), 0.05);
-        let step = (z.len() / 200).max(1);
-        let pts: Vec<(f64, f64)> = z
-            .iter()
-            .enumerate()
-            .step_by(step)
-            .map(|(i, &q)| (q, (((i as f64 + 0.5) / n - q) / crit).clamp(-1.6, 1.6)))
-            .collect();
-        p.line(&pts, colour(st), 1.3, false);
     }
     s += &p.finish();
     s += "</div><table><tr><th>stimulus</th><th>trials</th><th>mean count</th><th>variance</th><th>Fano [95%]</th><th>family</th><th>KS D</th><th>95% critical</th><th>intervals</th><th>fit</th></tr>";
@@ -1320,18 +1248,15 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
     s += "</table>";
     // Pictures for the most informative units and every unit whose fit is flagged; a page with
     // thousands of units' plots would not open. The table above and the JSON hold every unit.
-    let mut shown = 0usize;
-    let mut left_out = 0usize;
-    for (r, u) in v.units_ranked.iter().enumerate() {
-        if r < UNIT_DETAIL_MAX || u.cells.iter().any(|c| !c.ks_pass) {
-            s += &unit_section(v, x, u);
-            shown += 1;
-        } else {
-            left_out += 1;
+    for f in &x.unit_figures {
+        if let Some(u) = v.units_ranked.iter().find(|u| u.unit == f.unit) {
+            s += &unit_section(v, u, f);
         }
     }
+    let shown = x.unit_figures.len();
+    let left_out = v.units_ranked.len().saturating_sub(shown);
     if left_out > 0 {
-        let _ = write!(s, "<p class=sub>Pictures for the {UNIT_DETAIL_MAX} most informative units and every unit with a flagged fit ({shown} shown); the other {left_out} units are in the table above and in validation.json.</p>");
+        let _ = write!(s, "<p class=sub>Pictures for the {UNIT_FIGURES_MAX} most informative units and every unit with a flagged fit ({shown} shown); the other {left_out} units are in the table above and in validation.json.</p>");
     }
     s += "<h2>Goodness of fit</h2>";
     let _ = write!(s, "<p class=sub>Discrete-time time-rescaling (Haslinger, Pipa &amp; Brown 2010) on held-out trials, each under the model of its presented stimulus: per bin, the model's probability of a spike given the spikes so far; bins holding spikes are events, their randomised rescaled intervals should be Uniform(0, 1). Cells whose KS statistic exceeds the exact 95% critical value are flagged: {} of {} tested.</p>",

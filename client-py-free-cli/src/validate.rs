@@ -17,13 +17,27 @@ use auspex_engine::validation::{
     rescaled_intervals, stratified_folds,
 };
 use auspex_engine::CountFamily;
-use indicatif::{ProgressBar, ProgressStyle};
 use rand::seq::SliceRandom;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 use std::collections::HashMap;
 use std::sync::Arc;
+
+/// Where a validation run reports how far it is (the command draws a bar from it; tests and
+/// library callers may pass `&()`). Called from worker threads, hence `Sync`.
+pub trait Progress: Sync {
+    /// The run has `steps` steps in all.
+    fn start(&self, _steps: u64) {}
+    /// What the run is doing now.
+    fn stage(&self, _what: &'static str) {}
+    /// One step done.
+    fn step(&self) {}
+    /// The run is over.
+    fn finish(&self) {}
+}
+
+impl Progress for () {}
 
 /// Settings of a validation run.
 #[derive(Clone, Debug)]
@@ -318,6 +332,34 @@ pub struct Validation {
     pub seconds: f64,
 }
 
+/// Units with a picture section in the report: the most informative ones, plus every unit whose
+/// fit is flagged (a page with thousands of units' plots would not open; the table and the JSON
+/// hold every unit).
+pub const UNIT_FIGURES_MAX: usize = 64;
+/// Trials per stimulus in a unit's raster.
+pub const RASTER_TRIALS: usize = 12;
+
+/// What one unit's report section draws, computed here so the renderer only draws.
+#[derive(Clone, Debug)]
+pub struct UnitFigures {
+    /// Unit id.
+    pub unit: u32,
+    /// Per stimulus, its first [`RASTER_TRIALS`] labelled trials: spike times, ms after onset.
+    pub raster: Vec<Vec<Vec<f64>>>,
+    /// PSTH bin edges, ms after onset.
+    pub psth_edges: Vec<f64>,
+    /// Per stimulus: the PSTH (spikes/s per bin) and the fitted density (ms, spikes/s).
+    pub psth: Vec<(Vec<f64>, Vec<(f64, f64)>)>,
+    /// Window counts 0 ..= `count_max` (the last one gathers higher counts).
+    pub count_max: usize,
+    /// Per stimulus: each count's share of trials and the fitted distribution (count + 0.5,
+    /// probability).
+    pub counts: Vec<(Vec<f64>, Vec<(f64, f64)>)>,
+    /// Per stimulus: the time-rescaling curve (model quantile, deviation / the cell's 95%
+    /// critical value, clamped to ±1.6), None with fewer than 5 intervals.
+    pub ks: Vec<Option<Vec<(f64, f64)>>>,
+}
+
 /// What the pictures need besides the numbers.
 pub struct Extras {
     /// The model fitted on all labelled trials (for densities and count distributions).
@@ -330,6 +372,120 @@ pub struct Extras {
     pub trajectories: Vec<Vec<Vec<f32>>>,
     /// Per cell (unit-major), the held-out rescaled intervals.
     pub rescaled: Vec<Vec<f64>>,
+    /// Picture data of the units shown in detail, in rank order.
+    pub unit_figures: Vec<UnitFigures>,
+}
+
+/// Counts of `values` in `n` equal bins over [lo, hi) (the last bin takes hi), with the edges.
+pub fn histogram(values: &[f64], lo: f64, hi: f64, n: usize) -> (Vec<f64>, Vec<f64>) {
+    let edges: Vec<f64> = (0..=n)
+        .map(|i| lo + (hi - lo) * i as f64 / n as f64)
+        .collect();
+    let mut h = vec![0.0; n];
+    for &v in values {
+        let i = (((v - lo) / (hi - lo)) * n as f64).floor();
+        if i >= 0.0 {
+            h[(i as usize).min(n - 1)] += 1.0;
+        }
+    }
+    (edges, h)
+}
+
+/// The picture data of one unit (see [`UnitFigures`]).
+fn unit_figures(
+    unit: u32,
+    model: &Model,
+    data: &Dataset,
+    labels: &[usize],
+    rescaled: &[Vec<f64>],
+    bw_ms: f64,
+) -> Option<UnitFigures> {
+    let u = model.unit_index(unit)?;
+    let (ns, nb) = (model.n_stimuli(), model.n_bins());
+    let window_ms = nb as f64 * bw_ms;
+    let bin_ticks = (bw_ms / 1000.0 * data.tick_rate_hz).round() as i64;
+    let w = data.windows(&[unit], bin_ticks, nb);
+    let of = |st: usize| (0..labels.len()).filter(move |&i| labels[i] == st);
+    let times_ms = |i: usize| w.times[0][i].iter().map(|t| t * bw_ms);
+    let raster = (0..ns)
+        .map(|st| {
+            of(st)
+                .take(RASTER_TRIALS)
+                .map(|i| times_ms(i).collect())
+                .collect()
+        })
+        .collect();
+    // PSTH against the fitted density, per stimulus, in spikes/s.
+    let nbins_psth = (nb / 5).max(1);
+    let width_s = window_ms / nbins_psth as f64 / 1000.0;
+    let mut psth_edges = Vec::new();
+    let psth = (0..ns)
+        .map(|st| {
+            let trials = of(st).count();
+            let times: Vec<f64> = of(st).flat_map(times_ms).collect();
+            let (edges, mut h) = histogram(&times, 0.0, window_ms, nbins_psth);
+            psth_edges = edges;
+            h.iter_mut()
+                .for_each(|c| *c /= trials.max(1) as f64 * width_s);
+            let mean = model.count(u, st).mean();
+            let fit = model
+                .timing(u, st)
+                .iter()
+                .enumerate()
+                .map(|(b, q)| ((b as f64 + 0.5) * bw_ms, mean * q / (bw_ms / 1000.0)))
+                .collect();
+            (h, fit)
+        })
+        .collect();
+    // Window counts with the fitted distributions.
+    let count_max = (0..labels.len())
+        .map(|i| w.counts[0][i])
+        .max()
+        .unwrap_or(0)
+        .max(3) as usize;
+    let counts = (0..ns)
+        .map(|st| {
+            let trials = of(st).count().max(1) as f64;
+            let mut h = vec![0.0; count_max + 1];
+            for i in of(st) {
+                h[(w.counts[0][i] as usize).min(count_max)] += 1.0 / trials;
+            }
+            let pmf = (0..=count_max)
+                .map(|n| (n as f64 + 0.5, model.count(u, st).ln_pmf(n as u32).exp()))
+                .collect();
+            (h, pmf)
+        })
+        .collect();
+    // Time rescaling: each cell's empirical CDF of rescaled intervals minus the uniform, over
+    // that cell's own 95% critical value (it depends on how many intervals the cell has).
+    let ks = (0..ns)
+        .map(|st| {
+            let mut z = rescaled[u * ns + st].clone();
+            if z.len() < 5 {
+                return None;
+            }
+            z.sort_by(|a, b| a.total_cmp(b));
+            let n = z.len() as f64;
+            let crit = ks_critical(z.len(), 0.05);
+            let step = (z.len() / 200).max(1);
+            Some(
+                z.iter()
+                    .enumerate()
+                    .step_by(step)
+                    .map(|(i, &q)| (q, (((i as f64 + 0.5) / n - q) / crit).clamp(-1.6, 1.6)))
+                    .collect(),
+            )
+        })
+        .collect();
+    Some(UnitFigures {
+        unit,
+        raster,
+        psth_edges,
+        psth,
+        count_max,
+        counts,
+        ks,
+    })
 }
 
 struct TrajSink {
@@ -443,11 +599,51 @@ fn window_end_confusions(
     }
 }
 
-/// Runs the validation. `source` names the data for the report.
+/// Runs the validation with a progress bar on standard error when `opts.progress` is set.
+/// `source` names the data for the report.
 pub fn validate(
     data: &Dataset,
     source: &str,
     opts: &ValidateOptions,
+) -> anyhow::Result<(Validation, Extras)> {
+    if !opts.progress {
+        return validate_with(data, source, opts, &());
+    }
+    let bar = Bar(indicatif::ProgressBar::new(0));
+    bar.0.set_style(
+        indicatif::ProgressStyle::with_template(
+            "validating {bar:40.cyan/blue} {pos}/{len} {msg} ({eta} left)",
+        )
+        .expect("static template")
+        .progress_chars("█▉▊▋▌▍▎▏ "),
+    );
+    validate_with(data, source, opts, &bar)
+}
+
+/// The terminal's progress bar.
+struct Bar(indicatif::ProgressBar);
+
+impl Progress for Bar {
+    fn start(&self, steps: u64) {
+        self.0.set_length(steps);
+    }
+    fn stage(&self, what: &'static str) {
+        self.0.set_message(what);
+    }
+    fn step(&self) {
+        self.0.inc(1);
+    }
+    fn finish(&self) {
+        self.0.finish_and_clear();
+    }
+}
+
+/// Runs the validation, reporting progress to `bar`; prints nothing.
+pub fn validate_with(
+    data: &Dataset,
+    source: &str,
+    opts: &ValidateOptions,
+    bar: &dyn Progress,
 ) -> anyhow::Result<(Validation, Extras)> {
     let t0 = std::time::Instant::now();
     let labelled: Vec<usize> = (0..data.trials.len())
@@ -456,7 +652,7 @@ pub fn validate(
     let data = subset(data, &labelled, None);
     let full_plan = plan(&data, &opts.fit)?;
     let stimuli = full_plan.stimuli.clone();
-    let (ns, nu, nb) = (stimuli.len(), data.units.len(), full_plan.n_bins);
+    let (ns, nb) = (stimuli.len(), full_plan.n_bins);
     let labels: Vec<usize> = data
         .trials
         .iter()
@@ -491,18 +687,7 @@ pub fn validate(
         auspex_engine::decision::min_bin_for(opts.min_time_ms / 1000.0, opts.fit.bin_width_s)
             as usize;
 
-    let bar = if opts.progress {
-        ProgressBar::new((2 * k + opts.shuffles + 1) as u64)
-    } else {
-        ProgressBar::hidden()
-    };
-    bar.set_style(
-        ProgressStyle::with_template(
-            "validating {bar:40.cyan/blue} {pos}/{len} {msg} ({eta} left)",
-        )
-        .expect("static template")
-        .progress_chars("█▉▊▋▌▍▎▏ "),
-    );
+    bar.start((2 * k + opts.shuffles + 1) as u64);
 
     // Per unit, per trial: spike bins in the window.
     let w = data.windows(&data.units, full_plan.bin_ticks, nb);
@@ -521,7 +706,179 @@ pub fn validate(
         .collect();
 
     // Cross-validated decoding with every decoder, and the per-fold choices.
-    bar.set_message("fitting and decoding folds");
+    bar.stage("fitting and decoding folds");
+    let CrossValidated {
+        traj,
+        held_ll,
+        unit_conf,
+        pop_conf_closed,
+        rescaled,
+        folds,
+    } = cross_validate(&data, &stimuli, &labels, &fold_of, k, &bins, nb, opts, bar)?;
+    // Label-shuffle null: labels permuted within each training fold only, cells refitted
+    // (family and bandwidth held at the real fold's choices), held-out trials decoded at the
+    // window end with their true labels.
+    bar.stage("label-shuffle null");
+    let nulls = shuffle_null(&data, &w, &bins, &labels, &stimuli, &folds, opts, nb, bar)?;
+    let (pop_null, unit_null) = nulls;
+
+    // Accuracy curves and decisions per decoder.
+    let chance = (0..ns)
+        .map(|s| labels.iter().filter(|&&l| l == s).count())
+        .max()
+        .unwrap_or(0) as f64
+        / nt as f64;
+    let decoders: Vec<DecoderReport> = Decoder::ALL
+        .iter()
+        .enumerate()
+        .map(|(d, dec)| {
+            decoder_report(
+                *dec,
+                &traj[d],
+                &labels,
+                ns,
+                nb,
+                bw_ms,
+                min_bin,
+                chance,
+                opts.threshold,
+            )
+        })
+        .collect();
+    let mut calibration = calibration(
+        &traj[0],
+        &labels,
+        ns,
+        nb,
+        bw_ms,
+        min_bin,
+        opts.threshold,
+        &decoders[0],
+    );
+    bar.stage("calibration, fitted inside each training fold");
+    calibration.methods = compare_calibrations(
+        &data,
+        &stimuli,
+        &labels,
+        &folds,
+        held_ll,
+        &full_plan.prior,
+        opts,
+        min_bin,
+        bar,
+    )?;
+    // The promise is the threshold decisions': judged from the raw posterior's record.
+    if let Some(raw) = calibration.methods.first() {
+        calibration.promises = raw
+            .record
+            .iter()
+            .filter(|e| THRESHOLDS.contains(&e.threshold))
+            .map(|e| {
+                let (accuracy, lo, hi) = e.early_accuracy();
+                Promise {
+                    threshold: e.threshold,
+                    accuracy,
+                    lo,
+                    hi,
+                    kept: e.kept(),
+                }
+            })
+            .collect();
+    }
+    // The observed population figure is the engine's own window-end confusion (order stats);
+    // the closed form used by the null must agree with it.
+    let engine_conf: Vec<u64> = decoders[0].confusion_end.concat();
+    let information = info_report(&engine_conf, ns, pop_null);
+    let closed_form_agrees = engine_conf == pop_conf_closed;
+
+    // Learning curve: the same folds with training subsampled to n trials per stimulus.
+    bar.stage("learning curve");
+    let learning_curve = learning_curve(&data, &labels, &fold_of, k, &stimuli, &bins, opts)?;
+
+    // Units: accuracy, information and its null; cells: count variability, family, fit.
+    let full_cells = crate::fitting::fit_cells(&full_plan, false);
+    let full_model = Arc::new(Model::new(full_plan.assemble(full_cells))?);
+    let (units_ranked, goodness_of_fit) = unit_reports(
+        &data,
+        &stimuli,
+        &labels,
+        &bins,
+        &unit_conf,
+        unit_null,
+        &rescaled,
+        &full_model,
+    );
+    bar.step();
+    bar.finish();
+
+    let v = Validation {
+        source: source.to_string(),
+        trials: nt,
+        units: data.units.clone(),
+        stimuli: stimuli.clone(),
+        bin_ms: bw_ms,
+        window_ms: nb as f64 * bw_ms,
+        folds: k,
+        shuffles: opts.shuffles,
+        seed: opts.seed,
+        chance,
+        threshold: opts.threshold,
+        min_time_ms: opts.min_time_ms,
+        decoders,
+        information,
+        units_ranked,
+        goodness_of_fit,
+        closed_form_agrees,
+        learning_curve,
+        calibration,
+        seconds: t0.elapsed().as_secs_f64(),
+    };
+    let unit_figures = v
+        .units_ranked
+        .iter()
+        .enumerate()
+        .filter(|(r, u)| *r < UNIT_FIGURES_MAX || u.cells.iter().any(|c| !c.ks_pass))
+        .filter_map(|(_, u)| unit_figures(u.unit, &full_model, &data, &labels, &rescaled, bw_ms))
+        .collect();
+    Ok((
+        v,
+        Extras {
+            full_model,
+            data,
+            labels,
+            trajectories: traj,
+            rescaled,
+            unit_figures,
+        },
+    ))
+}
+
+/// What cross-validated decoding gives: per decoder and trial the posterior trajectory, the
+/// order-statistics log-likelihood trajectories, window-end confusions, rescaled intervals and
+/// each fold's trials and choices.
+struct CrossValidated {
+    traj: Vec<Vec<Vec<f32>>>,
+    held_ll: Vec<Vec<f64>>,
+    unit_conf: Vec<Vec<u64>>,
+    pop_conf_closed: Vec<u64>,
+    rescaled: Vec<Vec<f64>>,
+    folds: Vec<Fold>,
+}
+
+/// Fits each fold's training trials and decodes its held-out trials with every decoder.
+#[allow(clippy::too_many_arguments)]
+fn cross_validate(
+    data: &Dataset,
+    stimuli: &[String],
+    labels: &[usize],
+    fold_of: &[usize],
+    k: usize,
+    bins: &[Vec<Vec<u32>>],
+    nb: usize,
+    opts: &ValidateOptions,
+    bar: &dyn Progress,
+) -> anyhow::Result<CrossValidated> {
+    let (ns, nu, nt) = (stimuli.len(), data.units.len(), labels.len());
     let mut traj: Vec<Vec<Vec<f32>>> = vec![vec![Vec::new(); nt]; Decoder::ALL.len()];
     let mut rescaled: Vec<Vec<f64>> = vec![Vec::new(); nu * ns];
     // Rescaled time since each cell's last spike, chained across its held-out trials.
@@ -601,152 +958,121 @@ pub fn validate(
             test,
             choice,
         });
-        bar.inc(1);
+        bar.step();
     }
 
-    // Label-shuffle null: labels permuted within each training fold only, cells refitted
-    // (family and bandwidth held at the real fold's choices), held-out trials decoded at the
-    // window end with their true labels.
-    bar.set_message("label-shuffle null");
-    let nulls = shuffle_null(&data, &w, &bins, &labels, &stimuli, &folds, opts, nb, &bar)?;
-    let (pop_null, unit_null) = nulls;
-
-    // Accuracy curves and decisions per decoder.
-    let chance = (0..ns)
-        .map(|s| labels.iter().filter(|&&l| l == s).count())
-        .max()
-        .unwrap_or(0) as f64
-        / nt as f64;
-    let t_of = |b: usize| (b + 1) as f64 * bw_ms;
-    let mut decoders = Vec::new();
-    for (d, dec) in Decoder::ALL.iter().enumerate() {
-        let mut correct = vec![0u64; nb];
-        for (i, tr) in traj[d].iter().enumerate() {
-            for (b, c) in correct.iter_mut().enumerate() {
-                if argmax(&tr[b * ns..(b + 1) * ns]) == labels[i] {
-                    *c += 1;
-                }
-            }
-        }
-        let curve: Vec<CurvePoint> = correct
-            .iter()
-            .enumerate()
-            .map(|(b, &c)| {
-                let (lo, hi) = clopper_pearson(c, nt as u64, 0.05);
-                CurvePoint {
-                    t_ms: t_of(b),
-                    accuracy: c as f64 / nt as f64,
-                    lo,
-                    hi,
-                }
-            })
-            .collect();
-        let lower: Vec<f64> = curve.iter().map(|c| c.lo).collect();
-        let earliest = earliest_reliable(&lower, chance, RELIABLE_RUN_BINS).map(t_of);
-        let thresholds_apply = *dec != Decoder::CountOnly;
-        let point = |th: f64| {
-            let mut times = Vec::with_capacity(nt);
-            let mut conf = vec![0u64; ns * ns];
-            let mut early = 0usize;
-            for (i, tr) in traj[d].iter().enumerate() {
-                let (s, b, by) = decide(tr, ns, th, min_bin, thresholds_apply);
-                conf[labels[i] * ns + s] += 1;
-                times.push(t_of(b));
-                early += by as usize;
-            }
-            let ok: u64 = (0..ns).map(|s| conf[s * ns + s]).sum();
-            let (lo, hi) = clopper_pearson(ok, nt as u64, 0.05);
-            let mut sorted = times.clone();
-            sorted.sort_by(|a, b| a.total_cmp(b));
-            (
-                TradeoffPoint {
-                    threshold: th,
-                    accuracy: ok as f64 / nt as f64,
-                    lo,
-                    hi,
-                    mean_time_ms: times.iter().sum::<f64>() / nt as f64,
-                    median_time_ms: sorted[nt / 2],
-                    early_share: early as f64 / nt as f64,
-                },
-                times,
-                conf,
-            )
-        };
-        let tradeoff = THRESHOLDS.iter().map(|&th| point(th).0).collect();
-        let (decision, decision_times_ms, conf_dec) = point(opts.threshold);
-        let mut conf_end = vec![0u64; ns * ns];
-        for (i, tr) in traj[d].iter().enumerate() {
-            conf_end[labels[i] * ns + argmax(&tr[(nb - 1) * ns..])] += 1;
-        }
-        decoders.push(DecoderReport {
-            decoder: dec.name().to_string(),
-            accuracy_end: curve[nb - 1].clone(),
-            curve,
-            earliest_reliable_ms: earliest,
-            tradeoff,
-            decision,
-            decision_times_ms,
-            confusion_decision: nested(&conf_dec, ns),
-            info_bits: info(&conf_end, ns).2,
-            confusion_end: nested(&conf_end, ns),
-        });
-    }
-    let mut calibration = calibration(
-        &traj[0],
-        &labels,
-        ns,
-        nb,
-        bw_ms,
-        min_bin,
-        opts.threshold,
-        &decoders[0],
-    );
-    bar.set_message("calibration, fitted inside each training fold");
-    calibration.methods = compare_calibrations(
-        &data,
-        &stimuli,
-        &labels,
-        &folds,
+    Ok(CrossValidated {
+        traj,
         held_ll,
-        &full_plan.prior,
-        opts,
-        min_bin,
-        &bar,
-    )?;
-    // The promise is the threshold decisions': judged from the raw posterior's record.
-    if let Some(raw) = calibration.methods.first() {
-        calibration.promises = raw
-            .record
-            .iter()
-            .filter(|e| THRESHOLDS.contains(&e.threshold))
-            .map(|e| {
-                let (accuracy, lo, hi) = e.early_accuracy();
-                Promise {
-                    threshold: e.threshold,
-                    accuracy,
-                    lo,
-                    hi,
-                    kept: e.kept(),
-                }
-            })
-            .collect();
-    }
-    // The observed population figure is the engine's own window-end confusion (order stats);
-    // the closed form used by the null must agree with it.
-    let engine_conf: Vec<u64> = decoders[0].confusion_end.concat();
-    let information = info_report(&engine_conf, ns, pop_null);
-    let closed_form_agrees = engine_conf == pop_conf_closed;
-    if !closed_form_agrees {
-        eprintln!("warning: closed-form window-end decoding differs from the engine's; the shuffle null may not be comparable");
-    }
+        unit_conf,
+        pop_conf_closed,
+        rescaled,
+        folds,
+    })
+}
 
-    // Learning curve: the same folds with training subsampled to n trials per stimulus.
-    bar.set_message("learning curve");
-    let learning_curve = learning_curve(&data, &labels, &fold_of, k, &stimuli, &bins, opts)?;
+/// One decoder's accuracy curve, threshold trade-off, decisions and confusions from its
+/// held-out trajectories.
+#[allow(clippy::too_many_arguments)]
+fn decoder_report(
+    dec: Decoder,
+    traj: &[Vec<f32>],
+    labels: &[usize],
+    ns: usize,
+    nb: usize,
+    bw_ms: f64,
+    min_bin: usize,
+    chance: f64,
+    threshold: f64,
+) -> DecoderReport {
+    let nt = labels.len();
+    let t_of = |b: usize| (b + 1) as f64 * bw_ms;
+    let mut correct = vec![0u64; nb];
+    for (i, tr) in traj.iter().enumerate() {
+        for (b, c) in correct.iter_mut().enumerate() {
+            if argmax(&tr[b * ns..(b + 1) * ns]) == labels[i] {
+                *c += 1;
+            }
+        }
+    }
+    let curve: Vec<CurvePoint> = correct
+        .iter()
+        .enumerate()
+        .map(|(b, &c)| {
+            let (lo, hi) = clopper_pearson(c, nt as u64, 0.05);
+            CurvePoint {
+                t_ms: t_of(b),
+                accuracy: c as f64 / nt as f64,
+                lo,
+                hi,
+            }
+        })
+        .collect();
+    let lower: Vec<f64> = curve.iter().map(|c| c.lo).collect();
+    let earliest = earliest_reliable(&lower, chance, RELIABLE_RUN_BINS).map(t_of);
+    let thresholds_apply = dec != Decoder::CountOnly;
+    let point = |th: f64| {
+        let mut times = Vec::with_capacity(nt);
+        let mut conf = vec![0u64; ns * ns];
+        let mut early = 0usize;
+        for (i, tr) in traj.iter().enumerate() {
+            let (s, b, by) = decide(tr, ns, th, min_bin, thresholds_apply);
+            conf[labels[i] * ns + s] += 1;
+            times.push(t_of(b));
+            early += by as usize;
+        }
+        let ok: u64 = (0..ns).map(|s| conf[s * ns + s]).sum();
+        let (lo, hi) = clopper_pearson(ok, nt as u64, 0.05);
+        let mut sorted = times.clone();
+        sorted.sort_by(|a, b| a.total_cmp(b));
+        (
+            TradeoffPoint {
+                threshold: th,
+                accuracy: ok as f64 / nt as f64,
+                lo,
+                hi,
+                mean_time_ms: times.iter().sum::<f64>() / nt as f64,
+                median_time_ms: sorted[nt / 2],
+                early_share: early as f64 / nt as f64,
+            },
+            times,
+            conf,
+        )
+    };
+    let tradeoff = THRESHOLDS.iter().map(|&th| point(th).0).collect();
+    let (decision, decision_times_ms, conf_dec) = point(threshold);
+    let mut conf_end = vec![0u64; ns * ns];
+    for (i, tr) in traj.iter().enumerate() {
+        conf_end[labels[i] * ns + argmax(&tr[(nb - 1) * ns..])] += 1;
+    }
+    DecoderReport {
+        decoder: dec.name().to_string(),
+        accuracy_end: curve[nb - 1].clone(),
+        curve,
+        earliest_reliable_ms: earliest,
+        tradeoff,
+        decision,
+        decision_times_ms,
+        confusion_decision: nested(&conf_dec, ns),
+        info_bits: info(&conf_end, ns).2,
+        confusion_end: nested(&conf_end, ns),
+    }
+}
 
-    // Units: accuracy, information and its null; cells: count variability, family, fit.
-    let full_cells = crate::fitting::fit_cells(&full_plan, false);
-    let full_model = Arc::new(Model::new(full_plan.assemble(full_cells))?);
+/// Per unit: accuracy, information and its null; per cell: count variability, the family the
+/// full model chose and the time-rescaling test. Ranked by information.
+#[allow(clippy::too_many_arguments)]
+fn unit_reports(
+    data: &Dataset,
+    stimuli: &[String],
+    labels: &[usize],
+    bins: &[Vec<Vec<u32>>],
+    unit_conf: &[Vec<u64>],
+    unit_null: Vec<Vec<f64>>,
+    rescaled: &[Vec<f64>],
+    full_model: &Model,
+) -> (Vec<UnitReport>, FitReport) {
+    let (ns, nu, nt) = (stimuli.len(), data.units.len(), labels.len());
     let mut units_ranked = Vec::with_capacity(nu);
     let mut failed = Vec::new();
     let mut tested = 0;
@@ -793,45 +1119,14 @@ pub fn validate(
         });
     }
     units_ranked.sort_by(|a, b| b.info.bits.total_cmp(&a.info.bits));
-    bar.inc(1);
-    bar.finish_and_clear();
-
-    let v = Validation {
-        source: source.to_string(),
-        trials: nt,
-        units: data.units.clone(),
-        stimuli: stimuli.clone(),
-        bin_ms: bw_ms,
-        window_ms: nb as f64 * bw_ms,
-        folds: k,
-        shuffles: opts.shuffles,
-        seed: opts.seed,
-        chance,
-        threshold: opts.threshold,
-        min_time_ms: opts.min_time_ms,
-        decoders,
-        information,
+    (
         units_ranked,
-        goodness_of_fit: FitReport {
+        FitReport {
             cells_tested: tested,
             cells_failed: failed.len(),
             failed,
         },
-        closed_form_agrees,
-        learning_curve,
-        calibration,
-        seconds: t0.elapsed().as_secs_f64(),
-    };
-    Ok((
-        v,
-        Extras {
-            full_model,
-            data,
-            labels,
-            trajectories: traj,
-            rescaled,
-        },
-    ))
+    )
 }
 
 /// Times after onset (ms) at which the reliability of the posterior is shown, besides the
@@ -947,7 +1242,7 @@ fn compare_calibrations(
     prior: &[f64],
     opts: &ValidateOptions,
     min_bin: usize,
-    bar: &ProgressBar,
+    bar: &dyn Progress,
 ) -> anyhow::Result<Vec<MethodReport>> {
     use auspex_engine::calibrate::{
         fit_factors, held_out_set, mean_log_loss, posterior_into, replay_decision,
@@ -978,7 +1273,7 @@ fn compare_calibrations(
         for (m, method) in methods.iter().enumerate() {
             factors[m].push(fit_factors(*method, &refs, &ln_prior, nb, min_bin));
         }
-        bar.inc(1);
+        bar.step();
     }
     let mut fold_of = vec![0; trials.len()];
     for (fi, f) in folds.iter().enumerate() {
@@ -1181,7 +1476,7 @@ fn shuffle_null(
     folds: &[Fold],
     opts: &ValidateOptions,
     nb: usize,
-    bar: &ProgressBar,
+    bar: &dyn Progress,
 ) -> anyhow::Result<Nulls> {
     let (nu, ns) = (data.units.len(), stimuli.len());
     let prior = vec![1.0 / ns as f64; ns];
@@ -1249,7 +1544,7 @@ fn shuffle_null(
                             break;
                         }
                         mine.push((r, one(r)?));
-                        bar.inc(1);
+                        bar.step();
                     }
                     Ok(mine)
                 })
