@@ -339,6 +339,9 @@ pub const UNIT_FIGURES_MAX: usize = 64;
 /// Trials per stimulus in a unit's raster.
 pub const RASTER_TRIALS: usize = 12;
 
+/// Points of a line, (x, y).
+pub type Curve = Vec<(f64, f64)>;
+
 /// What one unit's report section draws, computed here so the renderer only draws.
 #[derive(Clone, Debug)]
 pub struct UnitFigures {
@@ -349,15 +352,15 @@ pub struct UnitFigures {
     /// PSTH bin edges, ms after onset.
     pub psth_edges: Vec<f64>,
     /// Per stimulus: the PSTH (spikes/s per bin) and the fitted density (ms, spikes/s).
-    pub psth: Vec<(Vec<f64>, Vec<(f64, f64)>)>,
+    pub psth: Vec<(Vec<f64>, Curve)>,
     /// Window counts 0 ..= `count_max` (the last one gathers higher counts).
     pub count_max: usize,
     /// Per stimulus: each count's share of trials and the fitted distribution (count + 0.5,
     /// probability).
-    pub counts: Vec<(Vec<f64>, Vec<(f64, f64)>)>,
+    pub counts: Vec<(Vec<f64>, Curve)>,
     /// Per stimulus: the time-rescaling curve (model quantile, deviation / the cell's 95%
     /// critical value, clamped to ±1.6), None with fewer than 5 intervals.
-    pub ks: Vec<Option<Vec<(f64, f64)>>>,
+    pub ks: Vec<Option<Curve>>,
 }
 
 /// What the pictures need besides the numbers.
@@ -891,7 +894,7 @@ fn cross_validate(
     for f in 0..k {
         let train: Vec<usize> = (0..nt).filter(|&i| fold_of[i] != f).collect();
         let test: Vec<usize> = (0..nt).filter(|&i| fold_of[i] == f).collect();
-        let p = reorder(plan(&subset(&data, &train, None), &opts.fit)?, &stimuli)?;
+        let p = reorder(plan(&subset(data, &train, None), &opts.fit)?, stimuli)?;
         let cells = crate::fitting::fit_cells(&p, false);
         let choice = cells
             .iter()
@@ -903,7 +906,7 @@ fn cross_validate(
             })
             .collect();
         let model = Arc::new(Model::new(p.assemble(cells))?);
-        let test_data = subset(&data, &test, None);
+        let test_data = subset(data, &test, None);
         for (d, dec) in Decoder::ALL.iter().enumerate() {
             let mut sink = TrajSink {
                 index: test_data
@@ -928,8 +931,8 @@ fn cross_validate(
         }
         window_end_confusions(
             &model,
-            &bins,
-            &labels,
+            bins,
+            labels,
             &test,
             &mut pop_conf_closed,
             &mut unit_conf,
