@@ -1,25 +1,20 @@
 //! # auspex (client library)
 //!
-//! The command-line client's jobs as a library so tests can drive them: reading tables,
-//! fitting with progress, offline decoding, export, and the demo. `main.rs` is thin glue.
+//! The command-line client's jobs as a library so tests can drive them, grouped by job:
+//! `offline/` (tables, fit, decode, export, gather), `live/` (replay, monitor, status, the
+//! text-line bridge, the demo), `report/` (validation and its HTML report) and `bench`.
+//! `main.rs` is thin glue.
 #![deny(missing_docs)]
 
 pub mod bench;
-pub mod commands;
-pub mod export;
-pub mod fitting;
-pub mod gather;
 pub mod live;
-pub mod monitor;
 pub mod offline;
-pub mod prequential;
 pub mod report;
-pub mod send;
-pub mod session;
-pub mod status;
-pub mod tables;
-pub mod validate;
-pub mod wire;
+
+// The jobs' modules by their short names (as the commands call them).
+pub use live::{monitor, send, session, status, wire};
+pub use offline::{commands, export, fitting, gather, prequential, tables};
+pub use report::validate;
 
 /// Where the bundled demo data lives (the repository's `demo-data/`).
 pub fn demo_dir() -> std::path::PathBuf {

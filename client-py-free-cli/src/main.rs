@@ -1,7 +1,7 @@
 //! `auspex`: the command-line client. Thin glue over the `auspex` library.
 
 use auspex::commands::{self, DecodeArgs};
-use auspex::live::Pace;
+use auspex::live::{Pace, ReplaySource};
 use auspex::session::View;
 use auspex::tables::Source;
 use auspex_engine::engine::Decoder;
@@ -653,37 +653,12 @@ fn main() {
         Cmd::Daemon { args } => std::process::exit(auspexd::cli::run_cli(*args)),
         Cmd::Replay { session, spikes, trials, to, control, speed, fast, sender, units, only } => runtime().and_then(|rt| {
             rt.block_on(async {
-                let (msgs, rate) = match (session, spikes, trials) {
-                    (Some(p), _, _) => {
-                        let rec = auspex::wire::read_recording(&p)?;
-                        let mut msgs: Vec<v1::Inbound> = rec.messages.into_iter().map(|(_, m)| m).collect();
-                        // One sender name and fresh numbering, so the daemon can acknowledge the end.
-                        msgs.retain(|m| !matches!(m.body, Some(v1::inbound::Body::EndOfStream(_))));
-                        msgs.push(v1::Inbound { body: Some(v1::inbound::Body::EndOfStream(v1::EndOfStream {})), ..Default::default() });
-                        for (i, m) in msgs.iter_mut().enumerate() {
-                            m.sender = sender.clone();
-                            m.seq = i as u64 + 1;
-                        }
-                        (msgs, rec.dataset.tick_rate_hz)
-                    }
-                    (None, Some(sp), Some(tr)) => {
-                        let st = auspex::live::status(&control).await?;
-                        let (data, report) = auspex::tables::read_dataset(&sp, &tr, 1e6, st.bin_width_s * st.n_bins as f64)?;
-                        eprintln!("{report}");
-                        let bt = (st.bin_width_s * 1e6).round() as i64;
-                        let mut msgs = auspex::wire::dataset_messages(&data, &sender, bt, bt * st.n_bins as i64);
-                        // Named after the trial table, so replays of one session's tables by
-                        // several senders (a shard deployment's) announce the same session.
-                        let name = tr.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
-                        for m in &mut msgs {
-                            if let Some(v1::inbound::Body::SessionStart(ss)) = m.body.as_mut() {
-                                ss.session_name = name.clone();
-                            }
-                        }
-                        (msgs, 1e6)
-                    }
+                let source = match (session, spikes, trials) {
+                    (Some(p), _, _) => ReplaySource::Session(p),
+                    (None, Some(spikes), Some(trials)) => ReplaySource::Tables { spikes, trials },
                     _ => anyhow::bail!("give --session FILE, or --spikes and --trials"),
                 };
+                let (msgs, rate) = auspex::live::replay_messages(&source, &control, &sender).await?;
                 let units = units.as_deref().map(auspex::wire::parse_unit_ranges).transpose()?;
                 let msgs = auspex::wire::select_messages(msgs, units.as_ref(), only.as_deref(), &sender);
                 let pace = if fast { Pace::Max } else { Pace::Speed(speed) };
@@ -714,48 +689,18 @@ fn main() {
             Ok(())
         })),
         Cmd::Steer { control, what } => runtime().and_then(|rt| rt.block_on(async {
+            use auspex::live::steer;
             use v1::control_request::Body as B;
             let body = match what {
-                Steer::Policy { threshold, min_time_ms, target_accuracy } => {
-                    if threshold.is_none() && min_time_ms.is_none() && target_accuracy.is_none() {
-                        anyhow::bail!("give --threshold, --min-time-ms (or both), or --target-accuracy");
-                    }
-                    // The request sets both: fill in what was not given from the daemon's status.
-                    let st = auspex::live::status(&control).await?;
-                    B::SetPolicy(v1::SetPolicy {
-                        threshold: threshold.unwrap_or(st.threshold),
-                        min_time_s: min_time_ms.map(|m| m / 1000.0).unwrap_or(st.min_time_s),
-                        target_accuracy: target_accuracy.unwrap_or(0.0),
-                    })
-                }
+                Steer::Policy { threshold, min_time_ms, target_accuracy } => steer::policy(&control, threshold, min_time_ms, target_accuracy).await?,
                 Steer::Prior { prior } => B::SetPrior(v1::SetPrior { prior: if prior == "model" { vec![] } else { parse_prior(&prior).map_err(|e| anyhow::anyhow!(e))? } }),
                 Steer::Decoder { decoder } => B::SetDecoder(v1::SetDecoder { decoder }),
-                Steer::Reload { model } => B::Reload(v1::ReloadModel { path: std::fs::canonicalize(&model).unwrap_or(model).display().to_string() }),
+                Steer::Reload { model } => steer::reload(&model),
                 Steer::Next { policy } => B::NextStimulus(v1::NextStimulus { policy }),
                 Steer::Learn { action } => B::SetLearning(v1::SetLearning { action }),
-                Steer::SaveLearned { path } => {
-                    // The daemon writes the file: give it an absolute path.
-                    let abs = if path.is_absolute() { path } else { std::env::current_dir()?.join(path) };
-                    B::SaveLearned(v1::SaveLearned { path: abs.display().to_string() })
-                }
+                Steer::SaveLearned { path } => steer::save_learned(&path)?,
             };
-            let wait = if matches!(body, B::SaveLearned(_)) { 600 } else { 5 };
-            let r = auspex::live::control(&control, body, std::time::Duration::from_secs(wait)).await?;
-            if !r.note.is_empty() {
-                println!("{}", r.note);
-                return Ok(());
-            }
-            match r.body {
-                Some(v1::control_reply::Body::Next(n)) => println!("{}", n.stimulus),
-                Some(v1::control_reply::Body::Status(s)) => {
-                    println!("ok: decoder {}, threshold {}, minimum {} ms, model {}", s.decoder, s.threshold, s.min_time_s * 1000.0, s.model_path);
-                    for l in auspex::monitor::promise_lines(&s) {
-                        println!("{l}");
-                    }
-                }
-                None => println!("ok"),
-            }
-            Ok(())
+            steer::send(&control, body).await
         })),
         Cmd::Monitor { from, control, plain, json } => runtime().and_then(|rt| rt.block_on(async {
             let view = if json { View::Json } else if plain { View::Lines } else { View::auto() };

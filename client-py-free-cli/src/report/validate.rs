@@ -1,7 +1,7 @@
 //! `validate`: cross-validated accuracy against time for every decoder, decisions across
 //! thresholds, mutual information with a label-shuffle null, per-unit accuracy and information,
 //! count variability, and the time-rescaling goodness of fit — the numbers behind the HTML
-//! report (`report.rs`) and the JSON summary. Every decoding here runs the same engine as the
+//! report (`html.rs`) and the JSON summary. Every decoding here runs the same engine as the
 //! daemon; the shuffle null uses the engine's window-end likelihood in closed form.
 
 use crate::offline::run_dataset;

@@ -138,3 +138,64 @@ pub async fn replay(
     drop(push);
     Ok(t0.elapsed())
 }
+
+/// What `auspex replay` sends: a recorded session, or spike and trial tables.
+pub enum ReplaySource {
+    /// A session recording (.apxs).
+    Session(std::path::PathBuf),
+    /// Spike and trial tables (CSV); times are read at 1 µs ticks and windows sized from the
+    /// daemon's model.
+    Tables {
+        /// Spike table.
+        spikes: std::path::PathBuf,
+        /// Trial table.
+        trials: std::path::PathBuf,
+    },
+}
+
+/// The messages a replay sends as `sender` (fresh numbering, one end of stream last), and
+/// their clock rate. Tables are windowed with the daemon's model (asked on `control`), and
+/// their session is named after the trial table, so replays of one session's tables by several
+/// senders (a shard deployment's) announce the same session.
+pub async fn replay_messages(
+    source: &ReplaySource,
+    control: &str,
+    sender: &str,
+) -> anyhow::Result<(Vec<v1::Inbound>, f64)> {
+    use v1::inbound::Body;
+    match source {
+        ReplaySource::Session(p) => {
+            let rec = crate::wire::read_recording(p)?;
+            let mut msgs: Vec<v1::Inbound> = rec.messages.into_iter().map(|(_, m)| m).collect();
+            // One sender name and fresh numbering, so the daemon can acknowledge the end.
+            msgs.retain(|m| !matches!(m.body, Some(Body::EndOfStream(_))));
+            msgs.push(v1::Inbound {
+                body: Some(Body::EndOfStream(v1::EndOfStream {})),
+                ..Default::default()
+            });
+            for (i, m) in msgs.iter_mut().enumerate() {
+                m.sender = sender.to_string();
+                m.seq = i as u64 + 1;
+            }
+            Ok((msgs, rec.dataset.tick_rate_hz))
+        }
+        ReplaySource::Tables { spikes, trials } => {
+            let st = status(control).await?;
+            let window_s = st.bin_width_s * st.n_bins as f64;
+            let (data, report) = crate::tables::read_dataset(spikes, trials, 1e6, window_s)?;
+            eprintln!("{report}");
+            let bt = (st.bin_width_s * 1e6).round() as i64;
+            let mut msgs = crate::wire::dataset_messages(&data, sender, bt, bt * st.n_bins as i64);
+            let name = trials
+                .file_stem()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_default();
+            for m in &mut msgs {
+                if let Some(Body::SessionStart(ss)) = m.body.as_mut() {
+                    ss.session_name = name.clone();
+                }
+            }
+            Ok((msgs, 1e6))
+        }
+    }
+}
