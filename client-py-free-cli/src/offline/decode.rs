@@ -1,10 +1,8 @@
 //! Offline decoding: runs a dataset through the very engine the daemon uses, batch by batch in
 //! acquisition order, and writes `posteriors.csv` and `decisions.csv`.
 
-use auspex_engine::data::{Dataset, Event};
-use auspex_engine::engine::{
-    Counters, Decision, Engine, EngineConfig, EngineSink, Frame, TrialEnd,
-};
+use auspex_engine::data::Dataset;
+use auspex_engine::engine::{Counters, Decision, EngineConfig, EngineSink, Frame, TrialEnd};
 use auspex_engine::{LookupBudget, Model};
 use std::collections::HashMap;
 use std::io::Write;
@@ -29,32 +27,12 @@ pub fn run_dataset(
     cfg: EngineConfig,
     sink: &mut dyn EngineSink,
 ) -> anyhow::Result<Counters> {
-    let mut e = Engine::new(model.clone().prepare(LookupBudget::DEFAULT), cfg)?;
-    let bt = e.bin_ticks();
-    let window = bt * model.n_bins() as i64;
-    for ev in data.events(bt, window) {
-        match ev {
-            Event::Open {
-                trial,
-                onset,
-                stimulus,
-            } => {
-                let idx = stimulus
-                    .as_deref()
-                    .and_then(|s| model.stimulus_index(s))
-                    .map(|i| i as u32);
-                // Refusals are counted by the engine; offline input is already validated.
-                let _ = e.open_trial(trial, onset, idx, sink);
-            }
-            Event::Batch { spikes, watermark } => {
-                for (tick, unit) in spikes {
-                    let _ = e.spike(unit, tick);
-                }
-                e.advance(watermark, sink)?;
-            }
-        }
-    }
-    Ok(e.counters().clone())
+    Ok(auspex_engine::engine::run_dataset(
+        model.prepare(LookupBudget::DEFAULT),
+        data,
+        cfg,
+        sink,
+    )?)
 }
 
 /// Collects decisions and streams posterior rows to a writer.

@@ -4,7 +4,8 @@
 //! report (`html.rs`) and the JSON summary. Every decoding here runs the same engine as the
 //! daemon; the shuffle null uses the engine's window-end likelihood in closed form.
 
-use crate::offline::run_dataset;
+use auspex_engine::engine::run_dataset;
+use auspex_engine::LookupBudget;
 use auspex_engine::data::Dataset;
 use auspex_engine::engine::{Decoder, EngineConfig, EngineSink, Frame};
 use auspex_engine::fit::{plan, CellInput, FitOptions, FitPlan};
@@ -905,7 +906,8 @@ fn cross_validate(
                 )
             })
             .collect();
-        let model = Arc::new(Model::new(p.assemble(cells))?);
+        // Prepared once for the three decoders (the default budget, as offline decoding's).
+        let model = Arc::new(Model::new(p.assemble(cells))?).prepare(LookupBudget::DEFAULT);
         let test_data = subset(data, &test, None);
         for (d, dec) in Decoder::ALL.iter().enumerate() {
             let mut sink = TrajSink {
