@@ -184,7 +184,7 @@ pub async fn replay_messages(
             let window_s = st.bin_width_s * st.n_bins as f64;
             let (data, report) = crate::tables::read_dataset(spikes, trials, 1e6, window_s)?;
             eprintln!("{report}");
-            let bt = (st.bin_width_s * 1e6).round() as i64;
+            let bt = auspex_engine::ticks::bin_ticks(st.bin_width_s, 1e6)?;
             let mut msgs = crate::wire::dataset_messages(&data, sender, bt, bt * st.n_bins as i64);
             let name = trials
                 .file_stem()

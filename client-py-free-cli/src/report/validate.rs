@@ -4,9 +4,8 @@
 //! report (`html.rs`) and the JSON summary. Every decoding here runs the same engine as the
 //! daemon; the shuffle null uses the engine's window-end likelihood in closed form.
 
-use auspex_engine::engine::run_dataset;
-use auspex_engine::LookupBudget;
 use auspex_engine::data::Dataset;
+use auspex_engine::engine::run_dataset;
 use auspex_engine::engine::{Decoder, EngineConfig, EngineSink, Frame};
 use auspex_engine::fit::{plan, CellInput, FitOptions, FitPlan};
 use auspex_engine::model::{CellSpec, Model};
@@ -18,6 +17,7 @@ use auspex_engine::validation::{
     rescaled_intervals, stratified_folds,
 };
 use auspex_engine::CountFamily;
+use auspex_engine::LookupBudget;
 use rand::seq::SliceRandom;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -403,11 +403,11 @@ fn unit_figures(
     labels: &[usize],
     rescaled: &[Vec<f64>],
     bw_ms: f64,
+    bin_ticks: i64,
 ) -> Option<UnitFigures> {
     let u = model.unit_index(unit)?;
     let (ns, nb) = (model.n_stimuli(), model.n_bins());
     let window_ms = nb as f64 * bw_ms;
-    let bin_ticks = (bw_ms / 1000.0 * data.tick_rate_hz).round() as i64;
     let w = data.windows(&[unit], bin_ticks, nb);
     let of = |st: usize| (0..labels.len()).filter(move |&i| labels[i] == st);
     let times_ms = |i: usize| w.times[0][i].iter().map(|t| t * bw_ms);
@@ -842,7 +842,17 @@ pub fn validate_with(
         .iter()
         .enumerate()
         .filter(|(r, u)| *r < UNIT_FIGURES_MAX || u.cells.iter().any(|c| !c.ks_pass))
-        .filter_map(|(_, u)| unit_figures(u.unit, &full_model, &data, &labels, &rescaled, bw_ms))
+        .filter_map(|(_, u)| {
+            unit_figures(
+                u.unit,
+                &full_model,
+                &data,
+                &labels,
+                &rescaled,
+                bw_ms,
+                full_plan.bin_ticks,
+            )
+        })
         .collect();
     Ok((
         v,
