@@ -446,7 +446,7 @@ async fn start_link(
     match &cfg.deployment {
         Deployment::Whole => Ok((Link::None, None)),
         Deployment::Shard { part, parts, link } => {
-            let mut s = zeromq::DealerSocket::new();
+            let mut s = zeromq::RouterSocket::new();
             let ep = s.bind(link).await.map_err(bind_error("link", link))?;
             let units = m.part_units(*part, *parts);
             let ids = m.units();

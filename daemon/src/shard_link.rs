@@ -1,9 +1,14 @@
-//! The link between a shard and its combiner (`auspexd --role shard` / `--role combine`): one
-//! DEALER socket pair per shard, the shard binding its link endpoint and the combiner
-//! connecting. Messages are `ShardLink` frames (wire.proto): the combiner greets with the model
-//! it loaded, the shard answers with its own, the combiner relays the trial messages it applies
-//! (in its order) and the shard returns one partial per trial and completed bin, plus a beat
-//! every [`BEAT`] so silence can be told from a quiet session.
+//! The link between a shard and its combiner (`auspexd --role shard` / `--role combine`): the
+//! shard binds a ROUTER socket on its link endpoint and the combiner connects a DEALER.
+//! Messages are `ShardLink` frames (wire.proto): the combiner greets with the model it loaded,
+//! the shard answers with its own, the combiner relays the trial messages it applies (in its
+//! order) and the shard returns one partial per trial and completed bin; both sides beat every
+//! [`BEAT`] so silence can be told from a quiet session.
+//!
+//! A shard serves one combiner: the first to greet. Another combiner's greeting is answered
+//! with `ShardBusy` (its status then says why the shard is not joined) until the first has been
+//! silent for [`COMBINER_SILENCE`] or has gone, so a restarted combiner takes over within
+//! seconds and two combiners never split one shard's partials between them.
 //!
 //! The combiner's side of each shard is one task: it connects (and reconnects), checks the
 //! greeting, forwards partials to the engine thread, and declares the shard lost when nothing
@@ -28,6 +33,11 @@ use zeromq::{Socket, SocketRecv, SocketSend, ZmqMessage};
 
 /// How often a shard says it is alive when it has nothing else to send.
 pub const BEAT: Duration = Duration::from_millis(100);
+/// A shard forgets its combiner after this long without a word from it (it beats every
+/// [`BEAT`]), and then serves the next one that greets.
+pub const COMBINER_SILENCE: Duration = Duration::from_secs(2);
+/// How long a refused combiner waits before it greets the shard again.
+const BUSY_RETRY: Duration = Duration::from_secs(1);
 /// Longest a send to the other side may wait (a full queue to a peer that has stopped reading).
 const SEND_WAIT: Duration = Duration::from_millis(200);
 
@@ -65,13 +75,12 @@ pub fn partial_msg(p: &Partial<'_>) -> Vec<u8> {
     .encode_to_vec()
 }
 
+fn link_bytes(body: shard_link::Body) -> Vec<u8> {
+    v1::ShardLink { body: Some(body) }.encode_to_vec()
+}
+
 fn frame(body: shard_link::Body) -> ZmqMessage {
-    ZmqMessage::from(
-        v1::ShardLink { body: Some(body) }
-            .encode_to_vec()
-            .into_iter()
-            .collect::<Vec<u8>>(),
-    )
+    ZmqMessage::from(link_bytes(body))
 }
 
 fn decode(m: ZmqMessage) -> Option<shard_link::Body> {
@@ -85,11 +94,11 @@ pub fn mono_ns() -> i64 {
     START.get_or_init(Instant::now).elapsed().as_nanos() as i64
 }
 
-/// The shard's side: answers greetings, hands relayed messages to the engine thread, sends the
-/// engine thread's partials (`out`) and a beat every [`BEAT`]. Partials that find no combiner
-/// connected are counted in `unsent`.
+/// The shard's side: answers its combiner's greeting (and refuses any other combiner's), hands
+/// relayed messages to the engine thread, sends the engine thread's partials (`out`) and a beat
+/// every [`BEAT`] to its combiner. Partials that find no combiner are counted in `unsent`.
 pub async fn run_shard_link(
-    sock: zeromq::DealerSocket,
+    sock: zeromq::RouterSocket,
     hello: v1::ShardHello,
     engine_tx: Sender<EngineInput>,
     mut out: mpsc::Receiver<Vec<u8>>,
@@ -99,32 +108,72 @@ pub async fn run_shard_link(
     let (mut tx, mut rx) = sock.split();
     let mut beat = tokio::time::interval(BEAT);
     beat.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
+    // The combiner served: its identity on this socket and when it was last heard.
+    let mut combiner: Option<(bytes::Bytes, Instant)> = None;
+    // A refused combiner retries every second: it is logged once per combiner served.
+    let mut refusal_logged = false;
+    let to = |id: &bytes::Bytes, payload: Vec<u8>| {
+        let mut m = ZmqMessage::from(id.clone());
+        m.push_back(payload.into());
+        m
+    };
     loop {
         tokio::select! {
             _ = stop.changed() => break,
-            m = rx.recv() => match m {
-                Err(_) => {
+            m = rx.recv() => {
+                let Ok(m) = m else {
                     // No combiner connected to read from.
                     tokio::time::sleep(Duration::from_millis(10)).await;
-                }
-                Ok(m) => match decode(m) {
-                Some(shard_link::Body::Hello(h)) => {
-                    tracing::info!(combiner_model_crc32 = format!("{:08x}", h.model_crc32), "combiner connected");
-                    let _ = tokio::time::timeout(SEND_WAIT, tx.send(frame(shard_link::Body::Hello(hello.clone())))).await;
-                }
-                Some(shard_link::Body::Relay(r)) => {
-                    let item = EngineInput::Relay { bytes: r.inbound.into(), decoder: r.decoder, received_ns: crate::ingest::now_ns() };
-                    if !forward(&engine_tx, item).await {
-                        break;
+                    continue;
+                };
+                let Some(id) = m.get(0).cloned() else { continue };
+                let body = decode(m);
+                let ours = combiner.as_ref().is_some_and(|(c, _)| *c == id);
+                match body {
+                    Some(shard_link::Body::Hello(h)) => {
+                        let free = combiner.as_ref().is_none_or(|(_, heard)| heard.elapsed() > COMBINER_SILENCE);
+                        if ours || free {
+                            if !ours {
+                                refusal_logged = false;
+                                tracing::info!(combiner_model_crc32 = format!("{:08x}", h.model_crc32), "combiner connected");
+                            }
+                            combiner = Some((id.clone(), Instant::now()));
+                            let reply = to(&id, link_bytes(shard_link::Body::Hello(hello.clone())));
+                            let _ = tokio::time::timeout(SEND_WAIT, tx.send(reply)).await;
+                        } else {
+                            if !refusal_logged {
+                                refusal_logged = true;
+                                tracing::warn!("a second combiner greeted this shard; refused (a shard serves one combiner; its greetings are refused quietly from now on)");
+                            }
+                            let why = format!(
+                                "part {} of {} already serves another combiner (a shard serves one; it takes a new one {} s after the first falls silent)",
+                                hello.part, hello.parts, COMBINER_SILENCE.as_secs()
+                            );
+                            let reply = to(&id, link_bytes(shard_link::Body::Busy(v1::ShardBusy { reason: why })));
+                            let _ = tokio::time::timeout(SEND_WAIT, tx.send(reply)).await;
+                        }
+                    }
+                    Some(shard_link::Body::Relay(r)) if ours => {
+                        combiner = Some((id, Instant::now()));
+                        let item = EngineInput::Relay { bytes: r.inbound.into(), decoder: r.decoder, received_ns: crate::ingest::now_ns() };
+                        if !forward(&engine_tx, item).await {
+                            break;
+                        }
+                    }
+                    Some(shard_link::Body::Beat(_)) if ours => combiner = Some((id, Instant::now())),
+                    // A refused combiner's relays and beats, until it greets again.
+                    Some(shard_link::Body::Relay(_) | shard_link::Body::Beat(_)) => {}
+                    Some(_) | None => {
+                        tracing::warn!("link: a message that is neither a greeting, a relay nor a beat; ignored");
                     }
                 }
-                Some(_) | None => {
-                    tracing::warn!("link: a message that is neither a greeting nor a relay; ignored");
-                }
-            }},
+            },
             p = out.recv() => match p {
                 Some(bytes) => {
-                    let sent = tokio::time::timeout(SEND_WAIT, tx.send(ZmqMessage::from(bytes))).await;
+                    let sent = match &combiner {
+                        Some((id, _)) => tokio::time::timeout(SEND_WAIT, tx.send(to(id, bytes))).await,
+                        None => Ok(Err(zeromq::ZmqError::NoMessage)),
+                    };
                     if !matches!(sent, Ok(Ok(()))) {
                         unsent.fetch_add(1, Ordering::Relaxed);
                     }
@@ -132,7 +181,14 @@ pub async fn run_shard_link(
                 None => break,
             },
             _ = beat.tick() => {
-                let _ = tokio::time::timeout(SEND_WAIT, tx.send(frame(shard_link::Body::Beat(v1::ShardBeat {})))).await;
+                if let Some((id, heard)) = &combiner {
+                    if heard.elapsed() > COMBINER_SILENCE {
+                        tracing::warn!("the combiner has been silent for {} s; waiting for one to greet", COMBINER_SILENCE.as_secs());
+                        combiner = None;
+                    } else {
+                        let _ = tokio::time::timeout(SEND_WAIT, tx.send(to(id, link_bytes(shard_link::Body::Beat(v1::ShardBeat {}))))).await;
+                    }
+                }
             }
         }
     }
@@ -210,6 +266,8 @@ pub async fn run_combiner_link(
         .await;
         let mut joined = false;
         let mut check = tokio::time::interval(Duration::from_millis(20));
+        let mut beat = tokio::time::interval(BEAT);
+        beat.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
         loop {
             tokio::select! {
                 _ = stop.changed() => return,
@@ -248,6 +306,18 @@ pub async fn run_combiner_link(
                                 }
                             }
                         }
+                        shard_link::Body::Busy(b) => {
+                            // Said once; the greeting is retried every second in silence.
+                            if !declared_lost {
+                                tracing::error!(part, endpoint = %endpoint, "shard refused this combiner: {}", b.reason);
+                                declared_lost = true;
+                                if !forward(&engine_tx, lost(b.reason)).await { return; }
+                            }
+                            tokio::select! {
+                                _ = stop.changed() => return,
+                                _ = tokio::time::sleep(BUSY_RETRY) => continue 'connect,
+                            }
+                        }
                         shard_link::Body::Partial(p) if joined => {
                             let ev = EngineInput::FromShard(ShardEvent::Partial { part, partial: auspex_proto::convert::partial_from_msg(p) });
                             if !forward(&engine_tx, ev).await { return; }
@@ -264,6 +334,9 @@ pub async fn run_combiner_link(
                     }
                     None => return,
                 },
+                _ = beat.tick() => {
+                        let _ = tokio::time::timeout(SEND_WAIT, tx.send(frame(shard_link::Body::Beat(v1::ShardBeat {})))).await;
+                }
                 _ = check.tick() => {
                     let silent = mono_ns() - last_ns.load(Ordering::Relaxed);
                     if silent > deadline.as_nanos() as i64 {

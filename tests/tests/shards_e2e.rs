@@ -516,3 +516,46 @@ fn a_stopped_shard_is_named_in_every_frame_and_rejoins_at_the_next_trial() {
         );
     }
 }
+
+/// A shard serves one combiner: a second combiner pointed at the same shards is refused (its
+/// status says why, the first keeps both shards), and takes them over once the first is gone.
+#[test]
+fn a_second_combiner_is_refused_until_the_first_is_gone() {
+    let _serial = serial();
+    let f = fixture(1);
+    let rt = runtime();
+    let ctx = zmq::Context::new();
+    let (shards, links, first) = deploy(&rt, &f, &ctx, 5000.0);
+    let second = combiner(&rt, &f, &links, 5000.0);
+    let (c1, c2) = (
+        first.endpoints.control.clone(),
+        second.endpoints.control.clone(),
+    );
+    wait_for(
+        || {
+            status(&ctx, &c2)
+                .shards
+                .iter()
+                .all(|s| !s.joined && s.note.contains("already serves another combiner"))
+        },
+        "the second combiner to be refused by both shards",
+    );
+    // The first keeps its shards across many beats (and the second's retries).
+    for _ in 0..15 {
+        assert_eq!(
+            joined(&ctx, &c1),
+            [true, true],
+            "the first combiner keeps both shards"
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    rt.block_on(first.stop());
+    wait_for(
+        || joined(&ctx, &c2) == [true, true],
+        "the second combiner to take the shards over",
+    );
+    rt.block_on(second.stop());
+    for s in shards {
+        rt.block_on(s.stop());
+    }
+}
