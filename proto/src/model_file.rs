@@ -115,20 +115,47 @@ pub fn spec_to_proto(spec: &ModelSpec, training_data: &str) -> v1::ModelFile {
 }
 
 /// File message → spec (shape checks happen when the engine builds the `Model`).
-pub fn spec_from_proto(m: &v1::ModelFile) -> Result<ModelSpec, String> {
+/// A model file's contents that name something this version does not know.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+pub enum SpecError {
+    /// A cell's count family is not one of ours.
+    #[error("cell {cell} (unit index {unit}, stimulus index {stimulus}): unknown count family {family}")]
+    UnknownFamily {
+        /// Cell index (unit-major).
+        cell: usize,
+        /// Unit index.
+        unit: usize,
+        /// Stimulus index.
+        stimulus: usize,
+        /// The family number found.
+        family: i32,
+    },
+    /// The calibration method is not one of ours.
+    #[error("unknown calibration method {0}")]
+    UnknownCalibration(i32),
+}
+
+/// The engine's model spec from a model file's message (checked further by `Model::new`).
+impl TryFrom<&v1::ModelFile> for ModelSpec {
+    type Error = SpecError;
+    fn try_from(m: &v1::ModelFile) -> Result<Self, SpecError> {
+        spec_from_proto(m)
+    }
+}
+
+/// The engine's model spec from a model file's message (see the `TryFrom` conversion).
+pub fn spec_from_proto(m: &v1::ModelFile) -> Result<ModelSpec, SpecError> {
     let ns = m.stimuli.len().max(1);
     let cells = m
         .cells
         .iter()
         .enumerate()
         .map(|(i, c)| {
-            let fam = family_from_proto(c.family).ok_or_else(|| {
-                format!(
-                    "cell {i} (unit index {}, stimulus index {}): unknown count family {}",
-                    i / ns,
-                    i % ns,
-                    c.family
-                )
+            let fam = family_from_proto(c.family).ok_or(SpecError::UnknownFamily {
+                cell: i,
+                unit: i / ns,
+                stimulus: i % ns,
+                family: c.family,
             })?;
             let count = match fam {
                 CountFamily::Poisson => CountParams::Poisson { mean: c.mean },
@@ -163,7 +190,7 @@ pub fn spec_from_proto(m: &v1::ModelFile) -> Result<ModelSpec, String> {
                 },
             })
         })
-        .collect::<Result<Vec<_>, String>>()?;
+        .collect::<Result<Vec<_>, SpecError>>()?;
     Ok(ModelSpec {
         bin_width_s: m.bin_width_s,
         n_bins: m.n_bins,
@@ -211,7 +238,7 @@ fn calibration_to_proto(c: &Calibration) -> Option<v1::Calibration> {
     })
 }
 
-fn calibration_from_proto(c: Option<&v1::Calibration>) -> Result<Calibration, String> {
+fn calibration_from_proto(c: Option<&v1::Calibration>) -> Result<Calibration, SpecError> {
     let Some(c) = c else {
         return Ok(Calibration::default());
     };
@@ -220,7 +247,7 @@ fn calibration_from_proto(c: Option<&v1::Calibration>) -> Result<Calibration, St
         Ok(v1::CalibrationMethod::Temperature) => CalibrationMethod::Temperature,
         Ok(v1::CalibrationMethod::BandedTemperature) => CalibrationMethod::BandedTemperature,
         Ok(v1::CalibrationMethod::TemperatureFloor) => CalibrationMethod::TemperatureFloor,
-        Err(_) => return Err(format!("unknown calibration method {}", c.method)),
+        Err(_) => return Err(SpecError::UnknownCalibration(c.method)),
     };
     Ok(Calibration {
         method,
@@ -286,9 +313,9 @@ pub fn load_model(path: &Path) -> Result<(ModelSpec, auspex_engine::Model), Mode
         },
         cause: e,
     })?;
-    let spec = spec_from_proto(&m).map_err(|msg| ModelLoadError::Invalid {
+    let spec = ModelSpec::try_from(&m).map_err(|e| ModelLoadError::Invalid {
         path: p.clone(),
-        msg,
+        msg: e.to_string(),
     })?;
     let model = auspex_engine::Model::new(spec.clone()).map_err(|e| ModelLoadError::Invalid {
         path: p,
