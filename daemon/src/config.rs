@@ -321,11 +321,10 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
                 deployment.name()
             )));
         }
-        if f.threads.is_some_and(|t| t > 1) {
-            return Err(ConfigError::Invalid(format!(
-                "--threads is for a whole daemon; a {} runs one engine thread (add shards to use more machines)",
-                deployment.name()
-            )));
+        if f.threads.is_some_and(|t| t > 1) && matches!(deployment, Deployment::Combine { .. }) {
+            return Err(ConfigError::Invalid(
+                "--threads is for a whole daemon or a shard; a combiner runs one engine thread (it only adds the shards' partials)".to_string(),
+            ));
         }
     }
     let learn = if deployment == Deployment::Whole {
@@ -669,6 +668,16 @@ mod tests {
                 link: defaults::LINK.into()
             }
         );
+        // A shard may use several engine threads (slices of its part); a combiner may not.
+        let threaded = with(FileConfig {
+            role: Some("shard".into()),
+            part: Some(0),
+            parts: Some(2),
+            threads: Some(3),
+            ..base.clone()
+        })
+        .unwrap();
+        assert_eq!(threaded.threads, 3);
         let refused = |f: FileConfig, says: &str| {
             let e = with(f).unwrap_err().to_string();
             assert!(e.contains(says), "{e}");

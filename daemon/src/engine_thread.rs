@@ -20,7 +20,7 @@ use crate::shard_link::{Link, ShardEvent};
 use crate::workers::{OwnedPartial, Workers};
 use auspex_engine::assess::{assess, peak_ms, tuning, VerdictRule};
 use auspex_engine::engine::{
-    Counters, Decision, DecisionReason, Engine, EngineConfig, EngineError, EngineSink, Frame,
+    Counters, Decision, DecisionReason, Engine, EngineConfig, EngineError, EngineSink, Frame, Role,
     TrialEnd, TrialOutcome, UnitSummaries,
 };
 use auspex_engine::learn::{LearnOptions, TrialWindow, WindowCollector};
@@ -338,10 +338,18 @@ impl EngineThread {
         t.config.policy = t
             .promise
             .model_changed(t.model.as_deref().map(|m| &**m), &t.config);
-        t.config.role = t
-            .link
-            .role()
-            .unwrap_or(crate::workers::combiner_role(s.threads));
+        t.config.role = match t.link.role() {
+            // A shard on several threads: each computes a slice of its part, and every slice's
+            // partials go to the combiner.
+            Some(Role::Shard { part, parts }) if s.threads > 1 => Role::ShardSlice {
+                part,
+                parts,
+                slice: 0,
+                slices: s.threads,
+            },
+            Some(r) => r,
+            None => crate::workers::combiner_role(s.threads),
+        };
         t.workers = Workers::start(s.threads)
             .map_err(|e| EngineError::Config(format!("cannot start engine threads: {e}")))?;
         if let (Some(r), Some(m)) = (t.tick_rate, t.model.clone()) {
@@ -465,7 +473,11 @@ impl EngineThread {
 
     /// Adds a worker's partials to the combiner (its frames, decisions and trial ends follow).
     fn take_partial(&mut self, p: OwnedPartial) {
-        if let Some(e) = self.engine.as_mut() {
+        if matches!(self.config.role, Role::ShardSlice { .. }) {
+            // A shard's threads: every slice's partials go to the combiner as they are.
+            let mut sink = pub_sink!(self);
+            sink.partial(&p.as_partial());
+        } else if let Some(e) = self.engine.as_mut() {
             let mut sink = pub_sink!(self);
             // A partial of a trial already closed (session end, shutdown) is counted by the
             // engine as stray; nothing else can go wrong with the workers' own output.

@@ -225,9 +225,21 @@ fn next(rx: &Receiver<WorkerMsg>) -> Option<WorkerMsg> {
 /// How long a worker spins for its next message before it parks.
 const SPIN: std::time::Duration = std::time::Duration::from_micros(50);
 
+/// Worker `part` of `parts`' configuration: the engine thread's, with the worker's role — part
+/// `part` of the blocks beside a combiner, or slice `part` of a shard daemon's part.
 fn shard_config(c: &EngineConfig, part: u32, parts: u32) -> EngineConfig {
     let mut c = c.clone();
-    c.role = Role::Shard { part, parts };
+    c.role = match c.role {
+        Role::ShardSlice {
+            part: p, parts: pp, ..
+        } => Role::ShardSlice {
+            part: p,
+            parts: pp,
+            slice: part,
+            slices: parts,
+        },
+        _ => Role::Shard { part, parts },
+    };
     c
 }
 

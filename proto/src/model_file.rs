@@ -119,7 +119,9 @@ pub fn spec_to_proto(spec: &ModelSpec, training_data: &str) -> v1::ModelFile {
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
 pub enum SpecError {
     /// A cell's count family is not one of ours.
-    #[error("cell {cell} (unit index {unit}, stimulus index {stimulus}): unknown count family {family}")]
+    #[error(
+        "cell {cell} (unit index {unit}, stimulus index {stimulus}): unknown count family {family}"
+    )]
     UnknownFamily {
         /// Cell index (unit-major).
         cell: usize,

@@ -78,12 +78,24 @@ fn file_config(f: &Fixture) -> FileConfig {
 }
 
 fn shard(rt: &tokio::runtime::Runtime, f: &Fixture, part: u32, link: &str) -> Running {
+    shard_on(rt, f, part, link, 1)
+}
+
+/// A shard on `threads` engine threads (each computes a slice of its part).
+fn shard_on(
+    rt: &tokio::runtime::Runtime,
+    f: &Fixture,
+    part: u32,
+    link: &str,
+    threads: u32,
+) -> Running {
     let mut c = validate(
         FileConfig {
             role: Some("shard".into()),
             part: Some(part),
             parts: Some(2),
             link: Some(link.into()),
+            threads: Some(threads),
             record: Some(f.dir.path().join(format!("shard{part}.apxs"))),
             ..file_config(f)
         },
@@ -254,17 +266,18 @@ fn send(ctx: &zmq::Context, socks: &[zmq::Socket], control: &str, dest: usize, m
     }
 }
 
-/// Two shards on free ports and a combiner connected to them, once both have joined:
-/// (shards, their link endpoints, combiner).
+/// Two shards on free ports (on the given engine threads each) and a combiner connected to
+/// them, once both have joined: (shards, their link endpoints, combiner).
 fn deploy(
     rt: &tokio::runtime::Runtime,
     f: &Fixture,
     ctx: &zmq::Context,
     deadline_ms: f64,
+    threads: [u32; 2],
 ) -> (Vec<Running>, Vec<String>, Running) {
     let shards = vec![
-        shard(rt, f, 0, "tcp://127.0.0.1:0"),
-        shard(rt, f, 1, "tcp://127.0.0.1:0"),
+        shard_on(rt, f, 0, "tcp://127.0.0.1:0", threads[0]),
+        shard_on(rt, f, 1, "tcp://127.0.0.1:0", threads[1]),
     ];
     let links: Vec<String> = shards
         .iter()
@@ -284,7 +297,7 @@ fn two_shards_and_a_combiner_give_frames_identical_to_offline_decode() {
     let f = fixture(3);
     let rt = runtime();
     let ctx = zmq::Context::new();
-    let (shards, _, comb) = deploy(&rt, &f, &ctx, 5000.0);
+    let (shards, _, comb) = deploy(&rt, &f, &ctx, 5000.0, [1, 1]);
     let cep = comb.endpoints.clone();
     let st = status(&ctx, &cep.control);
     assert_eq!((st.role.as_str(), st.parts), ("combine", 2));
@@ -358,8 +371,9 @@ fn two_shards_and_a_combiner_give_frames_identical_to_offline_decode() {
     }
 
     // Replaying the three recordings through a fresh deployment (at 4x real time, started
-    // together, as a lab would after the session) gives the same frames.
-    let (shards, _, comb) = deploy(&rt, &f, &ctx, 5000.0);
+    // together, as a lab would after the session) gives the same frames — with its shards on 2
+    // and 3 engine threads (part 0 has two blocks, part 1 one: one slice there is empty).
+    let (shards, _, comb) = deploy(&rt, &f, &ctx, 5000.0, [2, 3]);
     let cep = comb.endpoints.clone();
     let (stop_sub, sub) = subscriber(&ctx, &cep.publish);
     std::thread::sleep(Duration::from_millis(300));
@@ -404,7 +418,7 @@ fn two_shards_and_a_combiner_give_frames_identical_to_offline_decode() {
     }
     assert!(
         replayed == live,
-        "the replayed deployment gives the live frames, bit for bit"
+        "the replayed deployment (shards on 2 and 3 threads) gives the live frames, bit for bit"
     );
 }
 
@@ -414,7 +428,7 @@ fn a_stopped_shard_is_named_in_every_frame_and_rejoins_at_the_next_trial() {
     let f = fixture(6);
     let rt = runtime();
     let ctx = zmq::Context::new();
-    let (shards, links, comb) = deploy(&rt, &f, &ctx, 1000.0);
+    let (shards, links, comb) = deploy(&rt, &f, &ctx, 1000.0, [1, 1]);
     let mut shards: Vec<Option<Running>> = shards.into_iter().map(Some).collect();
     let cep = comb.endpoints.clone();
     let (stop_sub, sub) = subscriber(&ctx, &cep.publish);
@@ -525,7 +539,7 @@ fn a_second_combiner_is_refused_until_the_first_is_gone() {
     let f = fixture(1);
     let rt = runtime();
     let ctx = zmq::Context::new();
-    let (shards, links, first) = deploy(&rt, &f, &ctx, 5000.0);
+    let (shards, links, first) = deploy(&rt, &f, &ctx, 5000.0, [1, 1]);
     let second = combiner(&rt, &f, &links, 5000.0);
     let (c1, c2) = (
         first.endpoints.control.clone(),

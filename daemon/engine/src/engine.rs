@@ -112,6 +112,19 @@ pub enum Role {
         /// Of how many.
         parts: u32,
     },
+    /// Slice `slice` of `slices` (an even split of whole blocks) of part `part` of `parts`: one
+    /// of a shard's engine threads. Emits [`Partial`]s only, like [`Role::Shard`]; a combiner
+    /// takes the slices' partials as its part's blocks.
+    ShardSlice {
+        /// Which part.
+        part: u32,
+        /// Of how many.
+        parts: u32,
+        /// Which slice of the part.
+        slice: u32,
+        /// Of how many.
+        slices: u32,
+    },
     /// Part `part` of `parts` itself (None: no block) and every other block from the shards'
     /// partials ([`Engine::add_partial`]); emits what a whole engine emits.
     Combiner {
@@ -130,6 +143,19 @@ impl Role {
         let (part, parts) = match *self {
             Role::Whole => return Ok(()),
             Role::Shard { part, parts } => (Some(part), parts),
+            Role::ShardSlice {
+                part,
+                parts,
+                slice,
+                slices,
+            } => {
+                if !(1..=MAX_PARTS).contains(&slices) || slice >= slices {
+                    return Err(format!(
+                        "slice {slice} of {slices}: slices must be 1..={MAX_PARTS} and the slice below them"
+                    ));
+                }
+                (Some(part), parts)
+            }
             Role::Combiner { part, parts } => (part, parts),
         };
         if !(1..=MAX_PARTS).contains(&parts) || part.is_some_and(|p| p >= parts) {
@@ -144,6 +170,17 @@ impl Role {
         match *self {
             Role::Whole => 0..m.n_blocks(),
             Role::Shard { part, parts } => m.part_blocks(part, parts),
+            Role::ShardSlice {
+                part,
+                parts,
+                slice,
+                slices,
+            } => {
+                let r = m.part_blocks(part, parts);
+                let (n, s) = (r.len(), slices.max(1) as usize);
+                let i = (slice as usize).min(s);
+                r.start + n * i / s..r.start + n * (i + 1).min(s) / s
+            }
             Role::Combiner {
                 part: Some(part),
                 parts,
@@ -155,6 +192,7 @@ impl Role {
     pub fn part_of_block(&self, m: &Model, j: usize) -> u32 {
         let parts = match *self {
             Role::Whole => return 0,
+            Role::ShardSlice { part, .. } => return part,
             Role::Shard { parts, .. } | Role::Combiner { parts, .. } => parts,
         };
         (0..parts)
@@ -938,7 +976,10 @@ impl Engine {
         st.bin_ticks = self.bin_ticks;
         st.next_bin = 0;
         st.local = self.local.clone();
-        st.shard = matches!(self.config.role, Role::Shard { .. });
+        st.shard = matches!(
+            self.config.role,
+            Role::Shard { .. } | Role::ShardSlice { .. }
+        );
         st.lost_parts = 0;
         for j in 0..st.awaited.len() {
             let remote =

@@ -274,13 +274,15 @@ fn drive(inp: &Input, mut f: impl FnMut(Step)) {
     }
 }
 
-/// The combiner computes part 0 (or nothing), shards the other parts; partials are handed over
-/// after each step in a shuffled order, some before the combiner's own advance.
+/// The combiner computes part 0 (or nothing), shards the other parts, each shard on `slices`
+/// engine threads (`Role::ShardSlice`; one: `Role::Shard`); partials are handed over after each
+/// step in a shuffled order, some before the combiner's own advance.
 fn sharded(
     m: &Arc<PreparedModel>,
     dec: Decoder,
     inp: &Input,
     parts: u32,
+    slices: u32,
     combiner_part: bool,
     seed: u64,
 ) -> Out {
@@ -297,8 +299,18 @@ fn sharded(
     )
     .unwrap();
     let first_shard = if combiner_part { 1 } else { 0 };
+    let role = |part, slice| match slices {
+        1 => Role::Shard { part, parts },
+        _ => Role::ShardSlice {
+            part,
+            parts,
+            slice,
+            slices,
+        },
+    };
     let mut shards: Vec<Engine> = (first_shard..parts)
-        .map(|part| Engine::new(m.clone(), config(dec, Role::Shard { part, parts })).unwrap())
+        .flat_map(|part| (0..slices).map(move |slice| (part, slice)))
+        .map(|(part, slice)| Engine::new(m.clone(), config(dec, role(part, slice))).unwrap())
         .collect();
     let mut out = Out::default();
     let mut held: Vec<OwnedPartial> = Vec::new();
@@ -348,6 +360,7 @@ proptest! {
         nb in 2usize..14,
         mix in 0u8..5,
         parts in 1u32..6,
+        slices in 1u32..4,
         combiner_part in any::<bool>(),
         groups in 0usize..3,
         by_group in any::<bool>(),
@@ -364,8 +377,8 @@ proptest! {
         for dec in Decoder::ALL {
             let want = whole(&m, dec, &inp);
             prop_assert_eq!(want.ends.len(), 3);
-            let got = sharded(&m, dec, &inp, parts, combiner_part, seed);
-            prop_assert!(got == want, "decoder {:?}, {} units, {} parts", dec, nu, parts);
+            let got = sharded(&m, dec, &inp, parts, slices, combiner_part, seed);
+            prop_assert!(got == want, "decoder {:?}, {} units, {} parts of {} slices", dec, nu, parts, slices);
         }
     }
 }

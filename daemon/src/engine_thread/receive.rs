@@ -184,7 +184,23 @@ impl EngineThread {
             let dead = w.dead_parts();
             if let Some(e) = self.engine.as_mut() {
                 let newly = dead & !e.lost_parts();
-                if newly != 0 {
+                if newly != 0 && matches!(self.config.role, Role::ShardSlice { .. }) {
+                    // A shard cannot send what a stopped thread computed: it leaves the
+                    // deployment (its link closes), so the combiner gives its part up and every
+                    // frame names it, instead of waiting for blocks that never come.
+                    tracing::error!(
+                        slices = format!("{newly:#b}"),
+                        "an engine thread of this shard stopped: the shard leaves its combiner (frames there name its part as missing); restart the shard"
+                    );
+                    if let Link::Shard { out, .. } = &mut self.link {
+                        *out = tokio::sync::mpsc::channel(1).0;
+                    }
+                    for p in 0..64 {
+                        if newly & (1u64 << p) != 0 {
+                            e.lose_part(p, &mut auspex_engine::engine::NullSink);
+                        }
+                    }
+                } else if newly != 0 {
                     tracing::error!(
                         parts = format!("{newly:#b}"),
                         "an engine thread stopped: its units contribute nothing from now on (frames say which parts are missing); restart the daemon"
