@@ -395,22 +395,23 @@ pub fn histogram(values: &[f64], lo: f64, hi: f64, n: usize) -> (Vec<f64>, Vec<f
     (edges, h)
 }
 
-/// The picture data of one unit (see [`UnitFigures`]).
+/// The picture data of one unit (see [`UnitFigures`]), from the run's windows of every unit
+/// (`w`, in `data.units` order).
 fn unit_figures(
     unit: u32,
     model: &Model,
     data: &Dataset,
+    w: &auspex_engine::data::UnitWindows,
     labels: &[usize],
     rescaled: &[Vec<f64>],
     bw_ms: f64,
-    bin_ticks: i64,
 ) -> Option<UnitFigures> {
     let u = model.unit_index(unit)?;
+    let d = data.units.iter().position(|&x| x == unit)?;
     let (ns, nb) = (model.n_stimuli(), model.n_bins());
     let window_ms = nb as f64 * bw_ms;
-    let w = data.windows(&[unit], bin_ticks, nb);
     let of = |st: usize| (0..labels.len()).filter(move |&i| labels[i] == st);
-    let times_ms = |i: usize| w.times[0][i].iter().map(|t| t * bw_ms);
+    let times_ms = |i: usize| w.times[d][i].iter().map(|t| t * bw_ms);
     let raster = (0..ns)
         .map(|st| {
             of(st)
@@ -443,7 +444,7 @@ fn unit_figures(
         .collect();
     // Window counts with the fitted distributions.
     let count_max = (0..labels.len())
-        .map(|i| w.counts[0][i])
+        .map(|i| w.counts[d][i])
         .max()
         .unwrap_or(0)
         .max(3) as usize;
@@ -452,7 +453,7 @@ fn unit_figures(
             let trials = of(st).count().max(1) as f64;
             let mut h = vec![0.0; count_max + 1];
             for i in of(st) {
-                h[(w.counts[0][i] as usize).min(count_max)] += 1.0 / trials;
+                h[(w.counts[d][i] as usize).min(count_max)] += 1.0 / trials;
             }
             let pmf = (0..=count_max)
                 .map(|n| (n as f64 + 0.5, model.count(u, st).ln_pmf(n as u32).exp()))
@@ -843,15 +844,7 @@ pub fn validate_with(
         .enumerate()
         .filter(|(r, u)| *r < UNIT_FIGURES_MAX || u.cells.iter().any(|c| !c.ks_pass))
         .filter_map(|(_, u)| {
-            unit_figures(
-                u.unit,
-                &full_model,
-                &data,
-                &labels,
-                &rescaled,
-                bw_ms,
-                full_plan.bin_ticks,
-            )
+            unit_figures(u.unit, &full_model, &data, &w, &labels, &rescaled, bw_ms)
         })
         .collect();
     Ok((
