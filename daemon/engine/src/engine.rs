@@ -1690,7 +1690,7 @@ fn silent_sum(out: &mut [f64], pop_spike: &[f64], cc_sum: &[f64], sums: &[f64]) 
 /// Block `j`'s partial log-likelihood at the end of bin `b`, into `t.blk_ll`: the same
 /// mathematics as a whole-population pass, over the block's units only.
 fn block_partial(t: &mut TrialState, m: &PreparedModel, j: usize, b: usize, last: bool) {
-    let (nu, ns, nb) = (m.n_units(), m.n_stimuli(), m.n_bins());
+    let (nu, ns) = (m.n_units(), m.n_stimuli());
     let units = m.blocks[j].clone();
     let row = j * ns..(j + 1) * ns;
     match t.decoder {
@@ -1716,12 +1716,12 @@ fn block_partial(t: &mut TrialState, m: &PreparedModel, j: usize, b: usize, last
             }
         }
         Decoder::InhomogeneousPoisson => {
-            let sums = &m.rate_sum[(j * nb + b) * ns..(j * nb + b + 1) * ns];
+            let sums = &m.rate_sum[m.block_bin_row(j, b)];
             let out = &mut t.blk_ll[row.clone()];
             silent_sum(out, &t.pop_spike[row.clone()], &t.cc_sum[row], sums);
         }
         Decoder::OrderStats => {
-            let sums = &m.order_stats_sum[(j * nb + b) * ns..(j * nb + b + 1) * ns];
+            let sums = &m.order_stats_sum[m.block_bin_row(j, b)];
             let out = &mut t.blk_ll[row.clone()];
             silent_sum(out, &t.pop_spike[row.clone()], &t.cc_sum[row.clone()], sums);
             let act = &t.active[units.start..units.start + t.active_n[j] as usize];
@@ -1751,7 +1751,17 @@ fn block_partial(t: &mut TrialState, m: &PreparedModel, j: usize, b: usize, last
                 }
             };
             if m.any_negbin && 2 * act.len() > units.len() {
-                units.clone().for_each(|u| nb_term(out, u));
+                // This bin's rows of `g` are one contiguous run over the units (and the next
+                // block's follow): ask for the row a few units ahead, past this block's end too.
+                // The hardware's own prefetch does not keep up with this stream (a dense bin
+                // took twice as long without it: BENCHMARKS, "Engine threads").
+                for u in units.clone() {
+                    let ahead = (b * nu + u + UNIT_PREFETCH_AHEAD) * ns;
+                    if let Some(row) = m.nb_g.get(ahead..ahead + ns) {
+                        prefetch(row);
+                    }
+                    nb_term(out, u);
+                }
             } else if m.any_negbin {
                 each_prefetching(
                     act.len(),
@@ -1770,10 +1780,7 @@ fn block_partial(t: &mut TrialState, m: &PreparedModel, j: usize, b: usize, last
             let lo = tp.units.partition_point(|&u| u < units.start);
             let hi = tp.units.partition_point(|&u| u < units.end);
             if lo < hi {
-                for (p, s0) in out
-                    .iter_mut()
-                    .zip(&tp.sum0[(j * nb + b) * ns..(j * nb + b + 1) * ns])
-                {
+                for (p, s0) in out.iter_mut().zip(&tp.sum0[m.block_bin_row(j, b)]) {
                     *p += s0;
                 }
                 let acc = &mut t.table_acc;

@@ -132,11 +132,11 @@ pub struct Model {
     /// The first block of each unit group (one entry per group).
     group_first_block: Vec<usize>,
     /// Σ over a block's units of the count-independent part of every closed-form cell's count
-    /// term, per [block][b][s]:
+    /// term, per [b][block][s] (see [`Model::block_bin_row`]):
     /// `μ·S(b)` for Poisson cells, `−r·ln(1 − (1−p)·S(b))` for negative binomial cells. With it
     /// a bin costs O(S) plus the units that have spiked (and any table-family units).
     pub(crate) order_stats_sum: Vec<f64>,
-    /// Σ over a block's units of μ_us·S_us(b) per [block][b][s]: the inhomogeneous Poisson
+    /// Σ over a block's units of μ_us·S_us(b) per [b][block][s]: the inhomogeneous Poisson
     /// decoder's whole silence term.
     pub(crate) rate_sum: Vec<f64>,
     /// Units with at least one negative binomial cell.
@@ -326,7 +326,7 @@ impl Model {
                 let i = u * ns + s;
                 for b in 0..nb {
                     let t = (u * nb + b) * ns + s;
-                    let o = (blk * nb + b) * ns + s;
+                    let o = (b * blocks.len() + blk) * ns + s;
                     rate_sum[o] += means[i] * surv[t];
                     order_stats_sum[o] += match kernels[i] {
                         CellKernel::Poisson { mean, .. } => mean * surv[t],
@@ -414,6 +414,15 @@ impl Model {
     /// The block holding unit index `u`.
     pub fn block_of(&self, u: usize) -> usize {
         self.block_of_unit[u] as usize
+    }
+
+    /// Where block `j`'s per-stimulus sums of bin `b` sit in the per-block tables, laid out
+    /// [b][block][s] so a bin's rows of every block are one contiguous run (a bin walks the
+    /// blocks in order; [block][b] put each block's row 8·bins·stimuli bytes from the last).
+    pub(crate) fn block_bin_row(&self, j: usize, b: usize) -> std::ops::Range<usize> {
+        let ns = self.n_stimuli();
+        let at = (b * self.blocks.len() + j) * ns;
+        at..at + ns
     }
 
     /// The spec this model was built from.

@@ -38,7 +38,8 @@ pub(crate) struct TablePrep {
     pub(crate) slot: Vec<u32>,
     /// Slot → unit index.
     pub(crate) units: Vec<usize>,
-    /// Σ over a block's table-family cells of `ln Φ^(0)(S(b))`, per [block][b][s].
+    /// Σ over a block's table-family cells of `ln Φ^(0)(S(b))`, per [b][block][s]
+    /// ([`Model::block_bin_row`]).
     pub(crate) sum0: Vec<f64>,
     /// `1/Φ^(0)(S(b))` per [b][slot][s] for table-family cells, 0 for the others.
     inv0: Vec<f64>,
@@ -192,7 +193,7 @@ impl TablePrep {
                     } else {
                         m.dists[u * ns + s].ln_gf_deriv(0, z[s])
                     };
-                    p.sum0[(m.block_of(u) * nb + b) * ns + s] += ln0;
+                    p.sum0[m.block_bin_row(m.block_of(u), b).start + s] += ln0;
                     p.inv0[(b * nt + sl) * ns + s] = (-ln0).exp();
                     p.ln0[(b * nt + sl) * ns + s] = ln0;
                 }
