@@ -579,41 +579,61 @@ pub async fn latency(
 /// collects the latency of every posterior frame published on `publish` (µs).
 async fn measure(
     publish: &str,
-    mut pushes: Vec<zeromq::PushSocket>,
+    pushes: Vec<zeromq::PushSocket>,
     msgs: Vec<(Option<usize>, usize, Vec<u8>)>,
 ) -> anyhow::Result<Vec<f64>> {
-    let mut sub = zeromq::SubSocket::new();
-    sub.connect(publish).await?;
-    sub.subscribe(auspex_proto::topic::POSTERIOR).await?;
-    tokio::time::sleep(Duration::from_millis(300)).await;
+    let mut lat = measure_each(&[publish], pushes, msgs).await?;
+    Ok(lat.pop().unwrap_or_default())
+}
+
+/// [`measure`] for several deployments at once, each with its own publish endpoint: every batch
+/// goes to one deployment only, so a frame's bin names the batch it answers whichever
+/// deployment published it. The latencies of each publish endpoint's frames, in its order.
+async fn measure_each(
+    publishes: &[&str],
+    mut pushes: Vec<zeromq::PushSocket>,
+    msgs: Vec<(Option<usize>, usize, Vec<u8>)>,
+) -> anyhow::Result<Vec<Vec<f64>>> {
     let n_batches = msgs.iter().filter_map(|m| m.0).max().unwrap_or(0);
     let sent: Arc<std::sync::Mutex<Vec<Option<Instant>>>> =
         Arc::new(std::sync::Mutex::new(vec![None; n_batches + 1]));
-    let recv_sent = sent.clone();
-    let receiver = tokio::spawn(async move {
-        let mut lat = Vec::new();
-        loop {
-            let m = match tokio::time::timeout(Duration::from_secs(2), sub.recv()).await {
-                Ok(Ok(m)) => m,
-                _ => break,
-            };
-            let now = Instant::now();
-            let Some(payload) = m.into_vec().pop() else {
-                continue;
-            };
-            let Ok(out) = v1::Outbound::decode(payload.as_ref()) else {
-                continue;
-            };
-            if let Some(v1::outbound::Body::Posterior(p)) = out.body {
-                // Bin ends and batch watermarks are both at k·1000 − 1 ticks.
-                let i = ((p.bin_end_tick + 1) / 1000) as usize;
-                if let Some(Some(t)) = recv_sent.lock().ok().and_then(|v| v.get(i).copied()) {
-                    lat.push(now.duration_since(t).as_secs_f64() * 1e6);
+    // A deployment waiting for its turn publishes nothing: its receiver stops only once every
+    // message is sent and its frames have been silent for 2 s.
+    let sending = Arc::new(std::sync::atomic::AtomicBool::new(true));
+    let mut receivers = Vec::new();
+    for publish in publishes {
+        let mut sub = zeromq::SubSocket::new();
+        sub.connect(publish).await?;
+        sub.subscribe(auspex_proto::topic::POSTERIOR).await?;
+        let recv_sent = sent.clone();
+        let sending = sending.clone();
+        receivers.push(tokio::spawn(async move {
+            let mut lat = Vec::new();
+            loop {
+                let m = match tokio::time::timeout(Duration::from_secs(2), sub.recv()).await {
+                    Ok(Ok(m)) => m,
+                    Err(_) if sending.load(std::sync::atomic::Ordering::Relaxed) => continue,
+                    _ => break,
+                };
+                let now = Instant::now();
+                let Some(payload) = m.into_vec().pop() else {
+                    continue;
+                };
+                let Ok(out) = v1::Outbound::decode(payload.as_ref()) else {
+                    continue;
+                };
+                if let Some(v1::outbound::Body::Posterior(p)) = out.body {
+                    // Bin ends and batch watermarks are both at k·1000 − 1 ticks.
+                    let i = ((p.bin_end_tick + 1) / 1000) as usize;
+                    if let Some(Some(t)) = recv_sent.lock().ok().and_then(|v| v.get(i).copied()) {
+                        lat.push(now.duration_since(t).as_secs_f64() * 1e6);
+                    }
                 }
             }
-        }
-        lat
-    });
+            lat
+        }));
+    }
+    tokio::time::sleep(Duration::from_millis(300)).await;
 
     let t0 = tokio::time::Instant::now();
     for (batch, to, bytes) in msgs {
@@ -631,90 +651,151 @@ async fn measure(
             .send(ZmqMessage::from(Bytes::from(bytes)))
             .await?;
     }
-    Ok(receiver.await?)
+    sending.store(false, std::sync::atomic::Ordering::Relaxed);
+    let mut out = Vec::new();
+    for r in receivers {
+        out.push(r.await?);
+    }
+    Ok(out)
 }
 
-/// The batch → posterior latency of a deployment over loopback: `shards` shard daemons (each
-/// sent the spikes of its part of the units by its own sender) and a combiner (sent the trial
-/// onsets), everything else as [`latency`] over TCP.
-pub async fn latency_sharded(
+/// A shard deployment on loopback: `shards` shard daemons and a combiner.
+struct Sharded {
+    shards: Vec<auspexd::service::Running>,
+    combiner: auspexd::service::Running,
+    /// The shard that decodes each unit index.
+    part_of: Vec<usize>,
+}
+
+impl Sharded {
+    /// Starts `shards` shard daemons and a combiner in this process over TCP loopback with the
+    /// synthetic model, and waits until every shard has joined.
+    async fn start(
+        nu: usize,
+        ns: usize,
+        dir: &std::path::Path,
+        shards: u32,
+    ) -> anyhow::Result<Self> {
+        let model_path = dir.join(format!("bench-{nu}x{ns}-shards.apxm"));
+        let model = synthetic_model(nu, ns);
+        auspex_proto::model_file::save_model(&model_path, model.spec(), "auspex bench")?;
+        let local = "tcp://127.0.0.1:0".to_string();
+        let base = auspexd::config::FileConfig {
+            model: Some(model_path),
+            ingest: Some(local.clone()),
+            task_ingest: Some(local.clone()),
+            publish: Some(local.clone()),
+            control: Some(local.clone()),
+            tick_rate_hz: Some(1e6),
+            ..Default::default()
+        };
+        let start = |f: auspexd::config::FileConfig| async move {
+            let cfg = auspexd::config::validate(f, &mut Vec::new())?;
+            anyhow::Ok(auspexd::service::start(cfg).await?)
+        };
+        let mut running = Vec::new();
+        for part in 0..shards {
+            running.push(
+                start(auspexd::config::FileConfig {
+                    role: Some("shard".into()),
+                    part: Some(part),
+                    parts: Some(shards),
+                    link: Some(local.clone()),
+                    ..base.clone()
+                })
+                .await?,
+            );
+        }
+        let links: Vec<String> = running
+            .iter()
+            .filter_map(|r| r.endpoints.link.clone())
+            .collect();
+        let combiner = start(auspexd::config::FileConfig {
+            role: Some("combine".into()),
+            shards: Some(links),
+            ..base
+        })
+        .await?;
+        // Every shard greets before the session starts.
+        let t = Instant::now();
+        while !crate::live::status(&combiner.endpoints.control)
+            .await
+            .is_ok_and(|s| s.shards.iter().all(|x| x.joined))
+        {
+            if t.elapsed() > Duration::from_secs(10) {
+                anyhow::bail!("the shards did not join the combiner within 10 s");
+            }
+            tokio::time::sleep(Duration::from_millis(50)).await;
+        }
+        let part_of = (0..nu)
+            .map(|u| {
+                (0..shards)
+                    .find(|&p| model.part_units(p, shards).contains(&u))
+                    .unwrap_or(0) as usize
+            })
+            .collect();
+        Ok(Sharded {
+            shards: running,
+            combiner,
+            part_of,
+        })
+    }
+
+    /// Push sockets to every shard's ingest, then to the combiner's task ingest.
+    async fn pushes(&self) -> anyhow::Result<Vec<zeromq::PushSocket>> {
+        let eps = &self.combiner.endpoints;
+        let mut pushes = Vec::new();
+        for r in self
+            .shards
+            .iter()
+            .map(|r| &r.endpoints.ingest)
+            .chain([eps.task_ingest.as_ref().unwrap_or(&eps.ingest)])
+        {
+            let mut p = zeromq::PushSocket::new();
+            p.connect(r).await?;
+            pushes.push(p);
+        }
+        Ok(pushes)
+    }
+
+    async fn stop(self) {
+        self.combiner.stop().await;
+        for r in self.shards {
+            r.stop().await;
+        }
+    }
+}
+
+/// Milliseconds the interleaved comparison gives one set-up before switching to the other: ten
+/// whole trials (trials start every 300 ms), so no trial spans a switch.
+const TURN_MS: usize = 3000;
+
+/// Batch → posterior latency of one whole daemon and of `shards` shards + a combiner over TCP
+/// loopback, **interleaved**: both set-ups run at once and take turns of [`TURN_MS`] (whole
+/// trials), `seconds` each in all, so the host's load in any stretch of the run weighs on both
+/// alike. The whole daemon gets each batch from one sender; each shard gets the spikes of its
+/// part of the units from its own sender, the combiner the trial onsets.
+pub async fn latency_interleaved(
     nu: usize,
     ns: usize,
     seconds: f64,
     dir: &std::path::Path,
     shards: u32,
-) -> anyhow::Result<Latency> {
-    let model_path = dir.join(format!("bench-{nu}x{ns}.apxm"));
-    let model = synthetic_model(nu, ns);
-    auspex_proto::model_file::save_model(&model_path, model.spec(), "auspex bench")?;
-    let local = "tcp://127.0.0.1:0".to_string();
-    let base = auspexd::config::FileConfig {
-        model: Some(model_path),
-        ingest: Some(local.clone()),
-        task_ingest: Some(local.clone()),
-        publish: Some(local.clone()),
-        control: Some(local.clone()),
-        tick_rate_hz: Some(1e6),
-        ..Default::default()
-    };
-    let start = |f: auspexd::config::FileConfig| async move {
-        let cfg = auspexd::config::validate(f, &mut Vec::new())?;
-        anyhow::Ok(auspexd::service::start(cfg).await?)
-    };
-    let mut running = Vec::new();
-    for part in 0..shards {
-        running.push(
-            start(auspexd::config::FileConfig {
-                role: Some("shard".into()),
-                part: Some(part),
-                parts: Some(shards),
-                link: Some(local.clone()),
-                ..base.clone()
-            })
-            .await?,
-        );
-    }
-    let links: Vec<String> = running
-        .iter()
-        .filter_map(|r| r.endpoints.link.clone())
-        .collect();
-    let comb = start(auspexd::config::FileConfig {
-        role: Some("combine".into()),
-        shards: Some(links),
-        ..base
-    })
-    .await?;
-    let eps = comb.endpoints.clone();
-    // Every shard greets before the session starts.
-    let t = Instant::now();
-    while !crate::live::status(&eps.control)
-        .await
-        .is_ok_and(|s| s.shards.iter().all(|x| x.joined))
-    {
-        if t.elapsed() > Duration::from_secs(10) {
-            anyhow::bail!("the shards did not join the combiner within 10 s");
-        }
-        tokio::time::sleep(Duration::from_millis(50)).await;
-    }
-    let mut pushes = Vec::new();
-    for r in running
-        .iter()
-        .map(|r| &r.endpoints.ingest)
-        .chain([eps.task_ingest.as_ref().unwrap_or(&eps.ingest)])
-    {
-        let mut p = zeromq::PushSocket::new();
-        p.connect(r).await?;
-        pushes.push(p);
-    }
-    let part_of: Vec<usize> = (0..nu)
-        .map(|u| {
-            (0..shards)
-                .find(|&p| model.part_units(p, shards).contains(&u))
-                .unwrap_or(0) as usize
-        })
-        .collect();
-    let n_batches = (seconds * 1000.0).round() as usize;
-    let task = shards as usize;
+) -> anyhow::Result<(Latency, Latency)> {
+    let whole = start_daemon(nu, ns, "tcp", dir, false, 1).await?;
+    let sharded = Sharded::start(nu, ns, dir, shards).await?;
+    let mut whole_push = zeromq::PushSocket::new();
+    whole_push.connect(&whole.endpoints.ingest).await?;
+    let mut pushes = vec![whole_push];
+    pushes.extend(sharded.pushes().await?);
+    // Socket 0: the whole daemon; 1..=shards: the shards; shards + 1: the combiner's task.
+    let task = shards as usize + 1;
+    let per = ((seconds * 1000.0).round() as usize)
+        .div_ceil(TURN_MS)
+        .max(1)
+        * TURN_MS;
+    let n_batches = 2 * per;
+    let sharded_turn = |ms: usize| (ms.saturating_sub(1) / TURN_MS) % 2 == 1;
     let mut seqs = vec![0u64; task + 1];
     let mut enc = |to: usize, body: Body| {
         seqs[to] += 1;
@@ -736,13 +817,13 @@ pub async fn latency_sharded(
                     msgs.push((None, to, enc(to, Body::SessionStart(s.clone()))));
                 }
             }
-            Body::Spikes(b) => {
-                for to in 0..task {
+            Body::Spikes(b) if sharded_turn(batch.unwrap_or(0)) => {
+                for shard in 0..shards as usize {
                     let (units, ticks): (Vec<u32>, Vec<i64>) = b
                         .units
                         .iter()
                         .zip(&b.ticks)
-                        .filter(|(u, _)| part_of[**u as usize] == to)
+                        .filter(|(u, _)| sharded.part_of[**u as usize] == shard)
                         .map(|(u, t)| (*u, *t))
                         .unzip();
                     let body = Body::Spikes(v1::SpikeBatch {
@@ -750,21 +831,31 @@ pub async fn latency_sharded(
                         ticks,
                         complete_through: b.complete_through,
                     });
-                    msgs.push((batch, to, enc(to, body)));
+                    msgs.push((batch, shard + 1, enc(shard + 1, body)));
                 }
             }
-            other => msgs.push((None, task, enc(task, other))),
+            Body::Onset(o) if sharded_turn((o.onset_tick / 1000) as usize + 1) => {
+                msgs.push((None, task, enc(task, Body::Onset(o))));
+            }
+            other => msgs.push((batch, 0, enc(0, other))),
         }
     }
-    let lat = measure(&eps.publish, pushes, msgs).await?;
-    comb.stop().await;
-    for r in running {
-        r.stop().await;
-    }
-    Ok(summarise(
-        &format!("tcp, {shards} shards + combiner"),
-        lat,
-        n_batches,
+    let publishes = [
+        whole.endpoints.publish.as_str(),
+        sharded.combiner.endpoints.publish.as_str(),
+    ];
+    let mut lat = measure_each(&publishes, pushes, msgs).await?;
+    whole.stop().await;
+    sharded.stop().await;
+    let sharded_lat = lat.pop().unwrap_or_default();
+    let whole_lat = lat.pop().unwrap_or_default();
+    Ok((
+        summarise("tcp, one whole daemon", whole_lat, per),
+        summarise(
+            &format!("tcp, {shards} shards + combiner"),
+            sharded_lat,
+            per,
+        ),
     ))
 }
 
@@ -930,7 +1021,7 @@ async fn latencies(
 }
 
 /// Batch → posterior latency over TCP loopback of one whole daemon and of `shards` shards + a
-/// combiner, in one run.
+/// combiner, interleaved in one run ([`latency_interleaved`]).
 async fn sharded_latencies(
     seconds: f64,
     size: (usize, usize),
@@ -938,12 +1029,12 @@ async fn sharded_latencies(
 ) -> anyhow::Result<Vec<Latency>> {
     let dir = tempfile::tempdir()?;
     eprintln!(
-        "latency over tcp loopback, one whole daemon: {} units × {} stimuli, 1 kHz batches for {seconds} s …",
-        size.0, size.1
+        "latency over tcp loopback, {} units × {} stimuli, 1 kHz batches: one whole daemon and {shards} shards + combiner (each shard sent its units' spikes), taking turns of {} s, {seconds} s each …",
+        size.0,
+        size.1,
+        TURN_MS / 1000
     );
-    let whole = latency(size.0, size.1, seconds, "tcp", dir.path(), false, 1).await?;
-    eprintln!("latency over tcp loopback, {shards} shards + combiner (each shard sent its units' spikes) …");
-    let sharded = latency_sharded(size.0, size.1, seconds, dir.path(), shards).await?;
+    let (whole, sharded) = latency_interleaved(size.0, size.1, seconds, dir.path(), shards).await?;
     for l in [&whole, &sharded] {
         println!(
             "batch → posterior frame over {}: p50 {:.0} µs, p99 {:.0} µs, p99.9 {:.0} µs, worst {:.0} µs ({} frames)",
