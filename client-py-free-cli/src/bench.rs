@@ -138,6 +138,49 @@ pub struct ThreadPoint {
     pub headroom: f64,
     /// One thread's time per bin / this one's (the same run).
     pub speedup: f64,
+    /// The bare cost, µs, of reading one bin's negative binomial rows of every unit (units ×
+    /// stimuli × 8 bytes) on this many threads at once: the memory's floor under a bin in which
+    /// every unit has spiked ([`stream_floor_us`]).
+    pub floor_us_per_bin: f64,
+}
+
+/// The memory floor of a dense bin at `nu` × `ns` on `threads` threads: each thread sums its
+/// share of one bin's `[unit][stimulus]` rows (a table of ≥ 256 MB, far larger than the caches,
+/// read bin after bin as a dense negative binomial pass reads `g`), all threads at once. Median
+/// µs per bin over three passes. A second thread cannot make the dense part of a bin faster than
+/// this floor allows, whatever the engine does.
+pub fn stream_floor_us(nu: usize, ns: usize, threads: usize) -> f64 {
+    let row = nu * ns;
+    let bins = (256usize << 20).div_ceil(row * 8).max(16);
+    let table: Vec<f64> = (0..row * bins).map(|i| (i % 977) as f64 * 1e-3).collect();
+    let threads = threads.max(1);
+    let share = nu.div_ceil(threads) * ns;
+    let mut passes: Vec<f64> = (0..3)
+        .map(|_| {
+            let t0 = Instant::now();
+            std::thread::scope(|sc| {
+                for th in 0..threads {
+                    let table = &table;
+                    sc.spawn(move || {
+                        let mut acc = vec![0.0f64; ns];
+                        for b in 0..bins {
+                            let lo = (b * row + th * share).min((b + 1) * row);
+                            let hi = (lo + share).min((b + 1) * row);
+                            for r in table[lo..hi].chunks_exact(ns) {
+                                for (a, x) in acc.iter_mut().zip(r) {
+                                    *a += x;
+                                }
+                            }
+                        }
+                        std::hint::black_box(acc);
+                    });
+                }
+            });
+            t0.elapsed().as_secs_f64() * 1e6 / bins as f64
+        })
+        .collect();
+    passes.sort_by(|a, b| a.total_cmp(b));
+    passes[1]
 }
 
 /// Times whole trials through the daemon's threaded engine (`auspexd::ThreadedDecoder`: a
@@ -162,8 +205,8 @@ pub fn thread_scaling(
     max_threads: u32,
 ) -> anyhow::Result<Vec<ThreadPoint>> {
     println!(
-        "{:>6} × {:<4} {:>8} {:>12} {:>10} {:>8}",
-        "units", "stim", "threads", "µs per bin", "headroom", "speedup"
+        "{:>6} × {:<4} {:>8} {:>12} {:>10} {:>8} {:>14}",
+        "units", "stim", "threads", "µs per bin", "headroom", "speedup", "memory floor"
     );
     let mut points = Vec::new();
     for &(nu, ns) in sizes {
@@ -179,10 +222,17 @@ pub fn thread_scaling(
                 us_per_bin: us,
                 headroom: 1000.0 / us,
                 speedup: base / us,
+                floor_us_per_bin: stream_floor_us(nu, ns, threads as usize),
             };
             println!(
-                "{:>6} × {:<4} {:>8} {:>12.1} {:>9.1}× {:>7.2}×",
-                p.units, p.stimuli, p.threads, p.us_per_bin, p.headroom, p.speedup
+                "{:>6} × {:<4} {:>8} {:>12.1} {:>9.1}× {:>7.2}× {:>11.1} µs",
+                p.units,
+                p.stimuli,
+                p.threads,
+                p.us_per_bin,
+                p.headroom,
+                p.speedup,
+                p.floor_us_per_bin
             );
             points.push(p);
         }
@@ -202,6 +252,18 @@ pub fn thread_scaling(
                 println!(
                     "→ for {nu} units × {ns} stimuli: auspexd --threads {} ({:.2}× one thread, {:.1}× real time); more threads than cores never help",
                     pick.threads, pick.speedup, pick.headroom
+                );
+            }
+        }
+        if let (Some(one), Some(most)) = (at.first(), at.last()) {
+            if most.threads > 1 {
+                println!(
+                    "  memory floor: a bin in which every unit has spiked reads {:.1} MB of rows, {:.1} µs on 1 thread and {:.1} µs on {} ({:.2}×) — the most more threads can gain on that part of a bin on this machine",
+                    (nu * ns * 8) as f64 / 1e6,
+                    one.floor_us_per_bin,
+                    most.floor_us_per_bin,
+                    most.threads,
+                    one.floor_us_per_bin / most.floor_us_per_bin
                 );
             }
         }
