@@ -2,10 +2,11 @@
 //! One iteration decodes a whole 250-bin trial (open + 250 bins); criterion's throughput is in
 //! bins, so "elem/s" is bins per second and real time is 1000 bins/s at 1 ms bins.
 //! Each decoder runs on the summed path (the default) and on the per-cell reference path, so
-//! the before/after of the per-model sums is measured in one run.
+//! the before/after of the per-model sums is measured in one run; `window_end_frame_16hz` times
+//! the window's last bin alone, up to its frame (where a window-end decision comes from).
 //! Run: `cargo bench -p auspex-engine --bench engine` (set AUSPEX_BENCH_LARGE=1 for 4096×64).
 
-use auspex_engine::engine::{Decoder, Engine, EngineConfig, NullSink};
+use auspex_engine::engine::{Decoder, Engine, EngineConfig, EngineSink, Frame, NullSink};
 use auspex_engine::{LookupBudget, PreparedModel};
 use criterion::{criterion_group, criterion_main, BenchmarkId, Criterion, Throughput};
 use std::sync::Arc;
@@ -147,6 +148,46 @@ fn bench(c: &mut Criterion) {
         });
     }
     g.finish();
+    // The window's last bin: from the advance that completes it to its frame (the one that
+    // carries a window-end decision), realistic firing. Everything after the frame (the
+    // per-unit summaries) is outside the timed span.
+    let mut g = c.benchmark_group("window_end_frame_16hz");
+    g.sample_size(10);
+    g.warm_up_time(std::time::Duration::from_secs(1));
+    g.measurement_time(std::time::Duration::from_secs(3));
+    let mut cases = vec![(1024, 64, "negative_binomial"), (1024, 64, "com_poisson")];
+    if std::env::var("AUSPEX_BENCH_LARGE").is_ok() {
+        cases.push((4096, 64, "negative_binomial"));
+    }
+    for (nu, ns, family) in cases {
+        let m = model_at(nu, ns, family, REALISTIC_COUNT);
+        let spikes = trial_spikes_at(nu, REALISTIC_COUNT);
+        let mut e = Engine::new(m, EngineConfig::new(1000.0)).unwrap();
+        let (mut trial, mut onset) = (0u64, 0i64);
+        g.bench_function(BenchmarkId::new(family, format!("{nu}x{ns}")), |b| {
+            b.iter_custom(|iters| {
+                let mut timed = std::time::Duration::ZERO;
+                for _ in 0..iters {
+                    trial += 1;
+                    e.open_trial(trial, onset, Some(0), &mut NullSink).unwrap();
+                    let mut sink = LastFrame::default();
+                    for (bin, sp) in spikes.iter().enumerate() {
+                        for &(u, t) in sp {
+                            e.spike(u, onset + t).unwrap();
+                        }
+                        let t0 = std::time::Instant::now();
+                        e.advance(onset + bin as i64, &mut sink).unwrap();
+                        if bin + 1 == BINS {
+                            timed += sink.at.expect("the last bin's frame") - t0;
+                        }
+                    }
+                    onset += BINS as i64;
+                }
+                timed
+            })
+        });
+    }
+    g.finish();
     // Opening a trial alone (the per-trial reset of the scratch state).
     let mut g = c.benchmark_group("open_trial");
     for &(nu, ns) in &sizes {
@@ -163,6 +204,20 @@ fn bench(c: &mut Criterion) {
         });
     }
     g.finish();
+}
+
+/// Notes when the frame of a window's last bin arrives.
+#[derive(Default)]
+struct LastFrame {
+    at: Option<std::time::Instant>,
+}
+
+impl EngineSink for LastFrame {
+    fn frame(&mut self, frame: &Frame<'_>) {
+        if frame.bin as usize + 1 == BINS {
+            self.at = Some(std::time::Instant::now());
+        }
+    }
 }
 
 criterion_group!(benches, bench);

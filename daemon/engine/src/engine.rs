@@ -1555,21 +1555,11 @@ fn run_bins(
         for j in t.local.clone() {
             block_partial(t, &m, j, b, last);
         }
-        if last {
-            // Each local unit's full-window log-likelihood, kept for the per-unit summaries.
-            let units = local_units(&m, &t.local);
-            for u in units {
-                let k = t.k[u];
-                for s in 0..ns {
-                    let i = u * ns + s;
-                    t.unit_ll[i] = match t.decoder {
-                        Decoder::CountOnly => m.dists[i].ln_pmf(k),
-                        dec => t.unit_ll[i] + count_term(&m, dec, u, s, b, k, t.cconst[i]),
-                    };
-                }
-            }
-        }
         if t.shard {
+            if last {
+                // The last partial carries them to the combiner.
+                full_window_unit_ll(t, &m, b);
+            }
             let units = local_units(&m, &t.local);
             if !t.local.is_empty() {
                 sink.partial(&Partial {
@@ -1665,9 +1655,31 @@ fn run_bins(
                 sink.decision(&d);
             }
         }
+        if last {
+            // Only after the frame and the decision: these feed the unit summaries alone, and a
+            // closed-loop program waits for this bin's decision (the pass costs ~1.3 ms at
+            // 4096 × 64; BENCHMARKS, "The window's last bin").
+            full_window_unit_ll(t, &m, b);
+        }
         t.next_bin += 1;
     }
     true
+}
+
+/// Each local unit's full-window log-likelihood at the window's last bin `b`, into
+/// `t.unit_ll`, kept for the per-unit summaries.
+fn full_window_unit_ll(t: &mut TrialState, m: &PreparedModel, b: usize) {
+    let ns = m.n_stimuli();
+    for u in local_units(m, &t.local) {
+        let k = t.k[u];
+        for s in 0..ns {
+            let i = u * ns + s;
+            t.unit_ll[i] = match t.decoder {
+                Decoder::CountOnly => m.dists[i].ln_pmf(k),
+                dec => t.unit_ll[i] + count_term(m, dec, u, s, b, k, t.cconst[i]),
+            };
+        }
+    }
 }
 
 /// The units of a range of blocks, as a unit index range.

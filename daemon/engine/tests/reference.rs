@@ -290,3 +290,101 @@ fn partial_trial_likelihood_matches_monte_carlo() {
         want.exp()
     );
 }
+
+#[derive(Default)]
+struct Summaries(Vec<(Vec<f64>, Vec<u32>)>);
+impl EngineSink for Summaries {
+    fn unit_summaries(&mut self, s: &auspex_engine::engine::UnitSummaries<'_>) {
+        self.0
+            .push((s.presented_posterior.to_vec(), s.decoded.to_vec()));
+    }
+}
+
+/// Each unit's summary at the end of a labelled trial is its own full-window posterior: with
+/// S = 0 at the window's end, `Φ^(k)(0) = k!·P(k)`, so unit u's log-likelihood of stimulus s is
+/// `Σ_spikes ln q_us(b) + ln P_us(k)` up to terms equal for every stimulus (design note, "The
+/// decoding mathematics"). Here `P_us` comes from statrs (`NegativeBinomial(r, p)` with
+/// p = r/(r+μ), `Poisson(μ)`), not from this project's count code.
+#[test]
+fn unit_summaries_are_each_units_full_window_posterior() {
+    use statrs::distribution::{Discrete, NegativeBinomial, Poisson};
+    let bins = 40;
+    // Three units × three stimuli: responses peaking at different bins, counts of both families.
+    let q = |peak: f64| -> Vec<f64> {
+        let w: Vec<f64> = (0..bins)
+            .map(|b| 0.2 + (-((b as f64 - peak) / 4.0).powi(2)).exp())
+            .collect();
+        let z: f64 = w.iter().sum();
+        w.iter().map(|x| x / z).collect()
+    };
+    let counts = |u: usize, s: usize| -> CountParams {
+        let mean = 2.0 + (u * 3 + s * 5) as f64 % 7.0;
+        if u == 1 {
+            CountParams::Poisson { mean }
+        } else {
+            CountParams::NegativeBinomial {
+                mean,
+                shape: 1.5 + u as f64,
+            }
+        }
+    };
+    let mut cells = Vec::new();
+    for u in 0..3 {
+        for s in 0..3 {
+            cells.push(cell(counts(u, s), q(5.0 + 10.0 * s as f64 + u as f64)));
+        }
+    }
+    let m = model(0.001, &["a", "b", "c"], &[11, 12, 13], cells);
+    let timing: Vec<Vec<f64>> = m.spec().cells.iter().map(|c| c.timing.clone()).collect();
+    // Spikes (unit id, bin): unit 11 four, unit 12 one, unit 13 none (silence tells too).
+    let spikes = [(11u32, 3i64), (11, 14), (11, 15), (11, 31), (12, 22)];
+    let mut e = Engine::new(m, EngineConfig::new(1000.0)).unwrap();
+    let mut sink = Summaries::default();
+    e.open_trial(1, 0, Some(1), &mut sink).unwrap();
+    for b in 0..bins as i64 {
+        for &(u, t) in spikes.iter().filter(|s| s.1 == b) {
+            e.spike(u, t).unwrap();
+        }
+        e.advance(b, &mut sink).unwrap();
+    }
+    assert_eq!(
+        sink.0.len(),
+        1,
+        "one labelled trial, one set of unit summaries"
+    );
+    let (presented, decoded) = &sink.0[0];
+    for (ui, unit) in [11u32, 12, 13].iter().enumerate() {
+        let mine: Vec<i64> = spikes
+            .iter()
+            .filter(|s| s.0 == *unit)
+            .map(|s| s.1)
+            .collect();
+        let k = mine.len() as u64;
+        let ll: Vec<f64> = (0..3)
+            .map(|s| {
+                let pk = match counts(ui, s) {
+                    CountParams::Poisson { mean } => Poisson::new(mean).unwrap().pmf(k),
+                    CountParams::NegativeBinomial { mean, shape } => {
+                        NegativeBinomial::new(shape, shape / (shape + mean))
+                            .unwrap()
+                            .pmf(k)
+                    }
+                    _ => unreachable!(),
+                };
+                let q = &timing[ui * 3 + s];
+                mine.iter().map(|&b| q[b as usize].ln()).sum::<f64>() + pk.ln()
+            })
+            .collect();
+        // Uniform prior: the posterior is the softmax of the log-likelihoods.
+        let top = ll.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+        let z: f64 = ll.iter().map(|l| (l - top).exp()).sum();
+        let want = (ll[1] - top).exp() / z;
+        let got = presented[ui];
+        assert!(
+            (got - want).abs() < 1e-12,
+            "unit {unit}: posterior of the presented stimulus {got} vs {want} (statrs)"
+        );
+        let best = (0..3).max_by(|&a, &b| ll[a].total_cmp(&ll[b])).unwrap() as u32;
+        assert_eq!(decoded[ui], best, "unit {unit}: decoded stimulus");
+    }
+}
