@@ -144,43 +144,46 @@ pub struct ThreadPoint {
     pub floor_us_per_bin: f64,
 }
 
-/// The memory floor of a dense bin at `nu` × `ns` on `threads` threads: each thread sums its
-/// share of one bin's `[unit][stimulus]` rows (a table of ≥ 256 MB, far larger than the caches,
-/// read bin after bin as a dense negative binomial pass reads `g`), all threads at once. Median
-/// µs per bin over three passes. A second thread cannot make the dense part of a bin faster than
-/// this floor allows, whatever the engine does.
-pub fn stream_floor_us(nu: usize, ns: usize, threads: usize) -> f64 {
+/// The memory floor of a dense bin at `nu` × `ns` on 1 ..= `max_threads` threads (index
+/// threads − 1): each thread sums its share of one bin's `[unit][stimulus]` rows (a table of
+/// ≥ 256 MB, far larger than the caches, read bin after bin as a dense negative binomial pass
+/// reads `g`), all threads at once. Median µs per bin over three passes. More threads cannot make
+/// the dense part of a bin faster than this floor allows, whatever the engine does.
+pub fn stream_floor_us(nu: usize, ns: usize, max_threads: usize) -> Vec<f64> {
     let row = nu * ns;
     let bins = (256usize << 20).div_ceil(row * 8).max(16);
     let table: Vec<f64> = (0..row * bins).map(|i| (i % 977) as f64 * 1e-3).collect();
-    let threads = threads.max(1);
-    let share = nu.div_ceil(threads) * ns;
-    let mut passes: Vec<f64> = (0..3)
-        .map(|_| {
-            let t0 = Instant::now();
-            std::thread::scope(|sc| {
-                for th in 0..threads {
-                    let table = &table;
-                    sc.spawn(move || {
-                        let mut acc = vec![0.0f64; ns];
-                        for b in 0..bins {
-                            let lo = (b * row + th * share).min((b + 1) * row);
-                            let hi = (lo + share).min((b + 1) * row);
-                            for r in table[lo..hi].chunks_exact(ns) {
-                                for (a, x) in acc.iter_mut().zip(r) {
-                                    *a += x;
+    (1..=max_threads.max(1))
+        .map(|threads| {
+            let share = nu.div_ceil(threads) * ns;
+            let mut passes: Vec<f64> = (0..3)
+                .map(|_| {
+                    let t0 = Instant::now();
+                    std::thread::scope(|sc| {
+                        for th in 0..threads {
+                            let table = &table;
+                            sc.spawn(move || {
+                                let mut acc = vec![0.0f64; ns];
+                                for b in 0..bins {
+                                    let lo = (b * row + th * share).min((b + 1) * row);
+                                    let hi = (lo + share).min((b + 1) * row);
+                                    for r in table[lo..hi].chunks_exact(ns) {
+                                        for (a, x) in acc.iter_mut().zip(r) {
+                                            *a += x;
+                                        }
+                                    }
                                 }
-                            }
+                                std::hint::black_box(acc);
+                            });
                         }
-                        std::hint::black_box(acc);
                     });
-                }
-            });
-            t0.elapsed().as_secs_f64() * 1e6 / bins as f64
+                    t0.elapsed().as_secs_f64() * 1e6 / bins as f64
+                })
+                .collect();
+            passes.sort_by(|a, b| a.total_cmp(b));
+            passes[1]
         })
-        .collect();
-    passes.sort_by(|a, b| a.total_cmp(b));
-    passes[1]
+        .collect()
 }
 
 /// Times whole trials through the daemon's threaded engine (`auspexd::ThreadedDecoder`: a
@@ -211,6 +214,7 @@ pub fn thread_scaling(
     let mut points = Vec::new();
     for &(nu, ns) in sizes {
         let m = synthetic_model(nu, ns);
+        let floors = stream_floor_us(nu, ns, max_threads.max(1) as usize);
         let mut one = None;
         for threads in 1..=max_threads.max(1) {
             let (us, _) = thread_point(&m, threads, Duration::from_millis(1500))?;
@@ -222,7 +226,7 @@ pub fn thread_scaling(
                 us_per_bin: us,
                 headroom: 1000.0 / us,
                 speedup: base / us,
-                floor_us_per_bin: stream_floor_us(nu, ns, threads as usize),
+                floor_us_per_bin: floors[threads as usize - 1],
             };
             println!(
                 "{:>6} × {:<4} {:>8} {:>12.1} {:>9.1}× {:>7.2}× {:>11.1} µs",
