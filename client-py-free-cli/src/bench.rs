@@ -6,8 +6,8 @@
 use auspex_engine::count::CountParams;
 use auspex_engine::engine::{Decoder, Engine, EngineConfig, NullSink};
 use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
-use auspex_engine::simulate::{simulate, SimOptions};
 use auspex_engine::{LookupBudget, PreparedModel};
+use auspex_modelling::simulate::{simulate, SimOptions};
 use auspex_proto::v1::{self, inbound::Body};
 use bytes::Bytes;
 use prost::Message;

@@ -155,7 +155,7 @@ enum Cmd {
         /// Recalibrate the posterior on held-out folds so thresholds keep their promise: none,
         /// temperature (one factor) or banded-temperature (one per band of time since onset)
         #[arg(long, default_value = "temperature", value_parser = parse_calibration)]
-        calibration: auspex_engine::calibrate::CalibrationMethod,
+        calibration: auspex_engine::calibration::CalibrationMethod,
         /// Folds of the held-out decoding the calibration and the threshold evidence come from
         /// (0: skip it; the model then carries no evidence for --target-accuracy)
         #[arg(long, default_value_t = 5)]
@@ -719,8 +719,8 @@ fn main() {
 }
 
 /// Parses a calibration method name, listing the choices when it is unknown.
-fn parse_calibration(s: &str) -> Result<auspex_engine::calibrate::CalibrationMethod, String> {
-    use auspex_engine::calibrate::CalibrationMethod;
+fn parse_calibration(s: &str) -> Result<auspex_engine::calibration::CalibrationMethod, String> {
+    use auspex_engine::calibration::CalibrationMethod;
     CalibrationMethod::parse(s).ok_or_else(|| {
         format!(
             "unknown calibration {s:?}; choose one of: {}",

@@ -7,9 +7,9 @@
 use auspex::live::status;
 use auspex::tables::Source;
 use auspex::wire::{dataset_messages, read_recording};
-use auspex_engine::fit::{plan, FitOptions};
-use auspex_engine::simulate::{simulate, Scenario, SimOptions};
 use auspex_engine::Model;
+use auspex_modelling::fit::{plan, FitOptions};
+use auspex_modelling::simulate::{simulate, Scenario, SimOptions};
 use auspex_proto::v1;
 use prost::Message;
 use std::time::{Duration, Instant};

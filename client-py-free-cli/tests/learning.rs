@@ -4,12 +4,12 @@
 //! the generating model.
 
 use auspex::prequential::{run_recording, tables_as_recording, Schedule};
-use auspex_engine::assess::Verdict;
 use auspex_engine::engine::{EngineConfig, EngineSink, UnitSummaries};
-use auspex_engine::learn::LearnOptions;
-use auspex_engine::simulate::{simulate, Scenario, SimOptions};
-use auspex_engine::stats::mutual_info_bits;
+use auspex_engine::information::mutual_info_bits;
 use auspex_engine::Model;
+use auspex_modelling::assess::Verdict;
+use auspex_modelling::learn::LearnOptions;
+use auspex_modelling::simulate::{simulate, Scenario, SimOptions};
 
 const SCENARIO: &str = r#"
 description = "two units: one tuned in count and latency, one untuned (test scenario)"
@@ -62,7 +62,7 @@ fn verdicts_are_right_and_the_information_estimate_covers_the_generating_value()
     let window_ticks = (sc.window_ms / 1000.0 * 1e6) as i64;
     let rec = tables_as_recording(&data, window_ticks);
     let opts = LearnOptions {
-        fit: auspex_engine::fit::FitOptions {
+        fit: auspex_modelling::fit::FitOptions {
             window_s: sc.window_ms / 1000.0,
             ..Default::default()
         },

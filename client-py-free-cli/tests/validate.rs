@@ -5,9 +5,10 @@
 
 use auspex::tables::Source;
 use auspex::validate::{validate, ValidateOptions};
-use auspex_engine::fit::FitOptions;
-use auspex_engine::simulate::{simulate, Scenario, SimOptions};
 use auspex_engine::Model;
+use auspex_modelling::calibrate::EvidenceRecord;
+use auspex_modelling::fit::FitOptions;
+use auspex_modelling::simulate::{simulate, Scenario, SimOptions};
 
 /// Demo scenario with the four cardinal directions (two opposite pairs, whose counts match).
 fn cardinal(units: usize) -> Scenario {

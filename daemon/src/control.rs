@@ -2,8 +2,8 @@
 //! the engine thread), and everything else is answered by the engine thread through a oneshot
 //! reply with a timeout, so a stuck engine gives an error reply rather than a hung client.
 
-use crate::engine_thread::EngineInput;
 use crate::ingest::forward;
+use crate::messages::EngineInput;
 use auspex_engine::LookupBudget;
 use auspex_proto::v1::{control_request::Body, ControlReply, ControlRequest};
 use bytes::Bytes;

@@ -10,21 +10,22 @@
 //!
 //! Must not: block on the learner or the recorder's disk, fit models, or allocate per spike.
 
-use crate::learner::{Cadence, LearnMsg, Learned};
+use crate::learner::{Cadence, LearnMsg};
+use crate::messages::{EngineInput, Learned, ShardEvent, RELAY_ENDPOINT};
 use crate::next_stimulus::StimulusChooser;
 use crate::promise::PromiseKeeper;
 use crate::publish::Publisher;
 use crate::ratelog::RateLimitedLog;
 use crate::recorder::RecorderMsg;
-use crate::shard_link::{Link, ShardEvent};
+use crate::shard_link::Link;
 use crate::workers::{OwnedPartial, Workers};
-use auspex_engine::assess::{assess, peak_ms, tuning, VerdictRule};
 use auspex_engine::engine::{
     Counters, Decision, DecisionReason, Engine, EngineConfig, EngineError, EngineSink, Frame, Role,
     TrialEnd, TrialOutcome, UnitSummaries,
 };
-use auspex_engine::learn::{LearnOptions, TrialWindow, WindowCollector};
 use auspex_engine::PreparedModel;
+use auspex_modelling::assess::{assess, peak_ms, tuning, VerdictRule};
+use auspex_modelling::learn::{LearnOptions, TrialWindow, WindowCollector};
 use auspex_proto::stream::{apply_body, remember_onset, TrialStimuli};
 use auspex_proto::topic;
 use auspex_proto::v1::{self, control_request, inbound, outbound, ControlReply};
@@ -36,73 +37,10 @@ use std::path::PathBuf;
 use std::sync::atomic::Ordering;
 use std::sync::Arc;
 use std::time::{Duration, Instant};
-use tokio::sync::oneshot;
 
 mod sink;
 mod status;
 use sink::{PubSink, SessionTally};
-
-/// What the engine thread receives.
-pub enum EngineInput {
-    /// Raw bytes from an ingest endpoint.
-    Inbound {
-        /// 0 main ingest, 1 task ingest.
-        endpoint: u32,
-        /// The message.
-        bytes: Bytes,
-        /// Wall-clock receive time.
-        received_ns: i64,
-    },
-    /// A control request (other than reload and save).
-    Control {
-        /// The request.
-        body: control_request::Body,
-        /// Where the reply goes.
-        reply: oneshot::Sender<ControlReply>,
-    },
-    /// A model already loaded by the control task.
-    Reload {
-        /// The model.
-        model: Arc<PreparedModel>,
-        /// Its path.
-        path: String,
-        /// Where the reply goes.
-        reply: oneshot::Sender<ControlReply>,
-    },
-    /// Save the learned model (forwarded to the learner thread, which replies).
-    SaveLearned {
-        /// Model file path.
-        path: PathBuf,
-        /// The reply.
-        reply: oneshot::Sender<Result<String, String>>,
-    },
-    /// A model the learner thread fitted.
-    Learned(Learned),
-    /// Why the learner could not fit (yet).
-    LearnNote {
-        /// Session counter.
-        epoch: u64,
-        /// The reason.
-        text: String,
-    },
-    /// A message the combiner relayed to this shard (applied like ingest, not recorded: the
-    /// combiner records it).
-    Relay {
-        /// The Inbound message.
-        bytes: Bytes,
-        /// The combiner's decoder when it applied it.
-        decoder: String,
-        /// Wall-clock receive time.
-        received_ns: i64,
-    },
-    /// From a combiner's link tasks.
-    FromShard(ShardEvent),
-    /// Stop: end open trials, publish, flush.
-    Shutdown,
-}
-
-/// The endpoint number relayed messages carry (0 main ingest, 1 task ingest).
-pub const RELAY_ENDPOINT: u32 = 2;
 
 /// Daemon-level counters (the engine keeps its own).
 #[derive(Default, Debug, Clone)]

@@ -2,20 +2,13 @@
 //! bounded channel to the engine thread. Nothing is dropped here: when the channel is full the
 //! task waits (backpressure reaches the sender through ZeroMQ), and health reports the backlog.
 
-use crate::engine_thread::EngineInput;
+use crate::clock::now_ns;
+use crate::messages::EngineInput;
 use bytes::Bytes;
 use crossbeam_channel::{Sender, TrySendError};
 use std::time::Duration;
 use tokio::sync::watch;
 use zeromq::{Socket, SocketRecv, ZmqMessage};
-
-/// Nanoseconds since the Unix epoch (wall clock; used for recording and latency only).
-pub fn now_ns() -> i64 {
-    std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .map(|d| d.as_nanos() as i64)
-        .unwrap_or(0)
-}
 
 /// The payload of an inbound ZeroMQ message: its last frame (so PUB senders may prefix a topic).
 pub fn payload(m: ZmqMessage) -> Bytes {

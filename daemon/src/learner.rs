@@ -7,10 +7,10 @@
 //! Must not: run on the engine thread or the I/O runtime (a refit takes from milliseconds to
 //! seconds), or touch the engine: models travel as messages.
 
-use crate::engine_thread::EngineInput;
-use auspex_engine::fit::fit_cell;
-use auspex_engine::learn::{LearnOptions, Learner, TrialWindow};
+use crate::messages::{EngineInput, Learned};
 use auspex_engine::{LookupBudget, Model, ModelSpec, PreparedModel};
+use auspex_modelling::fit::fit_cell;
+use auspex_modelling::learn::{LearnOptions, Learner, TrialWindow};
 use crossbeam_channel::{Receiver, RecvTimeoutError, Sender};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
@@ -71,18 +71,6 @@ pub enum LearnMsg {
         /// The reply.
         reply: oneshot::Sender<Result<String, String>>,
     },
-}
-
-/// A learned model, ready to swap in.
-pub struct Learned {
-    /// Session counter it belongs to.
-    pub epoch: u64,
-    /// The prepared model.
-    pub model: Arc<PreparedModel>,
-    /// Labelled trials it was fitted on (the learner's count, the recording's marker).
-    pub trials: u64,
-    /// Wall time the fit and preparation took.
-    pub fit_s: f64,
 }
 
 /// Handle to the learner thread.

@@ -12,6 +12,7 @@
 #![deny(missing_docs)]
 
 pub mod cli;
+mod clock;
 pub mod config;
 mod control;
 #[cfg(feature = "fuzzing")]
@@ -20,6 +21,10 @@ pub mod engine_thread;
 mod engine_thread;
 mod ingest;
 mod learner;
+#[cfg(feature = "fuzzing")]
+pub mod messages;
+#[cfg(not(feature = "fuzzing"))]
+mod messages;
 mod next_stimulus;
 mod promise;
 #[cfg(feature = "fuzzing")]
@@ -33,6 +38,7 @@ pub mod service;
 pub mod shard_link;
 #[cfg(not(feature = "fuzzing"))]
 mod shard_link;
+mod start_error;
 mod workers;
 
 pub use workers::{ThreadedDecoder, WorkersStalled};

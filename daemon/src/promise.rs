@@ -2,14 +2,14 @@
 //! threshold and minimum time come from the model's held-out record (and threshold decisions are
 //! withheld when the record cannot support the target); once trials are labelled, every
 //! threshold decision is added to the watch of its promised level (Page's CUSUM, see
-//! `auspex_engine::calibrate::PromiseWatch`), and a level whose watch raises its alarm is
+//! `auspex_modelling::calibrate::PromiseWatch`), and a level whose watch raises its alarm is
 //! reported in health and logged once.
 //!
 //! Must not: touch the engine (the engine thread applies the policy this returns) or block.
 
-use auspex_engine::calibrate::{PromiseWatch, WATCH_ALARM};
 use auspex_engine::engine::{DecisionPolicy, EngineConfig};
 use auspex_engine::Model;
+use auspex_modelling::calibrate::{PromiseWatch, WATCH_ALARM};
 use auspex_proto::v1;
 
 /// How the threshold is chosen, and the session's watches.
@@ -67,7 +67,7 @@ impl PromiseKeeper {
         model: Option<&Model>,
         config: &EngineConfig,
     ) -> Result<(DecisionPolicy, String), String> {
-        auspex_engine::decision::policy_for_target(target, model, config)
+        auspex_engine::engine::policy_for_target(target, model, config)
     }
 
     /// Sets (or clears) the target; with a target, the policy to apply, or Err when `model`

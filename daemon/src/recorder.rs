@@ -145,7 +145,7 @@ fn run(
                     count(&mut errors);
                     tracing::error!(file = %path.display(), error = %e, "session recording: flush failed");
                 }
-                match open(&to, model_path, crate::ingest::now_ns()) {
+                match open(&to, model_path, crate::clock::now_ns()) {
                     Ok(nw) => {
                         tracing::info!(closed = %path.display(), "session recording closed; the next session records to a new file");
                         w = nw;

@@ -3,84 +3,24 @@
 //! trigger as an argument so tests can drive it; `start` returns the bound endpoints (useful
 //! with port 0) and a handle to stop.
 
+use crate::clock::mono_ns;
 use crate::config::{DaemonConfig, Deployment, IngestPattern};
-use crate::engine_thread::{EngineInput, EngineThread, EngineThreadSetup, LearnSetup};
+use crate::engine_thread::{EngineThread, EngineThreadSetup, LearnSetup};
 use crate::learner::LearnerThread;
+use crate::messages::EngineInput;
 use crate::publish::{bind_pub, run_publisher, PublishStats, Publisher};
 use crate::recorder::{resolve_path, Recorder};
-use crate::shard_link::{mono_ns, Link, ShardView};
+use crate::shard_link::{Link, ShardView};
 use auspex_engine::engine::EngineConfig;
-use auspex_engine::fit::FitOptions;
-use auspex_engine::learn::LearnOptions;
+use auspex_modelling::fit::FitOptions;
+use auspex_modelling::learn::LearnOptions;
 use std::future::Future;
 use std::sync::Arc;
 use tokio::sync::watch;
 use tokio::task::JoinHandle;
 use zeromq::Socket;
 
-/// Why the daemon could not start. (Causes are part of the message, not separate sources, so
-/// an error chain names them once.)
-#[derive(Debug, thiserror::Error)]
-pub enum StartError {
-    /// The model file could not be loaded.
-    #[error(transparent)]
-    Model(#[from] auspex_proto::model_file::ModelLoadError),
-    /// The model file could not be read again for its checksum (shards and combiner).
-    #[error("{path}: cannot read the model file: {cause}")]
-    ModelRead {
-        /// The file.
-        path: std::path::PathBuf,
-        /// The cause.
-        cause: std::io::Error,
-    },
-    /// A socket could not be bound (address in use, bad interface, no permission…).
-    #[error("cannot bind {socket} endpoint {endpoint}: {cause}")]
-    Bind {
-        /// Which socket (ingest, task ingest, publish, control, link).
-        socket: &'static str,
-        /// The endpoint as configured.
-        endpoint: String,
-        /// The cause.
-        cause: zeromq::ZmqError,
-    },
-    /// The session recording could not be created.
-    #[error("{path}: cannot create the session recording: {cause}")]
-    Recording {
-        /// The file.
-        path: std::path::PathBuf,
-        /// The cause.
-        cause: std::io::Error,
-    },
-    /// The model's held-out record cannot support the target accuracy.
-    #[error("{model}: target accuracy {target}: {reason}")]
-    Promise {
-        /// The model file.
-        model: String,
-        /// The target asked for.
-        target: f64,
-        /// Why not.
-        reason: String,
-    },
-    /// Learning cannot work with these settings.
-    #[error("learning: {0}")]
-    Learning(String),
-    /// The engine refused the model or settings.
-    #[error("{model}: {cause}")]
-    Engine {
-        /// The model file.
-        model: String,
-        /// The cause.
-        cause: auspex_engine::engine::EngineError,
-    },
-    /// A thread or runtime task could not be started.
-    #[error("cannot start the {what}: {cause}")]
-    Spawn {
-        /// The engine or learner thread, or the ingest socket's subscription.
-        what: &'static str,
-        /// The cause.
-        cause: String,
-    },
-}
+pub use crate::start_error::StartError;
 
 fn bind_error(socket: &'static str, endpoint: &str) -> impl FnOnce(zeromq::ZmqError) -> StartError {
     let endpoint = endpoint.to_string();
@@ -255,7 +195,7 @@ pub async fn start(cfg: DaemonConfig) -> Result<Running, StartError> {
                 .unwrap_or(0);
             let path = resolve_path(p, now_s);
             Some(
-                Recorder::start(path.clone(), &model_label, crate::ingest::now_ns()).map_err(
+                Recorder::start(path.clone(), &model_label, crate::clock::now_ns()).map_err(
                     |cause| StartError::Recording {
                         path: path.clone(),
                         cause,
@@ -318,7 +258,7 @@ pub async fn start(cfg: DaemonConfig) -> Result<Running, StartError> {
                 ..LearnOptions::default()
             };
             // Refuse now what could never fit (a window that is no whole number of bins).
-            auspex_engine::fit::window_bins(bin_width_s, window_s, 1.0 / bin_width_s)
+            auspex_modelling::fit::window_bins(bin_width_s, window_s, 1.0 / bin_width_s)
                 .map_err(|e| StartError::Learning(e.to_string()))?;
             let thread = LearnerThread::start(
                 options.clone(),

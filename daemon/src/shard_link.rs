@@ -18,9 +18,9 @@
 //! Must not: decode, decide or reorder anything; block the engine thread (it only ever
 //! `try_send`s to these tasks).
 
-use crate::engine_thread::EngineInput;
+use crate::clock::mono_ns;
 use crate::ingest::forward;
-use auspex_engine::engine::OwnedPartial;
+use crate::messages::{EngineInput, ShardEvent};
 use auspex_engine::engine::Partial;
 use auspex_proto::v1::{self, shard_link};
 use crossbeam_channel::Sender;
@@ -40,30 +40,6 @@ pub const COMBINER_SILENCE: Duration = Duration::from_secs(2);
 const BUSY_RETRY: Duration = Duration::from_secs(1);
 /// Longest a send to the other side may wait (a full queue to a peer that has stopped reading).
 const SEND_WAIT: Duration = Duration::from_millis(200);
-
-/// What a combiner's link tasks tell its engine thread.
-#[derive(Debug)]
-pub enum ShardEvent {
-    /// The shard greeted with the same model: its partials count from the next trial.
-    Joined {
-        /// Part.
-        part: u32,
-    },
-    /// The shard fell silent past the deadline, or answered with another model or part.
-    Lost {
-        /// Part.
-        part: u32,
-        /// Why, in words.
-        why: String,
-    },
-    /// One partial.
-    Partial {
-        /// Part.
-        part: u32,
-        /// The partial.
-        partial: OwnedPartial,
-    },
-}
 
 /// A shard's partial as it travels.
 pub fn partial_msg(p: &Partial<'_>) -> Vec<u8> {
@@ -86,12 +62,6 @@ fn frame(body: shard_link::Body) -> ZmqMessage {
 fn decode(m: ZmqMessage) -> Option<shard_link::Body> {
     let bytes = crate::ingest::payload(m);
     v1::ShardLink::decode(bytes.as_ref()).ok()?.body
-}
-
-/// Nanoseconds on a monotonic clock shared by the link tasks and status.
-pub fn mono_ns() -> i64 {
-    static START: std::sync::OnceLock<Instant> = std::sync::OnceLock::new();
-    START.get_or_init(Instant::now).elapsed().as_nanos() as i64
 }
 
 /// The shard's side: answers its combiner's greeting (and refuses any other combiner's), hands
@@ -155,7 +125,7 @@ pub async fn run_shard_link(
                     }
                     Some(shard_link::Body::Relay(r)) if ours => {
                         combiner = Some((id, Instant::now()));
-                        let item = EngineInput::Relay { bytes: r.inbound.into(), decoder: r.decoder, received_ns: crate::ingest::now_ns() };
+                        let item = EngineInput::Relay { bytes: r.inbound.into(), decoder: r.decoder, received_ns: crate::clock::now_ns() };
                         if !forward(&engine_tx, item).await {
                             break;
                         }

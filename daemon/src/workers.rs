@@ -336,16 +336,16 @@ impl ThreadedDecoder {
     pub fn start(
         model: Arc<PreparedModel>,
         threads: u32,
-    ) -> Result<Self, crate::service::StartError> {
+    ) -> Result<Self, crate::start_error::StartError> {
         let mut cfg = EngineConfig::new(1000.0);
         cfg.role = combiner_role(threads);
         let engine =
-            Engine::new(model, cfg).map_err(|cause| crate::service::StartError::Engine {
+            Engine::new(model, cfg).map_err(|cause| crate::start_error::StartError::Engine {
                 model: "benchmark model".into(),
                 cause,
             })?;
         let mut workers =
-            Workers::start(threads).map_err(|e| crate::service::StartError::Spawn {
+            Workers::start(threads).map_err(|e| crate::start_error::StartError::Spawn {
                 what: "engine worker threads",
                 cause: e.to_string(),
             })?;

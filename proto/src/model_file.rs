@@ -3,7 +3,7 @@
 //! and the command-line client both load and save through here.
 
 use crate::v1;
-use auspex_engine::calibrate::{Calibration, CalibrationMethod, ThresholdEvidence};
+use auspex_engine::calibration::{Calibration, CalibrationMethod, ThresholdEvidence};
 use auspex_engine::count::{CountFamily, CountParams};
 use auspex_engine::model::{CellSpec, CellSummary, ModelSpec};
 use std::path::Path;

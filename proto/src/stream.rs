@@ -12,7 +12,7 @@
 
 use crate::v1::inbound::Body;
 use auspex_engine::engine::{Engine, EngineError, EngineSink};
-use auspex_engine::learn::{TrialWindow, WindowCollector};
+use auspex_modelling::learn::{TrialWindow, WindowCollector};
 use std::collections::{HashMap, VecDeque};
 use std::sync::Arc;
 

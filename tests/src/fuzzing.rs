@@ -276,7 +276,8 @@ fn inbound_message(b: &mut Bytes<'_>, last: &mut i64) -> Option<Vec<u8>> {
 /// Inbound messages, structured and raw, through the daemon's engine thread (the same code the
 /// running daemon uses: checks, sessions, engine, publishing), then a shutdown.
 pub fn inbound_messages(data: &[u8]) {
-    use auspexd::engine_thread::{EngineInput, EngineThread, EngineThreadSetup};
+    use auspexd::engine_thread::{EngineThread, EngineThreadSetup};
+    use auspexd::messages::EngineInput;
     let (pub_tx, _pub_rx) = tokio::sync::mpsc::channel(1 << 16);
     let stats = Arc::new(auspexd::publish::PublishStats::default());
     let mut b = Bytes(data);
@@ -422,7 +423,7 @@ pub fn toml_config(data: &[u8]) {
 
 /// A scenario file: checked, its true model built, and small sessions simulated.
 pub fn scenario(data: &[u8]) {
-    use auspex_engine::simulate::{simulate, Scenario};
+    use auspex_modelling::simulate::{simulate, Scenario};
     let text = String::from_utf8_lossy(data);
     let Ok(sc) = toml::from_str::<Scenario>(&text) else {
         return;

@@ -5,9 +5,9 @@
 use auspex::offline::run_dataset;
 use auspex::wire::dataset_messages;
 use auspex_engine::engine::{EngineConfig, EngineSink, Frame};
-use auspex_engine::fit::{plan, FitOptions};
-use auspex_engine::simulate::{simulate, Scenario, SimOptions};
 use auspex_engine::{Dataset, Model};
+use auspex_modelling::fit::{plan, FitOptions};
+use auspex_modelling::simulate::{simulate, Scenario, SimOptions};
 use auspex_proto::v1::{self, control_request, outbound};
 use auspexd::config::{validate, FileConfig};
 

@@ -8,10 +8,10 @@
 use auspex::prequential::{run_recording, Schedule};
 use auspex::wire::{dataset_messages, read_recording};
 use auspex_engine::engine::{EngineConfig, EngineSink, Frame};
-use auspex_engine::fit::{plan, FitOptions};
-use auspex_engine::learn::LearnOptions;
-use auspex_engine::simulate::{simulate, Scenario, SimOptions};
 use auspex_engine::{Dataset, Model};
+use auspex_modelling::fit::{plan, FitOptions};
+use auspex_modelling::learn::LearnOptions;
+use auspex_modelling::simulate::{simulate, Scenario, SimOptions};
 use auspex_proto::v1::{self, control_request, inbound::Body, outbound};
 use auspexd::config::{validate, FileConfig};
 
@@ -323,7 +323,7 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
     };
     let mut fitted = plan(&rec.dataset, &fit_opts).unwrap().fit_all();
     // Calibrated as `auspex fit` calibrates: 5 held-out folds, seed 1, temperature, 20 ms.
-    let set = auspex_engine::calibrate::held_out_set(
+    let set = auspex_modelling::calibrate::held_out_set(
         &rec.dataset,
         &fit_opts,
         &fitted.stimuli,
@@ -332,8 +332,11 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
         &|p| p.fit_all(),
     )
     .unwrap();
-    fitted.calibration =
-        auspex_engine::calibrate::calibrate(&set, auspex_engine::calibrate::DEFAULT_METHOD, 0.02);
+    fitted.calibration = auspex_modelling::calibrate::calibrate(
+        &set,
+        auspex_modelling::calibrate::DEFAULT_METHOD,
+        0.02,
+    );
     assert!(spec.calibration.is_active() && !spec.calibration.evidence.is_empty());
     assert!(spec.units.contains(&late));
     assert!(

@@ -5,11 +5,12 @@
 
 use auspex::offline::run_dataset;
 use auspex::wire::dataset_messages;
-use auspex_engine::calibrate::{calibrate, held_out_set, CalibrationMethod};
+use auspex_engine::calibration::CalibrationMethod;
 use auspex_engine::engine::{Decision, DecisionReason, EngineConfig, EngineSink};
-use auspex_engine::fit::{plan, FitOptions};
-use auspex_engine::simulate::{simulate, SimOptions};
 use auspex_engine::{Dataset, Model, ModelSpec};
+use auspex_modelling::calibrate::{calibrate, held_out_set};
+use auspex_modelling::fit::{plan, FitOptions};
+use auspex_modelling::simulate::{simulate, SimOptions};
 use auspex_proto::v1::{self, control_request};
 use auspexd::config::{validate, FileConfig};
 use prost::Message;

@@ -7,9 +7,9 @@
 use auspex::offline::run_dataset;
 use auspex::wire::dataset_messages;
 use auspex_engine::engine::{EngineConfig, EngineSink, Frame};
-use auspex_engine::fit::{plan, FitOptions};
-use auspex_engine::simulate::{simulate, SimOptions};
 use auspex_engine::{Dataset, Model};
+use auspex_modelling::fit::{plan, FitOptions};
+use auspex_modelling::simulate::{simulate, SimOptions};
 use auspex_proto::v1::{self, inbound::Body, outbound};
 use auspexd::config::{validate, FileConfig};
 use auspexd::service::Running;

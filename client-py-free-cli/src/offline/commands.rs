@@ -4,11 +4,13 @@ use crate::fitting::{cell_table, fit_dataset, parse_families};
 use crate::offline::{run_dataset, score, write_decisions, CsvSink};
 use crate::tables::{write_dataset, Source};
 use anyhow::{bail, Context};
-use auspex_engine::calibrate::{calibrate, held_out_set, Calibration, CalibrationMethod};
+use auspex_engine::calibration::{Calibration, CalibrationMethod};
 use auspex_engine::engine::{DecisionPolicy, Decoder, EngineConfig};
-use auspex_engine::fit::FitOptions;
-use auspex_engine::simulate::{simulate, Scenario, SimOptions};
 use auspex_engine::{Dataset, Model};
+use auspex_modelling::calibrate::EvidenceRecord;
+use auspex_modelling::calibrate::{calibrate, held_out_set};
+use auspex_modelling::fit::FitOptions;
+use auspex_modelling::simulate::{simulate, Scenario, SimOptions};
 use auspex_proto::model_file::{load_model, save_model};
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
@@ -137,7 +139,7 @@ impl Default for FitArgs {
 }
 
 /// The recalibration `fit` applies unless told otherwise.
-pub const DEFAULT_CALIBRATION: CalibrationMethod = auspex_engine::calibrate::DEFAULT_METHOD;
+pub const DEFAULT_CALIBRATION: CalibrationMethod = auspex_modelling::calibrate::DEFAULT_METHOD;
 
 /// `fit`: plans and fits the cells, calibrates on held-out folds, writes the model file.
 pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Model> {
@@ -148,9 +150,9 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
         prior_from_frequencies: args.prior_from_frequencies,
         bandwidth: Default::default(),
         shrinkage: if args.shrink {
-            auspex_engine::fit::Shrinkage::EmpiricalBayes
+            auspex_modelling::fit::Shrinkage::EmpiricalBayes
         } else {
-            auspex_engine::fit::Shrinkage::Off
+            auspex_modelling::fit::Shrinkage::Off
         },
     };
     let quiet = args.quiet;
@@ -398,7 +400,7 @@ pub fn promise_for(
     let mut cfg = EngineConfig::new(1.0);
     cfg.decoder = decoder;
     cfg.calibrated = calibrated;
-    let (policy, evidence) = auspex_engine::decision::policy_for_target(target, Some(model), &cfg)
+    let (policy, evidence) = auspex_engine::engine::policy_for_target(target, Some(model), &cfg)
         .map_err(|e| anyhow::anyhow!("--target-accuracy {target}: {e}"))?;
     let line = format!(
         "target accuracy {target}: deciding at threshold {} after {:.0} ms — {evidence}",
@@ -507,7 +509,7 @@ pub fn decode_prequential_cmd(
     if args.target_accuracy.is_some() {
         bail!("--target-accuracy needs a fitted model's held-out record; with --prequential give --threshold");
     }
-    let mut opts = auspex_engine::learn::LearnOptions {
+    let mut opts = auspex_modelling::learn::LearnOptions {
         fit: FitOptions {
             bin_width_s: p.bin_ms / 1000.0,
             window_s: p.window_ms / 1000.0,

@@ -2,16 +2,15 @@
 
 use auspex_engine::count::CountFamily;
 use auspex_engine::data::Dataset;
-use auspex_engine::fit::{fit_cell, plan, FitOptions, FitPlan};
 use auspex_engine::model::{CellSpec, ModelSpec};
+use auspex_modelling::fit::{plan, FitOptions, FitPlan};
 use indicatif::{ProgressBar, ProgressStyle};
-use std::sync::atomic::{AtomicUsize, Ordering};
 
-/// Fits every cell of `plan` in parallel; `progress` shows a bar on a terminal.
+/// Fits every cell of `plan` on every core (`auspex_modelling::fit::fit_cells`); `progress`
+/// shows a bar on a terminal.
 pub fn fit_cells(plan: &FitPlan, progress: bool) -> Vec<CellSpec> {
-    let n = plan.cells.len();
     let bar = if progress {
-        ProgressBar::new(n as u64)
+        ProgressBar::new(plan.cells.len() as u64)
     } else {
         ProgressBar::hidden()
     };
@@ -20,50 +19,9 @@ pub fn fit_cells(plan: &FitPlan, progress: bool) -> Vec<CellSpec> {
             .expect("static template")
             .progress_chars("█▉▊▋▌▍▎▏ "),
     );
-    let next = AtomicUsize::new(0);
-    let threads = std::thread::available_parallelism()
-        .map(|n| n.get())
-        .unwrap_or(1)
-        .min(n.max(1));
-    let mut out: Vec<Option<CellSpec>> = vec![None; n];
-    let results: Vec<Vec<(usize, CellSpec)>> = std::thread::scope(|s| {
-        let handles: Vec<_> = (0..threads)
-            .map(|_| {
-                s.spawn(|| {
-                    let mut mine = Vec::new();
-                    loop {
-                        let i = next.fetch_add(1, Ordering::Relaxed);
-                        if i >= n {
-                            break;
-                        }
-                        mine.push((
-                            i,
-                            fit_cell(
-                                &plan.cells[i],
-                                plan.n_bins,
-                                plan.bin_width_s,
-                                &plan.families,
-                                plan.bandwidth,
-                            ),
-                        ));
-                        bar.inc(1);
-                    }
-                    mine
-                })
-            })
-            .collect();
-        handles
-            .into_iter()
-            .map(|h| h.join().expect("fit worker panicked"))
-            .collect()
-    });
+    let cells = auspex_modelling::fit::fit_cells(plan, &|| bar.inc(1));
     bar.finish_and_clear();
-    for (i, c) in results.into_iter().flatten() {
-        out[i] = Some(c);
-    }
-    out.into_iter()
-        .map(|c| c.expect("every cell fitted"))
-        .collect()
+    cells
 }
 
 /// Plans and fits a dataset.

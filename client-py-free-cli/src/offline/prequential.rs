@@ -11,12 +11,12 @@ use crate::fitting::fit_cells;
 use crate::offline::DecisionRow;
 use crate::wire::RecordedSession;
 use anyhow::Context;
-use auspex_engine::assess::{assess, Assessment, VerdictRule};
 use auspex_engine::engine::{
     Decision, Engine, EngineConfig, EngineSink, Frame, TrialEnd, UnitSummaries,
 };
-use auspex_engine::learn::{LearnOptions, Learner, TrialWindow, WindowCollector};
 use auspex_engine::{CountFamily, LookupBudget, Model};
+use auspex_modelling::assess::{assess, Assessment, VerdictRule};
+use auspex_modelling::learn::{LearnOptions, Learner, TrialWindow, WindowCollector};
 use auspex_proto::stream::{apply_body, remember_onset, TrialStimuli};
 use auspex_proto::v1::inbound::Body;
 use std::collections::{HashMap, VecDeque};

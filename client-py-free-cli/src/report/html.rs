@@ -5,6 +5,7 @@
 use crate::validate::{
     histogram, Extras, UnitFigures, UnitReport, Validation, RASTER_TRIALS, UNIT_FIGURES_MAX,
 };
+use auspex_modelling::calibrate::EvidenceRecord;
 use std::fmt::Write;
 
 /// Okabe & Ito's colour-blind-safe palette (yellow darkened to read on white), then two more.
@@ -543,7 +544,7 @@ fn promise_plot(v: &Validation) -> String {
         let col = METHOD_COLOURS[m % 4];
         // Side by side so intervals at the same threshold do not hide each other.
         let dx = (m as f64 - (methods.len() as f64 - 1.0) / 2.0) * 0.0025;
-        let pts: Vec<&auspex_engine::calibrate::ThresholdEvidence> =
+        let pts: Vec<&auspex_engine::calibration::ThresholdEvidence> =
             mr.record.iter().filter(|e| e.threshold >= 0.8).collect();
         let pts: Vec<_> = pts.into_iter().filter(|e| e.early > 0).collect();
         let line: Vec<(f64, f64)> = pts
@@ -604,7 +605,7 @@ fn promise_plot(v: &Validation) -> String {
 fn promise_time_plot(v: &Validation) -> String {
     let methods = &v.calibration.methods;
     // Up to θ = 0.99: beyond it decisions drift to the window end and squash the rest.
-    let shown = |e: &&auspex_engine::calibrate::ThresholdEvidence| {
+    let shown = |e: &&auspex_engine::calibration::ThresholdEvidence| {
         e.threshold >= 0.8 && e.threshold <= 0.99 + 1e-9
     };
     let tmax = methods

@@ -52,15 +52,6 @@ pub fn seconds_to_ticks(t: f64, tick_rate_hz: f64) -> i64 {
     (t * tick_rate_hz).round() as i64
 }
 
-/// Per-unit, per-trial window contents (see [`Dataset::windows`]).
-#[derive(Clone, Debug, Default)]
-pub struct UnitWindows {
-    /// counts[u][trial]
-    pub counts: Vec<Vec<u32>>,
-    /// times[u][trial]: spike times in bins from onset.
-    pub times: Vec<Vec<Vec<f64>>>,
-}
-
 /// Most spikes in one batch that crosses a gap between trial windows.
 pub const GAP_BATCH_SPIKES: usize = 65_536;
 
@@ -193,30 +184,6 @@ impl Dataset {
             wm = next;
         }
         out
-    }
-
-    /// For every unit in `units` (index order) and every trial: the window's spike count and
-    /// spike times in bin units from onset. One pass over the trial windows.
-    pub fn windows(&self, units: &[u32], bin_ticks: i64, n_bins: usize) -> UnitWindows {
-        let index: std::collections::HashMap<u32, usize> =
-            units.iter().enumerate().map(|(i, &u)| (u, i)).collect();
-        let nt = self.trials.len();
-        let mut counts = vec![vec![0u32; nt]; units.len()];
-        let mut times = vec![vec![Vec::new(); nt]; units.len()];
-        let window = bin_ticks * n_bins as i64;
-        for (i, t) in self.trials.iter().enumerate() {
-            let a = self.spikes.partition_point(|s| s.0 < t.onset);
-            let b = self
-                .spikes
-                .partition_point(|s| s.0 < t.onset.saturating_add(window));
-            for &(tick, unit) in &self.spikes[a..b] {
-                if let Some(&u) = index.get(&unit) {
-                    counts[u][i] += 1;
-                    times[u][i].push((tick - t.onset) as f64 / bin_ticks as f64);
-                }
-            }
-        }
-        UnitWindows { counts, times }
     }
 
     /// The same session with only the trials at `keep` (indices into `trials`; spikes kept).

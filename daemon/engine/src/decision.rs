@@ -5,8 +5,6 @@
 //!
 //! Must not: know about trials, sinks or models; it is arithmetic on numbers it is given.
 
-use crate::engine::{Decoder, EngineConfig};
-use crate::Model;
 use serde::{Deserialize, Serialize};
 
 /// When a trial's decision fires.
@@ -101,42 +99,4 @@ pub struct Decision {
     pub presented: Option<u32>,
     /// The threshold in force for the trial (the promise a threshold decision keeps).
     pub threshold: f64,
-}
-
-/// The policy that keeps `target` accuracy with `model` under `config`'s decoder and calibration
-/// switch (the threshold its held-out record supports, and the record's minimum time), and the
-/// line stating that evidence; Err says why it cannot be kept. Used by the daemon's promise and
-/// by offline decoding alike.
-pub fn policy_for_target(
-    target: f64,
-    model: Option<&Model>,
-    config: &EngineConfig,
-) -> Result<(DecisionPolicy, String), String> {
-    if !(target > 0.0 && target < 1.0) {
-        return Err(format!("target accuracy {target} must be in (0, 1)"));
-    }
-    let Some(m) = model else {
-        return Err("no model yet: the target needs a model's held-out record".into());
-    };
-    if config.decoder != Decoder::OrderStats {
-        return Err(format!(
-            "the target needs the order-stats decoder (the held-out record is of it), not {}",
-            config.decoder.name()
-        ));
-    }
-    let c = m.calibration();
-    if !config.calibrated && c.is_active() {
-        return Err(
-            "the held-out record is of the calibrated posterior; calibration is switched off"
-                .into(),
-        );
-    }
-    let e = c.threshold_for(target).map_err(|e| e.to_string())?;
-    Ok((
-        DecisionPolicy {
-            threshold: e.threshold,
-            min_time_s: c.min_time_s,
-        },
-        e.held_out_line(),
-    ))
 }

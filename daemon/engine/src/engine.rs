@@ -7,7 +7,7 @@
 //! is open (trial states are pooled; spike buffers keep their capacity). The daemon, offline
 //! decoding, validation and replay all drive this one type, so equal inputs give equal outputs.
 
-use crate::calibrate::posterior_into;
+use crate::calibration::posterior_into;
 pub use crate::decision::{
     fires, min_bin_for, Decision, DecisionPolicy, DecisionReason, DEFAULT_MIN_TIME_MS,
     DEFAULT_THRESHOLD,
@@ -20,6 +20,44 @@ use crate::tally::UnitTally;
 use serde::{Deserialize, Serialize};
 use std::collections::{HashSet, VecDeque};
 use std::sync::Arc;
+
+/// The policy that keeps `target` accuracy with `model` under `config`'s decoder and calibration
+/// switch (the threshold its held-out record supports, and the record's minimum time), and the
+/// line stating that evidence; Err says why it cannot be kept. Used by the daemon's promise and
+/// by offline decoding alike.
+pub fn policy_for_target(
+    target: f64,
+    model: Option<&Model>,
+    config: &EngineConfig,
+) -> Result<(DecisionPolicy, String), String> {
+    if !(target > 0.0 && target < 1.0) {
+        return Err(format!("target accuracy {target} must be in (0, 1)"));
+    }
+    let Some(m) = model else {
+        return Err("no model yet: the target needs a model's held-out record".into());
+    };
+    if config.decoder != Decoder::OrderStats {
+        return Err(format!(
+            "the target needs the order-stats decoder (the held-out record is of it), not {}",
+            config.decoder.name()
+        ));
+    }
+    let c = m.calibration();
+    if !config.calibrated && c.is_active() {
+        return Err(
+            "the held-out record is of the calibrated posterior; calibration is switched off"
+                .into(),
+        );
+    }
+    let e = c.threshold_for(target).map_err(|e| e.to_string())?;
+    Ok((
+        DecisionPolicy {
+            threshold: e.threshold,
+            min_time_s: c.min_time_s,
+        },
+        e.held_out_line(),
+    ))
+}
 
 /// Which likelihood turns spikes into a posterior.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize, Default, Hash)]
@@ -90,7 +128,7 @@ pub struct EngineConfig {
     /// of the per-model sums plus spiking units. Same mathematics, different summation order;
     /// kept for benchmarks and cross-checks.
     pub per_cell_reference: bool,
-    /// Apply the model's calibration (its factors β(b); see `calibrate.rs`). Off: β = 1, the
+    /// Apply the model's calibration (its factors β(b); see `calibration.rs`). Off: β = 1, the
     /// raw posterior.
     pub calibrated: bool,
     /// Which blocks of the population sum this engine computes, and what it emits.
@@ -1374,10 +1412,10 @@ impl Engine {
     }
 }
 
-/// The top entry and its value (the first one on ties; see [`crate::validation::argmax`]).
+/// The top entry and its value (the first one on ties; see [`crate::special::argmax`]).
 #[inline]
 fn argmax(p: &[f64]) -> (u32, f64) {
-    let i = crate::validation::argmax(p);
+    let i = crate::special::argmax(p);
     (i as u32, p.get(i).copied().unwrap_or(f64::NEG_INFINITY))
 }
 

@@ -5,7 +5,7 @@
 //!
 //! Must not: change after construction (hot reload builds a new `Model`), or do I/O.
 
-use crate::calibrate::Calibration;
+use crate::calibration::Calibration;
 use crate::count::{CountDist, CountError, CountFamily, CountParams};
 use serde::{Deserialize, Serialize};
 use std::collections::HashMap;

@@ -58,6 +58,17 @@ pub fn entropy_bits(p: &[f64]) -> f64 {
     p.iter().filter(|&&x| x > 0.0).map(|&x| -x * x.log2()).sum()
 }
 
+/// Index of the largest entry (the first one on ties).
+pub fn argmax<T: PartialOrd + Copy>(v: &[T]) -> usize {
+    let mut best = 0;
+    for (i, x) in v.iter().enumerate() {
+        if *x > v[best] {
+            best = i;
+        }
+    }
+    best
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -138,7 +138,7 @@ impl UnitTally {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::stats::{mutual_info_bias_bits, mutual_info_bits};
+    use crate::information::{mutual_info_bias_bits, mutual_info_bits};
 
     #[test]
     fn incremental_information_equals_the_direct_formula() {

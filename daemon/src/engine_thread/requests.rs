@@ -298,7 +298,7 @@ pub(super) fn swap_record(
     model: Option<&Arc<PreparedModel>>,
 ) -> v1::SessionRecord {
     v1::SessionRecord {
-        received_unix_ns: crate::ingest::now_ns(),
+        received_unix_ns: crate::clock::now_ns(),
         endpoint: 0,
         message: Vec::new(),
         header: None,

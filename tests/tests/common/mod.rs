@@ -115,9 +115,9 @@ pub fn frames_of(got: &[(String, v1::Outbound)]) -> Vec<(u64, u32, Vec<f64>)> {
 }
 
 /// The demo scenario cut to its first `units` units and `stimuli` stimuli.
-pub fn demo_scenario(units: usize, stimuli: usize) -> auspex_engine::simulate::Scenario {
+pub fn demo_scenario(units: usize, stimuli: usize) -> auspex_modelling::simulate::Scenario {
     let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();
-    let mut s: auspex_engine::simulate::Scenario = toml::from_str(&text).unwrap();
+    let mut s: auspex_modelling::simulate::Scenario = toml::from_str(&text).unwrap();
     s.units.truncate(units);
     s.stimuli.truncate(stimuli);
     s
@@ -135,7 +135,7 @@ pub fn runtime() -> tokio::runtime::Runtime {
 /// The demo scenario grown to `units` units (the demo's 24 repeated with new ids and turned
 /// preferred directions), for models of several unit blocks.
 #[allow(dead_code)]
-pub fn many_units_scenario(units: usize, stimuli: usize) -> auspex_engine::simulate::Scenario {
+pub fn many_units_scenario(units: usize, stimuli: usize) -> auspex_modelling::simulate::Scenario {
     let mut s = demo_scenario(usize::MAX, stimuli);
     if units <= s.units.len() {
         return demo_scenario(units, stimuli);

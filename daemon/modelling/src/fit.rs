@@ -5,10 +5,12 @@
 //! Cells are independent pure functions of their inputs, so callers may fit them in any order or
 //! in parallel (the CLI does, with a progress bar); the engine itself spawns no threads.
 
-use crate::count::{choose_family, fit_negative_binomial, with_mean, CountDist, CountFamily};
-use crate::data::{Dataset, UnitWindows};
 use crate::density::{fit_timing, BandwidthRule};
-use crate::model::{mean_var, CellSpec, CellSummary, ModelSpec};
+use crate::families::{choose_family, fit_negative_binomial, with_mean};
+use crate::windows::{windows, UnitWindows};
+use auspex_engine::count::{CountDist, CountFamily};
+use auspex_engine::data::Dataset;
+use auspex_engine::model::{mean_var, CellSpec, CellSummary, ModelSpec};
 use std::collections::BTreeMap;
 
 /// How to fit.
@@ -135,7 +137,7 @@ pub fn window_bins(
             "window {window_s} s is not a whole number of {bin_width_s} s bins"
         )));
     }
-    let bt = crate::ticks::bin_ticks(bin_width_s, tick_rate_hz)
+    let bt = auspex_engine::ticks::bin_ticks(bin_width_s, tick_rate_hz)
         .map_err(|e| FitError::Options(e.to_string()))?;
     Ok((nb as usize, bt))
 }
@@ -154,7 +156,7 @@ pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
         })
         .collect();
     let onsets: Vec<i64> = data.trials.iter().map(|t| t.onset).collect();
-    let w = data.windows(&data.units, bin_ticks, n_bins);
+    let w = windows(data, &data.units, bin_ticks, n_bins);
     plan_from_windows(
         opts,
         (n_bins, bin_ticks),
@@ -253,7 +255,7 @@ pub(crate) fn plan_from_windows(
 /// weight n/(n + κ) on its own fitted mean and gives κ/(n + κ) to the unit's pooled mean m, with
 /// κ = σ²/τ², σ² the pooled within-cell variance of the count and τ² the method-of-moments
 /// between-cell variance of the true means, `mean over cells of (x̄_s − m)² − σ²/n_s`, floored at
-/// 0 (κ then [`KAPPA_MAX`]). The family and its shape are kept ([`crate::count::with_mean`]).
+/// 0 (κ then [`KAPPA_MAX`]). The family and its shape are kept ([`crate::families::with_mean`]).
 /// Spike density: the Dirichlet–multinomial posterior mean with the unit's pooled density as
 /// prior worth [`DENSITY_PRIOR_TRIALS`] trials, i.e. `(n·q_s + a·q_pool)/(n + a)`.
 /// Returns κ.
@@ -435,10 +437,61 @@ impl FitPlan {
     }
 }
 
+/// Fits every cell of `plan` on every core (scoped threads, joined before returning), calling
+/// `on_cell` after each cell (a progress bar's tick). The result is in the plan's cell order and
+/// does not depend on the number of threads.
+pub fn fit_cells(plan: &FitPlan, on_cell: &(dyn Fn() + Sync)) -> Vec<CellSpec> {
+    use std::sync::atomic::{AtomicUsize, Ordering};
+    let n = plan.cells.len();
+    let next = AtomicUsize::new(0);
+    let threads = std::thread::available_parallelism()
+        .map(|n| n.get())
+        .unwrap_or(1)
+        .min(n.max(1));
+    let mut out: Vec<Option<CellSpec>> = vec![None; n];
+    let results: Vec<Vec<(usize, CellSpec)>> = std::thread::scope(|s| {
+        let handles: Vec<_> = (0..threads)
+            .map(|_| {
+                s.spawn(|| {
+                    let mut mine = Vec::new();
+                    loop {
+                        let i = next.fetch_add(1, Ordering::Relaxed);
+                        if i >= n {
+                            break;
+                        }
+                        mine.push((
+                            i,
+                            fit_cell(
+                                &plan.cells[i],
+                                plan.n_bins,
+                                plan.bin_width_s,
+                                &plan.families,
+                                plan.bandwidth,
+                            ),
+                        ));
+                        on_cell();
+                    }
+                    mine
+                })
+            })
+            .collect();
+        handles
+            .into_iter()
+            .map(|h| h.join().expect("fit worker panicked"))
+            .collect()
+    });
+    for (i, c) in results.into_iter().flatten() {
+        out[i] = Some(c);
+    }
+    out.into_iter()
+        .map(|c| c.expect("every cell fitted"))
+        .collect()
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::count::CountParams;
+    use auspex_engine::count::CountParams;
     use rand::{Rng, SeedableRng};
 
     fn cell(counts: &[u32]) -> CellInput {

@@ -15,7 +15,8 @@
 //!
 //! Must not: allocate on the per-bin path (it runs once per labelled trial), or do I/O.
 
-use crate::stats::{clopper_pearson, mutual_info_bias_bits};
+use crate::stats::clopper_pearson;
+use auspex_engine::information::mutual_info_bias_bits;
 use statrs::distribution::{ChiSquared, ContinuousCDF, StudentsT};
 
 /// The verdict rule's settings.

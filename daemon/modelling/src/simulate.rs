@@ -4,9 +4,9 @@
 //!
 //! Seeded ChaCha8 only: the same seed gives the same dataset on every machine.
 
-use crate::count::{CountFamily, CountParams};
-use crate::data::{Dataset, Trial};
-use crate::model::{CellSpec, CellSummary, Model, ModelSpec};
+use auspex_engine::count::{CountFamily, CountParams};
+use auspex_engine::data::{Dataset, Trial};
+use auspex_engine::model::{CellSpec, CellSummary, Model, ModelSpec};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
@@ -74,7 +74,7 @@ pub enum ScenarioError {
     Invalid(String),
     /// The derived model is invalid.
     #[error("scenario: {0}")]
-    Model(#[from] crate::model::ModelError),
+    Model(#[from] auspex_engine::model::ModelError),
 }
 
 fn gauss_bins(n_bins: usize, bin_ms: f64, centre_ms: f64, width_ms: f64) -> Vec<f64> {

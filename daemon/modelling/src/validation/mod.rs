@@ -3,34 +3,15 @@
 //! form, decisions replayed from posterior trajectories at any threshold, the discrete-time
 //! time-rescaling transform, and the Fano factor with an interval. No I/O, no threads.
 
-use crate::count::{fit_family, fit_poisson, CountDist, CountFamily};
 use crate::density::{floor_timing, kde_bin_probabilities};
+use crate::families::{fit_family, fit_poisson};
 use crate::fit::CellInput;
-use crate::model::{mean_var, CellSpec, CellSummary, Model};
-use crate::special::ln_factorial;
-use rand::seq::SliceRandom;
-use rand::SeedableRng;
-use rand_chacha::ChaCha8Rng;
-use statrs::distribution::{ChiSquared, ContinuousCDF};
+use auspex_engine::count::{CountDist, CountFamily};
 
-/// Assigns each trial a fold in `0..k`, stratified by stimulus: the trials of each stimulus are
-/// shuffled (seeded) and dealt round-robin, so every fold holds each stimulus as evenly as
-/// possible. `labels[i]` is trial i's stimulus index.
-pub fn stratified_folds(labels: &[usize], n_stimuli: usize, k: usize, seed: u64) -> Vec<usize> {
-    let mut rng = ChaCha8Rng::seed_from_u64(seed);
-    let mut fold = vec![0usize; labels.len()];
-    let mut next = 0usize;
-    for s in 0..n_stimuli {
-        let mut idx: Vec<usize> = (0..labels.len()).filter(|&i| labels[i] == s).collect();
-        idx.shuffle(&mut rng);
-        for i in idx {
-            // Continue dealing where the previous stimulus stopped, so fold sizes stay level.
-            fold[i] = next % k.max(1);
-            next += 1;
-        }
-    }
-    fold
-}
+pub mod run;
+use auspex_engine::model::{mean_var, CellSpec, CellSummary, Model};
+use auspex_engine::special::{argmax, ln_factorial};
+use statrs::distribution::{ChiSquared, ContinuousCDF};
 
 /// Refits one cell with a given family and kernel bandwidth (bins): the count parameters and
 /// the spike density are re-estimated from `input`, the model-selection choices are not.
@@ -79,17 +60,6 @@ pub fn add_window_end_log_likelihood(model: &Model, u: usize, spike_bins: &[u32]
     }
 }
 
-/// Index of the largest entry (the first one on ties).
-pub fn argmax<T: PartialOrd + Copy>(v: &[T]) -> usize {
-    let mut best = 0;
-    for (i, x) in v.iter().enumerate() {
-        if *x > v[best] {
-            best = i;
-        }
-    }
-    best
-}
-
 /// The decision the engine's policy would take on a stored trajectory (`n_bins × S` posteriors,
 /// bin-major): the first bin at or after `min_bin` whose top posterior reaches `threshold`, else
 /// the maximum a posteriori stimulus at the last bin. Returns (stimulus, bin, by_threshold).
@@ -105,7 +75,7 @@ pub fn decide(
         for b in min_bin..nb {
             let row = &trajectory[b * n_stimuli..(b + 1) * n_stimuli];
             let top = argmax(row);
-            if crate::decision::fires(b, min_bin, row[top] as f64, threshold) {
+            if auspex_engine::decision::fires(b, min_bin, row[top] as f64, threshold) {
                 return (top, b, true);
             }
         }
@@ -250,20 +220,7 @@ pub fn reliability(points: &[(f64, bool)], n_bins: usize) -> (Vec<ReliabilityBin
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::count::CountParams;
-
-    #[test]
-    fn folds_are_stratified_and_balanced() {
-        let labels: Vec<usize> = (0..40).map(|i| i % 4).collect();
-        let f = stratified_folds(&labels, 4, 5, 1);
-        for fold in 0..5 {
-            for s in 0..4 {
-                let n = (0..40).filter(|&i| f[i] == fold && labels[i] == s).count();
-                assert_eq!(n, 2, "fold {fold} stimulus {s}");
-            }
-        }
-        assert_eq!(f, stratified_folds(&labels, 4, 5, 1), "seeded");
-    }
+    use auspex_engine::count::CountParams;
 
     #[test]
     fn reliability_and_ece_match_a_hand_computed_case() {
@@ -346,12 +303,13 @@ mod calibration {
     use super::*;
     use crate::simulate::{simulate, Scenario, SimOptions};
     use crate::stats::{ks_critical, ks_uniform};
-    use rand::Rng;
+    use rand::{Rng, SeedableRng};
+    use rand_chacha::ChaCha8Rng;
 
     /// Share of cells whose rescaled intervals stay inside the 95% KS band.
-    fn pass_share(model: &Model, data: &crate::Dataset) -> f64 {
+    fn pass_share(model: &Model, data: &auspex_engine::Dataset) -> f64 {
         let nb = model.n_bins();
-        let w = data.windows(model.units(), 1000, nb);
+        let w = crate::windows::windows(data, model.units(), 1000, nb);
         let mut rng = ChaCha8Rng::seed_from_u64(3);
         let (mut pass, mut tested) = (0, 0);
         for u in 0..model.n_units() {

@@ -14,10 +14,12 @@
 //! Must not: fit (callers do, with `fit::fit_cell` on as many threads as they like), read clocks
 //! or spawn threads.
 
-use crate::calibrate::{calibrate, held_out_set, CalibrationMethod, DEFAULT_METHOD};
-use crate::data::{Dataset, UnitWindows};
+use crate::calibrate::{calibrate, held_out_set, DEFAULT_METHOD};
 use crate::fit::{plan_from_windows, window_bins, FitError, FitOptions, FitPlan};
-use crate::model::ModelSpec;
+use crate::windows::UnitWindows;
+use auspex_engine::calibration::CalibrationMethod;
+use auspex_engine::data::Dataset;
+use auspex_engine::model::ModelSpec;
 use std::collections::{BTreeMap, BTreeSet, HashMap, HashSet, VecDeque};
 
 /// One labelled trial's window: spikes as (ticks after onset, unit), in (tick, unit) order.
@@ -216,7 +218,7 @@ impl Default for LearnOptions {
             min_trials_per_stimulus: 3,
             max_trials_per_stimulus: 1000,
             calibration: DEFAULT_METHOD,
-            calibration_min_time_s: crate::engine::DecisionPolicy::default().min_time_s,
+            calibration_min_time_s: auspex_engine::engine::DecisionPolicy::default().min_time_s,
         }
     }
 }
@@ -454,7 +456,7 @@ impl Learner {
             ..Dataset::default()
         };
         for t in &self.trials {
-            d.trials.push(crate::data::Trial {
+            d.trials.push(auspex_engine::data::Trial {
                 id: t.id,
                 onset: t.onset,
                 stimulus: Some(t.stimulus.clone()),
@@ -507,7 +509,7 @@ mod tests {
     use super::*;
     use crate::fit::plan;
     use crate::simulate::{simulate, SimOptions};
-    use crate::{CountParams, Model};
+    use auspex_engine::{CountParams, Model};
 
     fn two_unit_model() -> Model {
         let nb = 50;
@@ -517,12 +519,12 @@ mod tests {
         let flat = vec![1.0 / nb as f64; nb];
         let z: f64 = early.iter().sum();
         let early: Vec<f64> = early.iter().map(|x| x / z).collect();
-        let cell = |mean: f64, t: &Vec<f64>| crate::CellSpec {
+        let cell = |mean: f64, t: &Vec<f64>| auspex_engine::CellSpec {
             count: CountParams::Poisson { mean },
             timing: t.clone(),
             summary: Default::default(),
         };
-        Model::new(crate::ModelSpec {
+        Model::new(auspex_engine::ModelSpec {
             bin_width_s: 0.001,
             n_bins: nb as u32,
             stimuli: vec!["A".into(), "B".into(), "C".into()],
@@ -547,12 +549,12 @@ mod tests {
         let mut out = Vec::new();
         for ev in data.events(1000, window) {
             match ev {
-                crate::data::Event::Open {
+                auspex_engine::data::Event::Open {
                     trial,
                     onset,
                     stimulus,
                 } => c.open(trial, onset, stimulus.as_deref()),
-                crate::data::Event::Batch { spikes, watermark } => {
+                auspex_engine::data::Event::Batch { spikes, watermark } => {
                     for (t, u) in spikes {
                         c.spike(u, t);
                     }
