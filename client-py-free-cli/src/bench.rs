@@ -496,6 +496,7 @@ pub fn latency_messages(nu: usize, ns: usize, n_batches: usize) -> Vec<(Option<u
             tick_rate_hz: 1e6,
             units: (0..nu as u32).collect(),
             session_name: "bench".into(),
+            learn_in_step: false,
         })),
     ));
     let mut x = 0x9e3779b97f4a7c15u64;

@@ -111,6 +111,11 @@ struct LearnLink {
     trials_sent: u64,
     model_trials: u64,
     applied_at: Option<Instant>,
+    /// The session asked to learn in step (`SessionStart.learn_in_step`, a replay): refits at
+    /// every `cadence.every_trials` windows sent, each applied before the next message is read.
+    in_step: bool,
+    /// Windows sent when the last in-step refit was asked for.
+    in_step_fitted_at: u64,
     last_refit_s: f64,
     refits: u32,
     waiting_for: String,
@@ -226,6 +231,8 @@ impl EngineThread {
             trials_sent: 0,
             model_trials: 0,
             applied_at: None,
+            in_step: false,
+            in_step_fitted_at: 0,
             last_refit_s: 0.0,
             refits: 0,
             waiting_for: "no session has started".into(),
@@ -329,6 +336,7 @@ impl EngineThread {
                     self.inbound(endpoint, bytes, received_ns);
                     self.record_latency(t0.elapsed().as_secs_f64() * 1e6);
                     self.drain_partials();
+                    self.refit_in_step();
                 }
                 Ok(EngineInput::Control { body, reply }) => {
                     let r = self.control(body);

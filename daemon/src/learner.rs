@@ -9,7 +9,6 @@
 
 use crate::messages::{EngineInput, Learned};
 use auspex_engine::{LookupBudget, Model, ModelSpec, PreparedModel};
-use auspex_modelling::fit::fit_cell;
 use auspex_modelling::learn::{LearnOptions, Learner, TrialWindow};
 use crossbeam_channel::{Receiver, RecvTimeoutError, Sender};
 use std::sync::Arc;
@@ -46,6 +45,9 @@ pub enum LearnMsg {
         units: Vec<u32>,
         /// Session name (for saved files).
         name: String,
+        /// Learn in step with the session's trials (a replay): no refit of its own cadence,
+        /// only on [`LearnMsg::FitNow`].
+        in_step: bool,
     },
     /// Units added part-way.
     Units {
@@ -70,6 +72,11 @@ pub enum LearnMsg {
         path: std::path::PathBuf,
         /// The reply.
         reply: oneshot::Sender<Result<String, String>>,
+    },
+    /// Fit now on every trial sent so far and answer (learning in step).
+    FitNow {
+        /// The model, or why there is none yet.
+        reply: Sender<Result<Learned, String>>,
     },
 }
 
@@ -113,6 +120,7 @@ struct State {
     enabled: bool,
     fitted_at: u64,
     last_fit: Instant,
+    in_step: bool,
 }
 
 /// Lowers this thread's scheduling priority (nice 10), so on a busy machine the engine thread
@@ -150,6 +158,7 @@ fn run(
         enabled: true,
         fitted_at: 0,
         last_fit: Instant::now(),
+        in_step: false,
     };
     let mut retired: Vec<Arc<PreparedModel>> = Vec::new();
     loop {
@@ -163,9 +172,11 @@ fn run(
                 tick_rate_hz,
                 units,
                 name,
+                in_step,
             }) => {
                 st.epoch = epoch;
                 st.name = name;
+                st.in_step = in_step;
                 st.fitted_at = 0;
                 st.learner = match Learner::new(opts.clone(), tick_rate_hz) {
                     Ok(mut l) => {
@@ -198,7 +209,7 @@ fn run(
             Ok(LearnMsg::Save { path, reply }) => {
                 let r = match st.learner.as_ref() {
                     None => Err("no session has started: nothing learned yet".to_string()),
-                    Some(l) => match fit(l) {
+                    Some(l) => match fit(l, false) {
                         Ok((spec, n)) => {
                             let what = format!(
                                 "learned during session {:?} from {n} labelled trials",
@@ -220,8 +231,23 @@ fn run(
                 };
                 let _ = reply.send(r);
             }
+            Ok(LearnMsg::FitNow { reply }) => {
+                let r = match st.learner.as_ref() {
+                    None => Err("no session has started: nothing learned yet".to_string()),
+                    Some(l) => {
+                        st.fitted_at = l.added();
+                        st.last_fit = Instant::now();
+                        fit_prepared(l, st.epoch, table_memory, true)
+                    }
+                };
+                let _ = reply.send(r);
+            }
             Err(RecvTimeoutError::Timeout) => {}
             Err(RecvTimeoutError::Disconnected) => break,
+        }
+        if st.in_step {
+            // In step: the engine thread says when (FitNow); no cadence of this thread's own.
+            continue;
         }
         let Some(l) = st.learner.as_ref() else {
             continue;
@@ -235,18 +261,8 @@ fn run(
         }
         st.fitted_at = l.added();
         st.last_fit = Instant::now();
-        let t0 = Instant::now();
-        match fit(l).and_then(|(spec, n)| {
-            let m = Model::new(spec).map_err(|e| e.to_string())?;
-            Ok((Arc::new(m).prepare(table_memory), n))
-        }) {
-            Ok((model, trials)) => {
-                let learned = Learned {
-                    epoch: st.epoch,
-                    model,
-                    trials,
-                    fit_s: t0.elapsed().as_secs_f64(),
-                };
+        match fit_prepared(l, st.epoch, table_memory, false) {
+            Ok(learned) => {
                 if engine.send(EngineInput::Learned(learned)).is_err() {
                     break;
                 }
@@ -260,22 +276,37 @@ fn note(engine: &Sender<EngineInput>, epoch: u64, text: String) {
     let _ = engine.send(EngineInput::LearnNote { epoch, text });
 }
 
-/// The fit of every trial held, cell by cell on this thread, exactly as `auspex fit` fits.
-fn fit(l: &Learner) -> Result<(ModelSpec, u64), String> {
+/// The fit of every trial held, prepared for the engine.
+fn fit_prepared(
+    l: &Learner,
+    epoch: u64,
+    table_memory: LookupBudget,
+    all_cores: bool,
+) -> Result<Learned, String> {
+    let t0 = Instant::now();
+    let (spec, trials) = fit(l, all_cores)?;
+    let m = Model::new(spec).map_err(|e| e.to_string())?;
+    Ok(Learned {
+        epoch,
+        model: Arc::new(m).prepare(table_memory),
+        trials,
+        fit_s: t0.elapsed().as_secs_f64(),
+    })
+}
+
+/// The fit of every trial held, exactly as `auspex fit` fits: cell by cell on this thread
+/// while the session runs live (the engine thread must keep its cores), on every core when
+/// learning in step (the engine thread is waiting for this very fit). The cells are the same
+/// either way.
+fn fit(l: &Learner, all_cores: bool) -> Result<(ModelSpec, u64), String> {
     let plan = l.plan().map_err(|e| e.to_string())?;
-    let cells = plan
-        .cells
-        .iter()
-        .map(|c| {
-            fit_cell(
-                c,
-                plan.n_bins,
-                plan.bin_width_s,
-                &plan.families,
-                plan.bandwidth,
-            )
+    let spec = if all_cores {
+        let cells = auspex_modelling::fit::fit_cells(&plan, &|| {});
+        l.calibrated(plan.assemble(cells), &|p| {
+            p.assemble(auspex_modelling::fit::fit_cells(p, &|| {}))
         })
-        .collect();
-    let spec = l.calibrated(plan.assemble(cells), &|p| p.fit_all());
+    } else {
+        l.calibrated(plan.fit_all(), &|p| p.fit_all())
+    };
     Ok((spec, l.added()))
 }

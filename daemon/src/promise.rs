@@ -223,8 +223,16 @@ impl PromiseKeeper {
             target_accuracy: self.target.unwrap_or(0.0),
             withheld: self.withheld,
             evidence: self.evidence.clone(),
-            calibrated: config.calibrated,
-            calibration: calibration_line(model),
+            calibrated: config.applies_calibration(),
+            calibration: if config.calibrated && !config.applies_calibration() {
+                format!(
+                    "{} — not applied: fitted for order-stats, decoding with {} (raw posterior)",
+                    calibration_line(model),
+                    config.decoder.name()
+                )
+            } else {
+                calibration_line(model)
+            },
         }
     }
 }

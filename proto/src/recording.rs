@@ -33,6 +33,7 @@ pub fn dataset_messages(
         tick_rate_hz: data.tick_rate_hz,
         units: data.units.clone(),
         session_name: sender.into(),
+        learn_in_step: false,
     }));
     for ev in data.events(batch_ticks, window_ticks) {
         match ev {

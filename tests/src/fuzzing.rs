@@ -216,6 +216,7 @@ fn inbound_message(b: &mut Bytes<'_>, last: &mut i64) -> Option<Vec<u8>> {
                 .map(|i| [3, 4, 7, 9, 12, 77, 0, 3][i as usize])
                 .collect(),
             session_name: ["a", "b", ""][b.u8()? as usize % 3].into(),
+            learn_in_step: false,
         }),
         1..=3 => {
             let n = b.u8()? % 16;

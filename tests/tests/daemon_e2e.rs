@@ -417,6 +417,7 @@ fn bad_input_is_counted_and_never_stops_the_daemon() {
                 tick_rate_hz: 1e6,
                 units: vec![unit, 999_999],
                 session_name: "bad".into(),
+                learn_in_step: false,
             }),
         ),
         0,

@@ -119,18 +119,40 @@ pub async fn replay(
     }
     bar.set_message("waiting for the daemon to take everything");
     bar.set_position(messages.len() as u64);
-    let deadline = Instant::now() + Duration::from_secs(60);
+    // A daemon learning in step pauses at each refit, and answers control only between
+    // messages: a slow reply is patience, not failure, as long as the daemon keeps taking
+    // messages. It fails after 120 s without progress.
+    let mut progress = (0u64, Instant::now());
     loop {
-        let st = status(control_ep).await?;
-        if st
-            .senders
-            .iter()
-            .any(|s| s.sender == sender && s.last_seq >= last_seq && s.ended)
-        {
-            break;
+        let st = control(
+            control_ep,
+            control_request::Body::Status(v1::StatusQuery {}),
+            Duration::from_secs(30),
+        )
+        .await
+        .and_then(|r| match r.body {
+            Some(control_reply::Body::Status(s)) => Ok(s),
+            _ => bail!("the daemon's reply held no status"),
+        });
+        match st {
+            Ok(st) => {
+                let mine = st.senders.iter().find(|s| s.sender == sender);
+                if mine.is_some_and(|s| s.last_seq >= last_seq && s.ended) {
+                    break;
+                }
+                let seq = mine.map(|s| s.last_seq).unwrap_or(0);
+                if seq > progress.0 {
+                    progress = (seq, Instant::now());
+                }
+            }
+            Err(e) if progress.1.elapsed() > Duration::from_secs(120) => return Err(e),
+            Err(_) => {}
         }
-        if Instant::now() > deadline {
-            bail!("the daemon did not acknowledge message {last_seq} of sender {sender:?} within 60 s");
+        if progress.1.elapsed() > Duration::from_secs(120) {
+            bail!(
+                "the daemon did not acknowledge message {last_seq} of sender {sender:?}: no progress for 120 s (it took {} of them)",
+                progress.0
+            );
         }
         tokio::time::sleep(Duration::from_millis(20)).await;
     }
@@ -158,6 +180,27 @@ pub enum ReplaySource {
 /// their session is named after the trial table, so replays of one session's tables by several
 /// senders (a shard deployment's) announce the same session.
 pub async fn replay_messages(
+    source: &ReplaySource,
+    control: &str,
+    sender: &str,
+) -> anyhow::Result<(Vec<v1::Inbound>, f64)> {
+    let (mut msgs, rate) = replay_messages_as_sent(source, control, sender).await?;
+    ask_to_learn_in_step(&mut msgs);
+    Ok((msgs, rate))
+}
+
+/// A replay asks a learning daemon to learn in step with the session's trials
+/// (`SessionStart.learn_in_step`): its refits then come at the same trials however fast the
+/// replay runs, so a replay equals the real-time session and `decode --prequential`.
+pub fn ask_to_learn_in_step(msgs: &mut [v1::Inbound]) {
+    for m in msgs {
+        if let Some(v1::inbound::Body::SessionStart(ss)) = m.body.as_mut() {
+            ss.learn_in_step = true;
+        }
+    }
+}
+
+async fn replay_messages_as_sent(
     source: &ReplaySource,
     control: &str,
     sender: &str,

@@ -67,6 +67,7 @@ pub fn parse_line(line: &str, pending: &mut Vec<(u32, i64)>) -> Result<Option<Bo
                 tick_rate_hz: rate,
                 units,
                 session_name: name,
+                learn_in_step: false,
             })))
         }
         "spike" => {

@@ -203,7 +203,8 @@ pub async fn live_demo(
         let collector = tokio::spawn(async move { monitor(&p3, &c3, View::Quiet, rx3).await });
         tokio::time::sleep(Duration::from_millis(300)).await;
         let bt = 1000; // 1 ms batches at 1 µs ticks
-        let msgs = crate::wire::dataset_messages(&data, "demo-replay", bt, 250 * bt);
+        let mut msgs = crate::wire::dataset_messages(&data, "demo-replay", bt, 250 * bt);
+        crate::live::client::ask_to_learn_in_step(&mut msgs);
         let progress = view != View::Screen && std::io::stderr().is_terminal();
         let watch_monitor = async {
             loop {

@@ -426,6 +426,14 @@ pub fn decode_cmd(
     let window_s = model.bin_width_s() * model.n_bins() as f64;
     let (data, report) = source.load(window_s)?;
     eprintln!("{report}");
+    let cfg = args.config(data.tick_rate_hz);
+    if cfg.calibrated && model.calibration().is_active() && !cfg.applies_calibration() {
+        eprintln!(
+            "note: the model's calibration ({}) was fitted for the order-stats decoder; {} posteriors are raw",
+            model.calibration().method.name(),
+            cfg.decoder.name()
+        );
+    }
     std::fs::create_dir_all(out_dir)
         .with_context(|| format!("{}: cannot create directory", out_dir.display()))?;
     let post_path = out_dir.join("posteriors.csv");
@@ -436,12 +444,7 @@ pub fn decode_cmd(
         &data,
         Some(std::io::BufWriter::with_capacity(1 << 20, f)),
     );
-    let counters = run_dataset(
-        model.clone(),
-        &data,
-        args.config(data.tick_rate_hz),
-        &mut sink,
-    )?;
+    let counters = run_dataset(model.clone(), &data, cfg, &mut sink)?;
     let rows = sink
         .finish()
         .with_context(|| format!("writing {}", post_path.display()))?;

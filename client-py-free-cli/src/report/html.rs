@@ -1116,8 +1116,8 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
     s += "</div><h2>Example posterior trajectories (order statistics; bold: presented stimulus; dotted: threshold θ)</h2><div class=row>";
     s += &trajectories_plot(v, x);
     s += "</div><h2>How much: information and its shuffle null</h2>";
-    let _ = write!(s, "<p class=sub>Mutual information between presented and window-end decoded stimulus: plug-in {:.3} bits, Panzeri–Treves bias correction {:+.3} bits, corrected {:.3} bits. Null: labels permuted within each training fold only (held-out labels untouched), cells refitted on the shuffled labels with the family and bandwidth chosen on the real fold, held-out trials decoded at the window end; p = (1 + #null ≥ observed) / (1 + shuffles).</p><div class=row>",
-        i.plugin_bits, -i.bias_bits, i.bits);
+    let _ = write!(s, "<p class=sub>Mutual information between presented and window-end decoded stimulus: plug-in {:.3} bits, Panzeri–Treves bias correction {:+.3} bits (only a positive first-order bias is subtracted), corrected {:.3} bits (kept within [0, H(presented)]). Null: labels permuted within each training fold only (held-out labels untouched), cells refitted on the shuffled labels with the family and bandwidth chosen on the real fold, held-out trials decoded at the window end; p = (1 + #null ≥ observed) / (1 + shuffles).</p><div class=row>",
+        i.plugin_bits, i.bits - i.plugin_bits, i.bits);
     s += &null_plot(
         "population information: shuffle null (grey) and observed (red)",
         &i.null_bits,

@@ -129,7 +129,8 @@ pub struct EngineConfig {
     /// kept for benchmarks and cross-checks.
     pub per_cell_reference: bool,
     /// Apply the model's calibration (its factors β(b); see `calibration.rs`). Off: β = 1, the
-    /// raw posterior.
+    /// raw posterior. A calibration belongs to the decoder it was fitted for — the order
+    /// statistics decoder — so other decoders always run raw ([`EngineConfig::applies_calibration`]).
     pub calibrated: bool,
     /// Which blocks of the population sum this engine computes, and what it emits.
     pub role: Role,
@@ -304,6 +305,13 @@ impl OwnedPartial {
 }
 
 impl EngineConfig {
+    /// Whether a trial opened now applies the model's calibration: asked for, and the decoder
+    /// is the one a calibration is fitted for (order statistics; `fit`, the learner and the
+    /// held-out record all calibrate that decoder's posterior). Other decoders run raw.
+    pub fn applies_calibration(&self) -> bool {
+        self.calibrated && self.decoder == Decoder::OrderStats
+    }
+
     /// Defaults for a clock of `tick_rate_hz`.
     pub fn new(tick_rate_hz: f64) -> Self {
         EngineConfig {
@@ -1007,7 +1015,7 @@ impl Engine {
         st.presented = presented;
         st.decoder = self.config.decoder;
         st.reference = self.config.per_cell_reference;
-        st.calibrated = self.config.calibrated;
+        st.calibrated = self.config.applies_calibration();
         st.threshold = self.config.policy.threshold;
         st.min_bin = self.min_bin;
         st.ln_prior.clone_from(&self.ln_prior);

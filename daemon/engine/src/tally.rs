@@ -116,9 +116,9 @@ impl UnitTally {
         let s = self.n_stim;
         &self.conf[u * s * s..(u + 1) * s * s]
     }
-    /// Mutual information (bits) of unit index `u`'s confusion matrix, with the
-    /// Panzeri–Treves / Miller–Madow first-order bias subtracted (floored at 0): the plug-in
-    /// estimate alone is strongly inflated over the few trials of a live session.
+    /// Mutual information (bits) of unit index `u`'s confusion matrix: the estimate of
+    /// [`crate::information::bias_corrected`] (plug-in less its positive first-order bias, in
+    /// [0, H(presented)]), kept incrementally.
     pub fn info_bits(&self, u: usize) -> f64 {
         let n: u64 = self.rows[u * self.n_stim..(u + 1) * self.n_stim]
             .iter()
@@ -131,14 +131,15 @@ impl UnitTally {
         let plug_in = ((nf.ln() + (cells - rows - cols) / nf) / std::f64::consts::LN_2).max(0.0);
         let [jz, rz, cz] = self.nonzero[u].map(|x| x as f64);
         let bias = ((jz - 1.0) - (rz - 1.0) - (cz - 1.0)) / (2.0 * nf * std::f64::consts::LN_2);
-        (plug_in - bias).max(0.0)
+        let h_presented = ((nf.ln() - rows / nf) / std::f64::consts::LN_2).max(0.0);
+        crate::information::bias_corrected(plug_in, bias, h_presented)
     }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::information::{mutual_info_bias_bits, mutual_info_bits};
+    use crate::information::information;
 
     #[test]
     fn incremental_information_equals_the_direct_formula() {
@@ -159,7 +160,7 @@ mod tests {
             t.end_trial();
             for u in 0..2 {
                 let c = t.confusion(u);
-                let direct = (mutual_info_bits(c, 5) - mutual_info_bias_bits(c, 5)).max(0.0);
+                let direct = information(c, 5).bits;
                 assert!(
                     (t.info_bits(u) - direct).abs() < 1e-9,
                     "{} vs {direct}",

@@ -326,3 +326,67 @@ fn gaps_between_windows_cost_one_batch_and_change_no_frame() {
         .iter()
         .any(|ev| matches!(ev, Event::Open { trial: 3, .. })));
 }
+
+/// A calibration belongs to the decoder it was fitted for (order statistics): with any other
+/// decoder the frames are that decoder's raw posterior whether calibration is asked for or not,
+/// while the order statistics decoder's frames do change with it.
+#[test]
+fn calibration_is_applied_only_with_its_own_decoder() {
+    use auspex_engine::calibration::{Calibration, CalibrationMethod};
+    use auspex_engine::data::{Dataset, Trial};
+    use auspex_engine::engine::run_dataset;
+    let nb = 10usize;
+    let early: Vec<f64> = (0..nb)
+        .map(|b| if b < 3 { 0.2 } else { 0.4 / 7.0 })
+        .collect();
+    let flat = vec![0.1; nb];
+    let cell = |mean: f64, t: &Vec<f64>| CellSpec {
+        count: CountParams::Poisson { mean },
+        timing: t.clone(),
+        summary: CellSummary::default(),
+    };
+    let m = Arc::new(
+        Model::new(ModelSpec {
+            bin_width_s: 0.001,
+            n_bins: nb as u32,
+            stimuli: vec!["a".into(), "b".into()],
+            units: vec![1],
+            prior: vec![1.0, 1.0],
+            cells: vec![cell(3.0, &early), cell(2.0, &flat)],
+            calibration: Calibration {
+                method: CalibrationMethod::Temperature,
+                factors: vec![0.6; nb],
+                ..Calibration::default()
+            },
+            unit_groups: Vec::new(),
+        })
+        .unwrap(),
+    )
+    .prepare(LookupBudget::DEFAULT);
+    let data = Dataset {
+        tick_rate_hz: 1000.0,
+        trials: vec![Trial {
+            id: 1,
+            onset: 0,
+            stimulus: Some("a".into()),
+        }],
+        spikes: vec![(1, 1), (2, 1), (6, 1)],
+        units: vec![1],
+        ..Dataset::default()
+    };
+    let run = |decoder: Decoder, calibrated: bool| {
+        let mut cfg = EngineConfig::new(1000.0);
+        cfg.decoder = decoder;
+        cfg.calibrated = calibrated;
+        let mut f = Frames::default();
+        run_dataset(m.clone(), &data, cfg, &mut f).unwrap();
+        f.0
+    };
+    for d in [Decoder::InhomogeneousPoisson, Decoder::CountOnly] {
+        assert_eq!(run(d, true), run(d, false), "{}", d.name());
+    }
+    assert_ne!(
+        run(Decoder::OrderStats, true),
+        run(Decoder::OrderStats, false)
+    );
+}

@@ -16,7 +16,7 @@
 //! Must not: allocate on the per-bin path (it runs once per labelled trial), or do I/O.
 
 use crate::stats::clopper_pearson;
-use auspex_engine::information::mutual_info_bias_bits;
+use auspex_engine::information::{bias_corrected, mutual_info_bias_bits, presented_entropy_bits};
 use statrs::distribution::{ChiSquared, ContinuousCDF, StudentsT};
 
 /// The verdict rule's settings.
@@ -155,7 +155,11 @@ pub fn assess(conf: &[u64], s: usize, rule: &VerdictRule) -> Assessment {
     let info_bits = if n == 0 {
         0.0
     } else {
-        (i_nats / std::f64::consts::LN_2 - mutual_info_bias_bits(conf, s)).max(0.0)
+        bias_corrected(
+            i_nats / std::f64::consts::LN_2,
+            mutual_info_bias_bits(conf, s),
+            presented_entropy_bits(conf, s),
+        )
     };
     let info_se_bits = ((m2 - i_nats * i_nats).max(0.0) / nf).sqrt() / std::f64::consts::LN_2;
     let r = rows.iter().filter(|&&x| x > 0).count();

@@ -479,7 +479,8 @@ pub fn held_out_set(
         )));
     }
     let k = folds.clamp(2, min_per);
-    let fold_of = stratified_folds(&labels, ns, k, seed);
+    let when: Vec<(i64, u64)> = data.trials.iter().map(|t| (t.onset, t.id)).collect();
+    let fold_of = stratified_folds(&labels, &when, ns, k, seed);
     let nt = labels.len();
     let mut trials: Vec<Option<HeldOutTrial>> = vec![None; nt];
     let full_prior = plan(&data, opts)?.reordered(stimuli)?.prior;

@@ -5,7 +5,41 @@
 
 use super::*;
 
+/// Longest the engine thread waits for an in-step refit (a fit of a session's trials takes
+/// seconds at most; a stuck learner must not stop the daemon).
+const IN_STEP_WAIT: Duration = Duration::from_secs(120);
+
 impl EngineThread {
+    /// Learning in step (a replay asked for it): once `every_trials` more windows have gone to
+    /// the learner than at the last refit, ask it to fit on exactly those and wait for the model
+    /// (or its reason for none) before reading another message — the point a real-time session's
+    /// refit would have been due, whatever the replay's speed. Inbound messages wait in the
+    /// bounded channel meanwhile (backpressure reaches the sender); the wait is bounded.
+    pub(super) fn refit_in_step(&mut self) {
+        let Some(l) = self.learn.as_mut() else {
+            return;
+        };
+        let every = l.setup.cadence.every_trials.max(1) as u64;
+        if !l.in_step || !l.enabled || l.trials_sent < l.in_step_fitted_at + every {
+            return;
+        }
+        l.in_step_fitted_at = l.trials_sent;
+        let (tx, rx) = crossbeam_channel::bounded(1);
+        if l.tx.send(LearnMsg::FitNow { reply: tx }).is_err() {
+            return;
+        }
+        match rx.recv_timeout(IN_STEP_WAIT) {
+            Ok(Ok(learned)) => self.learned(learned),
+            Ok(Err(text)) => l.waiting_for = text,
+            Err(_) => {
+                tracing::warn!(
+                    wait_s = IN_STEP_WAIT.as_secs(),
+                    "learning in step: no refit within the wait; going on with the current model"
+                );
+            }
+        }
+    }
+
     pub(super) fn learned(&mut self, l: Learned) {
         let Some(link) = self.learn.as_mut() else {
             return;

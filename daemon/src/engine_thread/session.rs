@@ -101,12 +101,15 @@ impl EngineThread {
             l.trials_sent = 0;
             l.model_trials = 0;
             l.applied_at = None;
+            l.in_step = ss.learn_in_step;
+            l.in_step_fitted_at = 0;
             l.waiting_for = "no labelled trial yet".into();
             let _ = l.tx.send(LearnMsg::Session {
                 epoch: self.epoch,
                 tick_rate_hz: ss.tick_rate_hz,
                 units: ss.units.clone(),
                 name: ss.session_name.clone(),
+                in_step: ss.learn_in_step,
             });
             let _ = l.tx.send(LearnMsg::Enable(l.enabled));
             // Mark the recording as a learning session from its start (with the learner's

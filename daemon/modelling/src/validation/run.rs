@@ -15,7 +15,7 @@ use crate::validation::{
 use auspex_engine::data::Dataset;
 use auspex_engine::engine::run_dataset;
 use auspex_engine::engine::{Decoder, EngineConfig, EngineSink, Frame};
-use auspex_engine::information::{mutual_info_bias_bits, mutual_info_bits};
+use auspex_engine::information::information;
 use auspex_engine::model::{CellSpec, Model};
 use auspex_engine::special::argmax;
 use auspex_engine::CountFamily;
@@ -26,6 +26,11 @@ use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 use std::collections::HashMap;
 use std::sync::Arc;
+
+/// Fewest labelled trials of a stimulus `validate` accepts: one held out, and two left in every
+/// training fold, where the calibration is fitted on its own held-out folds. Checked once, up
+/// front, naming the stimuli that have fewer.
+pub const MIN_TRIALS_PER_STIMULUS: usize = 3;
 
 /// Why a validation run could not give a result.
 #[derive(Debug, thiserror::Error)]
@@ -559,10 +564,11 @@ fn subset(data: &Dataset, keep: &[usize], labels: Option<(&[usize], &[String])>)
     d
 }
 
+/// (plug-in, first-order bias, the estimate shown) — `auspex_engine::information`, the one
+/// estimator: within [0, H(presented)].
 fn info(conf: &[u64], ns: usize) -> (f64, f64, f64) {
-    let plug = mutual_info_bits(conf, ns);
-    let bias = mutual_info_bias_bits(conf, ns);
-    (plug, bias, (plug - bias).max(0.0))
+    let e = information(conf, ns);
+    (e.plug_in_bits, e.bias_bits, e.bits)
 }
 
 fn info_report(conf: &[u64], ns: usize, mut null: Vec<f64>) -> InfoReport {
@@ -656,19 +662,21 @@ pub fn validate_with(
         .min()
         .unwrap_or(0);
     let k = opts.folds.clamp(2, min_per.max(2));
-    if min_per < 2 {
+    if min_per < MIN_TRIALS_PER_STIMULUS {
         let few: Vec<String> = (0..ns)
             .filter_map(|s| {
                 let n = labels.iter().filter(|&&l| l == s).count();
-                (n < 2).then(|| format!("{:?} ({n})", stimuli[s]))
+                (n < MIN_TRIALS_PER_STIMULUS).then(|| format!("{:?} ({n})", stimuli[s]))
             })
             .collect();
         return Err(ValidateError::Refused(format!(
-            "{source}: every stimulus needs at least 2 labelled trials for cross-validation; too few: {}",
+            "{source}: every stimulus needs at least {MIN_TRIALS_PER_STIMULUS} labelled trials for cross-validation \
+             (each training fold must keep 2 of it to fit the calibration inside the fold); too few: {}",
             few.join(", ")
         )));
     }
-    let fold_of = stratified_folds(&labels, ns, k, opts.seed);
+    let when: Vec<(i64, u64)> = data.trials.iter().map(|t| (t.onset, t.id)).collect();
+    let fold_of = stratified_folds(&labels, &when, ns, k, opts.seed);
     let bw_ms = opts.fit.bin_width_s * 1000.0;
     let min_bin =
         auspex_engine::decision::min_bin_for(opts.min_time_ms / 1000.0, opts.fit.bin_width_s)
