@@ -348,7 +348,12 @@ impl EngineThread {
                 }
                 Ok(EngineInput::SaveLearned { path, reply }) => match &self.learn {
                     Some(l) => {
-                        if let Err(e) = l.tx.send(LearnMsg::Save { path, reply }) {
+                        let recording = self.learned_recording();
+                        if let Err(e) = l.tx.send(LearnMsg::Save {
+                            path,
+                            recording,
+                            reply,
+                        }) {
                             if let LearnMsg::Save { reply, .. } = e.0 {
                                 let _ = reply.send(Err("the learner has stopped".into()));
                             }

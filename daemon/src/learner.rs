@@ -70,6 +70,9 @@ pub enum LearnMsg {
     Save {
         /// Model file path.
         path: std::path::PathBuf,
+        /// The recording of exactly the session learned from, if one was made: the model's
+        /// training data is then that recording, as `auspex fit --session` of it writes.
+        recording: Option<std::path::PathBuf>,
         /// The reply.
         reply: oneshot::Sender<Result<String, String>>,
     },
@@ -206,7 +209,11 @@ fn run(
                 }
                 st.fitted_at = st.learner.as_ref().map(|l| l.added()).unwrap_or(0);
             }
-            Ok(LearnMsg::Save { path, reply }) => {
+            Ok(LearnMsg::Save {
+                path,
+                recording,
+                reply,
+            }) => {
                 let r = match st.learner.as_ref() {
                     None => Err("no session has started: nothing learned yet".to_string()),
                     Some(l) => match fit(l, false) {
@@ -215,7 +222,14 @@ fn run(
                                 "learned during session {:?} from {n} labelled trials",
                                 st.name
                             );
-                            auspex_proto::model_file::save_model(&path, &spec, &what)
+                            // The same provenance `fit --session` writes, so decoding that
+                            // recording with this model is known to be in sample.
+                            let source = recording
+                                .as_deref()
+                                .and_then(|p| std::fs::canonicalize(p).ok())
+                                .map(|p| format!("session {}", p.display()))
+                                .unwrap_or_else(|| what.clone());
+                            auspex_proto::model_file::save_model(&path, &spec, &source)
                                 .map(|_| {
                                     format!(
                                         "{}: {} units × {} stimuli, {what}",

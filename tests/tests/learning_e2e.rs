@@ -1,8 +1,8 @@
 //! Learning during the recording, end to end with a libzmq-based peer: a daemon started with no
 //! model learns from a simulated session whose task program labels each trial only after its
 //! window; its live posteriors equal `decode --prequential` of its own recording bit for bit, and
-//! the learned model it saves equals `auspex fit` of that recording. A unit declared part-way
-//! learns from then on. Three sessions in a row through one daemon give three recordings and
+//! the learned model it saves equals `auspex fit --session` of that recording byte for byte. A
+//! unit declared part-way learns from then on. Three sessions in a row through one daemon give three recordings and
 //! three summaries, each session decoded exactly as if it ran alone.
 
 use auspex::prequential::{run_recording, Schedule};
@@ -342,6 +342,23 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
     assert!(
         spec == fitted,
         "the saved learned model differs from the offline fit"
+    );
+    // And byte for byte: `auspex fit --session` of the recording writes the very same file
+    // (provenance included: the learned model names the recording it was learned from).
+    let by_cli = dir.path().join("by-cli.apxm");
+    auspex::offline::commands::fit_cmd(
+        &auspex::offline::tables::Source::Session(files[0].clone()),
+        &by_cli,
+        &auspex::offline::commands::FitArgs {
+            window_ms: sc.window_ms,
+            quiet: true,
+            ..Default::default()
+        },
+    )
+    .unwrap();
+    assert!(
+        std::fs::read(&saved).unwrap() == std::fs::read(&by_cli).unwrap(),
+        "save-learned and fit --session wrote different files"
     );
     let n_late = spec.cells
         [spec.units.iter().position(|&u| u == late).unwrap() * spec.stimuli.len()]

@@ -455,21 +455,34 @@ impl Learner {
             declared_from: self.declared_from.clone(),
             ..Dataset::default()
         };
+        // A spike in two overlapping windows is held twice but happened once; two spikes of
+        // one unit at one tick (a sorter's double) happened twice, and each window holds both.
+        // So each (tick, unit) counts as often as the window holding it most often has it.
+        let mut times: HashMap<(i64, u32), u32> = HashMap::new();
+        let mut here: Vec<(i64, u32)> = Vec::new();
         for t in &self.trials {
             d.trials.push(auspex_engine::data::Trial {
                 id: t.id,
                 onset: t.onset,
                 stimulus: Some(t.stimulus.clone()),
             });
-            d.spikes.extend(
+            here.clear();
+            here.extend(
                 t.spikes
                     .iter()
                     .map(|&(dt, u)| (t.onset.saturating_add(dt), u)),
             );
+            here.sort_unstable();
+            for run in here.chunk_by(|a, b| a == b) {
+                let n = times.entry(run[0]).or_insert(0);
+                *n = (*n).max(run.len() as u32);
+            }
         }
         d.trials.sort_by_key(|t| (t.onset, t.id));
+        for (spike, n) in times {
+            d.spikes.extend(std::iter::repeat_n(spike, n as usize));
+        }
         d.spikes.sort_unstable();
-        d.spikes.dedup();
         d
     }
 
@@ -595,6 +608,46 @@ mod tests {
         }
         let learned = l.plan().unwrap().fit_all();
         let offline = plan(&data, &opts.fit).unwrap().fit_all();
+        assert_eq!(learned, offline);
+    }
+
+    #[test]
+    fn learned_calibration_is_the_offline_calibration() {
+        let m = two_unit_model();
+        let data = simulate(
+            &m,
+            &SimOptions {
+                trials_per_stimulus: 12,
+                gap_s: (0.01, 0.03),
+                spontaneous_hz: 5.0,
+                tick_rate_hz: 1e6,
+                seed: 4,
+            },
+        );
+        let opts = LearnOptions {
+            fit: FitOptions {
+                window_s: 0.05,
+                ..FitOptions::default()
+            },
+            ..LearnOptions::default()
+        };
+        // A sorter's double (two spikes of one unit at one tick) inside a trial's window
+        // counts twice in the cells and in the held-out folds alike.
+        let mut data = data;
+        let t = data.trials[7].onset + 10_000;
+        data.spikes.push((t, data.units[0]));
+        data.spikes.push((t, data.units[0]));
+        data.spikes.sort_unstable();
+        let mut l = Learner::new(opts.clone(), 1e6).unwrap();
+        l.add_units(data.units.iter().copied());
+        for w in collect_all(&data, 50_000) {
+            l.add(w);
+        }
+        let learned = l.calibrated(l.plan().unwrap().fit_all(), &|p| p.fit_all());
+        let p = plan(&data, &opts.fit).unwrap();
+        let mut offline = p.fit_all();
+        let set = held_out_set(&data, &opts.fit, &offline.stimuli, 5, 1, &|p| p.fit_all()).unwrap();
+        offline.calibration = calibrate(&set, opts.calibration, opts.calibration_min_time_s);
         assert_eq!(learned, offline);
     }
 

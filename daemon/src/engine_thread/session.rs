@@ -219,6 +219,20 @@ impl EngineThread {
     }
 }
 
+impl EngineThread {
+    /// The recording of the session the learner holds (the running one, else the last ended
+    /// one): each session is recorded into a file of its own. None when not recording.
+    pub(super) fn learned_recording(&self) -> Option<std::path::PathBuf> {
+        self.recorder.as_ref()?;
+        let path = if self.session.is_some() {
+            self.recording_path.clone()
+        } else {
+            self.ended.last()?.recording_path.clone()
+        };
+        (!path.is_empty()).then(|| path.into())
+    }
+}
+
 /// Adds one set of engine counters to another.
 pub(super) fn add_counters(a: &mut Counters, b: &Counters) {
     a.spikes += b.spikes;
