@@ -159,7 +159,11 @@ pub fn decode_recording(contents: SessionContents) -> Result<RecordedSession, St
                         if !(s.tick_rate_hz.is_finite()
                             && (1.0..=1e12).contains(&s.tick_rate_hz)) => {}
                     Some(Body::SessionStart(s)) => {
-                        data.tick_rate_hz = s.tick_rate_hz;
+                        // The session's first clock holds: the daemon refuses (and counts) a
+                        // later SessionStart that declares another one.
+                        if data.tick_rate_hz <= 0.0 {
+                            data.tick_rate_hz = s.tick_rate_hz;
+                        }
                         units.extend(s.units.iter().copied());
                         at_start.extend(s.units.iter().copied());
                     }

@@ -106,6 +106,9 @@ struct Peer {
     /// Engine threads (`--threads`), and units in the model (several blocks of units when > 64).
     threads: u32,
     units: usize,
+    /// Halfway through, the same session is announced again with another clock: refused and
+    /// counted, the first clock kept (live and in the recording).
+    clock_change: bool,
 }
 
 impl Peer {
@@ -115,6 +118,7 @@ impl Peer {
         split_task: false,
         threads: 1,
         units: 10,
+        clock_change: false,
     };
 }
 
@@ -159,7 +163,21 @@ fn stream_and_compare(peer: Peer) {
     // Let the subscriptions (ours and, for SUB ingest, the daemon's) reach the publishers.
     std::thread::sleep(Duration::from_millis(300));
     let bt = (f.model.bin_width_s() * f.data.tick_rate_hz).round() as i64;
-    let msgs = dataset_messages(&f.data, "libzmq-acq", bt, bt * f.model.n_bins() as i64);
+    let mut msgs = dataset_messages(&f.data, "libzmq-acq", bt, bt * f.model.n_bins() as i64);
+    if peer.clock_change {
+        let Some(v1::inbound::Body::SessionStart(first)) = msgs[0].body.clone() else {
+            panic!("a session starts with its SessionStart");
+        };
+        let again = v1::Inbound {
+            body: Some(v1::inbound::Body::SessionStart(v1::SessionStart {
+                tick_rate_hz: first.tick_rate_hz * 4.0 / 3.0,
+                ..first
+            })),
+            ..Default::default()
+        };
+        msgs.insert(msgs.len() / 2, again);
+        msgs = as_sender(msgs, "libzmq-acq");
+    }
     let n = if peer.split_task {
         // Acquisition sends spikes and watermarks; the task program sends each onset without
         // its stimulus and then the label. Both are sent in time order from this thread.
@@ -259,7 +277,7 @@ fn stream_and_compare(peer: Peer) {
     }
     assert_eq!(h.trials_completed as usize, n_trials, "{h:?}");
     assert_eq!(h.sequence_gaps, 0);
-    assert_eq!(h.malformed_messages, 0);
+    assert_eq!(h.malformed_messages, u64::from(peer.clock_change));
     stop_sub.send(()).unwrap();
     let got = sub.join().unwrap();
     let summary = rt.block_on(running.stop());
@@ -322,6 +340,15 @@ fn stream_and_compare(peer: Peer) {
     let mut c = replay.0;
     c.sort_by_key(|x| (x.0, x.1));
     assert!(c == b, "recorded session decodes to the same frames");
+}
+
+#[test]
+fn a_conflicting_clock_mid_session_is_refused_and_counted() {
+    let _serial = serial();
+    stream_and_compare(Peer {
+        clock_change: true,
+        ..Peer::TCP
+    });
 }
 
 #[test]
