@@ -713,6 +713,10 @@ fn main() {
         })),
     };
     if let Err(e) = r {
+        if let Some(i) = e.downcast_ref::<auspex::live::Interrupted>() {
+            eprintln!("auspex: {i}");
+            std::process::exit(130);
+        }
         eprintln!("auspex: error: {e:#}");
         std::process::exit(1);
     }

@@ -50,6 +50,143 @@ async fn wait_seq(control: &str, n: u64) {
     }
 }
 
+/// `auspex daemon` as a child process on free loopback ports, recording to `record`, with
+/// `args` (e.g. `--model` and its path); with its ingest and control endpoints.
+fn spawn_daemon(
+    args: &[&std::ffi::OsStr],
+    record: &std::path::Path,
+) -> (std::process::Child, String, String) {
+    let ep = |p: u16| format!("tcp://127.0.0.1:{p}");
+    let (ingest, publish, control) = (ep(free_port()), ep(free_port()), ep(free_port()));
+    let child = std::process::Command::new(env!("CARGO_BIN_EXE_auspex"))
+        .arg("daemon")
+        .args(args)
+        .args([
+            "--ingest",
+            &ingest,
+            "--publish",
+            &publish,
+            "--control",
+            &control,
+            "--task-ingest",
+            "",
+            "--record",
+        ])
+        .arg(record)
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap();
+    (child, ingest, control)
+}
+
+async fn wait_started(control: &str) {
+    let t0 = Instant::now();
+    while status(control).await.is_err() {
+        assert!(
+            t0.elapsed() < Duration::from_secs(20),
+            "daemon did not start"
+        );
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+}
+
+/// Ctrl-C on `auspex send` mid-session: the sender ends its stream and says so (exit status
+/// 130), the daemon ends the session, and the same lines sent again are a new session with a
+/// recording of its own — nothing merged, no duplicate trial, no late spike.
+#[test]
+fn ctrl_c_on_send_ends_the_session_and_a_rerun_is_a_new_one() {
+    use std::io::Write;
+    let dir = tempfile::tempdir().unwrap();
+    let (mut daemon, ingest, control) =
+        spawn_daemon(&["--learn-window-ms".as_ref(), "100".as_ref()], dir.path());
+    let rt = tokio::runtime::Runtime::new().unwrap();
+    rt.block_on(wait_started(&control));
+    let run = |n_trials: u64| {
+        let mut send = std::process::Command::new(env!("CARGO_BIN_EXE_auspex"))
+            .args(["send", "--to", &ingest, "--sender", "rig"])
+            .stdin(std::process::Stdio::piped())
+            .stderr(std::process::Stdio::piped())
+            .spawn()
+            .unwrap();
+        let mut input = send.stdin.take().unwrap();
+        writeln!(input, "session 1000 1 name=interrupted").unwrap();
+        for i in 1..=n_trials {
+            let t = i * 300;
+            writeln!(
+                input,
+                "onset {i} {t} A\nspike 1 {}\nthrough {}",
+                t + 10,
+                t + 299
+            )
+            .unwrap();
+        }
+        input.flush().unwrap();
+        // Wait until the daemon has every line, then interrupt (the input stays open).
+        rt.block_on(async {
+            let t0 = Instant::now();
+            loop {
+                let s = status(&control).await.unwrap();
+                // (Not ended: the last run's sender stays listed, ended, until this one starts.)
+                let all_taken = |x: &v1::SenderState| {
+                    x.sender == "rig" && !x.ended && x.last_seq > 2 * n_trials
+                };
+                if s.senders.iter().any(all_taken) {
+                    break;
+                }
+                assert!(
+                    t0.elapsed() < Duration::from_secs(30),
+                    "the daemon never took the lines"
+                );
+                tokio::time::sleep(Duration::from_millis(20)).await;
+            }
+        });
+        // SAFETY: the id is of a child this test spawned and has not yet waited for.
+        unsafe { libc::kill(send.id() as libc::pid_t, libc::SIGINT) };
+        let out = send.wait_with_output().unwrap();
+        drop(input);
+        (
+            out.status.code(),
+            String::from_utf8_lossy(&out.stderr).into_owned(),
+        )
+    };
+    for round in 1..=2 {
+        let (code, stderr) = run(6);
+        assert_eq!(code, Some(130), "stderr: {stderr}");
+        assert!(
+            stderr.contains("interrupted") && stderr.contains("end of stream"),
+            "{stderr}"
+        );
+        rt.block_on(async {
+            let t0 = Instant::now();
+            while status(&control).await.unwrap().ended_sessions.len() < round {
+                assert!(
+                    t0.elapsed() < Duration::from_secs(30),
+                    "the session never ended"
+                );
+                tokio::time::sleep(Duration::from_millis(20)).await;
+            }
+        });
+    }
+    let s = rt.block_on(status(&control)).unwrap();
+    assert!(
+        s.session_name.is_empty() && s.open_trials.is_empty(),
+        "no session left open"
+    );
+    for e in &s.ended_sessions {
+        assert_eq!(e.reason, "every sender ended");
+        assert_eq!(e.trials_learned, 6, "each run learned alone: {e:?}");
+    }
+    assert_ne!(
+        s.ended_sessions[0].recording_path,
+        s.ended_sessions[1].recording_path
+    );
+    let h = s.health.unwrap();
+    assert_eq!((h.duplicate_trials, h.late_spikes), (0, 0), "{h:?}");
+    daemon.kill().unwrap();
+    daemon.wait().unwrap();
+}
+
 #[test]
 fn kill_9_during_recording_loses_only_the_unflushed_tail() {
     let dir = tempfile::tempdir().unwrap();
@@ -80,39 +217,13 @@ fn kill_9_during_recording_loses_only_the_unflushed_tail() {
     let msgs = dataset_messages(&data, "crash", 1000, 250_000);
     let half = msgs.len() / 2;
 
-    let ep = |p: u16| format!("tcp://127.0.0.1:{p}");
-    let (ingest, publish, control) = (ep(free_port()), ep(free_port()), ep(free_port()));
     let recording = dir.path().join("s.apxs");
-    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_auspex"))
-        .args(["daemon", "--model"])
-        .arg(&model_path)
-        .args([
-            "--ingest",
-            &ingest,
-            "--publish",
-            &publish,
-            "--control",
-            &control,
-            "--task-ingest",
-            "",
-            "--record",
-        ])
-        .arg(&recording)
-        .stdout(std::process::Stdio::null())
-        .stderr(std::process::Stdio::null())
-        .spawn()
-        .unwrap();
+    let (mut child, ingest, control) =
+        spawn_daemon(&["--model".as_ref(), model_path.as_os_str()], &recording);
 
     let rt = tokio::runtime::Runtime::new().unwrap();
     let sent_before_kill = rt.block_on(async {
-        let t0 = Instant::now();
-        while status(&control).await.is_err() {
-            assert!(
-                t0.elapsed() < Duration::from_secs(20),
-                "daemon did not start"
-            );
-            tokio::time::sleep(Duration::from_millis(50)).await;
-        }
+        wait_started(&control).await;
         let mut push = zeromq::PushSocket::new();
         push.connect(&ingest).await.unwrap();
         for m in &msgs[..half] {

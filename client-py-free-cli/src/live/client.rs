@@ -100,18 +100,36 @@ pub async fn replay(
     let t0 = Instant::now();
     let first_wm = messages.iter().find_map(crate::wire::watermark_of);
     let mut last_seq = 0;
+    let ctrl_c = tokio::signal::ctrl_c();
+    tokio::pin!(ctrl_c);
     for (i, m) in messages.iter().enumerate() {
-        if let (Pace::Speed(x), Some(w0), Some(w)) = (pace, first_wm, crate::wire::watermark_of(m))
-        {
-            let due = Duration::from_secs_f64(((w - w0) as f64 / tick_rate_hz / x).max(0.0));
-            let now = t0.elapsed();
-            if due > now {
-                tokio::time::sleep(due - now).await;
+        let send_one = async {
+            if let (Pace::Speed(x), Some(w0), Some(w)) =
+                (pace, first_wm, crate::wire::watermark_of(m))
+            {
+                let due = Duration::from_secs_f64(((w - w0) as f64 / tick_rate_hz / x).max(0.0));
+                let now = t0.elapsed();
+                if due > now {
+                    tokio::time::sleep(due - now).await;
+                }
             }
+            push.send(ZmqMessage::from(Bytes::from(m.encode_to_vec())))
+                .await
+                .context("sending to the daemon")
+        };
+        tokio::select! {
+            biased;
+            _ = &mut ctrl_c => {
+                bar.abandon();
+                end_stream(&mut push, sender, last_seq + 1).await?;
+                return Err(Interrupted(format!(
+                    "interrupted after {i} of {} messages: an end of stream was sent, so the daemon ends the session; a rerun starts a new one",
+                    messages.len()
+                ))
+                .into());
+            }
+            r = send_one => r?,
         }
-        push.send(ZmqMessage::from(Bytes::from(m.encode_to_vec())))
-            .await
-            .context("sending to the daemon")?;
         last_seq = m.seq;
         if i % 256 == 0 {
             bar.set_position(i as u64);
@@ -154,11 +172,53 @@ pub async fn replay(
                 progress.0
             );
         }
-        tokio::time::sleep(Duration::from_millis(20)).await;
+        tokio::select! {
+            _ = &mut ctrl_c => {
+                bar.abandon();
+                return Err(Interrupted(format!(
+                    "interrupted while the daemon was still taking the replay (message {} of {last_seq}); every message was sent, the end of stream last",
+                    progress.0
+                ))
+                .into());
+            }
+            _ = tokio::time::sleep(Duration::from_millis(20)) => {}
+        }
     }
     bar.finish_and_clear();
     drop(push);
     Ok(t0.elapsed())
+}
+
+/// A sender stopped by Ctrl-C, having ended its stream (the text says what was sent). The
+/// command exits with status 130, as an interrupted shell command does.
+#[derive(Debug)]
+pub struct Interrupted(pub String);
+
+impl std::fmt::Display for Interrupted {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(&self.0)
+    }
+}
+
+impl std::error::Error for Interrupted {}
+
+/// Sends `sender`'s end of stream as message `seq`, and gives the socket time to hand it over
+/// before it is dropped (the socket has no linger setting).
+pub async fn end_stream(
+    push: &mut zeromq::PushSocket,
+    sender: &str,
+    seq: u64,
+) -> anyhow::Result<()> {
+    let m = v1::Inbound {
+        sender: sender.to_string(),
+        seq,
+        body: Some(v1::inbound::Body::EndOfStream(v1::EndOfStream {})),
+    };
+    push.send(ZmqMessage::from(Bytes::from(m.encode_to_vec())))
+        .await
+        .context("sending the end of stream to the daemon")?;
+    tokio::time::sleep(Duration::from_millis(200)).await;
+    Ok(())
 }
 
 /// What `auspex replay` sends: a recorded session, or spike and trial tables.

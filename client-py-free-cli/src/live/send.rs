@@ -170,7 +170,21 @@ pub async fn send(
     let mut pending = Vec::new();
     let mut seq = 0u64;
     let mut ended = false;
-    while let Some((n, line)) = rx.recv().await {
+    let mut interrupted = false;
+    let ctrl_c = tokio::signal::ctrl_c();
+    tokio::pin!(ctrl_c);
+    loop {
+        let (n, line) = tokio::select! {
+            biased;
+            _ = &mut ctrl_c => {
+                interrupted = true;
+                break;
+            }
+            next = rx.recv() => match next {
+                Some(x) => x,
+                None => break,
+            },
+        };
         match parse_line(&line, &mut pending) {
             Ok(Some(body)) => {
                 ended = matches!(body, Body::EndOfStream(_));
@@ -208,18 +222,19 @@ pub async fn send(
     }
     if !ended {
         seq += 1;
-        let m = v1::Inbound {
-            sender: sender.to_string(),
-            seq,
-            body: Some(Body::EndOfStream(v1::EndOfStream {})),
-        };
-        push.send(ZmqMessage::from(Bytes::from(m.encode_to_vec())))
-            .await
-            .context("sending to the daemon")?;
+        crate::live::end_stream(&mut push, sender, seq).await?;
         summary.messages += 1;
+    } else {
+        // Let the socket hand over what it holds before it is dropped (no linger setting).
+        tokio::time::sleep(Duration::from_millis(200)).await;
     }
-    // Let the socket hand over what it holds before it is dropped (no linger setting).
-    tokio::time::sleep(Duration::from_millis(200)).await;
+    if interrupted {
+        return Err(crate::live::Interrupted(format!(
+            "interrupted: sent {} messages ({} spikes) as {sender:?}, the last an end of stream, so the daemon ends the session; a rerun starts a new one",
+            summary.messages, summary.spikes
+        ))
+        .into());
+    }
     Ok(summary)
 }
 
