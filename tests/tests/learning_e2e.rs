@@ -253,6 +253,37 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
         learning.refits >= 2,
         "models learned during the session: {learning:?}"
     );
+    // The learned model left with its session: status says so everywhere (it said "model in
+    // use fitted on N trials" beside "no model yet"), and `steer next` agrees.
+    assert!(st.model_path.is_empty() && st.stimuli.is_empty());
+    assert_eq!(learning.model_trials, 0, "{learning:?}");
+    assert!(learning.waiting_for.contains("save-learned"), "{learning:?}");
+    let next = control_waiting(
+        &ctx,
+        &ep.control,
+        control_request::Body::NextStimulus(v1::NextStimulus::default()),
+        5_000,
+    );
+    assert!(!next.ok && next.error.contains("no session is running"), "{next:?}");
+    // A learning action answers with what now holds, not the decision policy.
+    let r = control_waiting(
+        &ctx,
+        &ep.control,
+        control_request::Body::SetLearning(v1::SetLearning {
+            action: "freeze".into(),
+        }),
+        5_000,
+    );
+    assert!(r.ok && r.note.starts_with("learning frozen"), "{r:?}");
+    let r = control_waiting(
+        &ctx,
+        &ep.control,
+        control_request::Body::SetLearning(v1::SetLearning {
+            action: "resume".into(),
+        }),
+        5_000,
+    );
+    assert!(r.ok && r.note.starts_with("learning on"), "{r:?}");
     // Save what was learned: the fit of every labelled trial of the session.
     let saved = dir.path().join("learned.apxm");
     let r = control_waiting(

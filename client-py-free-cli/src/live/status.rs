@@ -109,7 +109,7 @@ pub fn status_text(s: &v1::Status) -> String {
                 l.model_trials, l.last_refit_age_s, l.last_refit_s
             )
         } else {
-            "no learned model yet".to_string()
+            "no learned model in use".to_string()
         };
         out!("learning {state}: {} labelled trials taken · {model} · {} refits (every {} trials or {:.0} s){}", l.trials_learned, l.refits, l.refit_every_trials, l.refit_every_s,
             if l.waiting_for.is_empty() { String::new() } else { format!(" · not yet: {}", l.waiting_for) });

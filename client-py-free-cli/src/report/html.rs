@@ -1075,11 +1075,15 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
             d.earliest_reliable_ms.map(|t| format!("{t:.0} ms")).unwrap_or_else(|| "never".into()),
             100.0 * d.decision.accuracy, 100.0 * d.decision.lo, 100.0 * d.decision.hi, d.decision.mean_time_ms, d.decision.median_time_ms, d.info_bits);
     }
-    s += "</table><h2>Decisions</h2><div class=row>";
+    s += "</table><h2>Decisions</h2><p class=sub>Every held-out trial is decided once: by the threshold when the posterior reaches θ after the minimum time, else at the window end. This table counts <i>all</i> decisions; the promise table below counts only those the threshold took (the promise is theirs), so the two differ where window-end decisions are many or weak.</p><div class=row>";
     s += &decision_time_plot(v);
     s += "</div><table><tr><th>threshold</th>";
     for d in &v.decoders {
-        let _ = write!(s, "<th>{} accuracy</th><th>mean time</th>", d.decoder);
+        let _ = write!(
+            s,
+            "<th>{}: accuracy of all decisions [95%]</th><th>mean time</th>",
+            d.decoder
+        );
     }
     s += "</tr>";
     for (k, th) in crate::validate::THRESHOLDS.iter().enumerate() {
@@ -1126,7 +1130,7 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
     s += &units_plot(v);
     s += "</div><h2>Do decisions keep their promise?</h2><p class=sub>Deciding at threshold θ promises to be right at least a share θ of the time. Below, the order-statistics decoder's decisions on held-out trials: realised accuracy with its 95% Clopper–Pearson interval for every threshold, flagged where the whole interval lies below the promise; and the reliability of the stated confidence (top posterior, binned by 0.1) at decision time and at the window end, with the expected calibration error (ECE: the trial-weighted mean gap between confidence and accuracy). Points below the diagonal are over-confident.</p><div class=row>";
     s += &calibration_plot(v);
-    s += "<table><tr><th>threshold (promise)</th><th>held-out accuracy [95%]</th><th></th></tr>";
+    s += "<table><tr><th>threshold θ (the promise)</th><th>decisions taken by the threshold: held-out accuracy [95%]</th><th></th></tr>";
     for p in &v.calibration.promises {
         let _ = write!(
             s,

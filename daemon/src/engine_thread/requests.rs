@@ -174,18 +174,31 @@ impl EngineThread {
         Ok(())
     }
 
-    pub(super) fn set_learning(&mut self, action: &str) -> Result<(), String> {
+    /// A learning action; the reply says what now holds.
+    pub(super) fn set_learning(&mut self, action: &str) -> Result<String, String> {
         let Some(l) = self.learn.as_mut() else {
             return Err("learning is off: start auspexd without --model, or with --learn".into());
         };
-        match action {
+        let in_use = if l.model_trials > 0 {
+            format!("the model learned from {} trials stays in use", l.model_trials)
+        } else {
+            "no learned model is in use yet".to_string()
+        };
+        let note = match action {
             "freeze" => {
                 l.enabled = false;
                 let _ = l.tx.send(LearnMsg::Enable(false));
+                format!("learning frozen: {in_use}; labelled trials are still collected ({} so far) and fitted on after `auspex steer learn resume`", l.trials_sent)
             }
             "resume" => {
                 l.enabled = true;
                 let _ = l.tx.send(LearnMsg::Enable(true));
+                format!(
+                    "learning on: {in_use}; refits every {} labelled trials or {:.0} s ({} taken so far)",
+                    l.setup.cadence.every_trials,
+                    l.setup.cadence.every.as_secs_f64(),
+                    l.trials_sent
+                )
             }
             "reset" => {
                 let _ = l.tx.send(LearnMsg::Reset);
@@ -196,15 +209,30 @@ impl EngineThread {
                         None,
                     )));
                 }
+                if self.session.is_none() {
+                    l.waiting_for = "the next session".into();
+                }
+                let next = if l.model_trials > 0 {
+                    format!(
+                        "the model learned from {} trials stays in use until the next refit",
+                        l.model_trials
+                    )
+                } else {
+                    "the first model comes once enough new trials are labelled".to_string()
+                };
+                format!(
+                    "learning reset: the {} labelled trials taken so far are forgotten; {next}",
+                    l.trials_sent
+                )
             }
             other => {
                 return Err(format!(
                     "unknown learning action `{other}`: use freeze, resume or reset"
                 ))
             }
-        }
+        };
         tracing::info!(action, "learning");
-        Ok(())
+        Ok(note)
     }
 
     pub(super) fn control(&mut self, body: control_request::Body) -> ControlReply {
@@ -299,7 +327,11 @@ impl EngineThread {
             B::NextStimulus(n) => {
                 let ns = self.current.len();
                 if ns == 0 {
-                    return err("no model yet: nothing to choose among (learning waits for labelled trials)".into());
+                    return err(match (&self.learn, &self.session) {
+                        (Some(_), Some(_)) => "no model yet: nothing to choose among (learning waits for labelled trials)".into(),
+                        (Some(_), None) => "no model in use: no session is running, and each session learns afresh (a model loaded with --model or `steer reload` is used from the start)".into(),
+                        (None, _) => "no model loaded: nothing to choose among".into(),
+                    });
                 }
                 self.chooser.resize(ns);
                 let (idx, policy) = match n.policy.as_str() {
@@ -313,10 +345,15 @@ impl EngineThread {
                     policy: policy.into(),
                 })))
             }
-            B::SetLearning(a) => {
-                let r = self.set_learning(a.action.trim());
-                with_status(self, r)
-            }
+            B::SetLearning(a) => match self.set_learning(a.action.trim()) {
+                Ok(note) => ControlReply {
+                    ok: true,
+                    error: String::new(),
+                    note,
+                    body: None,
+                },
+                Err(e) => err(e),
+            },
             B::Reload(_) | B::SaveLearned(_) => {
                 err("reload and save are handled by the control task".into())
             }

@@ -191,7 +191,17 @@ impl EngineThread {
         self.collector = None;
         self.tick_rate = self.fixed_tick_rate;
         if let Some(l) = self.learn.as_mut() {
-            l.waiting_for = "the next session".into();
+            // The learned model leaves with its session (below): status must not show it in use.
+            l.model_trials = 0;
+            l.applied_at = None;
+            l.waiting_for = if l.trials_sent > 0 {
+                format!(
+                    "the next session (it learns afresh; the last one's {} labelled trials are kept until then: `auspex steer save-learned FILE` saves their model)",
+                    l.trials_sent
+                )
+            } else {
+                "the next session".into()
+            };
         }
         if self.learn.is_some() {
             // Learning starts from the loaded model (or none) in every session.
