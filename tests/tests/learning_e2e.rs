@@ -606,3 +606,98 @@ fn retransmitted_messages_are_dropped_and_a_restarting_sender_is_followed() {
     );
     assert!(sent > 0);
 }
+
+/// A replay asks the daemon to learn in step (`SessionStart.learn_in_step`, as `auspex replay`
+/// and `auspex demo` do): the refit due at trial N applies at trial N however fast the messages
+/// arrive. The same session sent at real time, at 10× and as fast as the socket goes gives the
+/// same live frames, each equal to `decode --prequential` of its own recording bit for bit, and
+/// the same accuracy. (Without learning in step a fast replay refitted once and decoded the
+/// rest at 42%.)
+#[test]
+fn a_replay_learns_in_step_at_any_speed() {
+    let _g = serial();
+    let sc = scenario();
+    let truth = Model::new(sc.true_model().unwrap()).unwrap();
+    let data = simulate(
+        &truth,
+        &SimOptions {
+            trials_per_stimulus: 6,
+            seed: 33,
+            ..sc.sim_options()
+        },
+    );
+    let window_ticks = (sc.window_ms / 1000.0 * data.tick_rate_hz).round() as i64;
+    let mut msgs = session_messages(&data, "in-step", window_ticks, None);
+    auspex::live::client::ask_to_learn_in_step(&mut msgs);
+    let mut runs = Vec::new();
+    for speed in [f64::INFINITY, 10.0, 1.0] {
+        let dir = tempfile::tempdir().unwrap();
+        let mut cfg = daemon_config(dir.path(), None);
+        cfg.learn.as_mut().unwrap().window_s = Some(sc.window_ms / 1000.0);
+        let Live {
+            rt,
+            running,
+            ep,
+            ctx,
+            stop,
+            sub,
+            push,
+        } = live(cfg);
+        send(&push, &msgs, speed);
+        let mut waited = Instant::now();
+        let mut last = 0;
+        // A learning daemon answers status between messages only: slow replies while it refits.
+        loop {
+            let st = status(&ctx, &ep.control);
+            if st.ended_sessions.len() == 1 {
+                break;
+            }
+            let seq = st.senders.first().map(|s| s.last_seq).unwrap_or(0);
+            if seq > last {
+                (last, waited) = (seq, Instant::now());
+            }
+            assert!(
+                waited.elapsed() < Duration::from_secs(120),
+                "no progress at speed {speed}"
+            );
+            std::thread::sleep(Duration::from_millis(50));
+        }
+        let st = status(&ctx, &ep.control);
+        let summary = st.ended_sessions[0].clone();
+        let learning = st.learning.unwrap();
+        std::thread::sleep(Duration::from_millis(300));
+        stop.send(()).unwrap();
+        let got = sub.join().unwrap();
+        rt.block_on(running.stop());
+        let live = frames_of(&got);
+        let files = recordings(dir.path());
+        let rec = read_recording(&files[0]).unwrap();
+        let (_, _, frames) = run_recording(
+            &rec,
+            &LearnOptions::default(),
+            &EngineConfig::new(rec.dataset.tick_rate_hz),
+            &Schedule { every_trials: 4 },
+            None::<Vec<u8>>,
+            true,
+        )
+        .unwrap();
+        let mut offline = frames.unwrap();
+        offline.sort_by_key(|x| (x.0, x.1));
+        assert!(
+            live == offline,
+            "speed {speed}: live frames differ from decode --prequential of the recording"
+        );
+        assert_eq!(learning.trials_learned, data.trials.len() as u64);
+        runs.push((speed, live, summary, learning.refits));
+    }
+    let (_, first, s0, r0) = &runs[0];
+    assert!(s0.decisions_labelled > 0 && *r0 >= 3, "{s0:?}, {r0} refits");
+    for (speed, frames, s, refits) in &runs[1..] {
+        assert!(frames == first, "speed {speed}: frames differ from the fastest replay's");
+        assert_eq!(
+            (s.decisions_labelled, s.decisions_correct, refits),
+            (s0.decisions_labelled, s0.decisions_correct, r0),
+            "speed {speed}: accuracy and refits as the fastest replay's"
+        );
+    }
+}
