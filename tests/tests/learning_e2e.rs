@@ -257,14 +257,20 @@ fn a_daemon_without_a_model_learns_and_equals_prequential_decoding_and_the_offli
     // use fitted on N trials" beside "no model yet"), and `steer next` agrees.
     assert!(st.model_path.is_empty() && st.stimuli.is_empty());
     assert_eq!(learning.model_trials, 0, "{learning:?}");
-    assert!(learning.waiting_for.contains("save-learned"), "{learning:?}");
+    assert!(
+        learning.waiting_for.contains("save-learned"),
+        "{learning:?}"
+    );
     let next = control_waiting(
         &ctx,
         &ep.control,
         control_request::Body::NextStimulus(v1::NextStimulus::default()),
         5_000,
     );
-    assert!(!next.ok && next.error.contains("no session is running"), "{next:?}");
+    assert!(
+        !next.ok && next.error.contains("no session is running"),
+        "{next:?}"
+    );
     // A learning action answers with what now holds, not the decision policy.
     let r = control_waiting(
         &ctx,
@@ -693,7 +699,10 @@ fn a_replay_learns_in_step_at_any_speed() {
     let (_, first, s0, r0) = &runs[0];
     assert!(s0.decisions_labelled > 0 && *r0 >= 3, "{s0:?}, {r0} refits");
     for (speed, frames, s, refits) in &runs[1..] {
-        assert!(frames == first, "speed {speed}: frames differ from the fastest replay's");
+        assert!(
+            frames == first,
+            "speed {speed}: frames differ from the fastest replay's"
+        );
         assert_eq!(
             (s.decisions_labelled, s.decisions_correct, refits),
             (s0.decisions_labelled, s0.decisions_correct, r0),

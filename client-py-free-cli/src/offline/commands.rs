@@ -167,6 +167,10 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
         group_starts(&ids, &args.unit_groups)?;
     }
     let t0 = std::time::Instant::now();
+    // Fitted and calibrated with the stimuli in the order they are met, stored in the order
+    // they are presented: no figure depends on a listing order or on names.
+    let presented = data.stimulus_names();
+    let data = data.in_met_order();
     let (mut spec, plan) = fit_dataset(&data, &opts, std::io::stderr().is_terminal() && !quiet)?;
     for (name, &n) in plan.stimuli.iter().zip(&plan.trials_per_stimulus) {
         if (n as usize) < FEW_TRIALS {
@@ -178,7 +182,13 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
         }
     }
     if !quiet {
-        print!("{}", cell_table(&spec));
+        print!(
+            "{}",
+            cell_table(&auspex_modelling::fit::reorder_spec(
+                spec.clone(),
+                &presented
+            )?)
+        );
     }
     eprintln!(
         "fitted {} units × {} stimuli ({} cells, {} bins of {} ms) in {:.1} s; {} trials without a label were not used",
@@ -201,6 +211,7 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
             ),
         }
     }
+    let mut spec = auspex_modelling::fit::reorder_spec(spec, &presented)?;
     spec.unit_groups = group_starts(&spec.units, &args.unit_groups)?;
     if !spec.unit_groups.is_empty() {
         let mut sizes = Vec::new();

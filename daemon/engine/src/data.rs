@@ -76,34 +76,55 @@ pub enum Event {
     },
 }
 
+/// The presentation order of stimuli met in the order `as_met`: `explicit` first (those of
+/// its names that occur), then the rest as met; with no explicit order, numeric order when
+/// every name is a number; else as met.
+pub fn presentation_order(as_met: Vec<String>, explicit: &[String]) -> Vec<String> {
+    let v = as_met;
+    if !explicit.is_empty() {
+        let mut ordered: Vec<String> = explicit.iter().filter(|s| v.contains(s)).cloned().collect();
+        ordered.extend(v.into_iter().filter(|s| !explicit.contains(s)));
+        return ordered;
+    }
+    let numbers: Option<Vec<f64>> = v.iter().map(|s| s.trim().parse::<f64>().ok()).collect();
+    if let Some(x) = numbers {
+        let mut idx: Vec<usize> = (0..v.len()).collect();
+        idx.sort_by(|&a, &b| x[a].total_cmp(&x[b]));
+        return idx.into_iter().map(|i| v[i].clone()).collect();
+    }
+    v
+}
+
 impl Dataset {
-    /// Stimulus names in order of first appearance.
+    /// Stimulus names in the order they are presented (listed, reported, stored in a model):
+    /// the dataset's own `stimulus_order` if given, else numeric order when every name is a
+    /// number, else the order they are first met in ([`presentation_order`]).
     pub fn stimulus_names(&self) -> Vec<String> {
+        presentation_order(self.stimuli_as_met(), &self.stimulus_order)
+    }
+
+    /// Stimulus names in the order the trials first show them, trials taken by (onset, id):
+    /// the order computations follow, so that no figure depends on how stimuli are named,
+    /// listed or stored.
+    pub fn stimuli_as_met(&self) -> Vec<String> {
+        let mut idx: Vec<usize> = (0..self.trials.len()).collect();
+        idx.sort_by_key(|&i| (self.trials[i].onset, self.trials[i].id, i));
         let mut v: Vec<String> = Vec::new();
-        for t in &self.trials {
-            if let Some(s) = &t.stimulus {
+        for i in idx {
+            if let Some(s) = &self.trials[i].stimulus {
                 if !v.contains(s) {
                     v.push(s.clone());
                 }
             }
         }
-        if !self.stimulus_order.is_empty() {
-            let mut ordered: Vec<String> = self
-                .stimulus_order
-                .iter()
-                .filter(|s| v.contains(s))
-                .cloned()
-                .collect();
-            ordered.extend(v.into_iter().filter(|s| !self.stimulus_order.contains(s)));
-            return ordered;
-        }
-        let numbers: Option<Vec<f64>> = v.iter().map(|s| s.trim().parse::<f64>().ok()).collect();
-        if let Some(x) = numbers {
-            let mut idx: Vec<usize> = (0..v.len()).collect();
-            idx.sort_by(|&a, &b| x[a].total_cmp(&x[b]));
-            return idx.into_iter().map(|i| v[i].clone()).collect();
-        }
         v
+    }
+
+    /// This dataset with its stimuli in the order they are met ([`Dataset::stimuli_as_met`]).
+    pub fn in_met_order(&self) -> Dataset {
+        let mut d = self.clone();
+        d.stimulus_order = d.stimuli_as_met();
+        d
     }
 
     /// The last tick any trial window or spike touches, given the window length in ticks.

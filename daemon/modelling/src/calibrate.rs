@@ -452,7 +452,9 @@ pub fn held_out_set(
     let labelled: Vec<usize> = (0..data.trials.len())
         .filter(|&i| data.trials[i].stimulus.is_some())
         .collect();
-    let data = data.subset(&labelled);
+    // Folds fitted with the stimuli in the order they are met, whatever order `data` lists
+    // them in (pass `stimuli` in that order too for results independent of any listing).
+    let data = data.subset(&labelled).in_met_order();
     let ns = stimuli.len();
     let labels: Vec<usize> = data
         .trials

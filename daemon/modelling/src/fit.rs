@@ -169,6 +169,36 @@ pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
     )
 }
 
+/// `spec` with its stimuli in `order` (the same names): cells and prior moved with their
+/// stimulus; a calibration concerns no stimulus and stays. Models are fitted with the stimuli
+/// in the order they are met (`Dataset::in_met_order`), so that no figure depends on a listing
+/// order, and stored in the order they are presented.
+pub fn reorder_spec(mut spec: ModelSpec, order: &[String]) -> Result<ModelSpec, FitError> {
+    let ns = spec.stimuli.len();
+    let map: Vec<usize> = order
+        .iter()
+        .map(|s| spec.stimuli.iter().position(|x| x == s))
+        .collect::<Option<_>>()
+        .filter(|m: &Vec<usize>| m.len() == ns)
+        .ok_or_else(|| {
+            FitError::Data(format!(
+                "cannot list the model's stimuli {:?} as {order:?}",
+                spec.stimuli
+            ))
+        })?;
+    let nu = spec.units.len();
+    let mut cells = Vec::with_capacity(nu * ns);
+    for u in 0..nu {
+        for &m in &map {
+            cells.push(spec.cells[u * ns + m].clone());
+        }
+    }
+    spec.cells = cells;
+    spec.prior = map.iter().map(|&m| spec.prior[m]).collect();
+    spec.stimuli = order.to_vec();
+    Ok(spec)
+}
+
 /// The planning shared by [`plan`] (a whole dataset) and the learner (the labelled trials of a
 /// running session): trial i has stimulus `stim_of[i]` (None: unlabelled, not used) and onset
 /// `onsets[i]`; `w` holds every unit's window of every trial.

@@ -24,17 +24,7 @@ pub fn stratified_folds(
     seed: u64,
 ) -> Vec<usize> {
     debug_assert_eq!(labels.len(), when.len());
-    let mut by_time: Vec<usize> = (0..labels.len()).collect();
-    by_time.sort_by_key(|&i| (when.get(i).copied().unwrap_or((0, 0)), i));
-    let mut first_seen: Vec<usize> = Vec::with_capacity(n_stimuli);
-    let mut seen = vec![false; n_stimuli];
-    for &i in &by_time {
-        let s = labels[i];
-        if s < n_stimuli && !seen[s] {
-            seen[s] = true;
-            first_seen.push(s);
-        }
-    }
+    let (by_time, first_seen) = time_order(labels, when, n_stimuli);
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let mut fold = vec![0usize; labels.len()];
     let mut next = 0usize;
@@ -52,6 +42,28 @@ pub fn stratified_folds(
         }
     }
     fold
+}
+
+/// The trials in (onset, id) order, and the stimuli in the order they first appear in it: the
+/// order every seeded draw over trials or stimuli follows, so that no draw depends on how the
+/// trials are listed or the stimuli named.
+pub fn time_order(
+    labels: &[usize],
+    when: &[(i64, u64)],
+    n_stimuli: usize,
+) -> (Vec<usize>, Vec<usize>) {
+    let mut by_time: Vec<usize> = (0..labels.len()).collect();
+    by_time.sort_by_key(|&i| (when.get(i).copied().unwrap_or((0, 0)), i));
+    let mut first_seen: Vec<usize> = Vec::with_capacity(n_stimuli);
+    let mut seen = vec![false; n_stimuli];
+    for &i in &by_time {
+        let s = labels[i];
+        if s < n_stimuli && !seen[s] {
+            seen[s] = true;
+            first_seen.push(s);
+        }
+    }
+    (by_time, first_seen)
 }
 
 #[cfg(test)]

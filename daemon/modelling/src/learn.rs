@@ -15,6 +15,7 @@
 //! or spawn threads.
 
 use crate::calibrate::{calibrate, held_out_set, DEFAULT_METHOD};
+use crate::fit::reorder_spec;
 use crate::fit::{plan_from_windows, window_bins, FitError, FitOptions, FitPlan};
 use crate::windows::UnitWindows;
 use auspex_engine::calibration::CalibrationMethod;
@@ -494,8 +495,14 @@ impl Learner {
         mut spec: ModelSpec,
         fit: &dyn Fn(&FitPlan) -> ModelSpec,
     ) -> ModelSpec {
+        // Stored in the order `auspex fit` presents them (numbers in numeric order).
+        let presented: Vec<String> =
+            auspex_engine::data::presentation_order(self.stimulus_order(), &[])
+                .into_iter()
+                .filter(|s| spec.stimuli.contains(s))
+                .collect();
         if self.opts.calibration == CalibrationMethod::None {
-            return spec;
+            return reorder_spec(spec.clone(), &presented).unwrap_or(spec);
         }
         let mut d = self.dataset();
         let units: std::collections::BTreeSet<u32> = spec.units.iter().copied().collect();
@@ -513,7 +520,7 @@ impl Learner {
                 self.opts.calibration_min_time_s,
             );
         }
-        spec
+        reorder_spec(spec.clone(), &presented).unwrap_or(spec)
     }
 }
 

@@ -180,7 +180,10 @@ impl EngineThread {
             return Err("learning is off: start auspexd without --model, or with --learn".into());
         };
         let in_use = if l.model_trials > 0 {
-            format!("the model learned from {} trials stays in use", l.model_trials)
+            format!(
+                "the model learned from {} trials stays in use",
+                l.model_trials
+            )
         } else {
             "no learned model is in use yet".to_string()
         };

@@ -21,7 +21,7 @@ use auspex_engine::special::argmax;
 use auspex_engine::CountFamily;
 use auspex_engine::LookupBudget;
 use rand::seq::SliceRandom;
-use rand::{Rng, SeedableRng};
+use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 use std::collections::HashMap;
@@ -643,6 +643,10 @@ pub fn validate_with(
         .filter(|&i| data.trials[i].stimulus.is_some())
         .collect();
     let data = subset(data, &labelled, None);
+    // Computed with the stimuli in the order they are met, presented in the order asked for
+    // (`--stimulus-order`, numeric names in numeric order): no figure depends on the listing.
+    let presented = data.stimulus_names();
+    let data = data.in_met_order();
     let full_plan = plan(&data, &opts.fit)?;
     let stimuli = full_plan.stimuli.clone();
     let (ns, nb) = (stimuli.len(), full_plan.n_bins);
@@ -837,17 +841,81 @@ pub fn validate_with(
             unit_figures(u.unit, &full_model, &data, &w, &labels, &rescaled, bw_ms)
         })
         .collect();
-    Ok((
-        v,
-        Extras {
-            full_model,
-            data,
-            labels,
-            trajectories: traj,
-            rescaled,
-            unit_figures,
-        },
-    ))
+    let mut v = v;
+    let mut x = Extras {
+        full_model,
+        data,
+        labels,
+        trajectories: traj,
+        rescaled,
+        unit_figures,
+    };
+    present(&mut v, &mut x, &presented)?;
+    Ok((v, x))
+}
+
+/// Puts a validation computed with the stimuli as met into the order they are presented:
+/// every per-stimulus list, matrix and figure is permuted, no number changes.
+fn present(v: &mut Validation, x: &mut Extras, order: &[String]) -> Result<(), ValidateError> {
+    let ns = v.stimuli.len();
+    // map[p]: the computed index of the stimulus presented at position p.
+    let map: Vec<usize> = order
+        .iter()
+        .filter_map(|s| v.stimuli.iter().position(|x| x == s))
+        .collect();
+    if map.len() != ns || map.iter().enumerate().all(|(p, &m)| p == m) {
+        return Ok(());
+    }
+    let mut at = vec![0usize; ns];
+    for (p, &m) in map.iter().enumerate() {
+        at[m] = p;
+    }
+    v.stimuli = map.iter().map(|&m| v.stimuli[m].clone()).collect();
+    for d in &mut v.decoders {
+        for c in [&mut d.confusion_decision, &mut d.confusion_end] {
+            *c = map
+                .iter()
+                .map(|&r| map.iter().map(|&q| c[r][q]).collect())
+                .collect();
+        }
+    }
+    for u in &mut v.units_ranked {
+        u.cells = map.iter().map(|&m| u.cells[m].clone()).collect();
+    }
+    let unit_at = |id: u32| x.data.units.iter().position(|&u| u == id);
+    let stim_at = |name: &str| order.iter().position(|s| s == name);
+    v.goodness_of_fit
+        .failed
+        .sort_by_key(|(u, s)| (unit_at(*u), stim_at(s)));
+    let spec = crate::fit::reorder_spec(x.full_model.spec().clone(), &v.stimuli)?;
+    x.full_model = Arc::new(Model::new(spec)?);
+    for l in &mut x.labels {
+        *l = at[*l];
+    }
+    for per_decoder in &mut x.trajectories {
+        for tr in per_decoder.iter_mut() {
+            *tr = tr
+                .chunks(ns)
+                .flat_map(|bin| map.iter().map(move |&m| bin[m]))
+                .collect();
+        }
+    }
+    let nu = x.rescaled.len() / ns.max(1);
+    let mut rescaled = Vec::with_capacity(x.rescaled.len());
+    for u in 0..nu {
+        for &m in &map {
+            rescaled.push(std::mem::take(&mut x.rescaled[u * ns + m]));
+        }
+    }
+    x.rescaled = rescaled;
+    for f in &mut x.unit_figures {
+        f.raster = map.iter().map(|&m| f.raster[m].clone()).collect();
+        f.psth = map.iter().map(|&m| f.psth[m].clone()).collect();
+        f.counts = map.iter().map(|&m| f.counts[m].clone()).collect();
+        f.ks = map.iter().map(|&m| f.ks[m].clone()).collect();
+    }
+    x.data.stimulus_order = v.stimuli.clone();
+    Ok(())
 }
 
 /// What cross-validated decoding gives: per decoder and trial the posterior trajectory, the
@@ -884,7 +952,6 @@ fn cross_validate(
     let mut pop_conf_closed = vec![0u64; ns * ns];
     let mut folds = Vec::with_capacity(k);
     let mut held_ll: Vec<Vec<f64>> = vec![Vec::new(); nt];
-    let mut rng = ChaCha8Rng::seed_from_u64(opts.seed ^ 0x5eed);
     for f in 0..k {
         let train: Vec<usize> = (0..nt).filter(|&i| fold_of[i] != f).collect();
         let test: Vec<usize> = (0..nt).filter(|&i| fold_of[i] == f).collect();
@@ -932,21 +999,29 @@ fn cross_validate(
             &mut pop_conf_closed,
             &mut unit_conf,
         );
-        // Time rescaling on the held-out trials, each under its presented stimulus.
+        // Time rescaling on the held-out trials, each under its presented stimulus. The
+        // uniform draws of the discrete-time correction are keyed by the trial (onset, id) and
+        // the draw's place in it, not drawn from one stream in unit order: renumbering the
+        // units changes no draw of any cell.
         let mut counts = vec![0u32; nb];
         for &i in &test {
             let s = labels[i];
+            let t = &data.trials[i];
             for u in 0..nu {
                 counts.iter_mut().for_each(|c| *c = 0);
                 for &b in &bins[u][i] {
                     counts[b as usize] += 1;
                 }
+                let mut draw = 0u64;
                 rescaled_intervals(
                     model.count(u, s),
                     |b| model.survival(u, s, b),
                     &counts,
                     &mut carry[u * ns + s],
-                    || rng.gen::<f64>(),
+                    || {
+                        draw += 1;
+                        keyed_uniform(&[opts.seed ^ 0x5eed, t.onset as u64, t.id, draw])
+                    },
                     &mut rescaled[u * ns + s],
                 );
             }
@@ -1410,18 +1485,23 @@ fn learning_curve(
 ) -> Result<Vec<LearningPoint>, ValidateError> {
     let (ns, nu, nt) = (stimuli.len(), data.units.len(), labels.len());
     let mut rng = ChaCha8Rng::seed_from_u64(opts.seed ^ 0x1ea2);
-    // Per fold, per stimulus: training trials in a seeded random order.
+    // Per fold, per stimulus: training trials in a seeded random order. The draws follow the
+    // trials' time order and the stimuli's first appearance, never a listing order or names.
+    let when: Vec<(i64, u64)> = data.trials.iter().map(|t| (t.onset, t.id)).collect();
+    let (by_time, first_seen) = crate::folds::time_order(labels, &when, ns);
     let orders: Vec<Vec<Vec<usize>>> = (0..k)
         .map(|f| {
-            (0..ns)
-                .map(|s| {
-                    let mut v: Vec<usize> = (0..nt)
-                        .filter(|&i| fold_of[i] != f && labels[i] == s)
-                        .collect();
-                    v.shuffle(&mut rng);
-                    v
-                })
-                .collect()
+            let mut per = vec![Vec::new(); ns];
+            for &s in &first_seen {
+                let mut v: Vec<usize> = by_time
+                    .iter()
+                    .copied()
+                    .filter(|&i| fold_of[i] != f && labels[i] == s)
+                    .collect();
+                v.shuffle(&mut rng);
+                per[s] = v;
+            }
+            per
         })
         .collect();
     let most = orders
@@ -1464,6 +1544,22 @@ fn learning_curve(
         });
     }
     Ok(out)
+}
+
+/// A uniform draw in (0, 1) that is a function of `key` alone (SplitMix64's finaliser over
+/// the key's words; Steele, Lea & Flood 2014), for draws that must not depend on the order
+/// anything is visited in.
+fn keyed_uniform(key: &[u64]) -> f64 {
+    let mut h = 0x9e37_79b9_7f4a_7c15u64;
+    for &k in key {
+        h = h.wrapping_add(k).wrapping_add(0x9e37_79b9_7f4a_7c15);
+        let mut z = h;
+        z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
+        z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
+        h = z ^ (z >> 31);
+    }
+    // 53 random bits, shifted off zero.
+    ((h >> 11) as f64 + 0.5) / (1u64 << 53) as f64
 }
 
 type Nulls = (Vec<f64>, Vec<Vec<f64>>);
