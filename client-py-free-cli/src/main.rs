@@ -18,6 +18,11 @@ use std::path::PathBuf;
     about = "Decode which stimulus spiking units signal, bin by bin — offline and live"
 )]
 struct Cli {
+    /// Memory budget, MB: a fit, validation, model, scenario or replay whose tables would need
+    /// more is refused before the memory is asked for (give it before the command:
+    /// `auspex --memory-budget-mb 8192 validate …`; the daemon takes its own)
+    #[arg(long, default_value_t = auspex_engine::budget::DEFAULT_MB, value_parser = clap::value_parser!(u64).range(64..=(1 << 24)))]
+    memory_budget_mb: u64,
     #[command(subcommand)]
     cmd: Cmd,
 }
@@ -33,6 +38,18 @@ fn lookup_budget(s: &str) -> Result<LookupBudget, String> {
         .parse()
         .map_err(|e| format!("{s:?}: {e}; give MB, e.g. 2048"))?;
     LookupBudget::from_mb(mb).map_err(|e| e.to_string())
+}
+
+/// A replay speed: a finite number above 0 and at most 10⁶ (times real time).
+fn positive_speed(s: &str) -> Result<f64, String> {
+    let x: f64 = s.parse().map_err(|_| format!("`{s}` is not a number"))?;
+    if x.is_finite() && x > 0.0 && x <= 1e6 {
+        Ok(x)
+    } else {
+        Err(format!(
+            "{x} must be above 0 and at most 1000000 (--fast sends without pacing)"
+        ))
+    }
 }
 
 fn parse_prior(s: &str) -> Result<Vec<f64>, String> {
@@ -322,8 +339,8 @@ enum Cmd {
         /// Fewer tables on screen
         #[arg(long)]
         quiet: bool,
-        /// Replay speed (times real time)
-        #[arg(long, default_value_t = 1.0)]
+        /// Replay speed (times real time, a positive number)
+        #[arg(long, default_value_t = 1.0, value_parser = positive_speed)]
         speed: f64,
         /// Replay as fast as the daemon accepts
         #[arg(long)]
@@ -361,8 +378,8 @@ enum Cmd {
         /// Daemon control endpoint (for the acknowledgement)
         #[arg(long, default_value = auspex_proto::endpoints::CONTROL)]
         control: String,
-        /// Times real time
-        #[arg(long, default_value_t = 1.0)]
+        /// Times real time (a positive number)
+        #[arg(long, default_value_t = 1.0, value_parser = positive_speed)]
         speed: f64,
         /// As fast as the daemon accepts
         #[arg(long)]
@@ -379,6 +396,11 @@ enum Cmd {
         /// each shard, trials to the combiner's task endpoint
         #[arg(long, value_parser = ["spikes", "trials"])]
         only: Option<String>,
+        /// Let a learning daemon refit at its own pace, as during a live recording (by default a
+        /// replay asks it to learn in step with the session's trials, so any speed gives the
+        /// frames of the real-time session and of `decode --prequential`)
+        #[arg(long)]
+        learn_at_own_pace: bool,
     },
     /// Send plain text lines (spike UNIT TICK, through TICK, onset TRIAL TICK [STIM], label, cancel,
     /// units … from TICK, session, end) to a daemon: a bridge for programs in any language
@@ -487,6 +509,7 @@ fn main() {
         libc::signal(libc::SIGPIPE, libc::SIG_DFL);
     }
     let cli = Cli::parse();
+    auspex_engine::budget::set_mb(cli.memory_budget_mb);
     let r = match cli.cmd {
         Cmd::Simulate {
             scenario,
@@ -651,14 +674,14 @@ fn main() {
             Ok(())
         }),
         Cmd::Daemon { args } => std::process::exit(auspexd::cli::run_cli(*args)),
-        Cmd::Replay { session, spikes, trials, to, control, speed, fast, sender, units, only } => runtime().and_then(|rt| {
+        Cmd::Replay { session, spikes, trials, to, control, speed, fast, sender, units, only, learn_at_own_pace } => runtime().and_then(|rt| {
             rt.block_on(async {
                 let source = match (session, spikes, trials) {
                     (Some(p), _, _) => ReplaySource::Session(p),
                     (None, Some(spikes), Some(trials)) => ReplaySource::Tables { spikes, trials },
                     _ => anyhow::bail!("give --session FILE, or --spikes and --trials"),
                 };
-                let (msgs, rate) = auspex::live::replay_messages(&source, &control, &sender).await?;
+                let (msgs, rate) = auspex::live::replay_messages(&source, &control, &sender, !learn_at_own_pace).await?;
                 let units = units.as_deref().map(auspex::wire::parse_unit_ranges).transpose()?;
                 let msgs = auspex::wire::select_messages(msgs, units.as_ref(), only.as_deref(), &sender);
                 let pace = if fast { Pace::Max } else { Pace::Speed(speed) };

@@ -98,8 +98,17 @@ async fn wait_started(control: &str) {
 fn ctrl_c_on_send_ends_the_session_and_a_rerun_is_a_new_one() {
     use std::io::Write;
     let dir = tempfile::tempdir().unwrap();
-    let (mut daemon, ingest, control) =
+    let (daemon, ingest, control) =
         spawn_daemon(&["--learn-window-ms".as_ref(), "100".as_ref()], dir.path());
+    // Killed however the test ends (a failed assertion must not leave a daemon running).
+    struct KillOnDrop(std::process::Child);
+    impl Drop for KillOnDrop {
+        fn drop(&mut self) {
+            let _ = self.0.kill();
+            let _ = self.0.wait();
+        }
+    }
+    let _daemon = KillOnDrop(daemon);
     let rt = tokio::runtime::Runtime::new().unwrap();
     rt.block_on(wait_started(&control));
     let run = |n_trials: u64| {
@@ -183,8 +192,6 @@ fn ctrl_c_on_send_ends_the_session_and_a_rerun_is_a_new_one() {
     );
     let h = s.health.unwrap();
     assert_eq!((h.duplicate_trials, h.late_spikes), (0, 0), "{h:?}");
-    daemon.kill().unwrap();
-    daemon.wait().unwrap();
 }
 
 #[test]

@@ -84,6 +84,10 @@ pub struct DaemonArgs {
     /// Memory for looked-up COM-Poisson/empirical count terms, MB (more: fewer evaluated per bin) [default: 1024]
     #[arg(long)]
     pub table_memory_mb: Option<u64>,
+    /// Memory budget, MB: a model, session or learned fit whose tables would need more is
+    /// refused (and counted) before the memory is asked for, and the daemon keeps what it had [default: 2048]
+    #[arg(long)]
+    pub memory_budget_mb: Option<u64>,
     /// Engine threads sharing the model's units; frames are identical for any number (`auspex bench` recommends one) [default: 1]
     #[arg(long, value_name = "N")]
     pub threads: Option<u32>,
@@ -154,6 +158,9 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
     }
     if a.table_memory_mb.is_some() {
         f.table_memory_mb = a.table_memory_mb;
+    }
+    if a.memory_budget_mb.is_some() {
+        f.memory_budget_mb = a.memory_budget_mb;
     }
     if a.threads.is_some() {
         f.threads = a.threads;

@@ -57,6 +57,9 @@ pub struct FileConfig {
     pub log_json: Option<bool>,
     /// Memory for looked-up COM-Poisson/empirical terms, MB.
     pub table_memory_mb: Option<u64>,
+    /// The process's memory budget, MB ([`auspex_engine::budget`]): models, sessions and
+    /// learned fits that would need more are refused before the memory is asked for.
+    pub memory_budget_mb: Option<u64>,
     /// Engine threads sharing the units (frames are identical for any number).
     pub threads: Option<u32>,
     /// Learn from the session's labelled trials (default: on without a model, off with one).
@@ -249,6 +252,16 @@ impl From<String> for ConfigError {
 /// Builds and checks the configuration. `warnings` receives what should be printed.
 pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfig, ConfigError> {
     let deployment = deployment(&f)?;
+    // The budget holds from here on: the model below is loaded under it.
+    let budget_mb = f
+        .memory_budget_mb
+        .unwrap_or(auspex_engine::budget::DEFAULT_MB);
+    if !(64..=(1 << 24)).contains(&budget_mb) {
+        return Err(ConfigError::Invalid(format!(
+            "memory budget {budget_mb} MB must be 64..=16777216"
+        )));
+    }
+    auspex_engine::budget::set_mb(budget_mb);
     let model = f.model;
     let learn_on = f.learn.unwrap_or(model.is_none());
     if model.is_none() && !learn_on {

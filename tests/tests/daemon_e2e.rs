@@ -691,6 +691,33 @@ fn hot_reload_through_control_applies_at_the_trial_boundary() {
         }),
     );
     assert!(r.ok, "reload refused: {}", r.error);
+    // A model whose tables would not fit the memory budget (one unit, 25 000 stimuli: its
+    // per-unit tally alone is 5 GB) is refused before any of it is built — not "ok" and then
+    // an abort at the next session start — and changes nothing.
+    let wide = f.model_path.with_file_name("wide.apxm");
+    let n = 25_000;
+    let wide_spec = auspex_engine::ModelSpec {
+        cells: (0..n)
+            .map(|_| auspex_engine::CellSpec {
+                count: auspex_engine::CountParams::Poisson { mean: 2.0 },
+                timing: vec![1.0],
+                summary: Default::default(),
+            })
+            .collect(),
+        ..auspex_engine::ModelSpec::numbered(1, n, 1, Vec::new())
+    };
+    auspex_proto::model_file::save_model(&wide, &wide_spec, "e2e wide").unwrap();
+    let too_big = control(
+        &ctx,
+        &ep.control,
+        control_request::Body::Reload(v1::ReloadModel {
+            path: wide.display().to_string(),
+        }),
+    );
+    assert!(
+        !too_big.ok && too_big.error.contains("memory budget"),
+        "{too_big:?}"
+    );
     // A model file that does not load is refused with its path named, and changes nothing.
     let bad = control(
         &ctx,

@@ -710,3 +710,141 @@ fn a_replay_learns_in_step_at_any_speed() {
         );
     }
 }
+
+/// Sizes from the wire cannot take a daemon down. A learning daemon told of a session with 10⁶
+/// units and sent 160 labelled trials (its learner once sized the windows units × trials and
+/// aborted) refuses the fit with the memory it would need, says so in status, and keeps
+/// answering. A daemon decoding with a model and flooded with 10⁵ onsets at one tick refuses
+/// all past the open-trial bound (counted), decodes the rest, and stops at once.
+#[test]
+fn sizes_from_the_wire_are_refused_and_the_daemon_lives_on() {
+    let _g = serial();
+    let sc = scenario();
+    let dir = tempfile::tempdir().unwrap();
+    // 1. Learning, no model: a session of 10⁶ declared units.
+    let mut cfg = daemon_config(dir.path(), None);
+    cfg.record = None;
+    let Live {
+        rt,
+        running,
+        ep,
+        ctx,
+        stop,
+        sub,
+        push,
+    } = live(cfg);
+    let units: Vec<u32> = (1..=1_000_000).collect();
+    let mut msgs = vec![v1::Inbound {
+        sender: "huge".into(),
+        seq: 0,
+        body: Some(Body::SessionStart(v1::SessionStart {
+            tick_rate_hz: 1e6,
+            units,
+            session_name: "huge".into(),
+            learn_in_step: true,
+        })),
+    }];
+    for i in 0..160u64 {
+        let onset = 1_000_000 + i as i64 * 400_000;
+        msgs.push(v1::Inbound {
+            body: Some(Body::Onset(v1::TrialOnset {
+                trial: i + 1,
+                onset_tick: onset,
+                stimulus: if i % 2 == 0 { "A" } else { "B" }.into(),
+            })),
+            ..Default::default()
+        });
+        msgs.push(v1::Inbound {
+            body: Some(Body::Spikes(v1::SpikeBatch {
+                units: vec![1 + (i % 7) as u32],
+                ticks: vec![onset + 10_000],
+                complete_through: onset + 399_999,
+            })),
+            ..Default::default()
+        });
+    }
+    msgs.push(v1::Inbound {
+        body: Some(Body::EndOfStream(v1::EndOfStream {})),
+        ..Default::default()
+    });
+    for (i, m) in msgs.iter_mut().enumerate() {
+        m.sender = "huge".into();
+        m.seq = i as u64 + 1;
+    }
+    send(&push, &msgs, f64::INFINITY);
+    wait_for(
+        || status(&ctx, &ep.control).ended_sessions.len() == 1,
+        "the huge session to end",
+    );
+    let st = status(&ctx, &ep.control);
+    let l = st.learning.clone().unwrap();
+    assert_eq!(l.trials_learned, 160);
+    assert_eq!(l.refits, 0, "nothing could be learned: {l:?}");
+    stop.send(()).unwrap();
+    drop(sub);
+    rt.block_on(running.stop());
+
+    // 2. Decoding with a model: 10⁵ onsets at one tick.
+    let (_, model_path) = truth_on_disk(&sc, dir.path());
+    let mut cfg = daemon_config(&dir.path().join("flood.apxs"), Some(model_path));
+    cfg.learn = None;
+    let Live {
+        rt,
+        running,
+        ep,
+        ctx,
+        stop,
+        sub,
+        push,
+    } = live(cfg);
+    let n = 100_000u64;
+    let mut flood = vec![v1::Inbound {
+        body: Some(Body::SessionStart(v1::SessionStart {
+            tick_rate_hz: 1e6,
+            units: Vec::new(),
+            session_name: "flood".into(),
+            learn_in_step: false,
+        })),
+        ..Default::default()
+    }];
+    flood.extend((0..n).map(|i| v1::Inbound {
+        body: Some(Body::Onset(v1::TrialOnset {
+            trial: i + 1,
+            onset_tick: 1_000,
+            stimulus: String::new(),
+        })),
+        ..Default::default()
+    }));
+    for (i, m) in flood.iter_mut().enumerate() {
+        m.sender = "flood".into();
+        m.seq = i as u64 + 1;
+    }
+    send(&push, &flood, f64::INFINITY);
+    wait_for(
+        || {
+            status(&ctx, &ep.control)
+                .senders
+                .iter()
+                .any(|s| s.sender == "flood" && s.last_seq == n + 1)
+        },
+        "every onset taken",
+    );
+    let st = status(&ctx, &ep.control);
+    assert_eq!(st.open_trials.len(), auspex_engine::engine::MAX_OPEN_TRIALS);
+    let h = st.health.unwrap();
+    assert_eq!(
+        h.trials_over_limit,
+        n - auspex_engine::engine::MAX_OPEN_TRIALS as u64
+    );
+    stop.send(()).unwrap();
+    drop(sub);
+    let t0 = Instant::now();
+    rt.block_on(running.stop());
+    // (It took 137 s before the bound; a loose limit, so a busy machine cannot fail it.)
+    assert!(
+        t0.elapsed() < Duration::from_secs(10),
+        "stopping with {} open trials took {:?}",
+        auspex_engine::engine::MAX_OPEN_TRIALS,
+        t0.elapsed()
+    );
+}

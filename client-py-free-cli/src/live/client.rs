@@ -107,7 +107,16 @@ pub async fn replay(
             if let (Pace::Speed(x), Some(w0), Some(w)) =
                 (pace, first_wm, crate::wire::watermark_of(m))
             {
-                let due = Duration::from_secs_f64(((w - w0) as f64 / tick_rate_hz / x).max(0.0));
+                let secs = ((w as f64 - w0 as f64) / tick_rate_hz / x).max(0.0);
+                let due = Duration::try_from_secs_f64(secs)
+                    .ok()
+                    .filter(|d| d.as_secs() < 366 * 86_400)
+                    .ok_or_else(|| {
+                        anyhow::anyhow!(
+                            "message {} of the replay comes {secs:.3e} s after the first watermark at {x}× real time (its clock: {tick_rate_hz} ticks/s, watermark {w}); a replay will not wait a year or more — is the recording's clock or a watermark wrong? (--fast sends without pacing)",
+                            i + 1
+                        )
+                    })?;
                 let now = t0.elapsed();
                 if due > now {
                     tokio::time::sleep(due - now).await;
@@ -235,17 +244,20 @@ pub enum ReplaySource {
     },
 }
 
-/// The messages a replay sends as `sender` (fresh numbering, one end of stream last), and
-/// their clock rate. Tables are windowed with the daemon's model (asked on `control`), and
+/// The messages a replay sends as `sender` (fresh numbering, one end of stream last), asking a
+/// learning daemon to learn in step when `in_step`, and their clock rate. Tables are windowed with the daemon's model (asked on `control`), and
 /// their session is named after the trial table, so replays of one session's tables by several
 /// senders (a shard deployment's) announce the same session.
 pub async fn replay_messages(
     source: &ReplaySource,
     control: &str,
     sender: &str,
+    in_step: bool,
 ) -> anyhow::Result<(Vec<v1::Inbound>, f64)> {
     let (mut msgs, rate) = replay_messages_as_sent(source, control, sender).await?;
-    ask_to_learn_in_step(&mut msgs);
+    if in_step {
+        ask_to_learn_in_step(&mut msgs);
+    }
     Ok((msgs, rate))
 }
 

@@ -3,6 +3,7 @@
 //! per-unit table with per-stimulus detail, a health line), or printed as plain lines or JSON
 //! lines when standard output is not a terminal.
 
+use auspex_engine::data::printable;
 use auspex_proto::v1::{self, outbound};
 use ratatui::layout::{Constraint, Direction, Layout, Rect};
 use ratatui::style::{Color, Modifier, Style};
@@ -81,11 +82,17 @@ pub struct MonitorState {
     pub policy: String,
 }
 
+/// Names as the screen shows them: control characters escaped ([`printable`]), so a name from
+/// a file or the wire cannot drive the terminal.
+fn shown(names: &[String]) -> Vec<String> {
+    names.iter().map(|n| printable(n).into_owned()).collect()
+}
+
 impl MonitorState {
     /// A monitor for these stimuli and bin width.
     pub fn new(stimuli: Vec<String>, bin_width_s: f64) -> Self {
         MonitorState {
-            stimuli,
+            stimuli: shown(&stimuli),
             bin_ms: bin_width_s * 1000.0,
             trial: None,
             trial_decision: None,
@@ -131,15 +138,20 @@ impl MonitorState {
             Some(outbound::Body::Decision(d)) => {
                 let at_ms = (d.bin as f64 + 1.0) * self.bin_ms;
                 if self.trial.as_ref().is_none_or(|t| t.0 == d.trial) {
-                    self.trial_decision =
-                        Some((d.trial, d.stimulus_name.clone(), d.posterior, at_ms));
+                    self.trial_decision = Some((
+                        d.trial,
+                        printable(&d.stimulus_name).into_owned(),
+                        d.posterior,
+                        at_ms,
+                    ));
                 }
                 self.recent.push_front(RecentDecision {
                     trial: d.trial,
-                    stimulus: d.stimulus_name.clone(),
+                    stimulus: printable(&d.stimulus_name).into_owned(),
                     posterior: d.posterior,
                     at_ms,
-                    presented: (!d.presented.is_empty()).then(|| d.presented.clone()),
+                    presented: (!d.presented.is_empty())
+                        .then(|| printable(&d.presented).into_owned()),
                 });
                 self.recent.truncate(200);
                 if !d.presented.is_empty() {
@@ -152,13 +164,14 @@ impl MonitorState {
             }
             Some(outbound::Body::Trial(t)) => {
                 // A learned model may add stimuli as the session goes: follow the trial's.
-                if !t.stimuli.is_empty() && t.stimuli != self.stimuli {
-                    self.stimuli = t.stimuli.clone();
+                let names = shown(&t.stimuli);
+                if !names.is_empty() && names != self.stimuli {
+                    self.stimuli = names;
                 }
                 if !t.presented.is_empty() {
                     if let Some(r) = self.recent.iter_mut().find(|r| r.trial == t.trial) {
                         if r.presented.is_none() {
-                            r.presented = Some(t.presented.clone());
+                            r.presented = Some(printable(&t.presented).into_owned());
                             self.decided += 1;
                             self.correct += (t.presented == r.stimulus) as u64;
                         }
@@ -756,7 +769,7 @@ pub fn plain_line(state: &MonitorState, topic: &str, m: &v1::Outbound) -> Option
             } else if d.presented == d.stimulus_name {
                 " right".into()
             } else {
-                format!(" wrong (was {})", d.presented)
+                format!(" wrong (was {})", printable(&d.presented))
             };
             let reason = if d.reason == v1::DecisionReason::Threshold as i32 {
                 "threshold"
@@ -766,7 +779,7 @@ pub fn plain_line(state: &MonitorState, topic: &str, m: &v1::Outbound) -> Option
             Some(format!(
                 "decision trial={} stimulus={} posterior={:.3} at_ms={:.0} reason={reason}{mark}",
                 d.trial,
-                d.stimulus_name,
+                printable(&d.stimulus_name),
                 d.posterior,
                 (d.bin as f64 + 1.0) * state.bin_ms
             ))
@@ -777,9 +790,9 @@ pub fn plain_line(state: &MonitorState, topic: &str, m: &v1::Outbound) -> Option
             t.spikes,
             t.bins,
             if t.presented.is_empty() {
-                "?"
+                "?".into()
             } else {
-                &t.presented
+                printable(&t.presented)
             }
         )),
         Some(outbound::Body::Health(_)) if topic == auspex_proto::topic::HEALTH => {
@@ -977,6 +990,27 @@ mod tests {
         );
         st.apply("posterior", &frame(0));
         assert!(!render(&st).contains("WITHOUT"));
+    }
+
+    /// Names from a model file or the wire reach the screen with control characters escaped:
+    /// a name holding an escape sequence cannot clear or recolour the operator's terminal.
+    #[test]
+    fn names_with_control_characters_are_shown_escaped() {
+        let evil = "\u{1b}[2J\u{1b}[31mN";
+        let mut st = MonitorState::new(vec![evil.into(), "S".into()], 0.001);
+        for (t, mut m) in stream() {
+            if let Some(outbound::Body::Decision(d)) = m.body.as_mut() {
+                d.stimulus_name = evil.into();
+                d.presented = evil.into();
+            }
+            if let Some(line) = plain_line(&st, t, &m) {
+                assert!(!line.contains('\u{1b}'), "{line:?}");
+            }
+            st.apply(t, &m);
+        }
+        let screen = render(&st);
+        assert!(!screen.contains('\u{1b}'), "{screen}");
+        assert!(screen.contains("\\u{1b}[2J"), "{screen}");
     }
 
     #[test]

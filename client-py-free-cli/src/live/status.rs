@@ -137,8 +137,9 @@ pub fn status_text(s: &v1::Status) -> String {
             },
         );
         out!("{}", st.health_line());
-        out!("trials completed {} · decisions {} · duplicate trials {} · stale onsets {} · unknown trials {} · unknown stimuli {} · oversized {} · model mismatches {}",
-            h.trials_completed, h.decisions, h.duplicate_trials, h.stale_onsets, h.unknown_trials, h.unknown_stimuli, h.oversized_batches, h.model_mismatches);
+        out!("trials completed {} · decisions {} · duplicate trials {} · stale onsets {} · unknown trials {} · unknown stimuli {} · oversized {} · model mismatches {}{}",
+            h.trials_completed, h.decisions, h.duplicate_trials, h.stale_onsets, h.unknown_trials, h.unknown_stimuli, h.oversized_batches, h.model_mismatches,
+            if h.trials_over_limit > 0 { format!(" · onsets refused over the open-trial bound {}", h.trials_over_limit) } else { String::new() });
     }
     o
 }

@@ -636,7 +636,12 @@ pub fn inspect_cmd(model_path: &Path) -> anyhow::Result<()> {
         model.n_bins() as f64 * model.bin_width_s() * 1000.0,
         model.n_bins(),
         model.bin_width_s() * 1000.0,
-        model.stimuli().join(", ")
+        model
+            .stimuli()
+            .iter()
+            .map(|s| auspex_engine::data::printable(s))
+            .collect::<Vec<_>>()
+            .join(", ")
     );
     print!("{}", cell_table(&spec));
     print!("{}", promise_table(model.calibration()));

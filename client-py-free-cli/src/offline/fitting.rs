@@ -61,7 +61,10 @@ pub fn cell_table(spec: &ModelSpec) -> String {
     );
     let mut fam_counts = std::collections::BTreeMap::new();
     for (i, c) in spec.cells.iter().enumerate() {
-        let (u, st) = (spec.units[i / ns], &spec.stimuli[i % ns]);
+        let (u, st) = (
+            spec.units[i / ns],
+            auspex_engine::data::printable(&spec.stimuli[i % ns]),
+        );
         let sm = &c.summary;
         let fano = if sm.mean_count > 0.0 {
             sm.var_count / sm.mean_count

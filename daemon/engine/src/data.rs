@@ -76,6 +76,26 @@ pub enum Event {
     },
 }
 
+/// A name from a file or the wire as it may be printed to a terminal or a log: control
+/// characters (escape sequences, carriage returns, bells) are shown escaped (`\u{1b}`), so a
+/// damaged or hostile file cannot drive the user's terminal; everything else as it is.
+pub fn printable(name: &str) -> std::borrow::Cow<'_, str> {
+    if name.chars().any(char::is_control) {
+        name.chars()
+            .map(|c| {
+                if c.is_control() {
+                    c.escape_default().to_string()
+                } else {
+                    c.to_string()
+                }
+            })
+            .collect::<String>()
+            .into()
+    } else {
+        name.into()
+    }
+}
+
 /// The presentation order of stimuli met in the order `as_met`: `explicit` first (those of
 /// its names that occur), then the rest as met; with no explicit order, numeric order when
 /// every name is a number; else as met.

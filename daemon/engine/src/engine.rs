@@ -327,6 +327,11 @@ impl EngineConfig {
     }
 }
 
+/// The most trials open at once (onset seen, window not yet ended). A rig opens a handful
+/// (windows overlap when trials follow closely); a stream that opens thousands is broken, and
+/// refusing its excess (counted) keeps every step bounded.
+pub const MAX_OPEN_TRIALS: usize = 1024;
+
 /// Why the engine refused an input. Every one is also counted in [`Counters`].
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 pub enum EngineError {
@@ -357,6 +362,9 @@ pub enum EngineError {
     /// A trial id already open or recently ended.
     #[error("trial {0} was already opened")]
     DuplicateTrial(u64),
+    /// More trials open at once than [`MAX_OPEN_TRIALS`].
+    #[error("trial {0} refused: {MAX_OPEN_TRIALS} trials are open already (onsets far faster than their windows end?)")]
+    TooManyOpen(u64),
     /// Onset too far behind the watermark for the retained spike history.
     #[error("trial {trial} onset tick {onset} is more than the history allowance behind the watermark {watermark}")]
     StaleOnset {
@@ -400,6 +408,8 @@ pub struct Counters {
     pub duplicate_trials: u64,
     /// Onsets too far in the past, or whose window would run past the end of the tick range.
     pub stale_onsets: u64,
+    /// Onsets refused because [`MAX_OPEN_TRIALS`] trials were open.
+    pub trials_over_limit: u64,
     /// Labels or cancels for trials not held.
     pub unknown_trials: u64,
     /// Stimulus indices outside the model.
@@ -979,6 +989,10 @@ impl Engine {
         presented: Option<u32>,
         sink: &mut dyn EngineSink,
     ) -> Result<(), EngineError> {
+        if self.trials.len() >= MAX_OPEN_TRIALS {
+            self.counters.trials_over_limit += 1;
+            return Err(EngineError::TooManyOpen(id));
+        }
         if self.recent_set.contains(&id) || self.trials.iter().any(|t| t.id == id) {
             self.counters.duplicate_trials += 1;
             return Err(EngineError::DuplicateTrial(id));

@@ -23,6 +23,7 @@
 //! bit-identical outputs everywhere.
 #![deny(missing_docs)]
 
+pub mod budget;
 pub mod calibration;
 pub mod count;
 pub mod data;

@@ -94,6 +94,18 @@ pub enum ModelError {
         /// The cause.
         source: CountError,
     },
+    /// The tables would not fit the memory budget ([`crate::budget`]).
+    #[error("model too large: {0}")]
+    OverBudget(#[from] crate::budget::OverBudget),
+}
+
+/// Bytes a model of `nu` units × `ns` stimuli × `nb` bins needs besides its count tables: three
+/// f64 tables per (unit, bin, stimulus) and, for decoding, each unit's running tally (an
+/// `ns × ns` confusion matrix, row and column sums, count sums per stimulus).
+pub fn decoding_bytes(nu: usize, ns: usize, nb: usize) -> u128 {
+    use crate::budget::product;
+    let (u, s, b) = (nu as u128, ns as u128, nb as u128);
+    product(&[u, b, s, 3 * 8]) + product(&[u, s, s, 8]) + product(&[u, s, 8 * 2 + 24])
 }
 
 /// How the engine evaluates a cell's count term: closed forms where the family has one.
@@ -234,6 +246,14 @@ impl Model {
                 "{nu} units × {nb} bins × {ns} stimuli is too large"
             ));
         }
+        // Everything sized from the file, before any of it is built: three tables per (unit,
+        // bin, stimulus), and what decoding with the model keeps per unit (the running tallies:
+        // a stimuli × stimuli confusion matrix each). The count tables follow, checked as they
+        // grow.
+        let sizes = || format!("{nu} units × {ns} stimuli × {nb} bins");
+        let fixed = decoding_bytes(nu, ns, nb);
+        crate::budget::check("the model's tables", sizes, fixed)?;
+        let mut count_bytes = 0u128;
         let psum: f64 = spec.prior.iter().sum();
         let ln_prior: Vec<f64> = spec.prior.iter().map(|p| (p / psum).ln()).collect();
 
@@ -291,6 +311,22 @@ impl Model {
                     }
                     _ => CellKernel::Table,
                 });
+                // pmf, ln pmf and ln n! per table entry.
+                count_bytes += 3 * 8 * d.pmf().len() as u128;
+                crate::budget::check(
+                    "the model's count tables",
+                    || {
+                        format!(
+                            "{nu} units × {ns} stimuli; {} entries in the first {} cells, the longest for unit {} stimulus {:?} (mean {:.0})",
+                            count_bytes / 24,
+                            u * ns + s + 1,
+                            spec.units[u],
+                            spec.stimuli[s],
+                            d.mean()
+                        )
+                    },
+                    fixed + count_bytes,
+                )?;
                 dists.push(d);
             }
         }

@@ -73,6 +73,9 @@ pub enum FitError {
     /// The data cannot support a model.
     #[error("{0}")]
     Data(String),
+    /// The fit would not fit the memory budget.
+    #[error(transparent)]
+    OverBudget(#[from] auspex_engine::budget::OverBudget),
 }
 
 /// One cell's training data.
@@ -115,7 +118,13 @@ pub struct FitPlan {
     pub unlabelled_trials: usize,
 }
 
-/// Number of bins, checking the window is a whole number of bins and each bin whole ticks.
+/// The most bins a fitted window may have (window ÷ bin width): e.g. a 100 s window in 1 ms
+/// bins, or 1 s in 10 µs bins. The same bound for `fit`, `validate` and the daemon's learner
+/// (its TOML and flags are checked against it at start).
+pub const MAX_FIT_BINS: usize = 100_000;
+
+/// Number of bins, checking the window is a whole number of bins (at most [`MAX_FIT_BINS`])
+/// and each bin whole ticks.
 pub fn window_bins(
     bin_width_s: f64,
     window_s: f64,
@@ -137,6 +146,11 @@ pub fn window_bins(
             "window {window_s} s is not a whole number of {bin_width_s} s bins"
         )));
     }
+    if nb > MAX_FIT_BINS as f64 {
+        return Err(FitError::Options(format!(
+            "a window of {window_s} s in {bin_width_s} s bins is {nb:.0} bins; at most {MAX_FIT_BINS} are fitted (widen the bins or shorten the window)"
+        )));
+    }
     let bt = auspex_engine::ticks::bin_ticks(bin_width_s, tick_rate_hz)
         .map_err(|e| FitError::Options(e.to_string()))?;
     Ok((nb as usize, bt))
@@ -156,6 +170,7 @@ pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
         })
         .collect();
     let onsets: Vec<i64> = data.trials.iter().map(|t| t.onset).collect();
+    crate::windows::check_fit_size(data.units.len(), data.trials.len(), stimuli.len(), n_bins)?;
     let w = windows(data, &data.units, bin_ticks, n_bins);
     plan_from_windows(
         opts,

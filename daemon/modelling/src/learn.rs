@@ -400,26 +400,33 @@ impl Learner {
             .map(|&i| ready.iter().position(|s| *s == self.trials[i].stimulus))
             .collect();
         let onsets: Vec<i64> = idx.iter().map(|&i| self.trials[i].onset).collect();
+        // Whether a unit declared from `from` has the minimum of every stimulus: one pass over
+        // the trials per distinct declaration tick (most units share one), not per unit.
+        let mut enough: HashMap<i64, bool> = HashMap::new();
         let units: Vec<u32> = self
             .units
             .iter()
             .copied()
             .filter(|u| {
                 let from = self.declared_from.get(u).copied().unwrap_or(i64::MIN);
-                let mut per = vec![0usize; ready.len()];
-                for (j, &i) in idx.iter().enumerate() {
-                    if self.trials[i].onset >= from {
-                        if let Some(s) = stim_of[j] {
-                            per[s] += 1;
+                *enough.entry(from).or_insert_with(|| {
+                    let mut per = vec![0usize; ready.len()];
+                    for (j, &i) in idx.iter().enumerate() {
+                        if self.trials[i].onset >= from {
+                            if let Some(s) = stim_of[j] {
+                                per[s] += 1;
+                            }
                         }
                     }
-                }
-                per.iter().all(|&n| n >= min)
+                    per.iter().all(|&n| n >= min)
+                })
             })
             .collect();
         if units.is_empty() {
             return Err(NotYet::Units { min: min as u32 });
         }
+        crate::windows::check_fit_size(units.len(), idx.len(), ready.len(), self.n_bins)
+            .map_err(FitError::from)?;
         let w = self.windows(&idx, &units);
         Ok(plan_from_windows(
             &self.opts.fit,

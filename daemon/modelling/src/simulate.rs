@@ -166,6 +166,17 @@ impl Scenario {
                 self.window_ms,
             )?;
         }
+        // The model it describes, and the simulator's cumulative tables (one per cell), in
+        // the memory budget: checked before any is built.
+        let nb = (self.window_ms / self.bin_width_ms).round() as usize;
+        let (nu, ns) = (self.units.len(), self.stimuli.len());
+        auspex_engine::budget::check(
+            "the scenario's model",
+            || format!("{nu} units × {ns} stimuli × {nb} bins"),
+            auspex_engine::model::decoding_bytes(nu, ns, nb)
+                + auspex_engine::budget::product(&[nu as u128, ns as u128, nb as u128, 8 * 3]),
+        )
+        .map_err(|e| ScenarioError::Model(e.into()))?;
         self.sim_options()
             .check(self.window_ms / 1000.0, self.stimuli.len())
     }

@@ -14,6 +14,33 @@ pub struct UnitWindows {
     pub times: Vec<Vec<Vec<f64>>>,
 }
 
+/// Checks, before anything is built, that fitting `units` units on `trials` trials of
+/// `stimuli` stimuli with `n_bins` bins fits the memory budget: the windows (a count and a list
+/// of spike times per unit and trial), the cells' inputs and timing tables, and the model's
+/// tables for decoding.
+pub fn check_fit_size(
+    units: usize,
+    trials: usize,
+    stimuli: usize,
+    n_bins: usize,
+) -> Result<(), auspex_engine::budget::OverBudget> {
+    use auspex_engine::budget::{check, product};
+    let (u, t, s, b) = (
+        units as u128,
+        trials as u128,
+        stimuli as u128,
+        n_bins as u128,
+    );
+    let windows = 2 * product(&[u, t, 4 + 24]);
+    let cells = product(&[u, s, b, 8 * 2]);
+    let model = auspex_engine::model::decoding_bytes(units, stimuli, n_bins);
+    check(
+        "fitting",
+        || format!("{units} units × {trials} trials, {stimuli} stimuli × {n_bins} bins"),
+        windows + cells + model,
+    )
+}
+
 /// For every unit in `units` (index order) and every trial: the window's spike count and
 /// spike times in bin units from onset. One pass over the trial windows.
 pub fn windows(data: &Dataset, units: &[u32], bin_ticks: i64, n_bins: usize) -> UnitWindows {

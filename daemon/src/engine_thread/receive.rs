@@ -245,6 +245,7 @@ impl EngineThread {
                 EngineError::UnknownUnit(_) => "unknown-unit",
                 EngineError::WatermarkBackwards { .. } => "watermark",
                 EngineError::DuplicateTrial(_) => "duplicate-trial",
+                EngineError::TooManyOpen(_) => "open-trials",
                 EngineError::StaleOnset { .. } => "stale-onset",
                 EngineError::UnknownTrial(_) => "unknown-trial",
                 EngineError::StrayPartial { .. } => "stray-partial",

@@ -131,7 +131,7 @@ impl EngineThread {
                 }
             }
         }
-        tracing::info!(tick_rate_hz = ss.tick_rate_hz, units = ss.units.len(), name = %ss.session_name, held = self.held.len(), learning = self.learn.is_some(), "session started");
+        tracing::info!(tick_rate_hz = ss.tick_rate_hz, units = ss.units.len(), name = %auspex_engine::data::printable(&ss.session_name), held = self.held.len(), learning = self.learn.is_some(), "session started");
         for body in std::mem::take(&mut self.held) {
             self.apply(body);
         }
@@ -168,7 +168,7 @@ impl EngineThread {
             reason: reason.into(),
             duration_s: t.started.elapsed().as_secs_f64(),
         };
-        tracing::info!(session = %t.name, reason, completed = t.completed, decisions = t.decisions, labelled = t.labelled, correct = t.correct, "session ended");
+        tracing::info!(session = %auspex_engine::data::printable(&t.name), reason, completed = t.completed, decisions = t.decisions, labelled = t.labelled, correct = t.correct, "session ended");
         self.publisher
             .publish(topic::SESSION, outbound::Body::Session(s.clone()), true);
         if self.ended.len() == ENDED_KEPT {
@@ -252,6 +252,7 @@ pub(super) fn add_counters(a: &mut Counters, b: &Counters) {
     a.watermark_backwards += b.watermark_backwards;
     a.duplicate_trials += b.duplicate_trials;
     a.stale_onsets += b.stale_onsets;
+    a.trials_over_limit += b.trials_over_limit;
     a.unknown_trials += b.unknown_trials;
     a.unknown_stimuli += b.unknown_stimuli;
     a.trials_opened += b.trials_opened;

@@ -44,6 +44,7 @@ impl EngineThread {
             watermark_backwards: ec.watermark_backwards,
             duplicate_trials: ec.duplicate_trials,
             stale_onsets: ec.stale_onsets,
+            trials_over_limit: ec.trials_over_limit,
             oversized_batches: self.counters.oversized,
             unknown_trials: ec.unknown_trials,
             unknown_stimuli: ec.unknown_stimuli + self.counters.unknown_stimuli,

@@ -679,6 +679,27 @@ pub fn validate_with(
             few.join(", ")
         )));
     }
+    // The fit's windows and model, and what validation adds per unit: confusion matrices
+    // (stimuli × stimuli) for the real folds and for each shuffle worker, and the trajectories
+    // (trials × bins × stimuli per decoder).
+    crate::windows::check_fit_size(data.units.len(), nt, ns, nb)
+        .map_err(crate::fit::FitError::from)?;
+    {
+        use auspex_engine::budget::{check, product};
+        let workers = std::thread::available_parallelism().map_or(1, |n| n.get()) as u128 + 2;
+        let (u, s, t, b) = (data.units.len() as u128, ns as u128, nt as u128, nb as u128);
+        check(
+            "validation",
+            || {
+                format!(
+                    "{} units × {ns}² stimulus pairs, {nt} trials × {nb} bins × {ns} stimuli",
+                    data.units.len()
+                )
+            },
+            product(&[u, s, s, 8, workers]) + product(&[t, b, s, 4 * 3 + 8]),
+        )
+        .map_err(crate::fit::FitError::from)?;
+    }
     let when: Vec<(i64, u64)> = data.trials.iter().map(|t| (t.onset, t.id)).collect();
     let fold_of = stratified_folds(&labels, &when, ns, k, opts.seed);
     let bw_ms = opts.fit.bin_width_s * 1000.0;
