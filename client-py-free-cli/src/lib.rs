@@ -17,8 +17,10 @@ pub use offline::{commands, export, fitting, gather, prequential, tables};
 pub use report::validate;
 
 /// Where the bundled demo data lives (the repository's `demo-data/`).
+/// The path is the repository's own, written plainly (no `client-py-free-cli/..` in reports).
 pub fn demo_dir() -> std::path::PathBuf {
-    std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+    let d = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
         .join("..")
-        .join("demo-data")
+        .join("demo-data");
+    std::fs::canonicalize(&d).unwrap_or(d)
 }

@@ -188,7 +188,10 @@ enum Cmd {
         /// unit id of each group after the first, comma-separated, e.g. 1000,2000
         #[arg(long, value_delimiter = ',', value_name = "ID,...")]
         unit_groups: Vec<u32>,
-        /// Do not print the per-cell table
+        /// Print the per-cell table (unit, stimulus, count family, mean, Fano, bandwidth, held-out scores)
+        #[arg(long)]
+        cells: bool,
+        /// Print no summary of the cells at all
         #[arg(long)]
         quiet: bool,
     },
@@ -327,9 +330,12 @@ enum Cmd {
     },
     /// Print a model file's per-cell summary
     Inspect {
+        /// Model file (`auspex inspect today.apxm` or `--model today.apxm`)
+        #[arg(value_name = "MODEL", required_unless_present = "model")]
+        file: Option<PathBuf>,
         /// Model file
-        #[arg(long)]
-        model: PathBuf,
+        #[arg(long, conflicts_with = "file")]
+        model: Option<PathBuf>,
     },
     /// Run the bundled demo end to end: fit, start the daemon, replay the session live, monitor
     Demo {
@@ -416,6 +422,9 @@ enum Cmd {
         /// Sender name (each program that sends needs its own)
         #[arg(long, default_value = "auspex-send")]
         sender: String,
+        /// Daemon control endpoint, asked at the end what it made of the lines
+        #[arg(long, default_value = auspex_proto::endpoints::CONTROL)]
+        control: String,
     },
     /// Show a daemon's state, model and counters
     Status {
@@ -541,6 +550,7 @@ fn main() {
             min_time_ms,
             stimulus_order,
             unit_groups,
+            cells,
             quiet,
         } => commands::fit_cmd(
             &tables.source(),
@@ -556,6 +566,7 @@ fn main() {
                 min_time_ms,
                 stimulus_order,
                 unit_groups,
+                cells,
                 quiet,
             },
         )
@@ -657,7 +668,10 @@ fn main() {
         }),
         Cmd::Export { model, out } => commands::export_cmd(&model, out.as_deref()),
         Cmd::Gather { paths, out } => auspex::gather::gather_cmd(&paths, out.as_deref()),
-        Cmd::Inspect { model } => commands::inspect_cmd(&model),
+        Cmd::Inspect { file, model } => match file.or(model) {
+            Some(m) => commands::inspect_cmd(&m),
+            None => Err(anyhow::anyhow!("give the model file: auspex inspect FILE")),
+        },
         Cmd::Demo { out_dir, quiet, speed, fast, plain, offline_only, learn } => commands::demo_offline(&out_dir, quiet).and_then(|model| {
             if offline_only {
                 return Ok(());
@@ -685,21 +699,46 @@ fn main() {
                 let units = units.as_deref().map(auspex::wire::parse_unit_ranges).transpose()?;
                 let msgs = auspex::wire::select_messages(msgs, units.as_ref(), only.as_deref(), &sender);
                 let pace = if fast { Pace::Max } else { Pace::Speed(speed) };
+                let before = auspex::live::health_now(&control).await;
                 let took = auspex::live::replay(&to, &control, &msgs, &sender, rate, pace, std::io::stderr().is_terminal()).await?;
                 eprintln!("sent {} messages in {:.2} s; the daemon acknowledged the last one", msgs.len(), took.as_secs_f64());
+                let last = msgs.last().map(|m| m.seq).unwrap_or(0);
+                let taken = auspex::live::taken_since(&control, before, &sender, last).await;
+                if let Some(line) = taken.as_ref().and_then(|t| t.line()) {
+                    eprintln!("{line}");
+                }
+                let spikes: u64 = msgs.iter().map(|m| match &m.body {
+                    Some(v1::inbound::Body::Spikes(b)) => b.units.len() as u64,
+                    _ => 0,
+                }).sum();
+                if taken.as_ref().is_some_and(|t| t.nothing_matched(spikes)) {
+                    anyhow::bail!("the session does not fit the daemon's model (see the counts above): check unit ids and stimulus names against `auspex status`");
+                }
                 Ok(())
             })
         }),
-        Cmd::Send { input, follow, to, sender } => runtime().and_then(|rt| rt.block_on(async {
+        Cmd::Send { input, follow, to, sender, control } => runtime().and_then(|rt| rt.block_on(async {
             let reader: Box<dyn std::io::BufRead + Send> = match &input {
                 Some(p) => Box::new(std::io::BufReader::new(
                     std::fs::File::open(p).map_err(|e| anyhow::anyhow!("{}: cannot open: {e}", p.display()))?,
                 )),
                 None => Box::new(std::io::BufReader::new(std::io::stdin())),
             };
+            let before = auspex::live::health_now(&control).await;
             let s = auspex::send::send(reader, &to, &sender, follow).await?;
             eprintln!("sent {} messages ({} spikes) as {sender:?}{}", s.messages, s.spikes,
                 if s.bad_lines > 0 { format!("; {} lines were refused (see above)", s.bad_lines) } else { String::new() });
+            // What the daemon made of them (it has taken them once it answers after the end).
+            let taken = auspex::live::taken_since(&control, before, &sender, s.messages).await;
+            if let Some(line) = taken.as_ref().and_then(|t| t.line()) {
+                eprintln!("{line}");
+            }
+            if s.bad_lines > 0 {
+                anyhow::bail!("{} lines were refused", s.bad_lines);
+            }
+            if taken.as_ref().is_some_and(|t| t.nothing_matched(s.spikes)) {
+                anyhow::bail!("the lines do not fit the daemon's model (see the counts above): check unit ids and stimulus names against `auspex status`");
+            }
             Ok(())
         })),
         Cmd::Status { control, json } => runtime().and_then(|rt| rt.block_on(async {

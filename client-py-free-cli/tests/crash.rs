@@ -15,6 +15,13 @@ use prost::Message;
 use std::time::{Duration, Instant};
 use zeromq::{Socket, SocketSend};
 
+/// The daemon-spawning tests run one at a time: each picks free ports by binding port 0 and
+/// letting go, which two tests at once could pick alike.
+fn serial() -> std::sync::MutexGuard<'static, ()> {
+    static LOCK: std::sync::Mutex<()> = std::sync::Mutex::new(());
+    LOCK.lock().unwrap_or_else(|e| e.into_inner())
+}
+
 fn free_port() -> u16 {
     std::net::TcpListener::bind(("127.0.0.1", 0))
         .unwrap()
@@ -96,6 +103,7 @@ async fn wait_started(control: &str) {
 /// recording of its own — nothing merged, no duplicate trial, no late spike.
 #[test]
 fn ctrl_c_on_send_ends_the_session_and_a_rerun_is_a_new_one() {
+    let _serial = serial();
     use std::io::Write;
     let dir = tempfile::tempdir().unwrap();
     let (daemon, ingest, control) =
@@ -196,6 +204,7 @@ fn ctrl_c_on_send_ends_the_session_and_a_rerun_is_a_new_one() {
 
 #[test]
 fn kill_9_during_recording_loses_only_the_unflushed_tail() {
+    let _serial = serial();
     let dir = tempfile::tempdir().unwrap();
     let sc = small_scenario();
     let truth = Model::new(sc.true_model().unwrap()).unwrap();
@@ -321,4 +330,60 @@ fn kill_9_during_recording_loses_only_the_unflushed_tail() {
     for (a, b) in d.trials.iter().zip(&data.trials) {
         assert_eq!((a.id, a.onset, &a.stimulus), (b.id, b.onset, &b.stimulus));
     }
+}
+
+/// `auspex send` ends with what the daemon made of its lines: spikes of units the model does
+/// not have are counted by the daemon, reported by the sender, and — when nothing matched —
+/// make it exit non-zero (it printed "sent 82 messages" and exited 0).
+#[test]
+fn send_reports_what_the_daemon_made_of_the_lines() {
+    let _serial = serial();
+    use std::io::Write;
+    let dir = tempfile::tempdir().unwrap();
+    let sc = small_scenario();
+    let model_path = dir.path().join("m.apxm");
+    auspex_proto::model_file::save_model(&model_path, &sc.true_model().unwrap(), "send test")
+        .unwrap();
+    let (daemon, ingest, control) = spawn_daemon(
+        &["--model".as_ref(), model_path.as_os_str()],
+        &dir.path().join("r.apxs"),
+    );
+    struct KillOnDrop(std::process::Child);
+    impl Drop for KillOnDrop {
+        fn drop(&mut self) {
+            let _ = self.0.kill();
+            let _ = self.0.wait();
+        }
+    }
+    let _daemon = KillOnDrop(daemon);
+    let rt = tokio::runtime::Runtime::new().unwrap();
+    rt.block_on(wait_started(&control));
+    let mut send = std::process::Command::new(env!("CARGO_BIN_EXE_auspex"))
+        .args(["send", "--to", &ingest, "--control", &control])
+        .stdin(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    let mut input = send.stdin.take().unwrap();
+    writeln!(input, "session 1000000 name=mismatch").unwrap();
+    for i in 1..=20u64 {
+        let t = i * 300_000;
+        writeln!(
+            input,
+            "onset {i} {t}\nspike 99999 {}\nthrough {}",
+            t + 10_000,
+            t + 299_999
+        )
+        .unwrap();
+    }
+    writeln!(input, "end").unwrap();
+    drop(input);
+    let out = send.wait_with_output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(1), "{err}");
+    assert!(
+        err.contains("the daemon counted 20 spikes of units its model does not have"),
+        "{err}"
+    );
+    assert!(err.contains("do not fit the daemon's model"), "{err}");
 }

@@ -82,6 +82,23 @@ fn sessions_validated_apart_merge_into_one_table() {
             .count(),
         3
     );
+    // Absurd figures in a readable file are refused with the field named, never tabled.
+    std::fs::remove_dir_all(d.join("results/s3")).unwrap();
+    let good = std::fs::read_to_string(d.join("results/s1/validation.json")).unwrap();
+    for (field, bad) in [("trials", "18446744073709551615.0"), ("chance", "7.0")] {
+        let mut v: serde_json::Value = serde_json::from_str(&good).unwrap();
+        v[field] = serde_json::from_str(bad).unwrap();
+        std::fs::create_dir_all(d.join("results/s4")).unwrap();
+        std::fs::write(d.join("results/s4/validation.json"), v.to_string()).unwrap();
+        let (ok, _, err) = auspex(d, &["gather", "results", "--out", "all.csv"]);
+        assert!(
+            !ok && err.contains("s4/validation.json") && err.contains(field),
+            "{err}"
+        );
+        assert!(!std::fs::read_to_string(d.join("all.csv"))
+            .unwrap()
+            .contains("18446744073709551615"));
+    }
     let (ok, _, err) = auspex(d, &["gather", "nowhere"]);
     assert!(
         !ok && err.contains("nowhere: no such file or directory"),

@@ -358,6 +358,46 @@ fn same_counts(a: &Value, b: &Value, path: &str) -> Result<(), String> {
     }
 }
 
+/// Every probability and accuracy of a validation lies in [0, 1], each interval contains its
+/// estimate, and every information figure lies in [0, log2 S].
+fn bounded(v: &Value, max_bits: f64, path: &str) -> Result<(), String> {
+    match v {
+        Value::Object(o) => {
+            let f = |k: &str| o.get(k).and_then(Value::as_f64);
+            if let (Some(a), Some(lo), Some(hi)) = (f("accuracy"), f("lo"), f("hi")) {
+                if !(0.0 <= lo && lo <= a + 1e-12 && a <= hi + 1e-12 && hi <= 1.0) {
+                    return Err(format!("{path}: accuracy {a} with interval [{lo}, {hi}]"));
+                }
+            }
+            for k in ["chance", "p_value", "early_share", "threshold"] {
+                if let Some(x) = f(k) {
+                    if !(0.0..=1.0).contains(&x) {
+                        return Err(format!("{path}.{k} = {x}"));
+                    }
+                }
+            }
+            for k in ["bits", "plugin_bits", "info_bits", "null_95"] {
+                if let Some(x) = f(k) {
+                    if !(0.0..=max_bits + 1e-9).contains(&x) {
+                        return Err(format!("{path}.{k} = {x} outside [0, {max_bits}]"));
+                    }
+                }
+            }
+            for (k, x) in o {
+                bounded(x, max_bits, &format!("{path}.{k}"))?;
+            }
+            Ok(())
+        }
+        Value::Array(a) => {
+            for (i, x) in a.iter().enumerate() {
+                bounded(x, max_bits, &format!("{path}[{i}]"))?;
+            }
+            Ok(())
+        }
+        _ => Ok(()),
+    }
+}
+
 fn session(seed: u64) -> Dataset {
     let sc = scenario();
     let truth = Model::new(sc.true_model().unwrap()).unwrap();
@@ -384,6 +424,7 @@ proptest! {
         same(&a.0, &b.0, 0.0, "model").map_err(TestCaseError::fail)?;
         same(&a.1, &b.1, 0.0, "frames").map_err(TestCaseError::fail)?;
         same(&a.2, &b.2, 0.0, "validation").map_err(TestCaseError::fail)?;
+        bounded(&a.2, 2.0, "validation").map_err(TestCaseError::fail)?;
     }
 
     /// Units renumbered in another order and the stimuli listed in another order: every figure

@@ -400,8 +400,8 @@ fn stimulus_names_with_escape_sequences_are_printed_escaped() {
     spec.stimuli = vec!["\u{1b}[2J\u{1b}[31mred".into(), "plain\u{7}".into()];
     auspex_proto::model_file::save_model(&m, &spec, "sizes test").unwrap();
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_auspex"))
-        .args(["inspect", "--model"])
-        .arg(&m)
+        .arg("inspect")
+        .arg(&m) // the positional form
         .output()
         .unwrap();
     let text = String::from_utf8_lossy(&out.stdout);

@@ -81,6 +81,17 @@ pub fn io_runtime() -> std::io::Result<tokio::runtime::Runtime> {
         .build()
 }
 
+/// Whether `--record PATH` names a directory to record into: one that exists, a path written
+/// with a trailing `/`, or a path that does not exist and has no extension (`--record
+/// sessions`); a path with an extension (`today.apxs`) is a file.
+pub fn wants_directory(p: &std::path::Path) -> bool {
+    p.is_dir()
+        || p.as_os_str()
+            .to_string_lossy()
+            .ends_with(std::path::MAIN_SEPARATOR)
+        || (!p.exists() && p.extension().is_none())
+}
+
 /// Binds and starts everything.
 pub async fn start(cfg: DaemonConfig) -> Result<Running, StartError> {
     let model = match &cfg.model {
@@ -189,6 +200,17 @@ pub async fn start(cfg: DaemonConfig) -> Result<Running, StartError> {
 
     let recorder = match &cfg.record {
         Some(p) => {
+            if wants_directory(p) && !p.is_dir() {
+                std::fs::create_dir_all(p).map_err(|cause| StartError::Recording {
+                    path: p.clone(),
+                    cause,
+                })?;
+            }
+            if p.is_dir() {
+                tracing::info!(directory = %p.display(), "recording each session into a file of its own in this directory");
+            } else {
+                tracing::info!(file = %p.display(), "recording into this file (sessions after the first into numbered files beside it)");
+            }
             let now_s = std::time::SystemTime::now()
                 .duration_since(std::time::UNIX_EPOCH)
                 .map(|d| d.as_secs())

@@ -17,7 +17,10 @@ pub enum StartError {
         cause: std::io::Error,
     },
     /// A socket could not be bound (address in use, bad interface, no permission…).
-    #[error("cannot bind {socket} endpoint {endpoint}: {cause}")]
+    #[error(
+        "cannot bind {socket} endpoint {endpoint}: {cause}{}",
+        bind_hint(socket, cause)
+    )]
     Bind {
         /// Which socket (ingest, task ingest, publish, control, link).
         socket: &'static str,
@@ -63,4 +66,23 @@ pub enum StartError {
         /// The cause.
         cause: String,
     },
+}
+
+/// What to do about a bind failure: an address in use is most often another daemon.
+fn bind_hint(socket: &str, cause: &zeromq::ZmqError) -> String {
+    let text = cause.to_string().to_ascii_lowercase();
+    if text.contains("in use") {
+        let flag = match socket {
+            "ingest" => "--ingest",
+            "task ingest" => "--task-ingest",
+            "publish" => "--publish",
+            "control" => "--control",
+            _ => "the endpoint's flag",
+        };
+        format!(
+            " — another daemon may be running (`auspex status` asks the default one; stop it, or give this one other ports with {flag} and the other endpoint flags)"
+        )
+    } else {
+        String::new()
+    }
 }

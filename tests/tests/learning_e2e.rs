@@ -422,8 +422,8 @@ fn three_sessions_through_one_daemon_are_three_recordings_and_three_summaries() 
     let sc = scenario();
     let dir = tempfile::tempdir().unwrap();
     let (truth, model_path) = truth_on_disk(&sc, dir.path());
+    // `--record rec` names a directory that does not exist yet: the daemon creates it.
     let rec_dir = dir.path().join("rec");
-    std::fs::create_dir(&rec_dir).unwrap();
     let cfg = daemon_config(&rec_dir, Some(model_path));
     let Live {
         rt,
@@ -654,7 +654,13 @@ fn a_replay_learns_in_step_at_any_speed() {
         let mut last = 0;
         // A learning daemon answers status between messages only: slow replies while it refits.
         loop {
-            let st = status(&ctx, &ep.control);
+            assert!(
+                waited.elapsed() < Duration::from_secs(120),
+                "no progress at speed {speed}"
+            );
+            let Some(st) = common::try_status(&ctx, &ep.control) else {
+                continue;
+            };
             if st.ended_sessions.len() == 1 {
                 break;
             }
@@ -773,7 +779,7 @@ fn sizes_from_the_wire_are_refused_and_the_daemon_lives_on() {
     }
     send(&push, &msgs, f64::INFINITY);
     wait_for(
-        || status(&ctx, &ep.control).ended_sessions.len() == 1,
+        || common::try_status(&ctx, &ep.control).is_some_and(|s| s.ended_sessions.len() == 1),
         "the huge session to end",
     );
     let st = status(&ctx, &ep.control);

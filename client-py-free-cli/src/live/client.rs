@@ -198,6 +198,112 @@ pub async fn replay(
     Ok(t0.elapsed())
 }
 
+/// What the daemon made of a sender's messages: its counters' growth between two status
+/// replies (taken before the first message and after the daemon took the last).
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Taken {
+    /// Spikes the daemon took.
+    pub spikes: u64,
+    /// Spikes of units its model does not have.
+    pub unknown_unit_spikes: u64,
+    /// Onsets or labels naming stimuli its model does not have.
+    pub unknown_stimuli: u64,
+    /// Spikes at or behind a watermark already promised.
+    pub late_spikes: u64,
+    /// Messages it could not read.
+    pub malformed: u64,
+    /// Trials refused: opened twice, too old, or past the open-trial bound.
+    pub refused_trials: u64,
+}
+
+impl Taken {
+    /// The growth of the counters from `a` to `b`.
+    pub fn between(a: &v1::Health, b: &v1::Health) -> Taken {
+        let d = |x: u64, y: u64| y.saturating_sub(x);
+        Taken {
+            spikes: d(a.spikes_in, b.spikes_in),
+            unknown_unit_spikes: d(a.unknown_unit_spikes, b.unknown_unit_spikes),
+            unknown_stimuli: d(a.unknown_stimuli, b.unknown_stimuli),
+            late_spikes: d(a.late_spikes, b.late_spikes),
+            malformed: d(a.malformed_messages, b.malformed_messages),
+            refused_trials: d(a.duplicate_trials, b.duplicate_trials)
+                + d(a.stale_onsets, b.stale_onsets)
+                + d(a.trials_over_limit, b.trials_over_limit),
+        }
+    }
+
+    /// Nothing the daemon could use: every spike was of a unit its model does not have. (Some
+    /// unknown stimuli are normal while a daemon learns: a stimulus joins the model once it has
+    /// enough trials; they are reported, not failed.)
+    pub fn nothing_matched(&self, spikes_sent: u64) -> bool {
+        spikes_sent > 0 && self.unknown_unit_spikes >= spikes_sent
+    }
+
+    /// One line for the sender's user, or None when everything was taken cleanly.
+    pub fn line(&self) -> Option<String> {
+        let mut parts = Vec::new();
+        let mut add = |n: u64, what: &str| {
+            if n > 0 {
+                parts.push(format!("{n} {what}"));
+            }
+        };
+        add(
+            self.unknown_unit_spikes,
+            "spikes of units its model does not have",
+        );
+        add(
+            self.unknown_stimuli,
+            "onsets or labels of stimuli its model does not have",
+        );
+        add(
+            self.late_spikes,
+            "late spikes (behind a promised `through`)",
+        );
+        add(self.malformed, "unreadable messages");
+        add(
+            self.refused_trials,
+            "trials refused (duplicate, too old or too many open)",
+        );
+        (!parts.is_empty()).then(|| format!("the daemon counted {}", parts.join(", ")))
+    }
+}
+
+/// The daemon's health counters now, if it answers on `control` within a second.
+pub async fn health_now(control: &str) -> Option<v1::Health> {
+    tokio::time::timeout(Duration::from_secs(1), status(control))
+        .await
+        .ok()?
+        .ok()?
+        .health
+}
+
+/// The growth of the daemon's counters since `before`, once it has taken message `last_seq`
+/// of `sender` (asked for up to 3 s; None if it does not answer or never gets there).
+pub async fn taken_since(
+    control: &str,
+    before: Option<v1::Health>,
+    sender: &str,
+    last_seq: u64,
+) -> Option<Taken> {
+    let before = before?;
+    let t0 = Instant::now();
+    while t0.elapsed() < Duration::from_secs(3) {
+        let st = tokio::time::timeout(Duration::from_secs(1), status(control))
+            .await
+            .ok()?
+            .ok()?;
+        if st
+            .senders
+            .iter()
+            .any(|s| s.sender == sender && s.last_seq >= last_seq)
+        {
+            return Some(Taken::between(&before, st.health.as_ref()?));
+        }
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+    None
+}
+
 /// A sender stopped by Ctrl-C, having ended its stream (the text says what was sent). The
 /// command exits with status 130, as an interrupted shell command does.
 #[derive(Debug)]

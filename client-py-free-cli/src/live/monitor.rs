@@ -55,6 +55,7 @@ pub struct RecentDecision {
 }
 
 /// Everything the monitor shows.
+#[derive(Clone)]
 pub struct MonitorState {
     stimuli: Vec<String>,
     bin_ms: f64,
@@ -69,6 +70,8 @@ pub struct MonitorState {
     pub paused: bool,
     /// Selected row of the unit table.
     pub selected: usize,
+    /// The unit selected (the selection follows it as rows re-sort).
+    selected_unit: Option<u32>,
     decided: u64,
     correct: u64,
     /// Messages lost between daemon and monitor (per-topic sequence gaps).
@@ -78,8 +81,12 @@ pub struct MonitorState {
     last_seq: [u64; 6],
     /// Summaries of sessions that ended while the monitor ran.
     pub sessions_ended: Vec<String>,
-    /// The decision policy and what backs it (from the daemon's status at start).
+    /// The decision policy and what backs it (the daemon's status, re-read every second).
     pub policy: String,
+    /// Seconds since the daemon was last heard, once that is longer than a few health periods.
+    pub silent_s: Option<f64>,
+    /// What a learning daemon without a model yet waits for (its status), else empty.
+    waiting_for: String,
 }
 
 /// Names as the screen shows them: control characters escaped ([`printable`]), so a name from
@@ -102,6 +109,7 @@ impl MonitorState {
             sort: UnitSort::Info,
             paused: false,
             selected: 0,
+            selected_unit: None,
             decided: 0,
             correct: 0,
             missed: 0,
@@ -109,6 +117,8 @@ impl MonitorState {
             last_seq: [0; 6],
             sessions_ended: Vec::new(),
             policy: String::new(),
+            silent_s: None,
+            waiting_for: String::new(),
         }
     }
 
@@ -117,6 +127,45 @@ impl MonitorState {
             .get(i as usize)
             .cloned()
             .unwrap_or_else(|| format!("#{i}"))
+    }
+
+    /// Starts the tallies afresh (a new daemon or a new session): decisions, units, recent
+    /// lines and the missed-message count; the stimuli, policy and view settings stay.
+    pub fn new_tally(&mut self) {
+        self.trial = None;
+        self.trial_decision = None;
+        self.recent.clear();
+        self.units.clear();
+        self.decided = 0;
+        self.correct = 0;
+        self.missed = 0;
+        self.last_seq = [0; 6];
+        self.selected = 0;
+        self.selected_unit = None;
+    }
+
+    /// Follows the daemon's current settings (its status): the policy line, and the stimuli
+    /// when a reload or a learned model changed them.
+    pub fn follow_status(&mut self, st: &v1::Status) {
+        self.policy = policy_line(st);
+        self.waiting_for = match &st.learning {
+            Some(l) if st.stimuli.is_empty() => {
+                format!(
+                    "no model yet: {} labelled trials taken{}",
+                    l.trials_learned,
+                    if l.waiting_for.is_empty() {
+                        String::new()
+                    } else {
+                        format!(" — not yet: {}", printable(&l.waiting_for))
+                    }
+                )
+            }
+            _ => String::new(),
+        };
+        let names = shown(&st.stimuli);
+        if !names.is_empty() && names != self.stimuli {
+            self.stimuli = names;
+        }
     }
 
     /// Applies one published message.
@@ -160,7 +209,11 @@ impl MonitorState {
                 }
             }
             Some(outbound::Body::Session(s)) => {
+                // The session's own figures stay in its line; the next session tallies afresh.
                 self.sessions_ended.push(session_line(s));
+                let seq = self.last_seq;
+                self.new_tally();
+                self.last_seq = seq;
             }
             Some(outbound::Body::Trial(t)) => {
                 // A learned model may add stimuli as the session goes: follow the trial's.
@@ -206,7 +259,21 @@ impl MonitorState {
                     }
                 }
             }
-            Some(outbound::Body::Health(h)) => self.health = Some(h.clone()),
+            Some(outbound::Body::Health(h)) => {
+                // A daemon that restarted (its uptime went back) is another daemon: its
+                // decisions start a tally of their own.
+                if self
+                    .health
+                    .as_ref()
+                    .is_some_and(|prev| h.uptime_s + 0.5 < prev.uptime_s)
+                {
+                    self.new_tally();
+                    if let Some(i) = auspex_proto::topic::ALL.iter().position(|t| *t == topic) {
+                        self.last_seq[i] = m.seq;
+                    }
+                }
+                self.health = Some(h.clone())
+            }
             None => {}
         }
     }
@@ -237,10 +304,20 @@ impl MonitorState {
 
     /// Moves the unit selection.
     pub fn select(&mut self, delta: i64) {
-        let n = self.units.len() as i64;
+        let rows = self.unit_rows();
+        let n = rows.len() as i64;
         if n > 0 {
-            self.selected = (self.selected as i64 + delta).rem_euclid(n) as usize;
+            let here = self.selected_row(&rows) as i64;
+            self.selected = (here + delta).rem_euclid(n) as usize;
+            self.selected_unit = Some(rows[self.selected].0);
         }
+    }
+
+    /// The row of the selected unit in `rows` (the selection follows the unit, not the row).
+    fn selected_row(&self, rows: &[(u32, f64, f64)]) -> usize {
+        self.selected_unit
+            .and_then(|u| rows.iter().position(|r| r.0 == u))
+            .unwrap_or(self.selected.min(rows.len().saturating_sub(1)))
     }
 
     /// The health line text.
@@ -292,7 +369,54 @@ impl MonitorState {
                     .bg(Color::Yellow)
                     .add_modifier(Modifier::BOLD),
             ),
+            Span::styled(
+                match self.silent_s {
+                    Some(s) => format!(" NO WORD FROM THE DAEMON FOR {s:.0} s "),
+                    None => String::new(),
+                },
+                Style::default()
+                    .fg(Color::White)
+                    .bg(Color::Red)
+                    .add_modifier(Modifier::BOLD),
+            ),
+            Span::styled(
+                if self.paused { "   ‖ PAUSED" } else { "" },
+                Style::default().fg(Color::Red),
+            ),
             Span::raw(format!("  decisions: {acc}")),
+            match &self.health {
+                Some(h) if !h.promises.is_empty() => {
+                    // One figure per promised level: levels are never merged into one count.
+                    let levels: Vec<String> = h
+                        .promises
+                        .iter()
+                        .map(|r| {
+                            format!(
+                                "{} {} {}/{}",
+                                r.promise,
+                                if r.broken { "BROKEN" } else { "kept" },
+                                r.correct,
+                                r.decisions
+                            )
+                        })
+                        .collect();
+                    if h.promise_broken {
+                        Span::styled(
+                            format!("   PROMISE {}", levels.join(" · ")),
+                            Style::default()
+                                .fg(Color::White)
+                                .bg(Color::Red)
+                                .add_modifier(Modifier::BOLD),
+                        )
+                    } else {
+                        Span::styled(
+                            format!("   promise {}", levels.join(" · ")),
+                            Style::default().fg(Color::Green),
+                        )
+                    }
+                }
+                _ => Span::raw(""),
+            },
             Span::styled(
                 match &self.health {
                     Some(h) if h.learning => format!(
@@ -309,42 +433,16 @@ impl MonitorState {
                 },
                 Style::default().fg(Color::Cyan),
             ),
-            match &self.health {
-                Some(h) if !h.promises.is_empty() => {
-                    let (n, k): (u64, u64) = h
-                        .promises
-                        .iter()
-                        .fold((0, 0), |(n, k), r| (n + r.decisions, k + r.correct));
-                    let levels: Vec<String> =
-                        h.promises.iter().map(|r| r.promise.to_string()).collect();
-                    if h.promise_broken {
-                        Span::styled(
-                            format!("   PROMISE BROKEN ({}): {k}/{n} right", levels.join(", ")),
-                            Style::default()
-                                .fg(Color::White)
-                                .bg(Color::Red)
-                                .add_modifier(Modifier::BOLD),
-                        )
-                    } else {
-                        Span::styled(
-                            format!("   promise {} kept: {k}/{n} right", levels.join(", ")),
-                            Style::default().fg(Color::Green),
-                        )
-                    }
-                }
-                _ => Span::raw(""),
-            },
-            Span::styled(
-                if self.paused { "   ‖ PAUSED" } else { "" },
-                Style::default().fg(Color::Red),
-            ),
             Span::raw(if self.missed > 0 {
                 format!("   {} messages missed", self.missed)
             } else {
                 String::new()
             }),
         ]);
-        f.render_widget(Paragraph::new(title), rows[0]);
+        f.render_widget(
+            Paragraph::new(fit_line(title.spans, rows[0].width as usize)),
+            rows[0],
+        );
         let top = Layout::default()
             .direction(Direction::Horizontal)
             .constraints([Constraint::Percentage(55), Constraint::Percentage(45)])
@@ -357,19 +455,30 @@ impl MonitorState {
             .split(rows[2]);
         self.draw_units(f, bottom[0]);
         self.draw_unit_detail(f, bottom[1]);
+        // Each footer line in whole parts: a narrow screen drops the last ones.
+        let w = rows[3].width as usize;
+        let parts = |text: String, sep: &str, style: Style| -> Line<'static> {
+            let pieces: Vec<String> = text.split(sep).map(str::to_string).collect();
+            let n = pieces.len();
+            fit_line(
+                pieces
+                    .into_iter()
+                    .enumerate()
+                    .map(|(i, p)| {
+                        Span::styled(if i + 1 < n { format!("{p}{sep}") } else { p }, style)
+                    })
+                    .collect(),
+                w,
+            )
+        };
         let foot = vec![
-            Line::from(Span::styled(
-                self.policy.clone(),
-                Style::default().fg(Color::Cyan),
-            )),
-            Line::from(Span::styled(
-                self.health_line(),
-                Style::default().fg(Color::Gray),
-            )),
-            Line::from(Span::styled(
-                "q quit · p pause · o order units · ↑/↓ select unit",
+            parts(self.policy.clone(), " · ", Style::default().fg(Color::Cyan)),
+            parts(self.health_line(), "  ", Style::default().fg(Color::Gray)),
+            parts(
+                "q quit · p pause · o order units · ↑/↓ select unit".into(),
+                " · ",
                 Style::default().fg(Color::DarkGray),
-            )),
+            ),
         ];
         f.render_widget(Paragraph::new(foot), rows[3]);
     }
@@ -378,7 +487,11 @@ impl MonitorState {
         let (title, lines) = match &self.trial {
             None => (
                 "posterior".to_string(),
-                vec![Line::from("waiting for a trial…")],
+                vec![Line::from(if self.waiting_for.is_empty() {
+                    "waiting for a trial…".to_string()
+                } else {
+                    self.waiting_for.clone()
+                })],
             ),
             Some((trial, bin, post)) => {
                 let mut t = format!(
@@ -421,7 +534,20 @@ impl MonitorState {
             }
         };
         f.render_widget(
-            Paragraph::new(lines).block(Block::default().borders(Borders::ALL).title(title)),
+            Paragraph::new(lines).block(
+                Block::default().borders(Borders::ALL).title(fit_title(
+                    &[
+                        title.clone(),
+                        title
+                            .split(" · WITHOUT")
+                            .next()
+                            .unwrap_or_default()
+                            .to_string(),
+                        title.split(" · ").next().unwrap_or_default().to_string(),
+                    ],
+                    area.width,
+                )),
+            ),
             area,
         );
     }
@@ -437,13 +563,24 @@ impl MonitorState {
                     Some(p) => (format!("✗ was {p}"), Color::Red),
                     None => ("·".to_string(), Color::Gray),
                 };
-                Line::from(vec![
-                    Span::raw(format!(
-                        "#{:<5} {:>6} {:.2} {:>4.0} ms ",
-                        r.trial, r.stimulus, r.posterior, r.at_ms
-                    )),
-                    Span::styled(mark, Style::default().fg(color)),
-                ])
+                let width = area.width.saturating_sub(2) as usize;
+                let head = format!(
+                    "#{:<5} {:>6} {:.2} {:>4.0} ms ",
+                    r.trial, r.stimulus, r.posterior, r.at_ms
+                );
+                // A narrow panel drops "was NE" whole (✗ alone), never cuts the name.
+                let mark = if head.chars().count() + mark.chars().count() > width {
+                    mark.chars().take(1).collect()
+                } else {
+                    mark
+                };
+                fit_line(
+                    vec![
+                        Span::raw(head),
+                        Span::styled(mark, Style::default().fg(color)),
+                    ],
+                    width,
+                )
             })
             .collect();
         f.render_widget(
@@ -458,13 +595,28 @@ impl MonitorState {
 
     fn draw_units(&self, f: &mut Frame, area: Rect) {
         let rows_v = self.unit_rows();
+        let sel = self.selected_row(&rows_v);
         let max_info = rows_v.iter().map(|r| r.2).fold(1e-9, f64::max);
+        // Columns by priority (unit, bits, accuracy, verdict, bar), as many as fit whole: a
+        // narrow panel drops a column, never cuts a number.
+        let widths = [7u16, 14, 10, 10, 12];
+        let inner = area.width.saturating_sub(2);
+        let mut cols: Vec<usize> = Vec::new();
+        let mut used = 0u16;
+        for c in [0usize, 2, 1, 4, 3] {
+            let need = widths[c] + if cols.is_empty() { 0 } else { 1 };
+            if used + need <= inner {
+                cols.push(c);
+                used += need;
+            }
+        }
+        cols.sort_unstable();
         let rows: Vec<Row> = rows_v
             .iter()
             .enumerate()
             .map(|(i, (u, a, info))| {
                 let bar = "▮".repeat(((info / max_info) * 10.0).round() as usize);
-                let style = if i == self.selected {
+                let style = if i == sel {
                     Style::default().add_modifier(Modifier::REVERSED)
                 } else {
                     Style::default()
@@ -482,7 +634,7 @@ impl MonitorState {
                     "not yet enough trials" => Style::default().fg(Color::DarkGray),
                     _ => Style::default(),
                 };
-                Row::new(vec![
+                let cells = vec![
                     Cell::from(u.to_string()),
                     Cell::from(format!(
                         "{:.0}% [{:.0}–{:.0}]",
@@ -493,7 +645,14 @@ impl MonitorState {
                     Cell::from(format!("{info:.2}±{:.2}", st.info_se)),
                     Cell::from(bar),
                     Cell::from(verdict).style(vstyle),
-                ])
+                ];
+                Row::new(
+                    cells
+                        .into_iter()
+                        .enumerate()
+                        .filter(|(c, _)| cols.contains(c))
+                        .map(|(_, x)| x),
+                )
                 .style(style)
             })
             .collect();
@@ -502,31 +661,37 @@ impl MonitorState {
             UnitSort::Accuracy => "accuracy",
             UnitSort::Id => "unit id",
         };
+        let heads = ["unit", "acc [95%]", "bits ± se", "", "verdict"];
         let t = Table::new(
             rows,
-            [
-                Constraint::Length(7),
-                Constraint::Length(14),
-                Constraint::Length(10),
-                Constraint::Length(10),
-                Constraint::Min(12),
-            ],
+            cols.iter()
+                .map(|&c| {
+                    if c == 4 {
+                        Constraint::Min(widths[c])
+                    } else {
+                        Constraint::Length(widths[c])
+                    }
+                })
+                .collect::<Vec<_>>(),
         )
         .header(
-            Row::new(vec!["unit", "acc [95%]", "bits ± se", "", "verdict"])
+            Row::new(cols.iter().map(|&c| heads[c]).collect::<Vec<_>>())
                 .style(Style::default().add_modifier(Modifier::BOLD)),
         )
-        .block(
-            Block::default()
-                .borders(Borders::ALL)
-                .title(format!("units by {sort} (single-unit, end of window)")),
-        );
+        .block(Block::default().borders(Borders::ALL).title(fit_title(
+            &[
+                format!("units by {sort} (single-unit, end of window)"),
+                format!("units by {sort}"),
+                "units".into(),
+            ],
+            area.width,
+        )));
         f.render_widget(t, area);
     }
 
     fn draw_unit_detail(&self, f: &mut Frame, area: Rect) {
         let rows_v = self.unit_rows();
-        let Some((unit, _, _)) = rows_v.get(self.selected) else {
+        let Some((unit, _, _)) = rows_v.get(self.selected_row(&rows_v)) else {
             f.render_widget(
                 Paragraph::new("no per-unit reports yet")
                     .block(Block::default().borders(Borders::ALL).title("unit detail")),
@@ -549,15 +714,26 @@ impl MonitorState {
                 };
                 let count = format!("{count:<25}");
                 let bar = "█".repeat(((tune.1 / max_mean) * 10.0).round() as usize);
+                let width = area.width.saturating_sub(2) as usize;
                 if *n == 0 {
-                    Line::from(format!("{:>6} {count}", self.name(i as u32)))
+                    fit_line(
+                        vec![Span::raw(format!("{:>6} {count}", self.name(i as u32)))],
+                        width,
+                    )
                 } else {
                     let mean = sp / *n as f64;
-                    Line::from(vec![
-                        Span::raw(format!("{:>6} {count}", self.name(i as u32))),
-                        Span::styled(format!("{bar:<10}"), Style::default().fg(Color::Magenta)),
-                        Span::raw(format!(" p̄={mean:.2} right {right}/{n}")),
-                    ])
+                    fit_line(
+                        vec![
+                            Span::raw(format!("{:>6} {count}", self.name(i as u32))),
+                            Span::raw(format!(" right {right}/{n}")),
+                            Span::raw(format!(" p̄={mean:.2}")),
+                            Span::styled(
+                                format!(" {bar:<10}"),
+                                Style::default().fg(Color::Magenta),
+                            ),
+                        ],
+                        width,
+                    )
                 }
             })
             .collect();
@@ -568,14 +744,58 @@ impl MonitorState {
             )));
         }
         f.render_widget(
-            Paragraph::new(lines).block(
-                Block::default()
-                    .borders(Borders::ALL)
-                    .title(format!("unit {unit}: tuning and presented posterior")),
-            ),
+            Paragraph::new(lines).block(Block::default().borders(Borders::ALL).title(fit_title(
+                &[
+                    format!("unit {unit}: tuning and presented posterior"),
+                    format!("unit {unit}: tuning"),
+                    format!("unit {unit}"),
+                ],
+                area.width,
+            ))),
             area,
         );
     }
+}
+
+/// The first of `titles` (longest first) that fits a panel `width` columns wide.
+fn fit_title(titles: &[String], width: u16) -> String {
+    let room = width.saturating_sub(2) as usize;
+    titles
+        .iter()
+        .find(|t| Span::raw(t.to_string()).width() <= room)
+        .or(titles.last())
+        .cloned()
+        .unwrap_or_default()
+}
+
+/// The spans that fit in `width` columns, whole: a span that does not fit is left out (the
+/// spans after it are tried in turn), so a narrow screen drops a figure, never cuts one.
+pub fn fit_line(spans: Vec<Span<'static>>, width: usize) -> Line<'static> {
+    let w = |t: &str| Span::raw(t.to_string()).width();
+    let mut used = 0usize;
+    let mut kept = Vec::new();
+    for sp in spans {
+        let n = sp.width();
+        if n == 0 {
+            continue;
+        }
+        if used + n <= width {
+            used += n;
+            kept.push(sp);
+        } else if kept.is_empty() {
+            // Not even the first part fits: cut it at a word boundary rather than mid-figure.
+            let mut t = String::new();
+            for word in sp.content.split_inclusive(' ') {
+                if w(format!("{t}{word}").trim_end()) > width {
+                    break;
+                }
+                t.push_str(word);
+            }
+            used += w(&t);
+            kept.push(Span::styled(t, sp.style));
+        }
+    }
+    Line::from(kept)
 }
 
 /// One line for the live record of one promised level.
@@ -926,7 +1146,11 @@ mod tests {
     }
 
     fn render(state: &MonitorState) -> String {
-        let mut term = Terminal::new(TestBackend::new(110, 30)).unwrap();
+        render_at(state, 110, 30)
+    }
+
+    fn render_at(state: &MonitorState, w: u16, h: u16) -> String {
+        let mut term = Terminal::new(TestBackend::new(w, h)).unwrap();
         term.draw(|f| state.draw(f)).unwrap();
         let buf = term.backend().buffer().clone();
         let mut s = String::new();
@@ -990,6 +1214,133 @@ mod tests {
         );
         st.apply("posterior", &frame(0));
         assert!(!render(&st).contains("WITHOUT"));
+    }
+
+    /// The selection follows its unit as the rows re-sort; pausing freezes a copy, not the
+    /// accounting; a restarted daemon (its uptime went back) starts a new tally.
+    #[test]
+    fn selection_follows_the_unit_and_a_new_daemon_starts_a_new_tally() {
+        let mut st = MonitorState::new(vec!["N".into(), "S".into()], 0.001);
+        for (t, m) in stream() {
+            st.apply(t, &m);
+        }
+        st.select(1); // from 101 (best) to 102
+        assert!(render(&st).contains("unit 102: tuning"));
+        // 102 becomes the most informative: it moves to the first row, still selected.
+        let report = v1::Outbound {
+            seq: 99,
+            body: Some(outbound::Body::Units(v1::UnitReport {
+                trial: 8,
+                presented: "N".into(),
+                labelled_trials: 6,
+                units: vec![v1::UnitLine {
+                    unit: 102,
+                    accuracy: 0.95,
+                    info_bits: 0.9,
+                    ..Default::default()
+                }],
+            })),
+        };
+        st.apply("units", &report);
+        assert_eq!(st.unit_rows()[0].0, 102);
+        assert!(render(&st).contains("unit 102: tuning"));
+        assert_eq!(st.decided, 2);
+        let h = |uptime_s| v1::Outbound {
+            seq: 100,
+            body: Some(outbound::Body::Health(v1::Health {
+                uptime_s,
+                ..Default::default()
+            })),
+        };
+        st.apply("health", &h(50.0));
+        st.apply("health", &h(51.0));
+        assert_eq!(st.decided, 2, "the same daemon: the tally goes on");
+        st.apply("health", &h(0.5));
+        assert_eq!(st.decided, 0, "a new daemon: a new tally");
+        assert!(render(&st).contains("no labelled decisions yet"));
+        st.silent_s = Some(12.0);
+        assert!(render(&st).contains("NO WORD FROM THE DAEMON FOR 12 s"));
+    }
+
+    /// Words and figures on screen, borders and bars aside.
+    fn tokens(screen: &str) -> std::collections::BTreeSet<String> {
+        screen
+            .replace(|c: char| "─│┌┐└┘├┤┬┴┼".contains(c), " ")
+            .split_whitespace()
+            .filter(|t| !t.chars().all(|c| "█▮".contains(c)))
+            .map(str::to_string)
+            .collect()
+    }
+
+    /// At 80×24, 120×40 and 160×48 every word and figure on screen is whole: each appears,
+    /// as it is, on a 250-column screen of the same state (a narrow panel drops whole columns
+    /// and parts, never cuts a number or a name), and a wrong decision names the presented
+    /// stimulus whole or not at all.
+    #[test]
+    fn no_cut_numbers_or_names_at_any_size() {
+        let mut st = MonitorState::new(vec!["N".into(), "NE".into(), "S".into()], 0.001);
+        for (t, m) in stream() {
+            st.apply(t, &m);
+        }
+        st.apply(
+            "decision",
+            &v1::Outbound {
+                seq: 40,
+                body: Some(outbound::Body::Decision(v1::DecisionEvent {
+                    trial: 56,
+                    stimulus: 0,
+                    stimulus_name: "N".into(),
+                    posterior: 0.93,
+                    bin: 21,
+                    reason: 1,
+                    presented: "NE".into(),
+                    bin_end_tick: 0,
+                })),
+            },
+        );
+        st.apply(
+            "health",
+            &v1::Outbound {
+                seq: 41,
+                body: Some(outbound::Body::Health(v1::Health {
+                    uptime_s: 100.0,
+                    learning: true,
+                    trials_learned: 213,
+                    learned_model_trials: 200,
+                    promises: vec![
+                        v1::PromiseRecord {
+                            promise: 0.9,
+                            threshold: 0.9,
+                            decisions: 120,
+                            correct: 118,
+                            ..Default::default()
+                        },
+                        v1::PromiseRecord {
+                            promise: 0.97,
+                            threshold: 0.97,
+                            decisions: 98,
+                            correct: 95,
+                            ..Default::default()
+                        },
+                    ],
+                    ..Default::default()
+                })),
+            },
+        );
+        st.missed = 1640;
+        st.policy = "decide at θ 0.9 after 20 ms · prior flat".into();
+        let wide = tokens(&render_at(&st, 250, 48));
+        for (w, h) in [(80, 24), (120, 40), (160, 48)] {
+            let screen = render_at(&st, w, h);
+            for t in tokens(&screen) {
+                assert!(wide.contains(&t), "{w}×{h}: `{t}` is cut:\n{screen}");
+            }
+            let line56 = screen.lines().find(|l| l.contains("#56")).unwrap();
+            assert!(
+                line56.contains("✗ was NE") || !line56.contains("was"),
+                "{w}×{h}: {line56}"
+            );
+        }
     }
 
     /// Names from a model file or the wire reach the screen with control characters escaped:

@@ -68,11 +68,27 @@ pub async fn monitor(
     };
     let mut tick = tokio::time::interval(Duration::from_millis(50));
     let out = std::io::stdout();
+    // Pausing freezes the view, not the accounting: messages still go into `state`, the
+    // screen shows the snapshot taken at the pause.
+    let mut frozen: Option<MonitorState> = None;
+    let mut last_heard = std::time::Instant::now();
+    let mut last_status = std::time::Instant::now();
     let result: anyhow::Result<()> = async {
         loop {
             tokio::select! {
                 _ = stop.changed() => if *stop.borrow() { break },
                 _ = tick.tick() => {
+                    // Every second: the daemon's current settings (changed by `steer` from
+                    // elsewhere), and whether it is still there.
+                    if last_status.elapsed() >= Duration::from_secs(1) {
+                        last_status = std::time::Instant::now();
+                        if let Ok(Ok(st)) = tokio::time::timeout(Duration::from_millis(500), status(control_ep)).await {
+                            state.follow_status(&st);
+                            last_heard = std::time::Instant::now();
+                        }
+                    }
+                    let quiet_s = last_heard.elapsed().as_secs_f64();
+                    state.silent_s = (quiet_s >= SILENT_AFTER_S).then_some(quiet_s);
                     if let Some(t) = term.as_mut() {
                         while crossterm::event::poll(Duration::ZERO)? {
                             if let crossterm::event::Event::Key(k) = crossterm::event::read()? {
@@ -80,15 +96,34 @@ pub async fn monitor(
                                 match k.code {
                                     Char('q') | Esc => return Ok(()),
                                     Char('c') if k.modifiers.contains(crossterm::event::KeyModifiers::CONTROL) => return Ok(()),
-                                    Char('p') => state.paused = !state.paused,
-                                    Char('o') => state.next_sort(),
-                                    Up | Char('k') => state.select(-1),
-                                    Down | Char('j') => state.select(1),
+                                    Char('p') => {
+                                        frozen = match frozen {
+                                            Some(_) => None,
+                                            None => {
+                                                let mut f = state.clone();
+                                                f.paused = true;
+                                                Some(f)
+                                            }
+                                        };
+                                    }
+                                    Char('o') => {
+                                        state.next_sort();
+                                        if let Some(f) = frozen.as_mut() { f.next_sort(); }
+                                    }
+                                    Up | Char('k') => {
+                                        state.select(-1);
+                                        if let Some(f) = frozen.as_mut() { f.select(-1); }
+                                    }
+                                    Down | Char('j') => {
+                                        state.select(1);
+                                        if let Some(f) = frozen.as_mut() { f.select(1); }
+                                    }
                                     _ => {}
                                 }
                             }
                         }
-                        t.draw(|f| state.draw(f))?;
+                        let shown = frozen.as_ref().unwrap_or(&state);
+                        t.draw(|f| shown.draw(f))?;
                     }
                 }
                 m = sub.recv() => {
@@ -100,9 +135,8 @@ pub async fn monitor(
                     if let Some(v1::outbound::Body::Decision(d)) = &msg.body {
                         seen.push((d.trial, d.stimulus, d.posterior.to_bits(), d.bin));
                     }
-                    if !state.paused || term.is_none() {
-                        state.apply(&topic, &msg);
-                    }
+                    last_heard = std::time::Instant::now();
+                    state.apply(&topic, &msg);
                     match view {
                         View::Lines => if let Some(l) = plain_line(&state, &topic, &msg) { let _ = writeln!(out.lock(), "{l}"); },
                         View::Json => { let _ = writeln!(out.lock(), "{}", json_line(&topic, &msg)); },
@@ -121,6 +155,10 @@ pub async fn monitor(
     result?;
     Ok(seen)
 }
+
+/// Seconds without a word from the daemon (no published message, no status reply) after which
+/// the monitor says so: a few of its health messages (one a second) missed.
+const SILENT_AFTER_S: f64 = 3.0;
 
 fn free_port() -> anyhow::Result<u16> {
     Ok(std::net::TcpListener::bind(("127.0.0.1", 0))?

@@ -14,7 +14,28 @@ pub fn status_json(s: &v1::Status) -> serde_json::Value {
                         "promise_records": s.health.as_ref().map(|h| h.promises.iter().map(|r| serde_json::json!({"promise": r.promise, "threshold": r.threshold, "decisions": r.decisions, "correct": r.correct, "lo": r.accuracy_lo, "hi": r.accuracy_hi, "cusum": r.cusum, "broken": r.broken})).collect::<Vec<_>>()),
                         "learning": s.learning.as_ref().map(|l| serde_json::json!({"enabled": l.enabled, "trials_learned": l.trials_learned, "model_trials": l.model_trials, "last_refit_age_s": l.last_refit_age_s, "last_refit_s": l.last_refit_s, "refits": l.refits, "waiting_for": l.waiting_for})),
                         "ended_sessions": s.ended_sessions.iter().map(|e| serde_json::json!({"session": e.session_name, "reason": e.reason, "trials_completed": e.trials_completed, "decisions": e.decisions, "decisions_labelled": e.decisions_labelled, "decisions_correct": e.decisions_correct, "trials_learned": e.trials_learned, "recording": e.recording_path})).collect::<Vec<_>>(),
-                        "senders": s.senders.iter().map(|x| serde_json::json!({"sender": x.sender, "last_seq": x.last_seq, "gaps": x.gaps, "ended": x.ended})).collect::<Vec<_>>()})
+                        "senders": s.senders.iter().map(|x| serde_json::json!({"sender": x.sender, "last_seq": x.last_seq, "gaps": x.gaps, "ended": x.ended})).collect::<Vec<_>>(),
+                        "health": s.health.as_ref().map(health_json)})
+}
+
+/// The daemon's counters and rates (`status --json`'s `health`): everything `status` prints.
+pub fn health_json(h: &v1::Health) -> serde_json::Value {
+    serde_json::json!({
+        "uptime_s": h.uptime_s, "messages_in": h.messages_in, "spikes_in": h.spikes_in, "frames_out": h.frames_out,
+        "spikes_per_s": h.spikes_per_s, "frames_per_s": h.frames_per_s,
+        "late_spikes": h.late_spikes, "unknown_unit_spikes": h.unknown_unit_spikes, "malformed_messages": h.malformed_messages,
+        "sequence_gaps": h.sequence_gaps, "duplicate_messages": h.duplicate_messages, "watermark_backwards": h.watermark_backwards,
+        "duplicate_trials": h.duplicate_trials, "stale_onsets": h.stale_onsets, "trials_over_limit": h.trials_over_limit,
+        "oversized_batches": h.oversized_batches, "unknown_trials": h.unknown_trials, "unknown_stimuli": h.unknown_stimuli,
+        "dropped_posterior": h.dropped_posterior, "dropped_other": h.dropped_other, "engine_backlog": h.engine_backlog,
+        "update_p50_us": h.update_p50_us, "update_p99_us": h.update_p99_us, "watermark": h.watermark,
+        "open_trials": h.open_trials, "trials_completed": h.trials_completed, "decisions": h.decisions,
+        "model_mismatches": h.model_mismatches, "recorder_errors": h.recorder_errors,
+        "unlabelled_trials_dropped": h.unlabelled_trials_dropped, "learning": h.learning, "trials_learned": h.trials_learned,
+        "learned_model_trials": h.learned_model_trials, "learning_frozen": h.learning_frozen, "promise_broken": h.promise_broken,
+        "shards_lost": h.shards_lost, "missing_parts": h.missing_parts, "misrouted_spikes": h.misrouted_spikes,
+        "partials_unsent": h.partials_unsent,
+    })
 }
 
 /// Status as the lines `auspex status` prints.
@@ -193,6 +214,9 @@ mod tests {
         let j = status_json(&s);
         assert_eq!(j["role"], "combine");
         assert_eq!(j["shards"][1]["joined"], false);
+        // The counters `status` prints are in the JSON too.
+        assert_eq!(j["health"]["shards_lost"], 1);
+        assert_eq!(j["health"]["late_spikes"], 0);
         // A whole daemon prints no deployment line.
         let whole = status_text(&v1::Status {
             role: "whole".into(),

@@ -116,7 +116,9 @@ pub struct FitArgs {
     pub stimulus_order: Vec<String>,
     /// Unit ids at which a new unit group starts (empty: one group; see `auspexd --role shard`).
     pub unit_groups: Vec<u32>,
-    /// No per-cell table.
+    /// Print the per-cell table (else one line of the families chosen).
+    pub cells: bool,
+    /// Print nothing about the cells.
     pub quiet: bool,
 }
 
@@ -133,6 +135,7 @@ impl Default for FitArgs {
             min_time_ms: DecisionPolicy::default().min_time_s * 1000.0,
             stimulus_order: Vec::new(),
             unit_groups: Vec::new(),
+            cells: false,
             quiet: false,
         }
     }
@@ -182,13 +185,16 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
         }
     }
     if !quiet {
-        print!(
-            "{}",
-            cell_table(&auspex_modelling::fit::reorder_spec(
-                spec.clone(),
-                &presented
-            )?)
-        );
+        let table = cell_table(&auspex_modelling::fit::reorder_spec(
+            spec.clone(),
+            &presented,
+        )?);
+        if args.cells {
+            print!("{table}");
+        } else if let Some(last) = table.lines().last() {
+            // The families chosen; the table itself with --cells (or `auspex inspect`).
+            println!("{last} (--cells for the table)");
+        }
     }
     eprintln!(
         "fitted {} units × {} stimuli ({} cells, {} bins of {} ms) in {:.1} s; {} trials without a label were not used",

@@ -117,8 +117,54 @@ fn decoder<'a>(v: &'a Value, name: &str) -> Result<&'a Value, String> {
         .ok_or_else(|| format!("no {name} decoder in decoders"))
 }
 
-/// Reads one file's row.
+/// A figure within its bounds, or why the file is refused (a damaged or hand-edited file must
+/// not put 18446744073709551615 trials or an accuracy of 7 into a table of sessions).
+fn within(name: &str, x: f64, lo: f64, hi: f64) -> Result<f64, String> {
+    if x.is_finite() && (lo..=hi).contains(&x) {
+        Ok(x)
+    } else {
+        Err(format!("{name} = {x} is outside [{lo}, {hi}]"))
+    }
+}
+
+/// A count: a whole number in 0..=10¹².
+fn count_of(name: &str, x: f64) -> Result<u64, String> {
+    if x.fract() != 0.0 {
+        return Err(format!("{name} = {x} is not a whole number"));
+    }
+    within(name, x, 0.0, 1e12).map(|x| x as u64)
+}
+
+/// Reads one file's row, every figure checked against its bounds.
 pub fn read_row(path: &Path) -> Result<Row, String> {
+    let r = read_row_unchecked(path)?;
+    let p = |name: &str, x: f64| within(name, x, 0.0, 1.0);
+    p("chance", r.chance)?;
+    p("window-end accuracy", r.accuracy_end.0)?;
+    p("its interval's lower end", r.accuracy_end.1)?;
+    p("its interval's upper end", r.accuracy_end.2)?;
+    p("inhomogeneous-Poisson accuracy", r.poisson_end)?;
+    p("count-only accuracy", r.count_end)?;
+    p("threshold", r.threshold)?;
+    p("decision accuracy", r.decision.0)?;
+    within("median decision time (ms)", r.decision.1, 0.0, 1e9)?;
+    if let Some(t) = r.earliest_ms {
+        within("earliest reliable time (ms)", t, 0.0, 1e9)?;
+    }
+    within(
+        "information (bits)",
+        r.info.0,
+        0.0,
+        (r.stimuli.max(1) as f64).log2() + 1e-9,
+    )?;
+    p("information p-value", r.info.1)?;
+    if r.kept.0 > r.kept.1 || r.fit_flags.0 > r.fit_flags.1 {
+        return Err("more thresholds kept or cells flagged than tested".into());
+    }
+    Ok(r)
+}
+
+fn read_row_unchecked(path: &Path) -> Result<Row, String> {
     let text = std::fs::read_to_string(path).map_err(|e| format!("cannot read ({e})"))?;
     let v: Value = serde_json::from_str(&text).map_err(|e| {
         format!(
@@ -152,7 +198,7 @@ pub fn read_row(path: &Path) -> Result<Row, String> {
     Ok(Row {
         session,
         source: v["source"].as_str().unwrap_or_default().to_string(),
-        trials: num(&v, &["trials"])? as u64,
+        trials: count_of("trials", num(&v, &["trials"])?)?,
         units: count("units").ok_or("no units list")?,
         stimuli: count("stimuli").ok_or("no stimuli list")?,
         chance: num(&v, &["chance"])?,
@@ -178,8 +224,14 @@ pub fn read_row(path: &Path) -> Result<Row, String> {
         ),
         kept,
         fit_flags: (
-            num(&v, &["goodness_of_fit", "cells_failed"])? as u64,
-            num(&v, &["goodness_of_fit", "cells_tested"])? as u64,
+            count_of(
+                "cells flagged",
+                num(&v, &["goodness_of_fit", "cells_failed"])?,
+            )?,
+            count_of(
+                "cells tested",
+                num(&v, &["goodness_of_fit", "cells_tested"])?,
+            )?,
         ),
     })
 }

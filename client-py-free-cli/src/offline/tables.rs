@@ -48,6 +48,12 @@ fn read_table(path: &Path, required: &[&str], tick_rate_hz: f64) -> Result<Table
     let p = path.display().to_string();
     let text =
         std::fs::read_to_string(path).map_err(|e| TableError(format!("{p}: cannot read: {e}")))?;
+    // Lines ended by a carriage return alone (old spreadsheet exports) are lines too.
+    let text = if text.contains('\r') && !text.contains('\n') {
+        text.replace('\r', "\n")
+    } else {
+        text
+    };
     let mut lines = text.lines().enumerate().filter(|(_, l)| {
         let t = l.trim();
         !t.is_empty() && !t.starts_with('#')
@@ -76,7 +82,7 @@ fn read_table(path: &Path, required: &[&str], tick_rate_hz: f64) -> Result<Table
             return Err(TableError(format!(
                 "{p}:{}: missing column `{r}` (the header has: {}); expected columns {}",
                 hline + 1,
-                names.join(", "),
+                shortened(&names),
                 required.join(",")
             )));
         }
@@ -100,6 +106,24 @@ fn read_table(path: &Path, required: &[&str], tick_rate_hz: f64) -> Result<Table
         rows,
         cols,
     })
+}
+
+/// Names from a header line as an error message quotes them: at most 12, each at most 40
+/// characters, control characters escaped — a damaged file is not echoed whole.
+fn shortened(names: &[String]) -> String {
+    let one = |n: &String| {
+        let n = auspex_engine::data::printable(n);
+        if n.chars().count() > 40 {
+            format!("{}…", n.chars().take(40).collect::<String>())
+        } else {
+            n.into_owned()
+        }
+    };
+    let mut v: Vec<String> = names.iter().take(12).map(one).collect();
+    if names.len() > 12 {
+        v.push(format!("… {} more", names.len() - 12));
+    }
+    v.join(", ")
 }
 
 /// Shares and spans that say the two tables' times do not fit together.
@@ -483,6 +507,28 @@ mod tests {
             e.contains("t.csv:2") && e.contains("beyond what the clock can count"),
             "{e}"
         );
+    }
+
+    /// Carriage-return-only line endings (old spreadsheet exports) are read as lines; a header
+    /// that is not one is quoted shortened, not the whole file on one line.
+    #[test]
+    fn cr_only_tables_are_read_and_bad_headers_quoted_short() {
+        let d = tempfile::tempdir().unwrap();
+        let s = write(d.path(), "s.csv", "unit,time_s\r3,0.51\r4,1.6\r");
+        let t = write(
+            d.path(),
+            "t.csv",
+            "trial,onset_s,stimulus\r1,0.5,N\r2,1.5,S\r",
+        );
+        let (data, _) = read_dataset(&s, &t, 1e6, 0.25).unwrap();
+        assert_eq!(data.spikes, vec![(510_000, 3), (1_600_000, 4)]);
+        let long: String = (0..5000).map(|i| format!("c{i},")).collect();
+        let e = err(&format!("{long}\n"), GOOD_T);
+        assert!(
+            e.contains("missing column `unit`") && e.contains("… 4989 more"),
+            "{e}"
+        );
+        assert!(e.len() < 600, "{} characters: {e}", e.len());
     }
 
     #[test]

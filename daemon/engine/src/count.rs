@@ -92,6 +92,27 @@ pub enum CountParams {
 }
 
 impl CountParams {
+    /// About how many entries this distribution's table will hold (at most
+    /// [`MAX_TABLE_LEN`]), from the parameters alone: the mean plus ten standard deviations
+    /// (the table stops once the tail mass is negligible). For budgets, before any is built.
+    pub fn table_len_hint(&self) -> usize {
+        let (mean, var) = match self {
+            CountParams::Poisson { mean } => (*mean, *mean),
+            CountParams::NegativeBinomial { mean, shape } => (*mean, mean + mean * mean / shape),
+            CountParams::ComPoisson { lambda, nu } => {
+                let m = lambda.powf(1.0 / nu);
+                (m, m / nu)
+            }
+            CountParams::Empirical { pmf } => return pmf.len().min(MAX_TABLE_LEN),
+        };
+        let n = mean + 10.0 * var.max(0.0).sqrt() + 10.0;
+        if n.is_finite() {
+            (n as usize).min(MAX_TABLE_LEN)
+        } else {
+            MAX_TABLE_LEN
+        }
+    }
+
     /// The family of these parameters.
     pub fn family(&self) -> CountFamily {
         match self {

@@ -253,6 +253,23 @@ impl Model {
         let sizes = || format!("{nu} units × {ns} stimuli × {nb} bins");
         let fixed = decoding_bytes(nu, ns, nb);
         crate::budget::check("the model's tables", sizes, fixed)?;
+        // The count tables as their parameters say they will be, before any is built (the
+        // check as they grow, below, is exact).
+        let hinted: u128 = spec
+            .cells
+            .iter()
+            .map(|c| 3 * 8 * c.count.table_len_hint() as u128)
+            .sum();
+        crate::budget::check(
+            "the model's count tables",
+            || {
+                format!(
+                    "{nu} units × {ns} stimuli, about {} table entries in all",
+                    hinted / 24
+                )
+            },
+            fixed + hinted,
+        )?;
         let mut count_bytes = 0u128;
         let psum: f64 = spec.prior.iter().sum();
         let ln_prior: Vec<f64> = spec.prior.iter().map(|p| (p / psum).ln()).collect();

@@ -89,6 +89,22 @@ pub fn status(ctx: &zmq::Context, endpoint: &str) -> v1::Status {
     }
 }
 
+/// Status, or None when the daemon answers with an error instead (a learning daemon busy with
+/// an in-step refit answers "did not reply in time" after 3 s).
+#[allow(dead_code)]
+pub fn try_status(ctx: &zmq::Context, endpoint: &str) -> Option<v1::Status> {
+    match control(
+        ctx,
+        endpoint,
+        control_request::Body::Status(v1::StatusQuery {}),
+    )
+    .body
+    {
+        Some(control_reply::Body::Status(s)) => Some(s),
+        _ => None,
+    }
+}
+
 pub fn wait_for(mut cond: impl FnMut() -> bool, what: &str) {
     let t0 = Instant::now();
     while !cond() {
