@@ -24,3 +24,9 @@ pub fn demo_dir() -> std::path::PathBuf {
         .join("demo-data");
     std::fs::canonicalize(&d).unwrap_or(d)
 }
+
+/// `n` and the noun in its number: "1 spike", "2 spikes", "0 spikes".
+pub fn counted(n: impl Into<u64>, one: &str, many: &str) -> String {
+    let n = n.into();
+    format!("{n} {}", if n == 1 { one } else { many })
+}

@@ -726,7 +726,7 @@ fn main() {
             };
             let before = auspex::live::health_now(&control).await;
             let s = auspex::send::send(reader, &to, &sender, follow).await?;
-            eprintln!("sent {} messages ({} spikes) as {sender:?}{}", s.messages, s.spikes,
+            eprintln!("sent {} ({}) as {sender:?}{}", auspex::counted(s.messages, "message", "messages"), auspex::counted(s.spikes, "spike", "spikes"),
                 if s.bad_lines > 0 { format!("; {} lines were refused (see above)", s.bad_lines) } else { String::new() });
             // What the daemon made of them (it has taken them once it answers after the end).
             let taken = auspex::live::taken_since(&control, before, &sender, s.messages).await;

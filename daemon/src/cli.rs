@@ -187,7 +187,10 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
     }
     let json = a.log_json || f.log_json.unwrap_or(false);
     let filter =
-        tracing_subscriber::EnvFilter::try_from_default_env().unwrap_or_else(|_| "info".into());
+        // The socket library's own notes (peers connecting and leaving) only at warn: the log
+        // is the operator's, not the library's (RUST_LOG overrides).
+        tracing_subscriber::EnvFilter::try_from_default_env()
+            .unwrap_or_else(|_| "info,zeromq=warn".into());
     if json {
         tracing_subscriber::fmt()
             .with_env_filter(filter)

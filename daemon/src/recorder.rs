@@ -22,8 +22,14 @@ pub enum RecorderMsg {
     Flush,
     /// Give the file being written this name (the session's name became known).
     Rename(PathBuf),
-    /// Close the file and continue in a new one at this path (a new session).
-    Rotate(PathBuf),
+    /// Close the file and continue in a new one at this path (a new session); `named_later`:
+    /// the session's name will come (a `Rename`), so the file is not created before it.
+    Rotate {
+        /// The next file.
+        to: PathBuf,
+        /// A `Rename` will name it.
+        named_later: bool,
+    },
 }
 
 /// Handle to the recorder thread.
@@ -45,10 +51,18 @@ pub fn resolve_path(path: &Path, now_unix_s: u64) -> PathBuf {
 }
 
 impl Recorder {
-    /// Creates the file and starts the thread. Write errors after start are counted (returned
-    /// at the end) and logged, never fatal.
-    pub fn start(path: PathBuf, model_path: &str, now_ns: i64) -> std::io::Result<Self> {
-        let w = open(&path, model_path, now_ns)?;
+    /// Checks the file can be created (and removes the probe) and starts the thread; the file
+    /// itself is created with its first record — with `named_later`, once the session's name
+    /// is known — so the folder never holds an empty or provisionally named recording. Write
+    /// errors after start are counted (returned at the end) and logged, never fatal.
+    pub fn start(
+        path: PathBuf,
+        model_path: &str,
+        now_ns: i64,
+        named_later: bool,
+    ) -> std::io::Result<Self> {
+        drop(open(&path, model_path, now_ns)?);
+        std::fs::remove_file(&path)?;
         let (tx, rx) = crossbeam_channel::bounded(1 << 16);
         let p = path.clone();
         let mp = model_path.to_string();
@@ -56,7 +70,7 @@ impl Recorder {
         let e = errors.clone();
         let join = std::thread::Builder::new()
             .name("auspex-recorder".into())
-            .spawn(move || run(w, rx, p, &mp, &e))?;
+            .spawn(move || run(rx, p, named_later, &mp, &e))?;
         Ok(Recorder {
             tx,
             join,
@@ -95,23 +109,69 @@ fn open(
     Ok(w)
 }
 
+/// Records held while a session's name is awaited, at most this many or this long.
+const AWAIT_NAME_RECORDS: usize = 4096;
+const AWAIT_NAME_FOR: Duration = Duration::from_secs(1);
+
+/// The file being written: created with its first record.
+struct Current {
+    w: Option<SessionWriter<BufWriter<File>>>,
+    path: PathBuf,
+    /// Records held until the session's name is known.
+    held: Vec<SessionRecord>,
+    await_name: bool,
+    held_since: Instant,
+}
+
+impl Current {
+    /// Writes `r` (and anything held), creating the file first if needed.
+    fn write(&mut self, r: Option<SessionRecord>, model_path: &str, fail: &mut dyn FnMut(String)) {
+        if self.w.is_none() {
+            match open(&self.path, model_path, crate::clock::now_ns()) {
+                Ok(w) => {
+                    tracing::info!(file = %self.path.display(), "session recording");
+                    self.w = Some(w);
+                }
+                Err(e) => {
+                    fail(format!(
+                        "{}: cannot create the session recording: {e}",
+                        self.path.display()
+                    ));
+                    return;
+                }
+            }
+        }
+        let w = self.w.as_mut().expect("opened above");
+        for r in self.held.drain(..).chain(r) {
+            if let Err(e) = w.append(&r) {
+                fail(format!("{}: write failed: {e}", self.path.display()));
+            }
+        }
+    }
+}
+
 fn run(
-    mut w: SessionWriter<BufWriter<File>>,
     rx: Receiver<RecorderMsg>,
-    mut path: PathBuf,
+    path: PathBuf,
+    named_later: bool,
     model_path: &str,
     live: &AtomicU64,
 ) -> u64 {
     let mut errors = 0u64;
-    let count = |errors: &mut u64| {
-        *errors += 1;
+    let mut fail = |what: String| {
+        errors += 1;
         live.fetch_add(1, Ordering::Relaxed);
+        tracing::error!(error = %what, "session recording");
+    };
+    let mut cur = Current {
+        w: None,
+        path,
+        held: Vec::new(),
+        await_name: named_later,
+        held_since: Instant::now(),
     };
     let mut last = Instant::now();
     let mut dirty = false;
-    // Records in the current file: a file left without any (the next session never came) is
-    // removed at the end rather than left as an empty recording.
-    let mut written = 0u64;
     let period = Duration::from_millis(100);
     loop {
         let msg = rx.recv_timeout(
@@ -122,41 +182,51 @@ fn run(
         let mut flush = false;
         match msg {
             Ok(RecorderMsg::Record(r)) => {
-                written += 1;
-                if let Err(e) = w.append(&r) {
-                    count(&mut errors);
-                    tracing::error!(file = %path.display(), error = %e, "session recording: write failed");
+                if cur.await_name && cur.w.is_none() && cur.held.len() < AWAIT_NAME_RECORDS {
+                    if cur.held.is_empty() {
+                        cur.held_since = Instant::now();
+                    }
+                    cur.held.push(r);
+                } else {
+                    cur.write(Some(r), model_path, &mut fail);
+                    dirty = true;
                 }
-                dirty = true;
             }
             Ok(RecorderMsg::Flush) => flush = true,
-            Ok(RecorderMsg::Rename(to)) => match std::fs::rename(&path, &to) {
-                Ok(()) => {
-                    tracing::info!(file = %to.display(), "session recording");
-                    path = to;
-                }
-                Err(e) => {
-                    count(&mut errors);
-                    tracing::error!(from = %path.display(), to = %to.display(), error = %e, "session recording: cannot rename; recording continues under the old name");
-                }
-            },
-            Ok(RecorderMsg::Rotate(to)) => {
-                if let Err(e) = w.flush() {
-                    count(&mut errors);
-                    tracing::error!(file = %path.display(), error = %e, "session recording: flush failed");
-                }
-                match open(&to, model_path, crate::clock::now_ns()) {
-                    Ok(nw) => {
-                        tracing::info!(closed = %path.display(), "session recording closed; the next session records to a new file");
-                        w = nw;
-                        path = to;
-                        written = 0;
+            Ok(RecorderMsg::Rename(to)) => {
+                cur.await_name = false;
+                if cur.w.is_some() {
+                    match std::fs::rename(&cur.path, &to) {
+                        Ok(()) => {
+                            tracing::info!(file = %to.display(), "session recording renamed");
+                            cur.path = to;
+                        }
+                        Err(e) => fail(format!(
+                            "cannot rename {} to {}: {e}; recording continues under the old name",
+                            cur.path.display(),
+                            to.display()
+                        )),
                     }
-                    Err(e) => {
-                        count(&mut errors);
-                        tracing::error!(file = %to.display(), error = %e, "session recording: cannot create the next file; recording continues in the current one");
-                    }
+                } else {
+                    cur.path = to;
                 }
+                if !cur.held.is_empty() {
+                    cur.write(None, model_path, &mut fail);
+                    dirty = true;
+                }
+            }
+            Ok(RecorderMsg::Rotate { to, named_later }) => {
+                if !cur.held.is_empty() {
+                    cur.write(None, model_path, &mut fail);
+                }
+                if let Some(mut w) = cur.w.take() {
+                    if let Err(e) = w.flush() {
+                        fail(format!("{}: flush failed: {e}", cur.path.display()));
+                    }
+                    tracing::info!(closed = %cur.path.display(), "session recording closed; the next session records to a new file");
+                }
+                cur.path = to;
+                cur.await_name = named_later;
                 dirty = false;
                 last = Instant::now();
                 continue;
@@ -164,10 +234,16 @@ fn run(
             Err(RecvTimeoutError::Timeout) => {}
             Err(RecvTimeoutError::Disconnected) => break,
         }
+        // A name that does not come (no SessionStart): record under the provisional one.
+        if !cur.held.is_empty() && cur.held_since.elapsed() >= AWAIT_NAME_FOR {
+            cur.write(None, model_path, &mut fail);
+            dirty = true;
+        }
         if dirty && (flush || last.elapsed() >= period) {
-            if let Err(e) = w.flush() {
-                count(&mut errors);
-                tracing::error!(file = %path.display(), error = %e, "session recording: flush failed");
+            if let Some(w) = cur.w.as_mut() {
+                if let Err(e) = w.flush() {
+                    fail(format!("{}: flush failed: {e}", cur.path.display()));
+                }
             }
             dirty = false;
             last = Instant::now();
@@ -175,13 +251,13 @@ fn run(
             last = Instant::now();
         }
     }
-    if let Err(e) = w.flush() {
-        count(&mut errors);
-        tracing::error!(file = %path.display(), error = %e, "session recording: final flush failed");
+    if !cur.held.is_empty() {
+        cur.write(None, model_path, &mut fail);
     }
-    drop(w);
-    if written == 0 {
-        let _ = std::fs::remove_file(&path);
+    if let Some(mut w) = cur.w.take() {
+        if let Err(e) = w.flush() {
+            fail(format!("{}: final flush failed: {e}", cur.path.display()));
+        }
     }
     errors
 }

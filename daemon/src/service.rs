@@ -217,12 +217,16 @@ pub async fn start(cfg: DaemonConfig) -> Result<Running, StartError> {
                 .unwrap_or(0);
             let path = resolve_path(p, now_s);
             Some(
-                Recorder::start(path.clone(), &model_label, crate::clock::now_ns()).map_err(
-                    |cause| StartError::Recording {
-                        path: path.clone(),
-                        cause,
-                    },
-                )?,
+                Recorder::start(
+                    path.clone(),
+                    &model_label,
+                    crate::clock::now_ns(),
+                    p.is_dir(),
+                )
+                .map_err(|cause| StartError::Recording {
+                    path: path.clone(),
+                    cause,
+                })?,
             )
         }
         None => None,

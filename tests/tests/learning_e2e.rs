@@ -472,6 +472,17 @@ fn three_sessions_through_one_daemon_are_three_recordings_and_three_summaries() 
             );
         }
         datasets.push(data);
+        // The folder holds only named recordings, never an empty or provisional one.
+        std::thread::sleep(Duration::from_millis(150));
+        for f in std::fs::read_dir(&rec_dir).unwrap() {
+            let n = f.unwrap().file_name().to_string_lossy().into_owned();
+            assert!(
+                ["alpha-", "beta-", "gamma-"]
+                    .iter()
+                    .any(|p| n.starts_with(p)),
+                "after {name}: {n}"
+            );
+        }
     }
     let st = status(&ctx, &ep.control);
     assert_eq!(st.health.unwrap().duplicate_messages, 0);

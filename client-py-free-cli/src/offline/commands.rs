@@ -159,6 +159,7 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
         },
     };
     let quiet = args.quiet;
+    let t_all = std::time::Instant::now();
     let (mut data, report) = source.load(opts.window_s)?;
     eprintln!("{report}");
     order_stimuli(&mut data, &args.stimulus_order, source)?;
@@ -196,15 +197,15 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
             println!("{last} (--cells for the table)");
         }
     }
+    let cells_s = t0.elapsed().as_secs_f64();
     eprintln!(
-        "fitted {} units × {} stimuli ({} cells, {} bins of {} ms) in {:.1} s; {} trials without a label were not used",
+        "fitted {} units × {} stimuli ({} cells, {} bins of {} ms) in {cells_s:.1} s; {} without a label were not used",
         spec.units.len(),
         spec.stimuli.len(),
         spec.cells.len(),
         spec.n_bins,
         args.bin_ms,
-        t0.elapsed().as_secs_f64(),
-        plan.unlabelled_trials
+        crate::counted(plan.unlabelled_trials as u64, "trial", "trials"),
     );
     if args.calibration_folds > 0 {
         match calibrate_spec(&data, &opts, &spec.stimuli, args) {
@@ -238,7 +239,13 @@ pub fn fit_cmd(source: &Source, out: &Path, args: &FitArgs) -> anyhow::Result<Mo
     }
     let model = Model::new(spec.clone())?;
     save_model(out, &spec, &source.canonical())?;
-    eprintln!("model written to {}", out.display());
+    eprintln!(
+        "model written to {} ({:.1} s in all: the cells {:.1} s, calibration and the rest {:.1} s)",
+        out.display(),
+        t_all.elapsed().as_secs_f64(),
+        cells_s,
+        t_all.elapsed().as_secs_f64() - cells_s
+    );
     Ok(model)
 }
 
@@ -599,11 +606,11 @@ pub fn decode_prequential_cmd(
         .count();
     let acc = correct as f64 / labelled.len().max(1) as f64;
     println!(
-        "prequential {}: {} models applied ({} from the recording's swap points), {} trials decided, accuracy {:.1}% of {} labelled ({} correct); {} trials opened before the first model (learned from, not decoded); {} labelled trials learned",
+        "prequential {}: {} applied ({} from the recording's swap points), {} decided, accuracy {:.1}% of {} labelled ({} correct); {} trials opened before the first model (learned from, not decoded); {} labelled trials learned",
         args.decoder.name(),
-        run.models.len(),
+        crate::counted(run.models.len() as u64, "model", "models"),
         if run.recorded_swaps { "all" } else { "none" },
-        run.decisions.len(),
+        crate::counted(run.decisions.len() as u64, "trial", "trials"),
         100.0 * acc,
         labelled.len(),
         correct,

@@ -244,11 +244,15 @@ impl std::fmt::Display for ReadReport {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         write!(
             f,
-            "read {} spikes and {} trials; {} spikes fell in no trial window; {} units had no spikes in any window",
-            self.spikes,
-            self.trials,
-            self.spikes_outside_windows,
-            self.units_without_window_spikes.len()
+            "read {} and {}; {} fell in no trial window; {} no spikes in any window",
+            crate::counted(self.spikes as u64, "spike", "spikes"),
+            crate::counted(self.trials as u64, "trial", "trials"),
+            crate::counted(self.spikes_outside_windows as u64, "spike", "spikes"),
+            crate::counted(
+                self.units_without_window_spikes.len() as u64,
+                "unit had",
+                "units had"
+            )
         )?;
         if !self.units_without_window_spikes.is_empty() {
             let list: Vec<String> = self

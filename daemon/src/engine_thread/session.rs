@@ -223,7 +223,10 @@ impl EngineThread {
                 Some(dir) => dir.join(format!("next-session-{}.apxs", utc_stamp(unix_now_s()))),
                 None => numbered_sibling(std::path::Path::new(&self.recording_path)),
             };
-            let _ = r.send(RecorderMsg::Rotate(next.clone()));
+            let _ = r.send(RecorderMsg::Rotate {
+                to: next.clone(),
+                named_later: self.record_dir.is_some(),
+            });
             self.recording_path = next.display().to_string();
         }
     }
