@@ -169,8 +169,18 @@ fn shuffle_null_finds_nothing_in_data_without_stimulus_information() {
     );
 }
 
-/// Checks that every non-void element is closed in order (the report is written by hand).
+/// Checks that every non-void element is closed in order (the report is written by hand),
+/// and that no figure drew a data point outside its axes (`data-outside` on its SVG).
 fn assert_well_formed(html: &str) {
+    if let Some(i) = html.find("data-outside") {
+        let from = html[..i].rfind("<svg").unwrap_or(0);
+        let title = html[from..]
+            .split("class=\"tt\"")
+            .nth(1)
+            .map(|t| t.chars().take(120).collect::<String>())
+            .unwrap_or_default();
+        panic!("a figure draws points outside its axes: {}", title);
+    }
     const VOID: [&str; 4] = ["meta", "br", "hr", "img"];
     let mut stack: Vec<String> = Vec::new();
     let mut rest = html;

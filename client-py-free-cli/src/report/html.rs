@@ -51,6 +51,9 @@ struct Plot {
     y: (f64, f64),
     svg: String,
     xticks: bool,
+    /// Data points drawn outside the axes (a figure that hides what it should show); the SVG
+    /// then says how many (`data-outside`), which the report's tests refuse.
+    outside: usize,
 }
 
 fn nice_ticks(lo: f64, hi: f64, n: usize) -> Vec<f64> {
@@ -94,6 +97,17 @@ impl Plot {
             y,
             svg: String::new(),
             xticks: true,
+            outside: 0,
+        }
+    }
+    /// Counts (x, y) if it lies outside the axes.
+    fn check(&mut self, x: f64, y: f64) {
+        let inside = |v: f64, (a, b): (f64, f64)| {
+            let tol = 1e-9 * (b - a).abs().max(1.0);
+            v >= a.min(b) - tol && v <= a.max(b) + tol
+        };
+        if !(inside(x, self.x) && inside(y, self.y)) {
+            self.outside += 1;
         }
     }
     fn sx(&self, x: f64) -> f64 {
@@ -162,6 +176,9 @@ impl Plot {
         if pts.is_empty() {
             return;
         }
+        for &(x, y) in pts {
+            self.check(x, y);
+        }
         let d: Vec<String> = pts
             .iter()
             .map(|(x, y)| format!("{:.1},{:.1}", self.sx(*x), self.sy(*y)))
@@ -208,6 +225,7 @@ impl Plot {
         }
     }
     fn dot(&mut self, x: f64, y: f64, r: f64, col: &str, title: &str) {
+        self.check(x, y);
         let _ = write!(
             self.svg,
             r##"<circle cx="{:.1}" cy="{:.1}" r="{r}" fill="{col}"><title>{}</title></circle>"##,
@@ -226,7 +244,8 @@ impl Plot {
         };
         let _ = write!(
             self.svg,
-            r##"<text x="{px:.1}" y="{:.1}" class="tk" fill="{col}" text-anchor="{anchor}">{}</text>"##,
+            // An inline style: the `tk` class's fill would win over a fill attribute.
+            r##"<text x="{px:.1}" y="{:.1}" class="tk" style="fill:{col}" text-anchor="{anchor}">{}</text>"##,
             self.sy(y),
             esc(s)
         );
@@ -261,7 +280,12 @@ impl Plot {
     }
     fn finish(self) -> String {
         format!(
-            r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" viewBox="0 0 {w} {h}">{}</svg>"#,
+            r#"<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" viewBox="0 0 {w} {h}"{}>{}</svg>"#,
+            if self.outside > 0 {
+                format!(r#" data-outside="{}""#, self.outside)
+            } else {
+                String::new()
+            },
             self.svg,
             w = self.w,
             h = self.h
@@ -299,11 +323,18 @@ fn heatmap(title: &str, conf: &[Vec<u64>], names: &[String]) -> String {
                 100.0 * p
             );
             if cell >= 22.0 && c > 0 {
-                // Light text on dark cells.
-                let ink = if p > 0.55 { "#fff" } else { "#222" };
+                // Light text on dark cells, by the cell's luminance (Rec. 709 weights); an
+                // inline style, since the `tk` class's fill would win over a fill attribute.
+                let v = shade as f64 / 255.0;
+                let lum = if i == j {
+                    0.2126 * v + 0.7152 * v + 0.0722
+                } else {
+                    0.2126 + 0.7152 * v + 0.0722 * v
+                };
+                let ink = if lum < 0.55 { "#fff" } else { "#222" };
                 let _ = write!(
                     s,
-                    r##"<text x="{:.1}" y="{:.1}" class="tk" text-anchor="middle" fill="{ink}">{c}</text>"##,
+                    r##"<text x="{:.1}" y="{:.1}" class="tk" text-anchor="middle" style="fill:{ink}">{c}</text>"##,
                     left + (j as f64 + 0.5) * cell,
                     top + (i as f64 + 0.6) * cell
                 );
@@ -431,7 +462,9 @@ fn accuracy_plot(v: &Validation) -> String {
 }
 
 fn tradeoff_plot(v: &Validation) -> String {
-    let mut p = Plot::new(420.0, 320.0, (0.0, v.window_ms), (0.0, 1.0));
+    // A little room past the window end and 100%: the count-only decoder's points sit there,
+    // and a dot on the border reads as cut.
+    let mut p = Plot::new(420.0, 320.0, (0.0, v.window_ms * 1.04), (0.0, 1.03));
     p.axes(
         "Decisions: accuracy against mean decision time",
         "mean decision time (ms)",
@@ -475,15 +508,28 @@ fn tradeoff_plot(v: &Validation) -> String {
 }
 
 fn calibration_plot(v: &Validation) -> String {
-    let mut p = Plot::new(460.0, 360.0, (0.0, 1.0), (0.0, 1.0));
+    let sets = &v.calibration.reliability;
+    // Bins of equal counts, and the axes zoomed to where they lie (with the diagonal): the
+    // decisions' confidences crowd above θ, and fixed bins of 0.1 drew one point in a corner.
+    let lowest = sets
+        .iter()
+        .flat_map(|s| s.equal_mass.iter())
+        .map(|b| b.lo.min(b.confidence))
+        .fold(1.0f64, f64::min);
+    let from = ((lowest - 0.02) * 20.0).floor().max(0.0) / 20.0;
+    let mut p = Plot::new(460.0, 360.0, (from, 1.0), (from, 1.0));
     p.axes(
         "Reliability: stated confidence against held-out accuracy",
-        "top posterior (bins of 0.1 with ≥ 5 trials)",
+        "top posterior (10 bins of equal counts)",
         "accuracy (95% interval)",
     );
-    p.line(&[(0.0, 0.0), (1.0, 1.0)], REFERENCE, 1.0, true);
-    p.text(0.62, 0.06, "dashed: perfect calibration", REFERENCE);
-    let sets = &v.calibration.reliability;
+    p.line(&[(from, from), (1.0, 1.0)], REFERENCE, 1.0, true);
+    p.text(
+        from + 0.62 * (1.0 - from),
+        from + 0.06 * (1.0 - from),
+        "dashed: perfect calibration",
+        REFERENCE,
+    );
     let shown: Vec<usize> = [0, sets.len().saturating_sub(1)]
         .into_iter()
         .filter(|&i| i < sets.len())
@@ -494,8 +540,7 @@ fn calibration_plot(v: &Validation) -> String {
     for (k, &i) in shown.iter().enumerate() {
         let set = &sets[i];
         let col = DECODER_COLOURS[k % 3];
-        // Bins of fewer than 5 trials say little and would dominate the picture.
-        let bins: Vec<_> = set.bins.iter().filter(|b| b.n >= 5).collect();
+        let bins: Vec<_> = set.equal_mass.iter().collect();
         let pts: Vec<(f64, f64)> = bins.iter().map(|b| (b.confidence, b.accuracy)).collect();
         p.line(&pts, col, 1.5, false);
         for b in bins {
@@ -523,7 +568,7 @@ fn calibration_plot(v: &Validation) -> String {
         }
         legend.push((format!("{} (ECE {:.3})", set.when, set.ece), col));
     }
-    p.legend_at(&legend, 0.02, 0.98);
+    p.legend_at(&legend, from + 0.02 * (1.0 - from), 0.98);
     p.finish()
 }
 
@@ -531,7 +576,19 @@ const METHOD_COLOURS: [&str; 4] = ["#999999", "#0072B2", "#E69F00", "#009E73"];
 
 /// Realised held-out accuracy against the promise, per recalibration method.
 fn promise_plot(v: &Validation) -> String {
-    let mut p = Plot::new(460.0, 360.0, (0.78, 1.0), (0.78, 1.0));
+    // Down to the lowest accuracy shown (a weak model's sit below 0.78, and must be seen), and
+    // a little past θ = 0.999, where the methods' points stand side by side.
+    let ylow = v
+        .calibration
+        .methods
+        .iter()
+        .flat_map(|m| m.record.iter())
+        .filter(|e| e.threshold >= 0.8 && e.early > 0)
+        .map(|e| e.early_accuracy().0 - 0.02)
+        .fold(0.78f64, f64::min)
+        .max(0.0);
+    let ylow = (ylow * 50.0).floor() / 50.0;
+    let mut p = Plot::new(460.0, 360.0, (0.78, 1.006), (ylow, 1.0));
     p.axes(
         "Promise kept? threshold against held-out accuracy",
         "threshold θ (the promised accuracy)",
@@ -555,7 +612,7 @@ fn promise_plot(v: &Validation) -> String {
         for e in pts {
             let (acc, lo, hi) = e.early_accuracy();
             p.line(
-                &[(e.threshold + dx, lo.max(0.78)), (e.threshold + dx, hi)],
+                &[(e.threshold + dx, lo.max(ylow)), (e.threshold + dx, hi)],
                 col,
                 1.0,
                 false,
@@ -720,6 +777,21 @@ fn learning_plots(v: &Validation) -> String {
         .map(|p| (p.trials_per_stimulus as f64, p.info_bits))
         .collect();
     b.line(&pts, DECODER_COLOURS[0], 2.0, false);
+    // A marker per measured size, as on the accuracy curve: the line joins measurements.
+    for (lp, &(x, y)) in lc.iter().zip(&pts) {
+        b.dot(
+            x,
+            y,
+            3.0,
+            DECODER_COLOURS[0],
+            &format!(
+                "{} trials per stimulus: {:.3} ± {:.3} bits",
+                lp.trials_per_stimulus,
+                lp.info_bits,
+                1.96 * lp.info_se_bits
+            ),
+        );
+    }
     a.finish() + &b.finish()
 }
 
@@ -821,10 +893,11 @@ fn units_plot(v: &Validation) -> String {
 }
 
 fn trajectories_plot(v: &Validation, x: &Extras) -> String {
-    // One example trial per stimulus (the first few stimuli), order-statistics decoder.
+    // One example trial per stimulus (up to 16: every stimulus the legend lists has its
+    // panel), order-statistics decoder.
     let ns = v.stimuli.len();
     let mut out = String::new();
-    for s in 0..ns.min(4) {
+    for s in 0..ns.min(16) {
         let Some(i) = x.labels.iter().position(|&l| l == s) else {
             continue;
         };
@@ -858,7 +931,15 @@ fn trajectories_plot(v: &Validation, x: &Extras) -> String {
         out += &p.finish();
     }
     // Which colour is which stimulus.
-    let _ = write!(out, "<div class=sub style=\"width:100%\">");
+    let _ = write!(
+        out,
+        "<div class=sub style=\"width:100%\">{}",
+        if ns > 16 {
+            format!("(example trials of the first 16 of the {ns} stimuli) ")
+        } else {
+            String::new()
+        }
+    );
     for (k, name) in v.stimuli.iter().enumerate() {
         let _ = write!(
             out,
@@ -1123,12 +1204,12 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
     let _ = write!(s, "<p class=sub>Mutual information between presented and window-end decoded stimulus: plug-in {:.3} bits, Panzeri–Treves bias correction {:+.3} bits (only a positive first-order bias is subtracted), corrected {:.3} bits (kept within [0, H(presented)]). Null: labels permuted within each training fold only (held-out labels untouched), cells refitted on the shuffled labels with the family and bandwidth chosen on the real fold, held-out trials decoded at the window end; p = (1 + #null ≥ observed) / (1 + shuffles).</p><div class=row>",
         i.plugin_bits, i.bits - i.plugin_bits, i.bits);
     s += &null_plot(
-        "population information: shuffle null (grey) and observed (red)",
+        "population information: shuffle null (grey bars) and observed (vermillion line)",
         &i.null_bits,
         i.bits,
     );
     s += &units_plot(v);
-    s += "</div><h2>Do decisions keep their promise?</h2><p class=sub>Deciding at threshold θ promises to be right at least a share θ of the time. Below, the order-statistics decoder's decisions on held-out trials: realised accuracy with its 95% Clopper–Pearson interval for every threshold, flagged where the whole interval lies below the promise; and the reliability of the stated confidence (top posterior, binned by 0.1) at decision time and at the window end, with the expected calibration error (ECE: the trial-weighted mean gap between confidence and accuracy). Points below the diagonal are over-confident.</p><div class=row>";
+    s += "</div><h2>Do decisions keep their promise?</h2><p class=sub>Deciding at threshold θ promises to be right at least a share θ of the time. Below, the order-statistics decoder's decisions on held-out trials: realised accuracy with its 95% Clopper–Pearson interval for every threshold, flagged where the whole interval lies below the promise; and the reliability of the stated confidence (top posterior, in 10 bins of equal counts so the crowded range above θ reads) at decision time and at the window end, with the expected calibration error (ECE over bins of 0.1: the trial-weighted mean gap between confidence and accuracy). Points below the diagonal are over-confident.</p><div class=row>";
     s += &calibration_plot(v);
     s += "<table><tr><th>threshold θ (the promise)</th><th>decisions taken by the threshold: held-out accuracy [95%]</th><th></th></tr>";
     for p in &v.calibration.promises {
@@ -1166,7 +1247,7 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
         for m in &v.calibration.methods {
             let _ = write!(
                 s,
-                "<th>{} — threshold decisions right [95%] · all decisions · median decision time</th>",
+                "<th>{}</th>",
                 esc(if m.method == "none" {
                     "raw posterior"
                 } else {
@@ -1188,7 +1269,7 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
                 let (ea, elo, ehi) = e.early_accuracy();
                 let _ = write!(
                     s,
-                    "<td class={}>{}/{} by threshold: {:.1}% [{:.1}, {:.1}] · all: {:.1}% · {:.0} ms{}</td>",
+                    "<td class={}>{}/{} = {:.1}%<br><span class=sub>[{:.1}, {:.1}] · all {:.1}% · {:.0} ms{}</span></td>",
                     if kept { "ok" } else { "warn" },
                     e.early_correct,
                     e.early,
@@ -1207,18 +1288,27 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
         }
         s += "<tr><td>held-out log loss</td>";
         for m in &v.calibration.methods {
+            // The raw posterior has no factor and no floor: say so rather than "β 1–1; ε 0–0".
+            let beta = if m.method == "none" {
+                "no β".to_string()
+            } else if (m.factor_range.1 - m.factor_range.0).abs() < 5e-4 {
+                format!("β {:.3}", m.factor_range.0)
+            } else {
+                format!("β {:.3}–{:.3}", m.factor_range.0, m.factor_range.1)
+            };
+            let eps = if m.floor_range.1 <= 0.0 {
+                String::new()
+            } else {
+                format!(" · ε {:.3}–{:.3}", m.floor_range.0, m.floor_range.1)
+            };
             let _ = write!(
                 s,
-                "<td>{:.4} nats per bin; β {:.3}–{:.3}; ε {}–{}; ECE at decision {:.3}</td>",
+                "<td>{:.4} nats per bin<br><span class=sub>{beta}{eps} · ECE at decision {:.3}</span></td>",
                 m.log_loss,
-                m.factor_range.0,
-                m.factor_range.1,
-                m.floor_range.0,
-                m.floor_range.1,
                 m.at_decision.ece
             );
         }
-        s += "</tr></table><p class=sub>(×r): median decision time divided by the raw posterior's at the same realised accuracy (interpolated along its trade-off).</p>";
+        s += "</tr></table><p class=sub>Each cell: the decisions the threshold took, right of all it took = their accuracy; below, its 95% Clopper–Pearson interval, the accuracy of all decisions (window-end ones included) and the median decision time; (×r): that time divided by the raw posterior's at the same realised accuracy (interpolated along its trade-off). Green: the promise kept; red: broken. β ranges over the outer folds' fits.</p>";
     }
     if !v.learning_curve.is_empty() {
         s += "</div><h2>How many trials: the learning curve</h2><p class=sub>The same folds, with each fold's training trials cut to n per stimulus (a seeded random subset), the model fitted on them as <code>auspex fit</code> fits and the fold's untouched held-out trials decoded at the window end (order statistics, all units). Bands: 95% Clopper–Pearson interval of accuracy; ±1.96 standard errors of the information. It answers how many trials per stimulus a session of this kind needs.</p><div class=row>";
@@ -1239,7 +1329,7 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
         }
         s += "</table>";
     }
-    s += "</div><h2>Units</h2><p class=sub>Ranked by single-unit information (window-end decoding of held-out trials with that unit alone). Open a unit for its raster, PSTH with the fitted density, count distributions, KS plot and per-stimulus table.</p>";
+    s += "</div><h2>Units</h2><p class=sub>Ranked by single-unit information (window-end decoding of held-out trials with that unit alone). Open a unit for its raster, PSTH with the fitted density, count distributions, KS plot and per-stimulus table. <b>fit flags</b>: how many of the unit's cells (one per stimulus) fall outside the 95% band of the time-rescaling test — their spike times are not described well by the fitted count and density; <b>p</b> in red: the unit's information is not above its label-shuffle null at 5%.</p>";
     s += "<table><tr><th>rank</th><th>unit</th><th>accuracy</th><th>information (bits)</th><th>null 95%</th><th>p</th><th>families</th><th>fit flags</th></tr>";
     for (r, u) in v.units_ranked.iter().enumerate() {
         let mut fams: Vec<&str> = u.cells.iter().map(|c| c.family.as_str()).collect();

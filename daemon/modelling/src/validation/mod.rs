@@ -217,10 +217,61 @@ pub fn reliability(points: &[(f64, bool)], n_bins: usize) -> (Vec<ReliabilityBin
     (bins, ece)
 }
 
+/// The same points in `n_bins` bins of (nearly) equal counts, in order of confidence: where
+/// confidences crowd (decisions all above θ) the bins are narrow, so a reliability diagram
+/// shows points along the whole range instead of one in a corner. (The ECE stays that of
+/// [`reliability`]'s equal-width bins.)
+pub fn reliability_equal_mass(points: &[(f64, bool)], n_bins: usize) -> Vec<ReliabilityBin> {
+    let mut sorted: Vec<(f64, bool)> = points
+        .iter()
+        .map(|&(c, r)| (c.clamp(0.0, 1.0), r))
+        .collect();
+    sorted.sort_by(|a, b| a.0.total_cmp(&b.0));
+    let n = sorted.len();
+    let k = n_bins.max(1).min(n.max(1));
+    (0..k)
+        .filter_map(|b| {
+            let chunk = &sorted[b * n / k..(b + 1) * n / k];
+            if chunk.is_empty() {
+                return None;
+            }
+            let m = chunk.len() as u64;
+            let right = chunk.iter().filter(|x| x.1).count() as u64;
+            let (lo, hi) = crate::stats::clopper_pearson(right, m, 0.05);
+            Some(ReliabilityBin {
+                from: chunk[0].0,
+                to: chunk[chunk.len() - 1].0,
+                n: m,
+                confidence: chunk.iter().map(|x| x.0).sum::<f64>() / m as f64,
+                accuracy: right as f64 / m as f64,
+                lo,
+                hi,
+            })
+        })
+        .collect()
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
     use auspex_engine::count::CountParams;
+
+    #[test]
+    fn equal_mass_bins_hold_equal_counts_in_confidence_order() {
+        let pts: Vec<(f64, bool)> = (0..100)
+            .map(|i| (0.9 + i as f64 / 1000.0, i % 3 != 0))
+            .collect();
+        let bins = reliability_equal_mass(&pts, 10);
+        assert_eq!(bins.len(), 10);
+        assert!(bins.iter().all(|b| b.n == 10));
+        assert!(bins.windows(2).all(|w| w[0].to <= w[1].from));
+        let right: u64 = bins
+            .iter()
+            .map(|b| (b.accuracy * b.n as f64).round() as u64)
+            .sum();
+        assert_eq!(right, pts.iter().filter(|p| p.1).count() as u64);
+        assert!(reliability_equal_mass(&[], 10).is_empty());
+    }
 
     #[test]
     fn reliability_and_ece_match_a_hand_computed_case() {

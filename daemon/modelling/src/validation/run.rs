@@ -114,6 +114,22 @@ pub struct ReliabilitySet {
     pub bins: Vec<crate::validation::ReliabilityBin>,
     /// Expected calibration error.
     pub ece: f64,
+    /// The same points in 10 bins of equal counts (what the report's diagram draws).
+    pub equal_mass: Vec<crate::validation::ReliabilityBin>,
+}
+
+impl ReliabilitySet {
+    /// The set of (confidence, right) points `when`: 10 equal-width bins with the ECE, and 10
+    /// equal-count bins.
+    pub fn of(when: String, points: &[(f64, bool)]) -> Self {
+        let (bins, ece) = crate::validation::reliability(points, 10);
+        ReliabilitySet {
+            when,
+            bins,
+            ece,
+            equal_mass: crate::validation::reliability_equal_mass(points, 10),
+        }
+    }
 }
 
 /// Whether deciding at a threshold keeps its promise on held-out trials.
@@ -499,12 +515,29 @@ fn unit_figures(
             z.sort_by(|a, b| a.total_cmp(b));
             let n = z.len() as f64;
             let crit = ks_critical(z.len(), 0.05);
+            // The deviation the KS statistic takes at each interval: the larger of the ECDF's
+            // step above, (i+1)/n − q, and below, q − i/n — signed. Thinned to about 200
+            // points, always keeping the largest, so a flagged cell's curve leaves the band.
+            let dev: Vec<f64> = z
+                .iter()
+                .enumerate()
+                .map(|(i, &q)| {
+                    let (up, down) = ((i as f64 + 1.0) / n - q, q - i as f64 / n);
+                    if up >= down {
+                        up
+                    } else {
+                        -down
+                    }
+                })
+                .collect();
+            let worst = (0..dev.len())
+                .max_by(|&a, &b| dev[a].abs().total_cmp(&dev[b].abs()))
+                .unwrap_or(0);
             let step = (z.len() / 200).max(1);
             Some(
-                z.iter()
-                    .enumerate()
-                    .step_by(step)
-                    .map(|(i, &q)| (q, (((i as f64 + 0.5) / n - q) / crit).clamp(-1.6, 1.6)))
+                (0..z.len())
+                    .filter(|&i| i % step == 0 || i == worst)
+                    .map(|i| (z[i], (dev[i] / crit).clamp(-1.6, 1.6)))
                     .collect(),
             )
         })
@@ -1240,7 +1273,6 @@ fn calibration(
     threshold: f64,
     order_stats: &DecoderReport,
 ) -> Calibration {
-    use crate::validation::reliability;
     let at_bin = |b: usize| -> Vec<(f64, bool)> {
         traj.iter()
             .zip(labels)
@@ -1260,29 +1292,17 @@ fn calibration(
             (tr[b * ns + s] as f64, s == l)
         })
         .collect();
-    let (bins, ece) = reliability(&decided, 10);
-    sets.push(ReliabilitySet {
-        when: format!("at decision (θ = {threshold})"),
-        bins,
-        ece,
-    });
+    sets.push(ReliabilitySet::of(
+        format!("at decision (θ = {threshold})"),
+        &decided,
+    ));
     for t in RELIABILITY_TIMES_MS {
         let b = (t / bw_ms).round() as usize;
         if b >= 1 && b < nb {
-            let (bins, ece) = reliability(&at_bin(b - 1), 10);
-            sets.push(ReliabilitySet {
-                when: format!("at {t:.0} ms"),
-                bins,
-                ece,
-            });
+            sets.push(ReliabilitySet::of(format!("at {t:.0} ms"), &at_bin(b - 1)));
         }
     }
-    let (bins, ece) = reliability(&at_bin(nb - 1), 10);
-    sets.push(ReliabilitySet {
-        when: "at window end".into(),
-        bins,
-        ece,
-    });
+    sets.push(ReliabilitySet::of("at window end".into(), &at_bin(nb - 1)));
     let promises = order_stats
         .tradeoff
         .iter()
@@ -1424,7 +1444,7 @@ fn compare_calibrations(
                 (post[s], s == t.label)
             })
             .collect();
-        let (bins, ece) = crate::validation::reliability(&decided, 10);
+
         let range = factors[m]
             .iter()
             .flat_map(|f| f.factors.iter())
@@ -1454,11 +1474,10 @@ fn compare_calibrations(
             record,
             kept,
             met,
-            at_decision: ReliabilitySet {
-                when: format!("at decision (θ = {})", opts.threshold),
-                bins,
-                ece,
-            },
+            at_decision: ReliabilitySet::of(
+                format!("at decision (θ = {})", opts.threshold),
+                &decided,
+            ),
             time_ratio,
         });
     }
