@@ -670,7 +670,14 @@ fn promise_time_plot(v: &Validation) -> String {
         .flat_map(|m| m.record.iter().filter(shown).map(|e| e.median_decision_ms))
         .fold(0.0f64, f64::max)
         .max(10.0);
-    let mut p = Plot::new(460.0, 360.0, (0.0, tmax * 1.05), (0.78, 1.0));
+    // Down to the lowest accuracy shown: a weak model's lie below 0.78 and must be seen.
+    let ylow = methods
+        .iter()
+        .flat_map(|m| m.record.iter().filter(shown).map(|e| e.accuracy() - 0.02))
+        .fold(0.78f64, f64::min)
+        .max(0.0);
+    let ylow = (ylow * 50.0).floor() / 50.0;
+    let mut p = Plot::new(460.0, 360.0, (0.0, tmax * 1.05), (ylow, 1.0));
     p.axes(
         "What a kept promise costs (θ 0.8–0.99)",
         "median decision time (ms)",
