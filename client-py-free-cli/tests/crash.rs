@@ -87,6 +87,16 @@ fn spawn_daemon(
     (child, ingest, control)
 }
 
+/// A child daemon killed however the test ends (a failed assertion must not leave it running).
+struct KillOnDrop(std::process::Child);
+
+impl Drop for KillOnDrop {
+    fn drop(&mut self) {
+        let _ = self.0.kill();
+        let _ = self.0.wait();
+    }
+}
+
 async fn wait_started(control: &str) {
     let t0 = Instant::now();
     while status(control).await.is_err() {
@@ -108,14 +118,6 @@ fn ctrl_c_on_send_ends_the_session_and_a_rerun_is_a_new_one() {
     let dir = tempfile::tempdir().unwrap();
     let (daemon, ingest, control) =
         spawn_daemon(&["--learn-window-ms".as_ref(), "100".as_ref()], dir.path());
-    // Killed however the test ends (a failed assertion must not leave a daemon running).
-    struct KillOnDrop(std::process::Child);
-    impl Drop for KillOnDrop {
-        fn drop(&mut self) {
-            let _ = self.0.kill();
-            let _ = self.0.wait();
-        }
-    }
     let _daemon = KillOnDrop(daemon);
     let rt = tokio::runtime::Runtime::new().unwrap();
     rt.block_on(wait_started(&control));
@@ -348,13 +350,6 @@ fn send_reports_what_the_daemon_made_of_the_lines() {
         &["--model".as_ref(), model_path.as_os_str()],
         &dir.path().join("r.apxs"),
     );
-    struct KillOnDrop(std::process::Child);
-    impl Drop for KillOnDrop {
-        fn drop(&mut self) {
-            let _ = self.0.kill();
-            let _ = self.0.wait();
-        }
-    }
     let _daemon = KillOnDrop(daemon);
     let rt = tokio::runtime::Runtime::new().unwrap();
     rt.block_on(wait_started(&control));

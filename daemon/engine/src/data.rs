@@ -140,11 +140,11 @@ impl Dataset {
         v
     }
 
-    /// This dataset with its stimuli in the order they are met ([`Dataset::stimuli_as_met`]).
-    pub fn in_met_order(&self) -> Dataset {
-        let mut d = self.clone();
-        d.stimulus_order = d.stimuli_as_met();
-        d
+    /// This dataset with its stimuli in the order they are met ([`Dataset::stimuli_as_met`])
+    /// — taken by value, so the spikes are not copied.
+    pub fn in_met_order(mut self) -> Dataset {
+        self.stimulus_order = self.stimuli_as_met();
+        self
     }
 
     /// The last tick any trial window or spike touches, given the window length in ticks.

@@ -592,8 +592,8 @@ mod tests {
         out
     }
 
-    #[test]
-    fn learned_plan_is_the_offline_plan_of_the_same_trials() {
+    /// A simulated session of the two-unit model, and learning options for its 50 ms window.
+    fn two_unit_session() -> (Dataset, LearnOptions) {
         let m = two_unit_model();
         let data = simulate(
             &m,
@@ -612,6 +612,12 @@ mod tests {
             },
             ..LearnOptions::default()
         };
+        (data, opts)
+    }
+
+    #[test]
+    fn learned_plan_is_the_offline_plan_of_the_same_trials() {
+        let (data, opts) = two_unit_session();
         let window = 50_000;
         let windows = collect_all(&data, window);
         assert_eq!(windows.len(), data.trials.len());
@@ -627,24 +633,7 @@ mod tests {
 
     #[test]
     fn learned_calibration_is_the_offline_calibration() {
-        let m = two_unit_model();
-        let data = simulate(
-            &m,
-            &SimOptions {
-                trials_per_stimulus: 12,
-                gap_s: (0.01, 0.03),
-                spontaneous_hz: 5.0,
-                tick_rate_hz: 1e6,
-                seed: 4,
-            },
-        );
-        let opts = LearnOptions {
-            fit: FitOptions {
-                window_s: 0.05,
-                ..FitOptions::default()
-            },
-            ..LearnOptions::default()
-        };
+        let (data, opts) = two_unit_session();
         // A sorter's double (two spikes of one unit at one tick) inside a trial's window
         // counts twice in the cells and in the held-out folds alike.
         let mut data = data;
