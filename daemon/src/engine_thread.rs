@@ -166,16 +166,21 @@ pub struct EngineThread {
     engine_gen: u64,
     /// Shard or combiner of a deployment across machines.
     link: Link,
-    /// A combiner's session whose senders all ended, waiting (up to the shard deadline) for
-    /// the shards' last partials before its trials are closed.
+    /// A session whose senders all ended, waiting before it is closed: a combiner's for the
+    /// shards' last partials (up to the shard deadline), a shard's for the task program's last
+    /// trial messages, relayed by its combiner (they may come after its own acquisition's end).
     pending_end: Option<Instant>,
-    /// When a combiner last took a shard's partial.
-    last_partial: Instant,
+    /// When the link last brought something: a combiner a shard's partial, a shard a relay.
+    last_from_link: Instant,
     recorder_errors: Arc<std::sync::atomic::AtomicU64>,
 }
 
 /// Trial messages held while waiting for SessionStart; more are counted as malformed.
 const MAX_HELD_BEFORE_SESSION: usize = 4096;
+/// How long a shard whose acquisition has ended waits, after the last relayed message, for the
+/// task program's end: trial messages come by way of the combiner and may arrive after the
+/// shard's own acquisition has said its last.
+const SHARD_WAITS_FOR_TASK_END: Duration = Duration::from_secs(2);
 /// Ended sessions kept for status.
 const ENDED_KEPT: usize = 64;
 
@@ -277,7 +282,7 @@ impl EngineThread {
             engine_gen: 0,
             link: s.link,
             pending_end: None,
-            last_partial: Instant::now(),
+            last_from_link: Instant::now(),
             recorder_errors: s.recorder_errors,
         };
         t.config.policy = t
@@ -383,14 +388,24 @@ impl EngineThread {
                 Ok(EngineInput::Shutdown) | Err(RecvTimeoutError::Disconnected) => break,
                 Err(RecvTimeoutError::Timeout) => {}
             }
-            if let (Some(t0), Link::Combine { deadline, .. }) = (self.pending_end, &self.link) {
-                // Shards that are alive keep their trials coming (a lost one is given up, and
-                // its trials then finish without it); only a long pause ends the wait early.
-                let open = self
-                    .engine
-                    .as_ref()
-                    .is_some_and(|e| e.open_trials().next().is_some());
-                if !open || t0.max(self.last_partial).elapsed() > *deadline * 10 {
+            if let Some(t0) = self.pending_end {
+                let give_up = match &self.link {
+                    // Shards that are alive keep their trials coming (a lost one is given up,
+                    // and its trials then finish without it); only a long pause ends the wait.
+                    Link::Combine { deadline, .. } => {
+                        let open = self
+                            .engine
+                            .as_ref()
+                            .is_some_and(|e| e.open_trials().next().is_some());
+                        !open || t0.max(self.last_from_link).elapsed() > *deadline * 10
+                    }
+                    // The relayed end of the task program normally ends it first.
+                    Link::Shard { .. } => {
+                        t0.max(self.last_from_link).elapsed() > SHARD_WAITS_FOR_TASK_END
+                    }
+                    Link::None => true,
+                };
+                if give_up {
                     self.pending_end = None;
                     if self.session.is_some() {
                         self.end_session("every sender ended");

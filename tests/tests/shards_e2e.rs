@@ -531,6 +531,75 @@ fn a_stopped_shard_is_named_in_every_frame_and_rejoins_at_the_next_trial() {
     }
 }
 
+/// The task program's last onset reaches a shard by way of the combiner, and may come after
+/// the shard's own acquisition has ended (a race the rig cannot order): the shard waits for
+/// the task's relayed end, so the last trial still completes, equal to offline decoding.
+#[test]
+fn a_shard_takes_the_last_onset_relayed_after_its_acquisition_ended() {
+    let _serial = serial();
+    let f = fixture(2);
+    let rt = runtime();
+    let ctx = zmq::Context::new();
+    let (shards, _, comb) = deploy(&rt, &f, &ctx, 5000.0, [1, 1]);
+    let cep = comb.endpoints.clone();
+    let (stop_sub, sub) = subscriber(&ctx, &cep.publish);
+    std::thread::sleep(Duration::from_millis(300));
+    let socks = sockets(
+        &ctx,
+        &[
+            &shards[0].endpoints.ingest,
+            &shards[1].endpoints.ingest,
+            cep.task_ingest.as_deref().unwrap(),
+        ],
+    );
+    let mut order = streams(&f).order;
+    let last_onset = order
+        .iter()
+        .rposition(|(_, m)| matches!(m.body, Some(Body::Onset(_))))
+        .unwrap();
+    let onset = order.remove(last_onset);
+    // Everything else but the task's end, the acquisitions' ends included.
+    let task_end = order.pop().unwrap();
+    assert!(task_end.0 == 2 && matches!(task_end.1.body, Some(Body::EndOfStream(_))));
+    for (dest, m) in &order {
+        send(&ctx, &socks, &cep.control, *dest, m);
+    }
+    let acquisition_ended = |s: &Running, name: &str| {
+        status(&ctx, &s.endpoints.control)
+            .senders
+            .iter()
+            .any(|x| x.sender == name && x.ended)
+    };
+    wait_for(
+        || acquisition_ended(&shards[0], "acq-a") && acquisition_ended(&shards[1], "acq-b"),
+        "both shards to take their acquisition's end",
+    );
+    send(&ctx, &socks, &cep.control, onset.0, &onset.1);
+    send(&ctx, &socks, &cep.control, task_end.0, &task_end.1);
+    let n_trials = f.data.trials.len() as u64;
+    wait_for(
+        || status(&ctx, &cep.control).health.unwrap().trials_completed == n_trials,
+        "every trial completed at the combiner, the last one too",
+    );
+    std::thread::sleep(Duration::from_millis(300));
+    stop_sub.send(()).unwrap();
+    let live = frames(&sub.join().unwrap());
+    rt.block_on(comb.stop());
+    for s in shards {
+        rt.block_on(s.stop());
+    }
+    let want = offline(&f);
+    assert_eq!(live.len(), want.len(), "every frame, once");
+    for (l, w) in live.iter().zip(&want) {
+        assert!(
+            (l.0, l.1, &l.2, l.3) == (w.0, w.1, &w.2, 0),
+            "trial {} bin {} equals offline decoding bit for bit",
+            l.0,
+            l.1
+        );
+    }
+}
+
 /// A shard serves one combiner: a second combiner pointed at the same shards is refused (its
 /// status says why, the first keeps both shards), and takes them over once the first is gone.
 #[test]

@@ -48,6 +48,7 @@ impl EngineThread {
 
     /// A shard applies a relayed message with the combiner's decoder.
     pub(super) fn relayed(&mut self, bytes: Bytes, decoder: &str, received_ns: i64) {
+        self.last_from_link = Instant::now();
         if let Some(d) = auspex_engine::engine::Decoder::parse(decoder) {
             if d != self.config.decoder {
                 let mut c = self.config.clone();
@@ -99,7 +100,7 @@ impl EngineThread {
                 }
             }
             ShardEvent::Partial { part, partial } => {
-                self.last_partial = Instant::now();
+                self.last_from_link = Instant::now();
                 if let Some(v) = shards.get_mut(part as usize) {
                     v.partials += 1;
                 }

@@ -116,18 +116,28 @@ impl EngineThread {
                     s.ended = true;
                 }
                 // A shard's session is its acquisition's: the task program's end (relayed by
-                // the combiner) may come before the last spikes of its own senders.
-                let own = |s: &&SenderInfo| !s.relayed || matches!(self.link, Link::None);
+                // the combiner) may come before the last spikes of its own senders. But the
+                // task's last onsets, relayed, may also come after its acquisition's end: a
+                // shard waits for the relayed end too (or, without one, a pause).
+                let shard = matches!(self.link, Link::Shard { .. });
+                let own = |s: &&SenderInfo| !s.relayed || !shard;
                 let ended = self.senders.values().filter(own).all(|s| s.ended)
                     && self.senders.values().find(own).is_some();
                 if self.session.is_some() && ended {
-                    let waiting = matches!(self.link, Link::Combine { .. })
-                        && self
+                    let waiting = match self.link {
+                        Link::Combine { .. } => self
                             .engine
                             .as_ref()
-                            .is_some_and(|e| e.open_trials().next().is_some());
+                            .is_some_and(|e| e.open_trials().next().is_some()),
+                        Link::Shard { .. } => {
+                            let mut relayed = self.senders.values().filter(|s| s.relayed);
+                            relayed.clone().next().is_none() || relayed.any(|s| !s.ended)
+                        }
+                        Link::None => false,
+                    };
                     if waiting {
-                        // The shards' last partials may still be on their way.
+                        // The shards' last partials, or the task's last relayed onsets, may
+                        // still be on their way.
                         self.pending_end.get_or_insert_with(Instant::now);
                     } else {
                         self.end_session("every sender ended");
