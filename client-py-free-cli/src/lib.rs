@@ -9,6 +9,7 @@
 pub mod bench;
 pub mod live;
 pub mod offline;
+pub mod progress;
 pub mod report;
 
 // The jobs' modules by their short names (as the commands call them).

@@ -6,7 +6,6 @@
 use anyhow::{bail, Context};
 use auspex_proto::v1::{self, control_reply, control_request};
 use bytes::Bytes;
-use indicatif::{ProgressBar, ProgressStyle};
 use prost::Message;
 use std::time::{Duration, Instant};
 use zeromq::{Socket, SocketRecv, SocketSend, ZmqMessage};
@@ -88,15 +87,7 @@ pub async fn replay(
     progress: bool,
 ) -> anyhow::Result<Duration> {
     let mut push = connect_push(ingest).await?;
-    let bar = if progress {
-        ProgressBar::new(messages.len() as u64)
-    } else {
-        ProgressBar::hidden()
-    };
-    bar.set_style(
-        ProgressStyle::with_template("replaying {bar:40.green/blue} {pos}/{len} messages {msg}")
-            .expect("static template"),
-    );
+    let bar = crate::progress::bar(progress, messages.len() as u64, "replaying", "messages {msg}");
     let t0 = Instant::now();
     let first_wm = messages.iter().find_map(crate::wire::watermark_of);
     let mut last_seq = 0;

@@ -288,7 +288,7 @@ fn calibrate_spec(
     args: &FitArgs,
 ) -> anyhow::Result<Calibration> {
     let t0 = std::time::Instant::now();
-    let bar = crate::fitting::spinner(
+    let bar = crate::progress::spinner(
         std::io::stderr().is_terminal() && !args.quiet,
         "calibrating on held-out folds",
     );

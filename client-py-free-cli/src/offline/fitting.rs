@@ -4,21 +4,11 @@ use auspex_engine::count::CountFamily;
 use auspex_engine::data::Dataset;
 use auspex_engine::model::{CellSpec, ModelSpec};
 use auspex_modelling::fit::{plan, FitOptions, FitPlan};
-use indicatif::{ProgressBar, ProgressStyle};
 
 /// Fits every cell of `plan` on every core (`auspex_modelling::fit::fit_cells`); `progress`
 /// shows a bar on a terminal.
 pub fn fit_cells(plan: &FitPlan, progress: bool) -> Vec<CellSpec> {
-    let bar = if progress {
-        ProgressBar::new(plan.cells.len() as u64)
-    } else {
-        ProgressBar::hidden()
-    };
-    bar.set_style(
-        ProgressStyle::with_template("fitting {bar:40.cyan/blue} {pos}/{len} cells ({eta} left)")
-            .expect("static template")
-            .progress_chars("█▉▊▋▌▍▎▏ "),
-    );
+    let bar = crate::progress::bar(progress, plan.cells.len() as u64, "fitting", "cells");
     let cells = auspex_modelling::fit::fit_cells(plan, &|| bar.inc(1));
     bar.finish_and_clear();
     cells
@@ -118,18 +108,4 @@ fn short(f: CountFamily) -> &'static str {
         CountFamily::ComPoisson => "CMP",
         CountFamily::Empirical => "E",
     }
-}
-
-/// A spinner with a message for work without a known length (hidden when not on a terminal).
-pub fn spinner(show: bool, msg: &'static str) -> ProgressBar {
-    if !show {
-        return ProgressBar::hidden();
-    }
-    let bar = ProgressBar::new_spinner();
-    bar.set_style(
-        ProgressStyle::with_template("{spinner} {msg} ({elapsed})").expect("static template"),
-    );
-    bar.set_message(msg);
-    bar.enable_steady_tick(std::time::Duration::from_millis(120));
-    bar
 }

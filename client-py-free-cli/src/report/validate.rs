@@ -15,14 +15,7 @@ pub fn validate(
     if !opts.progress {
         return timed(data, source, opts, &());
     }
-    let bar = Bar(indicatif::ProgressBar::new(0));
-    bar.0.set_style(
-        indicatif::ProgressStyle::with_template(
-            "validating {bar:40.cyan/blue} {pos}/{len} {msg} ({eta} left)",
-        )
-        .expect("static template")
-        .progress_chars("█▉▊▋▌▍▎▏ "),
-    );
+    let bar = Bar(crate::progress::bar(true, 0, "validating", "{msg}"));
     timed(data, source, opts, &bar)
 }
 
