@@ -147,6 +147,8 @@ pub struct EngineThread {
     lat_pos: usize,
     chooser: StimulusChooser,
     started: Instant,
+    /// This daemon's start, ns since the Unix epoch: tells a monitor it is another daemon.
+    incarnation: u64,
     last_health: Instant,
     last_rates: (Instant, u64, u64),
     rates: (f64, f64),
@@ -266,6 +268,9 @@ impl EngineThread {
             lat_pos: 0,
             chooser: StimulusChooser::new(s.seed, n),
             started: Instant::now(),
+            incarnation: std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .map_or(1, |d| d.as_nanos() as u64),
             last_health: Instant::now(),
             last_rates: (Instant::now(), 0, 0),
             rates: (0.0, 0.0),

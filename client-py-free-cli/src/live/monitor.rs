@@ -81,6 +81,10 @@ pub struct MonitorState {
     last_seq: [u64; 6],
     /// Summaries of sessions that ended while the monitor ran.
     pub sessions_ended: Vec<String>,
+    /// The session tallied has ended: the next trial starts a new tally.
+    pub session_over: bool,
+    /// The daemon tallied (its `incarnation`; 0 before the first word).
+    pub daemon: u64,
     /// The decision policy and what backs it (the daemon's status, re-read every second).
     pub policy: String,
     /// Seconds since the daemon was last heard, once that is longer than a few health periods.
@@ -116,6 +120,8 @@ impl MonitorState {
             missing_parts: 0,
             last_seq: [0; 6],
             sessions_ended: Vec::new(),
+            session_over: false,
+            daemon: 0,
             policy: String::new(),
             silent_s: None,
             waiting_for: String::new(),
@@ -132,6 +138,7 @@ impl MonitorState {
     /// Starts the tallies afresh (a new daemon or a new session): decisions, units, recent
     /// lines and the missed-message count; the stimuli, policy and view settings stay.
     pub fn new_tally(&mut self) {
+        self.session_over = false;
         self.trial = None;
         self.trial_decision = None;
         self.recent.clear();
@@ -144,9 +151,29 @@ impl MonitorState {
         self.selected_unit = None;
     }
 
+    /// Notes the daemon's incarnation; true when it is another daemon than the one tallied
+    /// (the tally must start afresh).
+    fn meet(&mut self, incarnation: u64) -> bool {
+        if incarnation == 0 {
+            return false;
+        }
+        let other = self.daemon != 0 && self.daemon != incarnation;
+        self.daemon = incarnation;
+        other
+    }
+
     /// Follows the daemon's current settings (its status): the policy line, and the stimuli
-    /// when a reload or a learned model changed them.
-    pub fn follow_status(&mut self, st: &v1::Status) {
+    /// when a reload or a learned model changed them. True when the status is another
+    /// daemon's than the one tallied: the tally starts afresh.
+    pub fn follow_status(&mut self, st: &v1::Status) -> bool {
+        let other = st
+            .health
+            .as_ref()
+            .is_some_and(|h| self.meet(h.incarnation));
+        if other {
+            self.new_tally();
+            self.health = None;
+        }
         self.policy = policy_line(st);
         self.waiting_for = match &st.learning {
             Some(l) if st.stimuli.is_empty() => {
@@ -166,6 +193,7 @@ impl MonitorState {
         if !names.is_empty() && names != self.stimuli {
             self.stimuli = names;
         }
+        other
     }
 
     /// Applies one published message.
@@ -175,6 +203,22 @@ impl MonitorState {
                 self.missed += m.seq - self.last_seq[i] - 1;
             }
             self.last_seq[i] = m.seq;
+        }
+        let of_a_trial = matches!(
+            m.body,
+            Some(
+                outbound::Body::Posterior(_)
+                    | outbound::Body::Decision(_)
+                    | outbound::Body::Trial(_)
+                    | outbound::Body::Units(_)
+            )
+        );
+        if of_a_trial && self.session_over {
+            // The first trial of the next session: its tally starts afresh (the daemon's
+            // promise watch starts over at the session's start too).
+            let seq = self.last_seq;
+            self.new_tally();
+            self.last_seq = seq;
         }
         match &m.body {
             Some(outbound::Body::Posterior(p)) => {
@@ -209,11 +253,11 @@ impl MonitorState {
                 }
             }
             Some(outbound::Body::Session(s)) => {
-                // The session's own figures stay in its line; the next session tallies afresh.
+                // The ended session's tally stays in view (beside the daemon's record of it,
+                // which lasts until the next session starts); the next session's first trial
+                // starts a new one.
                 self.sessions_ended.push(session_line(s));
-                let seq = self.last_seq;
-                self.new_tally();
-                self.last_seq = seq;
+                self.session_over = true;
             }
             Some(outbound::Body::Trial(t)) => {
                 // A learned model may add stimuli as the session goes: follow the trial's.
@@ -260,13 +304,16 @@ impl MonitorState {
                 }
             }
             Some(outbound::Body::Health(h)) => {
-                // A daemon that restarted (its uptime went back) is another daemon: its
-                // decisions start a tally of their own.
-                if self
-                    .health
-                    .as_ref()
-                    .is_some_and(|prev| h.uptime_s + 0.5 < prev.uptime_s)
-                {
+                // Another daemon (restarted on the same endpoints): its decisions start a
+                // tally of their own. Daemons from before `incarnation` existed send 0: for
+                // them, an uptime that went back tells.
+                let other = self.meet(h.incarnation)
+                    || (h.incarnation == 0
+                        && self
+                            .health
+                            .as_ref()
+                            .is_some_and(|prev| h.uptime_s + 0.5 < prev.uptime_s));
+                if other {
                     self.new_tally();
                     if let Some(i) = auspex_proto::topic::ALL.iter().position(|t| *t == topic) {
                         self.last_seq[i] = m.seq;
@@ -533,6 +580,24 @@ impl MonitorState {
                 (t, lines)
             }
         };
+        let mut lines = lines;
+        if self.session_over {
+            lines.insert(
+                0,
+                fit_line(
+                    vec![
+                        Span::styled(
+                            "session ended",
+                            Style::default()
+                                .fg(Color::Yellow)
+                                .add_modifier(Modifier::BOLD),
+                        ),
+                        Span::raw(" · its tally stays until the next trial"),
+                    ],
+                    area.width.saturating_sub(2) as usize,
+                ),
+            );
+        }
         f.render_widget(
             Paragraph::new(lines).block(
                 Block::default().borders(Borders::ALL).title(fit_title(
@@ -738,10 +803,13 @@ impl MonitorState {
             })
             .collect();
         if st.latency_ms > 0.0 {
-            lines.push(Line::from(format!(
-                "peak response {:.0} ms after onset (preferred stimulus)",
-                st.latency_ms
-            )));
+            lines.push(fit_line(
+                vec![
+                    Span::raw(format!("peak response {:.0} ms after onset", st.latency_ms)),
+                    Span::raw(" (preferred stimulus)"),
+                ],
+                area.width.saturating_sub(2) as usize,
+            ));
         }
         f.render_widget(
             Paragraph::new(lines).block(Block::default().borders(Borders::ALL).title(fit_title(
@@ -1052,11 +1120,36 @@ pub fn json_line(topic: &str, m: &v1::Outbound) -> String {
     json!({"topic": topic, "seq": m.seq, "body": body}).to_string()
 }
 
+/// The screen `state` draws on a terminal of `w` × `h` cells, as text (one line per row).
+pub fn render_at(state: &MonitorState, w: u16, h: u16) -> String {
+    let mut term = ratatui::Terminal::new(ratatui::backend::TestBackend::new(w, h))
+        .expect("a test backend always opens");
+    let _ = term.draw(|f| state.draw(f));
+    let buf = term.backend().buffer().clone();
+    let mut s = String::new();
+    for y in 0..buf.area.height {
+        for x in 0..buf.area.width {
+            s.push_str(buf[(x, y)].symbol());
+        }
+        s.push('\n');
+    }
+    s
+}
+
+/// The words and figures on a rendered screen (borders and bars left out): a narrow screen's
+/// must all appear, as they are, on a wide screen of the same state — nothing cut.
+pub fn screen_words(screen: &str) -> std::collections::BTreeSet<String> {
+    screen
+        .replace(|c: char| "─│┌┐└┘├┤┬┴┼".contains(c), " ")
+        .split_whitespace()
+        .filter(|t| !t.chars().all(|c| "█▮".contains(c)))
+        .map(str::to_string)
+        .collect()
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
-    use ratatui::backend::TestBackend;
-    use ratatui::Terminal;
 
     fn stream() -> Vec<(&'static str, v1::Outbound)> {
         let mut v = Vec::new();
@@ -1119,6 +1212,7 @@ mod tests {
                         accuracy: 0.8,
                         info_bits: 0.5,
                         verdict: "encodes".into(),
+                        latency_ms: 42.0,
                         ..Default::default()
                     },
                     v1::UnitLine {
@@ -1147,20 +1241,6 @@ mod tests {
 
     fn render(state: &MonitorState) -> String {
         render_at(state, 110, 30)
-    }
-
-    fn render_at(state: &MonitorState, w: u16, h: u16) -> String {
-        let mut term = Terminal::new(TestBackend::new(w, h)).unwrap();
-        term.draw(|f| state.draw(f)).unwrap();
-        let buf = term.backend().buffer().clone();
-        let mut s = String::new();
-        for y in 0..buf.area.height {
-            for x in 0..buf.area.width {
-                s.push_str(buf[(x, y)].symbol());
-            }
-            s.push('\n');
-        }
-        s
     }
 
     #[test]
@@ -1263,14 +1343,7 @@ mod tests {
     }
 
     /// Words and figures on screen, borders and bars aside.
-    fn tokens(screen: &str) -> std::collections::BTreeSet<String> {
-        screen
-            .replace(|c: char| "─│┌┐└┘├┤┬┴┼".contains(c), " ")
-            .split_whitespace()
-            .filter(|t| !t.chars().all(|c| "█▮".contains(c)))
-            .map(str::to_string)
-            .collect()
-    }
+    use super::screen_words as tokens;
 
     /// At 80×24, 120×40 and 160×48 every word and figure on screen is whole: each appears,
     /// as it is, on a 250-column screen of the same state (a narrow panel drops whole columns

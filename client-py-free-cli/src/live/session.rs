@@ -39,33 +39,160 @@ impl View {
 /// Decisions seen by a monitor: (trial, stimulus index, posterior bits, bin).
 pub type SeenDecisions = Vec<(u64, u32, u64, u32)>;
 
+/// Where the monitor's full-screen view goes: the terminal, or (in tests) a text buffer.
+pub trait Screen: Send {
+    /// Called every 50 ms: takes the keys pressed since (which change `state`, and `frozen`
+    /// while paused), then draws `frozen` when paused, else `state`. False: the user quit.
+    fn show(
+        &mut self,
+        state: &mut MonitorState,
+        frozen: &mut Option<MonitorState>,
+    ) -> anyhow::Result<bool>;
+}
+
+/// The terminal, in raw mode on the alternate screen until dropped.
+struct Terminal(ratatui::Terminal<ratatui::backend::CrosstermBackend<std::io::Stdout>>);
+
+impl Terminal {
+    fn open() -> anyhow::Result<Self> {
+        crossterm::terminal::enable_raw_mode()?;
+        crossterm::execute!(std::io::stdout(), crossterm::terminal::EnterAlternateScreen)?;
+        Ok(Terminal(ratatui::Terminal::new(
+            ratatui::backend::CrosstermBackend::new(std::io::stdout()),
+        )?))
+    }
+}
+
+impl Drop for Terminal {
+    fn drop(&mut self) {
+        let _ = crossterm::terminal::disable_raw_mode();
+        let _ = crossterm::execute!(std::io::stdout(), crossterm::terminal::LeaveAlternateScreen);
+    }
+}
+
+impl Screen for Terminal {
+    fn show(
+        &mut self,
+        state: &mut MonitorState,
+        frozen: &mut Option<MonitorState>,
+    ) -> anyhow::Result<bool> {
+        while crossterm::event::poll(Duration::ZERO)? {
+            if let crossterm::event::Event::Key(k) = crossterm::event::read()? {
+                if !key(k, state, frozen) {
+                    return Ok(false);
+                }
+            }
+        }
+        let shown = frozen.as_ref().unwrap_or(state);
+        self.0.draw(|f| shown.draw(f))?;
+        Ok(true)
+    }
+}
+
+/// Applies one key: q, Esc or Ctrl-C quit (false); p pauses the view (a snapshot is shown,
+/// the accounting goes on); o changes the unit order; ↑/↓ (k/j) move the selection.
+pub fn key(
+    k: crossterm::event::KeyEvent,
+    state: &mut MonitorState,
+    frozen: &mut Option<MonitorState>,
+) -> bool {
+    use crossterm::event::KeyCode::*;
+    match k.code {
+        Char('q') | Esc => return false,
+        Char('c') if k.modifiers.contains(crossterm::event::KeyModifiers::CONTROL) => {
+            return false
+        }
+        Char('p') => {
+            *frozen = match frozen.take() {
+                Some(_) => None,
+                None => {
+                    let mut f = state.clone();
+                    f.paused = true;
+                    Some(f)
+                }
+            };
+        }
+        Char('o') => {
+            state.next_sort();
+            if let Some(f) = frozen.as_mut() {
+                f.next_sort();
+            }
+        }
+        Up | Char('k') => {
+            state.select(-1);
+            if let Some(f) = frozen.as_mut() {
+                f.select(-1);
+            }
+        }
+        Down | Char('j') => {
+            state.select(1);
+            if let Some(f) = frozen.as_mut() {
+                f.select(1);
+            }
+        }
+        _ => {}
+    }
+    true
+}
+
+/// A screen that keeps the last view drawn at each of some sizes as text (for tests, and for
+/// checking what the monitor shows without a terminal).
+pub struct TextScreen {
+    /// Columns and rows of each view.
+    pub sizes: Vec<(u16, u16)>,
+    /// The last view drawn at each size, in the order of `sizes`.
+    pub text: std::sync::Arc<std::sync::Mutex<Vec<String>>>,
+}
+
+impl Screen for TextScreen {
+    fn show(
+        &mut self,
+        state: &mut MonitorState,
+        frozen: &mut Option<MonitorState>,
+    ) -> anyhow::Result<bool> {
+        let shown = frozen.as_ref().unwrap_or(state);
+        let views = self
+            .sizes
+            .iter()
+            .map(|&(w, h)| crate::monitor::render_at(shown, w, h))
+            .collect();
+        if let Ok(mut t) = self.text.lock() {
+            *t = views;
+        }
+        Ok(true)
+    }
+}
+
 /// Subscribes to `publish` and shows the stream until `stop` turns true (or `q` on screen).
 pub async fn monitor(
     publish: &str,
     control_ep: &str,
     view: View,
+    stop: watch::Receiver<bool>,
+) -> anyhow::Result<SeenDecisions> {
+    let screen: Option<Box<dyn Screen>> = match view {
+        View::Screen => Some(Box::new(Terminal::open()?)),
+        _ => None,
+    };
+    monitor_on(publish, control_ep, view, screen, stop).await
+}
+
+/// [`monitor`] drawing its full-screen view on `screen` (every 50 ms), whatever `view` says of
+/// the lines it prints.
+pub async fn monitor_on(
+    publish: &str,
+    control_ep: &str,
+    view: View,
+    mut screen: Option<Box<dyn Screen>>,
     mut stop: watch::Receiver<bool>,
 ) -> anyhow::Result<SeenDecisions> {
     let st = status(control_ep)
         .await
         .with_context(|| format!("asking the daemon at {control_ep} for its model"))?;
     let mut state = MonitorState::new(st.stimuli.clone(), st.bin_width_s);
-    state.policy = crate::monitor::policy_line(&st);
-    let mut sub = zeromq::SubSocket::new();
-    sub.connect(publish)
-        .await
-        .with_context(|| format!("cannot connect to {publish}"))?;
-    sub.subscribe("").await?;
+    state.follow_status(&st);
+    let mut sub = subscribe(publish).await?;
     let mut seen = Vec::new();
-    let mut term = if view == View::Screen {
-        crossterm::terminal::enable_raw_mode()?;
-        crossterm::execute!(std::io::stdout(), crossterm::terminal::EnterAlternateScreen)?;
-        Some(ratatui::Terminal::new(
-            ratatui::backend::CrosstermBackend::new(std::io::stdout()),
-        )?)
-    } else {
-        None
-    };
     let mut tick = tokio::time::interval(Duration::from_millis(50));
     let out = std::io::stdout();
     // Pausing freezes the view, not the accounting: messages still go into `state`, the
@@ -73,87 +200,65 @@ pub async fn monitor(
     let mut frozen: Option<MonitorState> = None;
     let mut last_heard = std::time::Instant::now();
     let mut last_status = std::time::Instant::now();
-    let result: anyhow::Result<()> = async {
-        loop {
-            tokio::select! {
-                _ = stop.changed() => if *stop.borrow() { break },
-                _ = tick.tick() => {
-                    // Every second: the daemon's current settings (changed by `steer` from
-                    // elsewhere), and whether it is still there.
-                    if last_status.elapsed() >= Duration::from_secs(1) {
-                        last_status = std::time::Instant::now();
-                        if let Ok(Ok(st)) = tokio::time::timeout(Duration::from_millis(500), status(control_ep)).await {
-                            state.follow_status(&st);
-                            last_heard = std::time::Instant::now();
-                        }
-                    }
-                    let quiet_s = last_heard.elapsed().as_secs_f64();
-                    state.silent_s = (quiet_s >= SILENT_AFTER_S).then_some(quiet_s);
-                    if let Some(t) = term.as_mut() {
-                        while crossterm::event::poll(Duration::ZERO)? {
-                            if let crossterm::event::Event::Key(k) = crossterm::event::read()? {
-                                use crossterm::event::KeyCode::*;
-                                match k.code {
-                                    Char('q') | Esc => return Ok(()),
-                                    Char('c') if k.modifiers.contains(crossterm::event::KeyModifiers::CONTROL) => return Ok(()),
-                                    Char('p') => {
-                                        frozen = match frozen {
-                                            Some(_) => None,
-                                            None => {
-                                                let mut f = state.clone();
-                                                f.paused = true;
-                                                Some(f)
-                                            }
-                                        };
-                                    }
-                                    Char('o') => {
-                                        state.next_sort();
-                                        if let Some(f) = frozen.as_mut() { f.next_sort(); }
-                                    }
-                                    Up | Char('k') => {
-                                        state.select(-1);
-                                        if let Some(f) = frozen.as_mut() { f.select(-1); }
-                                    }
-                                    Down | Char('j') => {
-                                        state.select(1);
-                                        if let Some(f) = frozen.as_mut() { f.select(1); }
-                                    }
-                                    _ => {}
-                                }
+    loop {
+        tokio::select! {
+            _ = stop.changed() => if *stop.borrow() { break },
+            _ = tick.tick() => {
+                // Every second: the daemon's current settings (changed by `steer` from
+                // elsewhere), and whether it is still there.
+                if last_status.elapsed() >= Duration::from_secs(1) {
+                    last_status = std::time::Instant::now();
+                    if let Ok(Ok(st)) = tokio::time::timeout(Duration::from_millis(500), status(control_ep)).await {
+                        let was_silent = state.silent_s.is_some();
+                        if state.follow_status(&st) || was_silent {
+                            // Another daemon, or the same one back: subscribe afresh rather
+                            // than wait for the old subscription to find it again (its
+                            // reconnection backs off for seconds, and messages meanwhile are lost).
+                            if let Ok(s) = subscribe(publish).await {
+                                sub = s;
                             }
                         }
-                        let shown = frozen.as_ref().unwrap_or(&state);
-                        t.draw(|f| shown.draw(f))?;
+                        last_heard = std::time::Instant::now();
                     }
                 }
-                m = sub.recv() => {
-                    let m = m?;
-                    let parts = m.into_vec();
-                    if parts.len() != 2 { continue; }
-                    let topic = String::from_utf8_lossy(&parts[0]).to_string();
-                    let Ok(msg) = v1::Outbound::decode(parts[1].as_ref()) else { continue };
-                    if let Some(v1::outbound::Body::Decision(d)) = &msg.body {
-                        seen.push((d.trial, d.stimulus, d.posterior.to_bits(), d.bin));
-                    }
-                    last_heard = std::time::Instant::now();
-                    state.apply(&topic, &msg);
-                    match view {
-                        View::Lines => if let Some(l) = plain_line(&state, &topic, &msg) { let _ = writeln!(out.lock(), "{l}"); },
-                        View::Json => { let _ = writeln!(out.lock(), "{}", json_line(&topic, &msg)); },
-                        View::Screen | View::Quiet => {}
+                let quiet_s = last_heard.elapsed().as_secs_f64();
+                state.silent_s = (quiet_s >= SILENT_AFTER_S).then_some(quiet_s);
+                if let Some(sc) = screen.as_mut() {
+                    if !sc.show(&mut state, &mut frozen)? {
+                        break;
                     }
                 }
             }
+            m = sub.recv() => {
+                let m = m?;
+                let parts = m.into_vec();
+                if parts.len() != 2 { continue; }
+                let topic = String::from_utf8_lossy(&parts[0]).to_string();
+                let Ok(msg) = v1::Outbound::decode(parts[1].as_ref()) else { continue };
+                if let Some(v1::outbound::Body::Decision(d)) = &msg.body {
+                    seen.push((d.trial, d.stimulus, d.posterior.to_bits(), d.bin));
+                }
+                last_heard = std::time::Instant::now();
+                state.apply(&topic, &msg);
+                match view {
+                    View::Lines => if let Some(l) = plain_line(&state, &topic, &msg) { let _ = writeln!(out.lock(), "{l}"); },
+                    View::Json => { let _ = writeln!(out.lock(), "{}", json_line(&topic, &msg)); },
+                    View::Screen | View::Quiet => {}
+                }
+            }
         }
-        Ok(())
     }
-    .await;
-    if term.is_some() {
-        let _ = crossterm::terminal::disable_raw_mode();
-        let _ = crossterm::execute!(std::io::stdout(), crossterm::terminal::LeaveAlternateScreen);
-    }
-    result?;
     Ok(seen)
+}
+
+/// A SUB socket on `publish`, subscribed to every topic.
+async fn subscribe(publish: &str) -> anyhow::Result<zeromq::SubSocket> {
+    let mut sub = zeromq::SubSocket::new();
+    sub.connect(publish)
+        .await
+        .with_context(|| format!("cannot connect to {publish}"))?;
+    sub.subscribe("").await?;
+    Ok(sub)
 }
 
 /// Seconds without a word from the daemon (no published message, no status reply) after which

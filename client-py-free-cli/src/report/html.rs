@@ -28,6 +28,9 @@ fn fit_attr(chars: usize, avail: f64) -> String {
     }
 }
 
+/// KS plots shown in the goodness-of-fit section (every unit's is in its own section).
+const KS_PLOTS_SHOWN: usize = 8;
+
 fn colour(i: usize) -> &'static str {
     PALETTE[i % PALETTE.len()]
 }
@@ -938,16 +941,20 @@ fn trajectories_plot(v: &Validation, x: &Extras) -> String {
         out += &p.finish();
     }
     // Which colour is which stimulus.
-    let _ = write!(
-        out,
-        "<div class=sub style=\"width:100%\">{}",
-        if ns > 16 {
-            format!("(example trials of the first 16 of the {ns} stimuli) ")
-        } else {
-            String::new()
-        }
-    );
-    for (k, name) in v.stimuli.iter().enumerate() {
+    let note = if ns > 16 {
+        format!("(example trials of the first 16 of the {ns} stimuli) ")
+    } else {
+        String::new()
+    };
+    out += &stimulus_legend(&v.stimuli, &note);
+    out
+}
+
+/// Which colour is which stimulus, in a line under a row of plots.
+fn stimulus_legend(stimuli: &[String], note: &str) -> String {
+    let mut out = String::new();
+    let _ = write!(out, "<div class=sub style=\"width:100%\">{note}");
+    for (k, name) in stimuli.iter().enumerate() {
         let _ = write!(
             out,
             "<span style=\"white-space:nowrap;margin-right:14px\"><span style=\"display:inline-block;width:18px;height:3px;vertical-align:middle;background:{}\"></span> {}</span>",
@@ -957,6 +964,29 @@ fn trajectories_plot(v: &Validation, x: &Extras) -> String {
     }
     out += "</div>";
     out
+}
+
+/// A unit's KS plot: one band, ±1, is every cell's band (deviations are over each cell's own
+/// critical value); a line per stimulus in its colour, the cells named in `bold` drawn bold.
+fn ks_plot(f: &UnitFigures, title: &str, bold: &[&str], stimuli: &[String]) -> String {
+    let mut p = Plot::new(330.0, 250.0, (0.0, 1.0), (-1.6, 1.6));
+    p.axes(
+        title,
+        "model quantile",
+        "deviation / cell's 95% critical value",
+    );
+    p.band(&[0.0, 1.0], &[-1.0, -1.0], &[1.0, 1.0], "#888");
+    p.line(&[(0.0, 0.0), (1.0, 0.0)], "#444", 0.8, false);
+    p.text(0.02, 1.05, "95% band of each cell", REFERENCE);
+    // The bold lines last, on top.
+    let is_bold = |st: usize| bold.contains(&stimuli[st].as_str());
+    let order = (0..f.ks.len()).filter(|&st| !is_bold(st)).chain((0..f.ks.len()).filter(|&st| is_bold(st)));
+    for st in order {
+        if let Some(pts) = &f.ks[st] {
+            p.line(pts, colour(st), if is_bold(st) { 2.6 } else { 1.3 }, false);
+        }
+    }
+    p.finish()
 }
 
 fn unit_section(v: &Validation, ur: &UnitReport, f: &UnitFigures) -> String {
@@ -1049,23 +1079,13 @@ fn unit_section(v: &Validation, ur: &UnitReport, f: &UnitFigures) -> String {
         s += &p.finish();
     }
     s += "</div></div>";
-    // KS plot: one band, ±1, is every cell's band (deviations are over each cell's own
-    // critical value).
-    let mut p = Plot::new(330.0, 250.0, (0.0, 1.0), (-1.6, 1.6));
-    p.axes(
-        "time rescaling, held out: KS deviation",
-        "model quantile",
-        "deviation / cell's 95% critical value",
-    );
-    p.band(&[0.0, 1.0], &[-1.0, -1.0], &[1.0, 1.0], "#888");
-    p.line(&[(0.0, 0.0), (1.0, 0.0)], "#444", 0.8, false);
-    p.text(0.02, 1.05, "95% band of each cell", REFERENCE);
-    for (st, pts) in f.ks.iter().enumerate() {
-        if let Some(pts) = pts {
-            p.line(pts, colour(st), 1.3, false);
-        }
-    }
-    s += &p.finish();
+    let bold: Vec<&str> = ur
+        .cells
+        .iter()
+        .filter(|c| !c.ks_pass)
+        .map(|c| c.stimulus.as_str())
+        .collect();
+    s += &ks_plot(f, "time rescaling, held out: KS deviation", &bold, &v.stimuli);
     s += "</div><table><tr><th>stimulus</th><th>trials</th><th>mean count</th><th>variance</th><th>Fano [95%]</th><th>family</th><th>KS D</th><th>95% critical</th><th>intervals</th><th>fit</th></tr>";
     for c in &ur.cells {
         let fano = c
@@ -1360,9 +1380,45 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
     if left_out > 0 {
         let _ = write!(s, "<p class=sub>Pictures for the {UNIT_FIGURES_MAX} most informative units and every unit with a flagged fit ({shown} shown); the other {left_out} units are in the table above and in validation.json.</p>");
     }
-    s += "<h2>Goodness of fit</h2>";
+    s += "<h2 id=goodness-of-fit>Goodness of fit</h2>";
     let _ = write!(s, "<p class=sub>Discrete-time time-rescaling (Haslinger, Pipa &amp; Brown 2010) on held-out trials, each under the model of its presented stimulus: per bin, the model's probability of a spike given the spikes so far; bins holding spikes are events, their randomised rescaled intervals should be Uniform(0, 1). Cells whose KS statistic exceeds the exact 95% critical value are flagged: {} of {} tested.</p>",
         v.goodness_of_fit.cells_failed, v.goodness_of_fit.cells_tested);
+    // The KS plots in view, not only inside the collapsed unit sections: the flagged units'
+    // first, then the most informative, up to KS_PLOTS_SHOWN.
+    let flagged = |f: &&UnitFigures| {
+        v.goodness_of_fit
+            .failed
+            .iter()
+            .any(|(u, _)| *u == f.unit)
+    };
+    let shown: Vec<&UnitFigures> = x
+        .unit_figures
+        .iter()
+        .filter(flagged)
+        .chain(x.unit_figures.iter().filter(|f| !flagged(f)))
+        .filter(|f| f.ks.iter().any(|k| k.is_some()))
+        .take(KS_PLOTS_SHOWN)
+        .collect();
+    if !shown.is_empty() {
+        s += "<div class=row>";
+        for f in &shown {
+            let bold: Vec<&str> = v
+                .goodness_of_fit
+                .failed
+                .iter()
+                .filter(|(u, _)| *u == f.unit)
+                .map(|(_, st)| st.as_str())
+                .collect();
+            let title = if bold.is_empty() {
+                format!("unit {}: KS deviation", f.unit)
+            } else {
+                format!("unit {}: KS deviation, {} flagged (bold)", f.unit, bold.join(", "))
+            };
+            s += &ks_plot(f, &title, &bold, &v.stimuli);
+        }
+        s += "</div>";
+        s += &stimulus_legend(&v.stimuli, "");
+    }
     if !v.goodness_of_fit.failed.is_empty() {
         s += "<p>";
         s += &v

@@ -15,7 +15,7 @@ pub fn validate(
     if !opts.progress {
         return timed(data, source, opts, &());
     }
-    let bar = Bar(crate::progress::bar(true, 0, "validating", "{msg}"));
+    let bar = Bar(crate::progress::bar(true, 0, "validating", "{percent}% {msg}"));
     timed(data, source, opts, &bar)
 }
 
@@ -23,14 +23,14 @@ pub fn validate(
 struct Bar(indicatif::ProgressBar);
 
 impl Progress for Bar {
-    fn start(&self, steps: u64) {
-        self.0.set_length(steps);
+    fn start(&self, work: u64) {
+        self.0.set_length(work);
     }
     fn stage(&self, what: &'static str) {
         self.0.set_message(what);
     }
-    fn step(&self) {
-        self.0.inc(1);
+    fn done(&self, work: u64) {
+        self.0.inc(work);
     }
     fn finish(&self) {
         self.0.finish_and_clear();

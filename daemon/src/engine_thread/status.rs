@@ -32,6 +32,7 @@ impl EngineThread {
         }
         v1::Health {
             uptime_s: self.started.elapsed().as_secs_f64(),
+            incarnation: self.incarnation,
             messages_in: self.counters.messages_in,
             spikes_in: ec.spikes,
             frames_out: ec.frames,

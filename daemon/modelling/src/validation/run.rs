@@ -55,14 +55,32 @@ pub enum ValidateError {
 /// Where a validation run reports how far it is (the command draws a bar from it; tests and
 /// library callers may pass `&()`). Called from worker threads, hence `Sync`.
 pub trait Progress: Sync {
-    /// The run has `steps` steps in all.
-    fn start(&self, _steps: u64) {}
+    /// The run has `work` units of work in all (see [`WORK`]).
+    fn start(&self, _work: u64) {}
     /// What the run is doing now.
     fn stage(&self, _what: &'static str) {}
-    /// One step done.
-    fn step(&self) {}
+    /// `work` units done.
+    fn done(&self, _work: u64) {}
     /// The run is over.
     fn finish(&self) {}
+}
+
+/// Relative costs of the run's steps, so that a progress bar's share done is a share of the
+/// time (measured on the demo session: a fold's fit and decoding ≈ 0.5 s, a shuffle's refit
+/// with the families held ≈ 0.05 s, a calibration's inner fit ≈ 0.8 s, a learning-curve fit on
+/// part of the training ≈ 0.3 s, the per-unit reports ≈ 2 s). A guide, not a promise: the
+/// ratios move with the families tried and the numbers of units and stimuli.
+pub mod work {
+    /// One fold: fit every cell, decode the held-out trials with every decoder.
+    pub const FOLD: u64 = 10;
+    /// One label shuffle: refit with the fold's families held, decode at the window end.
+    pub const SHUFFLE: u64 = 1;
+    /// One inner fit of the calibration comparison (folds × folds of them).
+    pub const CALIBRATION_FIT: u64 = 16;
+    /// One learning-curve fit (sizes × folds of them).
+    pub const LEARNING_FIT: u64 = 6;
+    /// The per-unit reports and the goodness of fit, at the end.
+    pub const UNITS: u64 = 40;
 }
 
 impl Progress for () {}
@@ -740,7 +758,14 @@ pub fn validate_with(
         auspex_engine::decision::min_bin_for(opts.min_time_ms / 1000.0, opts.fit.bin_width_s)
             as usize;
 
-    bar.start((2 * k + opts.shuffles + 1) as u64);
+    let sizes = learning_sizes(&labels, &fold_of, k, ns);
+    bar.start(
+        k as u64 * work::FOLD
+            + opts.shuffles as u64 * work::SHUFFLE
+            + (k * k) as u64 * work::CALIBRATION_FIT
+            + (sizes.len() * k) as u64 * work::LEARNING_FIT
+            + work::UNITS,
+    );
 
     // Per unit, per trial: spike bins in the window.
     let w = crate::windows::windows(&data, &data.units, full_plan.bin_ticks, nb);
@@ -846,7 +871,9 @@ pub fn validate_with(
 
     // Learning curve: the same folds with training subsampled to n trials per stimulus.
     bar.stage("learning curve");
-    let learning_curve = learning_curve(&data, &labels, &fold_of, k, &stimuli, &bins, opts)?;
+    let learning_curve = learning_curve(
+        &data, &labels, &fold_of, k, &stimuli, &bins, &sizes, opts, bar,
+    )?;
 
     // Units: accuracy, information and its null; cells: count variability, family, fit.
     let full_cells = crate::fit::fit_cells(&full_plan, &|| {});
@@ -861,7 +888,7 @@ pub fn validate_with(
         &rescaled,
         &full_model,
     );
-    bar.step();
+    bar.done(work::UNITS);
     bar.finish();
 
     let v = Validation {
@@ -1085,7 +1112,7 @@ fn cross_validate(
             test,
             choice,
         });
-        bar.step();
+        bar.done(work::FOLD);
     }
 
     Ok(CrossValidated {
@@ -1382,13 +1409,16 @@ fn compare_calibrations(
             stimuli,
             opts.folds,
             opts.seed ^ 0xca1,
-            &|p| p.assemble(crate::fit::fit_cells(p, &|| {})),
+            &|p| {
+                let spec = p.assemble(crate::fit::fit_cells(p, &|| {}));
+                bar.done(work::CALIBRATION_FIT);
+                spec
+            },
         )?;
         let refs: Vec<&HeldOutTrial> = inner.trials.iter().collect();
         for (m, method) in methods.iter().enumerate() {
             factors[m].push(fit_factors(*method, &refs, &ln_prior, nb, min_bin));
         }
-        bar.step();
     }
     let mut fold_of = vec![0; trials.len()];
     for (fi, f) in folds.iter().enumerate() {
@@ -1511,9 +1541,38 @@ fn raw_time_at(
 /// Training sizes (trials per stimulus) the learning curve tries, up to what the folds hold.
 const LEARNING_SIZES: [usize; 12] = [2, 3, 5, 8, 12, 20, 30, 50, 80, 120, 200, 300];
 
+/// The training sizes (trials per stimulus) the learning curve tries: those of
+/// [`LEARNING_SIZES`] below the fewest training trials any fold holds of any stimulus, and that
+/// fewest itself.
+fn learning_sizes(labels: &[usize], fold_of: &[usize], k: usize, ns: usize) -> Vec<usize> {
+    let mut most = usize::MAX;
+    for f in 0..k {
+        let mut per = vec![0usize; ns];
+        for (i, &l) in labels.iter().enumerate() {
+            if fold_of[i] != f {
+                per[l] += 1;
+            }
+        }
+        most = most.min(per.into_iter().min().unwrap_or(0));
+    }
+    if k == 0 || ns == 0 {
+        most = 0;
+    }
+    let mut sizes: Vec<usize> = LEARNING_SIZES
+        .iter()
+        .copied()
+        .filter(|&n| n < most)
+        .collect();
+    if most >= 2 {
+        sizes.push(most);
+    }
+    sizes
+}
+
 /// Held-out window-end accuracy and information against training trials per stimulus: each
 /// fold's training trials are shuffled (seeded) within each stimulus and the first n kept; the
 /// model is fitted on them as `auspex fit` would and decodes the fold's untouched test trials.
+#[allow(clippy::too_many_arguments)]
 fn learning_curve(
     data: &Dataset,
     labels: &[usize],
@@ -1521,7 +1580,9 @@ fn learning_curve(
     k: usize,
     stimuli: &[String],
     bins: &[Vec<Vec<u32>>],
+    sizes: &[usize],
     opts: &ValidateOptions,
+    bar: &dyn Progress,
 ) -> Result<Vec<LearningPoint>, ValidateError> {
     let (ns, nu, nt) = (stimuli.len(), data.units.len(), labels.len());
     let mut rng = ChaCha8Rng::seed_from_u64(opts.seed ^ 0x1ea2);
@@ -1544,21 +1605,8 @@ fn learning_curve(
             per
         })
         .collect();
-    let most = orders
-        .iter()
-        .flat_map(|f| f.iter().map(|v| v.len()))
-        .min()
-        .unwrap_or(0);
-    let mut sizes: Vec<usize> = LEARNING_SIZES
-        .iter()
-        .copied()
-        .filter(|&n| n < most)
-        .collect();
-    if most >= 2 {
-        sizes.push(most);
-    }
     let mut out = Vec::new();
-    for n in sizes {
+    for &n in sizes {
         let mut pop = vec![0u64; ns * ns];
         let mut units = vec![vec![0u64; ns * ns]; nu];
         for (f, order) in orders.iter().enumerate() {
@@ -1569,6 +1617,7 @@ fn learning_curve(
             let cells = crate::fit::fit_cells(&p, &|| {});
             let model = Model::new(p.assemble(cells))?;
             window_end_confusions(&model, bins, labels, &test, &mut pop, &mut units);
+            bar.done(work::LEARNING_FIT);
         }
         let a = crate::assess::assess(&pop, ns, &Default::default());
         let correct: u64 = (0..ns).map(|s| pop[s * ns + s]).sum();
@@ -1682,7 +1731,7 @@ fn shuffle_null(
                             break;
                         }
                         mine.push((r, one(r)?));
-                        bar.step();
+                        bar.done(work::SHUFFLE);
                     }
                     Ok(mine)
                 })
