@@ -449,7 +449,7 @@ pub fn print_model_point(path: &std::path::Path, p: &ModelPoint) {
 }
 
 /// Latency percentiles, µs.
-#[derive(Clone, Debug, serde::Serialize)]
+#[derive(Clone, Debug, serde::Serialize, serde::Deserialize)]
 pub struct Latency {
     /// Transport.
     pub transport: String,
@@ -1143,4 +1143,170 @@ async fn learning_latencies(seconds: f64, size: (usize, usize)) -> anyhow::Resul
         );
     }
     Ok(lats)
+}
+
+/// What a competing process does in [`under_load`]: spin on the CPU, or stream through memory.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Burn {
+    /// A tight arithmetic loop (a CPU-bound program of ordinary priority).
+    Cpu,
+    /// Reads and writes a 64 MB buffer over and over (a program streaming data, as acquisition
+    /// or a display does): it competes for the memory bus and caches.
+    Memory,
+}
+
+/// Runs one competing load until killed (the hidden `auspex bench --burn` the load bench starts).
+pub fn burn(kind: Burn) -> ! {
+    match kind {
+        Burn::Cpu => {
+            let mut x = 0x9e37_79b9_7f4a_7c15u64;
+            loop {
+                for _ in 0..1_000_000 {
+                    x = x.rotate_left(7).wrapping_mul(0x2545_f491_4f6c_dd1d) ^ 1;
+                }
+                std::hint::black_box(x);
+            }
+        }
+        Burn::Memory => {
+            let mut buf = vec![1u64; 8 << 20];
+            let mut i = 0u64;
+            loop {
+                for v in buf.iter_mut() {
+                    *v = v.wrapping_add(i);
+                }
+                i = i.wrapping_add(std::hint::black_box(buf[(i as usize * 4099) % buf.len()]));
+            }
+        }
+    }
+}
+
+/// One latency run measured in a child process (`auspex bench --latency-once`), so that each
+/// run's daemon has a fresh process whose scheduling is its own.
+pub fn latency_child(
+    exe: &std::path::Path,
+    transport: &str,
+    seconds: f64,
+    size: (usize, usize),
+    realtime: Option<i32>,
+) -> anyhow::Result<Latency> {
+    let mut cmd = std::process::Command::new(exe);
+    cmd.args(["bench", "--latency-once", transport, "--seconds"])
+        .arg(seconds.to_string())
+        .args(["--units", &size.0.to_string(), "--stimuli", &size.1.to_string()]);
+    if let Some(p) = realtime {
+        cmd.args(["--realtime", "--realtime-priority", &p.to_string()]);
+    }
+    let out = cmd.stderr(std::process::Stdio::inherit()).output()?;
+    if !out.status.success() {
+        anyhow::bail!("the latency run over {transport} failed ({})", out.status);
+    }
+    let text = String::from_utf8_lossy(&out.stdout);
+    let line = text
+        .lines()
+        .rev()
+        .find(|l| l.starts_with('{'))
+        .ok_or_else(|| anyhow::anyhow!("the latency run printed no figures"))?;
+    Ok(serde_json::from_str(line)?)
+}
+
+/// The figures of one mode over the turns of [`under_load`].
+#[derive(Clone, Debug, serde::Serialize)]
+pub struct LoadedMode {
+    /// "tcp, normal", "ipc, real-time", …
+    pub name: String,
+    /// Each turn's run.
+    pub runs: Vec<Latency>,
+}
+
+/// Batch → posterior latency with `cpu` CPU-bound and `memory` memory-streaming processes of
+/// ordinary priority running beside it (started here, ended here), in normal and in real-time
+/// mode (`SCHED_FIFO` at `priority`), over tcp and ipc: `turns` turns, each running every mode
+/// once, the order of normal and real-time alternating from turn to turn so that a drift in the
+/// machine's load falls on both.
+pub fn under_load(
+    cpu: usize,
+    memory: usize,
+    turns: usize,
+    seconds: f64,
+    size: (usize, usize),
+    priority: i32,
+) -> anyhow::Result<Vec<LoadedMode>> {
+    let exe = std::env::current_exe()?;
+    struct Loads(Vec<std::process::Child>);
+    impl Drop for Loads {
+        fn drop(&mut self) {
+            for c in &mut self.0 {
+                let _ = c.kill();
+                let _ = c.wait();
+            }
+        }
+    }
+    let mut loads = Loads(Vec::new());
+    for (n, kind) in [(cpu, "cpu"), (memory, "memory")] {
+        for _ in 0..n {
+            loads.0.push(
+                std::process::Command::new(&exe)
+                    .args(["bench", "--burn", kind])
+                    .stdin(std::process::Stdio::null())
+                    .stdout(std::process::Stdio::null())
+                    .spawn()?,
+            );
+        }
+    }
+    eprintln!(
+        "latency under load: {cpu} CPU-bound and {memory} memory-streaming processes of ordinary priority; {} units × {} stimuli, {seconds} s per run, {turns} turns of normal and real-time (SCHED_FIFO {priority}) over tcp and ipc …",
+        size.0, size.1
+    );
+    let modes: Vec<(&str, Option<i32>)> = vec![("normal", None), ("real-time", Some(priority))];
+    let mut out: Vec<LoadedMode> = Vec::new();
+    for transport in ["tcp", "ipc"] {
+        for (name, _) in &modes {
+            out.push(LoadedMode {
+                name: format!("{transport}, {name}"),
+                runs: Vec::new(),
+            });
+        }
+    }
+    for turn in 0..turns {
+        let order: Vec<usize> = if turn % 2 == 0 { vec![0, 1] } else { vec![1, 0] };
+        for (ti, transport) in ["tcp", "ipc"].iter().enumerate() {
+            for &m in &order {
+                let l = latency_child(&exe, transport, seconds, size, modes[m].1)?;
+                eprintln!(
+                    "  turn {}: {:<14} p50 {:>6.0} µs  p99 {:>7.0} µs  p99.9 {:>7.0} µs  worst {:>7.0} µs",
+                    turn + 1,
+                    out[ti * 2 + m].name,
+                    l.p50_us,
+                    l.p99_us,
+                    l.p999_us,
+                    l.max_us
+                );
+                out[ti * 2 + m].runs.push(l);
+            }
+        }
+    }
+    drop(loads);
+    println!(
+        "batch → posterior under load ({cpu} CPU + {memory} memory processes), median over {turns} turns:"
+    );
+    println!("| | p50 | p99 | p99.9 | worst | turns with p99 ≤ 1 ms |");
+    println!("|---|---|---|---|---|---|");
+    for m in &out {
+        let med = |f: fn(&Latency) -> f64| {
+            let mut v: Vec<f64> = m.runs.iter().map(f).collect();
+            v.sort_by(|a, b| a.total_cmp(b));
+            v.get(v.len() / 2).copied().unwrap_or(f64::NAN)
+        };
+        println!(
+            "| {} | {:.0} µs | {:.0} µs | {:.0} µs | {:.0} µs | {}/{} |",
+            m.name,
+            med(|l| l.p50_us),
+            med(|l| l.p99_us),
+            med(|l| l.p999_us),
+            med(|l| l.max_us),
+            m.runs.iter().filter(|l| l.p99_us <= 1000.0).count(),
+            m.runs.len()
+        );
+    }
+    Ok(out)
 }

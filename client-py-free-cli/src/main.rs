@@ -309,6 +309,28 @@ enum Cmd {
         /// Memory for looked-up COM-Poisson/empirical terms with --model, MB (as the daemon's flag)
         #[arg(long, value_name = "MB", default_value_t = LookupBudget::DEFAULT, value_parser = lookup_budget)]
         table_memory_mb: LookupBudget,
+        /// Latency with N CPU-bound processes of ordinary priority beside it (started and ended
+        /// here), normal vs real-time mode (auspexd --realtime), over tcp and ipc, in turns
+        #[arg(long, value_name = "N", conflicts_with_all = ["model", "learning", "thread_scaling", "no_latency", "shards"])]
+        under_load: Option<usize>,
+        /// With --under-load: also M processes streaming through memory
+        #[arg(long, value_name = "M", default_value_t = 0, requires = "under_load")]
+        memory_load: usize,
+        /// With --under-load: turns (each runs every mode once; normal and real-time alternate in order)
+        #[arg(long, default_value_t = 5, requires = "under_load")]
+        turns: usize,
+        /// SCHED_FIFO priority of the real-time runs (as auspexd --realtime-priority)
+        #[arg(long, value_name = "P", default_value_t = auspexd::realtime::DEFAULT_PRIORITY)]
+        realtime_priority: i32,
+        /// One latency run over this transport, printed as JSON (what --under-load runs in each child)
+        #[arg(long, hide = true, value_parser = ["tcp", "ipc"])]
+        latency_once: Option<String>,
+        /// With --latency-once: in real-time mode
+        #[arg(long, hide = true)]
+        realtime: bool,
+        /// Be a competing load until killed (what --under-load starts)
+        #[arg(long, hide = true, value_parser = ["cpu", "memory"])]
+        burn: Option<String>,
     },
     /// Merge many sessions' validation.json (e.g. from a cluster job array) into one CSV table
     Gather {
@@ -639,7 +661,39 @@ fn main() {
         )
         .map(|_| ()),
         // The daemon runs in this process on the runtime it has when deployed.
-        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, learning, thread_scaling, threads, shards, table_memory_mb } => auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
+        Cmd::Bench { burn: Some(kind), .. } => auspex::bench::burn(if kind == "memory" { auspex::bench::Burn::Memory } else { auspex::bench::Burn::Cpu }),
+        Cmd::Bench { latency_once: Some(transport), seconds, units, stimuli, realtime, realtime_priority, .. } => (|| {
+            if realtime {
+                let plan = auspexd::realtime::Plan { priority: realtime_priority, cpus: Vec::new() };
+                plan.check().map_err(anyhow::Error::msg)?;
+                // Before the runtime: its thread (the daemon's sockets and the measuring
+                // client's, as a closed-loop program at the rig would run) takes the policy.
+                auspexd::realtime::configure(plan);
+            }
+            auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
+                rt.block_on(async {
+                    let dir = tempfile::tempdir()?;
+                    let l = auspex::bench::latency(units, stimuli, seconds, &transport, dir.path(), false, 1).await?;
+                    if realtime && auspexd::realtime::summary().starts_with("REFUSED") {
+                        anyhow::bail!("real-time mode was refused: {}", auspexd::realtime::summary());
+                    }
+                    println!("{}", serde_json::to_string(&l)?);
+                    Ok(())
+                })
+            })
+        })(),
+        Cmd::Bench { under_load: Some(cpu), memory_load, turns, seconds, units, stimuli, realtime_priority, json, .. } => (|| {
+            if !(seconds > 0.0 && units > 0 && stimuli > 1 && turns > 0) {
+                anyhow::bail!("--seconds must be > 0, --units ≥ 1, --stimuli ≥ 2 and --turns ≥ 1");
+            }
+            auspexd::realtime::Plan { priority: realtime_priority, cpus: Vec::new() }.check().map_err(anyhow::Error::msg)?;
+            let out = auspex::bench::under_load(cpu, memory_load, turns, seconds, (units, stimuli), realtime_priority)?;
+            if json {
+                println!("{}", serde_json::to_string(&out)?);
+            }
+            Ok(())
+        })(),
+        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, learning, thread_scaling, threads, shards, table_memory_mb, .. } => auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
             rt.block_on(async {
                 if !(seconds > 0.0 && units > 0 && stimuli > 1) {
                     anyhow::bail!("--seconds must be > 0, --units ≥ 1 and --stimuli ≥ 2");

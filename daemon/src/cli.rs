@@ -88,6 +88,17 @@ pub struct DaemonArgs {
     /// refused (and counted) before the memory is asked for, and the daemon keeps what it had [default: 2048]
     #[arg(long)]
     pub memory_budget_mb: Option<u64>,
+    /// Real-time mode: the threads from spike to decision run under SCHED_FIFO, memory is
+    /// locked; a guard demotes a thread busy over 200 ms. Without the privilege the daemon runs
+    /// as usual and says so (log, status)
+    #[arg(long)]
+    pub realtime: bool,
+    /// SCHED_FIFO priority of the engine threads in real-time mode, 1..=97 (implies --realtime) [default: 20]
+    #[arg(long, value_name = "P")]
+    pub realtime_priority: Option<i32>,
+    /// Cores the real-time threads run on, e.g. 2,3 (implies --realtime; leave the acquisition its own)
+    #[arg(long, value_name = "LIST", value_delimiter = ',')]
+    pub realtime_cpus: Vec<usize>,
     /// Engine threads sharing the model's units; frames are identical for any number (`auspex bench` recommends one) [default: 1]
     #[arg(long, value_name = "N")]
     pub threads: Option<u32>,
@@ -165,6 +176,15 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
     if a.threads.is_some() {
         f.threads = a.threads;
     }
+    if a.realtime {
+        f.realtime = Some(true);
+    }
+    if a.realtime_priority.is_some() {
+        f.realtime_priority = a.realtime_priority;
+    }
+    if !a.realtime_cpus.is_empty() {
+        f.realtime_cpus = Some(a.realtime_cpus.clone());
+    }
     over!(role, part, parts, link, shard_deadline_ms);
     if !a.shards.is_empty() {
         f.shards = Some(a.shards.clone());
@@ -216,6 +236,10 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
     };
     for w in warnings {
         tracing::warn!("{w}");
+    }
+    if let Some(plan) = &cfg.realtime {
+        // Before the runtime: its socket thread takes the policy as it starts.
+        crate::realtime::configure(plan.clone());
     }
     let rt = match crate::service::io_runtime() {
         Ok(rt) => rt,

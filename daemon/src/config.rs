@@ -62,6 +62,12 @@ pub struct FileConfig {
     pub memory_budget_mb: Option<u64>,
     /// Engine threads sharing the units (frames are identical for any number).
     pub threads: Option<u32>,
+    /// Real-time mode for the threads on the spike → frame → decision path ([`crate::realtime`]).
+    pub realtime: Option<bool>,
+    /// Their `SCHED_FIFO` priority (1..=97; the socket thread one above).
+    pub realtime_priority: Option<i32>,
+    /// Cores the path threads run on (empty or absent: any).
+    pub realtime_cpus: Option<Vec<usize>>,
     /// Learn from the session's labelled trials (default: on without a model, off with one).
     pub learn: Option<bool>,
     /// Start with learning frozen (trials are kept, no refits until resumed).
@@ -189,6 +195,8 @@ pub struct DaemonConfig {
     pub table_memory: LookupBudget,
     /// Engine threads (1: the engine thread alone).
     pub threads: u32,
+    /// Real-time mode (None: off).
+    pub realtime: Option<crate::realtime::Plan>,
     /// Whole daemon, shard or combiner.
     pub deployment: Deployment,
 }
@@ -441,9 +449,25 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
             crate::workers::MAX_THREADS
         )));
     }
+    let realtime = if f.realtime.unwrap_or(false)
+        || f.realtime_priority.is_some()
+        || f.realtime_cpus.as_ref().is_some_and(|c| !c.is_empty())
+    {
+        let plan = crate::realtime::Plan {
+            priority: f
+                .realtime_priority
+                .unwrap_or(crate::realtime::DEFAULT_PRIORITY),
+            cpus: f.realtime_cpus.clone().unwrap_or_default(),
+        };
+        plan.check()?;
+        Some(plan)
+    } else {
+        None
+    };
     Ok(DaemonConfig {
         deployment,
         threads,
+        realtime,
         table_memory,
         model,
         learn,

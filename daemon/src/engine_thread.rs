@@ -318,7 +318,14 @@ impl EngineThread {
 
     /// Runs until Shutdown or until every sender is gone.
     pub fn run(mut self, rx: Receiver<EngineInput>) {
+        let rt = crate::realtime::enter("engine thread", 0);
         loop {
+            if let Some(t) = &rt {
+                // Only a real pause counts: messages taken back to back are one busy stretch.
+                if rx.is_empty() {
+                    t.idle();
+                }
+            }
             let wait = self
                 .health_period
                 .saturating_sub(self.last_health.elapsed())
@@ -336,6 +343,9 @@ impl EngineThread {
                     default(wait) => Err(RecvTimeoutError::Timeout),
                 },
             };
+            if let Some(t) = &rt {
+                t.busy();
+            }
             match input {
                 Ok(EngineInput::Inbound {
                     endpoint,

@@ -32,6 +32,7 @@ pub mod publish;
 #[cfg(not(feature = "fuzzing"))]
 mod publish;
 mod ratelog;
+pub mod realtime;
 mod recorder;
 pub mod service;
 #[cfg(feature = "fuzzing")]

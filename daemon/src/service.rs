@@ -73,10 +73,41 @@ pub struct StopSummary {
 /// path — ingest task, engine thread, publisher and the PUB socket's tasks — needs fewer
 /// cross-thread wake-ups: on the 2-core benchmark machine this halved the median spike-batch →
 /// posterior latency and cut its 99.9th percentile from ~1.5–2 ms to ~0.7 ms (`BENCHMARKS.md`).
+///
+/// In real-time mode ([`crate::realtime::configure`] called first) its worker thread — the
+/// first the runtime starts — runs under `SCHED_FIFO` one above the engine thread, and tells
+/// the guard when it parks and wakes.
 pub fn io_runtime() -> std::io::Result<tokio::runtime::Runtime> {
+    use std::sync::atomic::{AtomicBool, Ordering};
+    thread_local! {
+        static PATH: std::cell::RefCell<Option<std::sync::Arc<crate::realtime::PathThread>>> =
+            const { std::cell::RefCell::new(None) };
+    }
+    let first = std::sync::Arc::new(AtomicBool::new(true));
     tokio::runtime::Builder::new_multi_thread()
         .worker_threads(1)
         .thread_name("auspexd-io")
+        .on_thread_start(move || {
+            // Only the worker (started with the runtime); blocking-pool threads stay ordinary.
+            if crate::realtime::configured() && first.swap(false, Ordering::Relaxed) {
+                let t = crate::realtime::enter("socket thread", 1);
+                PATH.with(|p| *p.borrow_mut() = t);
+            }
+        })
+        .on_thread_park(|| {
+            PATH.with(|p| {
+                if let Some(t) = p.borrow().as_ref() {
+                    t.idle();
+                }
+            })
+        })
+        .on_thread_unpark(|| {
+            PATH.with(|p| {
+                if let Some(t) = p.borrow().as_ref() {
+                    t.busy();
+                }
+            })
+        })
         .enable_all()
         .build()
 }
@@ -360,7 +391,9 @@ pub async fn start(cfg: DaemonConfig) -> Result<Running, StartError> {
         publish = %endpoints.publish, control = %endpoints.control,
         recording = %endpoints.recording.as_ref().map(|p| p.display().to_string()).unwrap_or_else(|| "off".into()),
         model = %model_label, learning = cfg.learn.is_some(), role = cfg.deployment.name(),
-        link = %endpoints.link.as_deref().unwrap_or("none"), "auspexd listening");
+        link = %endpoints.link.as_deref().unwrap_or("none"),
+        realtime = if crate::realtime::configured() { "requested (`auspex status` says what was granted)" } else { "off" },
+        "auspexd listening");
     Ok(Running {
         endpoints,
         stop_tx,

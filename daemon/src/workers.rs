@@ -207,7 +207,17 @@ impl Drop for Workers {
 
 /// The next message: a short spin first (bins arrive every few µs when decoding flat out, and
 /// parking and waking a thread per bin costs more than the bin), then a blocking wait.
-fn next(rx: &Receiver<WorkerMsg>) -> Option<WorkerMsg> {
+fn next(rx: &Receiver<WorkerMsg>, rt: Option<&crate::realtime::PathThread>) -> Option<WorkerMsg> {
+    if let Some(t) = rt {
+        // Real-time threads never spin: they block, and tell the guard.
+        if let Ok(m) = rx.try_recv() {
+            return Some(m);
+        }
+        t.idle();
+        let m = rx.recv().ok();
+        t.busy();
+        return m;
+    }
     let t0 = std::time::Instant::now();
     loop {
         match rx.try_recv() {
@@ -258,7 +268,8 @@ fn worker(
         tx: &tx,
         recycled: &recycled,
     };
-    while let Some(msg) = next(&rx) {
+    let rt = crate::realtime::enter("engine worker", 0);
+    while let Some(msg) = next(&rx, rt.as_deref()) {
         match msg {
             WorkerMsg::New(m, c) => {
                 // The combiner built the same engine with the same model and settings.

@@ -896,6 +896,11 @@ pub fn policy_line(s: &v1::Status) -> String {
         s.threshold,
         s.min_time_s * 1000.0
     );
+    if s.realtime.starts_with("REFUSED") {
+        out += " · real-time REFUSED (see status)";
+    } else if s.realtime.starts_with("on") {
+        out += " · real-time";
+    }
     if let Some(p) = &s.promise {
         out += &format!(
             " · calibration {}{}",

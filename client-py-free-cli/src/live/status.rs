@@ -7,7 +7,7 @@ use std::fmt::Write;
 /// Status as one JSON object (for scripts).
 pub fn status_json(s: &v1::Status) -> serde_json::Value {
     serde_json::json!({"version": s.version, "model": s.model_path, "stimuli": s.stimuli, "units": s.units.len(),
-                        "decoder": s.decoder, "engine_threads": s.engine_threads, "role": s.role, "part": s.part, "parts": s.parts,
+                        "decoder": s.decoder, "engine_threads": s.engine_threads, "role": s.role, "part": s.part, "parts": s.parts, "realtime": s.realtime,
                         "shards": s.shards.iter().map(|x| serde_json::json!({"part": x.part, "endpoint": x.endpoint, "joined": x.joined, "partials": x.partials, "times_lost": x.times_lost, "silent_s": x.silent_s, "note": x.note})).collect::<Vec<_>>(), "threshold": s.threshold, "min_time_s": s.min_time_s, "prior": s.prior, "tick_rate_hz": s.tick_rate_hz,
                         "open_trials": s.open_trials, "recording": s.recording_path, "session": s.session_name,
                         "promise": s.promise.as_ref().map(|p| serde_json::json!({"target_accuracy": (p.target_accuracy > 0.0).then_some(p.target_accuracy), "withheld": p.withheld, "evidence": p.evidence, "calibrated": p.calibrated, "calibration": p.calibration})),
@@ -21,7 +21,7 @@ pub fn status_json(s: &v1::Status) -> serde_json::Value {
 /// The daemon's counters and rates (`status --json`'s `health`): everything `status` prints.
 pub fn health_json(h: &v1::Health) -> serde_json::Value {
     serde_json::json!({
-        "uptime_s": h.uptime_s, "messages_in": h.messages_in, "spikes_in": h.spikes_in, "frames_out": h.frames_out,
+        "uptime_s": h.uptime_s, "incarnation": h.incarnation, "realtime_demotions": h.realtime_demotions, "messages_in": h.messages_in, "spikes_in": h.spikes_in, "frames_out": h.frames_out,
         "spikes_per_s": h.spikes_per_s, "frames_per_s": h.frames_per_s,
         "late_spikes": h.late_spikes, "unknown_unit_spikes": h.unknown_unit_spikes, "malformed_messages": h.malformed_messages,
         "sequence_gaps": h.sequence_gaps, "duplicate_messages": h.duplicate_messages, "watermark_backwards": h.watermark_backwards,
@@ -91,6 +91,18 @@ pub fn status_text(s: &v1::Status) -> String {
     );
     for l in crate::monitor::deployment_lines(s) {
         out!("{l}");
+    }
+    if !s.realtime.is_empty() && s.realtime != "off" {
+        let demoted = s.health.as_ref().map_or(0, |h| h.realtime_demotions);
+        out!(
+            "real-time {}{}",
+            s.realtime,
+            if demoted > 0 {
+                format!(" · {demoted} demotion(s) by the guard")
+            } else {
+                String::new()
+            }
+        );
     }
     for l in crate::monitor::promise_lines(s) {
         out!("{l}");

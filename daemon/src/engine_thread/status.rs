@@ -33,6 +33,7 @@ impl EngineThread {
         v1::Health {
             uptime_s: self.started.elapsed().as_secs_f64(),
             incarnation: self.incarnation,
+            realtime_demotions: crate::realtime::demotions(),
             messages_in: self.counters.messages_in,
             spikes_in: ec.spikes,
             frames_out: ec.frames,
@@ -188,6 +189,7 @@ impl EngineThread {
                 Link::Combine { shards, .. } => shards.len() as u32,
                 Link::None => 0,
             },
+            realtime: crate::realtime::summary(),
         }
     }
 }
