@@ -1187,14 +1187,22 @@ pub fn latency_child(
     transport: &str,
     seconds: f64,
     size: (usize, usize),
-    realtime: Option<i32>,
+    realtime: Option<&auspexd::realtime::Plan>,
+    learning: bool,
 ) -> anyhow::Result<Latency> {
     let mut cmd = std::process::Command::new(exe);
     cmd.args(["bench", "--latency-once", transport, "--seconds"])
         .arg(seconds.to_string())
         .args(["--units", &size.0.to_string(), "--stimuli", &size.1.to_string()]);
+    if learning {
+        cmd.arg("--learning");
+    }
     if let Some(p) = realtime {
-        cmd.args(["--realtime", "--realtime-priority", &p.to_string()]);
+        cmd.args(["--realtime", "--realtime-priority", &p.priority.to_string()]);
+        if !p.cpus.is_empty() {
+            let cpus: Vec<String> = p.cpus.iter().map(|c| c.to_string()).collect();
+            cmd.args(["--realtime-cpus", &cpus.join(",")]);
+        }
     }
     let out = cmd.stderr(std::process::Stdio::inherit()).output()?;
     if !out.status.success() {
@@ -1220,7 +1228,7 @@ pub struct LoadedMode {
 
 /// Batch → posterior latency with `cpu` CPU-bound and `memory` memory-streaming processes of
 /// ordinary priority running beside it (started here, ended here), in normal and in real-time
-/// mode (`SCHED_FIFO` at `priority`), over tcp and ipc: `turns` turns, each running every mode
+/// mode (`plan`: `SCHED_FIFO` at its priority, on its cores), over tcp and ipc: `turns` turns, each running every mode
 /// once, the order of normal and real-time alternating from turn to turn so that a drift in the
 /// machine's load falls on both.
 pub fn under_load(
@@ -1229,8 +1237,10 @@ pub fn under_load(
     turns: usize,
     seconds: f64,
     size: (usize, usize),
-    priority: i32,
+    plan: &auspexd::realtime::Plan,
+    learning: bool,
 ) -> anyhow::Result<Vec<LoadedMode>> {
+    let priority = plan.priority;
     let exe = std::env::current_exe()?;
     struct Loads(Vec<std::process::Child>);
     impl Drop for Loads {
@@ -1257,10 +1267,17 @@ pub fn under_load(
         "latency under load: {cpu} CPU-bound and {memory} memory-streaming processes of ordinary priority; {} units × {} stimuli, {seconds} s per run, {turns} turns of normal and real-time (SCHED_FIFO {priority}) over tcp and ipc …",
         size.0, size.1
     );
-    let modes: Vec<(&str, Option<i32>)> = vec![("normal", None), ("real-time", Some(priority))];
+    // (name, real-time plan, learning): with `learning`, a third mode learns in real-time mode
+    // (a refit after every trial, the heaviest load the learner puts on the path).
+    let mut modes: Vec<(&str, Option<&auspexd::realtime::Plan>, bool)> =
+        vec![("normal", None, false), ("real-time", Some(plan), false)];
+    if learning {
+        modes.push(("real-time, learning", Some(plan), true));
+    }
+    let nm = modes.len();
     let mut out: Vec<LoadedMode> = Vec::new();
     for transport in ["tcp", "ipc"] {
-        for (name, _) in &modes {
+        for (name, _, _) in &modes {
             out.push(LoadedMode {
                 name: format!("{transport}, {name}"),
                 runs: Vec::new(),
@@ -1268,20 +1285,23 @@ pub fn under_load(
         }
     }
     for turn in 0..turns {
-        let order: Vec<usize> = if turn % 2 == 0 { vec![0, 1] } else { vec![1, 0] };
+        let mut order: Vec<usize> = (0..nm).collect();
+        if turn % 2 == 1 {
+            order.reverse();
+        }
         for (ti, transport) in ["tcp", "ipc"].iter().enumerate() {
             for &m in &order {
-                let l = latency_child(&exe, transport, seconds, size, modes[m].1)?;
+                let l = latency_child(&exe, transport, seconds, size, modes[m].1, modes[m].2)?;
                 eprintln!(
                     "  turn {}: {:<14} p50 {:>6.0} µs  p99 {:>7.0} µs  p99.9 {:>7.0} µs  worst {:>7.0} µs",
                     turn + 1,
-                    out[ti * 2 + m].name,
+                    out[ti * nm + m].name,
                     l.p50_us,
                     l.p99_us,
                     l.p999_us,
                     l.max_us
                 );
-                out[ti * 2 + m].runs.push(l);
+                out[ti * nm + m].runs.push(l);
             }
         }
     }

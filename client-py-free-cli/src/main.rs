@@ -147,6 +147,34 @@ enum Cmd {
         #[arg(long)]
         write_true_model: Option<PathBuf>,
     },
+    /// Simulated experiments in which stimulus-choice policies pick every trial's stimulus:
+    /// trials until every unit's preferred stimulus is known, policies side by side
+    ClosedLoopSim {
+        /// Units per experiment (comma-separated sizes)
+        #[arg(long, value_delimiter = ',', default_value = "1,2,4")]
+        units: Vec<usize>,
+        /// Stimuli, evenly spaced on a circle (comma-separated sizes)
+        #[arg(long, value_delimiter = ',', default_value = "16,32,64")]
+        stimuli: Vec<usize>,
+        /// Seeds (simulated experiments) per size and policy
+        #[arg(long, default_value_t = 20)]
+        seeds: u64,
+        /// Give up after this many trials
+        #[arg(long, default_value_t = 3000)]
+        max_trials: usize,
+        /// Whole balanced blocks before any policy choice
+        #[arg(long, default_value_t = 1)]
+        warmup_blocks: usize,
+        /// Every stimulus gets at least this share of its equal share of trials
+        #[arg(long, default_value_t = 0.25)]
+        min_share: f64,
+        /// No stimulus more than this many times in a row
+        #[arg(long, default_value_t = 3)]
+        max_run: usize,
+        /// Also print every experiment's trials as JSON
+        #[arg(long)]
+        json: bool,
+    },
     /// Fit per-(unit, stimulus) spike-train models and write a model file
     Fit {
         #[command(flatten)]
@@ -311,7 +339,7 @@ enum Cmd {
         table_memory_mb: LookupBudget,
         /// Latency with N CPU-bound processes of ordinary priority beside it (started and ended
         /// here), normal vs real-time mode (auspexd --realtime), over tcp and ipc, in turns
-        #[arg(long, value_name = "N", conflicts_with_all = ["model", "learning", "thread_scaling", "no_latency", "shards"])]
+        #[arg(long, value_name = "N", conflicts_with_all = ["model", "thread_scaling", "no_latency", "shards"])]
         under_load: Option<usize>,
         /// With --under-load: also M processes streaming through memory
         #[arg(long, value_name = "M", default_value_t = 0, requires = "under_load")]
@@ -322,6 +350,9 @@ enum Cmd {
         /// SCHED_FIFO priority of the real-time runs (as auspexd --realtime-priority)
         #[arg(long, value_name = "P", default_value_t = auspexd::realtime::DEFAULT_PRIORITY)]
         realtime_priority: i32,
+        /// Cores of the real-time runs' threads (as auspexd --realtime-cpus)
+        #[arg(long, value_name = "LIST", value_delimiter = ',')]
+        realtime_cpus: Vec<usize>,
         /// One latency run over this transport, printed as JSON (what --under-load runs in each child)
         #[arg(long, hide = true, value_parser = ["tcp", "ipc"])]
         latency_once: Option<String>,
@@ -662,9 +693,9 @@ fn main() {
         .map(|_| ()),
         // The daemon runs in this process on the runtime it has when deployed.
         Cmd::Bench { burn: Some(kind), .. } => auspex::bench::burn(if kind == "memory" { auspex::bench::Burn::Memory } else { auspex::bench::Burn::Cpu }),
-        Cmd::Bench { latency_once: Some(transport), seconds, units, stimuli, realtime, realtime_priority, .. } => (|| {
+        Cmd::Bench { latency_once: Some(transport), seconds, units, stimuli, realtime, realtime_priority, realtime_cpus, learning, .. } => (|| {
             if realtime {
-                let plan = auspexd::realtime::Plan { priority: realtime_priority, cpus: Vec::new() };
+                let plan = auspexd::realtime::Plan { priority: realtime_priority, cpus: realtime_cpus };
                 plan.check().map_err(anyhow::Error::msg)?;
                 // Before the runtime: its thread (the daemon's sockets and the measuring
                 // client's, as a closed-loop program at the rig would run) takes the policy.
@@ -673,7 +704,7 @@ fn main() {
             auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
                 rt.block_on(async {
                     let dir = tempfile::tempdir()?;
-                    let l = auspex::bench::latency(units, stimuli, seconds, &transport, dir.path(), false, 1).await?;
+                    let l = auspex::bench::latency(units, stimuli, seconds, &transport, dir.path(), learning, 1).await?;
                     if realtime && auspexd::realtime::summary().starts_with("REFUSED") {
                         anyhow::bail!("real-time mode was refused: {}", auspexd::realtime::summary());
                     }
@@ -682,12 +713,13 @@ fn main() {
                 })
             })
         })(),
-        Cmd::Bench { under_load: Some(cpu), memory_load, turns, seconds, units, stimuli, realtime_priority, json, .. } => (|| {
+        Cmd::Bench { under_load: Some(cpu), memory_load, turns, seconds, units, stimuli, realtime_priority, realtime_cpus, json, learning, .. } => (|| {
             if !(seconds > 0.0 && units > 0 && stimuli > 1 && turns > 0) {
                 anyhow::bail!("--seconds must be > 0, --units ≥ 1, --stimuli ≥ 2 and --turns ≥ 1");
             }
-            auspexd::realtime::Plan { priority: realtime_priority, cpus: Vec::new() }.check().map_err(anyhow::Error::msg)?;
-            let out = auspex::bench::under_load(cpu, memory_load, turns, seconds, (units, stimuli), realtime_priority)?;
+            let plan = auspexd::realtime::Plan { priority: realtime_priority, cpus: realtime_cpus };
+            plan.check().map_err(anyhow::Error::msg)?;
+            let out = auspex::bench::under_load(cpu, memory_load, turns, seconds, (units, stimuli), &plan, learning)?;
             if json {
                 println!("{}", serde_json::to_string(&out)?);
             }
@@ -721,6 +753,14 @@ fn main() {
             })
         }),
         Cmd::Export { model, out } => commands::export_cmd(&model, out.as_deref()),
+        Cmd::ClosedLoopSim { units, stimuli, seeds, max_trials, warmup_blocks, min_share, max_run, json } => auspex::offline::steering::closed_loop_cmd(
+            &units,
+            &stimuli,
+            seeds,
+            max_trials,
+            auspex_modelling::design::Constraints { warmup_blocks, min_share, max_run },
+            json,
+        ),
         Cmd::Gather { paths, out } => auspex::gather::gather_cmd(&paths, out.as_deref()),
         Cmd::Inspect { file, model } => match file.or(model) {
             Some(m) => commands::inspect_cmd(&m),

@@ -125,9 +125,39 @@ pub fn configure(plan: Plan) {
         return;
     }
     set_rttime_limit();
+    hold_off_deep_idle(st_ref());
     let _ = std::thread::Builder::new()
         .name("auspex-rt-guard".into())
         .spawn(guard);
+}
+
+fn st_ref() -> &'static State {
+    STATE.get().expect("set above")
+}
+
+/// Asks the kernel to keep the cores out of deep idle states while the daemon runs (the PM QoS
+/// interface `/dev/cpu_dma_latency`: a request of 0 µs holds while the file stays open): waking
+/// a core from a deep idle state costs tens of microseconds on every batch of an idle machine.
+/// Root only; skipped quietly otherwise (the status line says which).
+fn hold_off_deep_idle(st: &State) {
+    use std::io::Write;
+    let held = std::fs::OpenOptions::new()
+        .write(true)
+        .open("/dev/cpu_dma_latency")
+        .and_then(|mut f| {
+            f.write_all(&0i32.to_ne_bytes())?;
+            Ok(f)
+        });
+    if let Ok(mut m) = st.memory.lock() {
+        match held {
+            Ok(f) => {
+                // Kept open for the process's life: closing it ends the request.
+                std::mem::forget(f);
+                m.push_str("; deep idle states held off");
+            }
+            Err(_) => m.push_str("; deep idle states allowed (/dev/cpu_dma_latency needs root)"),
+        }
+    }
 }
 
 /// Whether the mode was asked for in this process.
@@ -292,9 +322,19 @@ fn lock_memory() -> String {
         rlim_cur: 0,
         rlim_max: 0,
     };
-    // SAFETY: a valid rlimit to fill.
-    let unlimited = unsafe { libc::getrlimit(libc::RLIMIT_MEMLOCK, &mut lim) } == 0
-        && lim.rlim_cur == libc::RLIM_INFINITY;
+    // SAFETY: a valid rlimit to fill, then to set (raising the soft limit up to the hard one,
+    // or past it with CAP_SYS_RESOURCE, as root has).
+    let unlimited = unsafe {
+        let _ = libc::getrlimit(libc::RLIMIT_MEMLOCK, &mut lim);
+        let all = libc::rlimit {
+            rlim_cur: libc::RLIM_INFINITY,
+            rlim_max: libc::RLIM_INFINITY,
+        };
+        if libc::setrlimit(libc::RLIMIT_MEMLOCK, &all) == 0 {
+            lim = all;
+        }
+        lim.rlim_cur == libc::RLIM_INFINITY
+    };
     let flags = if unlimited {
         libc::MCL_CURRENT | libc::MCL_FUTURE
     } else {

@@ -1,7 +1,8 @@
 //! Offline jobs: reading spike and trial tables (`tables`), fitting with progress (`fitting`),
 //! decoding a dataset or a recorded session as acquisition would deliver it (`decode`, its
 //! items re-exported here) and prequentially (`prequential`), exporting a model (`export`),
-//! merging many sessions' validations (`gather`), and the commands behind them (`commands`).
+//! merging many sessions' validations (`gather`), simulated closed-loop experiments comparing
+//! stimulus-choice policies (`steering`), and the commands behind them (`commands`).
 //!
 //! Must not: open sockets or start the daemon (the live jobs do).
 
@@ -11,6 +12,7 @@ pub mod export;
 pub mod fitting;
 pub mod gather;
 pub mod prequential;
+pub mod steering;
 pub mod tables;
 
 pub use decode::*;

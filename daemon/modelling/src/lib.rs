@@ -5,7 +5,8 @@
 //! shrinkage), trial windows (`windows`), calibration fitting and the held-out threshold record
 //! (`calibrate`), validation (`validation`: folds, shuffle null, learning curve, per-unit reports,
 //! goodness of fit), the learner's pure half (`learn`), per-unit verdicts (`assess`), the
-//! simulator (`simulate`), and the statistics they share (`stats`).
+//! simulator (`simulate`), the choice of the next stimulus to learn units' tuning (`design`), and
+//! the statistics they share (`stats`).
 //!
 //! ```text
 //! Dataset / windows ──fit──▶ ModelSpec ──calibrate (held-out folds, engine replays)──▶ Model
@@ -20,6 +21,7 @@
 pub mod assess;
 pub mod calibrate;
 pub mod density;
+pub mod design;
 pub mod families;
 pub mod fit;
 pub mod folds;

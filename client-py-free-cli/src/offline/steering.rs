@@ -1,0 +1,156 @@
+//! `auspex closed-loop-sim`: simulated experiments in which the stimulus-choice policies pick
+//! every trial's stimulus and simulated units answer, counting the trials until every unit's
+//! preferred stimulus is known (`auspex_modelling::design`). Policies side by side, seeds in
+//! parallel on every core, a progress bar.
+
+use auspex_modelling::design::{trials_to_tuning, Constraints, Policy, TunedUnit};
+use rand::{Rng, SeedableRng};
+
+/// Figures of one (units, stimuli) cell for one policy over the seeds.
+#[derive(Clone, Debug, serde::Serialize)]
+pub struct PolicyFigures {
+    /// Policy name.
+    pub policy: &'static str,
+    /// Trials to the criterion per seed (None: not reached within the cap).
+    pub trials: Vec<Option<usize>>,
+}
+
+impl PolicyFigures {
+    /// The q-quantile of the trials (a seed that never reached the criterion counts as the cap).
+    pub fn quantile(&self, q: f64, cap: usize) -> f64 {
+        let mut v: Vec<f64> = self
+            .trials
+            .iter()
+            .map(|t| t.unwrap_or(cap) as f64)
+            .collect();
+        v.sort_by(|a, b| a.total_cmp(b));
+        if v.is_empty() {
+            return f64::NAN;
+        }
+        let i = ((v.len() - 1) as f64 * q).round() as usize;
+        v[i]
+    }
+}
+
+/// The simulated units of one seed: preferred stimuli drawn at random, tuning of moderate
+/// width, baseline firing, over-dispersed counts (Fano 1.2–2) — the project's own scenario.
+pub fn units_of(seed: u64, nu: usize, ns: usize) -> Vec<TunedUnit> {
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed ^ 0x0717);
+    (0..nu)
+        .map(|_| TunedUnit {
+            preferred: rng.gen_range(0..ns),
+            baseline: rng.gen_range(1.0..3.0),
+            peak: rng.gen_range(6.0..12.0),
+            kappa: rng.gen_range(1.5..3.0),
+            fano: rng.gen_range(1.2..2.0),
+        })
+        .collect()
+}
+
+/// Runs every policy on `seeds` seeds of (nu, ns): trials to the criterion.
+pub fn compare(
+    nu: usize,
+    ns: usize,
+    seeds: u64,
+    cap: usize,
+    constraints: Constraints,
+    tick: &(dyn Fn() + Sync),
+) -> Vec<PolicyFigures> {
+    [Policy::BalancedBlocks, Policy::FindTuning]
+        .iter()
+        .map(|&p| {
+            let next = std::sync::atomic::AtomicU64::new(0);
+            let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
+            let mut all: Vec<(u64, Option<usize>)> = std::thread::scope(|sc| {
+                let hs: Vec<_> = (0..threads)
+                    .map(|_| {
+                        sc.spawn(|| {
+                            let mut mine = Vec::new();
+                            loop {
+                                let s = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                                if s >= seeds {
+                                    break;
+                                }
+                                let units = units_of(s, nu, ns);
+                                mine.push((s, trials_to_tuning(&units, ns, p, constraints, s, cap)));
+                                tick();
+                            }
+                            mine
+                        })
+                    })
+                    .collect();
+                hs.into_iter()
+                    .flat_map(|h| h.join().unwrap_or_default())
+                    .collect()
+            });
+            all.sort_by_key(|x| x.0);
+            PolicyFigures {
+                policy: p.name(),
+                trials: all.into_iter().map(|x| x.1).collect(),
+            }
+        })
+        .collect()
+}
+
+/// The command: every (units, stimuli) cell, a table, JSON on request.
+pub fn closed_loop_cmd(
+    units: &[usize],
+    stimuli: &[usize],
+    seeds: u64,
+    cap: usize,
+    constraints: Constraints,
+    json: bool,
+) -> anyhow::Result<()> {
+    for &ns in stimuli {
+        constraints.check(ns).map_err(anyhow::Error::msg)?;
+    }
+    if seeds == 0 || units.iter().any(|&u| u == 0) {
+        anyhow::bail!("give at least one seed and one unit");
+    }
+    let total = (units.len() * stimuli.len()) as u64 * seeds * 2;
+    let bar = crate::progress::bar(
+        std::io::IsTerminal::is_terminal(&std::io::stderr()),
+        total,
+        "simulating",
+        "{pos}/{len} experiments",
+    );
+    let mut rows = Vec::new();
+    for &nu in units {
+        for &ns in stimuli {
+            let figs = compare(nu, ns, seeds, cap, constraints, &|| bar.inc(1));
+            rows.push((nu, ns, figs));
+        }
+    }
+    bar.finish_and_clear();
+    println!(
+        "trials until every unit's preferred stimulus is known (within one neighbour, ≥ {:.0}% posterior probability, and right); {seeds} seeds; cap {cap} trials; warm-up {} block(s), minimum share {}, at most {} in a row",
+        100.0 * auspex_modelling::design::SETTLED,
+        constraints.warmup_blocks,
+        constraints.min_share,
+        constraints.max_run
+    );
+    println!("| units × stimuli | balanced-blocks median [90th pct] | find-tuning median [90th pct] | ratio of medians | not reached (b / f) |");
+    println!("|---|---|---|---|---|");
+    for (nu, ns, figs) in &rows {
+        let (b, f) = (&figs[0], &figs[1]);
+        let miss = |p: &PolicyFigures| p.trials.iter().filter(|t| t.is_none()).count();
+        println!(
+            "| {nu} × {ns} | {:.0} [{:.0}] | {:.0} [{:.0}] | {:.2} | {} / {} |",
+            b.quantile(0.5, cap),
+            b.quantile(0.9, cap),
+            f.quantile(0.5, cap),
+            f.quantile(0.9, cap),
+            f.quantile(0.5, cap) / b.quantile(0.5, cap),
+            miss(b),
+            miss(f)
+        );
+    }
+    if json {
+        let j: Vec<_> = rows
+            .iter()
+            .map(|(nu, ns, figs)| serde_json::json!({"units": nu, "stimuli": ns, "policies": figs}))
+            .collect();
+        println!("{}", serde_json::to_string(&j)?);
+    }
+    Ok(())
+}
