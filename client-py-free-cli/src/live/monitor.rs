@@ -505,14 +505,13 @@ impl MonitorState {
         // Each footer line in whole parts: a narrow screen drops the last ones.
         let w = rows[3].width as usize;
         let parts = |text: String, sep: &str, style: Style| -> Line<'static> {
-            let pieces: Vec<String> = text.split(sep).map(str::to_string).collect();
-            let n = pieces.len();
+            // Each part after the first carries its separator in front: a part left out takes
+            // its separator with it (no line ends in a dangling " ·").
             fit_line(
-                pieces
-                    .into_iter()
+                text.split(sep)
                     .enumerate()
                     .map(|(i, p)| {
-                        Span::styled(if i + 1 < n { format!("{p}{sep}") } else { p }, style)
+                        Span::styled(if i > 0 { format!("{sep}{p}") } else { p.to_string() }, style)
                     })
                     .collect(),
                 w,
@@ -1406,12 +1405,15 @@ mod tests {
             },
         );
         st.missed = 1640;
-        st.policy = "decide at θ 0.9 after 20 ms · prior flat".into();
+        st.policy = "decide at θ 0.9 after 20 ms · calibration temperature (β 0.883) · held out at θ 0.9: 300/320 right".into();
         let wide = tokens(&render_at(&st, 250, 48));
         for (w, h) in [(80, 24), (120, 40), (160, 48)] {
             let screen = render_at(&st, w, h);
             for t in tokens(&screen) {
                 assert!(wide.contains(&t), "{w}×{h}: `{t}` is cut:\n{screen}");
+            }
+            for l in screen.lines() {
+                assert!(!l.trim_end().ends_with('·'), "{w}×{h}: a dangling separator: {l}");
             }
             let line56 = screen.lines().find(|l| l.contains("#56")).unwrap();
             assert!(
