@@ -17,18 +17,8 @@ use zeromq::{Socket, SocketSend};
 
 /// The daemon-spawning tests run one at a time: each picks free ports by binding port 0 and
 /// letting go, which two tests at once could pick alike.
-fn serial() -> std::sync::MutexGuard<'static, ()> {
-    static LOCK: std::sync::Mutex<()> = std::sync::Mutex::new(());
-    LOCK.lock().unwrap_or_else(|e| e.into_inner())
-}
-
-fn free_port() -> u16 {
-    std::net::TcpListener::bind(("127.0.0.1", 0))
-        .unwrap()
-        .local_addr()
-        .unwrap()
-        .port()
-}
+mod common;
+use common::{free_port, serial};
 
 fn small_scenario() -> Scenario {
     let text = std::fs::read_to_string(auspex::demo_dir().join("scenario.toml")).unwrap();

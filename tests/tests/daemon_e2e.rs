@@ -36,20 +36,7 @@ fn fixture(trials: u32) -> Fixture {
 fn fixture_of(trials: u32, sc: Scenario) -> Fixture {
     let dir = tempfile::tempdir().unwrap();
     let truth = Model::new(sc.true_model().unwrap()).unwrap();
-    let train = simulate(
-        &truth,
-        &SimOptions {
-            trials_per_stimulus: 10,
-            ..sc.sim_options()
-        },
-    );
-    let opts = FitOptions {
-        window_s: sc.window_ms / 1000.0,
-        ..FitOptions::default()
-    };
-    let spec = plan(&train, &opts).unwrap().fit_all();
-    let model_path = dir.path().join("m.apxm");
-    auspex_proto::model_file::save_model(&model_path, &spec, "e2e").unwrap();
+    let (model_path, spec) = common::fitted_model(&sc, 10, dir.path());
     let data = simulate(
         &truth,
         &SimOptions {

@@ -7,7 +7,6 @@ use auspex::monitor::screen_words;
 use auspex::session::{monitor_on, TextScreen, View};
 use auspex::wire::dataset_messages;
 use auspex_engine::{Dataset, Model};
-use auspex_modelling::fit::{plan, FitOptions};
 use auspex_modelling::simulate::{simulate, SimOptions};
 use auspex_proto::v1::{self, control_request};
 use auspexd::config::{validate, DaemonConfig, FileConfig};
@@ -28,24 +27,10 @@ struct Fixture {
 fn fixture() -> Fixture {
     let sc = common::demo_scenario(10, 4);
     let dir = tempfile::tempdir().unwrap();
-    let truth = Model::new(sc.true_model().unwrap()).unwrap();
-    let train = simulate(
-        &truth,
-        &SimOptions {
-            trials_per_stimulus: 10,
-            ..sc.sim_options()
-        },
-    );
-    let opts = FitOptions {
-        window_s: sc.window_ms / 1000.0,
-        ..FitOptions::default()
-    };
-    let spec = plan(&train, &opts).unwrap().fit_all();
-    let model_path = dir.path().join("m.apxm");
-    auspex_proto::model_file::save_model(&model_path, &spec, "e2e").unwrap();
+    let (model_path, spec) = common::fitted_model(&sc, 10, dir.path());
     let model = Model::new(spec).unwrap();
     Fixture {
-        bin_ticks: (model.bin_width_s() * train.tick_rate_hz).round() as i64,
+        bin_ticks: (model.bin_width_s() * sc.tick_rate_hz).round() as i64,
         n_bins: model.n_bins(),
         model_path,
         _dir: dir,

@@ -291,6 +291,37 @@ fn deploy(
     (shards, links, comb)
 }
 
+/// A subscriber's stop signal and its thread.
+type Collecting = (
+    std::sync::mpsc::Sender<()>,
+    std::thread::JoinHandle<Vec<(String, v1::Outbound)>>,
+);
+
+/// Waits until the combiner has completed `n_trials`, then stops the subscriber and the
+/// deployment (combiner, shards): the frames collected.
+fn finish(
+    rt: &tokio::runtime::Runtime,
+    ctx: &zmq::Context,
+    (comb, shards): (Running, Vec<Running>),
+    n_trials: u64,
+    what: &str,
+    (stop_sub, sub): Collecting,
+) -> Vec<(u64, u32, Vec<f64>, u64)> {
+    let control = comb.endpoints.control.clone();
+    wait_for(
+        || status(ctx, &control).health.unwrap().trials_completed == n_trials,
+        what,
+    );
+    std::thread::sleep(Duration::from_millis(300));
+    stop_sub.send(()).unwrap();
+    let got = frames(&sub.join().unwrap());
+    rt.block_on(comb.stop());
+    for s in shards {
+        rt.block_on(s.stop());
+    }
+    got
+}
+
 #[test]
 fn two_shards_and_a_combiner_give_frames_identical_to_offline_decode() {
     let _serial = serial();
@@ -405,17 +436,14 @@ fn two_shards_and_a_combiner_give_frames_identical_to_offline_decode() {
     for r in [a, b, c] {
         r.unwrap();
     }
-    wait_for(
-        || status(&ctx, &cep.control).health.unwrap().trials_completed == n_trials,
+    let replayed = finish(
+        &rt,
+        &ctx,
+        (comb, shards),
+        n_trials,
         "every replayed trial completed at the combiner",
+        (stop_sub, sub),
     );
-    std::thread::sleep(Duration::from_millis(300));
-    stop_sub.send(()).unwrap();
-    let replayed = frames(&sub.join().unwrap());
-    rt.block_on(comb.stop());
-    for s in shards {
-        rt.block_on(s.stop());
-    }
     assert!(
         replayed == live,
         "the replayed deployment (shards on 2 and 3 threads) gives the live frames, bit for bit"
@@ -576,18 +604,14 @@ fn a_shard_takes_the_last_onset_relayed_after_its_acquisition_ended() {
     );
     send(&ctx, &socks, &cep.control, onset.0, &onset.1);
     send(&ctx, &socks, &cep.control, task_end.0, &task_end.1);
-    let n_trials = f.data.trials.len() as u64;
-    wait_for(
-        || status(&ctx, &cep.control).health.unwrap().trials_completed == n_trials,
+    let live = finish(
+        &rt,
+        &ctx,
+        (comb, shards),
+        f.data.trials.len() as u64,
         "every trial completed at the combiner, the last one too",
+        (stop_sub, sub),
     );
-    std::thread::sleep(Duration::from_millis(300));
-    stop_sub.send(()).unwrap();
-    let live = frames(&sub.join().unwrap());
-    rt.block_on(comb.stop());
-    for s in shards {
-        rt.block_on(s.stop());
-    }
     let want = offline(&f);
     assert_eq!(live.len(), want.len(), "every frame, once");
     for (l, w) in live.iter().zip(&want) {

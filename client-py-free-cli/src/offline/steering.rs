@@ -104,7 +104,7 @@ pub fn closed_loop_cmd(
     for &ns in stimuli {
         constraints.check(ns).map_err(anyhow::Error::msg)?;
     }
-    if seeds == 0 || units.iter().any(|&u| u == 0) {
+    if seeds == 0 || units.contains(&0) {
         anyhow::bail!("give at least one seed and one unit");
     }
     let total = (units.len() * stimuli.len()) as u64 * seeds * 2;

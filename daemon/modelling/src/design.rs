@@ -202,7 +202,7 @@ impl Design {
     }
 
     /// The next stimulus, every constraint honoured.
-    pub fn next(&mut self) -> u32 {
+    pub fn choose(&mut self) -> u32 {
         let t = self.history.len();
         let warm = self.constraints.warmup_blocks * self.ns;
         let choice = if t < warm || self.policy == Policy::BalancedBlocks {
@@ -325,9 +325,9 @@ pub fn trials_to_tuning(
     max_trials: usize,
 ) -> Option<usize> {
     let mut d = Design::new(policy, constraints, units.len(), ns, seed);
-    let mut world = ChaCha8Rng::seed_from_u64(seed ^ 0x5eed_0f_7e57);
+    let mut world = ChaCha8Rng::seed_from_u64(seed ^ 0x005e_ed0f_7e57);
     for t in 1..=max_trials {
-        let s = d.next() as usize;
+        let s = d.choose() as usize;
         let counts: Vec<u32> = units.iter().map(|u| u.draw(s, ns, &mut world)).collect();
         d.record(s as u32, &counts);
         // Checking costs draws: every trial early, then every few.
@@ -381,7 +381,7 @@ mod tests {
             let c = Constraints { warmup_blocks: 1, min_share, max_run };
             let mut d = Design::new(Policy::FindTuning, c, nu, ns, seed);
             for t in 0..120 {
-                let s = d.next();
+                let s = d.choose();
                 let k: Vec<u32> = (0..nu).map(|u| counts[(t * nu + u) % counts.len()] * (s + 1)).collect();
                 d.record(s, &k);
             }

@@ -167,3 +167,29 @@ pub fn many_units_scenario(units: usize, stimuli: usize) -> auspex_modelling::si
         .collect();
     s
 }
+
+/// Fits a model of `sc` on `train_trials` simulated trials per stimulus (seed of the scenario)
+/// as `auspex fit` would, and saves it as `dir/m.apxm`: (its path, the spec).
+pub fn fitted_model(
+    sc: &auspex_modelling::simulate::Scenario,
+    train_trials: u32,
+    dir: &std::path::Path,
+) -> (std::path::PathBuf, auspex_engine::model::ModelSpec) {
+    use auspex_modelling::simulate::{simulate, SimOptions};
+    let truth = auspex_engine::Model::new(sc.true_model().unwrap()).unwrap();
+    let train = simulate(
+        &truth,
+        &SimOptions {
+            trials_per_stimulus: train_trials,
+            ..sc.sim_options()
+        },
+    );
+    let opts = auspex_modelling::fit::FitOptions {
+        window_s: sc.window_ms / 1000.0,
+        ..Default::default()
+    };
+    let spec = auspex_modelling::fit::plan(&train, &opts).unwrap().fit_all();
+    let path = dir.join("m.apxm");
+    auspex_proto::model_file::save_model(&path, &spec, "e2e").unwrap();
+    (path, spec)
+}
