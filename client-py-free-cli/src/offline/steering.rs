@@ -3,8 +3,7 @@
 //! preferred stimulus is known (`auspex_modelling::design`). Policies side by side, seeds in
 //! parallel on every core, a progress bar.
 
-use auspex_modelling::design::{trials_to_tuning, Constraints, Policy, TunedUnit};
-use rand::{Rng, SeedableRng};
+use auspex_modelling::design::{trials_to_tuning, units_of, Constraints, Policy};
 
 /// Figures of one (units, stimuli) cell for one policy over the seeds.
 #[derive(Clone, Debug, serde::Serialize)]
@@ -30,21 +29,6 @@ impl PolicyFigures {
         let i = ((v.len() - 1) as f64 * q).round() as usize;
         v[i]
     }
-}
-
-/// The simulated units of one seed: preferred stimuli drawn at random, tuning of moderate
-/// width, baseline firing, over-dispersed counts (Fano 1.2–2) — the project's own scenario.
-pub fn units_of(seed: u64, nu: usize, ns: usize) -> Vec<TunedUnit> {
-    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed ^ 0x0717);
-    (0..nu)
-        .map(|_| TunedUnit {
-            preferred: rng.gen_range(0..ns),
-            baseline: rng.gen_range(1.0..3.0),
-            peak: rng.gen_range(6.0..12.0),
-            kappa: rng.gen_range(1.5..3.0),
-            fano: rng.gen_range(1.2..2.0),
-        })
-        .collect()
 }
 
 /// Runs every policy on `seeds` seeds of (nu, ns): trials to the criterion.

@@ -314,6 +314,21 @@ impl TunedUnit {
     }
 }
 
+/// The simulated units of one seed: preferred stimuli drawn at random, tuning of moderate
+/// width, baseline firing, over-dispersed counts (Fano 1.2–2) — the project's own scenario.
+pub fn units_of(seed: u64, nu: usize, ns: usize) -> Vec<TunedUnit> {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed ^ 0x0717);
+    (0..nu)
+        .map(|_| TunedUnit {
+            preferred: rng.gen_range(0..ns),
+            baseline: rng.gen_range(1.0..3.0),
+            peak: rng.gen_range(6.0..12.0),
+            kappa: rng.gen_range(1.5..3.0),
+            fano: rng.gen_range(1.2..2.0),
+        })
+        .collect()
+}
+
 /// Plays `units` against `policy` until every unit's preferred stimulus is settled and right
 /// (within one neighbour of the truth): the trials it took, or None within `max_trials`.
 pub fn trials_to_tuning(
