@@ -562,7 +562,7 @@ pub fn summarise(transport: &str, mut lat: Vec<f64>, batches: usize) -> Latency 
 /// `dir`) with the synthetic model of `nu` units × `ns` stimuli, a 1 MHz clock and no task
 /// endpoint: the set-up of every latency run, whichever library the peer uses. With `learning`
 /// the daemon also learns from the labelled trials and refits after every one of them (the
-/// heaviest refit load), swapping each learned model in as it comes.
+/// heaviest refit load), swapping each learned model in as it comes, and records the session.
 pub async fn start_daemon(
     nu: usize,
     ns: usize,
@@ -589,6 +589,9 @@ pub async fn start_daemon(
         control: Some(ep("control")),
         tick_rate_hz: Some(1e6),
         learn: Some(learning),
+        // A learning daemon at the rig records its session too: the recorder's writes and
+        // flushes are part of the load measured.
+        record: learning.then(|| dir.join(format!("bench-{transport}.apxs"))),
         refit_every_trials: Some(1),
         threads: Some(threads),
         ..Default::default()
@@ -1272,7 +1275,7 @@ pub fn under_load(
     let mut modes: Vec<(&str, Option<&auspexd::realtime::Plan>, bool)> =
         vec![("normal", None, false), ("real-time", Some(plan), false)];
     if learning {
-        modes.push(("real-time, learning", Some(plan), true));
+        modes.push(("real-time, learning + recording", Some(plan), true));
     }
     let nm = modes.len();
     let mut out: Vec<LoadedMode> = Vec::new();
