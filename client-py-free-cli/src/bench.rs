@@ -1196,7 +1196,12 @@ pub fn latency_child(
     let mut cmd = std::process::Command::new(exe);
     cmd.args(["bench", "--latency-once", transport, "--seconds"])
         .arg(seconds.to_string())
-        .args(["--units", &size.0.to_string(), "--stimuli", &size.1.to_string()]);
+        .args([
+            "--units",
+            &size.0.to_string(),
+            "--stimuli",
+            &size.1.to_string(),
+        ]);
     if learning {
         cmd.arg("--learning");
     }

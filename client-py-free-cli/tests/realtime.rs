@@ -54,7 +54,13 @@ fn unprivileged() -> std::io::Result<()> {
         // From the bounding set first: exec gives root every capability the set holds. A
         // process without the right to change its capabilities (EPERM) has none to drop here;
         // the test checks the outcome in the daemon's status.
-        libc::prctl(libc::PR_CAPBSET_DROP, CAP_SYS_NICE as libc::c_ulong, 0, 0, 0);
+        libc::prctl(
+            libc::PR_CAPBSET_DROP,
+            CAP_SYS_NICE as libc::c_ulong,
+            0,
+            0,
+            0,
+        );
         if libc::syscall(libc::SYS_capget, &mut h as *mut Header, d.as_mut_ptr()) == 0 {
             for w in &mut d[..1] {
                 w.effective &= !(1 << CAP_SYS_NICE);
@@ -87,13 +93,24 @@ fn can_drop_sys_nice() -> bool {
 }
 
 /// `auspex daemon` on free loopback ports with `args`: (child, ingest, control).
-fn daemon(args: &[&str], log: &std::path::Path, drop_privilege: bool) -> (KillOnDrop, String, String) {
+fn daemon(
+    args: &[&str],
+    log: &std::path::Path,
+    drop_privilege: bool,
+) -> (KillOnDrop, String, String) {
     let ep = |p: u16| format!("tcp://127.0.0.1:{p}");
     let (ingest, publish, control) = (ep(free_port()), ep(free_port()), ep(free_port()));
     let mut cmd = Command::new(env!("CARGO_BIN_EXE_auspex"));
     cmd.arg("daemon")
         .args(args)
-        .args(["--ingest", &ingest, "--publish", &publish, "--control", &control])
+        .args([
+            "--ingest",
+            &ingest,
+            "--publish",
+            &publish,
+            "--control",
+            &control,
+        ])
         .args(["--task-ingest", ""])
         .stdout(Stdio::null())
         .stderr(std::fs::File::create(log).unwrap());
@@ -112,7 +129,10 @@ async fn wait_started(control: &str) -> auspex_proto::v1::Status {
         if let Ok(s) = status(control).await {
             return s;
         }
-        assert!(t0.elapsed() < Duration::from_secs(20), "daemon did not start");
+        assert!(
+            t0.elapsed() < Duration::from_secs(20),
+            "daemon did not start"
+        );
         tokio::time::sleep(Duration::from_millis(50)).await;
     }
 }
@@ -129,7 +149,11 @@ fn demo_model(dir: &std::path::Path) -> std::path::PathBuf {
         .arg(&model)
         .output()
         .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     model
 }
 
@@ -170,7 +194,11 @@ fn without_the_privilege_the_daemon_runs_as_usual_and_says_so() {
         .args(["--to", &ingest, "--control", &control])
         .output()
         .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let h = rt.block_on(status(&control)).unwrap().health.unwrap();
     assert_eq!(h.trials_completed, 320, "every demo trial decoded");
     assert!(h.decisions > 0);
@@ -180,7 +208,10 @@ fn without_the_privilege_the_daemon_runs_as_usual_and_says_so() {
         1,
         "said once: {text}"
     );
-    assert!(text.contains("limits.conf") && text.contains("CAP_SYS_NICE"), "{text}");
+    assert!(
+        text.contains("limits.conf") && text.contains("CAP_SYS_NICE"),
+        "{text}"
+    );
 }
 
 /// In real-time mode on core 0, one message that asks for seconds of decoding (30 trials of

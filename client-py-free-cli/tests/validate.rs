@@ -285,10 +285,18 @@ fn report_is_well_formed_and_renders_in_headless_chromium() {
     assert!(html.contains("Accuracy against time since onset"));
     assert!(html.contains(&format!("{:.3}", v.information.bits)));
     // KS plots in view in the goodness-of-fit section, not only in the collapsed unit sections.
-    let gof = &html[html.find("<h2 id=goodness-of-fit>Goodness of fit</h2>").expect("the section")..];
-    assert!(!gof.contains("<details"), "the section's plots are not collapsed");
+    let gof = &html[html
+        .find("<h2 id=goodness-of-fit>Goodness of fit</h2>")
+        .expect("the section")..];
+    assert!(
+        !gof.contains("<details"),
+        "the section's plots are not collapsed"
+    );
     let in_view = gof.matches(": KS deviation").count();
-    assert_eq!(in_view, 6, "one KS plot per unit in view (6 units; up to 8 are shown)");
+    assert_eq!(
+        in_view, 6,
+        "one KS plot per unit in view (6 units; up to 8 are shown)"
+    );
     let json: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(dir.path().join("validation.json")).unwrap())
             .unwrap();

@@ -179,7 +179,10 @@ pub fn enter(name: &'static str, above: i32) -> Option<Arc<PathThread>> {
     });
     if !st.plan.cpus.is_empty() {
         if let Err(e) = pin(&st.plan.cpus) {
-            refuse(st, format!("pinning {name} to cores {:?}: {e}", st.plan.cpus));
+            refuse(
+                st,
+                format!("pinning {name} to cores {:?}: {e}", st.plan.cpus),
+            );
         }
     }
     match set_fifo(0, priority) {
@@ -385,7 +388,12 @@ mod tests {
         };
         assert!(ok.check().is_ok());
         for p in [0, 98, -1] {
-            let e = Plan { priority: p, ..ok.clone() }.check().unwrap_err();
+            let e = Plan {
+                priority: p,
+                ..ok.clone()
+            }
+            .check()
+            .unwrap_err();
             assert!(e.contains("1..=97"), "{e}");
         }
     }

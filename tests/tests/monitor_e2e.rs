@@ -109,7 +109,10 @@ fn wait_screen(
 /// The number after "right of" in the decisions line.
 fn decided(screen: &str) -> Option<u64> {
     let rest = &screen[screen.find("right of ")? + "right of ".len()..];
-    rest.split(|c: char| !c.is_ascii_digit()).next()?.parse().ok()
+    rest.split(|c: char| !c.is_ascii_digit())
+        .next()?
+        .parse()
+        .ok()
 }
 
 #[test]
@@ -118,7 +121,9 @@ fn the_monitor_follows_the_daemon_it_watches() {
     let f = fixture();
     let rt = runtime();
     let ctx = zmq::Context::new();
-    let first = rt.block_on(auspexd::service::start(config(&f, None))).unwrap();
+    let first = rt
+        .block_on(auspexd::service::start(config(&f, None)))
+        .unwrap();
     let ep = first.endpoints.clone();
     // The operator's 80 × 24 terminal, and a wide one to check that nothing on it is cut.
     let views = Arc::new(Mutex::new(Vec::new()));
@@ -131,7 +136,9 @@ fn the_monitor_follows_the_daemon_it_watches() {
             sizes: vec![(80, 24), (250, 60)],
             text: views.clone(),
         };
-        rt.spawn(async move { monitor_on(&p, &c, View::Quiet, Some(Box::new(shown)), stop_rx).await })
+        rt.spawn(
+            async move { monitor_on(&p, &c, View::Quiet, Some(Box::new(shown)), stop_rx).await },
+        )
     };
     wait_screen(
         &views,
@@ -174,7 +181,10 @@ fn the_monitor_follows_the_daemon_it_watches() {
         |s| s.contains("decide at θ 0.97 after 25 ms"),
         "the new policy on screen",
     );
-    assert!(t0.elapsed() < Duration::from_secs(3), "shown within a couple of seconds");
+    assert!(
+        t0.elapsed() < Duration::from_secs(3),
+        "shown within a couple of seconds"
+    );
 
     // The daemon goes away: the monitor says so.
     rt.block_on(first.stop());

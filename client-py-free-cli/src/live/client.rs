@@ -87,7 +87,12 @@ pub async fn replay(
     progress: bool,
 ) -> anyhow::Result<Duration> {
     let mut push = connect_push(ingest).await?;
-    let bar = crate::progress::bar(progress, messages.len() as u64, "replaying", "{pos}/{len} messages {msg}");
+    let bar = crate::progress::bar(
+        progress,
+        messages.len() as u64,
+        "replaying",
+        "{pos}/{len} messages {msg}",
+    );
     let t0 = Instant::now();
     let first_wm = messages.iter().find_map(crate::wire::watermark_of);
     let mut last_seq = 0;

@@ -166,10 +166,7 @@ impl MonitorState {
     /// when a reload or a learned model changed them. True when the status is another
     /// daemon's than the one tallied: the tally starts afresh.
     pub fn follow_status(&mut self, st: &v1::Status) -> bool {
-        let other = st
-            .health
-            .as_ref()
-            .is_some_and(|h| self.meet(h.incarnation));
+        let other = st.health.as_ref().is_some_and(|h| self.meet(h.incarnation));
         if other {
             self.new_tally();
             self.health = None;
@@ -511,7 +508,14 @@ impl MonitorState {
                 text.split(sep)
                     .enumerate()
                     .map(|(i, p)| {
-                        Span::styled(if i > 0 { format!("{sep}{p}") } else { p.to_string() }, style)
+                        Span::styled(
+                            if i > 0 {
+                                format!("{sep}{p}")
+                            } else {
+                                p.to_string()
+                            },
+                            style,
+                        )
                     })
                     .collect(),
                 w,
@@ -1413,7 +1417,10 @@ mod tests {
                 assert!(wide.contains(&t), "{w}×{h}: `{t}` is cut:\n{screen}");
             }
             for l in screen.lines() {
-                assert!(!l.trim_end().ends_with('·'), "{w}×{h}: a dangling separator: {l}");
+                assert!(
+                    !l.trim_end().ends_with('·'),
+                    "{w}×{h}: a dangling separator: {l}"
+                );
             }
             let line56 = screen.lines().find(|l| l.contains("#56")).unwrap();
             assert!(

@@ -99,7 +99,10 @@ pub fn key(
     use crossterm::event::KeyCode::*;
     match k.code {
         Char('q') | Esc => return false,
-        Char('c') if k.modifiers.contains(crossterm::event::KeyModifiers::CONTROL) => {
+        Char('c')
+            if k.modifiers
+                .contains(crossterm::event::KeyModifiers::CONTROL) =>
+        {
             return false
         }
         Char('p') => {

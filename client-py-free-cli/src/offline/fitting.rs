@@ -8,7 +8,12 @@ use auspex_modelling::fit::{plan, FitOptions, FitPlan};
 /// Fits every cell of `plan` on every core (`auspex_modelling::fit::fit_cells`); `progress`
 /// shows a bar on a terminal.
 pub fn fit_cells(plan: &FitPlan, progress: bool) -> Vec<CellSpec> {
-    let bar = crate::progress::bar(progress, plan.cells.len() as u64, "fitting", "{pos}/{len} cells");
+    let bar = crate::progress::bar(
+        progress,
+        plan.cells.len() as u64,
+        "fitting",
+        "{pos}/{len} cells",
+    );
     let cells = auspex_modelling::fit::fit_cells(plan, &|| bar.inc(1));
     bar.finish_and_clear();
     cells

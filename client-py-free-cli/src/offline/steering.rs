@@ -56,7 +56,10 @@ pub fn compare(
                                     break;
                                 }
                                 let units = units_of(s, nu, ns);
-                                mine.push((s, trials_to_tuning(&units, ns, p, constraints, s, cap)));
+                                mine.push((
+                                    s,
+                                    trials_to_tuning(&units, ns, p, constraints, s, cap),
+                                ));
                                 tick();
                             }
                             mine

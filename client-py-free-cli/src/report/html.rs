@@ -980,7 +980,9 @@ fn ks_plot(f: &UnitFigures, title: &str, bold: &[&str], stimuli: &[String]) -> S
     p.text(0.02, 1.05, "95% band of each cell", REFERENCE);
     // The bold lines last, on top.
     let is_bold = |st: usize| bold.contains(&stimuli[st].as_str());
-    let order = (0..f.ks.len()).filter(|&st| !is_bold(st)).chain((0..f.ks.len()).filter(|&st| is_bold(st)));
+    let order = (0..f.ks.len())
+        .filter(|&st| !is_bold(st))
+        .chain((0..f.ks.len()).filter(|&st| is_bold(st)));
     for st in order {
         if let Some(pts) = &f.ks[st] {
             p.line(pts, colour(st), if is_bold(st) { 2.6 } else { 1.3 }, false);
@@ -1085,7 +1087,12 @@ fn unit_section(v: &Validation, ur: &UnitReport, f: &UnitFigures) -> String {
         .filter(|c| !c.ks_pass)
         .map(|c| c.stimulus.as_str())
         .collect();
-    s += &ks_plot(f, "time rescaling, held out: KS deviation", &bold, &v.stimuli);
+    s += &ks_plot(
+        f,
+        "time rescaling, held out: KS deviation",
+        &bold,
+        &v.stimuli,
+    );
     s += "</div><table><tr><th>stimulus</th><th>trials</th><th>mean count</th><th>variance</th><th>Fano [95%]</th><th>family</th><th>KS D</th><th>95% critical</th><th>intervals</th><th>fit</th></tr>";
     for c in &ur.cells {
         let fano = c
@@ -1385,12 +1392,7 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
         v.goodness_of_fit.cells_failed, v.goodness_of_fit.cells_tested);
     // The KS plots in view, not only inside the collapsed unit sections: the flagged units'
     // first, then the most informative, up to KS_PLOTS_SHOWN.
-    let flagged = |f: &&UnitFigures| {
-        v.goodness_of_fit
-            .failed
-            .iter()
-            .any(|(u, _)| *u == f.unit)
-    };
+    let flagged = |f: &&UnitFigures| v.goodness_of_fit.failed.iter().any(|(u, _)| *u == f.unit);
     let shown: Vec<&UnitFigures> = x
         .unit_figures
         .iter()
@@ -1412,7 +1414,11 @@ details{{margin:6px 0;border:1px solid #e3e3e8;border-radius:6px;padding:6px 10p
             let title = if bold.is_empty() {
                 format!("unit {}: KS deviation", f.unit)
             } else {
-                format!("unit {}: KS deviation, {} flagged (bold)", f.unit, bold.join(", "))
+                format!(
+                    "unit {}: KS deviation, {} flagged (bold)",
+                    f.unit,
+                    bold.join(", ")
+                )
             };
             s += &ks_plot(f, &title, &bold, &v.stimuli);
         }

@@ -15,7 +15,12 @@ pub fn validate(
     if !opts.progress {
         return timed(data, source, opts, &());
     }
-    let bar = Bar(crate::progress::bar(true, 0, "validating", "{percent}% {msg}"));
+    let bar = Bar(crate::progress::bar(
+        true,
+        0,
+        "validating",
+        "{percent}% {msg}",
+    ));
     timed(data, source, opts, &bar)
 }
 

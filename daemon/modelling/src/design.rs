@@ -230,7 +230,12 @@ impl Design {
     /// (the least shown of the rest).
     fn not_too_long(&mut self, choice: u32) -> u32 {
         let k = self.constraints.max_run;
-        let run = self.history.iter().rev().take_while(|&&c| c == choice).count();
+        let run = self
+            .history
+            .iter()
+            .rev()
+            .take_while(|&&c| c == choice)
+            .count();
         if run < k {
             return choice;
         }
@@ -430,7 +435,14 @@ mod tests {
             kappa: 2.0,
             fano: 1.5,
         };
-        let t = trials_to_tuning(&[u], 16, Policy::FindTuning, Constraints::default(), 3, 2000);
+        let t = trials_to_tuning(
+            &[u],
+            16,
+            Policy::FindTuning,
+            Constraints::default(),
+            3,
+            2000,
+        );
         assert!(t.is_some());
     }
 }

@@ -188,7 +188,9 @@ pub fn fitted_model(
         window_s: sc.window_ms / 1000.0,
         ..Default::default()
     };
-    let spec = auspex_modelling::fit::plan(&train, &opts).unwrap().fit_all();
+    let spec = auspex_modelling::fit::plan(&train, &opts)
+        .unwrap()
+        .fit_all();
     let path = dir.join("m.apxm");
     auspex_proto::model_file::save_model(&path, &spec, "e2e").unwrap();
     (path, spec)
