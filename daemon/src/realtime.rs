@@ -125,14 +125,12 @@ pub fn configure(plan: Plan) {
         return;
     }
     set_rttime_limit();
-    hold_off_deep_idle(st_ref());
+    if let Some(st) = STATE.get() {
+        hold_off_deep_idle(st);
+    }
     let _ = std::thread::Builder::new()
         .name("auspex-rt-guard".into())
         .spawn(guard);
-}
-
-fn st_ref() -> &'static State {
-    STATE.get().expect("set above")
 }
 
 /// Asks the kernel to keep the cores out of deep idle states while the daemon runs (the PM QoS

@@ -94,6 +94,9 @@ pub fn closed_loop_cmd(
     if seeds == 0 || units.contains(&0) {
         anyhow::bail!("give at least one seed and one unit");
     }
+    if cap == 0 {
+        anyhow::bail!("--max-trials must be at least 1");
+    }
     let total = (units.len() * stimuli.len()) as u64 * seeds * 2;
     let bar = crate::progress::bar(
         std::io::IsTerminal::is_terminal(&std::io::stderr()),
