@@ -9,6 +9,9 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         println!("cargo:rerun-if-changed={f}");
     }
     let fds = protox::compile(files, ["proto"])?;
-    prost_build::Config::new().compile_fds(fds)?;
+    prost_build::Config::new()
+        // Rare and large: kept out of line so every record stays small.
+        .boxed(".auspex.v1.SessionRecord.choice")
+        .compile_fds(fds)?;
     Ok(())
 }

@@ -493,6 +493,7 @@ pub fn latency_messages(nu: usize, ns: usize, n_batches: usize) -> Vec<(Option<u
     out.push((
         None,
         enc(Body::SessionStart(v1::SessionStart {
+            stimuli: Default::default(),
             tick_rate_hz: 1e6,
             units: (0..nu as u32).collect(),
             session_name: "bench".into(),

@@ -548,8 +548,10 @@ enum Steer {
     SaveLearned { path: PathBuf },
     /// Ask which stimulus to present next
     Next {
-        /// balanced-blocks or least-certain
-        #[arg(long, default_value = "balanced-blocks")]
+        /// balanced-blocks (every stimulus once per block), least-certain (the stimulus decoded
+        /// worst so far) or find-tuning (learn each unit's preferred stimulus in the fewest
+        /// trials; prints why on stderr)
+        #[arg(long, default_value = "balanced-blocks", value_parser = ["balanced-blocks", "least-certain", "find-tuning"])]
         policy: String,
     },
 }

@@ -302,6 +302,7 @@ fn impossible_replay_pacing_is_refused() {
     .unwrap();
     let bodies = [
         v1::inbound::Body::SessionStart(v1::SessionStart {
+            stimuli: Default::default(),
             tick_rate_hz: 1.0,
             units: vec![1],
             session_name: "jump".into(),
@@ -321,6 +322,7 @@ fn impossible_replay_pacing_is_refused() {
             body: Some(b),
         };
         w.append(&v1::SessionRecord {
+            choice: Default::default(),
             received_unix_ns: 0,
             endpoint: 1,
             message: m.encode_to_vec(),

@@ -121,6 +121,20 @@ pub struct DaemonArgs {
     /// How long a shard may stay silent before the combiner goes on without its units, ms [default: 500]
     #[arg(long, value_name = "MS")]
     pub shard_deadline_ms: Option<f64>,
+    /// The stimuli the task program may present, in order around the circle for directions
+    /// (e.g. 0,45,90,…): `next --policy find-tuning` chooses among them from the first trial,
+    /// with no model (a session's start message may declare its own instead)
+    #[arg(long, value_name = "LIST", value_delimiter = ',')]
+    pub stimuli: Vec<String>,
+    /// find-tuning: whole balanced blocks before its first own choice [default: 1]
+    #[arg(long, value_name = "N")]
+    pub steer_warmup_blocks: Option<u32>,
+    /// find-tuning: every stimulus gets at least this share of its equal share of the trials, 0..=1 [default: 0.25]
+    #[arg(long, value_name = "SHARE")]
+    pub steer_min_share: Option<f64>,
+    /// find-tuning: no stimulus more than this many times in a row [default: 3]
+    #[arg(long, value_name = "N")]
+    pub steer_max_run: Option<u32>,
 }
 
 /// Runs the daemon from flags; returns the process exit code.
@@ -186,6 +200,10 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
         f.realtime_cpus = Some(a.realtime_cpus.clone());
     }
     over!(role, part, parts, link, shard_deadline_ms);
+    over!(steer_warmup_blocks, steer_min_share, steer_max_run);
+    if !a.stimuli.is_empty() {
+        f.stimuli = Some(a.stimuli.clone());
+    }
     if !a.shards.is_empty() {
         f.shards = Some(a.shards.clone());
     }

@@ -96,6 +96,14 @@ pub struct FileConfig {
     pub shards: Option<Vec<String>>,
     /// How long a shard may stay silent before the combiner goes on without it, ms.
     pub shard_deadline_ms: Option<f64>,
+    /// The stimuli `next --policy find-tuning` chooses among before a model names them.
+    pub stimuli: Option<Vec<String>>,
+    /// find-tuning: whole balanced blocks first.
+    pub steer_warmup_blocks: Option<u32>,
+    /// find-tuning: every stimulus's minimum share of its equal share of the trials.
+    pub steer_min_share: Option<f64>,
+    /// find-tuning: most times one stimulus is shown in a row.
+    pub steer_max_run: Option<u32>,
 }
 
 /// Where this daemon sits in a deployment across machines.
@@ -199,6 +207,10 @@ pub struct DaemonConfig {
     pub realtime: Option<crate::realtime::Plan>,
     /// Whole daemon, shard or combiner.
     pub deployment: Deployment,
+    /// find-tuning's constraints.
+    pub steer: auspex_modelling::design::Constraints,
+    /// Its stimulus set, declared at start (empty: the session's or the model's).
+    pub stimuli: Vec<String>,
 }
 
 /// Default endpoints (loopback only, `auspex_proto::endpoints`) and the shard deadline.
@@ -464,7 +476,45 @@ pub fn validate(f: FileConfig, warnings: &mut Vec<String>) -> Result<DaemonConfi
     } else {
         None
     };
+    let steer = auspex_modelling::design::Constraints {
+        warmup_blocks: f.steer_warmup_blocks.unwrap_or(1) as usize,
+        min_share: f.steer_min_share.unwrap_or(0.25),
+        max_run: f.steer_max_run.unwrap_or(3) as usize,
+    };
+    let stimuli: Vec<String> = f
+        .stimuli
+        .clone()
+        .unwrap_or_default()
+        .into_iter()
+        .map(|s| s.trim().to_string())
+        .collect();
+    if stimuli.iter().any(|s| s.is_empty()) {
+        return Err(ConfigError::Invalid(
+            "a declared stimulus has an empty name (--stimuli A,B,…)".into(),
+        ));
+    }
+    if let Some(d) = stimuli
+        .iter()
+        .enumerate()
+        .find(|(i, s)| stimuli[..*i].contains(s))
+    {
+        return Err(ConfigError::Invalid(format!(
+            "stimulus {:?} is declared twice",
+            auspex_engine::data::printable(d.1)
+        )));
+    }
+    if steer.warmup_blocks > 1000 {
+        return Err(ConfigError::Invalid(format!(
+            "steer warm-up {} blocks must be at most 1000",
+            steer.warmup_blocks
+        )));
+    }
+    steer
+        .check(if stimuli.is_empty() { 2 } else { stimuli.len() })
+        .map_err(|e| ConfigError::Invalid(format!("steering: {e}")))?;
     Ok(DaemonConfig {
+        steer,
+        stimuli,
         deployment,
         threads,
         realtime,

@@ -131,6 +131,12 @@ pub struct EngineThread {
     tick_rate: Option<f64>,
     engine: Option<Engine>,
     collector: Option<WindowCollector>,
+    steering: crate::steering::Steering,
+    steer_window_s: Option<f64>,
+    /// The daemon's declared stimulus set (--stimuli).
+    daemon_stimuli: Arc<[String]>,
+    /// The session's declared set (its start message's, else the daemon's).
+    declared_stimuli: Arc<[String]>,
     names: TrialStimuli,
     current: Arc<[String]>,
     publisher: Publisher,
@@ -220,6 +226,12 @@ pub struct EngineThreadSetup {
     pub link: Link,
     /// The recorder's write errors so far (health reports them).
     pub recorder_errors: Arc<std::sync::atomic::AtomicU64>,
+    /// find-tuning's thread.
+    pub steering: crate::steering::Steering,
+    /// The window find-tuning counts spikes in without learning (the model's), seconds.
+    pub steer_window_s: Option<f64>,
+    /// The stimulus set declared with --stimuli (empty: none).
+    pub stimuli: Vec<String>,
 }
 
 impl EngineThread {
@@ -289,6 +301,10 @@ impl EngineThread {
             pending_end: None,
             last_from_link: Instant::now(),
             recorder_errors: s.recorder_errors,
+            steering: s.steering,
+            steer_window_s: s.steer_window_s,
+            daemon_stimuli: s.stimuli.clone().into(),
+            declared_stimuli: s.stimuli.into(),
         };
         t.config.policy = t
             .promise
@@ -357,6 +373,17 @@ impl EngineThread {
                     self.record_latency(t0.elapsed().as_secs_f64() * 1e6);
                     self.drain_partials();
                     self.refit_in_step();
+                }
+                Ok(EngineInput::Control {
+                    body: control_request::Body::NextStimulus(n),
+                    reply,
+                }) if n.policy.trim() == "find-tuning" => {
+                    // Answered by the steering thread, in this thread's order of trials and
+                    // requests (so a choice depends only on the trials before it).
+                    let _ = self
+                        .steering
+                        .tx
+                        .send(crate::steering::SteerMsg::Next { reply });
                 }
                 Ok(EngineInput::Control { body, reply }) => {
                     let r = self.control(body);

@@ -40,6 +40,10 @@ pub mod shard_link;
 #[cfg(not(feature = "fuzzing"))]
 mod shard_link;
 mod start_error;
+#[cfg(feature = "fuzzing")]
+pub mod steering;
+#[cfg(not(feature = "fuzzing"))]
+mod steering;
 mod workers;
 
 pub use workers::{ThreadedDecoder, WorkersStalled};

@@ -345,7 +345,20 @@ pub async fn start(cfg: DaemonConfig) -> Result<Running, StartError> {
         }
         None => None,
     };
+    let steering = crate::steering::Steering::spawn(
+        cfg.steer,
+        cfg.seed,
+        cfg.stimuli.clone(),
+        recorder.as_ref().map(|r| r.sender()),
+    )
+    .map_err(|e| StartError::Spawn {
+        what: "steering thread",
+        cause: e.to_string(),
+    })?;
     let setup = EngineThreadSetup {
+        steering,
+        stimuli: cfg.stimuli.clone(),
+        steer_window_s: model.as_ref().map(|m| m.n_bins() as f64 * m.bin_width_s()),
         model: model.clone(),
         model_path: model_label.clone(),
         record_dir: cfg.record.as_ref().filter(|p| p.is_dir()).cloned(),

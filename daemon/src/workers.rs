@@ -291,6 +291,7 @@ fn worker(
                 let _ = apply_body(
                     engine.as_mut(),
                     None,
+                    false,
                     &names,
                     &current,
                     &b,
@@ -542,6 +543,7 @@ mod tests {
             let _ = apply_body(
                 Some(&mut e),
                 None,
+                false,
                 &names,
                 &current,
                 &body,
@@ -603,6 +605,7 @@ mod tests {
             let _ = apply_body(
                 Some(&mut e),
                 None,
+                false,
                 &names,
                 &current,
                 &body,

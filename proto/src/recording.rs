@@ -30,6 +30,7 @@ pub fn dataset_messages(
         });
     };
     push(Body::SessionStart(v1::SessionStart {
+        stimuli: Default::default(),
         tick_rate_hz: data.tick_rate_hz,
         units: data.units.clone(),
         session_name: sender.into(),
@@ -139,6 +140,7 @@ pub fn decode_recording(contents: SessionContents) -> Result<RecordedSession, St
     let mut messages = Vec::new();
     let mut undecodable = 0;
     let mut data = Dataset::default();
+    let mut spikes: Vec<(i64, u32)> = Vec::new();
     let mut labels = std::collections::HashMap::new();
     let mut units = std::collections::BTreeSet::new();
     let mut learned = Vec::new();
@@ -169,7 +171,7 @@ pub fn decode_recording(contents: SessionContents) -> Result<RecordedSession, St
                     }
                     Some(Body::Spikes(b)) => {
                         for (&u, &t) in b.units.iter().zip(&b.ticks) {
-                            data.spikes.push((t, u));
+                            spikes.push((t, u));
                             units.insert(u);
                         }
                     }
@@ -217,7 +219,8 @@ pub fn decode_recording(contents: SessionContents) -> Result<RecordedSession, St
                 .into(),
         );
     }
-    data.spikes.sort_unstable();
+    spikes.sort_unstable();
+    data.spikes = spikes.into();
     data.trials.sort_by_key(|t| (t.onset, t.id));
     data.units = units.into_iter().collect();
     Ok(RecordedSession {

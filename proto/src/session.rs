@@ -38,6 +38,7 @@ impl<W: Write> SessionWriter<W> {
             buf: Vec::with_capacity(1 << 16),
         };
         s.append(&SessionRecord {
+            choice: Default::default(),
             received_unix_ns: now_ns,
             endpoint: 0,
             message: Vec::new(),
@@ -178,6 +179,7 @@ mod tests {
 
     fn rec(i: u8) -> SessionRecord {
         SessionRecord {
+            choice: Default::default(),
             received_unix_ns: i as i64,
             endpoint: 0,
             message: vec![i; i as usize],

@@ -73,10 +73,12 @@ pub fn remember_onset(names: &mut TrialStimuli, body: &Body, current: &Arc<[Stri
 
 /// Applies one message body (not SessionStart, EndOfStream or UnitsAdded: the caller handles
 /// those) to the collector and, if there is one, the engine. Completed labelled windows go to
-/// `windows`.
+/// `windows`. `learning`: units the model does not have yet are expected (not reported).
+#[allow(clippy::too_many_arguments)]
 pub fn apply_body(
     engine: Option<&mut Engine>,
     collector: Option<&mut WindowCollector>,
+    learning: bool,
     names: &TrialStimuli,
     current: &Arc<[String]>,
     body: &Body,
@@ -90,7 +92,6 @@ pub fn apply_body(
             return out;
         }
     }
-    let learning = collector.is_some();
     if let Some(c) = collector {
         match body {
             Body::Spikes(b) => {

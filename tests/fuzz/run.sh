@@ -13,15 +13,19 @@ shift || true
 cd "$(dirname "$0")/.."
 targets=("$@")
 if [ ${#targets[@]} -eq 0 ]; then
-  targets=(inbound engine_ops model_file session_file csv_tables toml_config scenario monitor shard_link)
+  targets=(inbound engine_ops model_file session_file csv_tables toml_config scenario monitor shard_link declared_sizes)
 fi
 cargo +nightly fuzz build --fuzz-dir fuzz -s none -a >/dev/null || exit 1
 status=0
 for t in "${targets[@]}"; do
   mkdir -p "fuzz/corpus/$t" "fuzz/logs"
   log="fuzz/logs/$t.log"
+  # declared_sizes runs under a 64 MB memory budget: any single allocation past 96 MB, or a
+  # process past 512 MB, is a size the budget checks let through.
+  limits=(-rss_limit_mb=2048)
+  [ "$t" = declared_sizes ] && limits=(-rss_limit_mb=512 -malloc_limit_mb=96)
   cargo +nightly fuzz run --fuzz-dir fuzz -s none -a "$t" "fuzz/corpus/$t" "fuzz/seeds/$t" -- \
-    -max_total_time="$seconds" -timeout=10 -rss_limit_mb=2048 -print_final_stats=1 >"$log" 2>&1
+    -max_total_time="$seconds" -timeout=10 "${limits[@]}" -print_final_stats=1 >"$log" 2>&1
   rc=$?
   execs=$(grep -o 'stat::number_of_executed_units: *[0-9]*' "$log" | grep -o '[0-9]*$' | tail -1)
   cov=$(grep -o 'cov: [0-9]*' "$log" | tail -1)

@@ -23,7 +23,7 @@ use std::sync::{Arc, OnceLock};
 pub type Target = fn(&[u8]);
 
 /// The targets, by name (the fuzz binaries' and the regression folders' names).
-pub const TARGETS: [(&str, Target); 9] = [
+pub const TARGETS: [(&str, Target); 10] = [
     ("inbound", inbound_messages),
     ("engine_ops", engine_ops),
     ("model_file", model_file),
@@ -33,6 +33,7 @@ pub const TARGETS: [(&str, Target); 9] = [
     ("scenario", scenario),
     ("monitor", monitor),
     ("shard_link", shard_link),
+    ("declared_sizes", declared_sizes),
 ];
 
 /// Reads the input as a stream of small numbers.
@@ -211,6 +212,7 @@ fn inbound_message(b: &mut Bytes<'_>, last: &mut i64) -> Option<Vec<u8>> {
     };
     let body = match kind % 11 {
         0 => inbound::Body::SessionStart(v1::SessionStart {
+            stimuli: Default::default(),
             tick_rate_hz: [1000.0, 30_000.0, 1e6, 0.0, f64::NAN, 1e300, -5.0][b.u8()? as usize % 7],
             units: (0..b.u8()? % 8)
                 .map(|i| [3, 4, 7, 9, 12, 77, 0, 3][i as usize])
@@ -300,6 +302,15 @@ pub fn inbound_messages(data: &[u8]) {
         target_accuracy: None,
         link: auspexd::shard_link::Link::None,
         recorder_errors: Default::default(),
+        steering: auspexd::steering::Steering::spawn(
+            Default::default(),
+            1,
+            vec!["north".into(), "east".into(), "south".into()],
+            None,
+        )
+        .expect("steering thread"),
+        steer_window_s: Some(0.02),
+        stimuli: Vec::new(),
     };
     let (tx, rx) = crossbeam_channel::unbounded();
     let Ok(et) = EngineThread::new(setup, rx.clone()) else {
@@ -317,6 +328,19 @@ pub fn inbound_messages(data: &[u8]) {
             bytes: bytes.into(),
             received_ns: 0,
         });
+        if n % 7 == 0 {
+            // A task program asking find-tuning (answered by the steering thread) and the
+            // engine thread's own policies, between the messages.
+            for policy in ["find-tuning", "balanced-blocks", "no-such-policy"] {
+                let (reply, _) = tokio::sync::oneshot::channel();
+                let _ = tx.send(EngineInput::Control {
+                    body: v1::control_request::Body::NextStimulus(v1::NextStimulus {
+                        policy: policy.into(),
+                    }),
+                    reply,
+                });
+            }
+        }
     }
     let _ = tx.send(EngineInput::Shutdown);
     et.run(rx);
@@ -375,6 +399,7 @@ pub fn session_file(data: &[u8]) {
             b.slice(200).to_vec()
         };
         let rec = v1::SessionRecord {
+            choice: Default::default(),
             received_unix_ns: 0,
             endpoint: (message.len() % 2) as u32,
             message,
@@ -573,6 +598,204 @@ pub fn shard_link(data: &[u8]) {
             // A log-likelihood is never NaN or +∞: such a partial is refused (and counted),
             // never folded into a posterior.
             assert!(!bad || r.is_err(), "a NaN or +∞ partial was taken");
+        }
+    }
+}
+
+/// The memory budget [`declared_sizes`] runs under (MB): small, so that whatever it accepts is
+/// also quick, and a fuzzing run with `-malloc_limit_mb` a little above it catches any
+/// allocation the budget checks let through.
+pub const DECLARED_SIZES_BUDGET_MB: u64 = 64;
+
+/// A size from one byte: 1 to about 10⁶, spread over the orders of magnitude.
+fn declared(b: u8) -> usize {
+    let e = (b % 21) as u32;
+    (1usize << e) + (b as usize >> 5)
+}
+
+/// Large but consistent declared sizes through every path that multiplies sizes out before
+/// allocating: the input picks a path and the sizes (units, trials, stimuli, window and bin,
+/// count parameters — each from 1 to ~10⁶, the spikes few), and the path must either refuse
+/// it, or build it within [`DECLARED_SIZES_BUDGET_MB`]. Paths: tables through `fit` (plan,
+/// cells, model) and `validate`; a learning daemon's learner (declared units, labelled
+/// windows); a model file's cells (count tables, per-unit tallies, the engine's lookup under
+/// the daemon's table-memory setting); a scenario (its true model).
+pub fn declared_sizes(data: &[u8]) {
+    use auspex_modelling::fit::{fit_cells, plan, FitOptions};
+    auspex_engine::budget::set_mb(DECLARED_SIZES_BUDGET_MB);
+    let mut b = Bytes(data);
+    let path = b.u8().unwrap_or(0) % 5;
+    let nu = declared(b.u8().unwrap_or(0));
+    let nt = declared(b.u8().unwrap_or(0));
+    let ns = declared(b.u8().unwrap_or(1)).max(2);
+    // Window 1 ms … 65 s, bin 1 µs … 65 ms.
+    let window_ms = 1.0 + (b.u8().unwrap_or(0) as f64).powi(2);
+    let bin_ms = 0.001 * (1 + b.u8().unwrap_or(0) as u32).pow(2) as f64;
+    let opts = FitOptions {
+        window_s: window_ms / 1000.0,
+        bin_width_s: bin_ms / 1000.0,
+        ..FitOptions::default()
+    };
+    let rate = 1_000_000.0;
+    // A dataset as the tables declare it: every unit listed, trials of ns stimuli in turn,
+    // and a few spikes (the rest of the input) inside the first windows.
+    let dataset = || {
+        let trials: Vec<auspex_engine::data::Trial> = (0..nt)
+            .map(|i| auspex_engine::data::Trial {
+                id: i as u64,
+                onset: i as i64 * 2_000_000,
+                stimulus: Some(format!("s{}", i % ns)),
+            })
+            .collect();
+        let mut spikes = Vec::new();
+        let mut rest = Bytes(b.0);
+        while let (Some(t), Some(u)) = (rest.u8(), rest.u8()) {
+            if spikes.len() >= 256 {
+                break;
+            }
+            let trial = (t as usize) % nt;
+            spikes.push((
+                trial as i64 * 2_000_000 + t as i64 * 97,
+                (u as usize % nu) as u32,
+            ));
+        }
+        spikes.sort_unstable();
+        auspex_engine::data::Dataset {
+            tick_rate_hz: rate,
+            trials,
+            spikes: spikes.into(),
+            units: (0..nu as u32).collect(),
+            declared_from: Default::default(),
+            stimulus_order: Vec::new(),
+        }
+    };
+    match path {
+        0 => {
+            // `fit`: plan, then (for what a fuzzing run can afford) cells and the model.
+            let d = dataset();
+            if let Ok(p) = plan(&d, &opts) {
+                if p.units.len() * p.stimuli.len() <= 64 && p.n_bins <= 2000 {
+                    let cells = fit_cells(&p, &|| {});
+                    let _ = Model::new(p.assemble(cells));
+                }
+            }
+        }
+        1 => {
+            // `validate`, small enough to finish: two shuffles.
+            let d = dataset();
+            if nu * ns > 16 || nt > 256 {
+                // Still the planning (where the sizes are multiplied out).
+                let _ = plan(&d, &opts);
+                return;
+            }
+            let v = auspex_modelling::validation::run::ValidateOptions {
+                shuffles: 2,
+                fit: opts,
+                ..Default::default()
+            };
+            let _ = auspex_modelling::validation::run::validate_with(&d, "fuzz", &v, &());
+        }
+        2 => {
+            // A learning daemon's learner: declared units and labelled windows.
+            let lo = auspex_modelling::learn::LearnOptions {
+                fit: opts,
+                min_trials_per_stimulus: 1,
+                ..Default::default()
+            };
+            let Ok(mut l) = auspex_modelling::learn::Learner::new(lo, rate) else {
+                return;
+            };
+            l.add_units(0..nu as u32);
+            let d = dataset();
+            for (i, t) in d.trials.iter().enumerate().take(4096) {
+                let spikes = d
+                    .spikes
+                    .iter()
+                    .filter(|s| s.0 >= t.onset && s.0 < t.onset + 2_000_000)
+                    .map(|&(tick, u)| (tick - t.onset, u))
+                    .collect();
+                l.add(auspex_modelling::learn::TrialWindow {
+                    id: i as u64,
+                    onset: t.onset,
+                    stimulus: t.stimulus.clone().unwrap_or_default(),
+                    spikes,
+                });
+            }
+            let _ = l.plan();
+        }
+        3 => {
+            // A model file's cells: count tables from their parameters, per-unit tallies,
+            // then the engine's preparation under a table-memory setting.
+            let mean = (b.u32().unwrap_or(1) % 1_000_000) as f64 + 0.5;
+            let nb = (window_ms / bin_ms).ceil().clamp(1.0, 1e6) as usize;
+            // The spec itself is what reading a file of that many cells gives (its size grows
+            // with the file's); the harness builds it only within the budget.
+            let spec_bytes = (nu * ns) as u128 * (std::mem::size_of::<CellSpec>() + nb * 8) as u128;
+            if auspex_engine::budget::check("fuzz cells", String::new, spec_bytes).is_err() {
+                return;
+            }
+            let count = match b.u8().unwrap_or(0) % 3 {
+                0 => CountParams::Poisson { mean },
+                1 => CountParams::NegativeBinomial { mean, shape: 0.5 },
+                _ => CountParams::ComPoisson {
+                    lambda: mean,
+                    nu: 0.7,
+                },
+            };
+            let cell = CellSpec {
+                count,
+                timing: vec![1.0 / nb as f64; nb],
+                summary: CellSummary::default(),
+            };
+            let mut spec = ModelSpec::numbered(nu, ns, nb, vec![cell; nu * ns]);
+            spec.bin_width_s = bin_ms / 1000.0;
+            if let Ok(m) = Model::new(spec) {
+                let prepared = Arc::new(m).prepare(LookupBudget::from_mb(8).expect("8 MB"));
+                let mut e = Engine::new(prepared, EngineConfig::new(rate)).ok();
+                if let Some(e) = e.as_mut() {
+                    let sink = &mut auspex_engine::engine::NullSink;
+                    let _ = e.open_trial(1, 0, Some(0), sink);
+                    let _ = e.advance(nb.min(64) as i64 * 1000, sink);
+                }
+            }
+        }
+        _ => {
+            // A scenario: checked, then its true model (units × stimuli × bins tables).
+            use auspex_modelling::simulate::{Scenario, ScenarioUnit};
+            // The scenario itself is what reading a file of that many units and stimuli gives
+            // (it grows with the file); the harness builds it only within the budget.
+            let file_bytes = (nu * std::mem::size_of::<ScenarioUnit>()) as u128
+                + (ns * (std::mem::size_of::<(String, f64)>() + 8)) as u128;
+            if auspex_engine::budget::check("fuzz scenario", String::new, 2 * file_bytes).is_err() {
+                return;
+            }
+            let sc = Scenario {
+                description: "fuzz".into(),
+                stimuli: (0..ns).map(|s| (format!("s{s}"), s as f64)).collect(),
+                bin_width_ms: bin_ms,
+                window_ms,
+                trials_per_stimulus: nt.min(u32::MAX as usize) as u32,
+                gap_ms: (100.0, 200.0),
+                spontaneous_hz: 2.0,
+                tick_rate_hz: rate,
+                seed: 1,
+                units: (0..nu as u32)
+                    .map(|id| ScenarioUnit {
+                        id,
+                        preferred_deg: 0.0,
+                        baseline_count: 1.0,
+                        peak_count: 4.0,
+                        count_family: "poisson".into(),
+                        fano: 1.0,
+                        early_ms: window_ms * 0.1,
+                        late_ms: window_ms * 0.5,
+                        width_ms: window_ms * 0.05,
+                    })
+                    .collect(),
+            };
+            if sc.check().is_ok() {
+                let _ = sc.true_model();
+            }
         }
     }
 }

@@ -428,6 +428,7 @@ fn bad_input_is_counted_and_never_stops_the_daemon() {
         mk(
             1,
             B::SessionStart(v1::SessionStart {
+                stimuli: Default::default(),
                 tick_rate_hz: 1e6,
                 units: vec![unit, 999_999],
                 session_name: "bad".into(),

@@ -59,7 +59,7 @@ fn session_messages(
 ) -> Vec<v1::Inbound> {
     let mut d = data.clone();
     if let Some((u, from)) = late_unit {
-        d.spikes.retain(|&(t, unit)| unit != u || t >= from);
+        std::sync::Arc::make_mut(&mut d.spikes).retain(|&(t, unit)| unit != u || t >= from);
         d.units.retain(|&x| x != u);
     }
     let labels: std::collections::HashMap<u64, (i64, String)> = d
@@ -755,6 +755,7 @@ fn sizes_from_the_wire_are_refused_and_the_daemon_lives_on() {
         sender: "huge".into(),
         seq: 0,
         body: Some(Body::SessionStart(v1::SessionStart {
+            stimuli: Default::default(),
             tick_rate_hz: 1e6,
             units,
             session_name: "huge".into(),
@@ -817,6 +818,7 @@ fn sizes_from_the_wire_are_refused_and_the_daemon_lives_on() {
     let n = 100_000u64;
     let mut flood = vec![v1::Inbound {
         body: Some(Body::SessionStart(v1::SessionStart {
+            stimuli: Default::default(),
             tick_rate_hz: 1e6,
             units: Vec::new(),
             session_name: "flood".into(),

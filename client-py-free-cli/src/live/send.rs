@@ -63,7 +63,7 @@ pub fn parse_line(line: &str, pending: &mut Vec<(u32, i64)>) -> Result<Option<Bo
                     None => units.push(unit(r)?),
                 }
             }
-            Ok(Some(Body::SessionStart(v1::SessionStart {
+            Ok(Some(Body::SessionStart(v1::SessionStart { stimuli: Default::default(),
                 tick_rate_hz: rate,
                 units,
                 session_name: name,

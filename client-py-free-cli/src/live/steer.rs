@@ -62,7 +62,13 @@ pub async fn send(control: &str, body: Body) -> anyhow::Result<()> {
         return Ok(());
     }
     match r.body {
-        Some(v1::control_reply::Body::Next(n)) => println!("{}", n.stimulus),
+        Some(v1::control_reply::Body::Next(n)) => {
+            // The stimulus alone on standard output (a script reads it); why, on stderr.
+            println!("{}", auspex_engine::data::printable(&n.stimulus));
+            if let Some(why) = next_reason(&n) {
+                eprintln!("{why}");
+            }
+        }
         Some(v1::control_reply::Body::Status(s)) => {
             println!(
                 "ok: decoder {}, threshold {}, minimum {} ms, model {}",
@@ -78,4 +84,25 @@ pub async fn send(control: &str, body: Body) -> anyhow::Result<()> {
         None => println!("ok"),
     }
     Ok(())
+}
+
+/// find-tuning's reason for a choice in one line (None for the other policies).
+pub fn next_reason(n: &v1::NextStimulusReply) -> Option<String> {
+    if n.reason.is_empty() {
+        return None;
+    }
+    let mut line = format!("choice {} · {}", n.choice, n.reason);
+    if n.serves_unit && n.p_preferred.is_finite() {
+        line += &format!(" · P(preferred) {:.2}", n.p_preferred);
+        if !n.runner_up.is_empty() && n.runner_up_p_preferred.is_finite() {
+            line += &format!(
+                ", runner-up {} {:.2}",
+                auspex_engine::data::printable(&n.runner_up),
+                n.runner_up_p_preferred
+            );
+        }
+        line += &format!(" (as of trial {})", n.as_of_trials);
+    }
+    line += &format!(" · {}/{} units settled", n.units_settled, n.units);
+    Some(line)
 }

@@ -202,9 +202,11 @@ impl<W: Write> Run<'_, W> {
             frames: self.frames.take(),
             units: None,
         };
+        let learning = self.collector.is_some();
         let _ = apply_body(
             self.engine.as_mut(),
             self.collector.as_mut(),
+            learning,
             &self.names,
             &self.current,
             body,

@@ -336,7 +336,7 @@ pub fn read_dataset(
     let data = Dataset {
         tick_rate_hz,
         trials: tr,
-        spikes: sp,
+        spikes: sp.into(),
         units: units.into_iter().collect(),
         declared_from: Default::default(),
         stimulus_order: Vec::new(),
@@ -463,7 +463,7 @@ pub fn write_dataset(data: &Dataset, spikes: &Path, trials: &Path) -> std::io::R
     let digits = (data.tick_rate_hz.log10().ceil().max(0.0)) as usize;
     let mut w = std::io::BufWriter::new(std::fs::File::create(spikes)?);
     writeln!(w, "unit,time_s")?;
-    for &(tick, unit) in &data.spikes {
+    for &(tick, unit) in data.spikes.iter() {
         writeln!(w, "{unit},{:.*}", digits, tick as f64 / data.tick_rate_hz)?;
     }
     w.flush()?;
@@ -525,7 +525,7 @@ mod tests {
             "trial,onset_s,stimulus\r1,0.5,N\r2,1.5,S\r",
         );
         let (data, _) = read_dataset(&s, &t, 1e6, 0.25).unwrap();
-        assert_eq!(data.spikes, vec![(510_000, 3), (1_600_000, 4)]);
+        assert_eq!(*data.spikes, vec![(510_000, 3), (1_600_000, 4)]);
         let long: String = (0..5000).map(|i| format!("c{i},")).collect();
         let e = err(&format!("{long}\n"), GOOD_T);
         assert!(
@@ -545,7 +545,7 @@ mod tests {
             "trial;onset_s;stimulus\n1;0.5;N\n2;1.5;S\n",
         );
         let (data, _) = read_dataset(&s, &t, 1e6, 0.25).unwrap();
-        assert_eq!(data.spikes, vec![(510_000, 3), (1_600_000, 4)]);
+        assert_eq!(*data.spikes, vec![(510_000, 3), (1_600_000, 4)]);
         assert_eq!(data.trials[1].stimulus.as_deref(), Some("S"));
     }
 

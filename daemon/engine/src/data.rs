@@ -22,8 +22,9 @@ pub struct Dataset {
     pub tick_rate_hz: f64,
     /// Trials, sorted by onset.
     pub trials: Vec<Trial>,
-    /// Spikes (tick, unit), sorted.
-    pub spikes: Vec<(i64, u32)>,
+    /// Spikes (tick, unit), sorted. Shared: a subset of the trials (a held-out fold, a
+    /// training fold) reads the same spikes instead of copying them.
+    pub spikes: std::sync::Arc<Vec<(i64, u32)>>,
     /// Every unit id seen in the spike table, plus any declared without spikes, sorted.
     pub units: Vec<u32>,
     /// Units declared part-way through the session (online sorting isolated them): unit → tick
@@ -247,7 +248,7 @@ impl Dataset {
         let mut covered_until = i64::MIN; // exclusive end of the union of windows started so far
         let mut onsets: Vec<i64> = self.trials.iter().map(|t| t.onset).collect();
         onsets.sort_unstable();
-        for &(tick, _) in &self.spikes {
+        for &(tick, _) in self.spikes.iter() {
             while ti < onsets.len() && onsets[ti] <= tick {
                 covered_until = covered_until.max(onsets[ti].saturating_add(window_ticks));
                 ti += 1;
@@ -313,7 +314,7 @@ mod tests {
                     stimulus: None,
                 },
             ],
-            spikes: vec![(5, 1), (10, 1), (24, 1), (25, 1), (40, 1)],
+            spikes: vec![(5, 1), (10, 1), (24, 1), (25, 1), (40, 1)].into(),
             units: vec![1],
             declared_from: Default::default(),
             stimulus_order: Vec::new(),

@@ -329,8 +329,20 @@ impl TablePrep {
             .map(|i| m.dists[i].pmf().len())
             .max()
             .unwrap_or(0);
+        // Counts past every table cell's upper 1 − LOOKUP_TAIL quantile are met so rarely that
+        // a row for them is memory spent for nothing: they take the exact path of `add_unit`.
+        // So the lookup grows with the counts the cells make likely, not with the longest
+        // table (one heavy-tailed cell no longer sizes every unit's rows).
+        let likely = self
+            .units
+            .iter()
+            .flat_map(|&u| (0..ns).map(move |s| u * ns + s))
+            .filter(|&i| matches!(m.kernels[i], CellKernel::Table))
+            .map(|i| likely_counts(m.dists[i].pmf()))
+            .max()
+            .unwrap_or(0);
         let per_count = (nt * nb * ns * 8).max(1);
-        let mut kk = longest.min(budget / per_count);
+        let mut kk = longest.min(likely).min(budget / per_count);
         // Bounded preparation time (see PREP_TERMS_MAX).
         let slow_terms_per_count: usize = self
             .units
@@ -381,6 +393,21 @@ impl TablePrep {
         }
         l
     }
+}
+
+/// Upper-tail probability past which a count gets no lookup row (see `build_lookup`).
+pub const LOOKUP_TAIL: f64 = 1e-7;
+
+/// The smallest count q with P(N > q) < [`LOOKUP_TAIL`] under `pmf` (its length if none).
+fn likely_counts(pmf: &[f64]) -> usize {
+    let mut above: f64 = pmf.iter().sum();
+    for (q, p) in pmf.iter().enumerate() {
+        above -= p;
+        if above < LOOKUP_TAIL {
+            return q;
+        }
+    }
+    pmf.len()
 }
 
 fn detect_avx2() -> bool {
@@ -648,5 +675,38 @@ mod tests {
                 assert!((d[s] - c[s]).abs() < 1e-10 * c[s].abs().max(1.0));
             }
         }
+    }
+
+    /// The lookup holds rows for the counts the cells make likely, not for the longest table:
+    /// a count past every cell's upper 1 − LOOKUP_TAIL quantile has no row and takes the exact
+    /// path. Quantile of a Poisson(3) checked against statrs' survival function.
+    #[test]
+    fn lookup_covers_the_likely_counts_only() {
+        use statrs::distribution::{DiscreteCDF, Poisson};
+        let d = crate::CountDist::new(CountParams::Poisson { mean: 3.0 }).unwrap();
+        let q = likely_counts(d.pmf());
+        let sf = Poisson::new(3.0).unwrap();
+        assert!(
+            sf.sf(q as u64) < LOOKUP_TAIL,
+            "P(N > {q}) = {}",
+            sf.sf(q as u64)
+        );
+        assert!(sf.sf(q as u64 - 1) >= LOOKUP_TAIL * 0.999);
+        // In the test model the longest tables (≈ 400 counts) are long-tailed empirical cells;
+        // the rows stop at their upper quantile, far below the table's length.
+        let m = model();
+        let p = TablePrep::build(&m, 1 << 30);
+        let longest = (0..m.n_units() * m.n_stimuli())
+            .filter(|&i| matches!(m.kernels[i], CellKernel::Table))
+            .map(|i| m.dists[i].pmf().len())
+            .max()
+            .unwrap();
+        let likely = (0..m.n_units() * m.n_stimuli())
+            .filter(|&i| matches!(m.kernels[i], CellKernel::Table))
+            .map(|i| likely_counts(m.dists[i].pmf()))
+            .max()
+            .unwrap();
+        assert_eq!(p.lookup_counts(), likely);
+        assert!(likely < longest, "{likely} vs {longest}");
     }
 }

@@ -277,7 +277,7 @@ fn gaps_between_windows_cost_one_batch_and_change_no_frame() {
     let data = Dataset {
         tick_rate_hz: 1e6,
         trials: vec![trial(1, 0, "a"), trial(2, 30_000, "b"), trial(3, far, "b")],
-        spikes,
+        spikes: spikes.into(),
         units: vec![1, 2],
         ..Dataset::default()
     };
@@ -370,7 +370,7 @@ fn calibration_is_applied_only_with_its_own_decoder() {
             onset: 0,
             stimulus: Some("a".into()),
         }],
-        spikes: vec![(1, 1), (2, 1), (6, 1)],
+        spikes: vec![(1, 1), (2, 1), (6, 1)].into(),
         units: vec![1],
         ..Dataset::default()
     };

@@ -79,7 +79,43 @@ impl Constraints {
     }
 }
 
+/// Why a stimulus was chosen.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Why {
+    /// The policy is balanced blocks.
+    Block,
+    /// A warm-up block (every stimulus once before any policy choice).
+    WarmUp,
+    /// The stimulus was below its minimum share of the trials.
+    Owed,
+    /// Top-two Thompson sampling for the least clear unit: its posterior draw's best (`first`)
+    /// or the challenger from outside that best's neighbourhood.
+    TopTwo {
+        /// The first draw's best (else the challenger).
+        first: bool,
+    },
+    /// The policy's choice would have been shown more than the run limit in a row.
+    RunLimit {
+        /// What the policy chose.
+        instead_of: u32,
+    },
+}
+
+/// A choice with its reason.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Choice {
+    /// The stimulus (index).
+    pub stimulus: u32,
+    /// Why.
+    pub why: Why,
+    /// The unit (index) the choice serves, for a policy choice.
+    pub unit: Option<usize>,
+    /// That unit's [`Design::margin`] before this trial (NaN: no unit served).
+    pub margin: f64,
+}
+
 /// The running state of a design: counts per unit × stimulus, choices so far.
+#[derive(Clone, Debug)]
 pub struct Design {
     policy: Policy,
     constraints: Constraints,
@@ -105,6 +141,55 @@ impl Design {
             block: Vec::new(),
             rng: ChaCha8Rng::seed_from_u64(seed ^ 0xde51),
         }
+    }
+
+    /// Units in the design.
+    pub fn n_units(&self) -> usize {
+        self.stats.len()
+    }
+
+    /// Stimuli in the design.
+    pub fn n_stimuli(&self) -> usize {
+        self.ns
+    }
+
+    /// The policy.
+    pub fn policy(&self) -> Policy {
+        self.policy
+    }
+
+    /// Adds `n` units with nothing recorded yet (units isolated part-way through a session).
+    pub fn add_units(&mut self, n: usize) {
+        self.stats
+            .extend(std::iter::repeat_n(vec![(0.0, 0.0, 0.0); self.ns], n));
+    }
+
+    /// Trials recorded.
+    pub fn recorded(&self) -> u64 {
+        self.stats
+            .first()
+            .map_or(0, |u| u.iter().map(|e| e.0).sum::<f64>() as u64)
+    }
+
+    /// How clearly unit `u`'s best stimulus stands above its nearest rival outside its
+    /// neighbourhood: the difference of their posterior mean counts in posterior standard
+    /// deviations (Gamma posteriors, [`Design::posterior`]). Small: the unit's preference is
+    /// not known yet. Cheap (one pass over the stimuli), so every choice can use it.
+    pub fn margin(&self, u: usize) -> f64 {
+        let post = self.posterior(u);
+        let mean = |s: usize| post[s].0 / post[s].1;
+        let var = |s: usize| post[s].0 / (post[s].1 * post[s].1);
+        let best = (0..self.ns)
+            .max_by(|&a, &b| mean(a).total_cmp(&mean(b)))
+            .unwrap_or(0);
+        let near = neighbours(best, self.ns);
+        let Some(rival) = (0..self.ns)
+            .filter(|s| !near.contains(s))
+            .max_by(|&a, &b| mean(a).total_cmp(&mean(b)))
+        else {
+            return f64::INFINITY;
+        };
+        (mean(best) - mean(rival)) / (var(best) + var(rival)).sqrt()
     }
 
     /// Records a trial: the stimulus shown and each unit's spike count in its window.
@@ -165,27 +250,50 @@ impl Design {
     }
 
     fn draw_argmax(&mut self, post: &[(f64, f64)]) -> usize {
-        let mut best = (0, f64::NEG_INFINITY);
-        for (s, &(a, b)) in post.iter().enumerate() {
-            let x = Gamma::new(a, b).map_or(a / b, |g| self.rng.sample(g));
-            if x > best.1 {
-                best = (s, x);
-            }
-        }
-        best.0
+        argmax_draw(post, &mut self.rng)
     }
 
     /// How settled unit `u`'s preferred stimulus is: (the most frequent argmax over posterior
-    /// draws, the share of draws within one neighbour of it).
+    /// draws, the share of draws within one neighbour of it). Draws from the design's own
+    /// random stream (see [`Design::preferred_shares`] for one that leaves it alone).
     pub fn settledness(&mut self, u: usize) -> (usize, f64) {
         let post = self.posterior(u);
         let mut hits = vec![0usize; self.ns];
         for _ in 0..DRAWS {
-            hits[self.draw_argmax(&post)] += 1;
+            let s = argmax_draw(&post, &mut self.rng);
+            hits[s] += 1;
         }
-        let mode = (0..self.ns).max_by_key(|&s| hits[s]).unwrap_or(0);
-        let near: usize = neighbours(mode, self.ns).iter().map(|&s| hits[s]).sum();
-        (mode, near as f64 / DRAWS as f64)
+        settled_of(&hits)
+    }
+
+    /// [`Design::preferred_shares`] with a random stream of its own, seeded by `seed`: the
+    /// estimate is a function of the recorded trials and the seed.
+    pub fn preferred_shares_seeded(
+        &self,
+        u: usize,
+        draws: usize,
+        seed: u64,
+    ) -> (Vec<f64>, (usize, f64)) {
+        self.preferred_shares(u, draws, &mut ChaCha8Rng::seed_from_u64(seed))
+    }
+
+    /// For reports: each stimulus's posterior probability of being unit `u`'s preferred one,
+    /// estimated from `draws` posterior draws with `rng` (the design's own stream, and so its
+    /// choices, are left alone), and [`Design::settledness`]'s (mode, share) from the same draws.
+    pub fn preferred_shares(
+        &self,
+        u: usize,
+        draws: usize,
+        rng: &mut ChaCha8Rng,
+    ) -> (Vec<f64>, (usize, f64)) {
+        let post = self.posterior(u);
+        let mut hits = vec![0usize; self.ns];
+        for _ in 0..draws.max(1) {
+            hits[argmax_draw(&post, rng)] += 1;
+        }
+        let (mode, share) = settled_of(&hits);
+        let n = draws.max(1) as f64;
+        (hits.iter().map(|&h| h as f64 / n).collect(), (mode, share))
     }
 
     /// Whether every unit's preferred stimulus is settled: the modes when so.
@@ -203,19 +311,37 @@ impl Design {
 
     /// The next stimulus, every constraint honoured.
     pub fn choose(&mut self) -> u32 {
+        self.choose_explained().stimulus
+    }
+
+    /// The next stimulus, every constraint honoured, and why it was chosen.
+    pub fn choose_explained(&mut self) -> Choice {
         let t = self.history.len();
         let warm = self.constraints.warmup_blocks * self.ns;
-        let choice = if t < warm || self.policy == Policy::BalancedBlocks {
-            self.balanced()
+        let (choice, why, unit) = if self.policy == Policy::BalancedBlocks {
+            (self.balanced(), Why::Block, None)
+        } else if t < warm {
+            (self.balanced(), Why::WarmUp, None)
         } else if let Some(s) = self.owed() {
-            s
+            (s, Why::Owed, None)
         } else {
-            self.find_tuning()
+            let (s, u, first) = self.find_tuning();
+            (s, Why::TopTwo { first }, Some(u))
         };
-        let choice = self.not_too_long(choice);
-        self.shown[choice as usize] += 1;
-        self.history.push(choice);
-        choice
+        let kept = self.not_too_long(choice);
+        let why = if kept == choice {
+            why
+        } else {
+            Why::RunLimit { instead_of: choice }
+        };
+        self.shown[kept as usize] += 1;
+        self.history.push(kept);
+        Choice {
+            stimulus: kept,
+            why,
+            unit,
+            margin: unit.map_or(f64::NAN, |u| self.margin(u)),
+        }
     }
 
     /// A stimulus below its minimum share of the trials so far (the least shown).
@@ -245,19 +371,17 @@ impl Design {
             .unwrap_or(choice)
     }
 
-    fn find_tuning(&mut self) -> u32 {
-        // The least settled unit.
-        let mut target = (0, f64::INFINITY);
-        for u in 0..self.stats.len() {
-            let (_, p) = self.settledness(u);
-            if p < target.1 {
-                target = (u, p);
-            }
-        }
-        let post = self.posterior(target.0);
+    /// Top-two Thompson sampling for the unit whose preference is least clear (smallest
+    /// [`Design::margin`]): (the stimulus, the unit, whether it is the first draw's best).
+    fn find_tuning(&mut self) -> (u32, usize, bool) {
+        let target = (0..self.stats.len())
+            .map(|u| (u, self.margin(u)))
+            .min_by(|a, b| a.1.total_cmp(&b.1))
+            .map_or(0, |x| x.0);
+        let post = self.posterior(target);
         let first = self.draw_argmax(&post);
         if self.rng.gen::<bool>() {
-            return first as u32;
+            return (first as u32, target, true);
         }
         // The challenger: the best of a draw that disagrees with the first about the preferred
         // stimulus's neighbourhood (the criterion is "within one neighbour", so a neighbour of
@@ -266,16 +390,37 @@ impl Design {
         for _ in 0..100 {
             let second = self.draw_argmax(&post);
             if !near.contains(&second) {
-                return second as u32;
+                return (second as u32, target, false);
             }
         }
-        first as u32
+        (first as u32, target, true)
     }
 
     /// Choices so far.
     pub fn history(&self) -> &[u32] {
         &self.history
     }
+}
+
+/// The best stimulus of one draw from Gamma posteriors (shape, rate).
+fn argmax_draw(post: &[(f64, f64)], rng: &mut ChaCha8Rng) -> usize {
+    let mut best = (0, f64::NEG_INFINITY);
+    for (s, &(a, b)) in post.iter().enumerate() {
+        let x = Gamma::new(a, b).map_or(a / b, |g| rng.sample(g));
+        if x > best.1 {
+            best = (s, x);
+        }
+    }
+    best.0
+}
+
+/// (the most frequent best stimulus, the share of draws within one neighbour of it).
+fn settled_of(hits: &[usize]) -> (usize, f64) {
+    let ns = hits.len();
+    let total: usize = hits.iter().sum();
+    let mode = (0..ns).max_by_key(|&s| hits[s]).unwrap_or(0);
+    let near: usize = neighbours(mode, ns).iter().map(|&s| hits[s]).sum();
+    (mode, near as f64 / total.max(1) as f64)
 }
 
 /// A stimulus and its two neighbours in circular order.

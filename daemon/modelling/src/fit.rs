@@ -179,7 +179,7 @@ pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
         data.units.clone(),
         &stim_of,
         &onsets,
-        &w,
+        w,
         &data.declared_from,
     )
 }
@@ -216,7 +216,8 @@ pub fn reorder_spec(mut spec: ModelSpec, order: &[String]) -> Result<ModelSpec, 
 
 /// The planning shared by [`plan`] (a whole dataset) and the learner (the labelled trials of a
 /// running session): trial i has stimulus `stim_of[i]` (None: unlabelled, not used) and onset
-/// `onsets[i]`; `w` holds every unit's window of every trial.
+/// `onsets[i]`; `w` holds every unit's window of every trial (its spike times move into the
+/// cells: one copy of them, not two).
 #[allow(clippy::too_many_arguments)]
 pub(crate) fn plan_from_windows(
     opts: &FitOptions,
@@ -225,7 +226,7 @@ pub(crate) fn plan_from_windows(
     units: Vec<u32>,
     stim_of: &[Option<usize>],
     onsets: &[i64],
-    w: &UnitWindows,
+    mut w: UnitWindows,
     declared_from: &BTreeMap<u32, i64>,
 ) -> Result<FitPlan, FitError> {
     if stimuli.len() < 2 {
@@ -260,7 +261,7 @@ pub(crate) fn plan_from_windows(
             }
             let c = &mut cells[u * ns + s];
             c.counts.push(w.counts[u][i]);
-            c.times.push(w.times[u][i].clone());
+            c.times.push(std::mem::take(&mut w.times[u][i]));
             any |= w.counts[u][i] > 0;
         }
         if !any {

@@ -435,7 +435,7 @@ impl Learner {
             units,
             &stim_of,
             &onsets,
-            &w,
+            w,
             &self.declared_from,
         )?)
     }
@@ -487,10 +487,12 @@ impl Learner {
             }
         }
         d.trials.sort_by_key(|t| (t.onset, t.id));
+        let mut spikes = Vec::new();
         for (spike, n) in times {
-            d.spikes.extend(std::iter::repeat_n(spike, n as usize));
+            spikes.extend(std::iter::repeat_n(spike, n as usize));
         }
-        d.spikes.sort_unstable();
+        spikes.sort_unstable();
+        d.spikes = spikes.into();
         d
     }
 
@@ -514,7 +516,7 @@ impl Learner {
         let mut d = self.dataset();
         let units: std::collections::BTreeSet<u32> = spec.units.iter().copied().collect();
         d.units.retain(|u| units.contains(u));
-        d.spikes.retain(|(_, u)| units.contains(u));
+        std::sync::Arc::make_mut(&mut d.spikes).retain(|(_, u)| units.contains(u));
         d.trials.retain(|t| {
             t.stimulus
                 .as_ref()
@@ -638,9 +640,11 @@ mod tests {
         // counts twice in the cells and in the held-out folds alike.
         let mut data = data;
         let t = data.trials[7].onset + 10_000;
-        data.spikes.push((t, data.units[0]));
-        data.spikes.push((t, data.units[0]));
-        data.spikes.sort_unstable();
+        let unit = data.units[0];
+        let spikes = std::sync::Arc::make_mut(&mut data.spikes);
+        spikes.push((t, unit));
+        spikes.push((t, unit));
+        spikes.sort_unstable();
         let mut l = Learner::new(opts.clone(), 1e6).unwrap();
         l.add_units(data.units.iter().copied());
         for w in collect_all(&data, 50_000) {

@@ -371,7 +371,7 @@ pub fn simulate(model: &Model, opts: &SimOptions) -> Dataset {
     Dataset {
         tick_rate_hz: opts.tick_rate_hz,
         trials,
-        spikes,
+        spikes: spikes.into(),
         units,
         declared_from: Default::default(),
         stimulus_order: Vec::new(),

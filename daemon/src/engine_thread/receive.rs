@@ -29,6 +29,7 @@ impl EngineThread {
         }
         if let (Some(r), false) = (&self.recorder, endpoint == RELAY_ENDPOINT) {
             let _ = r.send(RecorderMsg::Record(v1::SessionRecord {
+                choice: Default::default(),
                 received_unix_ns: received_ns,
                 endpoint,
                 message: bytes.to_vec(),
@@ -224,17 +225,18 @@ impl EngineThread {
                 }
             }
         }
+        let learning = self.learn.is_some();
         let mut sink = pub_sink!(self);
         let applied = apply_body(
             self.engine.as_mut(),
             self.collector.as_mut(),
+            learning,
             &self.names,
             &self.current,
             body,
             &mut sink,
             &mut self.windows,
         );
-        let learning = self.learn.is_some();
         if let Some((a, t)) = applied.mismatched_batch {
             self.counters.malformed += 1;
             self.warn("malformed", || {
@@ -267,19 +269,20 @@ impl EngineThread {
         self.send_windows();
     }
 
-    /// Hands completed labelled windows to the learner (the collector only runs when learning).
+    /// Hands completed labelled windows to find-tuning (each unit's count) and the learner.
     pub(super) fn send_windows(&mut self) {
         if self.windows.is_empty() {
             return;
         }
-        match self.learn.as_mut() {
-            Some(l) => {
-                for w in self.windows.drain(..) {
-                    l.trials_sent += 1;
-                    let _ = l.tx.send(LearnMsg::Trial(w));
-                }
+        for w in self.windows.drain(..) {
+            let _ = self.steering.tx.send(crate::steering::SteerMsg::Trial {
+                stimulus: w.stimulus.clone(),
+                spikes: w.spikes.clone(),
+            });
+            if let Some(l) = self.learn.as_mut() {
+                l.trials_sent += 1;
+                let _ = l.tx.send(LearnMsg::Trial(w));
             }
-            None => self.windows.clear(),
         }
     }
 
@@ -296,6 +299,10 @@ impl EngineThread {
             from_tick = ua.from_tick,
             "units added to the session"
         );
+        let _ = self
+            .steering
+            .tx
+            .send(crate::steering::SteerMsg::Units(ua.units.clone()));
         if let Some(l) = &self.learn {
             let _ = l.tx.send(LearnMsg::Units {
                 units: ua.units.clone(),

@@ -84,6 +84,12 @@ impl EngineThread {
         );
         self.current = l.model.stimuli().to_vec().into();
         self.chooser.resize(l.model.n_stimuli());
+        let _ = self
+            .steering
+            .tx
+            .send(crate::steering::SteerMsg::ModelStimuli(
+                self.current.to_vec(),
+            ));
         if let Some(e) = &self.engine {
             self.config = e.config().clone();
         }
@@ -134,6 +140,13 @@ impl EngineThread {
             Ok(()) => {
                 self.current = model.stimuli().to_vec().into();
                 self.chooser.resize(model.n_stimuli());
+                self.steer_window_s = Some(model.n_bins() as f64 * model.bin_width_s());
+                let _ = self
+                    .steering
+                    .tx
+                    .send(crate::steering::SteerMsg::ModelStimuli(
+                        self.current.to_vec(),
+                    ));
                 self.model = Some(model);
                 self.model_path = path.clone();
                 if let Some(e) = &self.engine {
@@ -328,24 +341,34 @@ impl EngineThread {
                 )),
             },
             B::NextStimulus(n) => {
-                let ns = self.current.len();
+                if !["", "balanced-blocks", "least-certain"].contains(&n.policy.as_str()) {
+                    return err(format!("unknown next-stimulus policy `{}`: use balanced-blocks, least-certain or find-tuning", auspex_engine::data::printable(&n.policy)));
+                }
+                // The model's stimuli, else the set declared for the session (its start
+                // message, or the daemon's --stimuli): choosing works from the first trial.
+                let set: Arc<[String]> = if self.current.is_empty() {
+                    self.declared_stimuli.clone()
+                } else {
+                    self.current.clone()
+                };
+                let ns = set.len();
                 if ns == 0 {
                     return err(match (&self.learn, &self.session) {
-                        (Some(_), Some(_)) => "no model yet: nothing to choose among (learning waits for labelled trials)".into(),
+                        (Some(_), Some(_)) => "no model yet and no stimulus set declared: nothing to choose among (declare the set in SessionStart.stimuli or with auspexd --stimuli, or wait for the learned model)".into(),
                         (Some(_), None) => "no model in use: no session is running, and each session learns afresh (a model loaded with --model or `steer reload` is used from the start)".into(),
                         (None, _) => "no model loaded: nothing to choose among".into(),
                     });
                 }
                 self.chooser.resize(ns);
                 let (idx, policy) = match n.policy.as_str() {
-                    "" | "balanced-blocks" => (self.chooser.balanced(ns), "balanced-blocks"),
                     "least-certain" => (self.chooser.least_certain(ns), "least-certain"),
-                    other => return err(format!("unknown next-stimulus policy `{other}`: use balanced-blocks or least-certain")),
+                    _ => (self.chooser.balanced(ns), "balanced-blocks"),
                 };
                 ok(Some(v1::control_reply::Body::Next(v1::NextStimulusReply {
-                    stimulus: self.current[idx as usize].clone(),
+                    stimulus: set[idx as usize].clone(),
                     index: idx,
                     policy: policy.into(),
+                    ..Default::default()
                 })))
             }
             B::SetLearning(a) => match self.set_learning(a.action.trim()) {
@@ -372,6 +395,7 @@ pub(super) fn swap_record(
     model: Option<&Arc<PreparedModel>>,
 ) -> v1::SessionRecord {
     v1::SessionRecord {
+        choice: Default::default(),
         received_unix_ns: crate::clock::now_ns(),
         endpoint: 0,
         message: Vec::new(),

@@ -94,10 +94,37 @@ impl EngineThread {
             self.recording_path.clone(),
         ));
         self.promise.new_session();
-        if let Some(l) = self.learn.as_mut() {
-            let window_ticks = (l.setup.options.fit.window_s * ss.tick_rate_hz).round() as i64;
+        // Labelled trials' windows: for the learner (its window) and find-tuning's counts (the
+        // learner's window, else the model's).
+        let window_s = self
+            .learn
+            .as_ref()
+            .map(|l| l.setup.options.fit.window_s)
+            .or(self.steer_window_s);
+        if let Some(w) = window_s {
+            let window_ticks = (w * ss.tick_rate_hz).round() as i64;
             let history = (self.config.history_s * ss.tick_rate_hz).round() as i64;
             self.collector = Some(WindowCollector::new(window_ticks, history));
+        }
+        self.declared_stimuli = if ss.stimuli.is_empty() {
+            self.daemon_stimuli.clone()
+        } else {
+            ss.stimuli.clone().into()
+        };
+        let _ = self.steering.tx.send(crate::steering::SteerMsg::Session {
+            units: ss.units.clone(),
+            stimuli: ss.stimuli.clone(),
+            from: "session start",
+        });
+        if !self.current.is_empty() {
+            let _ = self
+                .steering
+                .tx
+                .send(crate::steering::SteerMsg::ModelStimuli(
+                    self.current.to_vec(),
+                ));
+        }
+        if let Some(l) = self.learn.as_mut() {
             l.trials_sent = 0;
             l.model_trials = 0;
             l.applied_at = None;
@@ -189,6 +216,7 @@ impl EngineThread {
         self.names.clear();
         self.held.clear();
         self.collector = None;
+        let _ = self.steering.tx.send(crate::steering::SteerMsg::End);
         self.tick_rate = self.fixed_tick_rate;
         if let Some(l) = self.learn.as_mut() {
             // The learned model leaves with its session (below): status must not show it in use.
