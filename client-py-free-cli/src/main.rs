@@ -174,6 +174,20 @@ enum Cmd {
         /// Also print every experiment's trials as JSON
         #[arg(long)]
         json: bool,
+        /// Play the experiments against a running daemon instead: its `next` chooses every
+        /// trial's stimulus (the daemon's own constraints apply) and its status judges when
+        /// every unit's preference is settled
+        #[arg(long)]
+        through_daemon: bool,
+        /// With --through-daemon: the policies to ask for, in turn
+        #[arg(long, value_delimiter = ',', default_value = "find-tuning,balanced-blocks", value_parser = ["balanced-blocks", "least-certain", "find-tuning"])]
+        policies: Vec<String>,
+        /// With --through-daemon: the daemon's ingest endpoint
+        #[arg(long, default_value = auspex_proto::endpoints::INGEST)]
+        ingest: String,
+        /// With --through-daemon: the daemon's control endpoint
+        #[arg(long, default_value = auspex_proto::endpoints::CONTROL)]
+        control: String,
     },
     /// Fit per-(unit, stimulus) spike-train models and write a model file
     Fit {
@@ -755,7 +769,10 @@ fn main() {
             })
         }),
         Cmd::Export { model, out } => commands::export_cmd(&model, out.as_deref()),
-        Cmd::ClosedLoopSim { units, stimuli, seeds, max_trials, warmup_blocks, min_share, max_run, json } => auspex::offline::steering::closed_loop_cmd(
+        Cmd::ClosedLoopSim { units, stimuli, seeds, max_trials, through_daemon: true, policies, ingest, control, .. } => runtime().and_then(|rt| {
+            rt.block_on(auspex::live::closed_loop::through_daemon_cmd(&units, &stimuli, seeds, max_trials as u64, &policies, &ingest, &control))
+        }),
+        Cmd::ClosedLoopSim { units, stimuli, seeds, max_trials, warmup_blocks, min_share, max_run, json, .. } => auspex::offline::steering::closed_loop_cmd(
             &units,
             &stimuli,
             seeds,

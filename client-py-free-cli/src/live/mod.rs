@@ -6,6 +6,7 @@
 //! Must not: decode (the daemon and the offline jobs run the engine).
 
 pub mod client;
+pub mod closed_loop;
 pub mod monitor;
 pub mod send;
 pub mod session;

@@ -899,6 +899,10 @@ pub fn policy_line(s: &v1::Status) -> String {
         s.threshold,
         s.min_time_s * 1000.0
     );
+    let steer = steering_part(s);
+    if !steer.is_empty() {
+        out += &format!(" · {steer}");
+    }
     if s.realtime.starts_with("REFUSED") {
         out += " · real-time REFUSED (see status)";
     } else if s.realtime.starts_with("on") {
@@ -919,6 +923,66 @@ pub fn policy_line(s: &v1::Status) -> String {
         if !p.evidence.is_empty() {
             out += &format!(" · {}", p.evidence);
         }
+    }
+    out
+}
+
+/// find-tuning's state in one short part (empty before its first choice): the monitor's
+/// footer and `auspex status`.
+pub fn steering_part(s: &v1::Status) -> String {
+    let Some(st) = s.steering.as_ref().filter(|st| st.choices > 0) else {
+        return String::new();
+    };
+    let settled = st.units.iter().filter(|u| u.settled >= 0.95).count();
+    let mut out = format!("find-tuning {settled}/{} tuned", st.units.len());
+    if let Some(l) = &st.last {
+        out += &format!(", next {}", printable(&l.stimulus));
+        if l.serves_unit {
+            out += &format!(" for unit {}", l.unit);
+        }
+    }
+    out
+}
+
+/// find-tuning's state for `auspex status`: the set, the constraints, the last choice and its
+/// reason, and each unit's preferred stimulus and how settled it is.
+pub fn steering_lines(s: &v1::Status) -> Vec<String> {
+    let Some(st) = &s.steering else {
+        return Vec::new();
+    };
+    let mut out = vec![format!(
+        "find-tuning: {} stimuli ({}) · {} trials recorded · {} choices · warm-up {} block(s), minimum share {}, at most {} in a row, seed {}{}",
+        st.stimuli.len(),
+        if st.stimuli_from.is_empty() { "set not known yet" } else { &st.stimuli_from },
+        st.trials,
+        st.choices,
+        st.warmup_blocks,
+        st.min_share,
+        st.max_run,
+        st.seed,
+        if st.unknown_stimuli > 0 {
+            format!(" · {} trials named a stimulus outside the set", st.unknown_stimuli)
+        } else {
+            String::new()
+        }
+    )];
+    if let Some(l) = &st.last {
+        out.push(format!(
+            "  last choice {}: {}",
+            printable(&l.stimulus),
+            crate::live::steer::next_reason(l).unwrap_or_default()
+        ));
+    }
+    for u in &st.units {
+        out.push(format!(
+            "  unit {:>5}: prefers {} ({:.0}% within one neighbour{}) · margin {:.2} SD · {} trials",
+            u.unit,
+            if u.preferred.is_empty() { "?".into() } else { printable(&u.preferred) },
+            100.0 * u.settled,
+            if u.settled >= 0.95 { ", settled" } else { "" },
+            u.margin,
+            u.trials
+        ));
     }
     out
 }

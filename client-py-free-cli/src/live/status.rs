@@ -107,6 +107,9 @@ pub fn status_text(s: &v1::Status) -> String {
     for l in crate::monitor::promise_lines(s) {
         out!("{l}");
     }
+    for l in crate::monitor::steering_lines(s) {
+        out!("{l}");
+    }
     if s.tick_rate_hz > 0.0 {
         out!(
             "session {:?} · clock {} ticks/s · open trials {:?} · recording {}",
@@ -145,7 +148,7 @@ pub fn status_text(s: &v1::Status) -> String {
             "no learned model in use".to_string()
         };
         out!("learning {state}: {} labelled trials taken · {model} · {} refits (every {} trials or {:.0} s){}", l.trials_learned, l.refits, l.refit_every_trials, l.refit_every_s,
-            if l.waiting_for.is_empty() { String::new() } else { format!(" · not yet: {}", l.waiting_for) });
+            if !l.enabled { " · no refits while frozen (`auspex steer learn resume`)".to_string() } else if l.waiting_for.is_empty() { String::new() } else { format!(" · not yet: {}", l.waiting_for) });
     }
     for e in &s.ended_sessions {
         out!("{}", crate::monitor::session_line(e));
