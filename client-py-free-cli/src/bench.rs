@@ -964,6 +964,8 @@ pub struct Options {
     pub threads: u32,
     /// Latency of a whole daemon and of this many shards + a combiner, side by side (0: off).
     pub shards: u32,
+    /// `next --policy find-tuning`'s round trip while the daemon decodes.
+    pub next: bool,
 }
 
 /// Everything `auspex bench` measured.
@@ -995,7 +997,7 @@ pub async fn run(opts: &Options) -> anyhow::Result<Report> {
             print_model_point(path, &p);
             report.model = Some(p);
         }
-        None if opts.learning || opts.shards > 0 => {}
+        None if opts.learning || opts.shards > 0 || opts.next => {}
         None if opts.thread_scaling => {}
         None => report.engine = ladder().await?,
     }
@@ -1010,13 +1012,15 @@ pub async fn run(opts: &Options) -> anyhow::Result<Report> {
         .await??;
         return Ok(report);
     }
-    if opts.model.is_none() && !opts.learning && opts.shards == 0 {
+    if opts.model.is_none() && !opts.learning && opts.shards == 0 && !opts.next {
         eprintln!("auspex bench: engine threads (auspexd --threads), {cores} cores");
         report.threads =
             tokio::task::spawn_blocking(move || thread_scaling(&[(1024, 64)], cores.max(2)))
                 .await??;
     }
-    if opts.shards > 0 {
+    if opts.next {
+        report.latency = next_latency(opts.latency_seconds, opts.latency_size).await?;
+    } else if opts.shards > 0 {
         report.latency =
             sharded_latencies(opts.latency_seconds, opts.latency_size, opts.shards).await?;
     } else if opts.learning {
@@ -1089,6 +1093,110 @@ async fn latencies(
         lats.push(l);
     }
     Ok(lats)
+}
+
+/// `next --policy find-tuning` answered while the daemon decodes in real time: a daemon with
+/// the synthetic model of `size` (its stimuli the set find-tuning chooses from), 1 kHz spike
+/// batches and trials back to back over TCP as in [`latency`], and a task program asking
+/// `next` every 25 ms over control (in turn find-tuning and balanced-blocks); the request's round trip (µs), beside the frames'
+/// latency in the same run.
+pub async fn next_latency(seconds: f64, size: (usize, usize)) -> anyhow::Result<Vec<Latency>> {
+    let dir = tempfile::tempdir()?;
+    eprintln!(
+        "`next --policy find-tuning` while decoding: {} units × {} stimuli over tcp, 1 kHz batches for {seconds} s, a request every 25 ms …",
+        size.0, size.1
+    );
+    let running = start_daemon(size.0, size.1, "tcp", dir.path(), false, 1).await?;
+    let eps = running.endpoints.clone();
+    let mut push = zeromq::PushSocket::new();
+    push.connect(&eps.ingest).await?;
+    let n_batches = (seconds * 1000.0).round() as usize;
+    let msgs = latency_messages(size.0, size.1, n_batches)
+        .into_iter()
+        .map(|(b, m)| (b, 0, m))
+        .collect();
+    // A task program keeps its control socket open: one REQ socket for every request.
+    let mut req = zeromq::ReqSocket::new();
+    req.connect(&eps.control).await?;
+    let asking = tokio::spawn(async move {
+        use zeromq::{SocketRecv, SocketSend};
+        // find-tuning (the steering thread) and balanced-blocks (answered on the engine thread)
+        // in turn: the second is the control path's own cost, for reference.
+        let mut rtt = [Vec::new(), Vec::new()];
+        let mut refused = Vec::new();
+        let t0 = Instant::now();
+        let asks: Vec<Vec<u8>> = ["find-tuning", "balanced-blocks"]
+            .iter()
+            .map(|p| {
+                v1::ControlRequest {
+                    body: Some(v1::control_request::Body::NextStimulus(v1::NextStimulus {
+                        policy: p.to_string(),
+                    })),
+                }
+                .encode_to_vec()
+            })
+            .collect();
+        let mut turn = 0;
+        // Past the first trials (the warm-up block is cheap), then a request every 25 ms.
+        tokio::time::sleep(Duration::from_millis(500)).await;
+        while t0.elapsed().as_secs_f64() < seconds - 0.5 {
+            let t = Instant::now();
+            turn = 1 - turn;
+            if let Err(e) = req
+                .send(zeromq::ZmqMessage::from(bytes::Bytes::from(
+                    asks[turn].clone(),
+                )))
+                .await
+            {
+                refused.push(e.to_string());
+                break;
+            }
+            match req.recv().await {
+                Ok(m) => {
+                    let bytes = m.into_vec().pop().unwrap_or_default();
+                    match v1::ControlReply::decode(bytes.as_ref()) {
+                        Ok(r) if r.ok => rtt[turn].push(t.elapsed().as_secs_f64() * 1e6),
+                        Ok(r) => refused.push(r.error),
+                        Err(e) => refused.push(e.to_string()),
+                    }
+                }
+                Err(e) => {
+                    refused.push(e.to_string());
+                    break;
+                }
+            }
+            tokio::time::sleep(Duration::from_millis(25)).await;
+        }
+        (rtt, refused)
+    });
+    let frames = measure(&eps.publish, vec![push], msgs).await?;
+    let (rtt, refused) = asking.await?;
+    let choices = crate::live::status(&eps.control)
+        .await
+        .ok()
+        .and_then(|s| s.steering)
+        .map_or(0, |s| s.choices);
+    running.stop().await;
+    if let Some(e) = refused.first() {
+        anyhow::bail!("{} of the `next` requests were refused: {e}", refused.len());
+    }
+    let [find, blocks] = rtt;
+    let f = summarise("tcp frames", frames, n_batches);
+    let n = summarise("next find-tuning round trip", find, n_batches);
+    let b = summarise("next balanced-blocks round trip", blocks, n_batches);
+    println!(
+        "`next --policy find-tuning` round trip: p50 {:.0} µs, p99 {:.0} µs, worst {:.0} µs ({} requests; {choices} choices made)",
+        n.p50_us, n.p99_us, n.max_us, n.frames
+    );
+    println!(
+        "`next --policy balanced-blocks` (the engine thread's; the control path's own cost) in turn: p50 {:.0} µs, p99 {:.0} µs, worst {:.0} µs ({} requests)",
+        b.p50_us, b.p99_us, b.max_us, b.frames
+    );
+    println!(
+        "batch → posterior frame in the same run: p50 {:.0} µs, p99 {:.0} µs, worst {:.0} µs",
+        f.p50_us, f.p99_us, f.max_us
+    );
+    Ok(vec![f, n, b])
 }
 
 /// Batch → posterior latency over TCP loopback of one whole daemon and of `shards` shards + a

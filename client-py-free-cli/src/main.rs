@@ -348,6 +348,10 @@ enum Cmd {
         /// Latency over TCP of one whole daemon and of N shards + a combiner (auspexd --role), side by side
         #[arg(long, value_name = "N", conflicts_with_all = ["model", "learning", "thread_scaling", "no_latency"])]
         shards: Option<u32>,
+        /// `next --policy find-tuning`'s round trip over control while the daemon decodes
+        /// (the size's stimuli are the set it chooses from), beside the frames' latency
+        #[arg(long, conflicts_with_all = ["model", "learning", "thread_scaling", "no_latency", "shards"])]
+        next: bool,
         /// Memory for looked-up COM-Poisson/empirical terms with --model, MB (as the daemon's flag)
         #[arg(long, value_name = "MB", default_value_t = LookupBudget::DEFAULT, value_parser = lookup_budget)]
         table_memory_mb: LookupBudget,
@@ -741,7 +745,7 @@ fn main() {
             }
             Ok(())
         })(),
-        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, learning, thread_scaling, threads, shards, table_memory_mb, .. } => auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
+        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, learning, thread_scaling, threads, shards, table_memory_mb, next, .. } => auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
             rt.block_on(async {
                 if !(seconds > 0.0 && units > 0 && stimuli > 1) {
                     anyhow::bail!("--seconds must be > 0, --units ≥ 1 and --stimuli ≥ 2");
@@ -757,6 +761,7 @@ fn main() {
                     thread_scaling,
                     threads,
                     shards: shards.unwrap_or(0),
+                    next,
                 };
                 if !(0..=64).contains(&opts.shards) || opts.shards == 1 {
                     anyhow::bail!("--shards {}: give 2 to 64", opts.shards);

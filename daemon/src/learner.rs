@@ -131,7 +131,7 @@ struct State {
 /// class, `SCHED_IDLE`, was tried and made the p99 latency 8× worse on the 2-core benchmark
 /// machine: a starved refit can hold a lock the engine thread then waits for, such as an
 /// allocator arena's.)
-fn lower_priority() {
+pub(crate) fn lower_priority() {
     #[cfg(target_os = "linux")]
     {
         // SAFETY: gettid and setpriority take plain integers and touch no memory of ours; on

@@ -2,9 +2,10 @@
 //! the engine thread. The engine thread hands it the session's units and stimulus set, every
 //! labelled trial's window (each unit's spike count), and every `next --policy find-tuning`
 //! request in the order it applies them, so a choice depends only on the trials before it and
-//! the seed. Between messages it estimates, one unit at a time, each unit's posterior
-//! probability of preferring each stimulus (for the reasons in replies and the status; the
-//! choices never wait for it).
+//! the seed. An estimator thread of its own, at lowered priority (nice 10, as the learner),
+//! estimates each unit's posterior probability of preferring each stimulus from the latest
+//! snapshot of the design (for the reasons in replies and the status); neither the choices nor
+//! the engine thread wait for it.
 //!
 //! Must not: touch the engine or the sockets; allocate past the memory budget (the design's
 //! tables are units × stimuli).
@@ -12,7 +13,7 @@
 use crate::recorder::RecorderMsg;
 use auspex_modelling::design::{Choice, Constraints, Design, Policy, Why, SETTLED};
 use auspex_proto::v1::{self, ControlReply};
-use crossbeam_channel::{Receiver, Sender, TryRecvError};
+use crossbeam_channel::{Receiver, Sender};
 use std::collections::HashMap;
 use std::sync::{Arc, Mutex};
 use tokio::sync::oneshot;
@@ -57,8 +58,9 @@ pub enum SteerMsg {
 pub struct Steering {
     /// Inbox.
     pub tx: Sender<SteerMsg>,
-    /// The state the status shows (None before the first session with a stimulus set).
-    pub state: Arc<Mutex<Option<v1::SteeringState>>>,
+    /// The state the status shows, with the session's epoch (None between sessions).
+    state: Arc<Mutex<Option<(u64, v1::SteeringState)>>>,
+    estimates: Arc<Mutex<Estimates>>,
     join: Option<std::thread::JoinHandle<()>>,
 }
 
@@ -72,6 +74,13 @@ impl Steering {
     ) -> std::io::Result<Self> {
         let (tx, rx) = crossbeam_channel::unbounded();
         let state = Arc::new(Mutex::new(None));
+        let estimates = Arc::new(Mutex::new(Estimates::default()));
+        let (snap_tx, snap_rx) = crossbeam_channel::bounded::<Snapshot>(1);
+        let est = estimates.clone();
+        let est_for_status = estimates.clone();
+        let estimator = std::thread::Builder::new()
+            .name("auspex-steer-est".into())
+            .spawn(move || estimate(snap_rx, est, seed))?;
         let mut w = Worker {
             constraints,
             seed,
@@ -79,15 +88,40 @@ impl Steering {
             recorder,
             state: state.clone(),
             session: None,
+            estimates,
+            snapshots: Some(snap_tx),
+            epoch: 0,
         };
         let join = std::thread::Builder::new()
             .name("auspex-steering".into())
-            .spawn(move || w.run(rx))?;
+            .spawn(move || {
+                w.run(rx);
+                // The estimator ends with its inbox.
+                drop(w);
+                let _ = estimator.join();
+            })?;
         Ok(Steering {
             tx,
             state,
+            estimates: est_for_status,
             join: Some(join),
         })
+    }
+
+    /// find-tuning's state for the status: as of the last message the steering thread handled,
+    /// each unit's preference and settledness as of the estimator's latest figures.
+    pub fn status(&self) -> Option<v1::SteeringState> {
+        let (epoch, mut st) = self.state.lock().ok()?.clone()?;
+        let e = self.estimates.lock().ok()?;
+        if e.epoch == epoch {
+            for (u, x) in st.units.iter_mut().enumerate() {
+                if let Some(Some(est)) = e.units.get(u) {
+                    x.preferred = st.stimuli.get(est.mode).cloned().unwrap_or_default();
+                    x.settled = est.settled;
+                }
+            }
+        }
+        Some(st)
     }
 }
 
@@ -112,12 +146,6 @@ struct SessionDesign {
     /// None: the set is not known yet, or it is over the memory budget (`refused` says why).
     design: Option<Design>,
     refused: Option<String>,
-    /// Per unit: (each stimulus's probability of being preferred, mode, settled share), as of
-    /// `estimated_at[u]` trials.
-    estimate: Vec<Option<(Vec<f64>, usize, f64)>>,
-    estimated_at: Vec<u64>,
-    /// Trials not yet in an estimate: the next unit to estimate.
-    cursor: usize,
     trials: u64,
     choices: u64,
     unknown_stimuli: u64,
@@ -126,32 +154,121 @@ struct SessionDesign {
     early: Vec<(String, Vec<(usize, u32)>)>,
 }
 
+/// What the estimator is given: the design as of `trials` trials of session `epoch`.
+struct Snapshot {
+    epoch: u64,
+    trials: u64,
+    design: Design,
+}
+
+/// The estimator's latest figures per unit, for session `epoch`.
+#[derive(Default)]
+struct Estimates {
+    epoch: u64,
+    units: Vec<Option<UnitEstimate>>,
+}
+
+/// One unit's estimate: each stimulus's probability of being its preferred one, the most
+/// probable, the share within one neighbour of it, as of `at_trials` trials.
+#[derive(Clone)]
+struct UnitEstimate {
+    shares: Vec<f64>,
+    mode: usize,
+    settled: f64,
+    at_trials: u64,
+}
+
+/// The estimator thread: for the latest snapshot, one unit at a time, starting over when a
+/// newer snapshot comes (figures seeded by the trial count and unit: a function of the data).
+fn estimate(rx: Receiver<Snapshot>, out: Arc<Mutex<Estimates>>, seed: u64) {
+    crate::learner::lower_priority();
+    let mut next: Option<Snapshot> = None;
+    loop {
+        let snap = match next.take() {
+            Some(s) => s,
+            None => match rx.recv() {
+                Ok(s) => s,
+                Err(_) => return,
+            },
+        };
+        for u in 0..snap.design.n_units() {
+            // One unit's figures take about half a millisecond at 64 stimuli: between units
+            // the core goes to whoever waits for it (on a two-core machine a waking steering or
+            // engine thread otherwise waits out the scheduler's wake-up granularity).
+            std::thread::yield_now();
+            if let Ok(newer) = rx.try_recv() {
+                next = Some(newer);
+                break;
+            }
+            let seed =
+                seed ^ snap.trials.wrapping_mul(0x9E37_79B9) ^ (u as u64).wrapping_mul(0x85EB_CA6B);
+            let (shares, (mode, settled)) = snap.design.preferred_shares_seeded(u, DRAWS, seed);
+            let mut e = out.lock().expect("steering estimates");
+            if e.epoch != snap.epoch {
+                e.epoch = snap.epoch;
+                e.units.clear();
+            }
+            if e.units.len() < snap.design.n_units() {
+                e.units.resize(snap.design.n_units(), None);
+            }
+            e.units[u] = Some(UnitEstimate {
+                shares,
+                mode,
+                settled,
+                at_trials: snap.trials,
+            });
+        }
+    }
+}
+
 struct Worker {
     constraints: Constraints,
     seed: u64,
     declared: Vec<String>,
     recorder: Option<Sender<RecorderMsg>>,
-    state: Arc<Mutex<Option<v1::SteeringState>>>,
+    state: Arc<Mutex<Option<(u64, v1::SteeringState)>>>,
     session: Option<SessionDesign>,
+    estimates: Arc<Mutex<Estimates>>,
+    snapshots: Option<Sender<Snapshot>>,
+    /// Sessions started (the estimates' epoch).
+    epoch: u64,
 }
 
 impl Worker {
     fn run(&mut self, rx: Receiver<SteerMsg>) {
-        loop {
-            // Estimate one unit between messages; block only when every estimate is current.
-            let msg = if self.estimate_one() {
-                match rx.try_recv() {
-                    Ok(m) => m,
-                    Err(TryRecvError::Empty) => continue,
-                    Err(TryRecvError::Disconnected) => return,
-                }
-            } else {
-                match rx.recv() {
-                    Ok(m) => m,
-                    Err(_) => return,
-                }
-            };
+        while let Ok(msg) = rx.recv() {
+            let changed = !matches!(msg, SteerMsg::Next { .. } | SteerMsg::End);
             self.handle(msg);
+            if changed && rx.is_empty() {
+                self.snapshot();
+            }
+        }
+    }
+
+    /// Hands the estimator the design as it now is (in place of one it has not started).
+    fn snapshot(&mut self) {
+        let (Some(s), Some(tx)) = (self.session.as_ref(), self.snapshots.as_ref()) else {
+            return;
+        };
+        let Some(d) = s.design.as_ref() else { return };
+        let snap = Snapshot {
+            epoch: self.epoch,
+            trials: s.trials,
+            design: d.clone(),
+        };
+        // bounded(1): when one is already waiting, the estimator takes it first and this one
+        // next (a millisecond at most; past that, this snapshot is skipped and the next trial's
+        // brings it up to date).
+        let _ = tx.send_timeout(snap, std::time::Duration::from_millis(1));
+    }
+
+    /// The estimates of the current session (none yet: empty).
+    fn current_estimates(&self) -> Vec<Option<UnitEstimate>> {
+        let e = self.estimates.lock().expect("steering estimates");
+        if e.epoch == self.epoch {
+            e.units.clone()
+        } else {
+            Vec::new()
         }
     }
 
@@ -170,17 +287,15 @@ impl Worker {
                     (Vec::new(), "")
                 };
                 let index = units.iter().enumerate().map(|(i, &u)| (u, i)).collect();
+                self.epoch += 1;
                 let mut s = SessionDesign {
                     stimuli: Vec::new(),
                     from: "",
                     unit_trials: vec![0; units.len()],
-                    estimate: vec![None; units.len()],
-                    estimated_at: vec![0; units.len()],
                     units,
                     index,
                     design: None,
                     refused: None,
-                    cursor: 0,
                     trials: 0,
                     choices: 0,
                     unknown_stimuli: 0,
@@ -210,8 +325,6 @@ impl Worker {
                         s.index.insert(u, s.units.len());
                         s.units.push(u);
                         s.unit_trials.push(0);
-                        s.estimate.push(None);
-                        s.estimated_at.push(0);
                     }
                     let ns = s.stimuli.len();
                     let over = s.design.is_some() && Self::check(s.units.len(), ns).is_err();
@@ -307,38 +420,6 @@ impl Worker {
             *t += 1;
         }
         s.trials += 1;
-        s.cursor = 0;
-    }
-
-    /// Brings one unit's estimate up to date; false when all are.
-    fn estimate_one(&mut self) -> bool {
-        let Some(s) = self.session.as_mut() else {
-            return false;
-        };
-        let Some(d) = s.design.as_ref() else {
-            return false;
-        };
-        while s.cursor < s.units.len()
-            && s.estimated_at[s.cursor] == s.trials
-            && s.estimate[s.cursor].is_some()
-        {
-            s.cursor += 1;
-        }
-        if s.cursor >= s.units.len() {
-            return false;
-        }
-        let u = s.cursor;
-        // Seeded by the trial count and unit: the estimate is a function of the data.
-        let seed =
-            self.seed ^ s.trials.wrapping_mul(0x9E37_79B9) ^ (u as u64).wrapping_mul(0x85EB_CA6B);
-        let (shares, (mode, settled)) = d.preferred_shares_seeded(u, DRAWS, seed);
-        s.estimate[u] = Some((shares, mode, settled));
-        s.estimated_at[u] = s.trials;
-        s.cursor += 1;
-        if s.cursor >= s.units.len() {
-            self.publish();
-        }
-        true
     }
 
     fn next(&mut self) -> ControlReply {
@@ -365,6 +446,15 @@ impl Worker {
         }
         let c: Choice = d.choose_explained();
         s.choices += 1;
+        let all = {
+            let e = self.estimates.lock().expect("steering estimates");
+            if e.epoch == self.epoch {
+                e.units.clone()
+            } else {
+                Vec::new()
+            }
+        };
+        let estimate = c.unit.and_then(|u| all.get(u).cloned().flatten());
         let name = |i: usize| s.stimuli.get(i).cloned().unwrap_or_default();
         let (reason, p, runner, runner_p) = match (c.why, c.unit) {
             (Why::WarmUp, _) => (
@@ -402,8 +492,8 @@ impl Worker {
                 } else {
                     "the challenger to its draw's best"
                 };
-                let (p, runner, runner_p) = match &s.estimate[u] {
-                    Some((shares, _, _)) => {
+                let (p, runner, runner_p) = match &estimate {
+                    Some(UnitEstimate { shares, .. }) => {
                         let k = c.stimulus as usize;
                         let r = (0..shares.len())
                             .filter(|&x| x != k)
@@ -428,18 +518,11 @@ impl Worker {
             }
             (Why::TopTwo { .. }, None) => ("top-two draw".into(), f64::NAN, String::new(), f64::NAN),
         };
-        let settled = s
-            .estimate
+        let settled = all
             .iter()
-            .filter(|e| e.as_ref().is_some_and(|e| e.2 >= SETTLED))
+            .filter(|e| e.as_ref().is_some_and(|e| e.settled >= SETTLED))
             .count() as u32;
-        let as_of = c.unit.map_or(0, |u| {
-            if s.estimate[u].is_some() {
-                s.estimated_at[u]
-            } else {
-                0
-            }
-        });
+        let as_of = estimate.as_ref().map_or(0, |e| e.at_trials);
         let reply = v1::NextStimulusReply {
             stimulus: name(c.stimulus as usize),
             index: c.stimulus,
@@ -476,6 +559,7 @@ impl Worker {
     }
 
     fn publish(&self) {
+        let est = self.current_estimates();
         let st = self.session.as_ref().map(|s| v1::SteeringState {
             stimuli: s.stimuli.clone(),
             stimuli_from: s.from.into(),
@@ -483,9 +567,15 @@ impl Worker {
             units: (0..s.units.len().min(STATUS_UNITS))
                 .map(|u| {
                     let (preferred, settled) =
-                        s.estimate[u].as_ref().map_or((String::new(), 0.0), |e| {
-                            (s.stimuli.get(e.1).cloned().unwrap_or_default(), e.2)
-                        });
+                        est.get(u)
+                            .cloned()
+                            .flatten()
+                            .map_or((String::new(), 0.0), |e| {
+                                (
+                                    s.stimuli.get(e.mode).cloned().unwrap_or_default(),
+                                    e.settled,
+                                )
+                            });
                     v1::UnitTuningState {
                         unit: s.units[u],
                         preferred,
@@ -503,6 +593,6 @@ impl Worker {
             max_run: self.constraints.max_run as u32,
             seed: self.seed,
         });
-        *self.state.lock().expect("steering state") = st;
+        *self.state.lock().expect("steering state") = st.map(|st| (self.epoch, st));
     }
 }

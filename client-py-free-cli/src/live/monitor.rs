@@ -936,7 +936,7 @@ pub fn steering_part(s: &v1::Status) -> String {
     let settled = st.units.iter().filter(|u| u.settled >= 0.95).count();
     let mut out = format!("find-tuning {settled}/{} tuned", st.units.len());
     if let Some(l) = &st.last {
-        out += &format!(", next {}", printable(&l.stimulus));
+        out += &format!(", chose {}", printable(&l.stimulus));
         if l.serves_unit {
             out += &format!(" for unit {}", l.unit);
         }

@@ -57,13 +57,21 @@ pub fn parse_line(line: &str, pending: &mut Vec<(u32, i64)>) -> Result<Option<Bo
                 .map_err(|_| format!("`session`: clock `{}` is not a number", rest[0]))?;
             let mut units = Vec::new();
             let mut name = String::new();
+            let mut stimuli = Vec::new();
             for r in &rest[1..] {
-                match r.strip_prefix("name=") {
-                    Some(n) => name = n.to_string(),
-                    None => units.push(unit(r)?),
+                if let Some(n) = r.strip_prefix("name=") {
+                    name = n.to_string();
+                } else if let Some(list) = r.strip_prefix("stimuli=") {
+                    stimuli = list.split(',').map(str::to_string).collect();
+                    if stimuli.iter().any(String::is_empty) {
+                        return Err(format!("`session`: `{r}` names an empty stimulus"));
+                    }
+                } else {
+                    units.push(unit(r)?);
                 }
             }
-            Ok(Some(Body::SessionStart(v1::SessionStart { stimuli: Default::default(),
+            Ok(Some(Body::SessionStart(v1::SessionStart {
+                stimuli,
                 tick_rate_hz: rate,
                 units,
                 session_name: name,
@@ -283,6 +291,13 @@ mod tests {
             parse_line("session 30000 3 4 name=rig-2", &mut p),
             Ok(Some(Body::SessionStart(ref s))) if s.units == [3, 4] && s.session_name == "rig-2" && s.tick_rate_hz == 30000.0
         ));
+        assert!(matches!(
+            parse_line("session 1000 5 stimuli=0,90,180,270", &mut p),
+            Ok(Some(Body::SessionStart(ref s))) if s.stimuli == ["0", "90", "180", "270"] && s.units == [5]
+        ));
+        assert!(parse_line("session 1000 5 stimuli=0,,90", &mut p)
+            .unwrap_err()
+            .contains("empty stimulus"));
         assert_eq!(parse_line("spike 3 100  # comment", &mut p), Ok(None));
         assert_eq!(parse_line("", &mut p), Ok(None));
         match parse_line("through 120", &mut p) {

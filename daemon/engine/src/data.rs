@@ -97,14 +97,32 @@ pub fn printable(name: &str) -> std::borrow::Cow<'_, str> {
     }
 }
 
+/// Each name's position in `names` (the first, for a repeated name): a lookup in constant
+/// time, so that matching trials to stimuli stays linear with tens of thousands of distinct
+/// stimuli (a natural-image set).
+pub fn name_index(names: &[String]) -> std::collections::HashMap<&str, usize> {
+    let mut m = std::collections::HashMap::with_capacity(names.len());
+    for (i, n) in names.iter().enumerate() {
+        m.entry(n.as_str()).or_insert(i);
+    }
+    m
+}
+
 /// The presentation order of stimuli met in the order `as_met`: `explicit` first (those of
 /// its names that occur), then the rest as met; with no explicit order, numeric order when
 /// every name is a number; else as met.
 pub fn presentation_order(as_met: Vec<String>, explicit: &[String]) -> Vec<String> {
     let v = as_met;
     if !explicit.is_empty() {
-        let mut ordered: Vec<String> = explicit.iter().filter(|s| v.contains(s)).cloned().collect();
-        ordered.extend(v.into_iter().filter(|s| !explicit.contains(s)));
+        let met: std::collections::HashSet<&str> = v.iter().map(String::as_str).collect();
+        let listed: std::collections::HashSet<&str> = explicit.iter().map(String::as_str).collect();
+        let mut seen = std::collections::HashSet::new();
+        let mut ordered: Vec<String> = explicit
+            .iter()
+            .filter(|s| met.contains(s.as_str()) && seen.insert(s.as_str()))
+            .cloned()
+            .collect();
+        ordered.extend(v.iter().filter(|s| !listed.contains(s.as_str())).cloned());
         return ordered;
     }
     let numbers: Option<Vec<f64>> = v.iter().map(|s| s.trim().parse::<f64>().ok()).collect();
@@ -131,9 +149,10 @@ impl Dataset {
         let mut idx: Vec<usize> = (0..self.trials.len()).collect();
         idx.sort_by_key(|&i| (self.trials[i].onset, self.trials[i].id, i));
         let mut v: Vec<String> = Vec::new();
+        let mut seen = std::collections::HashSet::new();
         for i in idx {
             if let Some(s) = &self.trials[i].stimulus {
-                if !v.contains(s) {
+                if seen.insert(s.as_str()) {
                     v.push(s.clone());
                 }
             }

@@ -456,13 +456,14 @@ pub fn held_out_set(
     // them in (pass `stimuli` in that order too for results independent of any listing).
     let data = data.subset(&labelled).in_met_order();
     let ns = stimuli.len();
+    let at = auspex_engine::data::name_index(stimuli);
     let labels: Vec<usize> = data
         .trials
         .iter()
         .map(|t| {
-            stimuli
-                .iter()
-                .position(|s| Some(s) == t.stimulus.as_ref())
+            t.stimulus
+                .as_deref()
+                .and_then(|s| at.get(s).copied())
                 .ok_or_else(|| {
                     CalibrationError::Data(format!(
                         "trial {} has stimulus {:?}, not among the model's",

@@ -160,14 +160,11 @@ pub fn window_bins(
 pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
     let (n_bins, bin_ticks) = window_bins(opts.bin_width_s, opts.window_s, data.tick_rate_hz)?;
     let stimuli = data.stimulus_names();
+    let at = auspex_engine::data::name_index(&stimuli);
     let stim_of: Vec<Option<usize>> = data
         .trials
         .iter()
-        .map(|t| {
-            t.stimulus
-                .as_ref()
-                .and_then(|s| stimuli.iter().position(|x| x == s))
-        })
+        .map(|t| t.stimulus.as_deref().and_then(|s| at.get(s).copied()))
         .collect();
     let onsets: Vec<i64> = data.trials.iter().map(|t| t.onset).collect();
     crate::windows::check_fit_size(data.units.len(), data.trials.len(), stimuli.len(), n_bins)?;
@@ -190,9 +187,10 @@ pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
 /// order, and stored in the order they are presented.
 pub fn reorder_spec(mut spec: ModelSpec, order: &[String]) -> Result<ModelSpec, FitError> {
     let ns = spec.stimuli.len();
+    let at = auspex_engine::data::name_index(&spec.stimuli);
     let map: Vec<usize> = order
         .iter()
-        .map(|s| spec.stimuli.iter().position(|x| x == s))
+        .map(|s| at.get(s.as_str()).copied())
         .collect::<Option<_>>()
         .filter(|m: &Vec<usize>| m.len() == ns)
         .ok_or_else(|| {
@@ -424,8 +422,9 @@ impl FitPlan {
             )));
         }
         let mut map = Vec::with_capacity(ns);
+        let at = auspex_engine::data::name_index(&self.stimuli);
         for s in order {
-            map.push(self.stimuli.iter().position(|x| x == s).ok_or_else(|| {
+            map.push(at.get(s.as_str()).copied().ok_or_else(|| {
                 FitError::Data(format!("a training fold holds no trial of stimulus {s:?}"))
             })?);
         }

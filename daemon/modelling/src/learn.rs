@@ -391,13 +391,15 @@ impl Learner {
                 min: min as u32,
             });
         }
+        let ready_set: std::collections::HashSet<&str> = ready.iter().map(String::as_str).collect();
         let mut idx: Vec<usize> = (0..self.trials.len())
-            .filter(|&i| ready.contains(&self.trials[i].stimulus))
+            .filter(|&i| ready_set.contains(self.trials[i].stimulus.as_str()))
             .collect();
         idx.sort_by_key(|&i| (self.trials[i].onset, self.trials[i].id));
+        let ready_at = auspex_engine::data::name_index(&ready);
         let stim_of: Vec<Option<usize>> = idx
             .iter()
-            .map(|&i| ready.iter().position(|s| *s == self.trials[i].stimulus))
+            .map(|&i| ready_at.get(self.trials[i].stimulus.as_str()).copied())
             .collect();
         let onsets: Vec<i64> = idx.iter().map(|&i| self.trials[i].onset).collect();
         // Whether a unit declared from `from` has the minimum of every stimulus: one pass over

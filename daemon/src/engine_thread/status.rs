@@ -190,12 +190,7 @@ impl EngineThread {
                 Link::None => 0,
             },
             realtime: crate::realtime::summary(),
-            steering: self
-                .steering
-                .state
-                .lock()
-                .map(|s| s.clone())
-                .unwrap_or_default(),
+            steering: self.steering.status(),
         }
     }
 }

@@ -701,13 +701,14 @@ pub fn validate_with(
     let full_plan = plan(&data, &opts.fit)?;
     let stimuli = full_plan.stimuli.clone();
     let (ns, nb) = (stimuli.len(), full_plan.n_bins);
+    let at = auspex_engine::data::name_index(&stimuli);
     let labels: Vec<usize> = data
         .trials
         .iter()
         .map(|t| {
-            stimuli
-                .iter()
-                .position(|s| Some(s) == t.stimulus.as_ref())
+            t.stimulus
+                .as_deref()
+                .and_then(|s| at.get(s).copied())
                 .unwrap_or(0)
         })
         .collect();
@@ -940,9 +941,10 @@ pub fn validate_with(
 fn present(v: &mut Validation, x: &mut Extras, order: &[String]) -> Result<(), ValidateError> {
     let ns = v.stimuli.len();
     // map[p]: the computed index of the stimulus presented at position p.
+    let at = auspex_engine::data::name_index(&v.stimuli);
     let map: Vec<usize> = order
         .iter()
-        .filter_map(|s| v.stimuli.iter().position(|x| x == s))
+        .filter_map(|s| at.get(s.as_str()).copied())
         .collect();
     if map.len() != ns || map.iter().enumerate().all(|(p, &m)| p == m) {
         return Ok(());
@@ -964,7 +966,8 @@ fn present(v: &mut Validation, x: &mut Extras, order: &[String]) -> Result<(), V
         u.cells = map.iter().map(|&m| u.cells[m].clone()).collect();
     }
     let unit_at = |id: u32| x.data.units.iter().position(|&u| u == id);
-    let stim_at = |name: &str| order.iter().position(|s| s == name);
+    let order_at = auspex_engine::data::name_index(order);
+    let stim_at = |name: &str| order_at.get(name).copied();
     v.goodness_of_fit
         .failed
         .sort_by_key(|(u, s)| (unit_at(*u), stim_at(s)));
