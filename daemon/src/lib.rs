@@ -20,6 +20,9 @@ pub mod engine_thread;
 #[cfg(not(feature = "fuzzing"))]
 mod engine_thread;
 mod ingest;
+#[cfg(feature = "fuzzing")]
+pub mod learner;
+#[cfg(not(feature = "fuzzing"))]
 mod learner;
 #[cfg(feature = "fuzzing")]
 pub mod messages;

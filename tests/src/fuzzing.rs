@@ -284,7 +284,43 @@ pub fn inbound_messages(data: &[u8]) {
     let (pub_tx, _pub_rx) = tokio::sync::mpsc::channel(1 << 16);
     let stats = Arc::new(auspexd::publish::PublishStats::default());
     let mut b = Bytes(data);
-    let with_model = b.u8().unwrap_or(0) % 4 != 0;
+    let mode = b.u8().unwrap_or(0);
+    let with_model = mode % 4 != 0;
+    // Half the inputs reach a learning daemon: labelled windows go to a real learner thread
+    // that refits after every trial (under a 256 MB memory budget), its models swapped in.
+    let learning = mode & 0x10 != 0;
+    auspex_engine::budget::set_mb(256);
+    let (tx, rx) = crossbeam_channel::unbounded();
+    let learner = learning
+        .then(|| {
+            let opts = auspex_modelling::learn::LearnOptions {
+                fit: auspex_modelling::fit::FitOptions {
+                    window_s: 0.02,
+                    bin_width_s: 0.001,
+                    ..Default::default()
+                },
+                min_trials_per_stimulus: 1,
+                ..Default::default()
+            };
+            let cadence = auspexd::learner::Cadence {
+                every_trials: 1,
+                every: std::time::Duration::from_millis(20),
+            };
+            let l = auspexd::learner::LearnerThread::start(
+                opts.clone(),
+                cadence,
+                LookupBudget::from_mb(8).expect("8 MB"),
+                tx.clone(),
+            )
+            .ok()?;
+            let setup = auspexd::engine_thread::LearnSetup {
+                options: opts,
+                cadence,
+                enabled: true,
+            };
+            Some((l, setup))
+        })
+        .flatten();
     let setup = EngineThreadSetup {
         model: with_model.then(small_model),
         model_path: "fuzz".into(),
@@ -298,7 +334,7 @@ pub fn inbound_messages(data: &[u8]) {
         threads: 1 + (b.u8().unwrap_or(0) % 2) as u32,
         seed: 1,
         health_period: std::time::Duration::from_secs(3600),
-        learn: None,
+        learn: learner.as_ref().map(|(l, s)| (s.clone(), l.sender())),
         target_accuracy: None,
         link: auspexd::shard_link::Link::None,
         recorder_errors: Default::default(),
@@ -312,7 +348,6 @@ pub fn inbound_messages(data: &[u8]) {
         steer_window_s: Some(0.02),
         stimuli: Vec::new(),
     };
-    let (tx, rx) = crossbeam_channel::unbounded();
     let Ok(et) = EngineThread::new(setup, rx.clone()) else {
         return;
     };
@@ -344,6 +379,9 @@ pub fn inbound_messages(data: &[u8]) {
     }
     let _ = tx.send(EngineInput::Shutdown);
     et.run(rx);
+    if let Some((l, _)) = learner {
+        l.finish();
+    }
 }
 
 fn scratch_file(name: &str, bytes: &[u8]) -> (tempfile::TempDir, std::path::PathBuf) {
