@@ -36,6 +36,8 @@ pub enum SteerMsg {
     },
     /// A model now in use names these stimuli (taken when no set was declared).
     ModelStimuli(Vec<String>),
+    /// The session's set, declared by a later start message (taken when none is known yet).
+    Declared(Vec<String>),
     /// Units added part-way.
     Units(Vec<u32>),
     /// A labelled trial's window: its stimulus and spikes (tick − onset, unit).
@@ -133,6 +135,12 @@ impl Drop for Steering {
             let _ = j.join();
         }
     }
+}
+
+/// Whence a stimulus set came (for messages that carry one).
+enum Kind {
+    Model,
+    Other,
 }
 
 /// One session's design.
@@ -273,6 +281,11 @@ impl Worker {
     }
 
     fn handle(&mut self, msg: SteerMsg) {
+        let msg_kind = if matches!(msg, SteerMsg::ModelStimuli(_)) {
+            Kind::Model
+        } else {
+            Kind::Other
+        };
         match msg {
             SteerMsg::Session {
                 units,
@@ -307,10 +320,15 @@ impl Worker {
                 }
                 self.session = Some(s);
             }
-            SteerMsg::ModelStimuli(stimuli) => {
+            SteerMsg::ModelStimuli(stimuli) | SteerMsg::Declared(stimuli) => {
+                let from = if matches!(msg_kind, Kind::Model) {
+                    "model"
+                } else {
+                    "session start"
+                };
                 if let Some(mut s) = self.session.take() {
                     if s.stimuli.is_empty() && !stimuli.is_empty() {
-                        self.set_stimuli(&mut s, stimuli, "model");
+                        self.set_stimuli(&mut s, stimuli, from);
                     }
                     self.session = Some(s);
                 }

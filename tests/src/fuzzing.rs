@@ -721,7 +721,10 @@ pub fn declared_sizes(data: &[u8]) {
         1 => {
             // `validate`, small enough to finish: two shuffles.
             let d = dataset();
-            if nu * ns > 16 || nt > 256 {
+            // Fine bins make a validation long, not large (a whole run at 17 000 bins takes
+            // seconds of kernel-density work): what a fuzzing run can afford.
+            let nb = window_ms / bin_ms;
+            if nu * ns > 16 || nt > 256 || nb > 2000.0 {
                 // Still the planning (where the sizes are multiplied out).
                 let _ = plan(&d, &opts);
                 return;

@@ -17,6 +17,15 @@ impl EngineThread {
             return;
         }
         if self.session.is_some() {
+            // A task program that knows the stimulus set may announce the session after
+            // acquisition did: its set is taken when none was declared yet.
+            if !ss.stimuli.is_empty() && self.declared_stimuli.is_empty() {
+                self.declared_stimuli = ss.stimuli.clone().into();
+                let _ = self
+                    .steering
+                    .tx
+                    .send(crate::steering::SteerMsg::Declared(ss.stimuli.clone()));
+            }
             // The same session announced again (another sender, or a repeat): harmless, but
             // its clock must agree.
             if self.tick_rate.is_some_and(|r| r != ss.tick_rate_hz) {
