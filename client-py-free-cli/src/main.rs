@@ -814,12 +814,32 @@ fn main() {
                     _ => anyhow::bail!("give --session FILE, or --spikes and --trials"),
                 };
                 let (msgs, rate) = auspex::live::replay_messages(&source, &control, &sender, !learn_at_own_pace).await?;
+                // A whole recording's find-tuning requests are asked again at their points.
+                let choices = match &source {
+                    ReplaySource::Session(p) if units.is_none() && only.is_none() => {
+                        let rec = auspex::wire::read_recording(p)?;
+                        auspex::live::Choices {
+                            asked: rec.choices_asked,
+                            answered: rec.choices_answered.into_iter().filter_map(|c| c.reply.map(|r| (c.ordinal, r))).collect(),
+                        }
+                    }
+                    _ => auspex::live::Choices::default(),
+                };
                 let units = units.as_deref().map(auspex::wire::parse_unit_ranges).transpose()?;
                 let msgs = auspex::wire::select_messages(msgs, units.as_ref(), only.as_deref(), &sender);
                 let pace = if fast { Pace::Max } else { Pace::Speed(speed) };
                 let before = auspex::live::health_now(&control).await;
-                let took = auspex::live::replay(&to, &control, &msgs, &sender, rate, pace, std::io::stderr().is_terminal()).await?;
+                let (took, check) = auspex::live::replay_asking(&to, &control, &msgs, &sender, rate, pace, std::io::stderr().is_terminal(), &choices).await?;
                 eprintln!("sent {} messages in {:.2} s; the daemon acknowledged the last one", msgs.len(), took.as_secs_f64());
+                if check.asked > 0 {
+                    eprintln!("find-tuning asked again at the recording's {} requests: {} answered as recorded", check.asked, check.same);
+                    if check.same < check.asked {
+                        for (n, want, got) in &check.differ {
+                            eprintln!("  request {n}: recorded {want}, now {got}");
+                        }
+                        anyhow::bail!("{} of {} choices differ from the recording's: is the daemon started with the recording's --seed and --steer-* settings (and --stimuli, if the session did not declare its set)?", check.asked - check.same, check.asked);
+                    }
+                }
                 let last = msgs.last().map(|m| m.seq).unwrap_or(0);
                 let taken = auspex::live::taken_since(&control, before, &sender, last).await;
                 if let Some(line) = taken.as_ref().and_then(|t| t.line()) {

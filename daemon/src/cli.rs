@@ -126,6 +126,10 @@ pub struct DaemonArgs {
     /// with no model (a session's start message may declare its own instead)
     #[arg(long, value_name = "LIST", value_delimiter = ',')]
     pub stimuli: Vec<String>,
+    /// Seed of the next-stimulus policies' random streams (a replay checks find-tuning's
+    /// recorded choices with the same seed) [default: 1]
+    #[arg(long)]
+    pub seed: Option<u64>,
     /// find-tuning: whole balanced blocks before its first own choice [default: 1]
     #[arg(long, value_name = "N")]
     pub steer_warmup_blocks: Option<u32>,
@@ -200,7 +204,7 @@ pub fn run_cli(a: DaemonArgs) -> i32 {
         f.realtime_cpus = Some(a.realtime_cpus.clone());
     }
     over!(role, part, parts, link, shard_deadline_ms);
-    over!(steer_warmup_blocks, steer_min_share, steer_max_run);
+    over!(steer_warmup_blocks, steer_min_share, steer_max_run, seed);
     if !a.stimuli.is_empty() {
         f.stimuli = Some(a.stimuli.clone());
     }

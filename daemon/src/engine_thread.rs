@@ -133,6 +133,8 @@ pub struct EngineThread {
     collector: Option<WindowCollector>,
     steering: crate::steering::Steering,
     steer_window_s: Option<f64>,
+    /// find-tuning requests of this session (their recorded markers' ordinals).
+    choices_asked: u64,
     /// The daemon's declared stimulus set (--stimuli).
     daemon_stimuli: Arc<[String]>,
     /// The session's declared set (its start message's, else the daemon's).
@@ -302,6 +304,7 @@ impl EngineThread {
             last_from_link: Instant::now(),
             recorder_errors: s.recorder_errors,
             steering: s.steering,
+            choices_asked: 0,
             steer_window_s: s.steer_window_s,
             daemon_stimuli: s.stimuli.clone().into(),
             declared_stimuli: s.stimuli.into(),
@@ -379,11 +382,30 @@ impl EngineThread {
                     reply,
                 }) if n.policy.trim() == "find-tuning" => {
                     // Answered by the steering thread, in this thread's order of trials and
-                    // requests (so a choice depends only on the trials before it).
+                    // requests (so a choice depends only on the trials before it). Where it was
+                    // asked is recorded here, after every message applied before it, so a
+                    // replay can ask again at the same point.
+                    let ordinal = if self.session.is_some() {
+                        self.choices_asked += 1;
+                        if let Some(r) = &self.recorder {
+                            let _ = r.send(RecorderMsg::Record(v1::SessionRecord {
+                                received_unix_ns: crate::clock::now_ns(),
+                                choice: Some(Box::new(v1::StimulusChoice {
+                                    policy: "find-tuning".into(),
+                                    reply: None,
+                                    ordinal: self.choices_asked,
+                                })),
+                                ..Default::default()
+                            }));
+                        }
+                        self.choices_asked
+                    } else {
+                        0
+                    };
                     let _ = self
                         .steering
                         .tx
-                        .send(crate::steering::SteerMsg::Next { reply });
+                        .send(crate::steering::SteerMsg::Next { reply, ordinal });
                 }
                 Ok(EngineInput::Control { body, reply }) => {
                     let r = self.control(body);

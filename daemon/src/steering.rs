@@ -53,6 +53,8 @@ pub enum SteerMsg {
     Next {
         /// Where the reply goes.
         reply: oneshot::Sender<ControlReply>,
+        /// Its place among the session's requests (0: asked outside a session).
+        ordinal: u64,
     },
 }
 
@@ -382,8 +384,8 @@ impl Worker {
                 *self.state.lock().expect("steering state") = None;
                 return;
             }
-            SteerMsg::Next { reply } => {
-                let r = self.next();
+            SteerMsg::Next { reply, ordinal } => {
+                let r = self.next(ordinal);
                 let _ = reply.send(r);
             }
         }
@@ -440,7 +442,7 @@ impl Worker {
         s.trials += 1;
     }
 
-    fn next(&mut self) -> ControlReply {
+    fn next(&mut self, ordinal: u64) -> ControlReply {
         let err = |e: String| ControlReply {
             ok: false,
             error: e,
@@ -564,6 +566,7 @@ impl Worker {
                 choice: Some(Box::new(v1::StimulusChoice {
                     policy: Policy::FindTuning.name().into(),
                     reply: Some(reply.clone()),
+                    ordinal,
                 })),
                 ..Default::default()
             }));

@@ -132,6 +132,10 @@ pub struct RecordedSession {
     pub learned: Vec<(usize, v1::LearnedSwap)>,
     /// Bytes of a torn last record, if the recording was cut short.
     pub torn_tail_bytes: usize,
+    /// find-tuning's requests: (number of `messages` before it, the request marker).
+    pub choices_asked: Vec<(usize, v1::StimulusChoice)>,
+    /// find-tuning's answers (their `ordinal` names the request).
+    pub choices_answered: Vec<v1::StimulusChoice>,
 }
 
 /// The records of a session file (`session::read_session`) as messages and a dataset.
@@ -146,9 +150,18 @@ pub fn decode_recording(contents: SessionContents) -> Result<RecordedSession, St
     let mut learned = Vec::new();
     let mut at_start = std::collections::BTreeSet::new();
     let mut cancelled = std::collections::HashSet::new();
+    let (mut choices_asked, mut choices_answered) = (Vec::new(), Vec::new());
     for r in contents.records {
         if let Some(l) = r.learned {
             learned.push((messages.len(), l));
+            continue;
+        }
+        if let Some(c) = r.choice {
+            if c.reply.is_some() {
+                choices_answered.push(*c);
+            } else {
+                choices_asked.push((messages.len(), *c));
+            }
             continue;
         }
         let i = raw.len();
@@ -229,6 +242,8 @@ pub fn decode_recording(contents: SessionContents) -> Result<RecordedSession, St
         dataset: data,
         undecodable,
         learned,
+        choices_asked,
+        choices_answered,
         torn_tail_bytes: contents.torn_tail_bytes,
     })
 }

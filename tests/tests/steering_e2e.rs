@@ -32,21 +32,26 @@ fn find_tuning_learns_each_units_preference_in_closed_loop_from_the_first_trial(
     let ctx = zmq::Context::new();
     let dir = tempfile::tempdir().unwrap();
     let rec = dir.path().join("sessions");
-    let mut c = validate(
-        FileConfig {
-            ingest: Some("tcp://127.0.0.1:0".into()),
-            task_ingest: Some("tcp://127.0.0.1:0".into()),
-            publish: Some("tcp://127.0.0.1:0".into()),
-            control: Some("tcp://127.0.0.1:0".into()),
-            record: Some(rec.clone()),
-            learn_frozen: Some(true),
-            ..Default::default()
-        },
-        &mut Vec::new(),
-    )
-    .unwrap();
-    c.health_period = Duration::from_millis(200);
-    let d = rt.block_on(auspexd::service::start(c)).unwrap();
+    let config = |record: Option<std::path::PathBuf>| {
+        let mut c = validate(
+            FileConfig {
+                ingest: Some("tcp://127.0.0.1:0".into()),
+                task_ingest: Some("tcp://127.0.0.1:0".into()),
+                publish: Some("tcp://127.0.0.1:0".into()),
+                control: Some("tcp://127.0.0.1:0".into()),
+                record,
+                learn_frozen: Some(true),
+                ..Default::default()
+            },
+            &mut Vec::new(),
+        )
+        .unwrap();
+        c.health_period = Duration::from_millis(200);
+        c
+    };
+    let d = rt
+        .block_on(auspexd::service::start(config(Some(rec.clone()))))
+        .unwrap();
     let ep = d.endpoints.clone();
 
     // Before any session: a clear refusal, and the daemon answers status after it.
@@ -133,4 +138,42 @@ fn find_tuning_learns_each_units_preference_in_closed_loop_from_the_first_trial(
         assert_eq!(c.index as usize, s);
         assert!(!c.reason.is_empty());
     }
+
+    // A replay of the recording into a fresh daemon, asking find-tuning again at every recorded
+    // request's point, as fast as it goes: every choice is the recorded one.
+    let d2 = rt.block_on(auspexd::service::start(config(None))).unwrap();
+    let ep2 = d2.endpoints.clone();
+    let rec = auspex::wire::read_recording(&file).unwrap();
+    assert_eq!(rec.choices_asked.len() as u64, settled_at);
+    let asks = auspex::live::Choices {
+        asked: rec.choices_asked.clone(),
+        answered: rec
+            .choices_answered
+            .iter()
+            .filter_map(|c| c.reply.clone().map(|r| (c.ordinal, r)))
+            .collect(),
+    };
+    let (msgs, rate) = rt
+        .block_on(auspex::live::replay_messages(
+            &auspex::live::ReplaySource::Session(file.clone()),
+            &ep2.control,
+            "replay",
+            false,
+        ))
+        .unwrap();
+    let (_, check) = rt
+        .block_on(auspex::live::replay_asking(
+            &ep2.ingest,
+            &ep2.control,
+            &msgs,
+            "replay",
+            rate,
+            auspex::live::Pace::Max,
+            false,
+            &asks,
+        ))
+        .unwrap();
+    assert_eq!(check.asked as u64, settled_at);
+    assert_eq!(check.same, check.asked, "differences: {:?}", check.differ);
+    rt.block_on(d2.stop());
 }

@@ -86,6 +86,56 @@ pub async fn replay(
     pace: Pace,
     progress: bool,
 ) -> anyhow::Result<Duration> {
+    let asks = Choices::default();
+    let (took, _) = replay_asking(
+        ingest,
+        control_ep,
+        messages,
+        sender,
+        tick_rate_hz,
+        pace,
+        progress,
+        &asks,
+    )
+    .await?;
+    Ok(took)
+}
+
+/// A recording's find-tuning requests and answers, to ask again during a replay.
+#[derive(Clone, Debug, Default)]
+pub struct Choices {
+    /// (number of messages before it, the request marker).
+    pub asked: Vec<(usize, v1::StimulusChoice)>,
+    /// The answers, by ordinal.
+    pub answered: std::collections::HashMap<u64, v1::NextStimulusReply>,
+}
+
+/// How the choices asked again compare with the recorded ones.
+#[derive(Clone, Debug, Default)]
+pub struct ChoiceCheck {
+    /// Requests asked again.
+    pub asked: usize,
+    /// Answered as recorded (the same stimulus, or refused as it was).
+    pub same: usize,
+    /// The first differences: (ordinal, recorded stimulus or "refused", answered now).
+    pub differ: Vec<(u64, String, String)>,
+}
+
+/// [`replay`], asking find-tuning again at every recorded request's point — once the daemon
+/// has taken every message before it — and comparing its answers with the recorded ones.
+#[allow(clippy::too_many_arguments)]
+pub async fn replay_asking(
+    ingest: &str,
+    control_ep: &str,
+    messages: &[v1::Inbound],
+    sender: &str,
+    tick_rate_hz: f64,
+    pace: Pace,
+    progress: bool,
+    choices: &Choices,
+) -> anyhow::Result<(Duration, ChoiceCheck)> {
+    let mut check = ChoiceCheck::default();
+    let mut next_ask = 0usize;
     let mut push = connect_push(ingest).await?;
     let bar = crate::progress::bar(
         progress,
@@ -99,6 +149,11 @@ pub async fn replay(
     let ctrl_c = tokio::signal::ctrl_c();
     tokio::pin!(ctrl_c);
     for (i, m) in messages.iter().enumerate() {
+        while let Some((at, ask)) = choices.asked.get(next_ask).filter(|(at, _)| *at <= i) {
+            let _ = at;
+            next_ask += 1;
+            ask_again(control_ep, sender, last_seq, ask, choices, &mut check).await?;
+        }
         let send_one = async {
             if let (Pace::Speed(x), Some(w0), Some(w)) =
                 (pace, first_wm, crate::wire::watermark_of(m))
@@ -139,6 +194,10 @@ pub async fn replay(
         if i % 256 == 0 {
             bar.set_position(i as u64);
         }
+    }
+    while let Some((_, ask)) = choices.asked.get(next_ask) {
+        next_ask += 1;
+        ask_again(control_ep, sender, last_seq, ask, choices, &mut check).await?;
     }
     bar.set_message("waiting for the daemon to take everything");
     bar.set_position(messages.len() as u64);
@@ -191,7 +250,61 @@ pub async fn replay(
     }
     bar.finish_and_clear();
     drop(push);
-    Ok(t0.elapsed())
+    Ok((t0.elapsed(), check))
+}
+
+/// Waits until the daemon has taken `sender`'s messages through `last_seq`, asks find-tuning
+/// again and notes whether the answer is the recorded one.
+async fn ask_again(
+    control_ep: &str,
+    sender: &str,
+    last_seq: u64,
+    ask: &v1::StimulusChoice,
+    choices: &Choices,
+    check: &mut ChoiceCheck,
+) -> anyhow::Result<()> {
+    let t = Instant::now();
+    loop {
+        let st = status(control_ep).await?;
+        let mine = st.senders.iter().find(|s| s.sender == sender);
+        if last_seq == 0 || mine.is_some_and(|s| s.last_seq >= last_seq) {
+            break;
+        }
+        if t.elapsed() > Duration::from_secs(60) {
+            bail!("the daemon did not take message {last_seq} within 60 s, to ask find-tuning again there");
+        }
+        tokio::time::sleep(Duration::from_millis(1)).await;
+    }
+    let got = match control(
+        control_ep,
+        control_request::Body::NextStimulus(v1::NextStimulus {
+            policy: ask.policy.clone(),
+        }),
+        Duration::from_secs(5),
+    )
+    .await
+    {
+        Ok(r) => match r.body {
+            Some(control_reply::Body::Next(n)) => Some(n.stimulus),
+            _ => None,
+        },
+        Err(_) => None,
+    };
+    let want = choices
+        .answered
+        .get(&ask.ordinal)
+        .map(|r| r.stimulus.clone());
+    check.asked += 1;
+    if got == want {
+        check.same += 1;
+    } else if check.differ.len() < 5 {
+        check.differ.push((
+            ask.ordinal,
+            want.unwrap_or_else(|| "refused".into()),
+            got.unwrap_or_else(|| "refused".into()),
+        ));
+    }
+    Ok(())
 }
 
 /// What the daemon made of a sender's messages: its counters' growth between two status

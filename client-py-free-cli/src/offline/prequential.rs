@@ -365,6 +365,8 @@ pub fn tables_as_recording(data: &auspex_engine::Dataset, window_ticks: i64) -> 
     let bt = (data.tick_rate_hz / 1000.0).round().max(1.0) as i64;
     let msgs = crate::wire::dataset_messages(data, "tables", bt, window_ticks);
     RecordedSession {
+        choices_answered: Default::default(),
+        choices_asked: Default::default(),
         raw: Vec::new(),
         messages: msgs.into_iter().enumerate().collect(),
         dataset: data.clone(),

@@ -115,6 +115,7 @@ impl EngineThread {
             let history = (self.config.history_s * ss.tick_rate_hz).round() as i64;
             self.collector = Some(WindowCollector::new(window_ticks, history));
         }
+        self.choices_asked = 0;
         self.declared_stimuli = if ss.stimuli.is_empty() {
             self.daemon_stimuli.clone()
         } else {
