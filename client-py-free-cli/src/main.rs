@@ -816,13 +816,7 @@ fn main() {
                 let (msgs, rate) = auspex::live::replay_messages(&source, &control, &sender, !learn_at_own_pace).await?;
                 // A whole recording's find-tuning requests are asked again at their points.
                 let choices = match &source {
-                    ReplaySource::Session(p) if units.is_none() && only.is_none() => {
-                        let rec = auspex::wire::read_recording(p)?;
-                        auspex::live::Choices {
-                            asked: rec.choices_asked,
-                            answered: rec.choices_answered.into_iter().filter_map(|c| c.reply.map(|r| (c.ordinal, r))).collect(),
-                        }
-                    }
+                    ReplaySource::Session(p) if units.is_none() && only.is_none() => auspex::live::Choices::of(&auspex::wire::read_recording(p)?),
                     _ => auspex::live::Choices::default(),
                 };
                 let units = units.as_deref().map(auspex::wire::parse_unit_ranges).transpose()?;

@@ -145,14 +145,7 @@ fn find_tuning_learns_each_units_preference_in_closed_loop_from_the_first_trial(
     let ep2 = d2.endpoints.clone();
     let rec = auspex::wire::read_recording(&file).unwrap();
     assert_eq!(rec.choices_asked.len() as u64, settled_at);
-    let asks = auspex::live::Choices {
-        asked: rec.choices_asked.clone(),
-        answered: rec
-            .choices_answered
-            .iter()
-            .filter_map(|c| c.reply.clone().map(|r| (c.ordinal, r)))
-            .collect(),
-    };
+    let asks = auspex::live::Choices::of(&rec);
     let (msgs, rate) = rt
         .block_on(auspex::live::replay_messages(
             &auspex::live::ReplaySource::Session(file.clone()),

@@ -110,6 +110,20 @@ pub struct Choices {
     pub answered: std::collections::HashMap<u64, v1::NextStimulusReply>,
 }
 
+impl Choices {
+    /// The requests and answers of a recording.
+    pub fn of(rec: &crate::wire::RecordedSession) -> Self {
+        Choices {
+            asked: rec.choices_asked.clone(),
+            answered: rec
+                .choices_answered
+                .iter()
+                .filter_map(|c| c.reply.clone().map(|r| (c.ordinal, r)))
+                .collect(),
+        }
+    }
+}
+
 /// How the choices asked again compare with the recorded ones.
 #[derive(Clone, Debug, Default)]
 pub struct ChoiceCheck {
