@@ -188,11 +188,14 @@ struct UnitEstimate {
     at_trials: u64,
 }
 
-/// The estimator thread: for the latest snapshot, one unit at a time, starting over when a
-/// newer snapshot comes (figures seeded by the trial count and unit: a function of the data).
+/// The estimator thread: for the latest snapshot, one unit at a time, round the units from
+/// where the last snapshot's pass stopped, going on with the newer snapshot as soon as one
+/// comes (so under a fast stream every unit is still brought up to date in turn). Figures are
+/// seeded by the trial count and unit: a function of the data.
 fn estimate(rx: Receiver<Snapshot>, out: Arc<Mutex<Estimates>>, seed: u64) {
     crate::learner::lower_priority();
     let mut next: Option<Snapshot> = None;
+    let (mut cursor, mut epoch) = (0usize, 0u64);
     loop {
         let snap = match next.take() {
             Some(s) => s,
@@ -201,7 +204,12 @@ fn estimate(rx: Receiver<Snapshot>, out: Arc<Mutex<Estimates>>, seed: u64) {
                 Err(_) => return,
             },
         };
-        for u in 0..snap.design.n_units() {
+        let n = snap.design.n_units();
+        if snap.epoch != epoch {
+            (cursor, epoch) = (0, snap.epoch);
+        }
+        for k in 0..n {
+            let u = (cursor + k) % n;
             // One unit's figures take about half a millisecond at 64 stimuli: between units
             // the core goes to whoever waits for it (on a two-core machine a waking steering or
             // engine thread otherwise waits out the scheduler's wake-up granularity).
@@ -227,6 +235,7 @@ fn estimate(rx: Receiver<Snapshot>, out: Arc<Mutex<Estimates>>, seed: u64) {
                 settled,
                 at_trials: snap.trials,
             });
+            cursor = (u + 1) % n.max(1);
         }
     }
 }
