@@ -402,9 +402,7 @@ impl EngineThread {
                     } else {
                         0
                     };
-                    let _ = self
-                        .steering
-                        .tx
+                    self.steering
                         .send(crate::steering::SteerMsg::Next { reply, ordinal });
                 }
                 Ok(EngineInput::Control { body, reply }) => {

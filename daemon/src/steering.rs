@@ -1,11 +1,14 @@
-//! The steering thread: find-tuning's next-stimulus choices (`auspex_modelling::design`), off
-//! the engine thread. The engine thread hands it the session's units and stimulus set, every
-//! labelled trial's window (each unit's spike count), and every `next --policy find-tuning`
-//! request in the order it applies them, so a choice depends only on the trials before it and
-//! the seed. An estimator thread of its own, at lowered priority (nice 10, as the learner),
-//! estimates each unit's posterior probability of preferring each stimulus from the latest
-//! snapshot of the design (for the reasons in replies and the status); neither the choices nor
-//! the engine thread wait for it.
+//! find-tuning's next-stimulus choices (`auspex_modelling::design`). The engine thread hands
+//! them the session's units and stimulus set, every labelled trial's window (each unit's spike
+//! count), and every `next --policy find-tuning` request in the order it applies them, so a
+//! choice depends only on the trials before it and the seed. Recording a trial and choosing are
+//! cheap (a pass over units × stimuli and one top-two draw: tens of µs at 64 × 64), so they run on
+//! the engine thread and `next` is answered as fast as the engine thread's own policies (a hop
+//! to a thread of their own cost a wake-up and a millisecond tail on a busy two-core machine,
+//! `BENCHMARKS.md`). What is costly — each unit's posterior probability of preferring each
+//! stimulus, by posterior draws, for the reasons in replies and the status — runs on an
+//! estimator thread at lowered priority (nice 10, as the learner) from the latest snapshot of
+//! the design; nothing waits for it.
 //!
 //! Must not: touch the engine or the sockets; allocate past the memory budget (the design's
 //! tables are units × stimuli).
@@ -13,8 +16,9 @@
 use crate::recorder::RecorderMsg;
 use auspex_modelling::design::{Choice, Constraints, Design, Policy, Why, SETTLED};
 use auspex_proto::v1::{self, ControlReply};
-use crossbeam_channel::{Receiver, Sender};
+use crossbeam_channel::Sender;
 use std::collections::HashMap;
+use std::sync::Condvar;
 use std::sync::{Arc, Mutex};
 use tokio::sync::oneshot;
 
@@ -58,65 +62,65 @@ pub enum SteerMsg {
     },
 }
 
-/// The engine thread's handle.
+/// The engine thread's find-tuning: its design, and the estimator thread's handle.
 pub struct Steering {
-    /// Inbox.
-    pub tx: Sender<SteerMsg>,
-    /// The state the status shows, with the session's epoch (None between sessions).
-    state: Arc<Mutex<Option<(u64, v1::SteeringState)>>>,
-    estimates: Arc<Mutex<Estimates>>,
-    join: Option<std::thread::JoinHandle<()>>,
+    worker: Worker,
+    estimator: Option<std::thread::JoinHandle<()>>,
 }
 
+/// The latest snapshot for the estimator (a newer one replaces one not yet taken), and whether
+/// the estimator should end.
+#[derive(Default)]
+struct Slot {
+    latest: Option<Snapshot>,
+    closed: bool,
+}
+
+type SnapshotSlot = Arc<(Mutex<Slot>, Condvar)>;
+
 impl Steering {
-    /// Starts the thread.
+    /// Starts the estimator thread.
     pub fn spawn(
         constraints: Constraints,
         seed: u64,
         declared: Vec<String>,
         recorder: Option<Sender<RecorderMsg>>,
     ) -> std::io::Result<Self> {
-        let (tx, rx) = crossbeam_channel::unbounded();
-        let state = Arc::new(Mutex::new(None));
         let estimates = Arc::new(Mutex::new(Estimates::default()));
-        let (snap_tx, snap_rx) = crossbeam_channel::bounded::<Snapshot>(1);
-        let est = estimates.clone();
-        let est_for_status = estimates.clone();
+        let slot: SnapshotSlot = Arc::new((Mutex::new(Slot::default()), Condvar::new()));
+        let (est, from) = (estimates.clone(), slot.clone());
         let estimator = std::thread::Builder::new()
             .name("auspex-steer-est".into())
-            .spawn(move || estimate(snap_rx, est, seed))?;
-        let mut w = Worker {
-            constraints,
-            seed,
-            declared,
-            recorder,
-            state: state.clone(),
-            session: None,
-            estimates,
-            snapshots: Some(snap_tx),
-            epoch: 0,
-        };
-        let join = std::thread::Builder::new()
-            .name("auspex-steering".into())
-            .spawn(move || {
-                w.run(rx);
-                // The estimator ends with its inbox.
-                drop(w);
-                let _ = estimator.join();
-            })?;
+            .spawn(move || estimate(from, est, seed))?;
         Ok(Steering {
-            tx,
-            state,
-            estimates: est_for_status,
-            join: Some(join),
+            worker: Worker {
+                constraints,
+                seed,
+                declared,
+                recorder,
+                session: None,
+                estimates,
+                slot,
+                epoch: 0,
+            },
+            estimator: Some(estimator),
         })
+    }
+
+    /// Applies one message (a request is answered at once).
+    pub fn send(&mut self, msg: SteerMsg) {
+        let changed = !matches!(msg, SteerMsg::Next { .. } | SteerMsg::End);
+        self.worker.handle(msg);
+        if changed {
+            self.worker.snapshot();
+        }
     }
 
     /// find-tuning's state for the status: as of the last message the steering thread handled,
     /// each unit's preference and settledness as of the estimator's latest figures.
     pub fn status(&self) -> Option<v1::SteeringState> {
-        let (epoch, mut st) = self.state.lock().ok()?.clone()?;
-        let e = self.estimates.lock().ok()?;
+        let (epoch, mut st) = self.worker.state()?;
+        let e = self.worker.estimates.lock().ok()?;
         if e.epoch == epoch {
             for (u, x) in st.units.iter_mut().enumerate() {
                 if let Some(Some(est)) = e.units.get(u) {
@@ -131,9 +135,12 @@ impl Steering {
 
 impl Drop for Steering {
     fn drop(&mut self) {
-        let (tx, _) = crossbeam_channel::bounded(0);
-        drop(std::mem::replace(&mut self.tx, tx));
-        if let Some(j) = self.join.take() {
+        let (lock, cv) = &*self.worker.slot;
+        if let Ok(mut g) = lock.lock() {
+            g.closed = true;
+        }
+        cv.notify_all();
+        if let Some(j) = self.estimator.take() {
             let _ = j.join();
         }
     }
@@ -192,16 +199,27 @@ struct UnitEstimate {
 /// where the last snapshot's pass stopped, going on with the newer snapshot as soon as one
 /// comes (so under a fast stream every unit is still brought up to date in turn). Figures are
 /// seeded by the trial count and unit: a function of the data.
-fn estimate(rx: Receiver<Snapshot>, out: Arc<Mutex<Estimates>>, seed: u64) {
+fn estimate(slot: SnapshotSlot, out: Arc<Mutex<Estimates>>, seed: u64) {
     crate::learner::lower_priority();
-    let mut next: Option<Snapshot> = None;
+    let (lock, cv) = &*slot;
+    let take = |wait: bool| -> Result<Option<Snapshot>, ()> {
+        let mut g = lock.lock().map_err(|_| ())?;
+        while wait && g.latest.is_none() && !g.closed {
+            g = cv.wait(g).map_err(|_| ())?;
+        }
+        if g.closed {
+            return Err(());
+        }
+        Ok(g.latest.take())
+    };
     let (mut cursor, mut epoch) = (0usize, 0u64);
+    let mut next: Option<Snapshot> = None;
     loop {
         let snap = match next.take() {
             Some(s) => s,
-            None => match rx.recv() {
-                Ok(s) => s,
-                Err(_) => return,
+            None => match take(true) {
+                Ok(Some(s)) => s,
+                _ => return,
             },
         };
         let n = snap.design.n_units();
@@ -210,13 +228,13 @@ fn estimate(rx: Receiver<Snapshot>, out: Arc<Mutex<Estimates>>, seed: u64) {
         }
         for k in 0..n {
             let u = (cursor + k) % n;
-            // One unit's figures take about half a millisecond at 64 stimuli: between units
-            // the core goes to whoever waits for it (on a two-core machine a waking steering or
-            // engine thread otherwise waits out the scheduler's wake-up granularity).
-            std::thread::yield_now();
-            if let Ok(newer) = rx.try_recv() {
-                next = Some(newer);
-                break;
+            match take(false) {
+                Ok(Some(newer)) => {
+                    next = Some(newer);
+                    break;
+                }
+                Ok(None) => {}
+                Err(()) => return,
             }
             let seed =
                 seed ^ snap.trials.wrapping_mul(0x9E37_79B9) ^ (u as u64).wrapping_mul(0x85EB_CA6B);
@@ -245,28 +263,17 @@ struct Worker {
     seed: u64,
     declared: Vec<String>,
     recorder: Option<Sender<RecorderMsg>>,
-    state: Arc<Mutex<Option<(u64, v1::SteeringState)>>>,
     session: Option<SessionDesign>,
     estimates: Arc<Mutex<Estimates>>,
-    snapshots: Option<Sender<Snapshot>>,
+    slot: SnapshotSlot,
     /// Sessions started (the estimates' epoch).
     epoch: u64,
 }
 
 impl Worker {
-    fn run(&mut self, rx: Receiver<SteerMsg>) {
-        while let Ok(msg) = rx.recv() {
-            let changed = !matches!(msg, SteerMsg::Next { .. } | SteerMsg::End);
-            self.handle(msg);
-            if changed && rx.is_empty() {
-                self.snapshot();
-            }
-        }
-    }
-
     /// Hands the estimator the design as it now is (in place of one it has not started).
     fn snapshot(&mut self) {
-        let (Some(s), Some(tx)) = (self.session.as_ref(), self.snapshots.as_ref()) else {
+        let Some(s) = self.session.as_ref() else {
             return;
         };
         let Some(d) = s.design.as_ref() else { return };
@@ -275,10 +282,12 @@ impl Worker {
             trials: s.trials,
             design: d.clone(),
         };
-        // bounded(1): when one is already waiting, the estimator takes it first and this one
-        // next (a millisecond at most; past that, this snapshot is skipped and the next trial's
-        // brings it up to date).
-        let _ = tx.send_timeout(snap, std::time::Duration::from_millis(1));
+        // Never waits: a snapshot the estimator has not taken yet is replaced.
+        let (lock, cv) = &*self.slot;
+        if let Ok(mut g) = lock.lock() {
+            g.latest = Some(snap);
+        }
+        cv.notify_one();
     }
 
     /// The estimates of the current session (none yet: empty).
@@ -388,17 +397,12 @@ impl Worker {
                     Self::record(s, &stimulus, &sparse);
                 }
             }
-            SteerMsg::End => {
-                self.session = None;
-                *self.state.lock().expect("steering state") = None;
-                return;
-            }
+            SteerMsg::End => self.session = None,
             SteerMsg::Next { reply, ordinal } => {
                 let r = self.next(ordinal);
                 let _ = reply.send(r);
             }
         }
-        self.publish();
     }
 
     fn check(nu: usize, ns: usize) -> Result<(), String> {
@@ -475,15 +479,21 @@ impl Worker {
         }
         let c: Choice = d.choose_explained();
         s.choices += 1;
-        let all = {
+        // Only the served unit's figures and the count of settled units (no copy of the rest).
+        let (estimate, settled) = {
             let e = self.estimates.lock().expect("steering estimates");
             if e.epoch == self.epoch {
-                e.units.clone()
+                (
+                    c.unit.and_then(|u| e.units.get(u).cloned().flatten()),
+                    e.units
+                        .iter()
+                        .filter(|x| x.as_ref().is_some_and(|x| x.settled >= SETTLED))
+                        .count() as u32,
+                )
             } else {
-                Vec::new()
+                (None, 0)
             }
         };
-        let estimate = c.unit.and_then(|u| all.get(u).cloned().flatten());
         let name = |i: usize| s.stimuli.get(i).cloned().unwrap_or_default();
         let (reason, p, runner, runner_p) = match (c.why, c.unit) {
             (Why::WarmUp, _) => (
@@ -547,10 +557,6 @@ impl Worker {
             }
             (Why::TopTwo { .. }, None) => ("top-two draw".into(), f64::NAN, String::new(), f64::NAN),
         };
-        let settled = all
-            .iter()
-            .filter(|e| e.as_ref().is_some_and(|e| e.settled >= SETTLED))
-            .count() as u32;
         let as_of = estimate.as_ref().map_or(0, |e| e.at_trials);
         let reply = v1::NextStimulusReply {
             stimulus: name(c.stimulus as usize),
@@ -588,7 +594,9 @@ impl Worker {
         }
     }
 
-    fn publish(&self) {
+    /// The state the status shows, with the session's epoch (None between sessions): built
+    /// when asked, so nothing is spent on it per trial or per choice.
+    fn state(&self) -> Option<(u64, v1::SteeringState)> {
         let est = self.current_estimates();
         let st = self.session.as_ref().map(|s| v1::SteeringState {
             stimuli: s.stimuli.clone(),
@@ -623,6 +631,6 @@ impl Worker {
             max_run: self.constraints.max_run as u32,
             seed: self.seed,
         });
-        *self.state.lock().expect("steering state") = st.map(|st| (self.epoch, st));
+        st.map(|st| (self.epoch, st))
     }
 }

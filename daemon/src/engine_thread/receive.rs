@@ -275,7 +275,7 @@ impl EngineThread {
             return;
         }
         for w in self.windows.drain(..) {
-            let _ = self.steering.tx.send(crate::steering::SteerMsg::Trial {
+            self.steering.send(crate::steering::SteerMsg::Trial {
                 stimulus: w.stimulus.clone(),
                 spikes: w.spikes.clone(),
             });
@@ -299,9 +299,7 @@ impl EngineThread {
             from_tick = ua.from_tick,
             "units added to the session"
         );
-        let _ = self
-            .steering
-            .tx
+        self.steering
             .send(crate::steering::SteerMsg::Units(ua.units.clone()));
         if let Some(l) = &self.learn {
             let _ = l.tx.send(LearnMsg::Units {

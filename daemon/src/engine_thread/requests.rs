@@ -84,12 +84,9 @@ impl EngineThread {
         );
         self.current = l.model.stimuli().to_vec().into();
         self.chooser.resize(l.model.n_stimuli());
-        let _ = self
-            .steering
-            .tx
-            .send(crate::steering::SteerMsg::ModelStimuli(
-                self.current.to_vec(),
-            ));
+        self.steering.send(crate::steering::SteerMsg::ModelStimuli(
+            self.current.to_vec(),
+        ));
         if let Some(e) = &self.engine {
             self.config = e.config().clone();
         }
@@ -141,12 +138,9 @@ impl EngineThread {
                 self.current = model.stimuli().to_vec().into();
                 self.chooser.resize(model.n_stimuli());
                 self.steer_window_s = Some(model.n_bins() as f64 * model.bin_width_s());
-                let _ = self
-                    .steering
-                    .tx
-                    .send(crate::steering::SteerMsg::ModelStimuli(
-                        self.current.to_vec(),
-                    ));
+                self.steering.send(crate::steering::SteerMsg::ModelStimuli(
+                    self.current.to_vec(),
+                ));
                 self.model = Some(model);
                 self.model_path = path.clone();
                 if let Some(e) = &self.engine {

@@ -21,9 +21,7 @@ impl EngineThread {
             // acquisition did: its set is taken when none was declared yet.
             if !ss.stimuli.is_empty() && self.declared_stimuli.is_empty() {
                 self.declared_stimuli = ss.stimuli.clone().into();
-                let _ = self
-                    .steering
-                    .tx
+                self.steering
                     .send(crate::steering::SteerMsg::Declared(ss.stimuli.clone()));
             }
             // The same session announced again (another sender, or a repeat): harmless, but
@@ -121,18 +119,15 @@ impl EngineThread {
         } else {
             ss.stimuli.clone().into()
         };
-        let _ = self.steering.tx.send(crate::steering::SteerMsg::Session {
+        self.steering.send(crate::steering::SteerMsg::Session {
             units: ss.units.clone(),
             stimuli: ss.stimuli.clone(),
             from: "session start",
         });
         if !self.current.is_empty() {
-            let _ = self
-                .steering
-                .tx
-                .send(crate::steering::SteerMsg::ModelStimuli(
-                    self.current.to_vec(),
-                ));
+            self.steering.send(crate::steering::SteerMsg::ModelStimuli(
+                self.current.to_vec(),
+            ));
         }
         if let Some(l) = self.learn.as_mut() {
             l.trials_sent = 0;
@@ -226,7 +221,7 @@ impl EngineThread {
         self.names.clear();
         self.held.clear();
         self.collector = None;
-        let _ = self.steering.tx.send(crate::steering::SteerMsg::End);
+        self.steering.send(crate::steering::SteerMsg::End);
         self.tick_rate = self.fixed_tick_rate;
         if let Some(l) = self.learn.as_mut() {
             // The learned model leaves with its session (below): status must not show it in use.
