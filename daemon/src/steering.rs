@@ -44,13 +44,6 @@ pub enum SteerMsg {
     Declared(Vec<String>),
     /// Units added part-way.
     Units(Vec<u32>),
-    /// A labelled trial's window: its stimulus and spikes (tick − onset, unit).
-    Trial {
-        /// Presented stimulus.
-        stimulus: String,
-        /// Spikes in the window.
-        spikes: Vec<(i64, u32)>,
-    },
     /// The session ended.
     End,
     /// A `next --policy find-tuning` request.
@@ -107,6 +100,12 @@ impl Steering {
         })
     }
 
+    /// Records a labelled trial's window (see [`SteerMsg`] for the other inputs).
+    pub fn trial(&mut self, stimulus: &str, spikes: &[(i64, u32)]) {
+        self.worker.trial(stimulus, spikes);
+        self.worker.snapshot();
+    }
+
     /// Applies one message (a request is answered at once).
     pub fn send(&mut self, msg: SteerMsg) {
         let changed = !matches!(msg, SteerMsg::Next { .. } | SteerMsg::End);
@@ -146,12 +145,6 @@ impl Drop for Steering {
     }
 }
 
-/// Whence a stimulus set came (for messages that carry one).
-enum Kind {
-    Model,
-    Other,
-}
-
 /// One session's design.
 struct SessionDesign {
     stimuli: Vec<String>,
@@ -168,7 +161,7 @@ struct SessionDesign {
     unknown_stimuli: u64,
     last: Option<v1::NextStimulusReply>,
     /// Trials recorded before the stimulus set was known, replayed into the design once it is.
-    early: Vec<(String, Vec<(usize, u32)>)>,
+    early: std::collections::VecDeque<(String, Vec<(usize, u32)>)>,
 }
 
 /// What the estimator is given: the design as of `trials` trials of session `epoch`.
@@ -301,11 +294,6 @@ impl Worker {
     }
 
     fn handle(&mut self, msg: SteerMsg) {
-        let msg_kind = if matches!(msg, SteerMsg::ModelStimuli(_)) {
-            Kind::Model
-        } else {
-            Kind::Other
-        };
         match msg {
             SteerMsg::Session {
                 units,
@@ -333,26 +321,15 @@ impl Worker {
                     choices: 0,
                     unknown_stimuli: 0,
                     last: None,
-                    early: Vec::new(),
+                    early: Default::default(),
                 };
                 if !stimuli.is_empty() {
                     self.set_stimuli(&mut s, stimuli, from);
                 }
                 self.session = Some(s);
             }
-            SteerMsg::ModelStimuli(stimuli) | SteerMsg::Declared(stimuli) => {
-                let from = if matches!(msg_kind, Kind::Model) {
-                    "model"
-                } else {
-                    "session start"
-                };
-                if let Some(mut s) = self.session.take() {
-                    if s.stimuli.is_empty() && !stimuli.is_empty() {
-                        self.set_stimuli(&mut s, stimuli, from);
-                    }
-                    self.session = Some(s);
-                }
-            }
+            SteerMsg::ModelStimuli(stimuli) => self.take_set(stimuli, "model"),
+            SteerMsg::Declared(stimuli) => self.take_set(stimuli, "session start"),
             SteerMsg::Units(new) => {
                 if let Some(s) = self.session.as_mut() {
                     let fresh: Vec<u32> = new
@@ -374,34 +351,47 @@ impl Worker {
                     }
                 }
             }
-            SteerMsg::Trial { stimulus, spikes } => {
-                let Some(s) = self.session.as_mut() else {
-                    return;
-                };
-                let mut counts: HashMap<usize, u32> = HashMap::new();
-                for (_, u) in spikes {
-                    if let Some(&i) = s.index.get(&u) {
-                        *counts.entry(i).or_insert(0) += 1;
-                    }
-                }
-                let mut sparse: Vec<(usize, u32)> = counts.into_iter().collect();
-                sparse.sort_unstable();
-                if s.stimuli.is_empty() {
-                    // Kept until the set is known (bounded: a session that never names its
-                    // set keeps the latest trials only).
-                    if s.early.len() == 100_000 {
-                        s.early.remove(0);
-                    }
-                    s.early.push((stimulus, sparse));
-                } else {
-                    Self::record(s, &stimulus, &sparse);
-                }
-            }
             SteerMsg::End => self.session = None,
             SteerMsg::Next { reply, ordinal } => {
                 let r = self.next(ordinal);
                 let _ = reply.send(r);
             }
+        }
+    }
+
+    /// A stimulus set from a model or a later start message, taken when none is known yet.
+    fn take_set(&mut self, stimuli: Vec<String>, from: &'static str) {
+        if let Some(mut s) = self.session.take() {
+            if s.stimuli.is_empty() && !stimuli.is_empty() {
+                self.set_stimuli(&mut s, stimuli, from);
+            }
+            self.session = Some(s);
+        }
+    }
+
+    /// A labelled trial's window: its stimulus and spikes (tick − onset, unit), counted per
+    /// unit where they lie (no copy of the window).
+    fn trial(&mut self, stimulus: &str, spikes: &[(i64, u32)]) {
+        let Some(s) = self.session.as_mut() else {
+            return;
+        };
+        let mut counts: HashMap<usize, u32> = HashMap::new();
+        for (_, u) in spikes {
+            if let Some(&i) = s.index.get(u) {
+                *counts.entry(i).or_insert(0) += 1;
+            }
+        }
+        let mut sparse: Vec<(usize, u32)> = counts.into_iter().collect();
+        sparse.sort_unstable();
+        if s.stimuli.is_empty() {
+            // Kept until the set is known (bounded: a session that never names its set keeps
+            // the latest trials only).
+            if s.early.len() == 100_000 {
+                s.early.pop_front();
+            }
+            s.early.push_back((stimulus.to_string(), sparse));
+        } else {
+            Self::record(s, stimulus, &sparse);
         }
     }
 

@@ -275,10 +275,7 @@ impl EngineThread {
             return;
         }
         for w in self.windows.drain(..) {
-            self.steering.send(crate::steering::SteerMsg::Trial {
-                stimulus: w.stimulus.clone(),
-                spikes: w.spikes.clone(),
-            });
+            self.steering.trial(&w.stimulus, &w.spikes);
             if let Some(l) = self.learn.as_mut() {
                 l.trials_sent += 1;
                 let _ = l.tx.send(LearnMsg::Trial(w));
