@@ -62,17 +62,52 @@ fn parse_prior(s: &str) -> Result<Vec<f64>, String> {
         .collect()
 }
 
+/// What to take from an NWB file (`--nwb`); `auspex inspect --nwb FILE` lists the choices.
+#[derive(clap::Args, Clone)]
+struct NwbOpts {
+    /// With --nwb: the trials table, a name under intervals/ (default trials) or a path in the file
+    #[arg(long, default_value = "trials", value_name = "TABLE")]
+    nwb_trials: String,
+    /// With --nwb: the trials table's column naming the stimulus, text or numbers (default: the
+    /// column named stimulus)
+    #[arg(long, value_name = "COLUMN")]
+    nwb_stimulus: Option<String>,
+    /// With --nwb: the trials table's onset column, seconds
+    #[arg(long, default_value = "start_time", value_name = "COLUMN")]
+    nwb_onset: String,
+    /// With --nwb: which units — all, ids (3,5,9), a true/false column of the units table
+    /// (is_good) or COLUMN=VALUE (quality=good)
+    #[arg(long, default_value = "all", value_name = "WHICH", value_parser = auspex::nwb::UnitPick::parse)]
+    nwb_units: auspex::nwb::UnitPick,
+}
+
+impl NwbOpts {
+    fn choice(&self) -> auspex::nwb::NwbChoice {
+        auspex::nwb::NwbChoice {
+            table: self.nwb_trials.clone(),
+            stimulus: self.nwb_stimulus.clone(),
+            onset: self.nwb_onset.clone(),
+            units: self.nwb_units.clone(),
+        }
+    }
+}
+
 #[derive(clap::Args, Clone)]
 struct Tables {
     /// Spike table: CSV with columns unit,time_s
-    #[arg(long, requires = "trials", required_unless_present = "session")]
+    #[arg(long, requires = "trials", required_unless_present_any = ["session", "nwb"])]
     spikes: Option<PathBuf>,
     /// Trial table: CSV with columns trial,onset_s,stimulus
-    #[arg(long, requires = "spikes", required_unless_present = "session")]
+    #[arg(long, requires = "spikes", required_unless_present_any = ["session", "nwb"])]
     trials: Option<PathBuf>,
     /// A session recorded by the daemon (.apxs) instead of the two tables
-    #[arg(long, conflicts_with_all = ["spikes", "trials", "tick_rate"])]
+    #[arg(long, conflicts_with_all = ["spikes", "trials", "tick_rate", "nwb"])]
     session: Option<PathBuf>,
+    /// An NWB 2.x file instead of the two tables: its units and a trials table (--nwb-*)
+    #[arg(long, conflicts_with_all = ["spikes", "trials"])]
+    nwb: Option<PathBuf>,
+    #[command(flatten)]
+    nwb_opts: NwbOpts,
     /// Acquisition clock ticks per second for the tables (times are rounded to ticks on reading)
     #[arg(long, default_value_t = 1e6)]
     tick_rate: f64,
@@ -84,6 +119,14 @@ struct Tables {
 
 impl Tables {
     fn source(&self) -> Source {
+        if let Some(path) = &self.nwb {
+            return Source::Nwb {
+                path: path.clone(),
+                choice: self.nwb_opts.choice(),
+                tick_rate_hz: self.tick_rate,
+                trust_times: self.trust_times,
+            };
+        }
         match (&self.session, &self.spikes, &self.trials) {
             (Some(p), _, _) => Source::Session(p.clone()),
             (None, Some(s), Some(t)) => Source::Tables {
@@ -93,7 +136,7 @@ impl Tables {
                 trust_times: self.trust_times,
             },
             // clap enforces one of the two forms.
-            _ => unreachable!("clap requires --session or --spikes with --trials"),
+            _ => unreachable!("clap requires --session, --nwb or --spikes with --trials"),
         }
     }
 }
@@ -402,11 +445,15 @@ enum Cmd {
     /// Print a model file's per-cell summary
     Inspect {
         /// Model file (`auspex inspect today.apxm` or `--model today.apxm`)
-        #[arg(value_name = "MODEL", required_unless_present = "model")]
+        #[arg(value_name = "MODEL", required_unless_present_any = ["model", "nwb"])]
         file: Option<PathBuf>,
         /// Model file
         #[arg(long, conflicts_with = "file")]
         model: Option<PathBuf>,
+        /// An NWB file instead: list its tables, their columns (type, example values) and its
+        /// units with their spike counts — what the --nwb-* options can choose
+        #[arg(long, conflicts_with_all = ["file", "model"])]
+        nwb: Option<PathBuf>,
     },
     /// Run the bundled demo end to end: fit, start the daemon, replay the session live, monitor
     Demo {
@@ -441,8 +488,13 @@ enum Cmd {
     /// Send a recorded session or CSV tables to a running daemon through its ingest socket
     Replay {
         /// Session recording (.apxs)
-        #[arg(long, conflicts_with_all = ["spikes", "trials"])]
+        #[arg(long, conflicts_with_all = ["spikes", "trials", "nwb"])]
         session: Option<PathBuf>,
+        /// An NWB 2.x file (units and a trials table, --nwb-*), paced by its times
+        #[arg(long, conflicts_with_all = ["spikes", "trials"])]
+        nwb: Option<PathBuf>,
+        #[command(flatten)]
+        nwb_opts: NwbOpts,
         /// Spike table (with --trials)
         #[arg(long, requires = "trials")]
         spikes: Option<PathBuf>,
@@ -786,7 +838,11 @@ fn main() {
             json,
         ),
         Cmd::Gather { paths, out } => auspex::gather::gather_cmd(&paths, out.as_deref()),
-        Cmd::Inspect { file, model } => match file.or(model) {
+        Cmd::Inspect { nwb: Some(path), .. } => auspex::nwb::Nwb::open(&path)
+            .and_then(|f| f.summary())
+            .map(|s| print!("{s}"))
+            .map_err(anyhow::Error::from),
+        Cmd::Inspect { file, model, .. } => match file.or(model) {
             Some(m) => commands::inspect_cmd(&m),
             None => Err(anyhow::anyhow!("give the model file: auspex inspect FILE")),
         },
@@ -806,12 +862,13 @@ fn main() {
             Ok(())
         }),
         Cmd::Daemon { args } => std::process::exit(auspexd::cli::run_cli(*args)),
-        Cmd::Replay { session, spikes, trials, to, control, speed, fast, sender, units, only, learn_at_own_pace } => runtime().and_then(|rt| {
+        Cmd::Replay { session, nwb, nwb_opts, spikes, trials, to, control, speed, fast, sender, units, only, learn_at_own_pace } => runtime().and_then(|rt| {
             rt.block_on(async {
                 let source = match (session, spikes, trials) {
+                    _ if nwb.is_some() => ReplaySource::Nwb { path: nwb.unwrap_or_default(), choice: nwb_opts.choice() },
                     (Some(p), _, _) => ReplaySource::Session(p),
                     (None, Some(spikes), Some(trials)) => ReplaySource::Tables { spikes, trials },
-                    _ => anyhow::bail!("give --session FILE, or --spikes and --trials"),
+                    _ => anyhow::bail!("give --session FILE, --nwb FILE, or --spikes and --trials"),
                 };
                 let (msgs, rate) = auspex::live::replay_messages(&source, &control, &sender, !learn_at_own_pace).await?;
                 // A whole recording's find-tuning requests are asked again at their points.

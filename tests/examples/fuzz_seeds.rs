@@ -1,6 +1,6 @@
 //! Writes the fuzz targets' seed inputs into `tests/fuzz/seeds/<target>/` (run once when a
 //! format changes): a small model file, a short recording, published messages in the monitor
-//! target's framing, the demo's tables, scenario and a daemon configuration, and structured
+//! target's framing, a small NWB file, the demo's tables, scenario and a daemon configuration, and structured
 //! operation streams for the engine and inbound targets.
 //! Run: `cargo run --release -p auspex-e2e --example fuzz_seeds`.
 
@@ -24,6 +24,17 @@ fn main() -> anyhow::Result<()> {
     let mp = tmp.path().join("m.apxm");
     auspex_proto::model_file::save_model(&mp, m.spec(), "fuzz seed")?;
     put("model_file", "small.apxm", &std::fs::read(&mp)?)?;
+
+    // NWB: a small file as raw bytes (leading 0), and a structured input (leading 1: 3 units,
+    // 5 spikes each, 4 trials, then a few damaging operations).
+    let mut raw = vec![0u8];
+    raw.extend(auspex_e2e::nwb_build::MiniNwb::regular(3, 5, 4).bytes());
+    put("nwb_file", "small.nwb.bin", &raw)?;
+    put(
+        "nwb_file",
+        "ops.bin",
+        &[1, 3, 5, 4, 6, 0, 0, 0, 1, 9, 5, 2, 0, 7],
+    )?;
 
     // Engine operations: open trial 1 at tick 5 as stimulus 1, spikes, advance, label, cancel.
     let ops: Vec<u8> = vec![

@@ -6,7 +6,7 @@
 //! thread, the engine under arbitrary operation sequences (posteriors finite, summing to 1),
 //! model files, session files (records framed with valid CRCs so payloads are reached), CSV
 //! tables, the daemon's TOML configuration, scenario files, the monitor's decoding and
-//! drawing of published messages, and what a combiner takes from its shards' links. A target panics only on a real defect.
+//! drawing of published messages, what a combiner takes from its shards' links, and NWB files. A target panics only on a real defect.
 //!
 //! Must not: keep state between calls, or call anything slower than the engine's own limits
 //! allow (the scenario target simulates only small sessions).
@@ -23,7 +23,7 @@ use std::sync::{Arc, OnceLock};
 pub type Target = fn(&[u8]);
 
 /// The targets, by name (the fuzz binaries' and the regression folders' names).
-pub const TARGETS: [(&str, Target); 10] = [
+pub const TARGETS: [(&str, Target); 11] = [
     ("inbound", inbound_messages),
     ("engine_ops", engine_ops),
     ("model_file", model_file),
@@ -34,6 +34,7 @@ pub const TARGETS: [(&str, Target); 10] = [
     ("monitor", monitor),
     ("shard_link", shard_link),
     ("declared_sizes", declared_sizes),
+    ("nwb_file", nwb_file),
 ];
 
 /// Reads the input as a stream of small numbers.
@@ -842,6 +843,116 @@ pub fn declared_sizes(data: &[u8]) {
             if sc.check().is_ok() {
                 let _ = sc.true_model();
             }
+        }
+    }
+}
+
+/// An NWB file, read as `fit --nwb` and `inspect --nwb` read it: half the inputs are the raw
+/// bytes (mutated HDF5 from the seeds), half a small NWB-shaped file whose sizes, index, times
+/// and labels come from the input (indices past their data, unsorted or negative times, NaN
+/// stimuli, unit ids out of range) — so the checks after HDF5 parsing are reached too.
+pub fn nwb_file(data: &[u8]) {
+    use crate::nwb_build::{MiniNwb, Stimulus};
+    let bytes = if data.first().is_some_and(|b| b % 2 == 0) {
+        data[1..].to_vec()
+    } else {
+        let mut b = Bytes(data.get(1..).unwrap_or_default());
+        let units = b.u8().unwrap_or(1) as usize % 9;
+        let per = b.u8().unwrap_or(3) as usize % 17;
+        let trials = b.u8().unwrap_or(4) as usize % 13;
+        let mut f = MiniNwb::regular(units, per, trials);
+        while let Some(op) = b.u8() {
+            let at = b.u8().unwrap_or(0) as usize;
+            let v = b.u8().unwrap_or(0);
+            match op % 8 {
+                0 if !f.index.is_empty() => {
+                    let n = f.index.len();
+                    f.index[at % n] = v as u64 * 3;
+                }
+                1 if !f.spike_times.is_empty() => {
+                    let n = f.spike_times.len();
+                    f.spike_times[at % n] = [f64::NAN, -1.0, 1e300, v as f64 * 0.1][v as usize % 4];
+                }
+                2 if !f.onsets.is_empty() => {
+                    let n = f.onsets.len();
+                    f.onsets[at % n] = [f64::INFINITY, -0.5, v as f64, 1e17][v as usize % 4];
+                }
+                3 if !f.unit_ids.is_empty() => {
+                    let n = f.unit_ids.len();
+                    f.unit_ids[at % n] = [-1, 1 << 40, v as i64, 0][v as usize % 4];
+                }
+                4 if !f.trial_ids.is_empty() => {
+                    let n = f.trial_ids.len();
+                    f.trial_ids[at % n] = [-3, v as i64, 0, i64::MAX][v as usize % 4];
+                }
+                5 => {
+                    f.stimulus = Stimulus::Float(
+                        (0..f.onsets.len())
+                            .map(|i| {
+                                if (i + at).is_multiple_of(5) {
+                                    f64::NAN
+                                } else {
+                                    (i % 3) as f64 * 22.5
+                                }
+                            })
+                            .collect(),
+                    )
+                }
+                6 => {
+                    f.quality = Some(
+                        (0..f.unit_ids.len())
+                            .map(|i| {
+                                if (i + at).is_multiple_of(2) {
+                                    "good"
+                                } else {
+                                    ""
+                                }
+                                .to_string()
+                            })
+                            .collect(),
+                    )
+                }
+                _ => {
+                    // Columns of different lengths.
+                    match v % 3 {
+                        0 => {
+                            f.onsets.pop();
+                        }
+                        1 => f.unit_ids.push(99),
+                        _ => {
+                            f.spike_times.truncate(at);
+                        }
+                    }
+                }
+            }
+        }
+        f.bytes()
+    };
+    let (_d, p) = scratch_file("f.nwb", &bytes);
+    let Ok(nwb) = auspex::nwb::Nwb::open(&p) else {
+        return;
+    };
+    let _ = nwb.summary();
+    for units in [
+        auspex::nwb::UnitPick::All,
+        auspex::nwb::UnitPick::parse("quality=good").unwrap(),
+    ] {
+        let choice = auspex::nwb::NwbChoice {
+            units,
+            ..Default::default()
+        };
+        let mut notes = Vec::new();
+        if let Ok(ds) = nwb.dataset(&choice, 30_000.0, &mut notes) {
+            assert!(ds.spikes.windows(2).all(|w| w[0] <= w[1]), "spikes sorted");
+            assert!(ds
+                .spikes
+                .iter()
+                .all(|s| s.0 >= 0 && ds.units.binary_search(&s.1).is_ok()));
+            assert!(ds
+                .trials
+                .iter()
+                .all(|t| t.onset >= 0 && t.stimulus.is_some()));
+            let _ = auspex::tables::report_for(&ds, 0.25);
         }
     }
 }

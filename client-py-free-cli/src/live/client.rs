@@ -471,6 +471,13 @@ pub enum ReplaySource {
         /// Trial table.
         trials: std::path::PathBuf,
     },
+    /// An NWB file's units and trials table, read like the tables.
+    Nwb {
+        /// The file.
+        path: std::path::PathBuf,
+        /// Which table, columns and units.
+        choice: crate::nwb::NwbChoice,
+    },
 }
 
 /// The messages a replay sends as `sender` (fresh numbering, one end of stream last), asking a
@@ -523,14 +530,28 @@ async fn replay_messages_as_sent(
             }
             Ok((msgs, rec.dataset.tick_rate_hz))
         }
-        ReplaySource::Tables { spikes, trials } => {
+        ReplaySource::Tables { .. } | ReplaySource::Nwb { .. } => {
             let st = status(control).await?;
             let window_s = st.bin_width_s * st.n_bins as f64;
-            let (data, report) = crate::tables::read_dataset(spikes, trials, 1e6, window_s)?;
+            let (data, report, name) = match source {
+                ReplaySource::Tables { spikes, trials } => {
+                    let (d, r) = crate::tables::read_dataset(spikes, trials, 1e6, window_s)?;
+                    (d, r, trials)
+                }
+                ReplaySource::Nwb { path, choice } => {
+                    let mut notes = Vec::new();
+                    let (d, r) = crate::nwb::read_dataset(path, choice, 1e6, window_s, &mut notes)?;
+                    for n in notes {
+                        eprintln!("note: {n}");
+                    }
+                    (d, r, path)
+                }
+                ReplaySource::Session(_) => unreachable!(),
+            };
             eprintln!("{report}");
             let bt = auspex_engine::ticks::bin_ticks(st.bin_width_s, 1e6)?;
             let mut msgs = crate::wire::dataset_messages(&data, sender, bt, bt * st.n_bins as i64);
-            let name = trials
+            let name = name
                 .file_stem()
                 .map(|s| s.to_string_lossy().into_owned())
                 .unwrap_or_default();

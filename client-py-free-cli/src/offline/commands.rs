@@ -548,7 +548,7 @@ pub fn decode_prequential_cmd(
     };
     let rec = match source {
         Source::Session(path) => crate::wire::read_recording(path)?,
-        Source::Tables { .. } => {
+        Source::Tables { .. } | Source::Nwb { .. } => {
             let (data, report) = source.load(opts.fit.window_s)?;
             eprintln!("{report}");
             let wt = (opts.fit.window_s * data.tick_rate_hz).round() as i64;

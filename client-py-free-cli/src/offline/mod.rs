@@ -1,4 +1,4 @@
-//! Offline jobs: reading spike and trial tables (`tables`), fitting with progress (`fitting`),
+//! Offline jobs: reading spike and trial tables (`tables`) and NWB files (`nwb`), fitting with progress (`fitting`),
 //! decoding a dataset or a recorded session as acquisition would deliver it (`decode`, its
 //! items re-exported here) and prequentially (`prequential`), exporting a model (`export`),
 //! merging many sessions' validations (`gather`), simulated closed-loop experiments comparing
@@ -11,6 +11,7 @@ pub mod decode;
 pub mod export;
 pub mod fitting;
 pub mod gather;
+pub mod nwb;
 pub mod prequential;
 pub mod steering;
 pub mod tables;

@@ -136,8 +136,8 @@ const SPAN_RATIO: f64 = 100.0;
 pub fn check_times(
     data: &Dataset,
     report: &ReadReport,
-    spikes: &Path,
-    trials: &Path,
+    spikes: impl std::fmt::Display,
+    trials: impl std::fmt::Display,
 ) -> Result<(), TableError> {
     let (Some(s0), Some(s1)) = (data.spikes.first(), data.spikes.last()) else {
         return Ok(());
@@ -148,9 +148,7 @@ pub fn check_times(
     let sec = |t: i64| t as f64 / data.tick_rate_hz;
     let (ss, se, ts, te) = (sec(s0.0), sec(s1.0), sec(t0.onset), sec(t1.onset));
     let what = format!(
-        "spikes in {} span {ss:.3}–{se:.3} s and trial onsets in {} span {ts:.3}–{te:.3} s",
-        spikes.display(),
-        trials.display()
+        "spikes in {spikes} span {ss:.3}–{se:.3} s and trial onsets in {trials} span {ts:.3}–{te:.3} s"
     );
     let hint = "both tables must give seconds from the same start of the recording (a table in milliseconds must be divided by 1000); if the times are right, pass --trust-times";
     let (sspan, tspan) = ((se - ss).max(1e-9), (te - ts).max(1e-9));
@@ -361,6 +359,17 @@ pub enum Source {
     },
     /// A session recording (`.apxs`); labels sent after onsets are applied to their trials.
     Session(std::path::PathBuf),
+    /// An NWB 2.x file: units, and trials from one of its interval tables.
+    Nwb {
+        /// The file.
+        path: std::path::PathBuf,
+        /// Which table, columns and units.
+        choice: crate::nwb::NwbChoice,
+        /// Ticks per second used to round times.
+        tick_rate_hz: f64,
+        /// Skip [`check_times`].
+        trust_times: bool,
+    },
 }
 
 impl Source {
@@ -385,7 +394,7 @@ impl Source {
             } => {
                 let (data, report) = read_dataset(spikes, trials, *tick_rate_hz, window_s)?;
                 if !trust_times {
-                    check_times(&data, &report, spikes, trials)?;
+                    check_times(&data, &report, spikes.display(), trials.display())?;
                 }
                 Ok((data, report))
             }
@@ -401,6 +410,25 @@ impl Source {
                 let report = report_for(&rec.dataset, window_s);
                 Ok((rec.dataset, report))
             }
+            Source::Nwb {
+                path,
+                choice,
+                tick_rate_hz,
+                trust_times,
+            } => {
+                let mut notes = Vec::new();
+                let (data, report) =
+                    crate::nwb::read_dataset(path, choice, *tick_rate_hz, window_s, &mut notes)?;
+                for n in notes {
+                    eprintln!("note: {n}");
+                }
+                if !trust_times {
+                    let sp = format!("{} (units)", path.display());
+                    let tr = format!("{} ({})", path.display(), choice.table);
+                    check_times(&data, &report, sp, tr)?;
+                }
+                Ok((data, report))
+            }
         }
     }
 
@@ -411,6 +439,7 @@ impl Source {
                 format!("{} + {}", spikes.display(), trials.display())
             }
             Source::Session(p) => format!("session {}", p.display()),
+            Source::Nwb { path, choice, .. } => crate::nwb::describe(path, choice),
         }
     }
 
@@ -426,6 +455,9 @@ impl Source {
         match self {
             Source::Tables { spikes, trials, .. } => format!("{} + {}", abs(spikes), abs(trials)),
             Source::Session(p) => format!("session {}", abs(p)),
+            Source::Nwb { path, choice, .. } => {
+                crate::nwb::describe(&crate::nwb::absolute(path), choice)
+            }
         }
     }
 }
@@ -554,7 +586,7 @@ mod tests {
         let s = write(d.path(), "s.csv", spikes);
         let t = write(d.path(), "t.csv", trials);
         let (data, rep) = read_dataset(&s, &t, 1e6, 0.25).unwrap();
-        check_times(&data, &rep, &s, &t).map_err(|e| e.to_string())
+        check_times(&data, &rep, s.display(), t.display()).map_err(|e| e.to_string())
     }
 
     #[test]

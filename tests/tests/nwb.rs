@@ -1,0 +1,293 @@
+//! Reading NWB files. The four files in `tests/nwb/` were written by the standard's reference
+//! Python API (pynwb 4.2.0, `tests/nwb/make_test_files.py`), each with the same data as Auspex's
+//! CSV tables beside it: reading the NWB file must give the dataset the tables give (spikes,
+//! units, trials, labels, ticks). Damaged and oversized files, built here with `hdf5-pure`'s
+//! writer (`auspex_e2e::nwb_build`), must be refused with the file, the table and the row.
+
+use auspex::nwb::{Nwb, NwbChoice, UnitPick};
+use auspex_e2e::nwb_build::{MiniNwb, Stimulus};
+use std::path::{Path, PathBuf};
+
+fn dir() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("nwb")
+}
+
+fn read_nwb(file: &str, choice: &NwbChoice) -> auspex_engine::data::Dataset {
+    let mut notes = Vec::new();
+    auspex::nwb::read_dataset(&dir().join(file), choice, 1e6, 0.25, &mut notes)
+        .unwrap_or_else(|e| panic!("{file}: {e}"))
+        .0
+}
+
+fn read_csv(stem: &str) -> auspex_engine::data::Dataset {
+    auspex::tables::read_dataset(
+        &dir().join(format!("{stem}.spikes.csv")),
+        &dir().join(format!("{stem}.trials.csv")),
+        1e6,
+        0.25,
+    )
+    .unwrap()
+    .0
+}
+
+fn same(a: &auspex_engine::data::Dataset, b: &auspex_engine::data::Dataset, what: &str) {
+    assert_eq!(a.units, b.units, "{what}: units");
+    assert_eq!(a.trials, b.trials, "{what}: trials");
+    assert_eq!(a.spikes.len(), b.spikes.len(), "{what}: spike count");
+    assert!(a.spikes == b.spikes, "{what}: spikes differ");
+    assert_eq!(a.tick_rate_hz, b.tick_rate_hz);
+}
+
+#[test]
+fn files_written_by_pynwb_read_as_their_csv_twins() {
+    let string = read_nwb("string_stimulus.nwb", &NwbChoice::default());
+    same(&string, &read_csv("string_stimulus"), "string stimulus");
+    assert!(string.declared_from.is_empty());
+
+    let numeric = read_nwb(
+        "numeric_stimulus.nwb",
+        &NwbChoice {
+            stimulus: Some("direction_deg".into()),
+            ..Default::default()
+        },
+    );
+    same(&numeric, &read_csv("numeric_stimulus"), "numeric stimulus");
+    // The lab's own unit ids, and numbers printed as the CSV path reads them (90.0 → "90").
+    assert_eq!(numeric.units, vec![7, 12, 30, 31]);
+    assert!(numeric
+        .trials
+        .iter()
+        .any(|t| t.stimulus.as_deref() == Some("22.5")));
+    assert!(numeric
+        .trials
+        .iter()
+        .any(|t| t.stimulus.as_deref() == Some("90")));
+
+    let flashes = read_nwb(
+        "two_tables.nwb",
+        &NwbChoice {
+            table: "flashes".into(),
+            stimulus: Some("luminance".into()),
+            ..Default::default()
+        },
+    );
+    same(
+        &flashes,
+        &read_csv("two_tables_flashes"),
+        "second interval table",
+    );
+    // The same file's default table is the other one.
+    let trials = read_nwb("two_tables.nwb", &NwbChoice::default());
+    assert_ne!(trials.trials, flashes.trials);
+
+    // Units chosen by the quality column; the two isolated part-way are declared from the start
+    // of their observation (obs_intervals), so their earlier silence is not fitted as evidence.
+    let partway = read_nwb(
+        "units_partway.nwb",
+        &NwbChoice {
+            units: UnitPick::parse("quality=good").unwrap(),
+            ..Default::default()
+        },
+    );
+    let twin = read_csv("units_partway");
+    same(&partway, &twin, "units added part-way");
+    let half = twin.trials[15].onset;
+    assert_eq!(
+        partway.declared_from.into_iter().collect::<Vec<_>>(),
+        vec![(2, half), (3, half)]
+    );
+    let by_id = read_nwb(
+        "units_partway.nwb",
+        &NwbChoice {
+            units: UnitPick::parse("0,2,3").unwrap(),
+            ..Default::default()
+        },
+    );
+    assert_eq!(by_id.units, vec![0, 2, 3]);
+}
+
+fn refusal(f: &MiniNwb, choice: &NwbChoice) -> String {
+    let d = tempfile::tempdir().unwrap();
+    let p = d.path().join("crafted.nwb");
+    std::fs::write(&p, f.bytes()).unwrap();
+    let mut notes = Vec::new();
+    match Nwb::open(&p).and_then(|n| n.dataset(choice, 1e6, &mut notes)) {
+        Ok(ds) => panic!(
+            "read {} spikes and {} trials from a damaged file",
+            ds.spikes.len(),
+            ds.trials.len()
+        ),
+        Err(e) => e.to_string(),
+    }
+}
+
+#[test]
+fn damaged_files_are_refused_naming_the_file_table_and_row() {
+    let good = MiniNwb::regular(3, 10, 6);
+    let d = tempfile::tempdir().unwrap();
+    let p = d.path().join("good.nwb");
+    std::fs::write(&p, good.bytes()).unwrap();
+    let mut notes = Vec::new();
+    let ds = Nwb::open(&p)
+        .unwrap()
+        .dataset(&NwbChoice::default(), 1e6, &mut notes)
+        .unwrap();
+    assert_eq!(
+        (ds.units.len(), ds.spikes.len(), ds.trials.len()),
+        (3, 30, 6)
+    );
+    let all = NwbChoice::default();
+
+    // Truncated: the superblock says where the file ends.
+    let bytes = good.bytes();
+    let cut = d.path().join("cut.nwb");
+    std::fs::write(&cut, &bytes[..bytes.len() * 2 / 3]).unwrap();
+    let e = Nwb::open(&cut).err().unwrap().to_string();
+    assert!(e.contains("cut.nwb") && e.contains("truncated"), "{e}");
+
+    // HDF5 but not NWB; not HDF5 at all.
+    let mut f = good.clone();
+    f.root_type = "SomethingElse".into();
+    let e = refusal(&f, &all);
+    assert!(e.contains("is HDF5 but not an NWB file"), "{e}");
+    let txt = d.path().join("table.nwb");
+    std::fs::write(&txt, "unit,time_s\n1,0.5\n").unwrap();
+    let e = Nwb::open(&txt).err().unwrap().to_string();
+    assert!(e.contains("not an HDF5 file"), "{e}");
+
+    // A ragged index past its data, or going back.
+    let mut f = good.clone();
+    f.index[1] = 99;
+    let e = refusal(&f, &all);
+    assert!(
+        e.contains("crafted.nwb: units: row 1") && e.contains("past the end of `spike_times`"),
+        "{e}"
+    );
+    let mut f = good.clone();
+    f.index[2] = 5;
+    let e = refusal(&f, &all);
+    assert!(
+        e.contains("row 2") && e.contains("must not decrease"),
+        "{e}"
+    );
+
+    // Negative and non-finite times, in spikes and onsets.
+    let mut f = good.clone();
+    f.spike_times[13] = -0.5;
+    let e = refusal(&f, &all);
+    assert!(
+        e.contains("units: row 1 (unit 1): spike 3") && e.contains("negative"),
+        "{e}"
+    );
+    let mut f = good.clone();
+    f.spike_times[0] = f64::NAN;
+    let e = refusal(&f, &all);
+    assert!(
+        e.contains("row 0 (unit 0): spike 0") && e.contains("not a finite number"),
+        "{e}"
+    );
+    let mut f = good.clone();
+    f.onsets[4] = f64::INFINITY;
+    let e = refusal(&f, &all);
+    assert!(
+        e.contains("intervals/trials: row 4: column `start_time`"),
+        "{e}"
+    );
+
+    // A stimulus column with a missing value (NaN in numbers, an empty string in text).
+    let mut f = good.clone();
+    f.stimulus = Stimulus::Float(vec![0.0, 45.0, f64::NAN, 0.0, 45.0, 0.0]);
+    let e = refusal(&f, &all);
+    assert!(
+        e.contains("intervals/trials: row 2: column `stimulus` has no value"),
+        "{e}"
+    );
+    let mut f = good.clone();
+    f.stimulus = Stimulus::Text(["a", "b", "a", "", "a", "b"].map(String::from).to_vec());
+    let e = refusal(&f, &all);
+    assert!(e.contains("row 3: column `stimulus` has no value"), "{e}");
+
+    // Ids: duplicated, negative, too large for a unit.
+    let mut f = good.clone();
+    f.unit_ids[2] = 0;
+    assert!(refusal(&f, &all).contains("row 2: unit id 0 is already used by row 0"));
+    let mut f = good.clone();
+    f.unit_ids[1] = 1 << 40;
+    assert!(refusal(&f, &all).contains("row 1: unit id 1099511627776 is not between 0"));
+    let mut f = good.clone();
+    f.trial_ids[5] = -2;
+    assert!(refusal(&f, &all).contains("intervals/trials: row 5: trial id -2 is negative"));
+
+    // Columns of different lengths.
+    let mut f = good.clone();
+    f.onsets.pop();
+    let e = refusal(&f, &all);
+    assert!(e.contains("columns of different lengths"), "{e}");
+
+    // Choices that name nothing.
+    let e = refusal(
+        &good,
+        &NwbChoice {
+            table: "flashes".into(),
+            ..Default::default()
+        },
+    );
+    assert!(
+        e.contains("has no table `intervals/flashes` (its interval tables: intervals/trials)"),
+        "{e}"
+    );
+    let e = refusal(
+        &good,
+        &NwbChoice {
+            stimulus: Some("contrast".into()),
+            ..Default::default()
+        },
+    );
+    assert!(e.contains("has no column `contrast`"), "{e}");
+    let e = refusal(
+        &good,
+        &NwbChoice {
+            units: UnitPick::Ids(vec![1, 8]),
+            ..Default::default()
+        },
+    );
+    assert!(e.contains("has no unit with id 8"), "{e}");
+}
+
+#[test]
+fn a_million_units_and_a_million_trials_are_read_or_refused_by_the_budget() {
+    // 10⁶ units with one spike each, 10⁶ trials.
+    let n = 1_000_000usize;
+    let f = MiniNwb {
+        root_type: "NWBFile".into(),
+        unit_ids: (0..n as i64).collect(),
+        spike_times: (0..n).map(|i| i as f64 * 1e-3).collect(),
+        index: (1..=n as u64).collect(),
+        quality: None,
+        trial_ids: (0..n as i64).collect(),
+        onsets: (0..n).map(|i| i as f64 * 1e-3).collect(),
+        stimulus: Stimulus::Float((0..n).map(|i| (i % 4) as f64).collect()),
+    };
+    let d = tempfile::tempdir().unwrap();
+    let p = d.path().join("big.nwb");
+    std::fs::write(&p, f.bytes()).unwrap();
+    let mut notes = Vec::new();
+    let ds = auspex::nwb::read_dataset(&p, &NwbChoice::default(), 1e6, 0.25, &mut notes)
+        .unwrap()
+        .0;
+    assert_eq!(
+        (ds.units.len(), ds.spikes.len(), ds.trials.len()),
+        (n, n, n)
+    );
+    // Under a small budget the same file is refused before its columns are read, with the sizes.
+    auspex_engine::budget::set_mb(8);
+    let e = auspex::nwb::read_dataset(&p, &NwbChoice::default(), 1e6, 0.25, &mut notes)
+        .err()
+        .unwrap()
+        .to_string();
+    auspex_engine::budget::set_mb(auspex_engine::budget::DEFAULT_MB);
+    assert!(
+        e.contains("big.nwb") && e.contains("1000000 rows") && e.contains("memory budget"),
+        "{e}"
+    );
+}
