@@ -291,3 +291,88 @@ fn a_million_units_and_a_million_trials_are_read_or_refused_by_the_budget() {
         "{e}"
     );
 }
+
+mod common;
+
+/// `replay --nwb` into a running daemon gives the frames that decoding the same file offline
+/// gives (`decode --nwb` runs `run_dataset` on the dataset read here), bit for bit.
+#[test]
+fn replay_of_an_nwb_file_into_the_daemon_equals_offline_decoding() {
+    use auspex_engine::engine::{EngineConfig, EngineSink, Frame};
+    use std::time::Duration;
+    #[derive(Default)]
+    struct Collect(Vec<(u64, u32, Vec<f64>)>);
+    impl EngineSink for Collect {
+        fn frame(&mut self, f: &Frame<'_>) {
+            self.0.push((f.trial, f.bin, f.posterior.to_vec()));
+        }
+    }
+    let _g = common::serial();
+    let file = dir().join("string_stimulus.nwb");
+    let choice = NwbChoice::default();
+    let data = read_nwb("string_stimulus.nwb", &choice);
+    let spec = auspex_modelling::fit::plan(&data, &auspex_modelling::fit::FitOptions::default())
+        .unwrap()
+        .fit_all();
+    let tmp = tempfile::tempdir().unwrap();
+    let model_path = tmp.path().join("m.apxm");
+    auspex_proto::model_file::save_model(&model_path, &spec, "nwb e2e").unwrap();
+    let model = std::sync::Arc::new(auspex_engine::Model::new(spec).unwrap());
+
+    let mut offline = Collect::default();
+    auspex::offline::run_dataset(
+        model,
+        &data,
+        EngineConfig::new(data.tick_rate_hz),
+        &mut offline,
+    )
+    .unwrap();
+    let mut offline = offline.0;
+    offline.sort_by_key(|x| (x.0, x.1));
+
+    let fc = auspexd::config::FileConfig {
+        model: Some(model_path),
+        ingest: Some("tcp://127.0.0.1:0".into()),
+        task_ingest: Some("tcp://127.0.0.1:0".into()),
+        publish: Some("tcp://127.0.0.1:0".into()),
+        control: Some("tcp://127.0.0.1:0".into()),
+        ..Default::default()
+    };
+    let cfg = auspexd::config::validate(fc, &mut Vec::new()).unwrap();
+    let rt = common::runtime();
+    let running = rt.block_on(auspexd::service::start(cfg)).unwrap();
+    let ep = running.endpoints.clone();
+    let ctx = zmq::Context::new();
+    let (stop, sub) = common::subscriber(&ctx, &ep.publish);
+    std::thread::sleep(Duration::from_millis(300));
+    let source = auspex::live::ReplaySource::Nwb { path: file, choice };
+    let (msgs, rate) = rt
+        .block_on(auspex::live::replay_messages(
+            &source,
+            &ep.control,
+            "nwb",
+            true,
+        ))
+        .unwrap();
+    rt.block_on(auspex::live::replay_asking(
+        &ep.ingest,
+        &ep.control,
+        &msgs,
+        "nwb",
+        rate,
+        auspex::live::Pace::Max,
+        false,
+        &auspex::live::Choices::default(),
+    ))
+    .unwrap();
+    std::thread::sleep(Duration::from_millis(300));
+    stop.send(()).unwrap();
+    let got = sub.join().unwrap();
+    rt.block_on(running.stop());
+    let live = common::frames_of(&got);
+    assert!(!live.is_empty());
+    assert_eq!(
+        live, offline,
+        "frames of replay --nwb differ from offline decoding"
+    );
+}
