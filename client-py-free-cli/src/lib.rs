@@ -14,7 +14,7 @@ pub mod report;
 
 // The jobs' modules by their short names (as the commands call them).
 pub use live::{monitor, send, session, status, wire};
-pub use offline::{commands, export, fitting, gather, nwb, prequential, tables};
+pub use offline::{commands, export, fitting, gather, nwb, nwb_write, prequential, tables};
 pub use report::validate;
 
 /// Where the bundled demo data lives (the repository's `demo-data/`).

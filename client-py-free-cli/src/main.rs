@@ -435,12 +435,21 @@ enum Cmd {
     },
     /// Write a model as interchange JSON (the numbers the engine uses)
     Export {
-        /// Model file
-        #[arg(long)]
-        model: PathBuf,
+        /// Model file (with --nwb: decode the session with it, so each trial's decision and the
+        /// per-bin posterior go into the file)
+        #[arg(long, required_unless_present = "nwb")]
+        model: Option<PathBuf>,
         /// Output file (default: standard output)
-        #[arg(long, short)]
+        #[arg(long, short, conflicts_with = "nwb")]
         out: Option<PathBuf>,
+        /// Write a recorded session (--session) as an NWB file here instead of the model as JSON
+        #[arg(long, requires = "session")]
+        nwb: Option<PathBuf>,
+        /// With --nwb: the session recording (.apxs)
+        #[arg(long, requires = "nwb")]
+        session: Option<PathBuf>,
+        #[command(flatten)]
+        opts: DecodeOpts,
     },
     /// Print a model file's per-cell summary
     Inspect {
@@ -825,7 +834,22 @@ fn main() {
                 Ok(())
             })
         }),
-        Cmd::Export { model, out } => commands::export_cmd(&model, out.as_deref()),
+        Cmd::Export { model, out, nwb: Some(nwb), session: Some(session), opts } => {
+            let args = DecodeArgs {
+                decoder: opts.decoder,
+                threshold: opts.threshold,
+                min_time_ms: opts.min_time_ms,
+                prior: opts.prior,
+                target_accuracy: opts.target_accuracy,
+                calibrated: !opts.uncalibrated,
+            };
+            let _ = out;
+            commands::export_nwb_cmd(&nwb, &session, model.as_deref(), &args)
+        }
+        Cmd::Export { model, out, .. } => match model {
+            Some(m) => commands::export_cmd(&m, out.as_deref()),
+            None => Err(anyhow::anyhow!("give --model FILE (or --nwb OUT --session REC)")),
+        },
         Cmd::ClosedLoopSim { units, stimuli, seeds, max_trials, through_daemon: true, policies, ingest, control, .. } => runtime().and_then(|rt| {
             rt.block_on(auspex::live::closed_loop::through_daemon_cmd(&units, &stimuli, seeds, max_trials as u64, &policies, &ingest, &control))
         }),

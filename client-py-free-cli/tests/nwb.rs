@@ -156,7 +156,10 @@ fn fit_decode_and_validate_from_nwb_equal_the_same_data_as_tables() {
         v.as_object_mut().unwrap().remove("seconds");
         v
     };
-    assert!(json(&va) == json(&vb), "validate differs between NWB and CSV");
+    assert!(
+        json(&va) == json(&vb),
+        "validate differs between NWB and CSV"
+    );
 }
 
 #[test]

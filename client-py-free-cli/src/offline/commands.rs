@@ -12,6 +12,7 @@ use auspex_modelling::calibrate::{calibrate, held_out_set};
 use auspex_modelling::fit::FitOptions;
 use auspex_modelling::simulate::{simulate, Scenario, SimOptions};
 use auspex_proto::model_file::{load_model, save_model};
+use std::collections::HashMap;
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
@@ -865,6 +866,152 @@ pub fn validate_cmd(
         json_path.display()
     );
     Ok(v)
+}
+
+/// `auspex export --nwb OUT --session REC [--model M]`: the recorded session as an NWB file —
+/// its units, spikes and trials, and, with a model, each trial's decision and the per-bin
+/// posterior decoded through the same engine as live (so they are the daemon's own figures for
+/// the same model and settings).
+pub fn export_nwb_cmd(
+    out: &Path,
+    session: &Path,
+    model_path: Option<&Path>,
+    args: &DecodeArgs,
+) -> anyhow::Result<()> {
+    use auspex_engine::engine::{EngineSink, Frame};
+    let rec = crate::wire::read_recording(session)?;
+    let raw =
+        std::fs::read(session).with_context(|| format!("{}: cannot read", session.display()))?;
+    let first_ns = auspex_proto::session::read_session(&raw)
+        .ok()
+        .and_then(|c| c.records.first().map(|r| r.received_unix_ns))
+        .unwrap_or(0);
+    let name = rec
+        .messages
+        .iter()
+        .find_map(|(_, m)| match &m.body {
+            Some(auspex_proto::v1::inbound::Body::SessionStart(ss))
+                if !ss.session_name.is_empty() =>
+            {
+                Some(ss.session_name.clone())
+            }
+            _ => None,
+        })
+        .unwrap_or_else(|| {
+            session
+                .file_stem()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_default()
+        });
+    let data = &rec.dataset;
+    let mut input = crate::nwb_write::ExportInput {
+        data,
+        session: name,
+        start_time: crate::nwb_write::iso_utc(first_ns),
+        window_s: 0.25,
+        stimuli: Vec::new(),
+        decisions: Default::default(),
+        frames: Vec::new(),
+        notes: format!("session recording {}", session.display()),
+    };
+    if let Some(mp) = model_path {
+        let (_, model) = load_model(mp)?;
+        let model = Arc::new(model);
+        let mut args = args.clone();
+        args.resolve_target(&model)
+            .with_context(|| format!("{}", mp.display()))?;
+        let cfg = args.config(data.tick_rate_hz);
+        struct Keep {
+            frames: Vec<(i64, u64, Vec<f64>)>,
+            last: HashMap<(u64, u32), usize>,
+            decisions: HashMap<u64, (u32, i64, f64, String, Vec<f64>)>,
+        }
+        impl EngineSink for Keep {
+            fn frame(&mut self, f: &Frame<'_>) {
+                self.last.insert((f.trial, f.bin), self.frames.len());
+                self.frames
+                    .push((f.bin_end_tick, f.trial, f.posterior.to_vec()));
+            }
+            fn decision(&mut self, d: &auspex_engine::decision::Decision) {
+                let full = self
+                    .last
+                    .get(&(d.trial, d.bin))
+                    .map(|&i| self.frames[i].2.clone())
+                    .unwrap_or_default();
+                self.decisions.insert(
+                    d.trial,
+                    (
+                        d.stimulus,
+                        d.bin_end_tick,
+                        d.posterior,
+                        d.reason.name().to_string(),
+                        full,
+                    ),
+                );
+            }
+        }
+        let window_s = model.bin_width_s() * model.n_bins() as f64;
+        let s = model.n_stimuli() as u128;
+        auspex_engine::budget::check(
+            "the per-bin posteriors to export",
+            || {
+                format!(
+                    "{} trials × {} bins × {s} stimuli",
+                    data.trials.len(),
+                    model.n_bins()
+                )
+            },
+            auspex_engine::budget::product(&[
+                data.trials.len() as u128,
+                model.n_bins() as u128,
+                s + 3,
+                8,
+            ]),
+        )?;
+        let mut keep = Keep {
+            frames: Vec::new(),
+            last: HashMap::new(),
+            decisions: HashMap::new(),
+        };
+        run_dataset(model.clone(), data, cfg, &mut keep)?;
+        input.window_s = window_s;
+        input.stimuli = model.stimuli().to_vec();
+        input.frames = keep.frames;
+        input.decisions = keep.decisions;
+        input.notes = format!(
+            "decoded by Auspex {} with the model {} ({} units × {} stimuli, {} bins of {} ms; calibration {}; fitted on {}), decoder {}, threshold {}, minimum time {} ms; session recording {}",
+            env!("CARGO_PKG_VERSION"),
+            mp.display(),
+            model.n_units(),
+            model.n_stimuli(),
+            model.n_bins(),
+            model.bin_width_s() * 1000.0,
+            model.calibration().method.name(),
+            auspex_proto::model_file::training_data(mp),
+            args.decoder.name(),
+            args.threshold,
+            args.min_time_ms,
+            session.display()
+        );
+    }
+    crate::nwb_write::write(out, &input)?;
+    eprintln!(
+        "wrote {}: {} units, {} spikes, {} trials{}",
+        out.display(),
+        data.units.len(),
+        data.spikes.len(),
+        data.trials.len(),
+        if input.stimuli.is_empty() {
+            " (no --model: no decisions or posteriors)".to_string()
+        } else {
+            format!(
+                ", {} decisions, {} posterior rows",
+                input.decisions.len(),
+                input.frames.len()
+            )
+        }
+    );
+    Ok(())
 }
 
 #[cfg(test)]

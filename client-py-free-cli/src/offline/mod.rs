@@ -12,6 +12,7 @@ pub mod export;
 pub mod fitting;
 pub mod gather;
 pub mod nwb;
+pub mod nwb_write;
 pub mod prequential;
 pub mod steering;
 pub mod tables;

@@ -683,18 +683,24 @@ impl Nwb {
                 ));
             }
             self.check_seconds(&path, row, &choice.onset, onsets[row], tick_rate_hz)?;
-            let Some(s) = stim.text(row) else {
-                return Err(self.fail(
-                    &path,
-                    &format!(
-                        "row {row}: column `{stim_col}` has no value; every trial needs its stimulus (pick another table or column, or fill it in the file)"
-                    ),
-                ));
+            // An empty text label is a trial never labelled, as in the CSV tables (decoded, not
+            // fitted, counted in the read report); a number that is missing (NaN) is refused.
+            let label = match (&stim, stim.text(row)) {
+                (_, Some(s)) => Some(s),
+                (Column::Text(_), None) => None,
+                _ => {
+                    return Err(self.fail(
+                        &path,
+                        &format!(
+                            "row {row}: column `{stim_col}` has no value (NaN); every trial needs its stimulus (pick another table or column, or fill it in the file)"
+                        ),
+                    ))
+                }
             };
             out.push(Trial {
                 id,
                 onset: seconds_to_ticks(onsets[row], tick_rate_hz),
-                stimulus: Some(s),
+                stimulus: label,
             });
         }
         out.sort_by_key(|t| (t.onset, t.id));
@@ -1045,8 +1051,19 @@ impl Nwb {
                 }
             );
             for (c, ty, ragged) in &info.columns {
+                let dims = self
+                    .guard(|| {
+                        Ok(self
+                            .file
+                            .dataset(&format!("{t}/{c}"))
+                            .and_then(|d| d.shape())
+                            .unwrap_or_default())
+                    })
+                    .unwrap_or_default();
                 let ex = if *ragged {
                     "(several values per row)".to_string()
+                } else if dims.len() > 1 {
+                    format!("({} values per row)", dims[1..].iter().product::<u64>())
                 } else {
                     match self.column(&t, c) {
                         Ok(col) => examples(&col),
