@@ -37,11 +37,50 @@ fn split_fields(line: &str, delim: char) -> Vec<String> {
 /// spike's distance from an onset, never overflows.
 const MAX_TICK: f64 = 4.0e18;
 
+/// A table read as text: rows are split one at a time as they are used, so memory follows the
+/// file's size, not the number of its fields (a row-of-strings buffer cost ~25× the file).
 struct Table {
     path: String,
     tick_rate_hz: f64,
-    rows: Vec<(usize, Vec<String>)>,
+    text: String,
+    /// Index (0-based) of the header line.
+    header_line: usize,
+    delim: char,
+    n_names: usize,
     cols: HashMap<String, usize>,
+}
+
+impl Table {
+    /// Data rows, as (1-based line number, fields); a row with fewer fields than the header is an
+    /// error naming its line.
+    fn rows(&self) -> impl Iterator<Item = Result<(usize, Vec<String>), TableError>> + '_ {
+        self.text
+            .lines()
+            .enumerate()
+            .skip(self.header_line + 1)
+            .filter(|(_, l)| {
+                let t = l.trim();
+                !t.is_empty() && !t.starts_with('#')
+            })
+            .map(|(i, l)| {
+                let f = split_fields(l, self.delim);
+                if f.len() < self.n_names {
+                    Err(TableError(format!(
+                        "{}:{}: expected {} fields like the header, found {}",
+                        self.path,
+                        i + 1,
+                        self.n_names,
+                        f.len()
+                    )))
+                } else {
+                    Ok((i + 1, f))
+                }
+            })
+    }
+    /// Lines in the file (an upper bound on its rows, for reserving).
+    fn lines_upper_bound(&self) -> usize {
+        self.text.bytes().filter(|&b| b == b'\n').count() + 1
+    }
 }
 
 fn read_table(path: &Path, required: &[&str], tick_rate_hz: f64) -> Result<Table, TableError> {
@@ -87,23 +126,15 @@ fn read_table(path: &Path, required: &[&str], tick_rate_hz: f64) -> Result<Table
             )));
         }
     }
-    let mut rows = Vec::new();
-    for (i, l) in lines {
-        let f = split_fields(l, delim);
-        if f.len() < names.len() {
-            return Err(TableError(format!(
-                "{p}:{}: expected {} fields like the header, found {}",
-                i + 1,
-                names.len(),
-                f.len()
-            )));
-        }
-        rows.push((i + 1, f));
-    }
+    drop(lines);
+    let n_names = names.len();
     Ok(Table {
         path: p,
         tick_rate_hz,
-        rows,
+        text,
+        header_line: hline,
+        delim,
+        n_names,
         cols,
     })
 }
@@ -295,9 +326,11 @@ pub fn read_dataset(
         )));
     }
     let st = read_table(spikes, &["unit", "time_s"], tick_rate_hz)?;
-    let mut sp = Vec::with_capacity(st.rows.len());
+    let mut sp = Vec::with_capacity(st.lines_upper_bound());
     let mut units = std::collections::BTreeSet::new();
-    for (line, row) in &st.rows {
+    for r in st.rows() {
+        let (line, row) = r?;
+        let (line, row) = (&line, &row);
         let unit = st.id(*line, row, "unit", "unit id")?;
         let unit = u32::try_from(unit).map_err(|_| {
             TableError(format!(
@@ -312,9 +345,11 @@ pub fn read_dataset(
     }
     sp.sort_unstable();
     let tt = read_table(trials, &["trial", "onset_s", "stimulus"], tick_rate_hz)?;
-    let mut tr = Vec::with_capacity(tt.rows.len());
+    let mut tr = Vec::with_capacity(tt.lines_upper_bound());
     let mut seen: HashMap<u64, usize> = HashMap::new();
-    for (line, row) in &tt.rows {
+    for r in tt.rows() {
+        let (line, row) = r?;
+        let (line, row) = (&line, &row);
         let id = tt.id(*line, row, "trial", "trial id")?;
         if let Some(prev) = seen.insert(id, *line) {
             return Err(TableError(format!(
