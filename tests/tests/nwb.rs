@@ -531,3 +531,30 @@ fn a_recorded_session_exported_to_nwb_reads_back_whole() {
     eprintln!("{text}");
     assert!(out.status.success(), "pynwb's read-back failed:\n{text}");
 }
+
+/// The CSV path's check that spikes and trials fit together applies to NWB files too: trial
+/// times in milliseconds beside spike times in seconds are refused with what was found.
+#[test]
+fn times_in_the_wrong_unit_are_refused_as_for_the_tables() {
+    let mut f = MiniNwb::regular(3, 50, 20);
+    for t in &mut f.onsets {
+        *t *= 1000.0;
+    }
+    let d = tempfile::tempdir().unwrap();
+    let p = d.path().join("ms.nwb");
+    std::fs::write(&p, f.bytes()).unwrap();
+    let source = |trust_times| auspex::tables::Source::Nwb {
+        path: p.clone(),
+        choice: NwbChoice::default(),
+        tick_rate_hz: 1e6,
+        trust_times,
+    };
+    let e = source(false).load(0.25).err().unwrap().to_string();
+    assert!(
+        e.contains("the times look like different units")
+            && e.contains("ms.nwb (units)")
+            && e.contains("ms.nwb (trials)"),
+        "{e}"
+    );
+    assert!(source(true).load(0.25).is_ok());
+}
