@@ -164,6 +164,19 @@ struct DecodeOpts {
     uncalibrated: bool,
 }
 
+impl DecodeOpts {
+    fn args(self) -> DecodeArgs {
+        DecodeArgs {
+            decoder: self.decoder,
+            threshold: self.threshold,
+            min_time_ms: self.min_time_ms,
+            prior: self.prior,
+            target_accuracy: self.target_accuracy,
+            calibrated: !self.uncalibrated,
+        }
+    }
+}
+
 #[derive(Subcommand)]
 enum Cmd {
     /// Draw a synthetic dataset (spikes.csv, trials.csv) from a scenario or a fitted model
@@ -717,14 +730,7 @@ fn main() {
             opts,
             out_dir,
         } => {
-            let args = DecodeArgs {
-                decoder: opts.decoder,
-                threshold: opts.threshold,
-                min_time_ms: opts.min_time_ms,
-                prior: opts.prior,
-                target_accuracy: opts.target_accuracy,
-                calibrated: !opts.uncalibrated,
-            };
+            let args = opts.args();
             match model {
                 Some(m) => commands::decode_cmd(&m, &tables.source(), &out_dir, &args),
                 None => commands::decode_prequential_cmd(
@@ -835,15 +841,8 @@ fn main() {
             })
         }),
         Cmd::Export { model, out, nwb: Some(nwb), session: Some(session), opts } => {
-            let args = DecodeArgs {
-                decoder: opts.decoder,
-                threshold: opts.threshold,
-                min_time_ms: opts.min_time_ms,
-                prior: opts.prior,
-                target_accuracy: opts.target_accuracy,
-                calibrated: !opts.uncalibrated,
-            };
             let _ = out;
+            let args = opts.args();
             commands::export_nwb_cmd(&nwb, &session, model.as_deref(), &args)
         }
         Cmd::Export { model, out, .. } => match model {

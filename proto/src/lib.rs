@@ -14,6 +14,7 @@ pub mod v1 {
     include!(concat!(env!("OUT_DIR"), "/auspex.v1.rs"));
 }
 
+pub mod civil;
 pub mod convert;
 pub mod crc32;
 pub mod model_file;

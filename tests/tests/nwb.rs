@@ -298,6 +298,40 @@ fn a_million_units_and_a_million_trials_are_read_or_refused_by_the_budget() {
 
 mod common;
 
+/// A daemon on free loopback ports with `model`, recording to `record` if given.
+async fn daemon(model: &Path, record: Option<&Path>) -> auspexd::service::Running {
+    let fc = auspexd::config::FileConfig {
+        model: Some(model.to_path_buf()),
+        ingest: Some("tcp://127.0.0.1:0".into()),
+        task_ingest: Some("tcp://127.0.0.1:0".into()),
+        publish: Some("tcp://127.0.0.1:0".into()),
+        control: Some("tcp://127.0.0.1:0".into()),
+        record: record.map(Path::to_path_buf),
+        ..Default::default()
+    };
+    let cfg = auspexd::config::validate(fc, &mut Vec::new()).unwrap();
+    auspexd::service::start(cfg).await.unwrap()
+}
+
+/// Replays `source` into the daemon as fast as it takes it, waiting for the last message.
+async fn replay(source: &auspex::live::ReplaySource, ep: &auspexd::service::BoundEndpoints) {
+    let (msgs, rate) = auspex::live::replay_messages(source, &ep.control, "rig", true)
+        .await
+        .unwrap();
+    auspex::live::replay_asking(
+        &ep.ingest,
+        &ep.control,
+        &msgs,
+        "rig",
+        rate,
+        auspex::live::Pace::Max,
+        false,
+        &auspex::live::Choices::default(),
+    )
+    .await
+    .unwrap();
+}
+
 /// `replay --nwb` into a running daemon gives the frames that decoding the same file offline
 /// gives (`decode --nwb` runs `run_dataset` on the dataset read here), bit for bit.
 #[test]
@@ -334,41 +368,14 @@ fn replay_of_an_nwb_file_into_the_daemon_equals_offline_decoding() {
     let mut offline = offline.0;
     offline.sort_by_key(|x| (x.0, x.1));
 
-    let fc = auspexd::config::FileConfig {
-        model: Some(model_path),
-        ingest: Some("tcp://127.0.0.1:0".into()),
-        task_ingest: Some("tcp://127.0.0.1:0".into()),
-        publish: Some("tcp://127.0.0.1:0".into()),
-        control: Some("tcp://127.0.0.1:0".into()),
-        ..Default::default()
-    };
-    let cfg = auspexd::config::validate(fc, &mut Vec::new()).unwrap();
     let rt = common::runtime();
-    let running = rt.block_on(auspexd::service::start(cfg)).unwrap();
+    let running = rt.block_on(daemon(&model_path, None));
     let ep = running.endpoints.clone();
     let ctx = zmq::Context::new();
     let (stop, sub) = common::subscriber(&ctx, &ep.publish);
     std::thread::sleep(Duration::from_millis(300));
     let source = auspex::live::ReplaySource::Nwb { path: file, choice };
-    let (msgs, rate) = rt
-        .block_on(auspex::live::replay_messages(
-            &source,
-            &ep.control,
-            "nwb",
-            true,
-        ))
-        .unwrap();
-    rt.block_on(auspex::live::replay_asking(
-        &ep.ingest,
-        &ep.control,
-        &msgs,
-        "nwb",
-        rate,
-        auspex::live::Pace::Max,
-        false,
-        &auspex::live::Choices::default(),
-    ))
-    .unwrap();
+    rt.block_on(replay(&source, &ep));
     std::thread::sleep(Duration::from_millis(300));
     stop.send(()).unwrap();
     let got = sub.join().unwrap();
@@ -397,42 +404,14 @@ fn a_recorded_session_exported_to_nwb_reads_back_whole() {
     let model_path = tmp.path().join("m.apxm");
     auspex_proto::model_file::save_model(&model_path, &spec, "nwb export e2e").unwrap();
     let record = tmp.path().join("s.apxs");
-    let fc = auspexd::config::FileConfig {
-        model: Some(model_path.clone()),
-        ingest: Some("tcp://127.0.0.1:0".into()),
-        task_ingest: Some("tcp://127.0.0.1:0".into()),
-        publish: Some("tcp://127.0.0.1:0".into()),
-        control: Some("tcp://127.0.0.1:0".into()),
-        record: Some(record.clone()),
-        ..Default::default()
-    };
-    let cfg = auspexd::config::validate(fc, &mut Vec::new()).unwrap();
     let rt = common::runtime();
-    let running = rt.block_on(auspexd::service::start(cfg)).unwrap();
+    let running = rt.block_on(daemon(&model_path, Some(&record)));
     let ep = running.endpoints.clone();
     let source = auspex::live::ReplaySource::Nwb {
         path: dir().join("string_stimulus.nwb"),
         choice: NwbChoice::default(),
     };
-    let (msgs, rate) = rt
-        .block_on(auspex::live::replay_messages(
-            &source,
-            &ep.control,
-            "rig",
-            true,
-        ))
-        .unwrap();
-    rt.block_on(auspex::live::replay_asking(
-        &ep.ingest,
-        &ep.control,
-        &msgs,
-        "rig",
-        rate,
-        auspex::live::Pace::Max,
-        false,
-        &auspex::live::Choices::default(),
-    ))
-    .unwrap();
+    rt.block_on(replay(&source, &ep));
     std::thread::sleep(Duration::from_millis(200));
     rt.block_on(running.stop());
 

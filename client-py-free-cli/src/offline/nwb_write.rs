@@ -60,26 +60,10 @@ fn object_id(session: &str, path: &str) -> String {
     )
 }
 
-/// Unix nanoseconds as ISO 8601 UTC (days to civil date: the standard proleptic Gregorian rule).
+/// Unix nanoseconds as ISO 8601 UTC.
 pub fn iso_utc(unix_ns: i64) -> String {
-    let secs = unix_ns.div_euclid(1_000_000_000);
-    let days = secs.div_euclid(86_400);
-    let sod = secs.rem_euclid(86_400);
-    let z = days + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z - era * 146_097;
-    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let d = doy - (153 * mp + 2) / 5 + 1;
-    let m = if mp < 10 { mp + 3 } else { mp - 9 };
-    let y = yoe + era * 400 + i64::from(m <= 2);
-    format!(
-        "{y:04}-{m:02}-{d:02}T{:02}:{:02}:{:02}+00:00",
-        sod / 3600,
-        (sod / 60) % 60,
-        sod % 60
-    )
+    let [y, m, d, hh, mm, ss] = auspex_proto::civil::civil_utc(unix_ns.div_euclid(1_000_000_000));
+    format!("{y:04}-{m:02}-{d:02}T{hh:02}:{mm:02}:{ss:02}+00:00")
 }
 
 struct Typed<'a> {

@@ -322,23 +322,8 @@ pub(super) fn file_safe(name: &str) -> String {
 /// UTC date and time of a Unix time as `YYYYMMDDTHHMMSSZ` (civil-from-days conversion of the
 /// proleptic Gregorian calendar).
 pub(super) fn utc_stamp(unix_s: u64) -> String {
-    let days = (unix_s / 86_400) as i64;
-    let secs = unix_s % 86_400;
-    let z = days + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z - era * 146_097;
-    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let d = doy - (153 * mp + 2) / 5 + 1;
-    let m = if mp < 10 { mp + 3 } else { mp - 9 };
-    let y = yoe + era * 400 + (m <= 2) as i64;
-    format!(
-        "{y:04}{m:02}{d:02}T{:02}{:02}{:02}Z",
-        secs / 3600,
-        (secs / 60) % 60,
-        secs % 60
-    )
+    let [y, m, d, hh, mm, ss] = auspex_proto::civil::civil_utc(unix_s as i64);
+    format!("{y:04}{m:02}{d:02}T{hh:02}{mm:02}{ss:02}Z")
 }
 
 pub(super) fn unix_now_s() -> u64 {
