@@ -52,6 +52,16 @@ fn positive_speed(s: &str) -> Result<f64, String> {
     }
 }
 
+/// A number in (0, 1).
+fn unit_interval(s: &str) -> Result<f64, String> {
+    let x: f64 = s.parse().map_err(|_| format!("`{s}` is not a number"))?;
+    if x > 0.0 && x < 1.0 {
+        Ok(x)
+    } else {
+        Err(format!("{x} must be between 0 and 1 (exclusive)"))
+    }
+}
+
 fn parse_prior(s: &str) -> Result<Vec<f64>, String> {
     s.split(',')
         .map(|x| {
@@ -230,13 +240,21 @@ enum Cmd {
         /// Also print every experiment's trials as JSON
         #[arg(long)]
         json: bool,
+        /// What each experiment runs until: tuning (every unit's preferred stimulus known;
+        /// find-tuning against balanced blocks) or decoding (one trial decoded at --accuracy on
+        /// held-out trials; improve-decoding against balanced blocks)
+        #[arg(long, default_value = "tuning", value_parser = ["tuning", "decoding"])]
+        goal: String,
+        /// With --goal decoding: the held-out accuracy to reach
+        #[arg(long, default_value_t = 0.9, value_parser = unit_interval)]
+        accuracy: f64,
         /// Play the experiments against a running daemon instead: its `next` chooses every
         /// trial's stimulus (the daemon's own constraints apply) and its status judges when
         /// every unit's preference is settled
         #[arg(long)]
         through_daemon: bool,
         /// With --through-daemon: the policies to ask for, in turn
-        #[arg(long, value_delimiter = ',', default_value = "find-tuning,balanced-blocks", value_parser = ["balanced-blocks", "least-certain", "find-tuning"])]
+        #[arg(long, value_delimiter = ',', default_value = "find-tuning,balanced-blocks", value_parser = ["balanced-blocks", "least-certain", "find-tuning", "improve-decoding"])]
         policies: Vec<String>,
         /// With --through-daemon: the daemon's ingest endpoint
         #[arg(long, default_value = auspex_proto::endpoints::INGEST)]
@@ -643,7 +661,7 @@ enum Steer {
         /// balanced-blocks (every stimulus once per block), least-certain (the stimulus decoded
         /// worst so far) or find-tuning (learn each unit's preferred stimulus in the fewest
         /// trials; prints why on stderr)
-        #[arg(long, default_value = "balanced-blocks", value_parser = ["balanced-blocks", "least-certain", "find-tuning"])]
+        #[arg(long, default_value = "balanced-blocks", value_parser = ["balanced-blocks", "least-certain", "find-tuning", "improve-decoding"])]
         policy: String,
     },
 }
@@ -852,12 +870,13 @@ fn main() {
         Cmd::ClosedLoopSim { units, stimuli, seeds, max_trials, through_daemon: true, policies, ingest, control, .. } => runtime().and_then(|rt| {
             rt.block_on(auspex::live::closed_loop::through_daemon_cmd(&units, &stimuli, seeds, max_trials as u64, &policies, &ingest, &control))
         }),
-        Cmd::ClosedLoopSim { units, stimuli, seeds, max_trials, warmup_blocks, min_share, max_run, json, .. } => auspex::offline::steering::closed_loop_cmd(
+        Cmd::ClosedLoopSim { units, stimuli, seeds, max_trials, warmup_blocks, min_share, max_run, json, goal, accuracy, .. } => auspex::offline::steering::closed_loop_cmd(
             &units,
             &stimuli,
             seeds,
             max_trials,
             auspex_modelling::design::Constraints { warmup_blocks, min_share, max_run },
+            if goal == "decoding" { auspex::offline::steering::Goal::Decoding(accuracy) } else { auspex::offline::steering::Goal::Tuning },
             json,
         ),
         Cmd::Gather { paths, out } => auspex::gather::gather_cmd(&paths, out.as_deref()),

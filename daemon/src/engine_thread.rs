@@ -380,7 +380,9 @@ impl EngineThread {
                 Ok(EngineInput::Control {
                     body: control_request::Body::NextStimulus(n),
                     reply,
-                }) if n.policy.trim() == "find-tuning" => {
+                }) if crate::steering::steered(&n.policy).is_some() => {
+                    let policy = crate::steering::steered(&n.policy)
+                        .unwrap_or(auspex_modelling::design::Policy::FindTuning);
                     // Answered by the steering thread, in this thread's order of trials and
                     // requests (so a choice depends only on the trials before it). Where it was
                     // asked is recorded here, after every message applied before it, so a
@@ -391,7 +393,7 @@ impl EngineThread {
                             let _ = r.send(RecorderMsg::Record(v1::SessionRecord {
                                 received_unix_ns: crate::clock::now_ns(),
                                 choice: Some(Box::new(v1::StimulusChoice {
-                                    policy: "find-tuning".into(),
+                                    policy: policy.name().into(),
                                     reply: None,
                                     ordinal: self.choices_asked,
                                 })),
@@ -402,8 +404,11 @@ impl EngineThread {
                     } else {
                         0
                     };
-                    self.steering
-                        .send(crate::steering::SteerMsg::Next { reply, ordinal });
+                    self.steering.send(crate::steering::SteerMsg::Next {
+                        reply,
+                        ordinal,
+                        policy,
+                    });
                 }
                 Ok(EngineInput::Control { body, reply }) => {
                     let r = self.control(body);

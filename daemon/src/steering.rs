@@ -46,13 +46,25 @@ pub enum SteerMsg {
     Units(Vec<u32>),
     /// The session ended.
     End,
-    /// A `next --policy find-tuning` request.
+    /// A `next --policy find-tuning` or `improve-decoding` request.
     Next {
         /// Where the reply goes.
         reply: oneshot::Sender<ControlReply>,
         /// Its place among the session's requests (0: asked outside a session).
         ordinal: u64,
+        /// Which policy.
+        policy: Policy,
     },
+}
+
+/// The steered policies the engine thread hands to [`Steering`] (the others are answered where
+/// they were before): find-tuning and improve-decoding.
+pub(crate) fn steered(policy: &str) -> Option<Policy> {
+    match policy.trim() {
+        "find-tuning" => Some(Policy::FindTuning),
+        "improve-decoding" => Some(Policy::ImproveDecoding),
+        _ => None,
+    }
 }
 
 /// The engine thread's find-tuning: its design, and the estimator thread's handle.
@@ -155,6 +167,8 @@ struct SessionDesign {
     unit_trials: Vec<u64>,
     /// None: the set is not known yet, or it is over the memory budget (`refused` says why).
     design: Option<Design>,
+    /// improve-decoding's design (the same trials; its own choices and constraints' history).
+    decoding: Option<Design>,
     refused: Option<String>,
     trials: u64,
     choices: u64,
@@ -316,6 +330,7 @@ impl Worker {
                     units,
                     index,
                     design: None,
+                    decoding: None,
                     refused: None,
                     trials: 0,
                     choices: 0,
@@ -346,14 +361,21 @@ impl Worker {
                     if over {
                         s.refused = Self::check(s.units.len(), ns).err();
                         s.design = None;
-                    } else if let Some(d) = s.design.as_mut() {
-                        d.add_units(fresh.len());
+                        s.decoding = None;
+                    } else {
+                        for d in s.design.iter_mut().chain(s.decoding.iter_mut()) {
+                            d.add_units(fresh.len());
+                        }
                     }
                 }
             }
             SteerMsg::End => self.session = None,
-            SteerMsg::Next { reply, ordinal } => {
-                let r = self.next(ordinal);
+            SteerMsg::Next {
+                reply,
+                ordinal,
+                policy,
+            } => {
+                let r = self.next(ordinal, policy);
                 let _ = reply.send(r);
             }
         }
@@ -399,7 +421,7 @@ impl Worker {
         auspex_engine::budget::check(
             "find-tuning's tables",
             || format!("{nu} units × {ns} stimuli"),
-            (nu as u128) * (ns as u128) * 64,
+            (nu as u128) * (ns as u128) * 128,
         )
         .map_err(|e| e.to_string())
     }
@@ -423,6 +445,13 @@ impl Worker {
             ns,
             self.seed,
         ));
+        s.decoding = Some(Design::new(
+            Policy::ImproveDecoding,
+            self.constraints,
+            s.units.len(),
+            ns,
+            self.seed,
+        ));
         for (stimulus, sparse) in std::mem::take(&mut s.early) {
             Self::record(s, &stimulus, &sparse);
         }
@@ -433,19 +462,25 @@ impl Worker {
             s.unknown_stimuli += 1;
             return;
         };
-        let Some(d) = s.design.as_mut() else { return };
+        if s.design.is_none() {
+            return;
+        }
         let mut counts = vec![0u32; s.units.len()];
         for &(i, c) in sparse {
             counts[i] = c;
         }
-        d.record(k as u32, &counts);
+        for d in s.design.iter_mut().chain(s.decoding.iter_mut()) {
+            d.record(k as u32, &counts);
+        }
         for t in &mut s.unit_trials {
             *t += 1;
         }
         s.trials += 1;
     }
 
-    fn next(&mut self, ordinal: u64) -> ControlReply {
+    fn next(&mut self, ordinal: u64, policy: Policy) -> ControlReply {
+        let policy_name = policy.name();
+        let name = policy_name;
         let err = |e: String| ControlReply {
             ok: false,
             error: e,
@@ -453,19 +488,23 @@ impl Worker {
             body: None,
         };
         let Some(s) = self.session.as_mut() else {
-            return err(
-                "find-tuning: no session is running (it starts with the session's SessionStart)"
-                    .into(),
-            );
+            return err(format!(
+                "{name}: no session is running (it starts with the session's SessionStart)"
+            ));
         };
         if let Some(why) = &s.refused {
-            return err(format!("find-tuning: {why}"));
+            return err(format!("{name}: {why}"));
         }
-        let Some(d) = s.design.as_mut() else {
-            return err("find-tuning: no stimulus set to choose from yet — declare it in the session's start message (SessionStart.stimuli), start the daemon with --stimuli A,B,…, or load a model".into());
+        let slot = if policy == Policy::ImproveDecoding {
+            &mut s.decoding
+        } else {
+            &mut s.design
+        };
+        let Some(d) = slot.as_mut() else {
+            return err(format!("{name}: no stimulus set to choose from yet — declare it in the session's start message (SessionStart.stimuli), start the daemon with --stimuli A,B,…, or load a model"));
         };
         if s.units.is_empty() {
-            return err("find-tuning: the session declared no units (SessionStart.units), so there is no tuning to learn".into());
+            return err(format!("{name}: the session declared no units (SessionStart.units), so there are no counts to learn from"));
         }
         let c: Choice = d.choose_explained();
         s.choices += 1;
@@ -546,12 +585,32 @@ impl Worker {
                 )
             }
             (Why::TopTwo { .. }, None) => ("top-two draw".into(), f64::NAN, String::new(), f64::NAN),
+            (Why::Accuracy { gain, now, runner_up }, _) => (
+                format!(
+                    "largest expected gain in decoding accuracy: {:.1}% now, +{:.2} points with this stimulus (runner-up {} +{:.2})",
+                    100.0 * now,
+                    100.0 * gain,
+                    auspex_engine::data::printable(&name(runner_up.0 as usize)),
+                    100.0 * runner_up.1
+                ),
+                f64::NAN,
+                name(runner_up.0 as usize),
+                f64::NAN,
+            ),
+        };
+        let (accuracy, gain, runner_gain) = match c.why {
+            Why::Accuracy {
+                gain,
+                now,
+                runner_up,
+            } => (now, gain, runner_up.1),
+            _ => (f64::NAN, f64::NAN, f64::NAN),
         };
         let as_of = estimate.as_ref().map_or(0, |e| e.at_trials);
         let reply = v1::NextStimulusReply {
             stimulus: name(c.stimulus as usize),
             index: c.stimulus,
-            policy: Policy::FindTuning.name().into(),
+            policy: policy_name.into(),
             reason,
             serves_unit: c.unit.is_some(),
             unit: c.unit.map_or(0, |u| s.units[u]),
@@ -563,13 +622,16 @@ impl Worker {
             units_settled: settled,
             units: s.units.len() as u32,
             choice: s.choices,
+            expected_accuracy: accuracy,
+            expected_gain: gain,
+            runner_up_gain: runner_gain,
         };
         s.last = Some(reply.clone());
         if let Some(r) = &self.recorder {
             let _ = r.send(RecorderMsg::Record(v1::SessionRecord {
                 received_unix_ns: crate::clock::now_ns(),
                 choice: Some(Box::new(v1::StimulusChoice {
-                    policy: Policy::FindTuning.name().into(),
+                    policy: policy_name.into(),
                     reply: Some(reply.clone()),
                     ordinal,
                 })),

@@ -15,6 +15,58 @@ use common::{control, runtime, serial, status, wait_for};
 
 const NS: usize = 16;
 
+/// A daemon with no model, not learning (the counts alone drive the choices), recording to
+/// `record` if given.
+fn config(record: Option<std::path::PathBuf>) -> auspexd::config::DaemonConfig {
+    let mut c = validate(
+        FileConfig {
+            ingest: Some("tcp://127.0.0.1:0".into()),
+            task_ingest: Some("tcp://127.0.0.1:0".into()),
+            publish: Some("tcp://127.0.0.1:0".into()),
+            control: Some("tcp://127.0.0.1:0".into()),
+            record,
+            learn_frozen: Some(true),
+            ..Default::default()
+        },
+        &mut Vec::new(),
+    )
+    .unwrap();
+    c.health_period = Duration::from_millis(200);
+    c
+}
+
+/// Replays a recording into a fresh daemon, asking again at every recorded request's point:
+/// (requests asked, answered as recorded).
+fn replay_choices(rt: &tokio::runtime::Runtime, file: &std::path::Path) -> (usize, usize) {
+    let d2 = rt.block_on(auspexd::service::start(config(None))).unwrap();
+    let ep2 = d2.endpoints.clone();
+    let rec = auspex::wire::read_recording(file).unwrap();
+    let asks = auspex::live::Choices::of(&rec);
+    let (msgs, rate) = rt
+        .block_on(auspex::live::replay_messages(
+            &auspex::live::ReplaySource::Session(file.to_path_buf()),
+            &ep2.control,
+            "replay",
+            false,
+        ))
+        .unwrap();
+    let (_, check) = rt
+        .block_on(auspex::live::replay_asking(
+            &ep2.ingest,
+            &ep2.control,
+            &msgs,
+            "replay",
+            rate,
+            auspex::live::Pace::Max,
+            false,
+            &asks,
+        ))
+        .unwrap();
+    rt.block_on(d2.stop());
+    assert!(check.same == check.asked, "differences: {:?}", check.differ);
+    (check.asked, check.same)
+}
+
 fn next(ctx: &zmq::Context, ep: &str, policy: &str) -> v1::ControlReply {
     control(
         ctx,
@@ -32,23 +84,6 @@ fn find_tuning_learns_each_units_preference_in_closed_loop_from_the_first_trial(
     let ctx = zmq::Context::new();
     let dir = tempfile::tempdir().unwrap();
     let rec = dir.path().join("sessions");
-    let config = |record: Option<std::path::PathBuf>| {
-        let mut c = validate(
-            FileConfig {
-                ingest: Some("tcp://127.0.0.1:0".into()),
-                task_ingest: Some("tcp://127.0.0.1:0".into()),
-                publish: Some("tcp://127.0.0.1:0".into()),
-                control: Some("tcp://127.0.0.1:0".into()),
-                record,
-                learn_frozen: Some(true),
-                ..Default::default()
-            },
-            &mut Vec::new(),
-        )
-        .unwrap();
-        c.health_period = Duration::from_millis(200);
-        c
-    };
     let d = rt
         .block_on(auspexd::service::start(config(Some(rec.clone()))))
         .unwrap();
@@ -141,32 +176,64 @@ fn find_tuning_learns_each_units_preference_in_closed_loop_from_the_first_trial(
 
     // A replay of the recording into a fresh daemon, asking find-tuning again at every recorded
     // request's point, as fast as it goes: every choice is the recorded one.
-    let d2 = rt.block_on(auspexd::service::start(config(None))).unwrap();
-    let ep2 = d2.endpoints.clone();
-    let rec = auspex::wire::read_recording(&file).unwrap();
-    assert_eq!(rec.choices_asked.len() as u64, settled_at);
-    let asks = auspex::live::Choices::of(&rec);
-    let (msgs, rate) = rt
-        .block_on(auspex::live::replay_messages(
-            &auspex::live::ReplaySource::Session(file.clone()),
-            &ep2.control,
-            "replay",
-            false,
-        ))
+    let (asked, _) = replay_choices(&rt, &file);
+    assert_eq!(asked as u64, settled_at);
+}
+
+/// improve-decoding through the daemon: from the first trial, every choice after the warm-up
+/// names the expected decoding accuracy now, the chosen stimulus's expected gain and the
+/// runner-up's (no larger); the constraints hold; a replay asks again and gets every choice.
+#[test]
+fn improve_decoding_explains_its_choices_and_replays() {
+    let _serial = serial();
+    let rt = runtime();
+    let dir = tempfile::tempdir().unwrap();
+    let rec = dir.path().join("sessions");
+    let d = rt
+        .block_on(auspexd::service::start(config(Some(rec.clone()))))
         .unwrap();
-    let (_, check) = rt
-        .block_on(auspex::live::replay_asking(
-            &ep2.ingest,
-            &ep2.control,
-            &msgs,
-            "replay",
-            rate,
-            auspex::live::Pace::Max,
-            false,
-            &asks,
-        ))
-        .unwrap();
-    assert_eq!(check.asked as u64, settled_at);
-    assert_eq!(check.same, check.asked, "differences: {:?}", check.differ);
-    rt.block_on(d2.stop());
+    let ep = d.endpoints.clone();
+    let ns = 8;
+    let play = auspex::live::closed_loop::ThroughDaemon {
+        ingest: ep.ingest.clone(),
+        control: ep.control.clone(),
+        policy: "improve-decoding".into(),
+        units: 4,
+        stimuli: ns,
+        seed: 3,
+        max_trials: 80,
+    };
+    let mut seen = 0u64;
+    let mut accuracies = Vec::new();
+    rt.block_on(auspex::live::closed_loop::run(&play, &mut |n| {
+        seen += 1;
+        assert_eq!(n.policy, "improve-decoding");
+        assert_eq!(n.choice, seen);
+        if seen <= ns as u64 {
+            assert!(n.reason.starts_with("warm-up"), "{}", n.reason);
+        } else if n.reason.starts_with("largest expected gain") {
+            assert!((0.0..=1.0).contains(&n.expected_accuracy), "{n:?}");
+            assert!(n.expected_gain >= n.runner_up_gain, "{n:?}");
+            assert!(
+                !n.runner_up.is_empty() && n.runner_up != n.stimulus,
+                "{n:?}"
+            );
+            accuracies.push(n.expected_accuracy);
+        }
+    }))
+    .unwrap();
+    // (The experiment stops early if the status shows every unit's preference settled.)
+    assert!(seen > 2 * ns as u64, "{seen} choices");
+    assert!(accuracies.len() >= 4, "{} policy choices", accuracies.len());
+    // What it expects of decoding grows as it learns.
+    assert!(accuracies.last() > accuracies.first(), "{accuracies:?}");
+    rt.block_on(d.stop());
+    let file = std::fs::read_dir(&rec)
+        .unwrap()
+        .filter_map(|e| e.ok())
+        .map(|e| e.path())
+        .next()
+        .expect("the session's recording");
+    let (asked, same) = replay_choices(&rt, &file);
+    assert_eq!((asked as u64, same as u64), (seen, seen));
 }

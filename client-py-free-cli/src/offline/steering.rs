@@ -1,9 +1,32 @@
 //! `auspex closed-loop-sim`: simulated experiments in which the stimulus-choice policies pick
 //! every trial's stimulus and simulated units answer, counting the trials until every unit's
-//! preferred stimulus is known (`auspex_modelling::design`). Policies side by side, seeds in
+//! preferred stimulus is known (`--goal tuning`) or until decoding one trial reaches a held-out
+//! accuracy (`--goal decoding`) (`auspex_modelling::design`). Policies side by side, seeds in
 //! parallel on every core, a progress bar.
 
-use auspex_modelling::design::{trials_to_tuning, units_of, Constraints, Policy};
+use auspex_modelling::design::{
+    trials_to_accuracy, trials_to_tuning, units_of, Constraints, Policy,
+};
+
+/// What an experiment runs until.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum Goal {
+    /// Every unit's preferred stimulus known (find-tuning against balanced blocks).
+    Tuning,
+    /// Decoding one trial reaches this held-out accuracy (improve-decoding against balanced
+    /// blocks).
+    Decoding(f64),
+}
+
+impl Goal {
+    /// The two policies compared: balanced blocks, then the goal's own.
+    pub fn policies(self) -> [Policy; 2] {
+        match self {
+            Goal::Tuning => [Policy::BalancedBlocks, Policy::FindTuning],
+            Goal::Decoding(_) => [Policy::BalancedBlocks, Policy::ImproveDecoding],
+        }
+    }
+}
 
 /// Figures of one (units, stimuli) cell for one policy over the seeds.
 #[derive(Clone, Debug, serde::Serialize)]
@@ -32,15 +55,17 @@ impl PolicyFigures {
 }
 
 /// Runs every policy on `seeds` seeds of (nu, ns): trials to the criterion.
+#[allow(clippy::too_many_arguments)]
 pub fn compare(
     nu: usize,
     ns: usize,
     seeds: u64,
     cap: usize,
     constraints: Constraints,
+    goal: Goal,
     tick: &(dyn Fn() + Sync),
 ) -> Vec<PolicyFigures> {
-    [Policy::BalancedBlocks, Policy::FindTuning]
+    goal.policies()
         .iter()
         .map(|&p| {
             let next = std::sync::atomic::AtomicU64::new(0);
@@ -56,10 +81,15 @@ pub fn compare(
                                     break;
                                 }
                                 let units = units_of(s, nu, ns);
-                                mine.push((
-                                    s,
-                                    trials_to_tuning(&units, ns, p, constraints, s, cap),
-                                ));
+                                let t = match goal {
+                                    Goal::Tuning => {
+                                        trials_to_tuning(&units, ns, p, constraints, s, cap)
+                                    }
+                                    Goal::Decoding(a) => {
+                                        trials_to_accuracy(&units, ns, p, constraints, s, cap, a)
+                                    }
+                                };
+                                mine.push((s, t));
                                 tick();
                             }
                             mine
@@ -86,6 +116,7 @@ pub fn closed_loop_cmd(
     seeds: u64,
     cap: usize,
     constraints: Constraints,
+    goal: Goal,
     json: bool,
 ) -> anyhow::Result<()> {
     for &ns in stimuli {
@@ -107,19 +138,29 @@ pub fn closed_loop_cmd(
     let mut rows = Vec::new();
     for &nu in units {
         for &ns in stimuli {
-            let figs = compare(nu, ns, seeds, cap, constraints, &|| bar.inc(1));
+            let figs = compare(nu, ns, seeds, cap, constraints, goal, &|| bar.inc(1));
             rows.push((nu, ns, figs));
         }
     }
     bar.finish_and_clear();
+    let until = match goal {
+        Goal::Tuning => format!(
+            "every unit's preferred stimulus is known (within one neighbour, ≥ {:.0}% posterior probability, and right)",
+            100.0 * auspex_modelling::design::SETTLED
+        ),
+        Goal::Decoding(a) => format!(
+            "decoding one trial from the units' counts reaches {:.0}% accuracy on 40 held-out trials of each stimulus",
+            100.0 * a
+        ),
+    };
     println!(
-        "trials until every unit's preferred stimulus is known (within one neighbour, ≥ {:.0}% posterior probability, and right); {seeds} seeds; cap {cap} trials; warm-up {} block(s), minimum share {}, at most {} in a row",
-        100.0 * auspex_modelling::design::SETTLED,
+        "trials until {until}; {seeds} seeds; cap {cap} trials; warm-up {} block(s), minimum share {}, at most {} in a row",
         constraints.warmup_blocks,
         constraints.min_share,
         constraints.max_run
     );
-    println!("| units × stimuli | balanced-blocks median [90th pct] | find-tuning median [90th pct] | ratio of medians | not reached (b / f) |");
+    let other = goal.policies()[1].name();
+    println!("| units × stimuli | balanced-blocks median [90th pct] | {other} median [90th pct] | ratio of medians | not reached (b / other) |");
     println!("|---|---|---|---|---|");
     for (nu, ns, figs) in &rows {
         let (b, f) = (&figs[0], &figs[1]);
