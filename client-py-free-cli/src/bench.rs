@@ -1095,11 +1095,11 @@ async fn latencies(
     Ok(lats)
 }
 
-/// `next --policy find-tuning` answered while the daemon decodes in real time: a daemon with
+/// `next --policy find-tuning` (and improve-decoding) answered while the daemon decodes in real time: a daemon with
 /// the synthetic model of `size` (its stimuli the set find-tuning chooses from), 1 kHz spike
 /// batches and trials back to back over TCP as in [`latency`], and a task program asking
-/// `next` every 25 ms over control (in turn find-tuning and balanced-blocks); the request's round trip (µs), beside the frames'
-/// latency in the same run.
+/// `next` every 25 ms over control (in turn find-tuning, balanced-blocks and improve-decoding);
+/// the request's round trip (µs), beside the frames' latency in the same run.
 pub async fn next_latency(seconds: f64, size: (usize, usize)) -> anyhow::Result<Vec<Latency>> {
     let dir = tempfile::tempdir()?;
     eprintln!(
@@ -1122,10 +1122,10 @@ pub async fn next_latency(seconds: f64, size: (usize, usize)) -> anyhow::Result<
         use zeromq::{SocketRecv, SocketSend};
         // find-tuning (the steering thread) and balanced-blocks (answered on the engine thread)
         // in turn: the second is the control path's own cost, for reference.
-        let mut rtt = [Vec::new(), Vec::new()];
+        let mut rtt = [Vec::new(), Vec::new(), Vec::new()];
         let mut refused = Vec::new();
         let t0 = Instant::now();
-        let asks: Vec<Vec<u8>> = ["find-tuning", "balanced-blocks"]
+        let asks: Vec<Vec<u8>> = ["find-tuning", "balanced-blocks", "improve-decoding"]
             .iter()
             .map(|p| {
                 v1::ControlRequest {
@@ -1141,7 +1141,7 @@ pub async fn next_latency(seconds: f64, size: (usize, usize)) -> anyhow::Result<
         tokio::time::sleep(Duration::from_millis(500)).await;
         while t0.elapsed().as_secs_f64() < seconds - 0.5 {
             let t = Instant::now();
-            turn = 1 - turn;
+            turn = (turn + 1) % 3;
             if let Err(e) = req
                 .send(zeromq::ZmqMessage::from(bytes::Bytes::from(
                     asks[turn].clone(),
@@ -1180,10 +1180,11 @@ pub async fn next_latency(seconds: f64, size: (usize, usize)) -> anyhow::Result<
     if let Some(e) = refused.first() {
         anyhow::bail!("{} of the `next` requests were refused: {e}", refused.len());
     }
-    let [find, blocks] = rtt;
+    let [find, blocks, decoding] = rtt;
     let f = summarise("tcp frames", frames, n_batches);
     let n = summarise("next find-tuning round trip", find, n_batches);
     let b = summarise("next balanced-blocks round trip", blocks, n_batches);
+    let d = summarise("next improve-decoding round trip", decoding, n_batches);
     println!(
         "`next --policy find-tuning` round trip: p50 {:.0} µs, p99 {:.0} µs, worst {:.0} µs ({} requests; {choices} choices made)",
         n.p50_us, n.p99_us, n.max_us, n.frames
@@ -1193,10 +1194,15 @@ pub async fn next_latency(seconds: f64, size: (usize, usize)) -> anyhow::Result<
         b.p50_us, b.p99_us, b.max_us, b.frames
     );
     println!(
+        "`next --policy improve-decoding` in turn: p50 {:.0} µs, p99 {:.0} µs, worst {:.0} µs ({} requests)",
+        d.p50_us, d.p99_us, d.max_us, d.frames
+    );
+    println!(
         "batch → posterior frame in the same run: p50 {:.0} µs, p99 {:.0} µs, worst {:.0} µs",
         f.p50_us, f.p99_us, f.max_us
     );
-    Ok(vec![f, n, b])
+    println!("real-time mode: {}", auspexd::realtime::summary());
+    Ok(vec![f, n, b, d])
 }
 
 /// Batch → posterior latency over TCP loopback of one whole daemon and of `shards` shards + a

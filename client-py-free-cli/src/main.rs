@@ -448,8 +448,9 @@ enum Cmd {
         /// One latency run over this transport, printed as JSON (what --under-load runs in each child)
         #[arg(long, hide = true, value_parser = ["tcp", "ipc"])]
         latency_once: Option<String>,
-        /// With --latency-once: in real-time mode
-        #[arg(long, hide = true)]
+        /// With --next: the daemon in real-time mode (auspexd --realtime, with --realtime-priority
+        /// and --realtime-cpus), as a rig runs it on a busy machine
+        #[arg(long)]
         realtime: bool,
         /// Be a competing load until killed (what --under-load starts)
         #[arg(long, hide = true, value_parser = ["cpu", "memory"])]
@@ -830,7 +831,17 @@ fn main() {
             }
             Ok(())
         })(),
-        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, learning, thread_scaling, threads, shards, table_memory_mb, next, .. } => auspexd::service::io_runtime().map_err(anyhow::Error::from).and_then(|rt| {
+        Cmd::Bench { seconds, units, stimuli, json, model, decoder, no_latency, learning, thread_scaling, threads, shards, table_memory_mb, next, realtime, realtime_priority, realtime_cpus, .. } => (|| {
+            if realtime {
+                if !next {
+                    anyhow::bail!("--realtime goes with --next (--under-load runs both modes itself)");
+                }
+                let plan = auspexd::realtime::Plan { priority: realtime_priority, cpus: realtime_cpus };
+                plan.check().map_err(anyhow::Error::msg)?;
+                auspexd::realtime::configure(plan);
+            }
+            Ok(())
+        })().and_then(|()| auspexd::service::io_runtime().map_err(anyhow::Error::from)).and_then(|rt| {
             rt.block_on(async {
                 if !(seconds > 0.0 && units > 0 && stimuli > 1) {
                     anyhow::bail!("--seconds must be > 0, --units ≥ 1 and --stimuli ≥ 2");

@@ -107,6 +107,7 @@ impl Steering {
                 estimates,
                 slot,
                 epoch: 0,
+                pending: None,
             },
             estimator: Some(estimator),
         })
@@ -190,6 +191,8 @@ struct Snapshot {
 struct Estimates {
     epoch: u64,
     units: Vec<Option<UnitEstimate>>,
+    /// improve-decoding's gains as of this many trials: (trials, expected accuracy, gains).
+    gains: Option<(u64, f64, Vec<f64>)>,
 }
 
 /// One unit's estimate: each stimulus's probability of being its preferred one, the most
@@ -233,6 +236,18 @@ fn estimate(slot: SnapshotSlot, out: Arc<Mutex<Estimates>>, seed: u64) {
         if snap.epoch != epoch {
             (cursor, epoch) = (0, snap.epoch);
         }
+        // improve-decoding's gains first (a function of the counts alone, which both designs
+        // share): a request after this trial then finds them ready instead of computing them
+        // on the engine thread.
+        let (now, gains) = snap.design.decoding_gains();
+        {
+            let mut e = out.lock().expect("steering estimates");
+            if e.epoch != snap.epoch {
+                e.epoch = snap.epoch;
+                e.units.clear();
+            }
+            e.gains = Some((snap.trials, now, gains));
+        }
         for k in 0..n {
             let u = (cursor + k) % n;
             match take(false) {
@@ -275,6 +290,8 @@ struct Worker {
     slot: SnapshotSlot,
     /// Sessions started (the estimates' epoch).
     epoch: u64,
+    /// A snapshot not yet handed over because the estimator held the slot at that moment.
+    pending: Option<Snapshot>,
 }
 
 impl Worker {
@@ -289,12 +306,23 @@ impl Worker {
             trials: s.trials,
             design: d.clone(),
         };
-        // Never waits: a snapshot the estimator has not taken yet is replaced.
+        self.pending = Some(snap);
+        self.hand_over();
+    }
+
+    /// Hands over the pending snapshot if the slot is free this instant. Never waits: the
+    /// estimator runs at lowered priority, and waiting for a lock it holds could hold this
+    /// (real-time) thread up for a scheduler's time slice; a snapshot not taken yet is
+    /// replaced, one not handed over is tried again at the next trial or request.
+    fn hand_over(&mut self) {
         let (lock, cv) = &*self.slot;
-        if let Ok(mut g) = lock.lock() {
-            g.latest = Some(snap);
+        if let Ok(mut g) = lock.try_lock() {
+            if let Some(snap) = self.pending.take() {
+                g.latest = Some(snap);
+                drop(g);
+                cv.notify_one();
+            }
         }
-        cv.notify_one();
     }
 
     /// The estimates of the current session (none yet: empty).
@@ -479,6 +507,7 @@ impl Worker {
     }
 
     fn next(&mut self, ordinal: u64, policy: Policy) -> ControlReply {
+        self.hand_over();
         let policy_name = policy.name();
         let name = policy_name;
         let err = |e: String| ControlReply {
@@ -506,22 +535,32 @@ impl Worker {
         if s.units.is_empty() {
             return err(format!("{name}: the session declared no units (SessionStart.units), so there are no counts to learn from"));
         }
-        let c: Choice = d.choose_explained();
+        // improve-decoding's gains for these very counts, if the estimator has them (else the
+        // choice computes them here: the same numbers either way).
+        let ready = (policy == Policy::ImproveDecoding)
+            .then(|| match self.estimates.try_lock() {
+                Ok(e) if e.epoch == self.epoch => e
+                    .gains
+                    .as_ref()
+                    .filter(|g| g.0 == s.trials)
+                    .map(|g| (g.1, g.2.clone())),
+                _ => None,
+            })
+            .flatten();
+        let c: Choice = d.choose_explained_given(ready);
         s.choices += 1;
         // Only the served unit's figures and the count of settled units (no copy of the rest).
-        let (estimate, settled) = {
-            let e = self.estimates.lock().expect("steering estimates");
-            if e.epoch == self.epoch {
-                (
-                    c.unit.and_then(|u| e.units.get(u).cloned().flatten()),
-                    e.units
-                        .iter()
-                        .filter(|x| x.as_ref().is_some_and(|x| x.settled >= SETTLED))
-                        .count() as u32,
-                )
-            } else {
-                (None, 0)
-            }
+        // The background figures are read only if the estimator is not writing them this
+        // instant (never waiting for a lower-priority thread); else the reply goes without.
+        let (estimate, settled) = match self.estimates.try_lock() {
+            Ok(e) if e.epoch == self.epoch => (
+                c.unit.and_then(|u| e.units.get(u).cloned().flatten()),
+                e.units
+                    .iter()
+                    .filter(|x| x.as_ref().is_some_and(|x| x.settled >= SETTLED))
+                    .count() as u32,
+            ),
+            _ => (None, 0),
         };
         let name = |i: usize| s.stimuli.get(i).cloned().unwrap_or_default();
         let (reason, p, runner, runner_p) = match (c.why, c.unit) {

@@ -22,6 +22,8 @@ use statrs::distribution::{Gamma, Poisson};
 pub const SETTLED: f64 = 0.95;
 /// Posterior draws per settledness check.
 const DRAWS: usize = 400;
+/// Redraws for top-two sampling's challenger before the first draw's best is kept.
+const CHALLENGER_DRAWS: usize = 12;
 
 /// The policies.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -333,6 +335,13 @@ impl Design {
 
     /// The next stimulus, every constraint honoured, and why it was chosen.
     pub fn choose_explained(&mut self) -> Choice {
+        self.choose_explained_given(None)
+    }
+
+    /// [`Design::choose_explained`], with improve-decoding's [`Design::decoding_gains`] already
+    /// computed for the design's present counts (by another thread, from a copy): the same
+    /// choice, without the stimuli² × units pass on the caller's thread.
+    pub fn choose_explained_given(&mut self, gains: Option<(f64, Vec<f64>)>) -> Choice {
         let t = self.history.len();
         let warm = self.constraints.warmup_blocks * self.ns;
         let (choice, why, unit) = if self.policy == Policy::BalancedBlocks {
@@ -342,7 +351,9 @@ impl Design {
         } else if let Some(s) = self.owed() {
             (s, Why::Owed, None)
         } else if self.policy == Policy::ImproveDecoding {
-            let (now, gains) = self.decoding_gains();
+            let (now, gains) = gains
+                .filter(|g| g.1.len() == self.ns)
+                .unwrap_or_else(|| self.decoding_gains());
             let mut order: Vec<usize> = (0..self.ns).collect();
             // Largest gain first; ties (no gain anywhere) go to the least shown.
             order.sort_by(|&a, &b| {
@@ -423,8 +434,11 @@ impl Design {
         // The challenger: the best of a draw that disagrees with the first about the preferred
         // stimulus's neighbourhood (the criterion is "within one neighbour", so a neighbour of
         // the first is no rival worth a trial).
+        // At most CHALLENGER_DRAWS redraws: when the unit's posterior leaves almost no chance
+        // outside the first's neighbourhood there is no challenger worth a trial, and drawing
+        // on would only cost the engine thread time (each draw samples every stimulus).
         let near = neighbours(first, self.ns);
-        for _ in 0..100 {
+        for _ in 0..CHALLENGER_DRAWS {
             let second = self.draw_argmax(&post);
             if !near.contains(&second) {
                 return (second as u32, target, false);
@@ -465,51 +479,73 @@ impl Design {
     /// every v_us to m_us / (β_us + 1/f_u) (the conjugate update with its expected count); the
     /// gain is the accuracy after that minus the accuracy now. Cost: stimuli² × units.
     pub fn decoding_gains(&self) -> (f64, Vec<f64>) {
-        let ns = self.ns;
-        let pred = self.predictive();
+        let (ns, nu) = (self.ns, self.stats.len());
+        // Flat [stimulus][unit] tables: mean, variance of the mean now, and after one more
+        // trial of that stimulus; the units' Fano factors.
+        let (mut m, mut v, mut w) = (vec![0.0; ns * nu], vec![0.0; ns * nu], vec![0.0; ns * nu]);
+        let mut f = vec![1.0; nu];
+        for (u, (post, fu)) in self.predictive().into_iter().enumerate() {
+            f[u] = fu;
+            for (s, (mean, var, rate)) in post.into_iter().enumerate() {
+                m[s * nu + u] = mean;
+                v[s * nu + u] = var;
+                w[s * nu + u] = mean / (rate + 1.0 / fu);
+            }
+        }
         let phi = |d2: f64| {
             0.5 * statrs::function::erf::erfc(d2.max(0.0).sqrt() / 2.0 / std::f64::consts::SQRT_2)
         };
-        let d2 = |s: usize, t: usize, shrink: Option<usize>| -> f64 {
-            let mut acc = 0.0;
-            for (p, f) in &pred {
-                let (ms, mut vs, bs) = p[s];
-                let (mt, mut vt, bt) = p[t];
-                if shrink == Some(s) {
-                    vs = ms / (bs + 1.0 / f);
+        // err[s][t]: P(a trial of s is taken for t) now; after[s][t]: the same after one more
+        // trial of s (which also changes err[t][s] to after[s][t]: the pair's error is symmetric).
+        let mut err = vec![0.0; ns * ns];
+        let mut after = vec![0.0; ns * ns];
+        let row = |s: usize| s * nu..s * nu + nu;
+        for s in 0..ns {
+            let (ms, vs, ws) = (&m[row(s)], &v[row(s)], &w[row(s)]);
+            for t in s + 1..ns {
+                let (mt, vt, wt) = (&m[row(t)], &v[row(t)], &w[row(t)]);
+                let mut d0 = 0.0;
+                for u in 0..nu {
+                    let dm = ms[u] - mt[u];
+                    d0 += dm * dm / (f[u] * (ms[u] + mt[u]) / 2.0 + vs[u] + vt[u]).max(1e-12);
                 }
-                if shrink == Some(t) {
-                    vt = mt / (bt + 1.0 / f);
+                let e = phi(d0);
+                err[s * ns + t] = e;
+                err[t * ns + s] = e;
+                if e < 1e-7 {
+                    // Pairs already told apart: one more trial changes nothing worth a choice.
+                    after[s * ns + t] = e;
+                    after[t * ns + s] = e;
+                    continue;
                 }
-                let dm = ms - mt;
-                acc += dm * dm / (f * (ms + mt) / 2.0 + vs + vt).max(1e-12);
+                let (mut ds, mut dt) = (0.0, 0.0);
+                for u in 0..nu {
+                    let dm = ms[u] - mt[u];
+                    let noise = f[u] * (ms[u] + mt[u]) / 2.0;
+                    ds += dm * dm / (noise + ws[u] + vt[u]).max(1e-12);
+                    dt += dm * dm / (noise + vs[u] + wt[u]).max(1e-12);
+                }
+                after[s * ns + t] = phi(ds);
+                after[t * ns + s] = phi(dt);
             }
-            acc
-        };
-        // The pairwise errors, symmetric: each computed once.
-        let upper: Vec<Vec<f64>> = (0..ns)
-            .map(|s| (0..ns).map(|t| if t > s { phi(d2(s, t, None)) } else { 0.0 }).collect())
+        }
+        let rows: Vec<f64> = (0..ns)
+            .map(|s| err[s * ns..s * ns + ns].iter().sum())
             .collect();
-        let err: Vec<Vec<f64>> = (0..ns)
-            .map(|s| (0..ns).map(|t| if t > s { upper[s][t] } else { upper[t][s] }).collect())
-            .collect();
-        let rows: Vec<f64> = err.iter().map(|r| r.iter().sum()).collect();
         let accuracy =
             |rows: &[f64]| 1.0 - rows.iter().map(|r| r.min(1.0)).sum::<f64>() / ns as f64;
         let now = accuracy(&rows);
+        let mut next = rows.clone();
         let gains = (0..ns)
             .map(|s| {
-                let mut after = rows.clone();
-                after[s] = 0.0;
-                for t in 0..ns {
-                    if t == s {
-                        continue;
-                    }
-                    let e = phi(d2(s, t, Some(s)));
-                    after[s] += e;
-                    after[t] += e - err[t][s];
+                next.copy_from_slice(&rows);
+                next[s] = 0.0;
+                for t in (0..ns).filter(|&t| t != s) {
+                    let e = after[s * ns + t];
+                    next[s] += e;
+                    next[t] += e - err[t * ns + s];
                 }
-                accuracy(&after) - now
+                accuracy(&next) - now
             })
             .collect();
         (now, gains)
@@ -810,6 +846,27 @@ mod tests {
             (mc - predicted).abs() < 0.005,
             "Monte Carlo {mc} vs Φ(−D/2) {predicted}"
         );
+    }
+
+    /// Gains computed elsewhere from a copy (the daemon's estimator thread) give the very choices
+    /// the design makes computing them itself.
+    #[test]
+    fn precomputed_gains_choose_the_same() {
+        let units = units_of(4, 6, 8);
+        let mut rng = ChaCha8Rng::seed_from_u64(9);
+        let mut a = Design::new(Policy::ImproveDecoding, Constraints::default(), 6, 8, 2);
+        let mut b = a.clone();
+        for _ in 0..200 {
+            let gains = b.clone().decoding_gains();
+            let (x, y) = (a.choose_explained(), b.choose_explained_given(Some(gains)));
+            assert_eq!((x.stimulus, x.why), (y.stimulus, y.why));
+            let counts: Vec<u32> = units
+                .iter()
+                .map(|u| u.draw(x.stimulus as usize, 8, &mut rng))
+                .collect();
+            a.record(x.stimulus, &counts);
+            b.record(y.stimulus, &counts);
+        }
     }
 
     proptest! {
