@@ -936,7 +936,7 @@ fn main() {
                 let (took, check) = auspex::live::replay_asking(&to, &control, &msgs, &sender, rate, pace, std::io::stderr().is_terminal(), &choices).await?;
                 eprintln!("sent {} messages in {:.2} s; the daemon acknowledged the last one", msgs.len(), took.as_secs_f64());
                 if check.asked > 0 {
-                    eprintln!("find-tuning asked again at the recording's {} requests: {} answered as recorded", check.asked, check.same);
+                    eprintln!("next asked again at the recording's {} find-tuning and improve-decoding requests: {} answered as recorded", check.asked, check.same);
                     if check.same < check.asked {
                         for (n, want, got) in &check.differ {
                             eprintln!("  request {n}: recorded {want}, now {got}");

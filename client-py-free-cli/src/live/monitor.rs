@@ -927,14 +927,21 @@ pub fn policy_line(s: &v1::Status) -> String {
     out
 }
 
-/// find-tuning's state in one short part (empty before its first choice): the monitor's
-/// footer and `auspex status`.
+/// The steered policies' state in one short part (empty before their first choice): the
+/// monitor's footer and `auspex status` — find-tuning's settled units, or improve-decoding's
+/// expected accuracy after its last choice.
 pub fn steering_part(s: &v1::Status) -> String {
     let Some(st) = s.steering.as_ref().filter(|st| st.choices > 0) else {
         return String::new();
     };
     let settled = st.units.iter().filter(|u| u.settled >= 0.95).count();
-    let mut out = format!("find-tuning {settled}/{} tuned", st.units.len());
+    let mut out = match &st.last {
+        Some(l) if l.policy == "improve-decoding" && l.expected_accuracy.is_finite() => format!(
+            "improve-decoding ~{:.0}% expected",
+            100.0 * l.expected_accuracy
+        ),
+        _ => format!("find-tuning {settled}/{} tuned", st.units.len()),
+    };
     if let Some(l) = &st.last {
         out += &format!(", chose {}", printable(&l.stimulus));
         if l.serves_unit {
@@ -951,7 +958,7 @@ pub fn steering_lines(s: &v1::Status) -> Vec<String> {
         return Vec::new();
     };
     let mut out = vec![format!(
-        "find-tuning: {} stimuli ({}) · {} trials recorded · {} choices · warm-up {} block(s), minimum share {}, at most {} in a row, seed {}{}",
+        "steering (find-tuning, improve-decoding): {} stimuli ({}) · {} trials recorded · {} choices · warm-up {} block(s), minimum share {}, at most {} in a row, seed {}{}",
         st.stimuli.len(),
         if st.stimuli_from.is_empty() { "set not known yet" } else { &st.stimuli_from },
         st.trials,

@@ -103,6 +103,10 @@ pub fn next_reason(n: &v1::NextStimulusReply) -> Option<String> {
         }
         line += &format!(" (as of trial {})", n.as_of_trials);
     }
+    if n.policy == "improve-decoding" {
+        // Its reason already carries the expected accuracy and the gains.
+        return Some(line);
+    }
     line += &format!(" · {}/{} units settled", n.units_settled, n.units);
     Some(line)
 }

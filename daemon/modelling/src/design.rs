@@ -474,8 +474,9 @@ impl Design {
     /// m_ut)² / (f_u (m_us + m_ut)/2 + v_us + v_ut): each unit's count is approximately normal
     /// with its predictive variance — the counts' own (Fano f_u times the mean) plus what is
     /// not yet known about the means (v, the Gamma posterior's variance), as a Bayesian decoder
-    /// with these posteriors would see them. A stimulus's error is the sum over its rivals (a
-    /// union bound, at most 1); the accuracy is 1 − the mean error. One more trial of s shrinks
+    /// with these posteriors would see them. A stimulus is decoded right when it is taken for
+    /// none of its rivals, Π_t (1 − error(s, t)) (pairs treated as independent); the accuracy
+    /// is the mean of that over stimuli. One more trial of s shrinks
     /// every v_us to m_us / (β_us + 1/f_u) (the conjugate update with its expected count); the
     /// gain is the accuracy after that minus the accuracy now. Cost: stimuli² × units.
     pub fn decoding_gains(&self) -> (f64, Vec<f64>) {
@@ -529,11 +530,19 @@ impl Design {
                 after[t * ns + s] = phi(dt);
             }
         }
+        // A trial of s is decoded right when it is taken for none of its rivals: per stimulus,
+        // the sum over rivals of ln(1 − error) (each pair's error treated as independent of
+        // the others'; a sum of errors would pass 1 with many close rivals and stop moving).
+        let ln_ok = |e: f64| (1.0 - e).max(1e-300).ln();
         let rows: Vec<f64> = (0..ns)
-            .map(|s| err[s * ns..s * ns + ns].iter().sum())
+            .map(|s| {
+                (0..ns)
+                    .filter(|&t| t != s)
+                    .map(|t| ln_ok(err[s * ns + t]))
+                    .sum()
+            })
             .collect();
-        let accuracy =
-            |rows: &[f64]| 1.0 - rows.iter().map(|r| r.min(1.0)).sum::<f64>() / ns as f64;
+        let accuracy = |rows: &[f64]| rows.iter().map(|r| r.exp()).sum::<f64>() / ns as f64;
         let now = accuracy(&rows);
         let mut next = rows.clone();
         let gains = (0..ns)
@@ -542,8 +551,8 @@ impl Design {
                 next[s] = 0.0;
                 for t in (0..ns).filter(|&t| t != s) {
                     let e = after[s * ns + t];
-                    next[s] += e;
-                    next[t] += e - err[t * ns + s];
+                    next[s] += ln_ok(e);
+                    next[t] += ln_ok(e) - ln_ok(err[t * ns + s]);
                 }
                 accuracy(&next) - now
             })
