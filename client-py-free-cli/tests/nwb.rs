@@ -4,22 +4,16 @@
 //! and `validate` give the same results; `inspect --nwb` shows what the options can choose.
 
 use std::path::{Path, PathBuf};
-use std::process::Command;
 
 fn nwb_dir() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("../tests/nwb")
 }
 
+mod common;
+
+/// The real binary (every path given is absolute).
 fn auspex(args: &[&str]) -> (bool, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_auspex"))
-        .args(args)
-        .output()
-        .unwrap();
-    (
-        out.status.success(),
-        String::from_utf8_lossy(&out.stdout).into_owned(),
-        String::from_utf8_lossy(&out.stderr).into_owned(),
-    )
+    common::auspex(Path::new(env!("CARGO_MANIFEST_DIR")), args)
 }
 
 /// A model file's bytes with its training-data field (the source's name) cleared.

@@ -688,23 +688,36 @@ pub fn trials_to_tuning(
     seed: u64,
     max_trials: usize,
 ) -> Option<usize> {
+    play(units, ns, policy, constraints, seed, max_trials, |d| {
+        d.all_settled().is_some_and(|modes| {
+            units
+                .iter()
+                .zip(&modes)
+                .all(|(u, &m)| neighbours(u.preferred, ns).contains(&m))
+        })
+    })
+}
+
+/// Plays `units` against `policy` for up to `max_trials` trials: the first trial after which
+/// `done` holds (checked every trial for the first four blocks, then every four: checking may
+/// cost draws).
+fn play(
+    units: &[TunedUnit],
+    ns: usize,
+    policy: Policy,
+    constraints: Constraints,
+    seed: u64,
+    max_trials: usize,
+    mut done: impl FnMut(&mut Design) -> bool,
+) -> Option<usize> {
     let mut d = Design::new(policy, constraints, units.len(), ns, seed);
     let mut world = ChaCha8Rng::seed_from_u64(seed ^ 0x005e_ed0f_7e57);
     for t in 1..=max_trials {
         let s = d.choose() as usize;
         let counts: Vec<u32> = units.iter().map(|u| u.draw(s, ns, &mut world)).collect();
         d.record(s as u32, &counts);
-        // Checking costs draws: every trial early, then every few.
-        if t >= ns && (t < 4 * ns || t % 4 == 0) {
-            if let Some(modes) = d.all_settled() {
-                let right = units
-                    .iter()
-                    .zip(&modes)
-                    .all(|(u, &m)| neighbours(u.preferred, ns).contains(&m));
-                if right {
-                    return Some(t);
-                }
-            }
+        if t >= ns && (t < 4 * ns || t % 4 == 0) && done(&mut d) {
+            return Some(t);
         }
     }
     None
@@ -762,17 +775,9 @@ pub fn trials_to_accuracy(
             )
         })
         .collect();
-    let mut d = Design::new(policy, constraints, units.len(), ns, seed);
-    let mut world = ChaCha8Rng::seed_from_u64(seed ^ 0x005e_ed0f_7e57);
-    for t in 1..=max_trials {
-        let s = d.choose() as usize;
-        let counts: Vec<u32> = units.iter().map(|u| u.draw(s, ns, &mut world)).collect();
-        d.record(s as u32, &counts);
-        if t >= ns && (t < 4 * ns || t % 4 == 0) && held_out_accuracy(&d, &test) >= target {
-            return Some(t);
-        }
-    }
-    None
+    play(units, ns, policy, constraints, seed, max_trials, |d| {
+        held_out_accuracy(d, &test) >= target
+    })
 }
 
 #[cfg(test)]
