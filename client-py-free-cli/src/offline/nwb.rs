@@ -1022,7 +1022,7 @@ impl Nwb {
                 .map(|i| format!(" `{}`", printable(&i)))
                 .unwrap_or_default(),
             start
-                .map(|t| format!(", session start {}", printable(&t)))
+                .map(|t| format!("\n  session start {}", printable(&t)))
                 .unwrap_or_default()
         );
         let mut tables = self.time_interval_tables()?;
@@ -1105,24 +1105,46 @@ impl Nwb {
                     crate::counted(counts.len() as u64, "unit", "units"),
                     total
                 );
-                let shown: Vec<String> = counts
+                let mut shown: Vec<String> = counts
                     .iter()
                     .take(40)
                     .map(|(u, n)| format!("{u}: {n}"))
                     .collect();
-                let _ = writeln!(
-                    s,
-                    "  {}{}",
-                    shown.join(", "),
-                    if counts.len() > 40 {
-                        format!(", … {} more", counts.len() - 40)
+                if counts.len() > 40 {
+                    shown.push(format!("… {} more", counts.len() - 40));
+                }
+                // Wrapped to fit 80 columns.
+                let mut line = String::from(" ");
+                for (i, x) in shown.iter().enumerate() {
+                    let piece = if i + 1 < shown.len() {
+                        format!(" {x},")
                     } else {
-                        String::new()
+                        format!(" {x}")
+                    };
+                    if line.len() + piece.len() > 78 {
+                        let _ = writeln!(s, "{line}");
+                        line = String::from(" ");
                     }
-                );
+                    line += &piece;
+                }
+                let _ = writeln!(s, "{line}");
             }
         }
         Ok(s)
+    }
+}
+
+/// `x` to 6 significant digits, without trailing zeros.
+fn short_number(x: f64) -> String {
+    if x == 0.0 || !(1e-4..1e7).contains(&x.abs()) {
+        return format!("{x:.6e}");
+    }
+    let decimals = (5 - x.abs().log10().floor() as i32).max(0) as usize;
+    let t = format!("{x:.decimals$}");
+    if t.contains('.') {
+        t.trim_end_matches('0').trim_end_matches('.').to_string()
+    } else {
+        t
     }
 }
 
@@ -1135,7 +1157,11 @@ fn examples(c: &Column) -> String {
     }
     let first: Vec<String> = (0..n.min(3))
         .map(|i| {
-            let t = c.text(i).unwrap_or_else(|| "(none)".into());
+            // Numbers shown to 6 significant digits (an example, not the value read).
+            let t = match c {
+                Column::Float(v) if v[i].is_finite() => short_number(v[i]),
+                _ => c.text(i).unwrap_or_else(|| "(none)".into()),
+            };
             let t = printable(&t).into_owned();
             if t.chars().count() > 24 {
                 format!("{}…", t.chars().take(24).collect::<String>())
