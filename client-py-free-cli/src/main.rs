@@ -465,7 +465,8 @@ enum Cmd {
         #[arg(long, short)]
         out: Option<PathBuf>,
     },
-    /// Write a model as interchange JSON (the numbers the engine uses)
+    /// Write a model as interchange JSON (the numbers the engine uses), or a recorded session as
+    /// an NWB file (--nwb OUT --session REC [--model M])
     Export {
         /// Model file (with --nwb: decode the session with it, so each trial's decision and the
         /// per-bin posterior go into the file)
@@ -483,7 +484,7 @@ enum Cmd {
         #[command(flatten)]
         opts: DecodeOpts,
     },
-    /// Print a model file's per-cell summary
+    /// Print a model file's per-cell summary, or an NWB file's tables, columns and units (--nwb)
     Inspect {
         /// Model file (`auspex inspect today.apxm` or `--model today.apxm`)
         #[arg(value_name = "MODEL", required_unless_present_any = ["model", "nwb"])]
