@@ -626,7 +626,7 @@ impl Worker {
             (Why::TopTwo { .. }, None) => ("top-two draw".into(), f64::NAN, String::new(), f64::NAN),
             (Why::Accuracy { gain, now, runner_up }, _) => (
                 format!(
-                    "largest expected gain in decoding accuracy: {:.1}% now, +{:.2} points with this stimulus (runner-up {} +{:.2})",
+                    "largest expected gain in decoding accuracy: {:.1}% now, +{:.3} points with this stimulus (runner-up {} +{:.3})",
                     100.0 * now,
                     100.0 * gain,
                     auspex_engine::data::printable(&name(runner_up.0 as usize)),
