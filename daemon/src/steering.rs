@@ -508,8 +508,7 @@ impl Worker {
 
     fn next(&mut self, ordinal: u64, policy: Policy) -> ControlReply {
         self.hand_over();
-        let policy_name = policy.name();
-        let name = policy_name;
+        let (policy_name, name) = (policy.name(), policy.name());
         let err = |e: String| ControlReply {
             ok: false,
             error: e,

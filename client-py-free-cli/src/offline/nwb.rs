@@ -930,10 +930,9 @@ impl Nwb {
                 if !keep.get(r).copied().unwrap_or(false) || spans.is_empty() {
                     continue;
                 }
-                for (k, (a, b)) in spans.iter().enumerate() {
-                    self.check_seconds(path, r, "obs_intervals", *a, tick_rate_hz)?;
-                    self.check_seconds(path, r, "obs_intervals", *b, tick_rate_hz)?;
-                    let _ = k;
+                for &(a, b) in spans {
+                    self.check_seconds(path, r, "obs_intervals", a, tick_rate_hz)?;
+                    self.check_seconds(path, r, "obs_intervals", b, tick_rate_hz)?;
                 }
                 let from = seconds_to_ticks(spans[0].0, tick_rate_hz);
                 if from > first_onset {

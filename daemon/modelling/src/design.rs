@@ -884,6 +884,34 @@ mod tests {
     }
 
     proptest! {
+        /// improve-decoding's figures stay in their bounds (expected accuracy in [0, 1], a gain
+        /// no larger than what is left to gain) and do not depend on the order the stimuli are
+        /// listed in: relabelling the stimuli relabels the gains, the accuracy is unchanged.
+        #[test]
+        fn decoding_gains_are_bounded_and_order_free(
+            ns in 2usize..7,
+            nu in 1usize..4,
+            trials in proptest::collection::vec((0usize..7, proptest::collection::vec(0u32..15, 3)), 0..40),
+            shift in 1usize..7,
+        ) {
+            let relabel = |s: usize| (s + shift) % ns;
+            let mut a = Design::new(Policy::ImproveDecoding, Constraints::default(), nu, ns, 1);
+            let mut b = a.clone();
+            for (s, counts) in &trials {
+                let s = s % ns;
+                a.record(s as u32, &counts[..nu]);
+                b.record(relabel(s) as u32, &counts[..nu]);
+            }
+            let (acc_a, gains_a) = a.decoding_gains();
+            let (acc_b, gains_b) = b.decoding_gains();
+            prop_assert!((0.0..=1.0).contains(&acc_a), "accuracy {}", acc_a);
+            prop_assert!((acc_a - acc_b).abs() < 1e-9, "{} vs {}", acc_a, acc_b);
+            for s in 0..ns {
+                prop_assert!(gains_a[s] >= -1e-12 && acc_a + gains_a[s] <= 1.0 + 1e-12, "gain {}", gains_a[s]);
+                prop_assert!((gains_a[s] - gains_b[relabel(s)]).abs() < 1e-9);
+            }
+        }
+
         /// Every policy honours the constraints whatever the counts: whole blocks first, no
         /// stimulus more than max_run in a row, none below its minimum share after warm-up
         /// (by more than the one trial a choice can owe).
