@@ -170,6 +170,8 @@ struct SessionDesign {
     design: Option<Design>,
     /// improve-decoding's design (the same trials; its own choices and constraints' history).
     decoding: Option<Design>,
+    /// improve-decoding has been asked this session.
+    decoding_asked: bool,
     refused: Option<String>,
     trials: u64,
     choices: u64,
@@ -184,6 +186,8 @@ struct Snapshot {
     epoch: u64,
     trials: u64,
     design: Design,
+    /// improve-decoding has been asked this session: its gains are worth computing ahead.
+    decoding: bool,
 }
 
 /// The estimator's latest figures per unit, for session `epoch`.
@@ -238,9 +242,9 @@ fn estimate(slot: SnapshotSlot, out: Arc<Mutex<Estimates>>, seed: u64) {
         }
         // improve-decoding's gains first (a function of the counts alone, which both designs
         // share): a request after this trial then finds them ready instead of computing them
-        // on the engine thread.
-        let (now, gains) = snap.design.decoding_gains();
-        {
+        // on the engine thread. Only once the session has asked for it.
+        if snap.decoding {
+            let (now, gains) = snap.design.decoding_gains();
             let mut e = out.lock().expect("steering estimates");
             if e.epoch != snap.epoch {
                 e.epoch = snap.epoch;
@@ -305,6 +309,7 @@ impl Worker {
             epoch: self.epoch,
             trials: s.trials,
             design: d.clone(),
+            decoding: s.decoding_asked,
         };
         self.pending = Some(snap);
         self.hand_over();
@@ -359,6 +364,7 @@ impl Worker {
                     index,
                     design: None,
                     decoding: None,
+                    decoding_asked: false,
                     refused: None,
                     trials: 0,
                     choices: 0,
@@ -523,6 +529,7 @@ impl Worker {
         if let Some(why) = &s.refused {
             return err(format!("{name}: {why}"));
         }
+        s.decoding_asked |= policy == Policy::ImproveDecoding;
         let slot = if policy == Policy::ImproveDecoding {
             &mut s.decoding
         } else {
