@@ -5,6 +5,7 @@
 //! Works in bin units (time / bin width) throughout; callers convert to seconds for display.
 //! Must not: read clocks or files; allocate per spike beyond the working buffers of one fit.
 
+use crate::windows::Ragged;
 use statrs::function::erf::erf;
 
 /// Share of the uniform density mixed into every fitted timing, so no bin has probability 0.
@@ -190,20 +191,17 @@ pub fn kde_bin_probabilities(times: &[f64], n_bins: usize, w: f64) -> Vec<f64> {
 /// Leave-one-trial-out log-likelihood of the spike times under the floored, binned kernel
 /// estimate with bandwidth `w`: each trial's spikes are scored against the estimate built from
 /// every other trial, exactly as the decoder will use an estimate on unseen trials.
-pub fn loto_log_likelihood(trials: &[Vec<f64>], n_bins: usize, w: f64) -> f64 {
+pub fn loto_log_likelihood(trials: &Ragged<f64>, n_bins: usize, w: f64) -> f64 {
     let k = KernelTable::new(w, n_bins);
-    let total: usize = trials.iter().map(|t| t.len()).sum();
+    let total: usize = trials.items().len();
     let mut all = vec![0.0f64; n_bins];
-    for t in trials.iter().flatten() {
+    for t in trials.items() {
         k.add_spike(*t, 1.0, &mut all);
     }
     let mut own = vec![0.0f64; n_bins];
     let mut ll = 0.0;
     let bf = n_bins as f64;
-    for tr in trials {
-        if tr.is_empty() {
-            continue;
-        }
+    for (_, tr) in trials.nonempty() {
         let rest = (total - tr.len()) as f64;
         own.iter_mut().for_each(|x| *x = 0.0);
         for &t in tr {
@@ -224,10 +222,10 @@ pub fn loto_log_likelihood(trials: &[Vec<f64>], n_bins: usize, w: f64) -> f64 {
 
 /// Bandwidth (bins) maximising the leave-one-trial-out likelihood over the same log grid as
 /// [`choose_bandwidth`], refined by golden-section search.
-pub fn choose_bandwidth_loto(trials: &[Vec<f64>], n_bins: usize) -> f64 {
+pub fn choose_bandwidth_loto(trials: &Ragged<f64>, n_bins: usize) -> f64 {
     let lo = 0.5f64;
     let hi = (n_bins as f64 / 2.0).max(lo * 2.0);
-    let n_trials_with = trials.iter().filter(|t| !t.is_empty()).count();
+    let n_trials_with = trials.n_nonempty();
     if n_trials_with < 2 {
         return hi;
     }
@@ -299,9 +297,15 @@ pub struct TimingFit {
     pub bandwidth_bins: f64,
 }
 
-/// Fits the timing of one cell from spike times in bin units, one list per training trial.
-pub fn fit_timing(trials: &[Vec<f64>], n_bins: usize, rule: BandwidthRule) -> TimingFit {
-    let pooled: Vec<f64> = trials.iter().flatten().copied().collect();
+/// Fits the timing of one cell from spike times in bin units, one row per training trial
+/// (`n_trials` of them, counting those without spikes).
+pub fn fit_timing(
+    trials: &Ragged<f64>,
+    n_trials: usize,
+    n_bins: usize,
+    rule: BandwidthRule,
+) -> TimingFit {
+    let pooled = trials.items();
     if pooled.is_empty() {
         return TimingFit {
             q: vec![1.0 / n_bins as f64; n_bins],
@@ -309,10 +313,10 @@ pub fn fit_timing(trials: &[Vec<f64>], n_bins: usize, rule: BandwidthRule) -> Ti
         };
     }
     let w = match rule {
-        BandwidthRule::KernelCost => choose_bandwidth(&pooled, trials.len(), n_bins),
+        BandwidthRule::KernelCost => choose_bandwidth(pooled, n_trials, n_bins),
         BandwidthRule::LeaveOneTrialOut => choose_bandwidth_loto(trials, n_bins),
     };
-    let mut q = kde_bin_probabilities(&pooled, n_bins, w);
+    let mut q = kde_bin_probabilities(pooled, n_bins, w);
     floor_timing(&mut q);
     TimingFit {
         q,
@@ -378,7 +382,10 @@ mod tests {
     #[test]
     fn floored_timing_is_positive_everywhere() {
         for rule in [BandwidthRule::KernelCost, BandwidthRule::LeaveOneTrialOut] {
-            let f = fit_timing(&[vec![10.2, 10.4], vec![11.0, 12.5]], 200, rule);
+            let mut trials = Ragged::default();
+            trials.push_row(0, &[10.2, 10.4]);
+            trials.push_row(1, &[11.0, 12.5]);
+            let f = fit_timing(&trials, 2, 200, rule);
             assert!(f.q.iter().all(|&x| x > 0.0));
             assert!((f.q.iter().sum::<f64>() - 1.0).abs() < 1e-12);
             assert!(f.q[11] > 20.0 * f.q[150], "{rule:?}");

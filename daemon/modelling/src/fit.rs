@@ -7,7 +7,7 @@
 
 use crate::density::{fit_timing, BandwidthRule};
 use crate::families::{choose_family, fit_negative_binomial, with_mean};
-use crate::windows::{windows, UnitWindows};
+use crate::windows::{windows, Ragged, UnitWindows};
 use auspex_engine::count::{CountDist, CountFamily};
 use auspex_engine::data::Dataset;
 use auspex_engine::model::{mean_var, CellSpec, CellSummary, ModelSpec};
@@ -83,8 +83,9 @@ pub enum FitError {
 pub struct CellInput {
     /// Window count per training trial of this stimulus.
     pub counts: Vec<u32>,
-    /// Spike times (bins from onset), one list per training trial.
-    pub times: Vec<Vec<f64>>,
+    /// Spike times (bins from onset): row k holds those of the k-th training trial (rows of
+    /// trials without spikes are empty and cost nothing).
+    pub times: Ragged<f64>,
 }
 
 /// Everything needed to fit, gathered from a dataset.
@@ -167,7 +168,13 @@ pub fn plan(data: &Dataset, opts: &FitOptions) -> Result<FitPlan, FitError> {
         .map(|t| t.stimulus.as_deref().and_then(|s| at.get(s).copied()))
         .collect();
     let onsets: Vec<i64> = data.trials.iter().map(|t| t.onset).collect();
-    crate::windows::check_fit_size(data.units.len(), data.trials.len(), stimuli.len(), n_bins)?;
+    crate::windows::check_fit_size(
+        data.units.len(),
+        data.trials.len(),
+        stimuli.len(),
+        n_bins,
+        crate::windows::spikes_in_windows(data, bin_ticks * n_bins as i64),
+    )?;
     let w = windows(data, &data.units, bin_ticks, n_bins);
     plan_from_windows(
         opts,
@@ -252,15 +259,19 @@ pub(crate) fn plan_from_windows(
     for (u, &unit) in units.iter().enumerate() {
         let from = declared_from.get(&unit).copied().unwrap_or(i64::MIN);
         let mut any = false;
+        // This unit's windows are dropped once copied into its cells: one copy of the spike
+        // times at a time, not two.
+        let own = std::mem::take(&mut w.units[u]);
         for &i in &labelled {
             let Some(s) = stim_of[i] else { continue };
             if onsets[i] < from {
                 continue;
             }
             let c = &mut cells[u * ns + s];
-            c.counts.push(w.counts[u][i]);
-            c.times.push(std::mem::take(&mut w.times[u][i]));
-            any |= w.counts[u][i] > 0;
+            let times = own.row(i);
+            c.times.push_row(c.counts.len(), times);
+            c.counts.push(times.len() as u32);
+            any |= !times.is_empty();
         }
         if !any {
             silent.push(unit);
@@ -390,7 +401,7 @@ pub fn fit_cell(
     rule: BandwidthRule,
 ) -> CellSpec {
     let choice = choose_family(&input.counts, families);
-    let timing = fit_timing(&input.times, n_bins, rule);
+    let timing = fit_timing(&input.times, input.counts.len(), n_bins, rule);
     let (mean, var) = mean_var(&input.counts);
     CellSpec {
         count: choice.params,
@@ -540,9 +551,13 @@ mod tests {
     use rand::{Rng, SeedableRng};
 
     fn cell(counts: &[u32]) -> CellInput {
+        let mut times = Ragged::default();
+        for (i, &k) in counts.iter().enumerate() {
+            times.push_row(i, &vec![1.5; k as usize]);
+        }
         CellInput {
             counts: counts.to_vec(),
-            times: counts.iter().map(|&k| vec![1.5; k as usize]).collect(),
+            times,
         }
     }
 

@@ -427,7 +427,8 @@ impl Learner {
         if units.is_empty() {
             return Err(NotYet::Units { min: min as u32 });
         }
-        crate::windows::check_fit_size(units.len(), idx.len(), ready.len(), self.n_bins)
+        let spikes = idx.iter().map(|&i| self.trials[i].spikes.len()).sum();
+        crate::windows::check_fit_size(units.len(), idx.len(), ready.len(), self.n_bins, spikes)
             .map_err(FitError::from)?;
         let w = self.windows(&idx, &units);
         Ok(plan_from_windows(
@@ -444,17 +445,18 @@ impl Learner {
 
     fn windows(&self, idx: &[usize], units: &[u32]) -> UnitWindows {
         let index: HashMap<u32, usize> = units.iter().enumerate().map(|(i, &u)| (u, i)).collect();
-        let mut counts = vec![vec![0u32; idx.len()]; units.len()];
-        let mut times = vec![vec![Vec::new(); idx.len()]; units.len()];
+        let mut out = vec![crate::windows::Ragged::default(); units.len()];
         for (j, &i) in idx.iter().enumerate() {
             for &(dt, unit) in &self.trials[i].spikes {
                 if let Some(&u) = index.get(&unit) {
-                    counts[u][j] += 1;
-                    times[u][j].push(dt as f64 / self.bin_ticks as f64);
+                    out[u].push(j, dt as f64 / self.bin_ticks as f64);
                 }
             }
         }
-        UnitWindows { counts, times }
+        UnitWindows {
+            n_trials: idx.len(),
+            units: out,
+        }
     }
 
     /// The trials held as a dataset (for reports and tests).

@@ -25,11 +25,11 @@ pub fn refit_cell(
     bandwidth_bins: f64,
 ) -> CellSpec {
     let count = fit_family(family, &input.counts).unwrap_or_else(|| fit_poisson(&input.counts));
-    let pooled: Vec<f64> = input.times.iter().flatten().copied().collect();
+    let pooled = input.times.items();
     let timing = if pooled.is_empty() || !bandwidth_bins.is_finite() {
         vec![1.0 / n_bins as f64; n_bins]
     } else {
-        let mut q = kde_bin_probabilities(&pooled, n_bins, bandwidth_bins);
+        let mut q = kde_bin_probabilities(pooled, n_bins, bandwidth_bins);
         floor_timing(&mut q);
         q
     };
@@ -371,7 +371,7 @@ mod calibration {
                         continue;
                     }
                     let mut c = vec![0u32; nb];
-                    for &x in &w.times[u][i] {
+                    for &x in w.times(u, i) {
                         c[(x as usize).min(nb - 1)] += 1;
                     }
                     let (d, sv) = (model.count(u, s), |b| model.survival(u, s, b));

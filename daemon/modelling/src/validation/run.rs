@@ -12,6 +12,7 @@ use crate::validation::{
     add_window_end_log_likelihood, decide, earliest_reliable, fano_interval, refit_cell,
     rescaled_intervals,
 };
+use crate::windows::Ragged;
 use auspex_engine::data::Dataset;
 use auspex_engine::engine::run_dataset;
 use auspex_engine::engine::{Decoder, EngineConfig, EngineSink, Frame};
@@ -472,7 +473,7 @@ fn unit_figures(
     let (ns, nb) = (model.n_stimuli(), model.n_bins());
     let window_ms = nb as f64 * bw_ms;
     let of = |st: usize| (0..labels.len()).filter(move |&i| labels[i] == st);
-    let times_ms = |i: usize| w.times[d][i].iter().map(|t| t * bw_ms);
+    let times_ms = |i: usize| w.times(d, i).iter().map(|t| t * bw_ms);
     let raster = (0..ns)
         .map(|st| {
             of(st)
@@ -505,7 +506,7 @@ fn unit_figures(
         .collect();
     // Window counts with the fitted distributions.
     let count_max = (0..labels.len())
-        .map(|i| w.counts[d][i])
+        .map(|i| w.count(d, i))
         .max()
         .unwrap_or(0)
         .max(3) as usize;
@@ -514,7 +515,7 @@ fn unit_figures(
             let trials = of(st).count().max(1) as f64;
             let mut h = vec![0.0; count_max + 1];
             for i in of(st) {
-                h[(w.counts[d][i] as usize).min(count_max)] += 1.0 / trials;
+                h[(w.count(d, i) as usize).min(count_max)] += 1.0 / trials;
             }
             let pmf = (0..=count_max)
                 .map(|n| (n as f64 + 0.5, model.count(u, st).ln_pmf(n as u32).exp()))
@@ -656,15 +657,16 @@ struct Fold {
     choice: Vec<(CountFamily, f64)>,
 }
 
-/// Window-end decoding of `test` trials with `model`, population and per unit, into confusion
-/// matrices (population: `pop`, per unit: `units[u]`).
+/// Window-end decoding of `test` trials with `model`, population and per unit: the
+/// population's into the confusion matrix `pop`, each unit's alone handed to `unit(u, presented,
+/// decided)` (a dense matrix per unit, or a list where matrices for every unit would not fit).
 fn window_end_confusions(
     model: &Model,
-    bins: &[Vec<Vec<u32>>],
+    bins: &[Ragged<u32>],
     labels: &[usize],
     test: &[usize],
     pop: &mut [u64],
-    units: &mut [Vec<u64>],
+    mut unit: impl FnMut(usize, usize, usize),
 ) {
     let (nu, ns) = (model.n_units(), model.n_stimuli());
     let mut total = vec![0.0f64; ns];
@@ -673,11 +675,11 @@ fn window_end_confusions(
         total.copy_from_slice(model.ln_prior());
         for u in 0..nu {
             one.iter_mut().for_each(|x| *x = 0.0);
-            add_window_end_log_likelihood(model, u, &bins[u][i], &mut one);
+            add_window_end_log_likelihood(model, u, bins[u].row(i), &mut one);
             for s in 0..ns {
                 total[s] += one[s];
             }
-            units[u][labels[i] * ns + argmax(&one)] += 1;
+            unit(u, labels[i], argmax(&one));
         }
         pop[labels[i] * ns + argmax(&total)] += 1;
     }
@@ -731,11 +733,18 @@ pub fn validate_with(
             few.join(", ")
         )));
     }
-    // The fit's windows and model, and what validation adds per unit: confusion matrices
-    // (stimuli × stimuli) for the real folds and for each shuffle worker, and the trajectories
-    // (trials × bins × stimuli per decoder).
-    crate::windows::check_fit_size(data.units.len(), nt, ns, nb)
-        .map_err(crate::fit::FitError::from)?;
+    // The fit's windows and model, and what validation adds: a confusion matrix per unit
+    // (stimuli × stimuli) for the real folds, each shuffle worker's per-unit decisions (a word
+    // per unit and trial) and its two matrices, and the trajectories (trials × bins × stimuli
+    // per decoder).
+    crate::windows::check_fit_size(
+        data.units.len(),
+        nt,
+        ns,
+        nb,
+        crate::windows::spikes_in_windows(&data, full_plan.bin_ticks * nb as i64),
+    )
+    .map_err(crate::fit::FitError::from)?;
     {
         use auspex_engine::budget::{check, product};
         let workers = std::thread::available_parallelism().map_or(1, |n| n.get()) as u128 + 2;
@@ -748,7 +757,9 @@ pub fn validate_with(
                     data.units.len()
                 )
             },
-            product(&[u, s, s, 8, workers]) + product(&[t, b, s, 4 * 3 + 8]),
+            product(&[u, s, s, 8])
+                + product(&[workers, (u + 1) * t * 4 + s * s * 8 * 2])
+                + product(&[t, b, s, 4 * 3 + 8]),
         )
         .map_err(crate::fit::FitError::from)?;
     }
@@ -770,18 +781,10 @@ pub fn validate_with(
 
     // Per unit, per trial: spike bins in the window.
     let w = crate::windows::windows(&data, &data.units, full_plan.bin_ticks, nb);
-    let bins: Vec<Vec<Vec<u32>>> = w
-        .times
+    let bins: Vec<Ragged<u32>> = w
+        .units
         .iter()
-        .map(|per| {
-            per.iter()
-                .map(|ts| {
-                    ts.iter()
-                        .map(|t| (*t as usize).min(nb - 1) as u32)
-                        .collect()
-                })
-                .collect()
-        })
+        .map(|per| per.map(|t| (*t as usize).min(nb - 1) as u32))
         .collect();
 
     // Cross-validated decoding with every decoder, and the per-fold choices.
@@ -1022,7 +1025,7 @@ fn cross_validate(
     labels: &[usize],
     fold_of: &[usize],
     k: usize,
-    bins: &[Vec<Vec<u32>>],
+    bins: &[Ragged<u32>],
     nb: usize,
     opts: &ValidateOptions,
     bar: &dyn Progress,
@@ -1081,7 +1084,7 @@ fn cross_validate(
             labels,
             &test,
             &mut pop_conf_closed,
-            &mut unit_conf,
+            |u, p, d| unit_conf[u][p * ns + d] += 1,
         );
         // Time rescaling on the held-out trials, each under its presented stimulus. The
         // uniform draws of the discrete-time correction are keyed by the trial (onset, id) and
@@ -1093,7 +1096,7 @@ fn cross_validate(
             let t = &data.trials[i];
             for u in 0..nu {
                 counts.iter_mut().for_each(|c| *c = 0);
-                for &b in &bins[u][i] {
+                for &b in bins[u].row(i) {
                     counts[b as usize] += 1;
                 }
                 let mut draw = 0u64;
@@ -1223,7 +1226,7 @@ fn unit_reports(
     data: &Dataset,
     stimuli: &[String],
     labels: &[usize],
-    bins: &[Vec<Vec<u32>>],
+    bins: &[Ragged<u32>],
     unit_conf: &[Vec<u64>],
     unit_null: Vec<Vec<f64>>,
     rescaled: &[Vec<f64>],
@@ -1240,7 +1243,7 @@ fn unit_reports(
             .map(|s| {
                 let counts: Vec<u32> = (0..nt)
                     .filter(|&i| labels[i] == s)
-                    .map(|i| bins[u][i].len() as u32)
+                    .map(|i| bins[u].row(i).len() as u32)
                     .collect();
                 let (mean, variance) = auspex_engine::model::mean_var(&counts);
                 let mut z = rescaled[u * ns + s].clone();
@@ -1582,12 +1585,12 @@ fn learning_curve(
     fold_of: &[usize],
     k: usize,
     stimuli: &[String],
-    bins: &[Vec<Vec<u32>>],
+    bins: &[Ragged<u32>],
     sizes: &[usize],
     opts: &ValidateOptions,
     bar: &dyn Progress,
 ) -> Result<Vec<LearningPoint>, ValidateError> {
-    let (ns, nu, nt) = (stimuli.len(), data.units.len(), labels.len());
+    let (ns, nt) = (stimuli.len(), labels.len());
     let mut rng = ChaCha8Rng::seed_from_u64(opts.seed ^ 0x1ea2);
     // Per fold, per stimulus: training trials in a seeded random order. The draws follow the
     // trials' time order and the stimuli's first appearance, never a listing order or names.
@@ -1611,7 +1614,6 @@ fn learning_curve(
     let mut out = Vec::new();
     for &n in sizes {
         let mut pop = vec![0u64; ns * ns];
-        let mut units = vec![vec![0u64; ns * ns]; nu];
         for (f, order) in orders.iter().enumerate() {
             let mut train: Vec<usize> = order.iter().flat_map(|v| v[..n].iter().copied()).collect();
             train.sort_unstable();
@@ -1619,7 +1621,7 @@ fn learning_curve(
             let p = reorder(plan(&subset(data, &train, None), &opts.fit)?, stimuli)?;
             let cells = crate::fit::fit_cells(&p, &|| {});
             let model = Model::new(p.assemble(cells))?;
-            window_end_confusions(&model, bins, labels, &test, &mut pop, &mut units);
+            window_end_confusions(&model, bins, labels, &test, &mut pop, |_, _, _| {});
             bar.done(work::LEARNING_FIT);
         }
         let a = crate::assess::assess(&pop, ns, &Default::default());
@@ -1660,7 +1662,7 @@ type Nulls = (Vec<f64>, Vec<Vec<f64>>);
 fn shuffle_null(
     data: &Dataset,
     w: &crate::windows::UnitWindows,
-    bins: &[Vec<Vec<u32>>],
+    bins: &[Ragged<u32>],
     labels: &[usize],
     stimuli: &[String],
     folds: &[Fold],
@@ -1674,7 +1676,11 @@ fn shuffle_null(
         let mut rng =
             ChaCha8Rng::seed_from_u64(opts.seed.wrapping_mul(7919).wrapping_add(r as u64));
         let mut pop = vec![0u64; ns * ns];
-        let mut units = vec![vec![0u64; ns * ns]; nu];
+        // Each unit's decisions as a list (the presented stimulus of every test trial is the
+        // same for all units): trials × units words per worker, where a matrix per unit would
+        // be units × stimuli² — 2 GB over 64 workers at 64 units × 256 stimuli.
+        let mut presented: Vec<u32> = Vec::new();
+        let mut decided: Vec<Vec<u32>> = vec![Vec::new(); nu];
         for f in folds {
             let mut shuffled: Vec<usize> = f.train.iter().map(|&i| labels[i]).collect();
             shuffled.shuffle(&mut rng);
@@ -1685,8 +1691,9 @@ fn shuffle_null(
                     let mut input = CellInput::default();
                     for (j, &i) in f.train.iter().enumerate() {
                         if shuffled[j] == s {
-                            input.counts.push(w.counts[u][i]);
-                            input.times.push(w.times[u][i].clone());
+                            let times = w.times(u, i);
+                            input.times.push_row(input.counts.len(), times);
+                            input.counts.push(times.len() as u32);
                         }
                     }
                     let (fam, bw) = f.choice[u * ns + s];
@@ -1709,12 +1716,27 @@ fn shuffle_null(
                 calibration: Default::default(),
                 unit_groups: Vec::new(),
             })?;
-            window_end_confusions(&model, bins, labels, &f.test, &mut pop, &mut units);
+            presented.extend(f.test.iter().map(|&i| labels[i] as u32));
+            window_end_confusions(&model, bins, labels, &f.test, &mut pop, |u, _, d| {
+                decided[u].push(d as u32)
+            });
         }
-        Ok((
-            info(&pop, ns).2,
-            units.iter().map(|c| info(c, ns).2).collect(),
-        ))
+        // One matrix at a time, cleared where it was filled.
+        let mut conf = vec![0u64; ns * ns];
+        let units = decided
+            .iter()
+            .map(|d| {
+                for (&p, &d) in presented.iter().zip(d) {
+                    conf[p as usize * ns + d as usize] += 1;
+                }
+                let bits = info(&conf, ns).2;
+                for (&p, &d) in presented.iter().zip(d) {
+                    conf[p as usize * ns + d as usize] = 0;
+                }
+                bits
+            })
+            .collect();
+        Ok((info(&pop, ns).2, units))
     };
     let threads = std::thread::available_parallelism()
         .map(|n| n.get())
