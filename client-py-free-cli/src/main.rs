@@ -469,7 +469,8 @@ enum Cmd {
     /// an NWB file (--nwb OUT --session REC [--model M])
     Export {
         /// Model file (with --nwb: decode the session with it, so each trial's decision and the
-        /// per-bin posterior go into the file)
+        /// per-bin posterior go into the file; without it, a learning daemon's recording is
+        /// decoded with the models it learned, as it learned them)
         #[arg(long, required_unless_present = "nwb")]
         model: Option<PathBuf>,
         /// Output file (default: standard output)

@@ -299,9 +299,9 @@ fn a_million_units_and_a_million_trials_are_read_or_refused_by_the_budget() {
 mod common;
 
 /// A daemon on free loopback ports with `model`, recording to `record` if given.
-async fn daemon(model: &Path, record: Option<&Path>) -> auspexd::service::Running {
+async fn daemon(model: Option<&Path>, record: Option<&Path>) -> auspexd::service::Running {
     let fc = auspexd::config::FileConfig {
-        model: Some(model.to_path_buf()),
+        model: model.map(Path::to_path_buf),
         ingest: Some("tcp://127.0.0.1:0".into()),
         task_ingest: Some("tcp://127.0.0.1:0".into()),
         publish: Some("tcp://127.0.0.1:0".into()),
@@ -369,7 +369,7 @@ fn replay_of_an_nwb_file_into_the_daemon_equals_offline_decoding() {
     offline.sort_by_key(|x| (x.0, x.1));
 
     let rt = common::runtime();
-    let running = rt.block_on(daemon(&model_path, None));
+    let running = rt.block_on(daemon(Some(&model_path), None));
     let ep = running.endpoints.clone();
     let ctx = zmq::Context::new();
     let (stop, sub) = common::subscriber(&ctx, &ep.publish);
@@ -405,7 +405,7 @@ fn a_recorded_session_exported_to_nwb_reads_back_whole() {
     auspex_proto::model_file::save_model(&model_path, &spec, "nwb export e2e").unwrap();
     let record = tmp.path().join("s.apxs");
     let rt = common::runtime();
-    let running = rt.block_on(daemon(&model_path, Some(&record)));
+    let running = rt.block_on(daemon(Some(&model_path), Some(&record)));
     let ep = running.endpoints.clone();
     let source = auspex::live::ReplaySource::Nwb {
         path: dir().join("string_stimulus.nwb"),
@@ -464,9 +464,26 @@ fn a_recorded_session_exported_to_nwb_reads_back_whole() {
             )
         })
         .collect();
-    let trials: Vec<u64> = rec.dataset.trials.iter().map(|t| t.id).collect();
 
-    // The reference API, when CI provides it.
+    pynwb_reads_back(
+        &out,
+        &rec.dataset,
+        &decided,
+        model.stimuli(),
+        rec.dataset.trials.len() * model.n_bins(),
+    );
+}
+
+/// The reference API (pynwb), when CI provides it (`AUSPEX_NWB_PYTHON`), reads the exported
+/// `file` and finds every unit, spike and trial of `data`, each trial's decision (`decided`,
+/// by trial id; none: an empty name), the posterior's columns `stimuli` and `frames` rows.
+fn pynwb_reads_back(
+    file: &Path,
+    data: &auspex_engine::data::Dataset,
+    decided: &std::collections::HashMap<u64, String>,
+    stimuli: &[String],
+    frames: usize,
+) {
     let Some(python) = std::env::var_os("AUSPEX_NWB_PYTHON") else {
         assert!(
             std::env::var_os("AUSPEX_REQUIRE_PYNWB").is_none(),
@@ -478,27 +495,29 @@ fn a_recorded_session_exported_to_nwb_reads_back_whole() {
         return;
     };
     let mut spikes: std::collections::BTreeMap<String, Vec<f64>> = Default::default();
-    for &(t, u) in rec.dataset.spikes.iter() {
+    for &(t, u) in data.spikes.iter() {
         spikes
             .entry(u.to_string())
             .or_default()
             .push(t as f64 / 1e6);
     }
+    let trials: Vec<u64> = data.trials.iter().map(|t| t.id).collect();
     let want = serde_json::json!({
-        "units": rec.dataset.units,
+        "units": data.units,
         "spikes": spikes,
         "trials": trials,
-        "onsets": rec.dataset.trials.iter().map(|t| t.onset as f64 / 1e6).collect::<Vec<_>>(),
-        "stimuli": rec.dataset.trials.iter().map(|t| t.stimulus.clone().unwrap_or_default()).collect::<Vec<_>>(),
+        "onsets": data.trials.iter().map(|t| t.onset as f64 / 1e6).collect::<Vec<_>>(),
+        "stimuli": data.trials.iter().map(|t| t.stimulus.clone().unwrap_or_default()).collect::<Vec<_>>(),
         "decided": trials.iter().map(|t| decided.get(t).cloned().unwrap_or_default()).collect::<Vec<_>>(),
-        "model_stimuli": model.stimuli(),
-        "frames": rec.dataset.trials.len() * model.n_bins(),
+        "model_stimuli": stimuli,
+        "frames": frames,
     });
+    let tmp = tempfile::tempdir().unwrap();
     let wp = tmp.path().join("expected.json");
     std::fs::write(&wp, want.to_string()).unwrap();
     let out = std::process::Command::new(python)
         .arg(dir().join("read_back.py"))
-        .arg(&out)
+        .arg(file)
         .arg(&wp)
         .output()
         .unwrap();
@@ -509,6 +528,104 @@ fn a_recorded_session_exported_to_nwb_reads_back_whole() {
     );
     eprintln!("{text}");
     assert!(out.status.success(), "pynwb's read-back failed:\n{text}");
+}
+
+/// A learning daemon's recording exported without `--model`: each trial's decision is the one
+/// `decode --prequential` of the recording gives (the models the daemon learned, refitted at its
+/// own swap points), the posterior's columns are every stimulus a learned model knew, trials
+/// opened before the first model say why they have no decision — read back by Auspex's reader
+/// and, in CI, by pynwb.
+#[test]
+fn a_learning_session_exported_without_a_model_carries_its_learned_decisions() {
+    use auspex::nwb::{Column, Nwb};
+    use std::time::Duration;
+    let _g = common::serial();
+    let tmp = tempfile::tempdir().unwrap();
+    let record = tmp.path().join("s.apxs");
+    let rt = common::runtime();
+    let running = rt.block_on(daemon(None, Some(&record)));
+    let ep = running.endpoints.clone();
+    let source = auspex::live::ReplaySource::Nwb {
+        path: dir().join("string_stimulus.nwb"),
+        choice: NwbChoice::default(),
+    };
+    rt.block_on(replay(&source, &ep));
+    std::thread::sleep(Duration::from_millis(200));
+    rt.block_on(running.stop());
+
+    let rec = auspex::wire::read_recording(&record).unwrap();
+    let out = tmp.path().join("s.nwb");
+    let args = auspex::commands::DecodeArgs::default();
+    auspex::commands::export_nwb_cmd(&out, &record, None, &args).unwrap();
+
+    // What `decode --prequential --session` gives for the same recording.
+    let opts = auspex::prequential::recorded_options(&rec).expect("a learning daemon's recording");
+    let (run, names, frames) = auspex::prequential::run_recording(
+        &rec,
+        &opts,
+        &args.config(rec.dataset.tick_rate_hz),
+        &auspex::prequential::Schedule { every_trials: 1 },
+        None::<std::io::Sink>,
+        true,
+    )
+    .unwrap();
+    let frames = frames.unwrap();
+    let decided: std::collections::HashMap<u64, String> = run
+        .decisions
+        .iter()
+        .zip(&names)
+        .map(|(r, n)| (r.decision.trial, n.clone()))
+        .collect();
+    assert!(
+        run.undecoded_trials > 0 && decided.len() > 10,
+        "the session should learn part-way: {} undecoded, {} decided",
+        run.undecoded_trials,
+        decided.len()
+    );
+
+    let f = Nwb::open(&out).unwrap();
+    let text = |c: &str| match f.column("intervals/trials", c).unwrap() {
+        Column::Text(v) => v,
+        other => panic!("{c}: {other:?}"),
+    };
+    let (got, why) = (text("decided_stimulus"), text("decision_reason"));
+    for (k, t) in rec.dataset.trials.iter().enumerate() {
+        let want = decided.get(&t.id).cloned().unwrap_or_default();
+        assert_eq!(got[k], want, "trial {}", t.id);
+        if want.is_empty() {
+            assert!(
+                why[k].starts_with("not decoded"),
+                "trial {}: {}",
+                t.id,
+                why[k]
+            );
+        }
+    }
+    let Column::Float(when) = f.column("intervals/trials", "decision_time").unwrap() else {
+        panic!("decision_time is not floating point")
+    };
+    for r in &run.decisions {
+        let k = rec
+            .dataset
+            .trials
+            .iter()
+            .position(|t| t.id == r.decision.trial)
+            .unwrap();
+        assert_eq!(
+            when[k],
+            r.decision.bin_end_tick as f64 / rec.dataset.tick_rate_hz
+        );
+    }
+    let mut union: Vec<String> = Vec::new();
+    for (_, n) in &run.frame_meta {
+        for s in n.iter() {
+            if !union.contains(s) {
+                union.push(s.clone());
+            }
+        }
+    }
+    assert!(union.len() >= 2);
+    pynwb_reads_back(&out, &rec.dataset, &decided, &union, frames.len());
 }
 
 /// The CSV path's check that spikes and trials fit together applies to NWB files too: trial

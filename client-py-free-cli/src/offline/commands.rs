@@ -868,10 +868,114 @@ pub fn validate_cmd(
     Ok(v)
 }
 
+/// A learning daemon's recording exported without `--model`: each trial's decision and the
+/// per-bin posterior as the daemon gave them — decoded prequentially, each trial with the model
+/// learned before it opened, refitted at the recording's own swap points (`decode
+/// --prequential`'s path). The models' stimulus sets grow as labels arrive: the posterior's
+/// columns are every stimulus any model knew, in order of first appearance, and a stimulus a
+/// trial's model did not know has probability 0 in that trial.
+fn prequential_results(
+    rec: &crate::wire::RecordedSession,
+    opts: &auspex_modelling::learn::LearnOptions,
+    args: &DecodeArgs,
+    session: &Path,
+    input: &mut crate::nwb_write::ExportInput<'_>,
+) -> anyhow::Result<()> {
+    use crate::prequential::{run_recording, Schedule};
+    if args.target_accuracy.is_some() {
+        bail!("--target-accuracy needs a fitted model's held-out record; a learning recording is exported with --threshold");
+    }
+    let data = &rec.dataset;
+    let n_bins = (opts.fit.window_s / opts.fit.bin_width_s).round().max(1.0) as u128;
+    let s = data.stimulus_names().len().max(2) as u128;
+    auspex_engine::budget::check(
+        "the per-bin posteriors to export",
+        || format!("{} trials × {n_bins} bins × {s} stimuli", data.trials.len()),
+        auspex_engine::budget::product(&[data.trials.len() as u128, n_bins, s + 3, 8 * 2]),
+    )?;
+    let (run, names, frames) = run_recording(
+        rec,
+        opts,
+        &args.config(data.tick_rate_hz),
+        &Schedule { every_trials: 1 },
+        None::<std::io::Sink>,
+        true,
+    )?;
+    let frames = frames.unwrap_or_default();
+    let mut union: Vec<String> = Vec::new();
+    let mut at: HashMap<String, usize> = HashMap::new();
+    for (_, n) in &run.frame_meta {
+        for name in n.iter() {
+            if !at.contains_key(name) {
+                at.insert(name.clone(), union.len());
+                union.push(name.clone());
+            }
+        }
+    }
+    let widen = |post: &[f64], names: &[String]| -> Vec<f64> {
+        let mut v = vec![0.0; union.len()];
+        for (p, n) in post.iter().zip(names) {
+            v[at[n]] = *p;
+        }
+        v
+    };
+    let mut last: HashMap<(u64, u32), usize> = HashMap::new();
+    let mut wide = Vec::with_capacity(frames.len());
+    for (k, ((trial, bin, post), (tick, names))) in frames.iter().zip(&run.frame_meta).enumerate() {
+        last.insert((*trial, *bin), k);
+        wide.push((*tick, *trial, widen(post, names)));
+    }
+    for (row, name) in run.decisions.iter().zip(&names) {
+        let d = &row.decision;
+        let Some(&s) = at.get(name) else { continue };
+        let full = last
+            .get(&(d.trial, d.bin))
+            .map(|&k| wide[k].2.clone())
+            .unwrap_or_default();
+        input.decisions.insert(
+            d.trial,
+            (
+                s as u32,
+                d.bin_end_tick,
+                d.posterior,
+                d.reason.name().to_string(),
+                full,
+            ),
+        );
+    }
+    let decoded: std::collections::HashSet<u64> = frames.iter().map(|f| f.0).collect();
+    for t in &data.trials {
+        if !decoded.contains(&t.id) {
+            input.no_decision.insert(
+                t.id,
+                "not decoded: opened before the first learned model".into(),
+            );
+        }
+    }
+    input.window_s = opts.fit.window_s;
+    input.stimuli = union;
+    input.frames = wide;
+    input.notes = format!(
+        "decoded by Auspex {} prequentially with the recording's learned models ({} applied at the daemon's swap points; the last fitted on {} labelled trials; {} ms window in {} ms bins), decoder {}, threshold {}, minimum time {} ms; {} trials opened before the first model were not decoded; session recording {}",
+        env!("CARGO_PKG_VERSION"),
+        run.models.len(),
+        run.models.last().map_or(0, |m| m.0),
+        opts.fit.window_s * 1000.0,
+        opts.fit.bin_width_s * 1000.0,
+        args.decoder.name(),
+        args.threshold,
+        args.min_time_ms,
+        run.undecoded_trials,
+        session.display()
+    );
+    Ok(())
+}
+
 /// `auspex export --nwb OUT --session REC [--model M]`: the recorded session as an NWB file —
-/// its units, spikes and trials, and, with a model, each trial's decision and the per-bin
-/// posterior decoded through the same engine as live (so they are the daemon's own figures for
-/// the same model and settings).
+/// its units, spikes and trials, and each trial's decision and the per-bin posterior decoded
+/// through the same engine as live (so they are the daemon's own figures for the same model
+/// and settings): with `--model`, by that model; without, for a learning daemon's recording, by
+/// the models it learned, as it learned them ([`prequential_results`]).
 pub fn export_nwb_cmd(
     out: &Path,
     session: &Path,
@@ -913,6 +1017,7 @@ pub fn export_nwb_cmd(
         decisions: Default::default(),
         frames: Vec::new(),
         notes: format!("session recording {}", session.display()),
+        no_decision: Default::default(),
     };
     if let Some(mp) = model_path {
         let (_, model) = load_model(mp)?;
@@ -993,6 +1098,11 @@ pub fn export_nwb_cmd(
             args.min_time_ms,
             session.display()
         );
+    }
+    if model_path.is_none() {
+        if let Some(opts) = crate::prequential::recorded_options(&rec) {
+            prequential_results(&rec, &opts, args, session, &mut input)?;
+        }
     }
     crate::nwb_write::write(out, &input)?;
     eprintln!(

@@ -36,6 +36,9 @@ pub struct ExportInput<'a> {
     pub frames: Vec<(i64, u64, Vec<f64>)>,
     /// What decoded them (model summary, decoder, threshold), for `general/notes`.
     pub notes: String,
+    /// Why a trial without a decision has none, where it is known (else "not decided
+    /// (cancelled, or outside the model)").
+    pub no_decision: std::collections::HashMap<u64, String>,
 }
 
 /// A deterministic object id in UUID form (unique per path within a file).
@@ -371,7 +374,11 @@ pub fn build(x: &ExportInput<'_>) -> anyhow::Result<Vec<u8>> {
                     name.push(String::new());
                     when.push(f64::NAN);
                     conf.push(f64::NAN);
-                    why.push("not decided (cancelled, or outside the model)".into());
+                    why.push(
+                        x.no_decision.get(&t.id).cloned().unwrap_or_else(|| {
+                            "not decided (cancelled, or outside the model)".into()
+                        }),
+                    );
                     post.extend(std::iter::repeat_n(f64::NAN, s));
                 }
             }

@@ -48,6 +48,9 @@ pub struct PrequentialRun {
     pub recorded_swaps: bool,
     /// The per-unit assessments after the last labelled trial (as the daemon publishes them).
     pub units: Vec<(u32, Assessment)>,
+    /// When frames are collected: each frame's bin-end tick and the stimulus names of the model
+    /// that decoded it (the posterior's order), beside the frames.
+    pub frame_meta: Vec<(i64, Arc<[String]>)>,
 }
 
 /// Writes posterior rows with each trial's own stimulus names and collects decisions.
@@ -58,8 +61,10 @@ pub struct PrequentialSink<'a, W: Write> {
     decisions: Vec<DecisionRow>,
     decided_names: Vec<String>,
     error: Option<std::io::Error>,
-    /// Every frame as (trial, bin, posterior), when asked for (tests).
+    /// Every frame as (trial, bin, posterior), when asked for (tests, export).
     pub frames: Option<Vec<(u64, u32, Vec<f64>)>>,
+    /// Beside `frames`: each frame's bin-end tick and its trial's stimulus names.
+    frame_meta: Vec<(i64, Arc<[String]>)>,
     units: Option<Vec<(u32, Assessment)>>,
 }
 
@@ -67,6 +72,12 @@ impl<W: Write> EngineSink for PrequentialSink<'_, W> {
     fn frame(&mut self, f: &Frame<'_>) {
         if let Some(v) = self.frames.as_mut() {
             v.push((f.trial, f.bin, f.posterior.to_vec()));
+            let names = self
+                .names
+                .get(f.trial)
+                .cloned()
+                .unwrap_or_else(|| [].into());
+            self.frame_meta.push((f.bin_end_tick, names));
         }
         if self.error.is_some() {
             return;
@@ -200,6 +211,7 @@ impl<W: Write> Run<'_, W> {
             decided_names: Vec::new(),
             error: None,
             frames: self.frames.take(),
+            frame_meta: Vec::new(),
             units: None,
         };
         let learning = self.collector.is_some();
@@ -218,12 +230,14 @@ impl<W: Write> Run<'_, W> {
             decided_names,
             error,
             frames,
+            frame_meta,
             units,
             ..
         } = sink;
         if let Some(u) = units {
             self.result.units = u;
         }
+        self.result.frame_meta.extend(frame_meta);
         self.frames = frames;
         self.result.decisions.extend(decisions);
         self.decided_names.extend(decided_names);
