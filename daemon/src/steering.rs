@@ -79,6 +79,10 @@ pub struct Steering {
 struct Slot {
     latest: Option<Snapshot>,
     closed: bool,
+    /// Snapshots the estimator is done with, freed by the engine thread that allocated them:
+    /// a free of another thread's block takes that thread's allocator arena lock, and a
+    /// low-priority thread preempted while holding it would hold the engine thread up.
+    spent: Vec<Snapshot>,
 }
 
 type SnapshotSlot = Arc<(Mutex<Slot>, Condvar)>;
@@ -281,6 +285,10 @@ fn estimate(slot: SnapshotSlot, out: Arc<Mutex<Estimates>>, seed: u64) {
             });
             cursor = (u + 1) % n.max(1);
         }
+        match lock.lock() {
+            Ok(mut g) => g.spent.push(snap),
+            Err(_) => return,
+        }
     }
 }
 
@@ -322,11 +330,14 @@ impl Worker {
     fn hand_over(&mut self) {
         let (lock, cv) = &*self.slot;
         if let Ok(mut g) = lock.try_lock() {
+            let spent = std::mem::take(&mut g.spent);
             if let Some(snap) = self.pending.take() {
-                g.latest = Some(snap);
+                // An untaken one it replaces is this thread's own allocation, freed here.
+                let _old = g.latest.replace(snap);
                 drop(g);
                 cv.notify_one();
             }
+            drop(spent);
         }
     }
 

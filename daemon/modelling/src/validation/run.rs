@@ -673,9 +673,9 @@ fn window_end_confusions(
     let mut one = vec![0.0f64; ns];
     for &i in test {
         total.copy_from_slice(model.ln_prior());
-        for u in 0..nu {
+        for (u, b) in bins.iter().enumerate().take(nu) {
             one.iter_mut().for_each(|x| *x = 0.0);
-            add_window_end_log_likelihood(model, u, bins[u].row(i), &mut one);
+            add_window_end_log_likelihood(model, u, b.row(i), &mut one);
             for s in 0..ns {
                 total[s] += one[s];
             }
