@@ -164,7 +164,8 @@ fn inspect_shows_tables_columns_and_units_and_bad_choices_say_what_there_is() {
     for want in [
         "intervals/flashes (TimeIntervals, 24 rows)",
         "--nwb-trials flashes",
-        "luminance            text   e.g. bright, dim, bright  (2 distinct)",
+        // Examples are the distinct values in order of first appearance.
+        "luminance            text   e.g. bright, dim  (2 distinct)",
         "intervals/trials (TimeIntervals, 24 rows)",
         "3 units with 1711 spikes in all",
     ] {
@@ -173,9 +174,22 @@ fn inspect_shows_tables_columns_and_units_and_bad_choices_say_what_there_is() {
     let (ok, out, _) = auspex(&["inspect", "--nwb", s(&d.join("units_partway.nwb"))]);
     assert!(ok);
     assert!(
-        out.contains("quality              text   e.g. good, noise, good"),
+        out.contains("quality              text   e.g. good, noise  (2 distinct)"),
         "{out}"
     );
+    // Every line but the first (it names the file as given) fits an 80-column terminal.
+    for f in [
+        "two_tables.nwb",
+        "units_partway.nwb",
+        "string_stimulus.nwb",
+        "numeric_stimulus.nwb",
+    ] {
+        let (ok, out, err) = auspex(&["inspect", "--nwb", s(&d.join(f))]);
+        assert!(ok, "{err}");
+        for line in out.lines().skip(1) {
+            assert!(line.chars().count() <= 80, "{f}: {line:?} is wider than 80");
+        }
+    }
 
     let (ok, _, err) = auspex(&[
         "fit",

@@ -625,6 +625,20 @@ fn a_learning_session_exported_without_a_model_carries_its_learned_decisions() {
         }
     }
     assert!(union.len() >= 2);
+    // `inspect --nwb` of the export fits 80 columns (its long decision reasons shortened) and
+    // shows decided stimuli, not only the undecoded first trials' "(none)".
+    let summary = f.summary().unwrap();
+    for line in summary.lines().skip(1) {
+        assert!(line.chars().count() <= 80, "{line:?} is wider than 80");
+    }
+    let decided_line = summary
+        .lines()
+        .find(|l| l.trim_start().starts_with("decided_stimulus"))
+        .unwrap();
+    assert!(
+        union.iter().any(|s| decided_line.contains(s.as_str())),
+        "{decided_line}"
+    );
     pynwb_reads_back(&out, &rec.dataset, &decided, &union, frames.len());
 }
 

@@ -1065,7 +1065,14 @@ impl Nwb {
                     format!("({} values per row)", dims[1..].iter().product::<u64>())
                 } else {
                     match self.column(&t, c) {
-                        Ok(col) => examples(&col),
+                        // The line's start: two spaces, the name in 20, a space, the type in 6
+                        // and a space; what is left of 80 columns goes to the examples.
+                        Ok(col) => examples(
+                            &col,
+                            79usize.saturating_sub(
+                                30 + printable(c).chars().count().saturating_sub(20),
+                            ),
+                        ),
                         Err(_) => "(unreadable)".into(),
                     }
                 };
@@ -1135,7 +1142,10 @@ impl Nwb {
 
 /// `x` to 6 significant digits, without trailing zeros.
 fn short_number(x: f64) -> String {
-    if x == 0.0 || !(1e-4..1e7).contains(&x.abs()) {
+    if x == 0.0 {
+        return "0".into();
+    }
+    if !(1e-4..1e7).contains(&x.abs()) {
         return format!("{x:.6e}");
     }
     let decimals = (5 - x.abs().log10().floor() as i32).max(0) as usize;
@@ -1147,45 +1157,60 @@ fn short_number(x: f64) -> String {
     }
 }
 
-/// Up to three example values of a column, and how many distinct among the first 10 000.
-fn examples(c: &Column) -> String {
+/// Up to three example values of a column — distinct ones, in the order they first appear, so
+/// a column whose first rows repeat one value still shows what else it holds — and how many
+/// distinct among the first 10 000, in at most `room` characters (the inspect line fits 80
+/// columns; the first example is always shown, shortened if need be).
+fn examples(c: &Column, room: usize) -> String {
     let n = c.len();
     let mut distinct = std::collections::BTreeSet::new();
+    let mut first: Vec<String> = Vec::new();
     for i in 0..n.min(10_000) {
-        distinct.insert(c.text(i).unwrap_or_else(|| "(none)".into()));
-    }
-    let first: Vec<String> = (0..n.min(3))
-        .map(|i| {
+        let key = c.text(i).unwrap_or_else(|| "(none)".into());
+        if distinct.insert(key) && first.len() < 3 {
             // Numbers shown to 6 significant digits (an example, not the value read).
             let t = match c {
                 Column::Float(v) if v[i].is_finite() => short_number(v[i]),
                 _ => c.text(i).unwrap_or_else(|| "(none)".into()),
             };
-            let t = printable(&t).into_owned();
-            if t.chars().count() > 24 {
-                format!("{}…", t.chars().take(24).collect::<String>())
+            first.push(printable(&t).into_owned());
+        }
+    }
+    let tail = if n > 0 {
+        format!(
+            "  ({} distinct{})",
+            distinct.len(),
+            if n > 10_000 {
+                " in the first 10 000"
             } else {
-                t
+                ""
             }
-        })
-        .collect();
-    format!(
-        "e.g. {}{}",
-        first.join(", "),
-        if n > 0 {
+        )
+    } else {
+        String::new()
+    };
+    let room = room.saturating_sub(5 + tail.chars().count()).max(12);
+    let shorten = |t: &str, max: usize| {
+        if t.chars().count() > max {
             format!(
-                "  ({} distinct{})",
-                distinct.len(),
-                if n > 10_000 {
-                    " in the first 10 000"
-                } else {
-                    ""
-                }
+                "{}…",
+                t.chars().take(max.saturating_sub(1)).collect::<String>()
             )
         } else {
-            String::new()
+            t.to_string()
         }
-    )
+    };
+    let mut shown = String::new();
+    for (k, t) in first.iter().enumerate() {
+        let t = shorten(t, 24);
+        let piece = if k == 0 { t } else { format!(", {t}") };
+        if k > 0 && shown.chars().count() + piece.chars().count() > room {
+            break;
+        }
+        shown += &piece;
+    }
+    let shown = shorten(&shown, room);
+    format!("e.g. {shown}{tail}")
 }
 
 /// Reads a dataset from an NWB file and reports it like the CSV path; `notes` are printed by the
