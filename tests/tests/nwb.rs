@@ -332,6 +332,22 @@ async fn replay(source: &auspex::live::ReplaySource, ep: &auspexd::service::Boun
     .unwrap();
 }
 
+/// A daemon (with `model`, or learning without one) records the replay of the string-stimulus
+/// file to `record`; the recording read back.
+fn record_replay(model: Option<&Path>, record: &Path) -> auspex::wire::RecordedSession {
+    let rt = common::runtime();
+    let running = rt.block_on(daemon(model, Some(record)));
+    let ep = running.endpoints.clone();
+    let source = auspex::live::ReplaySource::Nwb {
+        path: dir().join("string_stimulus.nwb"),
+        choice: NwbChoice::default(),
+    };
+    rt.block_on(replay(&source, &ep));
+    std::thread::sleep(std::time::Duration::from_millis(200));
+    rt.block_on(running.stop());
+    auspex::wire::read_recording(record).unwrap()
+}
+
 /// `replay --nwb` into a running daemon gives the frames that decoding the same file offline
 /// gives (`decode --nwb` runs `run_dataset` on the dataset read here), bit for bit.
 #[test]
@@ -394,7 +410,6 @@ fn replay_of_an_nwb_file_into_the_daemon_equals_offline_decoding() {
 /// unit, spike, trial and decision.
 #[test]
 fn a_recorded_session_exported_to_nwb_reads_back_whole() {
-    use std::time::Duration;
     let _g = common::serial();
     let data = read_nwb("string_stimulus.nwb", &NwbChoice::default());
     let spec = auspex_modelling::fit::plan(&data, &auspex_modelling::fit::FitOptions::default())
@@ -404,18 +419,7 @@ fn a_recorded_session_exported_to_nwb_reads_back_whole() {
     let model_path = tmp.path().join("m.apxm");
     auspex_proto::model_file::save_model(&model_path, &spec, "nwb export e2e").unwrap();
     let record = tmp.path().join("s.apxs");
-    let rt = common::runtime();
-    let running = rt.block_on(daemon(Some(&model_path), Some(&record)));
-    let ep = running.endpoints.clone();
-    let source = auspex::live::ReplaySource::Nwb {
-        path: dir().join("string_stimulus.nwb"),
-        choice: NwbChoice::default(),
-    };
-    rt.block_on(replay(&source, &ep));
-    std::thread::sleep(Duration::from_millis(200));
-    rt.block_on(running.stop());
-
-    let rec = auspex::wire::read_recording(&record).unwrap();
+    let rec = record_replay(Some(&model_path), &record);
     let out = tmp.path().join("s.nwb");
     auspex::commands::export_nwb_cmd(
         &out,
@@ -538,22 +542,10 @@ fn pynwb_reads_back(
 #[test]
 fn a_learning_session_exported_without_a_model_carries_its_learned_decisions() {
     use auspex::nwb::{Column, Nwb};
-    use std::time::Duration;
     let _g = common::serial();
     let tmp = tempfile::tempdir().unwrap();
     let record = tmp.path().join("s.apxs");
-    let rt = common::runtime();
-    let running = rt.block_on(daemon(None, Some(&record)));
-    let ep = running.endpoints.clone();
-    let source = auspex::live::ReplaySource::Nwb {
-        path: dir().join("string_stimulus.nwb"),
-        choice: NwbChoice::default(),
-    };
-    rt.block_on(replay(&source, &ep));
-    std::thread::sleep(Duration::from_millis(200));
-    rt.block_on(running.stop());
-
-    let rec = auspex::wire::read_recording(&record).unwrap();
+    let rec = record_replay(None, &record);
     let out = tmp.path().join("s.nwb");
     let args = auspex::commands::DecodeArgs::default();
     auspex::commands::export_nwb_cmd(&out, &record, None, &args).unwrap();
