@@ -293,20 +293,29 @@ pub fn choose_family(counts: &[u32], candidates: &[CountFamily]) -> FamilyChoice
     let k = t.clamp(1, 5);
     let mut held_out = Vec::new();
     let mut best: Option<(CountFamily, f64)> = None;
+    // Each fold's training counts, gathered once for every candidate family.
+    let trains: Vec<Vec<u32>> = if t < 2 || cands.len() == 1 {
+        Vec::new()
+    } else {
+        (0..k)
+            .map(|fold| {
+                counts
+                    .iter()
+                    .enumerate()
+                    .filter(|(i, _)| i % k != fold)
+                    .map(|(_, c)| *c)
+                    .collect()
+            })
+            .collect()
+    };
     for &fam in &cands {
         let score = if t < 2 || cands.len() == 1 {
             Some(0.0)
         } else {
             let mut total = 0.0;
             let mut ok = true;
-            for fold in 0..k {
-                let train: Vec<u32> = counts
-                    .iter()
-                    .enumerate()
-                    .filter(|(i, _)| i % k != fold)
-                    .map(|(_, c)| *c)
-                    .collect();
-                match fit_family(fam, &train).and_then(|p| CountDist::new(p).ok()) {
+            for (fold, train) in trains.iter().enumerate() {
+                match fit_family(fam, train).and_then(|p| CountDist::new(p).ok()) {
                     Some(d) => {
                         total += counts
                             .iter()
