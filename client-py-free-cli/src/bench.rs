@@ -350,15 +350,16 @@ pub fn model_point(
             break;
         }
         let end = trial.onset + nb as i64;
-        while next_spike < data.spikes.len() && data.spikes[next_spike].0 < trial.onset {
+        while next_spike < data.spikes.len() && data.spikes.tick(next_spike) < trial.onset {
             next_spike += 1;
         }
         let t0 = Instant::now();
         let _ = e.open_trial(i as u64 + 1, trial.onset, None, &mut NullSink);
         for b in 0..nb as i64 {
             let bin_end = trial.onset + b + 1;
-            while next_spike < data.spikes.len() && data.spikes[next_spike].0 < bin_end.min(end) {
-                let (tick, unit) = data.spikes[next_spike];
+            while next_spike < data.spikes.len() && data.spikes.tick(next_spike) < bin_end.min(end)
+            {
+                let (tick, unit) = data.spikes.get(next_spike).expect("in range");
                 let _ = e.spike(unit, tick);
                 in_window += 1;
                 next_spike += 1;

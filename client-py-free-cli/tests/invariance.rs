@@ -51,7 +51,7 @@ struct Tables {
 fn original(data: &Dataset) -> Tables {
     let names = data.stimulus_names();
     Tables {
-        spikes: data.spikes.iter().map(|&(t, u)| (u, t)).collect(),
+        spikes: data.spikes.iter().map(|(t, u)| (u, t)).collect(),
         trials: data
             .trials
             .iter()
@@ -97,11 +97,7 @@ fn rewritten(data: &Dataset, seed: u64, keep_unit_order: bool, list_order: bool)
         .copied()
         .zip(ids.iter().copied())
         .collect();
-    let mut spikes: Vec<(u32, i64)> = data
-        .spikes
-        .iter()
-        .map(|&(t, u)| (renumber[&u], t))
-        .collect();
+    let mut spikes: Vec<(u32, i64)> = data.spikes.iter().map(|(t, u)| (renumber[&u], t)).collect();
     let mut trials: Vec<(u64, i64, String)> = data
         .trials
         .iter()

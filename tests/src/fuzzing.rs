@@ -754,7 +754,7 @@ pub fn declared_sizes(data: &[u8]) {
                     .spikes
                     .iter()
                     .filter(|s| s.0 >= t.onset && s.0 < t.onset + 2_000_000)
-                    .map(|&(tick, u)| (tick - t.onset, u))
+                    .map(|(tick, u)| (tick - t.onset, u))
                     .collect();
                 l.add(auspex_modelling::learn::TrialWindow {
                     id: i as u64,
@@ -943,7 +943,8 @@ pub fn nwb_file(data: &[u8]) {
         };
         let mut notes = Vec::new();
         if let Ok(ds) = nwb.dataset(&choice, 30_000.0, &mut notes) {
-            assert!(ds.spikes.windows(2).all(|w| w[0] <= w[1]), "spikes sorted");
+            let v = ds.spikes.to_vec();
+            assert!(v.windows(2).all(|w| w[0] <= w[1]), "spikes sorted");
             assert!(ds
                 .spikes
                 .iter()

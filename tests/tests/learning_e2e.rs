@@ -59,7 +59,7 @@ fn session_messages(
 ) -> Vec<v1::Inbound> {
     let mut d = data.clone();
     if let Some((u, from)) = late_unit {
-        std::sync::Arc::make_mut(&mut d.spikes).retain(|&(t, unit)| unit != u || t >= from);
+        d.spikes.retain(|t, unit| unit != u || t >= from);
         d.units.retain(|&x| x != u);
     }
     let labels: std::collections::HashMap<u64, (i64, String)> = d

@@ -499,7 +499,7 @@ fn pynwb_reads_back(
         return;
     };
     let mut spikes: std::collections::BTreeMap<String, Vec<f64>> = Default::default();
-    for &(t, u) in data.spikes.iter() {
+    for (t, u) in data.spikes.iter() {
         spikes
             .entry(u.to_string())
             .or_default()
@@ -716,7 +716,7 @@ proptest::proptest! {
             .map(|(t, r)| (t, unit_ids[r]))
             .collect();
         want.sort_unstable();
-        proptest::prop_assert!(*a.spikes == want);
+        proptest::prop_assert!(a.spikes == want);
         let mut units = unit_ids.clone();
         units.sort_unstable();
         proptest::prop_assert_eq!(&a.units, &units);

@@ -14,6 +14,7 @@
 
 use crate::tables::{ReadReport, TableError};
 use auspex_engine::data::{printable, seconds_to_ticks, Dataset, Trial};
+use auspex_engine::spikes::{SpikeTable, SpikeTableBuilder};
 use hdf5_pure::{AttrValue, DType, File};
 use std::collections::{BTreeMap, HashMap};
 use std::path::{Path, PathBuf};
@@ -714,7 +715,7 @@ impl Nwb {
         tick_rate_hz: f64,
         trials: &[Trial],
         notes: &mut Vec<String>,
-    ) -> Result<(Vec<(i64, u32)>, Vec<u32>, BTreeMap<u32, i64>), TableError> {
+    ) -> Result<(SpikeTable, Vec<u32>, BTreeMap<u32, i64>), TableError> {
         let path = "units";
         let info = self.table(path)?;
         if !info.columns.iter().any(|c| c.0 == "spike_times" && c.2) {
@@ -848,7 +849,7 @@ impl Nwb {
         auspex_engine::budget::check(
             &format!("{}: the chosen units' spikes", self.name),
             || format!("{wanted} spikes"),
-            (wanted as u128).saturating_mul(16),
+            (wanted as u128).saturating_mul(8),
         )
         .map_err(|e| TableError(e.to_string()))?;
         let d = self.guard(|| {
@@ -856,7 +857,22 @@ impl Nwb {
                 .dataset(&format!("{path}/spike_times"))
                 .map_err(|e| self.fail(path, &format!("column `spike_times`: {e}")))
         })?;
-        let mut spikes: Vec<(i64, u32)> = Vec::with_capacity(wanted as usize);
+        // Kept units' spikes go straight into the 8-byte-per-spike table (times are checked
+        // non-negative, so tick 0 is the floor).
+        let kept_ids: Vec<u32> = (0..unit_ids.len())
+            .filter(|&r| keep[r])
+            .map(|r| unit_ids[r])
+            .collect();
+        let mut spikes = SpikeTableBuilder::new(&kept_ids, 0, wanted as usize);
+        let slots: Vec<usize> = (0..unit_ids.len())
+            .map(|r| {
+                if keep[r] {
+                    spikes.slot(unit_ids[r]).unwrap_or(0)
+                } else {
+                    0
+                }
+            })
+            .collect();
         // Rows are read a slab at a time and converted at once (bounded extra memory).
         let mut row = 0usize;
         let mut start = 0u64;
@@ -902,7 +918,7 @@ impl Nwb {
                         ),
                     ));
                 }
-                spikes.push((seconds_to_ticks(t, tick_rate_hz), unit_ids[row]));
+                spikes.push(seconds_to_ticks(t, tick_rate_hz), slots[row]);
             }
             start += n;
         }
@@ -913,11 +929,8 @@ impl Nwb {
                 self.name
             ));
         }
-        spikes.sort_unstable();
-        let mut units: Vec<u32> = (0..unit_ids.len())
-            .filter(|&r| keep[r])
-            .map(|r| unit_ids[r])
-            .collect();
+        let spikes = spikes.finish();
+        let mut units = kept_ids;
         units.sort_unstable();
         // Units observed from part-way on (`obs_intervals`): their earlier silence is no evidence.
         let mut declared_from = BTreeMap::new();

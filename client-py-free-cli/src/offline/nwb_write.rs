@@ -166,7 +166,7 @@ pub fn build(x: &ExportInput<'_>) -> anyhow::Result<Vec<u8>> {
 
     // Units: spike times in seconds, split per unit, in the dataset's unit order.
     let mut per_unit: std::collections::HashMap<u32, Vec<f64>> = std::collections::HashMap::new();
-    for &(tick, u) in x.data.spikes.iter() {
+    for (tick, u) in x.data.spikes.iter() {
         per_unit.entry(u).or_default().push(sec(tick));
     }
     let mut times = Vec::with_capacity(x.data.spikes.len());

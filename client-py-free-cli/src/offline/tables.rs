@@ -343,7 +343,10 @@ pub fn read_dataset(
         units.insert(unit);
         sp.push((seconds_to_ticks(t, tick_rate_hz), unit));
     }
-    sp.sort_unstable();
+    // The file's text goes before the spikes are packed (8 bytes each), so the two are never
+    // held together with the pairs.
+    drop(st);
+    let sp = auspex_engine::SpikeTable::new(sp);
     let tt = read_table(trials, &["trial", "onset_s", "stimulus"], tick_rate_hz)?;
     let mut tr = Vec::with_capacity(tt.lines_upper_bound());
     let mut seen: HashMap<u64, usize> = HashMap::new();
@@ -369,7 +372,7 @@ pub fn read_dataset(
     let data = Dataset {
         tick_rate_hz,
         trials: tr,
-        spikes: sp.into(),
+        spikes: sp,
         units: units.into_iter().collect(),
         declared_from: Default::default(),
         stimulus_order: Vec::new(),
@@ -502,12 +505,11 @@ pub fn report_for(data: &Dataset, window_s: f64) -> ReadReport {
     let window_ticks = seconds_to_ticks(window_s, data.tick_rate_hz).max(1);
     let mut in_window: std::collections::HashSet<u32> = std::collections::HashSet::new();
     for t in &data.trials {
-        let a = data.spikes.partition_point(|s| s.0 < t.onset);
-        let b = data
+        let r = data
             .spikes
-            .partition_point(|s| s.0 < t.onset.saturating_add(window_ticks));
-        for s in &data.spikes[a..b] {
-            in_window.insert(s.1);
+            .between(t.onset, t.onset.saturating_add(window_ticks));
+        for (_, unit) in data.spikes.range(r) {
+            in_window.insert(unit);
         }
     }
     ReadReport {
@@ -530,7 +532,7 @@ pub fn write_dataset(data: &Dataset, spikes: &Path, trials: &Path) -> std::io::R
     let digits = (data.tick_rate_hz.log10().ceil().max(0.0)) as usize;
     let mut w = std::io::BufWriter::new(std::fs::File::create(spikes)?);
     writeln!(w, "unit,time_s")?;
-    for &(tick, unit) in data.spikes.iter() {
+    for (tick, unit) in data.spikes.iter() {
         writeln!(w, "{unit},{:.*}", digits, tick as f64 / data.tick_rate_hz)?;
     }
     w.flush()?;
@@ -592,7 +594,7 @@ mod tests {
             "trial,onset_s,stimulus\r1,0.5,N\r2,1.5,S\r",
         );
         let (data, _) = read_dataset(&s, &t, 1e6, 0.25).unwrap();
-        assert_eq!(*data.spikes, vec![(510_000, 3), (1_600_000, 4)]);
+        assert_eq!(data.spikes, vec![(510_000, 3), (1_600_000, 4)]);
         let long: String = (0..5000).map(|i| format!("c{i},")).collect();
         let e = err(&format!("{long}\n"), GOOD_T);
         assert!(
@@ -612,7 +614,7 @@ mod tests {
             "trial;onset_s;stimulus\n1;0.5;N\n2;1.5;S\n",
         );
         let (data, _) = read_dataset(&s, &t, 1e6, 0.25).unwrap();
-        assert_eq!(*data.spikes, vec![(510_000, 3), (1_600_000, 4)]);
+        assert_eq!(data.spikes, vec![(510_000, 3), (1_600_000, 4)]);
         assert_eq!(data.trials[1].stimulus.as_deref(), Some("S"));
     }
 

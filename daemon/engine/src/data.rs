@@ -24,7 +24,7 @@ pub struct Dataset {
     pub trials: Vec<Trial>,
     /// Spikes (tick, unit), sorted. Shared: a subset of the trials (a held-out fold, a
     /// training fold) reads the same spikes instead of copying them.
-    pub spikes: std::sync::Arc<Vec<(i64, u32)>>,
+    pub spikes: crate::SpikeTable,
     /// Every unit id seen in the spike table, plus any declared without spikes, sorted.
     pub units: Vec<u32>,
     /// Units declared part-way through the session (online sorting isolated them): unit → tick
@@ -235,11 +235,11 @@ impl Dataset {
                 }
             }
             let from = si;
-            while si < self.spikes.len() && self.spikes[si].0 <= next {
+            while si < self.spikes.len() && self.spikes.tick(si) <= next {
                 si += 1;
             }
             out.push(Event::Batch {
-                spikes: self.spikes[from..si].to_vec(),
+                spikes: self.spikes.range(from..si).collect(),
                 watermark: next,
             });
             wm = next;
@@ -267,7 +267,7 @@ impl Dataset {
         let mut covered_until = i64::MIN; // exclusive end of the union of windows started so far
         let mut onsets: Vec<i64> = self.trials.iter().map(|t| t.onset).collect();
         onsets.sort_unstable();
-        for &(tick, _) in self.spikes.iter() {
+        for (tick, _) in self.spikes.iter() {
             while ti < onsets.len() && onsets[ti] <= tick {
                 covered_until = covered_until.max(onsets[ti].saturating_add(window_ticks));
                 ti += 1;

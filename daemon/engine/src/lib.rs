@@ -14,7 +14,7 @@
 //! Lives here: `count` and `model` (evaluation only), `prepared`/`table` (budgeted lookup
 //! tables), `engine` (the state machine), `calibration` (β(b), ε as applied), `decision`,
 //! `tally` (the running per-unit tally the engine reports), `data` (a dataset as the engine's
-//! input events), `ticks`, `special` (numerics).
+//! input events), `spikes` (a dataset's spikes, 8 bytes each), `ticks`, `special` (numerics).
 //!
 //! Must not live here: fitting, calibration fitting, validation, simulation, any statistic of a
 //! session (those are `auspex-modelling`, which depends on this crate, never the reverse); I/O of
@@ -33,6 +33,7 @@ pub mod information;
 pub mod model;
 pub mod prepared;
 pub mod special;
+pub mod spikes;
 mod table;
 pub mod tally;
 pub mod ticks;
@@ -44,3 +45,4 @@ pub use engine::{
 };
 pub use model::{CellSpec, CellSummary, Model, ModelSpec};
 pub use prepared::{LookupBudget, PreparedModel};
+pub use spikes::SpikeTable;

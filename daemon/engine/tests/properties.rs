@@ -293,8 +293,9 @@ fn gaps_between_windows_cost_one_batch_and_change_no_frame() {
     for t in &data.trials {
         let mut wm = t.onset - 1;
         // Spikes before this onset are not in any window: hand them over with the watermark.
-        while si < data.spikes.len() && data.spikes[si].0 <= wm {
-            e.spike(data.spikes[si].1, data.spikes[si].0).unwrap();
+        while si < data.spikes.len() && data.spikes.tick(si) <= wm {
+            let (tick, unit) = data.spikes.get(si).unwrap();
+            e.spike(unit, tick).unwrap();
             si += 1;
         }
         if wm > e.watermark() {
@@ -313,8 +314,9 @@ fn gaps_between_windows_cost_one_batch_and_change_no_frame() {
         .unwrap();
         while wm < t.onset + window {
             wm += 1000;
-            while si < data.spikes.len() && data.spikes[si].0 <= wm {
-                e.spike(data.spikes[si].1, data.spikes[si].0).unwrap();
+            while si < data.spikes.len() && data.spikes.tick(si) <= wm {
+                let (tick, unit) = data.spikes.get(si).unwrap();
+                e.spike(unit, tick).unwrap();
                 si += 1;
             }
             e.advance(wm, &mut by_bin).unwrap();

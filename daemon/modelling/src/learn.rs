@@ -520,7 +520,7 @@ impl Learner {
         let mut d = self.dataset();
         let units: std::collections::BTreeSet<u32> = spec.units.iter().copied().collect();
         d.units.retain(|u| units.contains(u));
-        std::sync::Arc::make_mut(&mut d.spikes).retain(|(_, u)| units.contains(u));
+        d.spikes.retain(|_, u| units.contains(&u));
         d.trials.retain(|t| {
             t.stimulus
                 .as_ref()
@@ -645,10 +645,10 @@ mod tests {
         let mut data = data;
         let t = data.trials[7].onset + 10_000;
         let unit = data.units[0];
-        let spikes = std::sync::Arc::make_mut(&mut data.spikes);
+        let mut spikes = data.spikes.to_vec();
         spikes.push((t, unit));
         spikes.push((t, unit));
-        spikes.sort_unstable();
+        data.spikes = spikes.into();
         let mut l = Learner::new(opts.clone(), 1e6).unwrap();
         l.add_units(data.units.iter().copied());
         for w in collect_all(&data, 50_000) {

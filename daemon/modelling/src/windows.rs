@@ -157,11 +157,8 @@ pub fn windows(data: &Dataset, units: &[u32], bin_ticks: i64, n_bins: usize) -> 
     let mut out = vec![Ragged::default(); units.len()];
     let window = bin_ticks * n_bins as i64;
     for (i, t) in data.trials.iter().enumerate() {
-        let a = data.spikes.partition_point(|s| s.0 < t.onset);
-        let b = data
-            .spikes
-            .partition_point(|s| s.0 < t.onset.saturating_add(window));
-        for &(tick, unit) in &data.spikes[a..b] {
+        let r = data.spikes.between(t.onset, t.onset.saturating_add(window));
+        for (tick, unit) in data.spikes.range(r) {
             if let Some(&u) = index.get(&unit) {
                 out[u].push(i, (tick - t.onset) as f64 / bin_ticks as f64);
             }
@@ -179,11 +176,9 @@ pub fn spikes_in_windows(data: &Dataset, window_ticks: i64) -> usize {
     data.trials
         .iter()
         .map(|t| {
-            let a = data.spikes.partition_point(|s| s.0 < t.onset);
-            let b = data
-                .spikes
-                .partition_point(|s| s.0 < t.onset.saturating_add(window_ticks));
-            b - a
+            data.spikes
+                .between(t.onset, t.onset.saturating_add(window_ticks))
+                .len()
         })
         .sum()
 }
@@ -260,7 +255,7 @@ mod tests {
         let data = Dataset {
             tick_rate_hz: 10_000.0,
             trials,
-            spikes: std::sync::Arc::new(spikes),
+            spikes: spikes.into(),
             units: (0..n as u32).collect(),
             ..Default::default()
         };
