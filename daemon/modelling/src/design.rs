@@ -255,13 +255,20 @@ impl Design {
     }
 
     /// Gamma posteriors (shape, rate) of the unit's mean count per stimulus: a prior worth one
-    /// trial at the unit's overall mean, and the counts tempered by its Fano factor.
+    /// trial, and the counts tempered by its Fano factor.
+    ///
+    /// The prior's mean is the mean over the stimuli shown of each one's mean count, every
+    /// stimulus weighted alike however often it was shown (with half a spike over one more
+    /// stimulus, so a silent start is not a zero). Weighting by trials instead would let a
+    /// policy that shows the preferred stimulus often raise every other stimulus's prior, and
+    /// the rarely shown ones would look like rivals they are not.
     pub fn posterior(&self, u: usize) -> Vec<(f64, f64)> {
         let f = self.fano(u);
-        let (s_all, n_all) = self.stats[u]
+        let (means, shown) = self.stats[u]
             .iter()
-            .fold((0.0, 0.0), |a, &(n, s, _)| (a.0 + s, a.1 + n));
-        let prior_mean = ((s_all + 0.5) / (n_all + 1.0)).max(0.05);
+            .filter(|&&(n, _, _)| n > 0.0)
+            .fold((0.0, 0.0), |a, &(n, s, _)| (a.0 + s / n, a.1 + 1.0));
+        let prior_mean = ((means + 0.5) / (shown + 1.0)).max(0.05);
         self.stats[u]
             .iter()
             .map(|&(n, s, _)| (prior_mean + s / f, 1.0 + n / f))
@@ -786,7 +793,8 @@ mod tests {
     use proptest::prelude::*;
 
     /// A hand-computed case: one unit, two stimuli, counts 2 and 4 over one trial each, Fano 1
-    /// (too few trials to estimate it): prior mean (6 + 0.5) / (2 + 1) = 13/6 worth one trial,
+    /// (too few trials to estimate it): prior mean, the stimuli's mean counts averaged with
+    /// half a spike over one more, (2 + 4 + 0.5) / (2 + 1) = 13/6 worth one trial,
     /// so the posteriors are Gamma(13/6 + 2, 2) and Gamma(13/6 + 4, 2).
     #[test]
     fn the_posterior_is_the_conjugate_update() {
@@ -799,13 +807,35 @@ mod tests {
         assert!((p[1].0 - (a0 + 4.0)).abs() < 1e-12 && (p[1].1 - 2.0).abs() < 1e-12);
     }
 
+    /// Showing the preferred stimulus again and again (with the same count, so the Fano factor
+    /// stays 1) leaves the other stimuli's posteriors exactly where they were: the prior weighs
+    /// stimuli, not trials. Weighted by trials, the prior mean here would climb from
+    /// (10 + 2 + 2 + 0.5) / 4 towards 10 and make stimuli 1 and 2 look like rivals.
+    #[test]
+    fn a_stimulus_shown_more_does_not_move_the_others_prior() {
+        let mut d = Design::new(Policy::FindTuning, Constraints::default(), 1, 3, 1);
+        d.record(0, &[10]);
+        d.record(1, &[2]);
+        d.record(2, &[2]);
+        let before = d.posterior(0);
+        let a0 = 14.5 / 4.0;
+        assert!((before[1].0 - (a0 + 2.0)).abs() < 1e-12 && (before[1].1 - 2.0).abs() < 1e-12);
+        for _ in 0..20 {
+            d.record(0, &[10]);
+        }
+        let after = d.posterior(0);
+        assert_eq!(before[1..], after[1..]);
+        assert!((after[0].0 - (a0 + 210.0)).abs() < 1e-12 && (after[0].1 - 22.0).abs() < 1e-12);
+    }
+
     /// improve-decoding's figures by hand, one unit and two stimuli: counts 2 and 6 over two
     /// trials each (Fano 1: within-stimulus variances 0 and 0 are below Poisson). Prior mean
-    /// (16 + 0.5) / (4 + 1) = 3.3 worth one trial, so the posteriors are Gamma(3.3 + 4, 3) and
-    /// Gamma(3.3 + 12, 3): means 7.3/3 and 15.3/3, variances 7.3/9 and 15.3/9.
-    /// D² = (8/3)² / ((7.3/3 + 15.3/3)/2 + 7.3/9 + 15.3/9); error Φ(−D/2) for each stimulus;
+    /// (2 + 6 + 0.5) / (2 + 1) = 8.5/3 worth one trial, so the posteriors are
+    /// Gamma(8.5/3 + 4, 3) and Gamma(8.5/3 + 12, 3): means 20.5/9 and 44.5/9, variances
+    /// 20.5/27 and 44.5/27.
+    /// D² = (8/3)² / ((20.5/9 + 44.5/9)/2 + 20.5/27 + 44.5/27); error Φ(−D/2) for each stimulus;
     /// accuracy 1 − Φ(−D/2). One more trial of stimulus 0 shrinks its variance to
-    /// (7.3/3) / (3 + 1).
+    /// (20.5/9) / (3 + 1).
     #[test]
     fn decoding_gain_by_hand() {
         let mut d = Design::new(Policy::ImproveDecoding, Constraints::default(), 1, 2, 1);
@@ -813,8 +843,8 @@ mod tests {
             d.record(0, &[2]);
             d.record(1, &[6]);
         }
-        let (m0, m1): (f64, f64) = (7.3 / 3.0, 15.3 / 3.0);
-        let (v0, v1) = (7.3 / 9.0, 15.3 / 9.0);
+        let (m0, m1): (f64, f64) = (20.5 / 9.0, 44.5 / 9.0);
+        let (v0, v1) = (20.5 / 27.0, 44.5 / 27.0);
         let phi = |x: f64| 0.5 * statrs::function::erf::erfc(-x / std::f64::consts::SQRT_2);
         let d2 = (m1 - m0).powi(2) / ((m0 + m1) / 2.0 + v0 + v1);
         let now = 1.0 - phi(-d2.sqrt() / 2.0);
