@@ -11,8 +11,8 @@
 //! **balanced-blocks** (every stimulus once per block, seeded order) is the reference.
 //!
 //! A unit's tuning is **settled** when, over draws from its posterior, the stimulus of largest
-//! mean is within one neighbour (stimuli in circular order) of the posterior's most frequent
-//! one in at least [`SETTLED`] of them.
+//! mean is within one neighbour (stimuli in circular order) of one stimulus — the unit's
+//! preferred one as known within one neighbour — in at least [`SETTLED`] of them.
 
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -279,8 +279,8 @@ impl Design {
         argmax_draw(post, &mut self.rng)
     }
 
-    /// How settled unit `u`'s preferred stimulus is: (the most frequent argmax over posterior
-    /// draws, the share of draws within one neighbour of it). Draws from the design's own
+    /// How settled unit `u`'s preferred stimulus is: (the stimulus within one neighbour of which
+    /// the most posterior draws have their best, that share). Draws from the design's own
     /// random stream (see [`Design::preferred_shares`] for one that leaves it alone).
     pub fn settledness(&mut self, u: usize) -> (usize, f64) {
         let post = self.posterior(u);
@@ -305,7 +305,7 @@ impl Design {
 
     /// For reports: each stimulus's posterior probability of being unit `u`'s preferred one,
     /// estimated from `draws` posterior draws with `rng` (the design's own stream, and so its
-    /// choices, are left alone), and [`Design::settledness`]'s (mode, share) from the same draws.
+    /// choices, are left alone), and [`Design::settledness`]'s (centre, share) from the same draws.
     pub fn preferred_shares(
         &self,
         u: usize,
@@ -317,12 +317,16 @@ impl Design {
         for _ in 0..draws.max(1) {
             hits[argmax_draw(&post, rng)] += 1;
         }
-        let (mode, share) = settled_of(&hits);
+        let (centre, share) = settled_of(&hits);
         let n = draws.max(1) as f64;
-        (hits.iter().map(|&h| h as f64 / n).collect(), (mode, share))
+        (
+            hits.iter().map(|&h| h as f64 / n).collect(),
+            (centre, share),
+        )
     }
 
-    /// Whether every unit's preferred stimulus is settled: the modes when so.
+    /// Whether every unit's preferred stimulus is settled: each one's (within one neighbour)
+    /// when so.
     pub fn all_settled(&mut self) -> Option<Vec<usize>> {
         let mut modes = Vec::new();
         for u in 0..self.stats.len() {
@@ -580,13 +584,19 @@ fn argmax_draw(post: &[(f64, f64)], rng: &mut ChaCha8Rng) -> usize {
     best.0
 }
 
-/// (the most frequent best stimulus, the share of draws within one neighbour of it).
+/// (the stimulus whose neighbourhood holds the most draws' best stimulus, that share): the
+/// preferred stimulus as known within one neighbour, and how probably. Ties go to the centre
+/// that is itself the best more often.
+///
+/// Not the most frequent best stimulus's neighbourhood: on a broad peak the draws split between
+/// the peak and its two neighbours, and when one neighbour is by chance the most frequent, the
+/// other one lies outside its neighbourhood although the peak's holds both.
 fn settled_of(hits: &[usize]) -> (usize, f64) {
     let ns = hits.len();
     let total: usize = hits.iter().sum();
-    let mode = (0..ns).max_by_key(|&s| hits[s]).unwrap_or(0);
-    let near: usize = neighbours(mode, ns).iter().map(|&s| hits[s]).sum();
-    (mode, near as f64 / total.max(1) as f64)
+    let near = |c: usize| -> usize { neighbours(c, ns).iter().map(|&s| hits[s]).sum() };
+    let centre = (0..ns).max_by_key(|&c| (near(c), hits[c])).unwrap_or(0);
+    (centre, near(centre) as f64 / total.max(1) as f64)
 }
 
 /// A stimulus and its two neighbours in circular order.
@@ -828,6 +838,25 @@ mod tests {
         assert!((after[0].0 - (a0 + 210.0)).abs() < 1e-12 && (after[0].1 - 22.0).abs() < 1e-12);
     }
 
+    /// The settled share is that of the best neighbourhood, not the most frequent best
+    /// stimulus's: draws split 40 / 35 / 20 over stimuli 3, 4, 5 (5 left over, at 0) are 95%
+    /// within one neighbour of 4, though 3 is the most frequent and its neighbourhood holds
+    /// only 75%. Ties between centres go to the one that is itself the best more often.
+    #[test]
+    fn settled_is_the_best_neighbourhood() {
+        let mut hits = vec![0usize; 8];
+        (hits[3], hits[4], hits[5], hits[0]) = (40, 35, 20, 5);
+        let (centre, share) = settled_of(&hits);
+        assert_eq!(centre, 4);
+        assert!((share - 0.95).abs() < 1e-12);
+        // 2, 3, 4 and 3, 4, 5 both hold 40 of 60: centre 3 (20 itself) beats 4 (10 itself).
+        let hits = [0, 0, 10, 20, 10, 10, 0, 10];
+        assert_eq!(settled_of(&hits), (3, 40.0 / 60.0));
+        let hits = [0, 0, 10, 20, 20, 10, 0, 0];
+        let (c, s) = settled_of(&hits);
+        assert!((c == 3 || c == 4) && (s - 50.0 / 60.0).abs() < 1e-12);
+    }
+
     /// improve-decoding's figures by hand, one unit and two stimuli: counts 2 and 6 over two
     /// trials each (Fano 1: within-stimulus variances 0 and 0 are below Poisson). Prior mean
     /// (2 + 6 + 0.5) / (2 + 1) = 8.5/3 worth one trial, so the posteriors are
@@ -914,6 +943,31 @@ mod tests {
     }
 
     proptest! {
+        /// The settled share is a probability, at least that of the most frequent best
+        /// stimulus's neighbourhood, and turning the circle of stimuli turns the centre with it
+        /// (where no two centres tie).
+        #[test]
+        fn settled_share_is_bounded_and_turns_with_the_stimuli(
+            hits in proptest::collection::vec(0usize..50, 3..20),
+            turn in 0usize..20,
+        ) {
+            let ns = hits.len();
+            let (centre, share) = settled_of(&hits);
+            prop_assert!((0.0..=1.0).contains(&share));
+            let total = hits.iter().sum::<usize>().max(1) as f64;
+            let mode = (0..ns).max_by_key(|&s| hits[s]).unwrap();
+            let mode_share = neighbours(mode, ns).iter().map(|&s| hits[s]).sum::<usize>() as f64;
+            prop_assert!(share >= mode_share / total - 1e-12);
+            let key = |c: usize| (neighbours(c, ns).iter().map(|&s| hits[s]).sum::<usize>(), hits[c]);
+            let unique = (0..ns).filter(|&c| key(c) == key(centre)).count() == 1;
+            let turned: Vec<usize> = (0..ns).map(|s| hits[(s + ns - turn % ns) % ns]).collect();
+            let (c2, s2) = settled_of(&turned);
+            prop_assert!((s2 - share).abs() < 1e-12);
+            if unique {
+                prop_assert_eq!(c2, (centre + turn) % ns);
+            }
+        }
+
         /// improve-decoding's figures stay in their bounds (expected accuracy in [0, 1], a gain
         /// no larger than what is left to gain) and do not depend on the order the stimuli are
         /// listed in: relabelling the stimuli relabels the gains, the accuracy is unchanged.
