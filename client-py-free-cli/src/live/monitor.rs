@@ -982,9 +982,13 @@ pub fn steering_lines(s: &v1::Status) -> Vec<String> {
     }
     for u in &st.units {
         out.push(format!(
-            "  unit {:>5}: prefers {} ({:.0}% within one neighbour{}) · margin {:.2} SD · {} trials",
+            "  unit {:>5}: prefers {} ±1 ({:.0}%{}) · margin {:.2} SD · {} trials",
             u.unit,
-            if u.preferred.is_empty() { "?".into() } else { printable(&u.preferred) },
+            if u.preferred.is_empty() {
+                "?".into()
+            } else {
+                printable(&u.preferred)
+            },
             100.0 * u.settled,
             if u.settled >= 0.95 { ", settled" } else { "" },
             u.margin,
