@@ -592,7 +592,7 @@ impl Nwb {
         Ok(Dataset {
             tick_rate_hz,
             trials,
-            spikes: spikes.into(),
+            spikes,
             units,
             declared_from,
             stimulus_order: Vec::new(),

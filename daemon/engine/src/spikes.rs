@@ -253,19 +253,30 @@ pub enum Iter<'a> {
     Wide(std::slice::Iter<'a, (i64, u32)>),
 }
 
-impl Iterator for Iter<'_> {
-    type Item = (i64, u32);
+impl Iter<'_> {
+    /// The next spike from the front, or from the back.
     #[inline]
-    fn next(&mut self) -> Option<(i64, u32)> {
+    fn step(&mut self, back: bool) -> Option<(i64, u32)> {
         match self {
             Iter::Packed {
                 keys,
                 base,
                 shift,
                 ids,
-            } => keys.next().map(|&k| decode(*base, *shift, ids, k)),
-            Iter::Wide(it) => it.next().copied(),
+            } => {
+                let k = if back { keys.next_back() } else { keys.next() };
+                k.map(|&k| decode(*base, *shift, ids, k))
+            }
+            Iter::Wide(it) => if back { it.next_back() } else { it.next() }.copied(),
         }
+    }
+}
+
+impl Iterator for Iter<'_> {
+    type Item = (i64, u32);
+    #[inline]
+    fn next(&mut self) -> Option<(i64, u32)> {
+        self.step(false)
     }
     fn size_hint(&self) -> (usize, Option<usize>) {
         let n = self.len();
@@ -284,15 +295,7 @@ impl ExactSizeIterator for Iter<'_> {
 
 impl DoubleEndedIterator for Iter<'_> {
     fn next_back(&mut self) -> Option<(i64, u32)> {
-        match self {
-            Iter::Packed {
-                keys,
-                base,
-                shift,
-                ids,
-            } => keys.next_back().map(|&k| decode(*base, *shift, ids, k)),
-            Iter::Wide(it) => it.next_back().copied(),
-        }
+        self.step(true)
     }
 }
 
