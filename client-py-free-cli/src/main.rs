@@ -228,6 +228,12 @@ enum Cmd {
         /// Give up after this many trials
         #[arg(long, default_value_t = 3000)]
         max_trials: usize,
+        /// Share of the circle the units' preferred stimuli lie in, around one centre per
+        /// seed: 1 = anywhere, each unit on its own; 0.5 = within half the circle, as units
+        /// recorded close together often share a preference (stimuli far from it are then
+        /// harder to tell apart)
+        #[arg(long, default_value_t = 1.0, value_parser = unit_interval)]
+        preference_spread: f64,
         /// Whole balanced blocks before any policy choice
         #[arg(long, default_value_t = 1)]
         warmup_blocks: usize,
@@ -880,12 +886,13 @@ fn main() {
             Some(m) => commands::export_cmd(&m, out.as_deref()),
             None => Err(anyhow::anyhow!("give --model FILE (or --nwb OUT --session REC)")),
         },
-        Cmd::ClosedLoopSim { units, stimuli, seeds, max_trials, through_daemon: true, policies, ingest, control, .. } => runtime().and_then(|rt| {
-            rt.block_on(auspex::live::closed_loop::through_daemon_cmd(&units, &stimuli, seeds, max_trials as u64, &policies, &ingest, &control))
+        Cmd::ClosedLoopSim { units, stimuli, preference_spread, seeds, max_trials, through_daemon: true, policies, ingest, control, .. } => runtime().and_then(|rt| {
+            rt.block_on(auspex::live::closed_loop::through_daemon_cmd(&units, &stimuli, preference_spread, seeds, max_trials as u64, &policies, &ingest, &control))
         }),
-        Cmd::ClosedLoopSim { units, stimuli, seeds, max_trials, warmup_blocks, min_share, max_run, json, goal, accuracy, .. } => auspex::offline::steering::closed_loop_cmd(
+        Cmd::ClosedLoopSim { units, stimuli, preference_spread, seeds, max_trials, warmup_blocks, min_share, max_run, json, goal, accuracy, .. } => auspex::offline::steering::closed_loop_cmd(
             &units,
             &stimuli,
+            preference_spread,
             seeds,
             max_trials,
             auspex_modelling::design::Constraints { warmup_blocks, min_share, max_run },

@@ -199,8 +199,11 @@ struct Snapshot {
 struct Estimates {
     epoch: u64,
     units: Vec<Option<UnitEstimate>>,
-    /// improve-decoding's gains as of this many trials: (trials, expected accuracy, gains).
-    gains: Option<(u64, f64, Vec<f64>)>,
+    /// improve-decoding's gains as of this many trials — (trials, expected accuracy, gains) —
+    /// for the latest two snapshots: a choice after trial n uses those as of n − 1
+    /// ([`Design::decoding_gains_before_last`]), which the estimator has had a whole trial to
+    /// compute; the latest are kept for the choice after the next trial.
+    gains: Vec<(u64, f64, Vec<f64>)>,
 }
 
 /// One unit's estimate: each stimulus's probability of being its preferred one, the most
@@ -245,16 +248,19 @@ fn estimate(slot: SnapshotSlot, out: Arc<Mutex<Estimates>>, seed: u64) {
             (cursor, epoch) = (0, snap.epoch);
         }
         // improve-decoding's gains first (a function of the counts alone, which both designs
-        // share): a request after this trial then finds them ready instead of computing them
-        // on the engine thread. Only once the session has asked for it.
+        // share): a request after the next trial then finds them ready instead of computing
+        // them on the engine thread. Only once the session has asked for it.
         if snap.decoding {
             let (now, gains) = snap.design.decoding_gains();
             let mut e = out.lock().expect("steering estimates");
             if e.epoch != snap.epoch {
                 e.epoch = snap.epoch;
                 e.units.clear();
+                e.gains.clear();
             }
-            e.gains = Some((snap.trials, now, gains));
+            e.gains
+                .retain(|g| g.0 + 1 >= snap.trials && g.0 != snap.trials);
+            e.gains.push((snap.trials, now, gains));
         }
         for k in 0..n {
             let u = (cursor + k) % n;
@@ -552,14 +558,15 @@ impl Worker {
         if s.units.is_empty() {
             return err(format!("{name}: the session declared no units (SessionStart.units), so there are no counts to learn from"));
         }
-        // improve-decoding's gains for these very counts, if the estimator has them (else the
-        // choice computes them here: the same numbers either way).
+        // improve-decoding's gains as of every trial but the last, if the estimator has them
+        // (else the choice computes them here: the same numbers either way).
+        let before_last = s.trials.saturating_sub(1);
         let ready = (policy == Policy::ImproveDecoding)
             .then(|| match self.estimates.try_lock() {
                 Ok(e) if e.epoch == self.epoch => e
                     .gains
-                    .as_ref()
-                    .filter(|g| g.0 == s.trials)
+                    .iter()
+                    .find(|g| g.0 == before_last)
                     .map(|g| (g.1, g.2.clone())),
                 _ => None,
             })
@@ -643,7 +650,7 @@ impl Worker {
             (Why::TopTwo { .. }, None) => ("top-two draw".into(), f64::NAN, String::new(), f64::NAN),
             (Why::Accuracy { gain, now, runner_up }, _) => (
                 format!(
-                    "largest expected gain in decoding accuracy: {:.1}% now, +{:.3} points with this stimulus (runner-up {} +{:.3})",
+                    "largest expected gain in decoding accuracy: {:.1}% as of trial {before_last}, +{:.3} points with this stimulus (runner-up {} +{:.3})",
                     100.0 * now,
                     100.0 * gain,
                     auspex_engine::data::printable(&name(runner_up.0 as usize)),

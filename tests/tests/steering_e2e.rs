@@ -109,6 +109,7 @@ fn find_tuning_learns_each_units_preference_in_closed_loop_from_the_first_trial(
         units: 2,
         stimuli: NS,
         seed: 7,
+        spread: 1.0,
         max_trials: 600,
     };
     let mut seen = 0u64;
@@ -201,6 +202,7 @@ fn improve_decoding_explains_its_choices_and_replays() {
         units: 4,
         stimuli: ns,
         seed: 3,
+        spread: 1.0,
         max_trials: 80,
     };
     let mut seen = 0u64;

@@ -29,6 +29,9 @@ pub struct ThroughDaemon {
     pub stimuli: usize,
     /// Seed of the units (their preferences and their counts).
     pub seed: u64,
+    /// Share of the circle the units' preferences lie in (1: anywhere;
+    /// `auspex_modelling::design::units_within`).
+    pub spread: f64,
     /// Give up after this many trials.
     pub max_trials: u64,
 }
@@ -75,7 +78,7 @@ pub async fn run(
     }
     let t0 = Instant::now();
     let names = direction_names(o.stimuli);
-    let mut world = SimulatedUnits::new(o.seed, o.units, o.stimuli);
+    let mut world = SimulatedUnits::new(o.seed, o.units, o.stimuli, o.spread);
     let mut push = connect_push(&o.ingest).await?;
     let sender = "closed-loop-sim";
     let mut seq = 0u64;
@@ -217,9 +220,11 @@ pub async fn run(
 
 /// `auspex closed-loop-sim --through-daemon`: every (units, stimuli) size, seed and policy in
 /// turn against the running daemon; a line per experiment, medians per policy at the end.
+#[allow(clippy::too_many_arguments)]
 pub async fn through_daemon_cmd(
     units: &[usize],
     stimuli: &[usize],
+    spread: f64,
     seeds: u64,
     max_trials: u64,
     policies: &[String],
@@ -235,7 +240,7 @@ pub async fn through_daemon_cmd(
             eprintln!("note: the daemon is in a session ({:?}); each experiment here starts a session of its own", st.session_name);
         }
     }
-    println!("trials until the daemon's status shows every unit's preferred stimulus settled (≥ {:.0}% within one neighbour), and whether it is right; the daemon's own constraints apply", 100.0 * SETTLED);
+    println!("trials until the daemon's status shows every unit's preferred stimulus settled (≥ {:.0}% within one neighbour), and whether it is right; {}; the daemon's own constraints apply", 100.0 * SETTLED, auspex_modelling::design::spread_words(spread));
     let mut rows: Vec<(usize, usize, String, Vec<Option<u64>>)> = Vec::new();
     for &nu in units {
         for &ns in stimuli {
@@ -249,6 +254,7 @@ pub async fn through_daemon_cmd(
                         units: nu,
                         stimuli: ns,
                         seed,
+                        spread,
                         max_trials,
                     };
                     let r = run(&o, &mut |_| {}).await?;

@@ -5,7 +5,7 @@
 //! parallel on every core, a progress bar.
 
 use auspex_modelling::design::{
-    trials_to_accuracy, trials_to_tuning, units_of, Constraints, Policy,
+    trials_to_accuracy, trials_to_tuning, units_within, Constraints, Policy,
 };
 
 /// What an experiment runs until.
@@ -59,6 +59,7 @@ impl PolicyFigures {
 pub fn compare(
     nu: usize,
     ns: usize,
+    spread: f64,
     seeds: u64,
     cap: usize,
     constraints: Constraints,
@@ -80,7 +81,7 @@ pub fn compare(
                                 if s >= seeds {
                                     break;
                                 }
-                                let units = units_of(s, nu, ns);
+                                let units = units_within(s, nu, ns, spread);
                                 let t = match goal {
                                     Goal::Tuning => {
                                         trials_to_tuning(&units, ns, p, constraints, s, cap)
@@ -110,9 +111,11 @@ pub fn compare(
 }
 
 /// The command: every (units, stimuli) cell, a table, JSON on request.
+#[allow(clippy::too_many_arguments)]
 pub fn closed_loop_cmd(
     units: &[usize],
     stimuli: &[usize],
+    spread: f64,
     seeds: u64,
     cap: usize,
     constraints: Constraints,
@@ -138,7 +141,9 @@ pub fn closed_loop_cmd(
     let mut rows = Vec::new();
     for &nu in units {
         for &ns in stimuli {
-            let figs = compare(nu, ns, seeds, cap, constraints, goal, &|| bar.inc(1));
+            let figs = compare(nu, ns, spread, seeds, cap, constraints, goal, &|| {
+                bar.inc(1)
+            });
             rows.push((nu, ns, figs));
         }
     }
@@ -154,7 +159,8 @@ pub fn closed_loop_cmd(
         ),
     };
     println!(
-        "trials until {until}; {seeds} seeds; cap {cap} trials; warm-up {} block(s), minimum share {}, at most {} in a row",
+        "trials until {until}; {seeds} seeds; {}; cap {cap} trials; warm-up {} block(s), minimum share {}, at most {} in a row",
+        auspex_modelling::design::spread_words(spread),
         constraints.warmup_blocks,
         constraints.min_share,
         constraints.max_run

@@ -33,7 +33,8 @@ pub enum Policy {
     /// Top-two Thompson sampling for the least settled unit's preferred stimulus.
     FindTuning,
     /// The stimulus whose next trial most raises the expected accuracy of decoding one trial
-    /// from the units' counts ([`Design::decoding_gains`]).
+    /// from the units' counts ([`Design::decoding_gains`]), as judged on every trial but the
+    /// last ([`Design::decoding_gains_before_last`]).
     ImproveDecoding,
 }
 
@@ -145,6 +146,9 @@ pub struct Design {
     history: Vec<u32>,
     block: Vec<u32>,
     rng: ChaCha8Rng,
+    /// The last trial recorded (stimulus, counts): improve-decoding chooses on the counts
+    /// without it ([`Design::decoding_gains_before_last`]).
+    last: Option<(u32, Vec<u32>)>,
 }
 
 impl Design {
@@ -159,6 +163,7 @@ impl Design {
             history: Vec::new(),
             block: Vec::new(),
             rng: ChaCha8Rng::seed_from_u64(seed ^ 0xde51),
+            last: None,
         }
     }
 
@@ -229,6 +234,42 @@ impl Design {
             let k = k as f64;
             *e = (e.0 + 1.0, e.1 + k, e.2 + k * k);
         }
+        let last = self.last.get_or_insert_with(|| (0, Vec::new()));
+        last.0 = stimulus;
+        last.1.clear();
+        last.1
+            .extend_from_slice(&counts[..counts.len().min(self.stats.len())]);
+    }
+
+    /// improve-decoding's [`Design::decoding_gains`] on every trial recorded but the last (all
+    /// of them before the first): what the choice after the last trial is made on. A trial's
+    /// gains are then ready a whole trial before they are needed — the daemon's estimator
+    /// thread computes them while the next trial runs, and a `next` asked the moment a trial is
+    /// labelled does not wait for stimuli² × units of arithmetic — and the choice is still a
+    /// function of the recorded trials alone, so a replay makes it again. (Counts are whole
+    /// numbers: taking the trial back out restores the sums exactly.)
+    pub fn decoding_gains_before_last(&self) -> (f64, Vec<f64>) {
+        let Some((s, counts)) = &self.last else {
+            return self.decoding_gains();
+        };
+        // Only the counts are read by the gains.
+        let mut before = Design {
+            policy: self.policy,
+            constraints: self.constraints,
+            ns: self.ns,
+            stats: self.stats.clone(),
+            shown: Vec::new(),
+            history: Vec::new(),
+            block: Vec::new(),
+            rng: self.rng.clone(),
+            last: None,
+        };
+        for (u, &k) in counts.iter().enumerate() {
+            let e = &mut before.stats[u][*s as usize];
+            let k = k as f64;
+            *e = (e.0 - 1.0, e.1 - k, e.2 - k * k);
+        }
+        before.decoding_gains()
     }
 
     fn balanced(&mut self) -> u32 {
@@ -356,9 +397,10 @@ impl Design {
         self.choose_explained_given(None)
     }
 
-    /// [`Design::choose_explained`], with improve-decoding's [`Design::decoding_gains`] already
-    /// computed for the design's present counts (by another thread, from a copy): the same
-    /// choice, without the stimuli² × units pass on the caller's thread.
+    /// [`Design::choose_explained`], with improve-decoding's gains already computed (by another
+    /// thread, from a snapshot of the design before its last trial: what
+    /// [`Design::decoding_gains_before_last`] returns): the same choice, without the
+    /// stimuli² × units pass on the caller's thread.
     pub fn choose_explained_given(&mut self, gains: Option<(f64, Vec<f64>)>) -> Choice {
         let t = self.history.len();
         let warm = self.constraints.warmup_blocks * self.ns;
@@ -371,7 +413,7 @@ impl Design {
         } else if self.policy == Policy::ImproveDecoding {
             let (now, gains) = gains
                 .filter(|g| g.1.len() == self.ns)
-                .unwrap_or_else(|| self.decoding_gains());
+                .unwrap_or_else(|| self.decoding_gains_before_last());
             let mut order: Vec<usize> = (0..self.ns).collect();
             // Largest gain first; ties (no gain anywhere) go to the least shown.
             order.sort_by(|&a, &b| {
@@ -650,10 +692,28 @@ impl TunedUnit {
 /// The simulated units of one seed: preferred stimuli drawn at random, tuning of moderate
 /// width, baseline firing, over-dispersed counts (Fano 1.2–2) — the project's own scenario.
 pub fn units_of(seed: u64, nu: usize, ns: usize) -> Vec<TunedUnit> {
+    units_within(seed, nu, ns, 1.0)
+}
+
+/// [`units_of`] with the preferred stimuli within a share `spread` (0..=1) of the circle around
+/// a centre drawn for the seed — units recorded close together often share their preference,
+/// and then stimuli far from it drive every unit weakly and are harder to tell apart. 1: each
+/// unit's preference anywhere (exactly [`units_of`]); the units' other parameters are the same
+/// draws whatever the spread.
+pub fn units_within(seed: u64, nu: usize, ns: usize, spread: f64) -> Vec<TunedUnit> {
     let mut rng = ChaCha8Rng::seed_from_u64(seed ^ 0x0717);
+    let centre = ChaCha8Rng::seed_from_u64(seed ^ 0xce47).gen_range(0..ns.max(1)) as f64;
+    let place = |r: usize| {
+        if spread >= 1.0 {
+            r
+        } else {
+            let off = (r as f64 + 0.5 - ns as f64 / 2.0) * spread.max(0.0);
+            (centre + off).round().rem_euclid(ns as f64) as usize % ns
+        }
+    };
     (0..nu)
         .map(|_| TunedUnit {
-            preferred: rng.gen_range(0..ns),
+            preferred: place(rng.gen_range(0..ns)),
             baseline: rng.gen_range(1.0..3.0),
             peak: rng.gen_range(6.0..12.0),
             kappa: rng.gen_range(1.5..3.0),
@@ -662,9 +722,18 @@ pub fn units_of(seed: u64, nu: usize, ns: usize) -> Vec<TunedUnit> {
         .collect()
 }
 
+/// [`units_within`]'s spread in words, for a report's header.
+pub fn spread_words(spread: f64) -> String {
+    if spread >= 1.0 {
+        "preferences anywhere on the circle".into()
+    } else {
+        format!("preferences within {:.0}% of the circle", 100.0 * spread)
+    }
+}
+
 /// Simulated tuned units answering whatever stimulus is chosen (a closed loop through a real
 /// daemon: `auspex closed-loop-sim --through-daemon`, the daemon's e2e test): the units of
-/// [`units_of`] and their own seeded random stream.
+/// [`units_within`] and their own seeded random stream.
 pub struct SimulatedUnits {
     /// The units.
     pub units: Vec<TunedUnit>,
@@ -673,10 +742,11 @@ pub struct SimulatedUnits {
 }
 
 impl SimulatedUnits {
-    /// The `nu` units of seed `seed` over `ns` stimuli.
-    pub fn new(seed: u64, nu: usize, ns: usize) -> Self {
+    /// The `nu` units of seed `seed` over `ns` stimuli, their preferences within `spread` of
+    /// the circle ([`units_within`]).
+    pub fn new(seed: u64, nu: usize, ns: usize, spread: f64) -> Self {
         SimulatedUnits {
-            units: units_of(seed, nu, ns),
+            units: units_within(seed, nu, ns, spread),
             ns,
             rng: ChaCha8Rng::seed_from_u64(seed ^ 0x005e_ed0f_7e57),
         }
@@ -948,28 +1018,56 @@ mod tests {
         );
     }
 
-    /// Gains computed elsewhere from a copy (the daemon's estimator thread) give the very choices
-    /// the design makes computing them itself.
+    /// Gains computed elsewhere from a snapshot taken a trial earlier (the daemon's estimator
+    /// thread: `decoding_gains` of the design as it was before the last trial) give the very
+    /// choices the design makes computing them itself by taking the last trial back out — bit
+    /// for bit, so a replay that computes them on the spot chooses as the live session did.
     #[test]
     fn precomputed_gains_choose_the_same() {
         let units = units_of(4, 6, 8);
         let mut rng = ChaCha8Rng::seed_from_u64(9);
         let mut a = Design::new(Policy::ImproveDecoding, Constraints::default(), 6, 8, 2);
         let mut b = a.clone();
+        let mut snapshot = b.clone();
         for _ in 0..200 {
-            let gains = b.clone().decoding_gains();
+            let gains = snapshot.decoding_gains();
+            assert_eq!(gains, a.decoding_gains_before_last());
             let (x, y) = (a.choose_explained(), b.choose_explained_given(Some(gains)));
             assert_eq!((x.stimulus, x.why), (y.stimulus, y.why));
             let counts: Vec<u32> = units
                 .iter()
                 .map(|u| u.draw(x.stimulus as usize, 8, &mut rng))
                 .collect();
+            snapshot = b.clone();
             a.record(x.stimulus, &counts);
             b.record(y.stimulus, &counts);
         }
     }
 
     proptest! {
+        /// The units of a spread lie within that share of the circle (any two preferences at
+        /// most spread × stimuli apart, plus one for rounding), and only the preferences move:
+        /// the other parameters are the same draws as with preferences anywhere.
+        #[test]
+        fn preferences_lie_within_the_spread(
+            seed in 0u64..10_000,
+            nu in 1usize..20,
+            ns in 2usize..70,
+            spread in 0.0f64..1.0,
+        ) {
+            let near = units_within(seed, nu, ns, spread);
+            let anywhere = units_of(seed, nu, ns);
+            let apart = |a: usize, b: usize| a.abs_diff(b).min(ns - a.abs_diff(b));
+            for (x, y) in near.iter().zip(&anywhere) {
+                prop_assert_eq!((x.baseline, x.peak, x.kappa, x.fano), (y.baseline, y.peak, y.kappa, y.fano));
+                prop_assert!(x.preferred < ns);
+                for z in &near {
+                    let d = apart(x.preferred, z.preferred) as f64;
+                    prop_assert!(d <= spread * ns as f64 + 1.0, "{} apart at spread {} of {}", d, spread, ns);
+                }
+            }
+        }
+
         /// The settled share is a probability, at least that of the most frequent best
         /// stimulus's neighbourhood, and turning the circle of stimuli turns the centre with it
         /// (where no two centres tie).
