@@ -1,8 +1,10 @@
 //! What a stimulus choice costs on the daemon's engine thread at 64 units × 64 stimuli (the
 //! size issue 29 asks `next` to answer within a millisecond): improve-decoding's expected gains
 //! (computed by the estimator thread after every trial, and on the engine thread when a request
-//! comes before the estimator has them), a whole improve-decoding choice that computes them,
-//! and a find-tuning choice (margins of every unit and one top-two draw).
+//! comes before the estimator has them), a whole improve-decoding choice that computes them (on
+//! every trial but the last, as the policy judges), the same choice with the estimator's gains
+//! ready (what the engine thread does when the estimator had the trial to compute them), and a
+//! find-tuning choice (margins of every unit and one top-two draw).
 //! Run: `cargo bench -p auspex-modelling --bench design`.
 
 use auspex_modelling::design::{units_of, Constraints, Design, Policy};
@@ -34,6 +36,14 @@ fn bench(c: &mut Criterion) {
         b.iter_batched(
             || d.clone(),
             |mut d| d.choose_explained(),
+            criterion::BatchSize::SmallInput,
+        )
+    });
+    let ready = d.decoding_gains_before_last();
+    g.bench_function("improve_decoding_choice_gains_ready", |b| {
+        b.iter_batched(
+            || (d.clone(), ready.clone()),
+            |(mut d, ready)| d.choose_explained_given(Some(ready)),
             criterion::BatchSize::SmallInput,
         )
     });
