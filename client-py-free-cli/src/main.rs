@@ -62,6 +62,18 @@ fn unit_interval(s: &str) -> Result<f64, String> {
     }
 }
 
+/// A share of the circle: 0 (one preference for every unit) to 1 (anywhere).
+fn share_of_circle(s: &str) -> Result<f64, String> {
+    let x: f64 = s.parse().map_err(|_| format!("`{s}` is not a number"))?;
+    if (0.0..=1.0).contains(&x) {
+        Ok(x)
+    } else {
+        Err(format!(
+            "{x} is not a share of the circle: give 0 (every unit prefers the same stimulus) to 1 (anywhere)"
+        ))
+    }
+}
+
 fn parse_prior(s: &str) -> Result<Vec<f64>, String> {
     s.split(',')
         .map(|x| {
@@ -232,7 +244,7 @@ enum Cmd {
         /// seed: 1 = anywhere, each unit on its own; 0.5 = within half the circle, as units
         /// recorded close together often share a preference (stimuli far from it are then
         /// harder to tell apart)
-        #[arg(long, default_value_t = 1.0, value_parser = unit_interval)]
+        #[arg(long, default_value_t = 1.0, value_parser = share_of_circle)]
         preference_spread: f64,
         /// Whole balanced blocks before any policy choice
         #[arg(long, default_value_t = 1)]

@@ -935,11 +935,16 @@ pub fn steering_part(s: &v1::Status) -> String {
         return String::new();
     };
     let settled = st.units.iter().filter(|u| u.settled >= 0.95).count();
+    // The policy of the last choice (a warm-up choice of improve-decoding has no expected
+    // accuracy yet, and is still improve-decoding's).
     let mut out = match &st.last {
         Some(l) if l.policy == "improve-decoding" && l.expected_accuracy.is_finite() => format!(
             "improve-decoding ~{:.0}% expected",
             100.0 * l.expected_accuracy
         ),
+        Some(l) if !l.policy.is_empty() => {
+            format!("{} {settled}/{} tuned", l.policy, st.units.len())
+        }
         _ => format!("find-tuning {settled}/{} tuned", st.units.len()),
     };
     if let Some(l) = &st.last {
@@ -1233,6 +1238,45 @@ pub fn screen_words(screen: &str) -> std::collections::BTreeSet<String> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The footer names the policy of the last choice: improve-decoding's warm-up (no expected
+    /// accuracy yet) once read "find-tuning 4/4 tuned" (seen at 80 × 24 during a session that
+    /// only asked improve-decoding).
+    #[test]
+    fn the_steering_footer_names_the_last_choices_policy() {
+        let status = |policy: &str, accuracy: f64| v1::Status {
+            steering: Some(v1::SteeringState {
+                units: vec![
+                    v1::UnitTuningState {
+                        settled: 0.99,
+                        ..Default::default()
+                    },
+                    v1::UnitTuningState::default(),
+                ],
+                last: Some(v1::NextStimulusReply {
+                    stimulus: "180".into(),
+                    policy: policy.into(),
+                    expected_accuracy: accuracy,
+                    ..Default::default()
+                }),
+                choices: 3,
+                ..Default::default()
+            }),
+            ..Default::default()
+        };
+        assert_eq!(
+            steering_part(&status("improve-decoding", f64::NAN)),
+            "improve-decoding 1/2 tuned, chose 180"
+        );
+        assert_eq!(
+            steering_part(&status("improve-decoding", 0.842)),
+            "improve-decoding ~84% expected, chose 180"
+        );
+        assert_eq!(
+            steering_part(&status("find-tuning", f64::NAN)),
+            "find-tuning 1/2 tuned, chose 180"
+        );
+    }
 
     fn stream() -> Vec<(&'static str, v1::Outbound)> {
         let mut v = Vec::new();
