@@ -4,9 +4,7 @@
 //! accuracy (`--goal decoding`) (`auspex_modelling::design`). Policies side by side, seeds in
 //! parallel on every core, a progress bar.
 
-use auspex_modelling::design::{
-    trials_to_accuracy, trials_to_tuning, units_within, Constraints, Policy,
-};
+use auspex_modelling::design::{trials_to_accuracy, tuning_run, units_within, Constraints, Policy};
 
 /// What an experiment runs until.
 #[derive(Clone, Copy, Debug, PartialEq)]
@@ -35,6 +33,9 @@ pub struct PolicyFigures {
     pub policy: &'static str,
     /// Trials to the criterion per seed (None: not reached within the cap).
     pub trials: Vec<Option<usize>>,
+    /// With `--goal tuning`: per seed, the first look at which every unit read settled with
+    /// some preference wrong (None: never) — a stop on "settled" there would have been wrong.
+    pub settled_wrong_at: Vec<Option<usize>>,
 }
 
 impl PolicyFigures {
@@ -71,7 +72,7 @@ pub fn compare(
         .map(|&p| {
             let next = std::sync::atomic::AtomicU64::new(0);
             let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
-            let mut all: Vec<(u64, Option<usize>)> = std::thread::scope(|sc| {
+            let mut all: Vec<(u64, Option<usize>, Option<usize>)> = std::thread::scope(|sc| {
                 let hs: Vec<_> = (0..threads)
                     .map(|_| {
                         sc.spawn(|| {
@@ -82,15 +83,14 @@ pub fn compare(
                                     break;
                                 }
                                 let units = units_within(s, nu, ns, spread);
-                                let t = match goal {
-                                    Goal::Tuning => {
-                                        trials_to_tuning(&units, ns, p, constraints, s, cap)
-                                    }
-                                    Goal::Decoding(a) => {
-                                        trials_to_accuracy(&units, ns, p, constraints, s, cap, a)
-                                    }
+                                let (t, wrong) = match goal {
+                                    Goal::Tuning => tuning_run(&units, ns, p, constraints, s, cap),
+                                    Goal::Decoding(a) => (
+                                        trials_to_accuracy(&units, ns, p, constraints, s, cap, a),
+                                        None,
+                                    ),
                                 };
-                                mine.push((s, t));
+                                mine.push((s, t, wrong));
                                 tick();
                             }
                             mine
@@ -104,7 +104,8 @@ pub fn compare(
             all.sort_by_key(|x| x.0);
             PolicyFigures {
                 policy: p.name(),
-                trials: all.into_iter().map(|x| x.1).collect(),
+                trials: all.iter().map(|x| x.1).collect(),
+                settled_wrong_at: all.iter().map(|x| x.2).collect(),
             }
         })
         .collect()
@@ -166,13 +167,28 @@ pub fn closed_loop_cmd(
         constraints.max_run
     );
     let other = goal.policies()[1].name();
-    println!("| units × stimuli | balanced-blocks median [90th pct] | {other} median [90th pct] | ratio of medians | not reached (b / other) |");
-    println!("|---|---|---|---|---|");
+    let tuning = goal == Goal::Tuning;
+    if tuning {
+        println!("settled wrong first: seeds in which, at an earlier look, every unit read settled with some preference wrong (a stop on \"settled\" there would have been wrong; looks after every trial for 4 blocks, then every 4 trials)");
+    }
+    let (wrong_head, wrong_rule) = if tuning {
+        (" settled wrong first (b / other) |", "---|")
+    } else {
+        ("", "")
+    };
+    println!("| units × stimuli | balanced-blocks median [90th pct] | {other} median [90th pct] | ratio of medians | not reached (b / other) |{wrong_head}");
+    println!("|---|---|---|---|---|{wrong_rule}");
     for (nu, ns, figs) in &rows {
         let (b, f) = (&figs[0], &figs[1]);
         let miss = |p: &PolicyFigures| p.trials.iter().filter(|t| t.is_none()).count();
+        let wrong = |p: &PolicyFigures| p.settled_wrong_at.iter().filter(|t| t.is_some()).count();
+        let wrong_cell = if tuning {
+            format!(" {} / {} |", wrong(b), wrong(f))
+        } else {
+            String::new()
+        };
         println!(
-            "| {nu} × {ns} | {:.0} [{:.0}] | {:.0} [{:.0}] | {:.2} | {} / {} |",
+            "| {nu} × {ns} | {:.0} [{:.0}] | {:.0} [{:.0}] | {:.2} | {} / {} |{wrong_cell}",
             b.quantile(0.5, cap),
             b.quantile(0.9, cap),
             f.quantile(0.5, cap),

@@ -782,14 +782,35 @@ pub fn trials_to_tuning(
     seed: u64,
     max_trials: usize,
 ) -> Option<usize> {
-    play(units, ns, policy, constraints, seed, max_trials, |d| {
+    tuning_run(units, ns, policy, constraints, seed, max_trials).0
+}
+
+/// [`trials_to_tuning`], and the first look (trials so far) at which every unit read settled but
+/// some unit's preference was wrong — where an experiment stopped on "settled" would have
+/// stopped with a wrong answer. The looks are those of `play`: after every trial for the first
+/// four blocks, then every four trials.
+pub fn tuning_run(
+    units: &[TunedUnit],
+    ns: usize,
+    policy: Policy,
+    constraints: Constraints,
+    seed: u64,
+    max_trials: usize,
+) -> (Option<usize>, Option<usize>) {
+    let mut wrong_at = None;
+    let trials = play(units, ns, policy, constraints, seed, max_trials, |d| {
         d.all_settled().is_some_and(|modes| {
-            units
+            let right = units
                 .iter()
                 .zip(&modes)
-                .all(|(u, &m)| neighbours(u.preferred, ns).contains(&m))
+                .all(|(u, &m)| neighbours(u.preferred, ns).contains(&m));
+            if !right && wrong_at.is_none() {
+                wrong_at = Some(d.history().len());
+            }
+            right
         })
-    })
+    });
+    (trials, wrong_at)
 }
 
 /// Plays `units` against `policy` for up to `max_trials` trials: the first trial after which
@@ -1045,6 +1066,27 @@ mod tests {
     }
 
     proptest! {
+        /// A wrong settlement is seen at a look before the run ends (the run stops at the first
+        /// look that is settled and right), never before a whole block, and the trials are
+        /// those of `trials_to_tuning`.
+        #[test]
+        fn a_wrong_settlement_comes_before_the_stop(
+            seed in 0u64..400,
+            nu in 1usize..3,
+            ns in 4usize..12,
+            find in proptest::bool::ANY,
+        ) {
+            let policy = if find { Policy::FindTuning } else { Policy::BalancedBlocks };
+            let units = units_of(seed, nu, ns);
+            let c = Constraints::default();
+            let (trials, wrong) = tuning_run(&units, ns, policy, c, seed, 400);
+            prop_assert_eq!(trials, trials_to_tuning(&units, ns, policy, c, seed, 400));
+            if let Some(w) = wrong {
+                prop_assert!(w >= ns, "{}", w);
+                prop_assert!(trials.is_none_or(|t| w < t), "{} vs {:?}", w, trials);
+            }
+        }
+
         /// The units of a spread lie within that share of the circle (any two preferences at
         /// most spread × stimuli apart, plus one for rounding), and only the preferences move:
         /// the other parameters are the same draws as with preferences anywhere.
