@@ -2,18 +2,12 @@
 //! preference spread's default was refused by its own parser), the spread is said in the
 //! header and a bad one is refused naming the option, and the JSON holds one figure per seed.
 
-use std::process::Command;
+mod common;
 
+/// The real binary, in a scratch directory.
 fn auspex(args: &[&str]) -> (bool, String, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_auspex"))
-        .args(args)
-        .output()
-        .unwrap();
-    (
-        out.status.success(),
-        String::from_utf8_lossy(&out.stdout).into_owned(),
-        String::from_utf8_lossy(&out.stderr).into_owned(),
-    )
+    let dir = tempfile::tempdir().unwrap();
+    common::auspex(dir.path(), args)
 }
 
 #[test]

@@ -773,22 +773,11 @@ impl SimulatedUnits {
 }
 
 /// Plays `units` against `policy` until every unit's preferred stimulus is settled and right
-/// (within one neighbour of the truth): the trials it took, or None within `max_trials`.
-pub fn trials_to_tuning(
-    units: &[TunedUnit],
-    ns: usize,
-    policy: Policy,
-    constraints: Constraints,
-    seed: u64,
-    max_trials: usize,
-) -> Option<usize> {
-    tuning_run(units, ns, policy, constraints, seed, max_trials).0
-}
-
-/// [`trials_to_tuning`], and the first look (trials so far) at which every unit read settled but
-/// some unit's preference was wrong — where an experiment stopped on "settled" would have
-/// stopped with a wrong answer. The looks are those of `play`: after every trial for the first
-/// four blocks, then every four trials.
+/// (within one neighbour of the truth): (the trials it took, or None within `max_trials`; the
+/// first look — trials so far — at which every unit read settled but some unit's preference was
+/// wrong, where an experiment stopped on "settled" would have stopped with a wrong answer). The
+/// looks are those of `play`: after every trial for the first four blocks, then every four
+/// trials.
 pub fn tuning_run(
     units: &[TunedUnit],
     ns: usize,
@@ -1067,8 +1056,7 @@ mod tests {
 
     proptest! {
         /// A wrong settlement is seen at a look before the run ends (the run stops at the first
-        /// look that is settled and right), never before a whole block, and the trials are
-        /// those of `trials_to_tuning`.
+        /// look that is settled and right), never before a whole block.
         #[test]
         fn a_wrong_settlement_comes_before_the_stop(
             seed in 0u64..400,
@@ -1080,7 +1068,6 @@ mod tests {
             let units = units_of(seed, nu, ns);
             let c = Constraints::default();
             let (trials, wrong) = tuning_run(&units, ns, policy, c, seed, 400);
-            prop_assert_eq!(trials, trials_to_tuning(&units, ns, policy, c, seed, 400));
             if let Some(w) = wrong {
                 prop_assert!(w >= ns, "{}", w);
                 prop_assert!(trials.is_none_or(|t| w < t), "{} vs {:?}", w, trials);
@@ -1264,7 +1251,7 @@ mod tests {
             kappa: 2.0,
             fano: 1.5,
         };
-        let t = trials_to_tuning(
+        let (t, _) = tuning_run(
             &[u],
             16,
             Policy::FindTuning,
